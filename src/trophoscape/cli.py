@@ -1,0 +1,140 @@
+"""The command line: a thin shell over ``load_study -> run_study -> write_run``.
+
+Exit codes: 0 success; 2 bad input (one-line message naming file, feature and field);
+1 a failure of the run itself.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+from pathlib import Path
+
+from .errors import InputError, RunError, TrophoscapeError
+
+__all__ = ["main", "demo_scenario_path"]
+
+EPILOG_RUN = "example:\n  trophoscape run valley.toml --out results/valley-a"
+EPILOG_CHECK = "example:\n  trophoscape check valley.toml"
+EPILOG_DEMO = "example:\n  trophoscape demo --out demo-out"
+
+
+def demo_scenario_path() -> Path:
+    """The bundled demo scenario (installed with the package, or the source tree's data/)."""
+    from importlib.resources import files
+
+    installed = Path(str(files("trophoscape"))) / "_demo_data" / "demo.toml"
+    if installed.is_file():
+        return installed
+    source = Path(__file__).resolve().parents[2] / "data" / "demo.toml"
+    if source.is_file():
+        return source
+    raise RunError("the demo data are missing from this installation; reinstall trophoscape")
+
+
+def _parser() -> argparse.ArgumentParser:
+    from . import __version__
+
+    p = argparse.ArgumentParser(
+        prog="trophoscape",
+        description="Predator-prey dynamics on a network of habitat patches read from a GIS "
+                    "file: persistence and synchrony, patch by patch.",
+    )
+    p.add_argument("--version", action="version", version=f"trophoscape {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    fmt = argparse.RawDescriptionHelpFormatter
+    run = sub.add_parser("run", help="run a scenario and write its output folder",
+                         description="Run a scenario and write maps, tables and time series.",
+                         epilog=EPILOG_RUN, formatter_class=fmt)
+    run.add_argument("scenario", type=Path, help="scenario file (TOML)")
+    _output_options(run)
+
+    check = sub.add_parser("check", help="validate a scenario and its inputs; run nothing",
+                           description="Validate the scenario, the patch file and the links, "
+                                       "print the network summary, and run nothing.",
+                           epilog=EPILOG_CHECK, formatter_class=fmt)
+    check.add_argument("scenario", type=Path, help="scenario file (TOML)")
+
+    demo = sub.add_parser("demo", help="run the bundled demo landscape",
+                          description="Run the bundled demo: an invented landscape of habitat "
+                                      "patches with a few corridors.",
+                          epilog=EPILOG_DEMO, formatter_class=fmt)
+    _output_options(demo)
+    return p
+
+
+def _output_options(p):
+    p.add_argument("--out", type=Path, required=True, help="output folder")
+    p.add_argument("--geojson", action="store_true", help="also write patches.geojson")
+    p.add_argument("--no-maps", action="store_true", help="skip the PNG maps and the report")
+    p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    print(f"warning: {message}", file=sys.stderr)
+
+
+def _print_check(study) -> None:
+    net = study.network.summary()
+    land = study.landscape
+    area = land.area_km2
+    print(f"scenario   {study.scenario.name}")
+    print(f"patches    {net['patches']} from {land.path} (CRS {land.crs.to_string()})")
+    print(f"area       {area.sum():.2f} km² in all; {area.min():.3g} to {area.max():.3g} km² "
+          "per patch")
+    print(f"links      {net['links']} ({net['components']} connected group(s), "
+          f"{len(net['isolated'])} isolated patch(es))")
+    if land.repaired:
+        print(f"repaired   {len(land.repaired)} geometry(ies): {', '.join(land.repaired[:10])}")
+
+
+def _print_summary(result, out) -> None:
+    s = result.summary
+    print(f"wrote {out}")
+    print(f"  prey persists in {s['prey_regional_persistence']:.0%} of patches, "
+          f"predator in {s['predator_regional_persistence']:.0%}")
+
+
+def main(argv=None) -> int:
+    """Entry point of the ``trophoscape`` command; returns the exit code."""
+    args = _parser().parse_args(argv)
+    warnings.showwarning = _show_warning
+    try:
+        return _dispatch(args)
+    except InputError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    except RunError as exc:
+        print(f"error: the run failed: {exc}", file=sys.stderr)
+        return 1
+    except TrophoscapeError as exc:  # pragma: no cover - every error has a subclass
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("interrupted; no output was written", file=sys.stderr)
+        return 130
+
+
+def _dispatch(args) -> int:
+    from .outputs import write_run
+    from .study import load_study, run_study
+
+    if args.command == "check":
+        _print_check(load_study(args.scenario))
+        return 0
+    scenario = demo_scenario_path() if args.command == "demo" else args.scenario
+    study = load_study(scenario)
+    if not args.quiet:
+        _print_check(study)
+    result = run_study(study, progress=not args.quiet)
+    write_run(result, args.out, maps=not args.no_maps, geojson=args.geojson)
+    if not args.quiet:
+        _print_summary(result, args.out)
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

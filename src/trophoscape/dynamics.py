@@ -1,0 +1,339 @@
+"""Local predator–prey dynamics: growth forms and functional responses.
+
+Every function here works on densities (individuals per km²) held as arrays of shape
+``(n_patches,)``; parameters are arrays of the same shape (a constant is broadcast once,
+when the model is built), so patches may differ in any parameter.
+
+The local equations, in prey density ``n`` and predator density ``p``::
+
+    dn/dt = g(n) - f(n, p) p
+    dp/dt = e f(n, p) p - m p
+
+with ``g`` a growth form and ``f`` a functional response (predation per predator).
+
+Growth forms and responses are small objects with the same interface (``value`` and its
+partial derivatives), held in the tables ``GROWTH_FORMS`` and ``RESPONSES``; adding one is
+adding an entry (see DEVELOPERS.md).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import ClassVar
+
+import numpy as np
+
+__all__ = [
+    "GROWTH_FORMS",
+    "RESPONSES",
+    "LocalModel",
+    "Exponential",
+    "Logistic",
+    "StrongAllee",
+    "LotkaVolterra",
+    "HollingII",
+    "HollingIII",
+    "BeddingtonDeAngelis",
+    "interior_equilibrium",
+]
+
+
+# --------------------------------------------------------------------------- growth forms
+class GrowthForm:
+    """Prey growth ``g(n)`` per unit area; ``params`` holds per-patch arrays."""
+
+    name: ClassVar[str]
+    needs: ClassVar[tuple[str, ...]]
+
+    @staticmethod
+    def value(n, q):  # pragma: no cover - interface
+        raise NotImplementedError
+
+    @staticmethod
+    def dn(n, q):  # pragma: no cover - interface
+        raise NotImplementedError
+
+
+class Exponential(GrowthForm):
+    """Exponential growth ``g(n) = r n`` (Malthus 1798; common practice)."""
+
+    name = "exponential"
+    needs = ("growth_rate",)
+
+    @staticmethod
+    def value(n, q):
+        return q["growth_rate"] * n
+
+    @staticmethod
+    def dn(n, q):
+        return q["growth_rate"] * np.ones_like(n)
+
+
+class Logistic(GrowthForm):
+    """Logistic growth ``g(n) = r n (1 - n/K)`` (Verhulst 1838, from memory)."""
+
+    name = "logistic"
+    needs = ("growth_rate", "capacity")
+
+    @staticmethod
+    def value(n, q):
+        return q["growth_rate"] * n * (1.0 - n / q["capacity"])
+
+    @staticmethod
+    def dn(n, q):
+        return q["growth_rate"] * (1.0 - 2.0 * n / q["capacity"])
+
+
+class StrongAllee(GrowthForm):
+    """Strong Allee effect ``g(n) = r n (1 - n/K)(n/T - 1)``, ``0 < T < K``.
+
+    Below the threshold density ``T`` the population declines to zero; 0 and K are stable,
+    T unstable (Courchamp, Berec & Gascoigne 2008, *Allee Effects in Ecology and
+    Conservation*, from memory).
+    """
+
+    name = "allee"
+    needs = ("growth_rate", "capacity", "allee_density")
+
+    @staticmethod
+    def value(n, q):
+        return q["growth_rate"] * n * (1.0 - n / q["capacity"]) * (n / q["allee_density"] - 1.0)
+
+    @staticmethod
+    def dn(n, q):
+        r, k, t = q["growth_rate"], q["capacity"], q["allee_density"]
+        # d/dn of r (n - n²/K)(n/T - 1)
+        return r * ((1.0 - 2.0 * n / k) * (n / t - 1.0) + (n - n * n / k) / t)
+
+
+GROWTH_FORMS: dict[str, type[GrowthForm]] = {
+    cls.name: cls for cls in (Exponential, Logistic, StrongAllee)
+}
+
+
+# --------------------------------------------------------------------------- responses
+class Response:
+    """Predation per predator ``f(n, p)`` and its partial derivatives."""
+
+    name: ClassVar[str]
+    needs: ClassVar[tuple[str, ...]]
+
+    @staticmethod
+    def value(n, p, q):  # pragma: no cover - interface
+        raise NotImplementedError
+
+    @staticmethod
+    def dn(n, p, q):  # pragma: no cover - interface
+        raise NotImplementedError
+
+    @staticmethod
+    def dp(n, p, q):
+        return np.zeros_like(n)
+
+
+class LotkaVolterra(Response):
+    """Type I (linear) response ``f = a n`` (Lotka 1925; Volterra 1926)."""
+
+    name = "lotka_volterra"
+    needs = ("attack_rate",)
+
+    @staticmethod
+    def value(n, p, q):
+        return q["attack_rate"] * n
+
+    @staticmethod
+    def dn(n, p, q):
+        return q["attack_rate"] * np.ones_like(n)
+
+
+class HollingII(Response):
+    """Holling type II ``f = a n / (1 + a h n)`` (Holling 1959, Can. Entomol. 91:385).
+
+    Saturates at ``1/h``; half of it at ``n = 1/(a h)``.
+    """
+
+    name = "holling2"
+    needs = ("attack_rate", "handling_time")
+
+    @staticmethod
+    def value(n, p, q):
+        a = q["attack_rate"]
+        return a * n / (1.0 + a * q["handling_time"] * n)
+
+    @staticmethod
+    def dn(n, p, q):
+        a = q["attack_rate"]
+        d = 1.0 + a * q["handling_time"] * n
+        return a / (d * d)
+
+
+class HollingIII(Response):
+    """Holling type III ``f = a n² / (1 + a h n²)`` (Holling 1959, from memory)."""
+
+    name = "holling3"
+    needs = ("attack_rate", "handling_time")
+
+    @staticmethod
+    def value(n, p, q):
+        a = q["attack_rate"]
+        return a * n * n / (1.0 + a * q["handling_time"] * n * n)
+
+    @staticmethod
+    def dn(n, p, q):
+        a = q["attack_rate"]
+        d = 1.0 + a * q["handling_time"] * n * n
+        return 2.0 * a * n / (d * d)
+
+
+class BeddingtonDeAngelis(Response):
+    """Beddington–DeAngelis ``f = a n / (1 + a h n + c p)``.
+
+    Predator interference ``c``; equals Holling type II when ``c = 0`` (Beddington 1975,
+    J. Anim. Ecol. 44:331; DeAngelis, Goldstein & O'Neill 1975, Ecology 56:881; from memory).
+    """
+
+    name = "beddington_deangelis"
+    needs = ("attack_rate", "handling_time", "interference")
+
+    @staticmethod
+    def value(n, p, q):
+        a = q["attack_rate"]
+        return a * n / (1.0 + a * q["handling_time"] * n + q["interference"] * p)
+
+    @staticmethod
+    def dn(n, p, q):
+        a, c = q["attack_rate"], q["interference"]
+        d = 1.0 + a * q["handling_time"] * n + c * p
+        return a * (1.0 + c * p) / (d * d)
+
+    @staticmethod
+    def dp(n, p, q):
+        a, c = q["attack_rate"], q["interference"]
+        d = 1.0 + a * q["handling_time"] * n + c * p
+        return -a * n * c / (d * d)
+
+
+RESPONSES: dict[str, type[Response]] = {
+    cls.name: cls for cls in (LotkaVolterra, HollingII, HollingIII, BeddingtonDeAngelis)
+}
+
+#: Parameters of the local model and the scenario key each comes from.
+PARAMETER_KEYS = {
+    "growth_rate": "prey.growth_rate",
+    "capacity": "prey.capacity_density",
+    "allee_density": "prey.allee_density",
+    "attack_rate": "predation.attack_rate",
+    "handling_time": "predation.handling_time",
+    "interference": "predation.interference",
+    "conversion": "predator.conversion",
+    "mortality": "predator.mortality_rate",
+}
+
+
+@dataclass(frozen=True, eq=False)
+class LocalModel:
+    """The local predator–prey model of every patch.
+
+    Parameters
+    ----------
+    growth : str
+        A key of ``GROWTH_FORMS``.
+    response : str
+        A key of ``RESPONSES``.
+    params : dict of str to ndarray, shape (n_patches,)
+        ``growth_rate``, ``capacity`` (K, per km²), ``allee_density``, ``attack_rate``,
+        ``handling_time``, ``interference``, ``conversion``, ``mortality``; each broadcast to
+        one value per patch.
+    """
+
+    growth: str
+    response: str
+    params: dict = field(repr=False)
+
+    def __post_init__(self):
+        if self.growth not in GROWTH_FORMS:
+            raise ValueError(f"growth must be one of {sorted(GROWTH_FORMS)}, got {self.growth!r}")
+        if self.response not in RESPONSES:
+            raise ValueError(f"response must be one of {sorted(RESPONSES)}, got {self.response!r}")
+        sizes = {np.shape(v) for v in self.params.values()}
+        if len(sizes) > 1:
+            raise ValueError(f"parameter arrays differ in shape: {sorted(sizes)}")
+
+    @property
+    def growth_form(self) -> type[GrowthForm]:
+        return GROWTH_FORMS[self.growth]
+
+    @property
+    def functional_response(self) -> type[Response]:
+        return RESPONSES[self.response]
+
+    @property
+    def n_patches(self) -> int:
+        return int(np.shape(self.params["growth_rate"])[0])
+
+    def rates(self, n, p):
+        """Local rates of change of density ``(dn/dt, dp/dt)``, arrays like ``n``."""
+        q = self.params
+        f = self.functional_response.value(n, p, q)
+        eaten = f * p
+        return self.growth_form.value(n, q) - eaten, q["conversion"] * eaten - q["mortality"] * p
+
+    def partials(self, n, p):
+        """The four partial derivatives of the local rates (per patch, in density).
+
+        Returns ``(dndn, dndp, dpdn, dpdp)``, each shaped like ``n``.
+        """
+        q = self.params
+        resp = self.functional_response
+        f = resp.value(n, p, q)
+        fn = resp.dn(n, p, q)
+        fp = resp.dp(n, p, q)
+        e = q["conversion"]
+        dndn = self.growth_form.dn(n, q) - fn * p
+        dndp = -(f + fp * p)
+        dpdn = e * fn * p
+        dpdp = e * (f + fp * p) - q["mortality"]
+        return dndn, dndp, dpdn, dpdp
+
+
+def interior_equilibrium(model: LocalModel):
+    """Closed-form coexistence equilibrium of the local model, in densities.
+
+    Available for logistic or exponential prey with a Lotka–Volterra or Holling type II
+    response (the Lotka–Volterra and Rosenzweig–MacArthur models):
+
+    * Lotka–Volterra: ``n* = m / (e a)``, ``p* = g(n*) / (a n*)``.
+    * Rosenzweig–MacArthur: ``n* = m / (a (e - m h))``,
+      ``p* = (r/a)(1 - n*/K)(1 + a h n*)`` (Rosenzweig & MacArthur 1963, Am. Nat. 97:209,
+      from memory).
+
+    Returns
+    -------
+    n_star, p_star : ndarray, shape (n_patches,)
+        NaN where no positive equilibrium exists (the predator cannot invade: ``K <= n*``,
+        or ``e <= m h``).
+
+    Raises
+    ------
+    NotImplementedError
+        For other model combinations (no closed form; use a root finder).
+    """
+    q = model.params
+    a, e, m = q["attack_rate"], q["conversion"], q["mortality"]
+    if model.response == "lotka_volterra":
+        denom = e * a
+    elif model.response == "holling2" or (
+        model.response == "beddington_deangelis" and np.all(q["interference"] == 0)
+    ):
+        denom = a * (e - m * q["handling_time"])
+    else:
+        raise NotImplementedError(f"no closed-form equilibrium for response {model.response!r}")
+    if model.growth not in ("logistic", "exponential"):
+        raise NotImplementedError(f"no closed-form equilibrium for growth {model.growth!r}")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        n_star = np.where(denom > 0, m / denom, np.nan)
+        g = model.growth_form.value(n_star, q)
+        f = model.functional_response.value(n_star, np.zeros_like(n_star), q)
+        p_star = g / f
+    ok = np.isfinite(n_star) & np.isfinite(p_star) & (n_star > 0) & (p_star > 0)
+    return np.where(ok, n_star, np.nan), np.where(ok, p_star, np.nan)

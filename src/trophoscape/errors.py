@@ -1,0 +1,58 @@
+"""The errors trophoscape raises on purpose.
+
+``InputError`` is a problem with what the user handed over (a patch file, a scenario, a
+links table); the command line prints its one-line message and exits with code 2.
+``RunError`` is a failure of the computation itself (a solver that gives up); exit code 1.
+"""
+
+from __future__ import annotations
+
+__all__ = ["TrophoscapeError", "InputError", "RunError", "TrophoscapeWarning"]
+
+
+class TrophoscapeError(Exception):
+    """Base class of every error raised on purpose by trophoscape."""
+
+
+class InputError(TrophoscapeError, ValueError):
+    """Bad input: names the file, the feature and the field where they are known.
+
+    Parameters
+    ----------
+    message : str
+        What is wrong and what would be accepted.
+    file : str or path, optional
+        The file the problem is in.
+    feature : str or int, optional
+        The feature: its id (str) where the file has an id field, else its 0-based position.
+    field : str, optional
+        The attribute, column or scenario key.
+
+    Examples
+    --------
+    >>> str(InputError("must be >= 0, got -1", file="p.geojson", feature="W3", field="quality"))
+    "p.geojson: feature 'W3': field 'quality': must be >= 0, got -1"
+    """
+
+    def __init__(self, message: str, *, file=None, feature=None, field=None):
+        self.message = message
+        self.file = None if file is None else str(file)
+        self.feature = feature
+        self.field = field
+        parts = []
+        if self.file is not None:
+            parts.append(self.file)
+        if feature is not None:
+            parts.append(f"feature {feature!r}" if isinstance(feature, str) else f"feature {feature}")
+        if field is not None:
+            parts.append(f"field {field!r}")
+        parts.append(message)
+        super().__init__(": ".join(parts))
+
+
+class RunError(TrophoscapeError, RuntimeError):
+    """The computation failed (for example the ODE solver gave up)."""
+
+
+class TrophoscapeWarning(UserWarning):
+    """Warnings about input that was accepted but changed."""

@@ -1,0 +1,643 @@
+"""Reading and validating the input files: patch polygons, corridor lines, links tables.
+
+A patch file (GeoJSON, GeoPackage or Shapefile) becomes a :class:`Landscape`: a validated
+GeoDataFrame in a metric CRS with one row per patch in the user's feature order, a string id
+per patch and its area in km² from an equal-area projection. This module is the only place
+that reads vector files; :mod:`trophoscape.network` calls :func:`read_corridors` and
+:func:`read_links_table` from here.
+
+Every problem with a file raises :class:`~trophoscape.errors.InputError` naming the file, the
+feature (its id where the file has an id field, else its 0-based position) and the field.
+"""
+
+from __future__ import annotations
+
+import difflib
+import json
+import warnings
+from collections.abc import Mapping
+from dataclasses import dataclass
+from functools import cached_property
+from pathlib import Path
+
+import geopandas
+import numpy as np
+import pandas as pd
+import pyproj
+import shapely
+
+from .errors import InputError, TrophoscapeWarning
+
+__all__ = [
+    "Landscape",
+    "read_patches",
+    "landscape_from_frame",
+    "read_corridors",
+    "read_links_table",
+    "metric_crs",
+    "equal_area_crs",
+]
+
+_POLYGON, _MULTIPOLYGON = 3, 6  # shapely.get_type_id codes
+_LINESTRING, _MULTILINESTRING = 1, 5
+_VECTOR_FORMATS = "a GeoJSON (.geojson), GeoPackage (.gpkg) or Shapefile (.shp)"
+_TRUE = frozenset({"true", "1", "yes"})
+_FALSE = frozenset({"false", "0", "no", ""})
+_LINKS_REQUIRED = ("source", "target", "weight")
+_LINKS_OPTIONAL = ("survival", "directed")
+
+
+@dataclass(frozen=True, eq=False)
+class Landscape:
+    """Habitat patches, validated, in a metric CRS, in the user's feature order.
+
+    Attributes
+    ----------
+    frame : geopandas.GeoDataFrame, n_patches rows
+        RangeIndex in the file's feature order; columns ``patch_id`` (str), ``area_km2``
+        (float, from an equal-area projection), every attribute of the file, ``geometry``
+        (Polygon or MultiPolygon in the metric CRS).
+    path : pathlib.Path or None
+        The patch file (None for a landscape built in memory).
+    repaired : tuple of str
+        Ids of the patches whose invalid geometry was repaired with ``shapely.make_valid``.
+    id_field : str or None
+        The attribute the ids came from; None when ids are the feature order "0", "1", ...
+
+    Examples
+    --------
+    >>> from trophoscape.testing import chain_landscape
+    >>> land = chain_landscape(3, spacing_km=2.0, size_km=1.0)
+    >>> land.n_patches, land.ids.tolist()
+    (3, ['0', '1', '2'])
+    """
+
+    frame: geopandas.GeoDataFrame
+    path: Path | None = None
+    repaired: tuple[str, ...] = ()
+    id_field: str | None = None
+
+    @cached_property
+    def ids(self) -> np.ndarray:
+        """Patch ids, ndarray of str, shape (n_patches,)."""
+        return _readonly(self.frame["patch_id"].to_numpy(dtype=str))
+
+    @property
+    def n_patches(self) -> int:
+        return len(self.frame)
+
+    @property
+    def has_id_field(self) -> bool:
+        """True when ids come from an attribute of the file (messages then name patches by id)."""
+        return self.id_field is not None
+
+    @cached_property
+    def area_km2(self) -> np.ndarray:
+        """Patch areas in km² from an equal-area projection, ndarray, shape (n_patches,)."""
+        return _readonly(self.frame["area_km2"].to_numpy(dtype=np.float64))
+
+    @property
+    def crs(self) -> pyproj.CRS:
+        """The metric (projected, metres) CRS of ``frame``."""
+        return self.frame.crs
+
+    @cached_property
+    def centroids(self) -> np.ndarray:
+        """Patch centroids in metres in :attr:`crs`, ndarray, shape (n_patches, 2)."""
+        return _readonly(shapely.get_coordinates(shapely.centroid(self.geometries)))
+
+    @cached_property
+    def geometries(self) -> np.ndarray:
+        """Patch polygons as shapely geometries, ndarray of object, shape (n_patches,)."""
+        return _readonly(self.frame.geometry.to_numpy())
+
+    def feature(self, i: int) -> str | int:
+        """How messages name patch ``i``: its id with an id field, else its position."""
+        return str(self.ids[i]) if self.has_id_field else int(i)
+
+    def values(self, field: str, *, key: str | None = None) -> np.ndarray:
+        """A numeric patch attribute, checked present, numeric, finite and >= 0.
+
+        Parameters
+        ----------
+        field : str
+            Name of the attribute in the patch file.
+        key : str, optional
+            The scenario key that named the attribute; error messages mention it.
+
+        Returns
+        -------
+        ndarray of float64, shape (n_patches,)
+
+        Raises
+        ------
+        InputError
+            Naming the file, the first bad feature and the field.
+        """
+        refs = self.ids if self.has_id_field else None
+        return _attribute_values(self.frame, field, key=key, path=self.path, refs=refs)
+
+
+def read_patches(path, *, id_field=None, crs="auto", fields=None, layer=None) -> Landscape:
+    """Read and validate a patch file.
+
+    Parameters
+    ----------
+    path : str or path
+        GeoJSON, GeoPackage or Shapefile of Polygon / MultiPolygon features.
+    id_field : str, optional
+        Attribute holding unique patch ids (converted with ``str``); default: the feature
+        order "0", "1", ...
+    crs : str or pyproj.CRS, default "auto"
+        Metric CRS for distances. "auto": keep a projected file's CRS; for lon/lat data the
+        local UTM zone when the patches span at most 6° of longitude, otherwise a Lambert
+        azimuthal equal-area projection centred on them. Anything else must be a projected
+        CRS in metres that pyproj accepts (e.g. "EPSG:3035").
+    fields : mapping of str to str, or sequence of str, optional
+        Numeric attributes to check now (present, numeric, finite, >= 0), each mapped to the
+        scenario key that named it (for the messages).
+    layer : str or int, optional
+        Layer of a multi-layer file (GeoPackage).
+
+    Returns
+    -------
+    Landscape
+
+    Raises
+    ------
+    InputError
+        Unreadable or empty file, null / empty / non-polygon geometry, zero-area patch,
+        lon/lat out of range, missing / null / duplicate ids, bad numeric fields, a CRS that
+        is not projected.
+
+    Warns
+    -----
+    TrophoscapeWarning
+        For each invalid geometry repaired with ``shapely.make_valid``.
+
+    Notes
+    -----
+    A GeoJSON file carries WGS 84 lon/lat coordinates (RFC 7946, Butler et al. 2016); a file
+    without any CRS is read as lon/lat too, after checking its coordinates are in range.
+    Areas always come from a Lambert azimuthal equal-area projection centred on the data
+    (Snyder 1987, USGS Professional Paper 1395), whatever the CRS used for distances.
+    """
+    path = Path(path)
+    frame = _read_vector(path, layer=layer)
+    return landscape_from_frame(frame, id_field=id_field, crs=crs, fields=fields, path=path)
+
+
+def landscape_from_frame(gdf, *, id_field=None, crs="auto", fields=None, path=None) -> Landscape:
+    """Validate an in-memory GeoDataFrame of patch polygons; see :func:`read_patches`.
+
+    Parameters
+    ----------
+    gdf : geopandas.GeoDataFrame
+        One row per patch; its order is kept. A frame without a CRS is taken as lon/lat.
+    id_field, crs, fields
+        As in :func:`read_patches`.
+    path : str or path, optional
+        Where the frame came from, for messages.
+
+    Returns
+    -------
+    Landscape
+    """
+    path = None if path is None else Path(path)
+    target = None if _is_auto(crs) else _user_crs(crs)
+    if len(gdf) == 0:
+        raise InputError("the file holds no features; expected at least one polygon patch",
+                         file=path)
+    frame = gdf.reset_index(drop=True)
+    ids = _ids(frame, id_field, path=path, what="patch")
+    refs = ids if id_field is not None else None
+    geoms = shapely.force_2d(frame.geometry.to_numpy())
+    _check_types(geoms, (_POLYGON, _MULTIPOLYGON), "a Polygon or MultiPolygon", path=path,
+                 refs=refs)
+    source, assumed = (frame.crs, False) if frame.crs is not None else (
+        pyproj.CRS.from_epsg(4326), True)
+    if source.is_geographic:
+        _check_lonlat(geoms, path=path, refs=refs, assumed=assumed)
+    wanted = fields.items() if isinstance(fields, Mapping) else ((f, None) for f in fields or ())
+    for name, key in wanted:
+        _attribute_values(frame, name, key=key, path=path, refs=refs)
+
+    invalid = ~shapely.is_valid(geoms)
+    if invalid.any():
+        geoms = geoms.copy()
+        geoms[invalid] = _polygonal_part(shapely.make_valid(geoms[invalid]))
+
+    lon_lo, lon_hi, lat_lo, lat_hi = _lonlat_extent(geoms, source)
+    lon_c, lat_c = _wrap_lon((lon_lo + lon_hi) / 2), (lat_lo + lat_hi) / 2
+    if target is None:
+        target = metric_crs(source, lon_span=lon_hi - lon_lo, lon_c=lon_c, lat_c=lat_c)
+    series = geopandas.GeoSeries(geoms, crs=source)
+    area_km2 = series.to_crs(equal_area_crs(lon_c, lat_c)).area.to_numpy() / 1e6
+    flat = ~(area_km2 > 0)  # also catches a repair that left no polygonal part (NaN/0)
+    if flat.any():
+        i = int(np.flatnonzero(flat)[0])
+        raise InputError("polygon has zero area; expected a patch polygon with positive area",
+                         file=path, feature=_ref(refs, i), field="geometry")
+    for i in np.flatnonzero(invalid):
+        where = f"{path}: " if path is not None else ""
+        warnings.warn(f"{where}{_feature_text(_ref(refs, i))}: geometry was invalid and has "
+                      "been repaired", TrophoscapeWarning, stacklevel=3)
+
+    attributes = frame.drop(columns=[frame.geometry.name, "patch_id", "area_km2"],
+                            errors="ignore")
+    out = pd.concat([pd.DataFrame({"patch_id": ids, "area_km2": area_km2}), attributes], axis=1)
+    out = geopandas.GeoDataFrame(out, geometry=series.to_crs(target).values, crs=target)
+    return Landscape(frame=out, path=path, repaired=tuple(ids[invalid].tolist()),
+                     id_field=id_field)
+
+
+def metric_crs(source, *, lon_span: float, lon_c: float, lat_c: float) -> pyproj.CRS:
+    """The "auto" metric CRS: keep a projected metric source, else UTM or equal-area.
+
+    Parameters
+    ----------
+    source : pyproj.CRS
+        CRS of the data.
+    lon_span, lon_c, lat_c : float
+        Longitude span of the data and its centre (degrees).
+
+    Returns
+    -------
+    pyproj.CRS
+        ``source`` if it is projected in metres; else the WGS 84 UTM zone of the centre
+        (north or south by the centre's latitude) when ``lon_span <= 6``; else a Lambert
+        azimuthal equal-area projection centred on the data.
+    """
+    if source.is_projected and _in_metres(source):
+        return source
+    if lon_span <= 6.0:
+        zone = int((lon_c + 180.0) // 6.0) % 60 + 1
+        return pyproj.CRS.from_epsg((32600 if lat_c >= 0 else 32700) + zone)
+    return equal_area_crs(lon_c, lat_c)
+
+
+def equal_area_crs(lon_c: float, lat_c: float) -> pyproj.CRS:
+    """Lambert azimuthal equal-area projection on WGS 84 centred at (lon_c, lat_c), metres."""
+    return pyproj.CRS.from_proj4(
+        f"+proj=laea +lat_0={lat_c:.6f} +lon_0={lon_c:.6f} +x_0=0 +y_0=0 +datum=WGS84 "
+        "+units=m +no_defs")
+
+
+def read_corridors(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
+    """Read and validate a file of corridor lines, reprojected into ``crs``.
+
+    Parameters
+    ----------
+    path : str or path
+        GeoJSON / GeoPackage / Shapefile of LineString or MultiLineString features, with an
+        optional ``corridor_id`` attribute (unique ids) and an optional ``survival``
+        attribute (share of dispersers surviving the whole corridor, 0 to 1; empty means
+        "from survival_per_km").
+    crs : pyproj.CRS
+        The landscape's metric CRS.
+    layer : str or int, optional
+        Layer of a multi-layer file.
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        RangeIndex in the file's order; the file's attributes (``corridor_id`` as str,
+        ``survival`` as float with NaN for empty); geometry LineStrings in ``crs``
+        (a MultiLineString is merged into one line).
+
+    Raises
+    ------
+    InputError
+        Unreadable or empty file, null / non-line geometry, parts that do not join into one
+        line, zero length, null / duplicate ids, bad survival values.
+    """
+    path = Path(path)
+    frame = _read_vector(path, layer=layer)
+    if len(frame) == 0:
+        raise InputError("the file holds no features; expected LineString corridors",
+                         file=path)
+    has_ids = "corridor_id" in frame.columns
+    ids = _ids(frame, "corridor_id" if has_ids else None, path=path, what="corridor")
+    refs = ids if has_ids else None
+    geoms = shapely.force_2d(frame.geometry.to_numpy())
+    _check_types(geoms, (_LINESTRING, _MULTILINESTRING), "a LineString or MultiLineString",
+                 path=path, refs=refs)
+    source, assumed = (frame.crs, False) if frame.crs is not None else (
+        pyproj.CRS.from_epsg(4326), True)
+    if source.is_geographic:
+        _check_lonlat(geoms, path=path, refs=refs, assumed=assumed)
+    multi = shapely.get_type_id(geoms) == _MULTILINESTRING
+    if multi.any():
+        geoms = geoms.copy()
+        geoms[multi] = shapely.line_merge(geoms[multi])
+        broken = shapely.get_type_id(geoms) != _LINESTRING
+        if broken.any():
+            i = int(np.flatnonzero(broken)[0])
+            raise InputError("the parts of this MultiLineString do not join into one line; "
+                             "expected one continuous line from patch to patch",
+                             file=path, feature=_ref(refs, i), field="geometry")
+    lines = geopandas.GeoSeries(geoms, crs=source).to_crs(crs)
+    short = ~(lines.length.to_numpy() > 0)
+    if short.any():
+        i = int(np.flatnonzero(short)[0])
+        raise InputError("line has zero length; expected a line joining two patches",
+                         file=path, feature=_ref(refs, i), field="geometry")
+    out = frame.drop(columns=[frame.geometry.name])
+    if has_ids:
+        out["corridor_id"] = ids
+    if "survival" in out.columns:
+        out["survival"] = _numbers(out["survival"], path=path, refs=refs, field="survival",
+                                   lo=0.0, hi=1.0, allow_missing=True)
+    return geopandas.GeoDataFrame(out, geometry=lines.values, crs=crs)
+
+
+def read_links_table(path) -> pd.DataFrame:
+    """Read and check a links table (CSV) without looking at patch ids.
+
+    Parameters
+    ----------
+    path : str or path
+        CSV with a header row: ``source``, ``target``, ``weight`` and optionally
+        ``survival`` (0 to 1; empty means "from survival_per_km") and ``directed``
+        (true/false, 1/0, yes/no; empty means false).
+
+    Returns
+    -------
+    pandas.DataFrame
+        RangeIndex = 0-based data row (the "feature" in messages); columns ``source``,
+        ``target`` (str), ``weight``, ``survival`` (float, NaN for empty), ``directed`` (bool).
+
+    Raises
+    ------
+    InputError
+        Missing or unreadable file, missing or unknown columns, empty ids, weights that are
+        not finite numbers > 0, survival outside [0, 1], directed values not boolean-like.
+    """
+    path = Path(path)
+    expected = "columns source,target,weight[,survival][,directed]"
+    if not path.is_file():
+        raise InputError(f"no such file; expected a CSV table with {expected}", file=path)
+    try:
+        table = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True)
+    except pd.errors.EmptyDataError:
+        raise InputError(f"the file is empty; expected a header row with {expected}",
+                         file=path) from None
+    except (pd.errors.ParserError, UnicodeDecodeError, OSError) as exc:
+        raise InputError(f"cannot be read as CSV ({_first_line(exc)}); expected {expected}",
+                         file=path) from exc
+    table.columns = [str(c).strip() for c in table.columns]
+    known = _LINKS_REQUIRED + _LINKS_OPTIONAL
+    for column in table.columns:
+        if column not in known:
+            close = difflib.get_close_matches(column, known, n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            raise InputError(f"unknown column{hint}; expected {expected}", file=path,
+                             field=column)
+    for column in _LINKS_REQUIRED:
+        if column not in table.columns:
+            raise InputError(f"the table has no {column!r} column; expected {expected}",
+                             file=path, field=column)
+    table = table.apply(lambda col: col.str.strip())
+    for column in ("source", "target"):
+        empty = (table[column] == "").to_numpy()
+        if empty.any():
+            raise InputError("patch id is missing; expected the id of a patch", file=path,
+                             feature=int(np.flatnonzero(empty)[0]), field=column)
+    out = pd.DataFrame({"source": table["source"].astype(str),
+                        "target": table["target"].astype(str)})
+    blank = table == ""
+    out["weight"] = _numbers(table["weight"].mask(blank["weight"]), path=path, refs=None,
+                             field="weight", lo=0.0, lo_open=True)
+    out["survival"] = (
+        _numbers(table["survival"].mask(blank["survival"]), path=path, refs=None,
+                 field="survival", lo=0.0, hi=1.0, allow_missing=True)
+        if "survival" in table.columns else np.full(len(table), np.nan))
+    if "directed" in table.columns:
+        text = table["directed"].str.lower()
+        bad = ~text.isin(_TRUE | _FALSE).to_numpy()
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise InputError(f"value {table['directed'].iloc[i]!r} is not true/false; expected "
+                             "true, false, 1, 0, yes, no or empty (false)", file=path,
+                             feature=i, field="directed")
+        out["directed"] = text.isin(_TRUE).to_numpy()
+    else:
+        out["directed"] = False
+    return out
+
+
+# ---------------------------------------------------------------- helpers
+
+
+def _read_vector(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
+    if not path.exists():
+        raise InputError(f"no such file; expected {_VECTOR_FORMATS}", file=path)
+    try:
+        return geopandas.read_file(path, engine="pyogrio", layer=layer)
+    except Exception as exc:  # pyogrio/GDAL raise several unrelated types for unreadable data
+        if path.suffix.lower() in (".geojson", ".json"):
+            try:
+                json.loads(path.read_text(encoding="utf-8"))
+            except json.JSONDecodeError as bad:
+                raise InputError(f"not valid JSON ({bad.msg} at line {bad.lineno}, column "
+                                 f"{bad.colno}); expected a GeoJSON FeatureCollection",
+                                 file=path) from exc
+            except (OSError, UnicodeDecodeError):
+                pass
+        raise InputError(f"cannot be read as {_VECTOR_FORMATS}: {_first_line(exc)}",
+                         file=path) from exc
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def _is_auto(crs) -> bool:
+    return crs is None or (isinstance(crs, str) and crs.strip().lower() == "auto")
+
+
+def _user_crs(crs) -> pyproj.CRS:
+    key = "[patches].crs"
+    try:
+        parsed = pyproj.CRS.from_user_input(crs)
+    except pyproj.exceptions.CRSError:
+        raise InputError(f"{crs!r} is not a CRS pyproj understands; expected 'auto' or a "
+                         "projected CRS in metres such as 'EPSG:3035'", field=key) from None
+    if not parsed.is_projected:
+        kind = "a geographic (degrees)" if parsed.is_geographic else "not a projected"
+        raise InputError(f"{crs!r} is {kind} CRS; distances and areas need a projected CRS "
+                         "in metres such as a UTM zone 'EPSG:326NN', or 'auto'", field=key)
+    if not _in_metres(parsed):
+        raise InputError(f"{crs!r} is not in metres; expected a projected CRS in metres such "
+                         "as 'EPSG:3035', or 'auto'", field=key)
+    return parsed
+
+
+def _in_metres(crs: pyproj.CRS) -> bool:
+    return all(axis.unit_conversion_factor == 1.0 for axis in crs.axis_info[:2])
+
+
+def _ids(frame, id_field, *, path, what: str) -> np.ndarray:
+    """Ids as str in feature order; checks presence, nulls and uniqueness."""
+    n = len(frame)
+    if id_field is None:
+        return np.arange(n).astype(str)
+    if id_field not in frame.columns or id_field == frame.geometry.name:
+        have = ", ".join(repr(c) for c in frame.columns if c != frame.geometry.name)
+        raise InputError(f"no such attribute for {what} ids; the file has: {have or 'none'}",
+                         file=path, field=id_field)
+    column = frame[id_field]
+    missing = column.isna().to_numpy()
+    if pd.api.types.is_float_dtype(column) and not missing.any():
+        values = column.to_numpy()
+        # integer ids read as float (GDAL does this when a column has gaps): "7", not "7.0"
+        if np.all(values == np.round(values)):
+            column = pd.Series(values.astype(np.int64))
+    ids = column.astype(str).str.strip().to_numpy(dtype=object)
+    missing = missing | (ids == "")
+    if missing.any():
+        raise InputError(f"{what} id is empty; every {what} needs an id", file=path,
+                         feature=int(np.flatnonzero(missing)[0]), field=id_field)
+    ids = ids.astype(str)
+    dup = pd.Series(ids).duplicated().to_numpy()
+    if dup.any():
+        j = int(np.flatnonzero(dup)[0])
+        i = int(np.flatnonzero(ids == ids[j])[0])
+        raise InputError(f"id is not unique: features {i} and {j} both have it; each {what} "
+                         "needs its own id", file=path, feature=str(ids[j]), field=id_field)
+    return ids
+
+
+def _ref(refs, i: int) -> str | int:
+    return str(refs[i]) if refs is not None else int(i)
+
+
+def _feature_text(ref) -> str:
+    return f"feature {ref!r}" if isinstance(ref, str) else f"feature {ref}"
+
+
+def _check_types(geoms: np.ndarray, allowed: tuple[int, ...], expected: str, *, path, refs):
+    missing = shapely.is_missing(geoms)
+    empty = ~missing & shapely.is_empty(geoms)
+    wrong = ~missing & ~empty & ~np.isin(shapely.get_type_id(geoms), allowed)
+    bad = missing | empty | wrong
+    if not bad.any():
+        return
+    i = int(np.flatnonzero(bad)[0])
+    if missing[i]:
+        problem = "geometry is null"
+    elif empty[i]:
+        problem = "geometry is empty"
+    else:
+        problem = f"geometry type is {geoms[i].geom_type}"
+    raise InputError(f"{problem}; expected {expected}", file=path, feature=_ref(refs, i),
+                     field="geometry")
+
+
+def _check_lonlat(geoms: np.ndarray, *, path, refs, assumed: bool):
+    bounds = shapely.bounds(geoms)
+    bad = ((bounds[:, 0] < -180) | (bounds[:, 2] > 180) | (bounds[:, 1] < -90)
+           | (bounds[:, 3] > 90) | ~np.isfinite(bounds).all(axis=1))
+    if not bad.any():
+        return
+    i = int(np.flatnonzero(bad)[0])
+    x0, y0, x1, y1 = bounds[i]
+    if assumed:
+        why = "the file has no CRS, so WGS 84 lon/lat was assumed; store the file with its CRS"
+    elif path is not None and path.suffix.lower() in (".geojson", ".json"):
+        why = "GeoJSON coordinates are WGS 84 lon/lat (RFC 7946); reproject the file to EPSG:4326"
+    else:
+        why = "the file's CRS is in degrees"
+    raise InputError(f"coordinates span x {x0:.6g} to {x1:.6g}, y {y0:.6g} to {y1:.6g}, outside "
+                     f"longitude -180..180 / latitude -90..90; {why}", file=path,
+                     feature=_ref(refs, i), field="geometry")
+
+
+def _lonlat_extent(geoms: np.ndarray, source: pyproj.CRS) -> tuple[float, float, float, float]:
+    """(lon_min, lon_max, lat_min, lat_max) of the data; lon_max passes 180 across the dateline."""
+    if source.is_geographic:
+        # degrees of any geographic datum are within ~0.01° of WGS 84: enough to pick a centre
+        b = shapely.bounds(geoms)
+        lo, hi = np.nanmin(b[:, 0]), np.nanmax(b[:, 2])
+        shift = np.where(b[:, 2] < 0, 360.0, 0.0)
+        lo2, hi2 = np.nanmin(b[:, 0] + shift), np.nanmax(b[:, 2] + shift)
+        if hi2 - lo2 < hi - lo:  # the patches straddle the antimeridian
+            lo, hi = lo2, hi2
+        return float(lo), float(hi), float(np.nanmin(b[:, 1])), float(np.nanmax(b[:, 3]))
+    to_lonlat = pyproj.Transformer.from_crs(source, 4326, always_xy=True)
+    lo, lat_lo, hi, lat_hi = to_lonlat.transform_bounds(*shapely.total_bounds(geoms),
+                                                        densify_pts=21)
+    if hi < lo:
+        hi += 360.0
+    return float(lo), float(hi), float(lat_lo), float(lat_hi)
+
+
+def _wrap_lon(lon: float) -> float:
+    return (lon + 180.0) % 360.0 - 180.0
+
+
+def _polygonal_part(geoms: np.ndarray) -> np.ndarray:
+    """Keep only the polygons of each geometry (make_valid may add lines or points)."""
+    out = geoms.copy()
+    mixed = ~np.isin(shapely.get_type_id(geoms), (_POLYGON, _MULTIPOLYGON))
+    if mixed.any():
+        parts, owner = shapely.get_parts(geoms[mixed], return_index=True)
+        # a collection may hold a MultiPolygon: flatten once more
+        parts, sub = shapely.get_parts(parts, return_index=True)
+        owner = owner[sub]
+        keep = shapely.get_type_id(parts) == _POLYGON
+        # a geometry left with no polygon stays None and fails the zero-area check
+        merged = np.full(int(mixed.sum()), None, dtype=object)
+        if keep.any():
+            shapely.multipolygons(parts[keep], indices=owner[keep], out=merged)
+        out[mixed] = merged
+    return out
+
+
+def _attribute_values(frame, field: str, *, key, path, refs) -> np.ndarray:
+    named = f" (named by {key})" if key else ""
+    if field not in frame.columns or field == frame.geometry.name:
+        have = ", ".join(repr(c) for c in frame.columns
+                         if c not in (frame.geometry.name, "patch_id", "area_km2"))
+        raise InputError(f"no such attribute{named}; the file has: {have or 'none'}",
+                         file=path, field=field)
+    return _numbers(frame[field], path=path, refs=refs, field=field, lo=0.0, named=named)
+
+
+def _numbers(column: pd.Series, *, path, refs, field: str, lo: float, hi: float | None = None,
+             lo_open: bool = False, allow_missing: bool = False, named: str = "") -> np.ndarray:
+    """A column as float64, shape (n,); the first bad value raises, naming its feature."""
+    rule = f"a finite number {'>' if lo_open else '>='} {lo:g}"
+    if hi is not None:
+        rule = f"a number from {lo:g} to {hi:g}"
+
+    def fail(i, problem):
+        raise InputError(f"{problem}; expected {rule}{named}", file=path, feature=_ref(refs, i),
+                         field=field)
+
+    column = column.reset_index(drop=True)
+    if pd.api.types.is_bool_dtype(column):
+        fail(0, f"value {column.iloc[0]!r} is true/false")
+    absent = column.isna().to_numpy()
+    numeric = pd.to_numeric(column, errors="coerce")
+    text = np.flatnonzero(numeric.isna().to_numpy() & ~absent)
+    if text.size:
+        fail(int(text[0]), f"value {column.iloc[int(text[0])]!r} is not a number")
+    if absent.any() and not allow_missing:
+        fail(int(np.flatnonzero(absent)[0]), "value is missing")
+    values = numeric.to_numpy(dtype=np.float64, na_value=np.nan)
+    present = ~absent
+    bad = present & ~np.isfinite(values)
+    bad |= present & ((values <= lo) if lo_open else (values < lo))
+    if hi is not None:
+        bad |= present & (values > hi)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        fail(i, f"value {float(values[i])!r} is out of range")
+    return values
+
+
+def _readonly(array: np.ndarray) -> np.ndarray:
+    array.flags.writeable = False
+    return array

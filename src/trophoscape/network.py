@@ -1,0 +1,578 @@
+"""Links between patches, dispersal kernels and the per-species movement operators.
+
+A :class:`Network` holds directed arcs between patches in the fixed patch order of the
+landscape: kernel links between every pair of patches within ``max_distance_km`` (found through
+a spatial index), corridors (lines joining two patches) and rows of a links table. An
+undirected link is stored as two arcs. :func:`movement_operator` turns the arcs into the
+sparse matrix ``M`` of ``dx/dt = M x`` for one species.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import geopandas
+import networkx as nx
+import numpy as np
+import pandas as pd
+import scipy.sparse
+import shapely
+from scipy.sparse.csgraph import connected_components
+from scipy.spatial import cKDTree
+
+from .errors import InputError
+from .landscape import Landscape, read_corridors, read_links_table
+
+__all__ = [
+    "Network",
+    "KERNELS",
+    "kernel_weight",
+    "build_network",
+    "arc_weights",
+    "movement_operator",
+]
+
+
+def _exponential(d, scale):
+    return np.exp(-d / scale)
+
+
+def _gaussian(d, scale):
+    return np.exp(-(d * d) / (2.0 * scale * scale))
+
+
+def _step(d, scale):
+    return np.ones(np.broadcast(d, scale).shape)
+
+
+#: Dispersal kernels: name -> f(distance_km, scale_km), both broadcast as arrays.
+KERNELS = {"exponential": _exponential, "gaussian": _gaussian, "step": _step}
+_KERNEL_NAMES = (*KERNELS, "none")
+_DISTANCES = ("boundary", "centroid")
+_ORIGINS = ("corridor", "kernel", "table")  # sorted: _edge_table codes by searchsorted
+_CODE = {name: k for k, name in enumerate(_ORIGINS)}
+
+
+def kernel_weight(kernel: str, distance_km, scale_km) -> np.ndarray:
+    """Weight of a link of length ``distance_km`` under a dispersal kernel.
+
+    Parameters
+    ----------
+    kernel : {"exponential", "gaussian", "step"}
+    distance_km : array_like, shape (m,)
+    scale_km : float or array_like, shape (m,)
+        Kernel scale L > 0.
+
+    Returns
+    -------
+    ndarray of float64, shape (m,)
+        ``exp(-d/L)``, ``exp(-d²/(2L²))`` or 1.
+
+    Examples
+    --------
+    >>> kernel_weight("exponential", [0.0, 2.0], 2.0).round(4).tolist()
+    [1.0, 0.3679]
+    """
+    if kernel not in KERNELS:
+        raise InputError(f"unknown kernel {kernel!r}; expected one of "
+                         f"{', '.join(map(repr, KERNELS))}", field="[dispersal].kernel")
+    d = np.asarray(distance_km, dtype=np.float64)
+    return KERNELS[kernel](d, np.asarray(scale_km, dtype=np.float64))
+
+
+@dataclass(frozen=True, eq=False)
+class Network:
+    """Directed arcs between patches, in the fixed patch order.
+
+    Attributes
+    ----------
+    ids : ndarray of str, shape (n_patches,)
+    source, target : ndarray of int64, shape (n_arcs,)
+        Arc i -> j as patch positions; an undirected link is two arcs. Sorted by
+        (source, target); parallel arcs (say a kernel link and a corridor) are two routes.
+    distance_km : ndarray of float64, shape (n_arcs,)
+        Boundary or centroid distance; a corridor's length for a corridor.
+    weight : ndarray of float64, shape (n_arcs,)
+        Fixed weight; NaN means "the species' kernel of ``distance_km``".
+    survival : ndarray of float64, shape (n_arcs,)
+        Fixed share surviving the trip; NaN means ``survival_per_km ** distance_km``.
+    origin : ndarray of str, shape (n_arcs,)
+        "kernel", "corridor" or "table".
+    kernel : str
+        "exponential", "gaussian", "step" or "none".
+    max_distance_km : float
+    """
+
+    ids: np.ndarray
+    source: np.ndarray
+    target: np.ndarray
+    distance_km: np.ndarray
+    weight: np.ndarray
+    survival: np.ndarray
+    origin: np.ndarray
+    kernel: str
+    max_distance_km: float
+
+    def __post_init__(self):
+        arrays = {
+            "ids": np.asarray(self.ids, dtype=str),
+            "source": np.asarray(self.source, dtype=np.int64),
+            "target": np.asarray(self.target, dtype=np.int64),
+            "distance_km": np.asarray(self.distance_km, dtype=np.float64),
+            "weight": np.asarray(self.weight, dtype=np.float64),
+            "survival": np.asarray(self.survival, dtype=np.float64),
+            "origin": np.asarray(self.origin, dtype=str),
+        }
+        m = arrays["source"].shape
+        for name in ("target", "distance_km", "weight", "survival", "origin"):
+            if arrays[name].shape != m:
+                raise ValueError(f"Network.{name} has shape {arrays[name].shape}, expected {m}")
+        n = arrays["ids"].size
+        if m[0] and (min(arrays["source"].min(), arrays["target"].min()) < 0
+                     or max(arrays["source"].max(), arrays["target"].max()) >= n):
+            raise ValueError(f"Network arcs must join patch positions 0..{n - 1}")
+        if self.kernel not in _KERNEL_NAMES:
+            raise ValueError(f"Network.kernel must be one of {_KERNEL_NAMES}, got {self.kernel!r}")
+        for name, array in arrays.items():
+            array.flags.writeable = False
+            object.__setattr__(self, name, array)
+
+    @property
+    def n_patches(self) -> int:
+        return int(self.ids.size)
+
+    @property
+    def n_arcs(self) -> int:
+        return int(self.source.size)
+
+    @property
+    def n_links(self) -> int:
+        """Number of distinct unordered pairs of patches that are linked."""
+        return int(self._pairs()[0].size)
+
+    def _pairs(self) -> tuple[np.ndarray, np.ndarray]:
+        """Distinct unordered linked pairs (lo, hi), each shape (n_links,), sorted."""
+        n = max(self.n_patches, 1)
+        key = np.unique(np.minimum(self.source, self.target) * n
+                        + np.maximum(self.source, self.target))
+        return key // n, key % n
+
+    def links_per_patch(self) -> np.ndarray:
+        """Number of distinct patches linked to each patch (either direction).
+
+        Returns
+        -------
+        ndarray of int64, shape (n_patches,)
+        """
+        lo, hi = self._pairs()
+        n = self.n_patches
+        return np.bincount(lo, minlength=n) + np.bincount(hi, minlength=n)
+
+    def is_symmetric(self) -> bool:
+        """True when every arc i -> j has an arc j -> i (no one-way table rows)."""
+        n = max(self.n_patches, 1)
+        return np.array_equal(np.unique(self.source * n + self.target),
+                              np.unique(self.target * n + self.source))
+
+    def summary(self) -> dict:
+        """Network-level figures.
+
+        Returns
+        -------
+        dict
+            ``patches``, ``links`` (distinct linked pairs), ``components`` (weakly connected)
+            and ``isolated`` (ids of patches without any link).
+        """
+        n = self.n_patches
+        graph = scipy.sparse.coo_array((np.ones(self.n_arcs), (self.source, self.target)),
+                                       shape=(n, n)).tocsr()
+        components = connected_components(graph, directed=True, connection="weak")[0] if n else 0
+        return {
+            "patches": n,
+            "links": self.n_links,
+            "components": int(components),
+            "isolated": [str(i) for i in self.ids[self.links_per_patch() == 0]],
+        }
+
+    def _edge_table(self, directed: bool) -> pd.DataFrame:
+        """One row per linked pair (ordered if ``directed``): a, b, distance_km, origin.
+
+        Parallel routes are merged: the shortest distance, and the origins joined by "+".
+        """
+        if directed:
+            a, b = self.source, self.target
+        else:
+            a, b = np.minimum(self.source, self.target), np.maximum(self.source, self.target)
+        key = a * max(self.n_patches, 1) + b
+        order = np.argsort(key, kind="stable")
+        key = key[order]
+        start = np.flatnonzero(np.r_[True, key[1:] != key[:-1]]) if key.size else key
+        code = np.searchsorted(_ORIGINS, self.origin[order])  # _ORIGINS is sorted
+        # one bit per origin, OR-ed over a pair's routes, then named by a lookup table
+        mask = np.bitwise_or.reduceat(1 << code, start) if key.size else code
+        names = np.array(["+".join(o for k, o in enumerate(_ORIGINS) if m >> k & 1)
+                          for m in range(1 << len(_ORIGINS))])
+        return pd.DataFrame({
+            "a": a[order][start], "b": b[order][start],
+            "distance_km": (np.minimum.reduceat(self.distance_km[order], start)
+                            if key.size else np.empty(0)),
+            "origin": names[mask],
+        })
+
+    def to_networkx(self) -> nx.Graph:
+        """The network as a networkx graph.
+
+        Returns
+        -------
+        networkx.Graph or networkx.DiGraph
+            Nodes are the ids in patch order with attribute ``index``; edges carry
+            ``distance_km`` (shortest route) and ``origin`` ("kernel", "corridor", "table",
+            joined by "+" for parallel routes). A DiGraph when some arc has no reverse
+            (a one-way links-table row), else a Graph.
+        """
+        directed = not self.is_symmetric()
+        graph = nx.DiGraph() if directed else nx.Graph()
+        edges = self._edge_table(directed)
+        names = self.ids.tolist()
+        graph.add_nodes_from((name, {"index": i}) for i, name in enumerate(names))
+        graph.add_edges_from(
+            (names[a], names[b], {"distance_km": d, "origin": o})
+            for a, b, d, o in zip(edges["a"].tolist(), edges["b"].tolist(),
+                                  edges["distance_km"].tolist(), edges["origin"].tolist())
+        )
+        return graph
+
+    def links_frame(self, landscape: Landscape) -> geopandas.GeoDataFrame:
+        """One line per distinct linked pair, for maps and GIS layers.
+
+        Parameters
+        ----------
+        landscape : Landscape
+            The landscape the network was built from.
+
+        Returns
+        -------
+        geopandas.GeoDataFrame
+            Columns ``source``, ``target`` (ids; source is the earlier patch), ``distance_km``
+            (shortest route), ``origin``; geometry a LineString between representative points
+            (``shapely.point_on_surface``) of the two patches, in the landscape's CRS.
+        """
+        if not np.array_equal(landscape.ids, self.ids):
+            raise ValueError("links_frame needs the landscape the network was built from "
+                             "(its patch ids differ)")
+        edges = self._edge_table(directed=False)
+        a, b = edges["a"].to_numpy(), edges["b"].to_numpy()
+        points = shapely.get_coordinates(shapely.point_on_surface(landscape.geometries))
+        lines = shapely.linestrings(np.stack([points[a], points[b]], axis=1).reshape(-1, 2, 2))
+        return geopandas.GeoDataFrame(
+            {"source": self.ids[a], "target": self.ids[b],
+             "distance_km": edges["distance_km"].to_numpy(), "origin": edges["origin"].to_numpy()},
+            geometry=lines, crs=landscape.crs)
+
+
+def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km=15.0,
+                  distance="boundary", corridors=None, links_table=None, corridor_snap_km=0.1,
+                  base_dir=None) -> Network:
+    """Links between the patches of a landscape.
+
+    Parameters
+    ----------
+    landscape : Landscape
+    kernel : {"exponential", "gaussian", "step", "none"}
+        Kernel links join every pair of patches within ``max_distance_km``; "none" makes none
+        (the corridors and the links table alone then define the network).
+    max_distance_km : float
+        No kernel link beyond this distance (inclusive).
+    distance : {"boundary", "centroid"}
+        Edge-to-edge distance (0 for touching patches) or distance between centroids; used
+        for kernel links and links-table rows.
+    corridors : str or path, optional
+        Lines joining two patches; see :func:`trophoscape.landscape.read_corridors`. Each end
+        must lie within ``corridor_snap_km`` of a patch, the two ends at different patches.
+        A corridor links both ways; its distance is its length; its weight is the kernel of
+        its length (1 when ``kernel="none"``); its survival the ``survival`` attribute or,
+        where empty, ``survival_per_km`` to the power of its length.
+    links_table : str or path, optional
+        CSV of ``source,target,weight[,survival][,directed]``; see
+        :func:`trophoscape.landscape.read_links_table`. Ids must be patch ids.
+    corridor_snap_km : float
+        How far a corridor end may be from its patch.
+    base_dir : str or path, optional
+        Folder that relative ``corridors`` / ``links_table`` paths are read from.
+
+    Returns
+    -------
+    Network
+
+    Raises
+    ------
+    InputError
+        Bad options, or a problem in the corridors file or the links table.
+
+    Notes
+    -----
+    Pairs come from a spatial index: ``shapely.STRtree`` with the ``dwithin`` predicate for
+    boundary distances, ``scipy.spatial.cKDTree.query_pairs`` for centroids, so the cost is
+    O(n log n + links), not O(n²).
+    """
+    if kernel not in _KERNEL_NAMES:
+        raise InputError(f"unknown kernel {kernel!r}; expected one of "
+                         f"{', '.join(map(repr, _KERNEL_NAMES))}", field="[dispersal].kernel")
+    if distance not in _DISTANCES:
+        raise InputError(f"unknown distance {distance!r}; expected 'boundary' or 'centroid'",
+                         field="[dispersal].distance")
+    max_distance_km = _nonnegative(max_distance_km, "[dispersal].max_distance_km")
+    corridor_snap_km = _nonnegative(corridor_snap_km, "[dispersal].corridor_snap_km")
+
+    parts = []
+    if kernel != "none":
+        i, j, d = _kernel_pairs(landscape, max_distance_km * 1000.0, distance)
+        nan = np.full(2 * i.size, np.nan)
+        parts.append((np.concatenate([i, j]), np.concatenate([j, i]), np.concatenate([d, d]),
+                      nan, nan, _CODE["kernel"]))
+    if corridors is not None:
+        parts.append(_corridor_arcs(landscape, _resolve(corridors, base_dir), kernel,
+                                    corridor_snap_km * 1000.0))
+    if links_table is not None:
+        parts.append(_table_arcs(landscape, _resolve(links_table, base_dir), distance))
+
+    if parts:
+        source, target, dist, weight, survival, origin = (
+            np.concatenate([np.broadcast_to(p[k], p[0].shape) for p in parts])
+            for k in range(6))
+    else:
+        source = target = np.empty(0, dtype=np.int64)
+        dist = weight = survival = np.empty(0)
+        origin = np.empty(0, dtype=np.int64)
+    order = np.lexsort((dist, origin, target, source))
+    return Network(
+        ids=landscape.ids, source=source[order], target=target[order],
+        distance_km=dist[order], weight=weight[order], survival=survival[order],
+        origin=np.asarray(_ORIGINS)[origin[order]], kernel=kernel,
+        max_distance_km=max_distance_km,
+    )
+
+
+def arc_weights(network: Network, *, scale_km) -> np.ndarray:
+    """Weight of every arc for one species: the fixed weight, else its kernel.
+
+    Parameters
+    ----------
+    network : Network
+    scale_km : float or array_like, shape (n_patches,)
+        Kernel scale L > 0, per source patch.
+
+    Returns
+    -------
+    ndarray of float64, shape (n_arcs,)
+    """
+    weight = network.weight
+    free = np.isnan(weight)
+    if not free.any():
+        return weight.copy()
+    if network.kernel == "none":
+        raise ValueError("an arc without a fixed weight in a network with kernel 'none'")
+    scale = _per_patch(scale_km, network.n_patches, "kernel_scale_km", positive=True)
+    out = weight.copy()
+    out[free] = kernel_weight(network.kernel, network.distance_km[free],
+                              scale[network.source[free]])
+    return out
+
+
+def movement_operator(network: Network, *, emigration_rate, scale_km,
+                      survival_per_km) -> scipy.sparse.csr_array:
+    """Sparse movement operator ``M`` of one species, with ``dx/dt = M x``.
+
+    Parameters
+    ----------
+    network : Network
+    emigration_rate : float or array_like, shape (n_patches,)
+        Per-capita emigration rate ε >= 0 of each (source) patch, per time unit.
+    scale_km : float or array_like, shape (n_patches,)
+        Kernel scale L > 0 of each source patch (ignored for fixed weights).
+    survival_per_km : float
+        Share of dispersers surviving each km, in [0, 1] (for arcs without fixed survival).
+
+    Returns
+    -------
+    scipy.sparse.csr_array, shape (n_patches, n_patches)
+
+    Notes
+    -----
+    For each arc i -> j with weight w_ij and survival σ_ij::
+
+        M[j, i] += ε_i · σ_ij · w_ij / Σ_k w_ik
+        M[i, i] -= ε_i            if Σ_k w_ik > 0
+
+    (the rule of the scenario contract, "Dispersal, exactly"). A patch with no arc of
+    positive weight sends nobody. With every σ = 1 each column sums to zero, so the total is
+    conserved; parallel arcs are separate routes and their entries add up.
+
+    Examples
+    --------
+    >>> from trophoscape.testing import chain_landscape
+    >>> net = build_network(chain_landscape(2, spacing_km=2.0, size_km=1.0), kernel="step")
+    >>> movement_operator(net, emigration_rate=0.5, scale_km=1.0,
+    ...                   survival_per_km=1.0).toarray().tolist()
+    [[-0.5, 0.5], [0.5, -0.5]]
+    """
+    n = network.n_patches
+    rate = _per_patch(emigration_rate, n, "emigration_rate", positive=False)
+    survival_per_km = float(survival_per_km)
+    if not 0.0 <= survival_per_km <= 1.0:
+        raise InputError(f"must be a number from 0 to 1, got {survival_per_km!r}",
+                         field="survival_per_km")
+    src, dst = network.source, network.target
+    weight = arc_weights(network, scale_km=scale_km)
+    survival = np.where(np.isnan(network.survival), survival_per_km ** network.distance_km,
+                        network.survival)
+    total = np.bincount(src, weights=weight, minlength=n)
+    sends = total > 0
+    share = np.divide(weight, total[src], out=np.zeros_like(weight), where=total[src] > 0)
+    leaving = np.flatnonzero(sends)
+    rows = np.concatenate([dst, leaving])
+    cols = np.concatenate([src, leaving])
+    vals = np.concatenate([rate[src] * share * survival, -rate[leaving]])
+    # coo -> csr sums the duplicates that parallel routes produce
+    return scipy.sparse.coo_array((vals, (rows, cols)), shape=(n, n)).tocsr()
+
+
+# ---------------------------------------------------------------- helpers
+
+
+def _nonnegative(value, key: str) -> float:
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = np.nan
+    if not (np.isfinite(number) and number >= 0):
+        raise InputError(f"must be a finite number >= 0, got {value!r}", field=key)
+    return number
+
+
+def _per_patch(value, n: int, name: str, *, positive: bool) -> np.ndarray:
+    array = np.asarray(value, dtype=np.float64)
+    if array.ndim == 0:
+        array = np.full(n, float(array))
+    if array.shape != (n,):
+        raise ValueError(f"{name} must be a number or an array of shape ({n},), "
+                         f"got shape {array.shape}")
+    bad = ~np.isfinite(array) | ((array <= 0) if positive else (array < 0))
+    if bad.any():
+        rule = "> 0" if positive else ">= 0"
+        raise InputError(f"must be a finite number {rule}, got {float(array[bad][0])!r}",
+                         feature=int(np.flatnonzero(bad)[0]), field=name)
+    return array
+
+
+def _resolve(path, base_dir) -> Path:
+    path = Path(path)
+    return path if base_dir is None or path.is_absolute() else Path(base_dir) / path
+
+
+def _kernel_pairs(landscape: Landscape, max_m: float, distance: str):
+    """Pairs i < j within ``max_m`` metres and their distance in km, each shape (k,)."""
+    if distance == "centroid":
+        tree = cKDTree(landscape.centroids)
+        pairs = tree.query_pairs(r=max_m, output_type="ndarray").astype(np.int64)
+        i, j = pairs[:, 0], pairs[:, 1]
+        d = np.hypot(*(landscape.centroids[i] - landscape.centroids[j]).T)
+    else:
+        geoms = landscape.geometries
+        found = shapely.STRtree(geoms).query(geoms, predicate="dwithin", distance=max_m)
+        i, j = found[0].astype(np.int64), found[1].astype(np.int64)
+        upper = i < j
+        i, j = i[upper], j[upper]
+        d = shapely.distance(geoms[i], geoms[j])
+    keep = d <= max_m  # the index is inclusive; keep the rule exact in floating point
+    return i[keep], j[keep], d[keep] / 1000.0
+
+
+def _pair_distance_km(landscape: Landscape, i, j, distance: str) -> np.ndarray:
+    if distance == "centroid":
+        return np.hypot(*(landscape.centroids[i] - landscape.centroids[j]).T) / 1000.0
+    return shapely.distance(landscape.geometries[i], landscape.geometries[j]) / 1000.0
+
+
+def _corridor_arcs(landscape: Landscape, path: Path, kernel: str, snap_m: float):
+    lines = read_corridors(path, crs=landscape.crs)
+    refs = lines["corridor_id"].to_numpy() if "corridor_id" in lines.columns else None
+    geoms = lines.geometry.to_numpy()
+    k = geoms.size
+    ends = np.concatenate([shapely.get_point(geoms, 0), shapely.get_point(geoms, -1)])
+    tree = shapely.STRtree(landscape.geometries)
+    # the index needs a positive search radius; an end inside a patch is at distance 0
+    (which, patch), gap = tree.query_nearest(ends, max_distance=max(snap_m, 1e-6),
+                                             return_distance=True, all_matches=True)
+    # an end on two overlapping patches: take the first in patch order, deterministically
+    order = np.lexsort((patch, which))
+    which, patch, gap = which[order], patch[order], gap[order]
+    first = np.r_[True, which[1:] != which[:-1]]
+    nearest = np.full(2 * k, -1, dtype=np.int64)
+    nearest[which[first & (gap <= snap_m)]] = patch[first & (gap <= snap_m)]
+    loose = np.flatnonzero(nearest < 0)
+    if loose.size:
+        e = int(loose[0])
+        c = e % k
+        x, y = shapely.get_coordinates(ends[e])[0]
+        raise InputError(
+            f"its {'first' if e < k else 'last'} point ({x:.1f}, {y:.1f}) is not within "
+            f"{snap_m / 1000:g} km of any patch; each end of a corridor must lie on or near a "
+            "patch", file=path, feature=_corridor_ref(refs, c), field="geometry")
+    a, b = nearest[:k], nearest[k:]
+    same = np.flatnonzero(a == b)
+    if same.size:
+        c = int(same[0])
+        raise InputError(
+            f"both ends lie at patch {landscape.feature(int(a[c]))!r}; a corridor must join two "
+            "different patches", file=path, feature=_corridor_ref(refs, c), field="geometry")
+    length_km = shapely.length(geoms) / 1000.0
+    weight = np.full(k, 1.0 if kernel == "none" else np.nan)
+    survival = (lines["survival"].to_numpy(dtype=np.float64) if "survival" in lines.columns
+                else np.full(k, np.nan))
+    return (np.concatenate([a, b]), np.concatenate([b, a]), np.tile(length_km, 2),
+            np.tile(weight, 2), np.tile(survival, 2), _CODE["corridor"])
+
+
+def _corridor_ref(refs, c: int):
+    return str(refs[c]) if refs is not None else int(c)
+
+
+def _table_arcs(landscape: Landscape, path: Path, distance: str):
+    table = read_links_table(path)
+    position = pd.Index(landscape.ids)
+    ends = {}
+    for column in ("source", "target"):
+        found = position.get_indexer(table[column].to_numpy())
+        unknown = np.flatnonzero(found < 0)
+        if unknown.size:
+            r = int(unknown[0])
+            sample = ", ".join(repr(str(i)) for i in landscape.ids[:3])
+            raise InputError(f"no patch has id {table[column].iloc[r]!r}; expected a patch id "
+                             f"of the patch file (e.g. {sample})", file=path, feature=r,
+                             field=column)
+        ends[column] = found.astype(np.int64)
+    s, t = ends["source"], ends["target"]
+    loop = np.flatnonzero(s == t)
+    if loop.size:
+        r = int(loop[0])
+        raise InputError(f"links patch {table['source'].iloc[r]!r} to itself; expected two "
+                         "different patches", file=path, feature=r, field="target")
+    both = ~table["directed"].to_numpy(dtype=bool)
+    rows = np.concatenate([np.arange(len(table)), np.flatnonzero(both)])
+    src = np.concatenate([s, t[both]])
+    dst = np.concatenate([t, s[both]])
+    key = src * landscape.n_patches + dst
+    order = np.argsort(key, kind="stable")
+    repeat = np.flatnonzero(key[order][1:] == key[order][:-1])
+    if repeat.size:
+        p = int(repeat[0])
+        first, again = sorted((int(rows[order[p]]), int(rows[order[p + 1]])))
+        raise InputError(f"links {str(landscape.ids[src[order[p]]])!r} to "
+                         f"{str(landscape.ids[dst[order[p]]])!r} again (also in feature {first}); "
+                         "give each link once", file=path, feature=again, field="target")
+    weight = table["weight"].to_numpy(dtype=np.float64)[rows]
+    survival = table["survival"].to_numpy(dtype=np.float64)[rows]
+    return (src, dst, _pair_distance_km(landscape, src, dst, distance), weight, survival,
+            _CODE["table"])

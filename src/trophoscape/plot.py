@@ -1,0 +1,483 @@
+"""Maps and charts of a run, written as PNG files.
+
+matplotlib is imported inside the functions, so ``import trophoscape`` stays light. Figures are
+drawn on a bare :class:`matplotlib.figure.Figure` with the Agg canvas rather than through
+``pyplot``: that renders without a display and leaves the caller's pyplot backend and open
+figures alone (switching the backend with ``matplotlib.use`` would break a notebook's inline
+plots). Every file is written to a temporary name in the target folder and renamed, so a reader
+never sees half a PNG.
+
+Colours are chosen to stay readable for colour-blind readers: viridis / cividis for sequential
+values, PuOr (centred on zero) for differences, and the Okabe & Ito (2008) palette for classes and
+for the two species.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from trophoscape.errors import InputError
+
+__all__ = ["patch_map", "timeseries_panels", "occupancy_curve"]
+
+DPI = 150
+# Okabe & Ito (2008), "Color Universal Design", colour-blind-safe qualitative palette.
+# Ordered so that the first few classes differ most (sky blue comes after yellow).
+OKABE_ITO = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#F0E442", "#56B4E9", "#D55E00",
+             "#000000"]
+PREY_STYLE = {"color": "#0072B2", "linestyle": "-"}
+PREDATOR_STYLE = {"color": "#D55E00", "linestyle": "--"}
+NO_VALUE_COLOUR = "#c8c8c8"
+LINK_COLOUR = "#9a9a9a"
+MAX_PANELS = 6
+
+
+# --------------------------------------------------------------------------------------------
+# patch map
+
+
+def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap=None,
+              diverging=False, categorical=False, bool_labels=("present", "absent")) -> Path:
+    """Draw one per-patch value as a map and save it as a PNG.
+
+    Parameters
+    ----------
+    patches : geopandas.GeoDataFrame, n_patches rows
+        Patch polygons in a projected CRS with metre units, one row per patch.
+    column : str
+        Column to colour by: numbers (NaN allowed), booleans, or classes (text).
+        Patches without a value are drawn grey and listed as "no value".
+    path : str or path-like
+        PNG file to write; its folder must exist.
+    links : geopandas.GeoDataFrame, optional
+        LineStrings (links or corridors) drawn thin and light under the patches; reprojected to
+        the patches' CRS if it has another one.
+    title : str, optional
+        Figure title; default the column name.
+    label : str, optional
+        Colourbar label for numbers (say the units), legend title for classes.
+    cmap : str, optional
+        A matplotlib colormap name; default "viridis", or "PuOr" when ``diverging``.
+    diverging : bool
+        Numbers around zero (differences): the colour scale is symmetric about 0.
+    categorical : bool
+        Treat the column as classes even if it holds numbers.
+    bool_labels : (str, str)
+        Legend words for True and False.
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+
+    Raises
+    ------
+    InputError
+        If ``column`` is missing or the CRS is not projected in metres.
+    """
+    from matplotlib.colors import CenteredNorm, Normalize
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    path = Path(path)
+    if column not in patches.columns:
+        raise InputError(f"no such column; available: {', '.join(map(str, patches.columns))}",
+                         field=column)
+    _check_metric(patches.crs, "patches")
+    geoms = np.asarray(patches.geometry.values, dtype=object)
+    values = patches[column]
+    missing = values.isna().to_numpy()
+
+    kind = _value_kind(values, categorical)
+    handles = []
+    colourbar = None
+    colours = np.tile(_rgba(NO_VALUE_COLOUR), (len(geoms), 1))
+    if kind == "bool":
+        # Works for bool, nullable "boolean" and object columns of True/False/NaN alike.
+        present = values.astype("boolean").fillna(False).to_numpy(dtype=bool)
+        for flag, word, colour in ((True, bool_labels[0], OKABE_ITO[0]),
+                                   (False, bool_labels[1], OKABE_ITO[1])):
+            chosen = (present == flag) & ~missing
+            colours[chosen] = _rgba(colour)
+            handles.append(Patch(facecolor=colour, edgecolor="0.3", label=word))
+    elif kind == "class":
+        classes = sorted({str(v) for v in values[~missing]})
+        palette = _class_palette(len(classes))
+        lookup = {c: palette[i] for i, c in enumerate(classes)}
+        for i in np.flatnonzero(~missing):
+            colours[i] = lookup[str(values.iloc[i])]
+        handles += [Patch(facecolor=lookup[c], edgecolor="0.3", label=c) for c in classes]
+    else:
+        import matplotlib
+
+        numbers = values.to_numpy(dtype=float)
+        missing = ~np.isfinite(numbers)
+        finite = numbers[~missing]
+        if finite.size:
+            if diverging:
+                half = float(np.abs(finite).max()) or 1.0
+                norm = CenteredNorm(vcenter=0.0, halfrange=half)
+            else:
+                lo, hi = float(finite.min()), float(finite.max())
+                if lo == hi:  # one value: give the scale some width so the colour is mid-range
+                    lo, hi = lo - 0.5 * (abs(lo) or 1.0), hi + 0.5 * (abs(hi) or 1.0)
+                norm = Normalize(lo, hi)
+            colourmap = matplotlib.colormaps[cmap or ("PuOr" if diverging else "viridis")]
+            colours[~missing] = colourmap(norm(finite))
+            colourbar = (colourmap, norm)
+    if missing.any():
+        handles.append(Patch(facecolor=NO_VALUE_COLOUR, edgecolor="0.3", label="no value"))
+
+    fig, ax = _map_figure(geoms)
+    if links is not None and len(links):
+        if links.crs is not None and patches.crs is not None and links.crs != patches.crs:
+            links = links.to_crs(patches.crs)
+        ax.add_collection(_line_collection(np.asarray(links.geometry.values, dtype=object)))
+        handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="link"))
+    ax.add_collection(_polygon_collection(geoms, colours))
+    _frame_map(ax, geoms, patches.crs)
+
+    if colourbar is not None:
+        from matplotlib.cm import ScalarMappable
+
+        bar = fig.colorbar(ScalarMappable(norm=colourbar[1], cmap=colourbar[0]), ax=ax,
+                           shrink=0.8, pad=0.02)
+        bar.set_label(label or column)
+    if handles:
+        # Beside the map when there is no colourbar, else in a row under it; constrained
+        # layout makes room for "outside" figure legends.
+        fig.legend(handles=handles, title=label if kind in ("bool", "class") else None,
+                   loc="outside right upper" if colourbar is None else "outside lower center",
+                   ncol=1 if colourbar is None else min(len(handles), 4),
+                   frameon=False, fontsize=8, title_fontsize=8)
+    ax.set_title(title or column, fontsize=11)
+    return _save(fig, path)
+
+
+def _value_kind(values, categorical):
+    """'bool', 'class' or 'number' for a column that may hold NaN."""
+    from pandas.api import types
+
+    present = values.dropna()
+    if types.is_bool_dtype(values.dtype) or (
+            len(present) and present.map(lambda v: isinstance(v, (bool, np.bool_))).all()):
+        return "bool"
+    if categorical or not types.is_numeric_dtype(values.dtype):
+        return "class"
+    return "number"
+
+
+def _class_palette(n):
+    if n <= len(OKABE_ITO):
+        return [_rgba(c) for c in OKABE_ITO[:n]]
+    import matplotlib
+
+    # More classes than a colour-blind-safe palette holds: fall back on a long one.
+    return [tuple(c) for c in matplotlib.colormaps["tab20"](np.linspace(0, 1, n))]
+
+
+def _rgba(colour):
+    from matplotlib.colors import to_rgba
+
+    return np.asarray(to_rgba(colour))
+
+
+def _check_metric(crs, what):
+    if crs is None or not crs.is_projected:
+        raise InputError(f"{what} must be in a projected CRS in metres (e.g. a UTM zone), "
+                         f"got {crs.to_string() if crs is not None else 'no CRS'}", field="crs")
+    unit = crs.axis_info[0].unit_name if crs.axis_info else ""
+    if unit not in ("metre", "meter"):
+        raise InputError(f"{what} must have metre units, got {unit!r}", field="crs")
+
+
+def _map_figure(geoms):
+    """A figure shaped like the patches' bounding box (width 7.5 in)."""
+    from matplotlib.figure import Figure
+
+    x0, y0, x1, y1 = _bounds(geoms)
+    aspect = (y1 - y0) / max(x1 - x0, 1.0)
+    fig = Figure(figsize=(7.5, float(np.clip(5.2 * aspect + 1.6, 4.0, 9.5))),
+                 layout="constrained")
+    return fig, fig.add_subplot()
+
+
+def _bounds(geoms):
+    import shapely
+
+    return shapely.total_bounds(geoms)
+
+
+def _polygon_collection(geoms, colours):
+    """One compound path per patch in km (holes and parts included)."""
+    import shapely
+    from matplotlib.collections import PathCollection
+    from matplotlib.path import Path as MplPath
+
+    # Orient rings (outer counterclockwise, holes clockwise) so holes stay empty whatever the
+    # fill rule.
+    oriented = shapely.orient_polygons(geoms, exterior_cw=False)
+    paths = []
+    for geom in oriented:  # one Path per patch is what PathCollection takes
+        rings = [] if geom is None or geom.is_empty else [
+            ring for part in getattr(geom, "geoms", [geom])
+            for ring in (part.exterior, *part.interiors)]
+        if not rings:
+            paths.append(MplPath(np.zeros((1, 2))))
+            continue
+        vertices = np.concatenate([np.asarray(r.coords)[:, :2] for r in rings]) / 1e3
+        codes = np.concatenate([_ring_codes(len(r.coords)) for r in rings])
+        paths.append(MplPath(vertices, codes))
+    return PathCollection(paths, facecolors=colours, edgecolors="#404040", linewidths=0.35,
+                          zorder=2)
+
+
+def _ring_codes(n):
+    from matplotlib.path import Path as MplPath
+
+    codes = np.full(n, MplPath.LINETO, dtype=MplPath.code_type)
+    codes[0] = MplPath.MOVETO
+    codes[-1] = MplPath.CLOSEPOLY
+    return codes
+
+
+def _line_collection(geoms):
+    import shapely
+    from matplotlib.collections import LineCollection
+
+    parts = shapely.get_parts(geoms)
+    parts = parts[~shapely.is_empty(parts)]
+    coords, index = shapely.get_coordinates(parts, return_index=True)
+    cuts = np.flatnonzero(np.diff(index)) + 1
+    segments = np.split(coords / 1e3, cuts)
+    return LineCollection(segments, colors=LINK_COLOUR, linewidths=0.6, alpha=0.8, zorder=1)
+
+
+def _frame_map(ax, geoms, crs):
+    """Limits, km axes, scale bar and north arrow."""
+    x0, y0, x1, y1 = _bounds(geoms) / 1e3
+    pad = 0.04 * max(x1 - x0, y1 - y0, 0.1)
+    ax.set_xlim(x0 - pad, x1 + pad)
+    ax.set_ylim(y0 - pad, y1 + pad)
+    ax.set_aspect("equal")
+    ax.ticklabel_format(useOffset=False, style="plain")
+    ax.set_xlabel("easting (km)", fontsize=9)
+    ax.set_ylabel("northing (km)", fontsize=9)
+    ax.tick_params(labelsize=8)
+    code = crs.to_epsg() if crs is not None else None
+    ax.text(0.99, 0.01, f"EPSG:{code}" if code else crs.name, transform=ax.transAxes,
+            ha="right", va="bottom", fontsize=7, color="0.4")
+    _scale_bar(ax)
+    _north_arrow(ax)
+
+
+def _nice_length(span_km):
+    """A round length near a fifth of the map width: 1, 2 or 5 times a power of ten (km)."""
+    target = span_km / 5.0
+    power = 10.0 ** math.floor(math.log10(target))
+    return max(m * power for m in (1, 2, 5) if m * power <= target)
+
+
+def _scale_bar(ax):
+    from matplotlib.patches import Rectangle
+
+    (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+    length = _nice_length(x1 - x0)
+    height = 0.012 * (y1 - y0)
+    left, bottom = x0 + 0.04 * (x1 - x0), y0 + 0.04 * (y1 - y0)
+    # Two halves, black and white, so the bar reads on any background.
+    for k, face in enumerate(("black", "white")):
+        ax.add_patch(Rectangle((left + k * length / 2, bottom), length / 2, height,
+                               facecolor=face, edgecolor="black", linewidth=0.6, zorder=5))
+    text = f"{length:g} km"
+    ax.text(left + length / 2, bottom + 2.2 * height, text, ha="center", va="bottom",
+            fontsize=8, zorder=5)
+
+
+def _north_arrow(ax):
+    # Up is grid north of the projection; close enough to true north inside one UTM zone.
+    ax.annotate("N", xy=(0.95, 0.97), xytext=(0.95, 0.85), xycoords="axes fraction",
+                textcoords="axes fraction", ha="center", va="center", fontsize=10,
+                fontweight="bold", zorder=5,
+                arrowprops={"arrowstyle": "-|>", "color": "black", "linewidth": 1.2,
+                            "shrinkA": 7, "shrinkB": 0})
+
+
+# --------------------------------------------------------------------------------------------
+# time series
+
+
+def timeseries_panels(dataset, patch_ids, *, path, time_unit="year", burn_in=None) -> Path:
+    """Prey and predator abundance over time, one small panel per patch.
+
+    Parameters
+    ----------
+    dataset : xarray.Dataset
+        Variables ``prey`` and ``predator`` with dims ``(time, patch)`` (abundance, individuals)
+        and a ``patch`` coordinate of ids; with a ``replicate`` dim, replicate 0 is drawn.
+    patch_ids : sequence of str, 1 to 6 items
+        Patches to draw, in panel order.
+    path : str or path-like
+        PNG file to write.
+    time_unit : str
+        Unit of the ``time`` coordinate, for the axis label.
+    burn_in : float, optional
+        Times before this are shaded as burn-in.
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+
+    Notes
+    -----
+    The y axis is logarithmic above 1 individual and linear from 0 to 1, so deep troughs and
+    local extinctions (abundance 0) both show.
+    """
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    path = Path(path)
+    dataset = _first_replicate(_check_dataset(dataset))
+    patch_ids = [str(p) for p in ([patch_ids] if isinstance(patch_ids, str) else patch_ids)]
+    if not 1 <= len(patch_ids) <= MAX_PANELS:
+        raise InputError(f"give 1 to {MAX_PANELS} patch ids, got {len(patch_ids)}",
+                         field="patch_ids")
+    known = {str(p) for p in dataset["patch"].values}
+    unknown = [p for p in patch_ids if p not in known]
+    if unknown:
+        raise InputError(f"no such patch in the results: {', '.join(unknown)}", field="patch_ids")
+    ids = dataset["patch"].astype(str)
+    time = dataset["time"].values
+
+    n = len(patch_ids)
+    ncols = 1 if n == 1 else 2 if n <= 4 else 3
+    nrows = math.ceil(n / ncols)
+    # A single panel gets extra width so the legend row above it fits.
+    fig = Figure(figsize=(max(3.3 * ncols + 0.6, 5.6), 2.3 * nrows + 0.9), layout="constrained")
+    axes = np.atleast_1d(fig.subplots(nrows, ncols, sharex=True, sharey=True, squeeze=False)
+                         ).ravel()
+    top = 1.0
+    for ax, pid in zip(axes, patch_ids):
+        column = int(np.flatnonzero(ids.values == pid)[0])
+        prey = dataset["prey"].isel(patch=column).values
+        predator = dataset["predator"].isel(patch=column).values
+        top = max(top, np.nanmax(prey, initial=0.0), np.nanmax(predator, initial=0.0))
+        if burn_in is not None:
+            ax.axvspan(time[0], burn_in, color="0.92", zorder=0, linewidth=0)
+        ax.plot(time, prey, linewidth=1.1, **PREY_STYLE)
+        ax.plot(time, predator, linewidth=1.1, **PREDATOR_STYLE)
+        ax.set_title(f"patch {pid}", fontsize=9)
+        ax.tick_params(labelsize=8)
+        ax.grid(True, which="major", color="0.9", linewidth=0.5)
+    for ax in axes[n:]:
+        ax.set_visible(False)
+    for ax in axes[:n]:
+        ax.set_yscale("symlog", linthresh=1.0, linscale=0.4)
+        ax.set_ylim(-0.1, top * 1.6)  # a little below 0 so a zero line clears the axis
+        ax.set_xlim(time[0], time[-1])
+    # Shared axes hide inner tick labels; the hidden empty panel would leave a gap on the last row.
+    for ax in axes[max(n - ncols, 0):n]:
+        ax.tick_params(labelbottom=True)
+    handles = [Line2D([], [], linewidth=1.4, label="prey", **PREY_STYLE),
+               Line2D([], [], linewidth=1.4, label="predator", **PREDATOR_STYLE)]
+    if burn_in is not None:
+        handles.append(Patch(facecolor="0.92", label="burn-in (not analysed)"))
+    fig.legend(handles=handles, loc="outside upper center", ncol=len(handles), frameon=False,
+               fontsize=9)
+    fig.supxlabel(f"time ({time_unit})", fontsize=9)
+    fig.supylabel("abundance (individuals)", fontsize=9)
+    return _save(fig, path)
+
+
+def occupancy_curve(dataset, *, path, time_unit="year") -> Path:
+    """Share of patches where each species is present (abundance > 0) over time.
+
+    Parameters
+    ----------
+    dataset : xarray.Dataset
+        Variables ``prey`` and ``predator`` with dims ``(time, patch[, replicate])``.
+        With replicates the line is their mean and the band their range.
+    path : str or path-like
+        PNG file to write.
+    time_unit : str
+        Unit of the ``time`` coordinate, for the axis label.
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+    """
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    dataset = _check_dataset(dataset)
+    time = dataset["time"].values
+    fig = Figure(figsize=(6.4, 3.6), layout="constrained")
+    ax = fig.add_subplot()
+    for name, style in (("prey", PREY_STYLE), ("predator", PREDATOR_STYLE)):
+        x = dataset[name]
+        # Missing values (a failed replicate) are left out of the share, not counted as absent.
+        share = (x > 0).sum("patch") / x.notnull().sum("patch")
+        if "replicate" in share.dims:
+            ax.fill_between(time, share.min("replicate").values, share.max("replicate").values,
+                            color=style["color"], alpha=0.18, linewidth=0)
+            share = share.mean("replicate")
+        ax.plot(time, share.values, linewidth=1.4, label=name, **style)
+    ax.set_ylim(-0.02, 1.02)
+    ax.set_xlim(time[0], time[-1])
+    ax.set_xlabel(f"time ({time_unit})", fontsize=9)
+    ax.set_ylabel("share of patches occupied", fontsize=9)
+    ax.tick_params(labelsize=8)
+    ax.grid(True, color="0.9", linewidth=0.5)
+    ax.legend(frameon=False, fontsize=9, loc="lower left")
+    n_patches = dataset.sizes["patch"]
+    ax.set_title(f"Occupied patches (of {n_patches})", fontsize=10)
+    return _save(fig, path)
+
+
+def _check_dataset(dataset):
+    for name in ("prey", "predator"):
+        if name not in dataset.data_vars:
+            raise InputError(f"the results need a variable {name!r}; found "
+                             f"{', '.join(map(str, dataset.data_vars)) or 'none'}", field=name)
+        dims = dataset[name].dims
+        if dims[:2] != ("time", "patch") or not set(dims) <= {"time", "patch", "replicate"}:
+            raise InputError(f"dims must be ('time', 'patch'[, 'replicate']), got {dims}",
+                             field=name)
+    return dataset
+
+
+def _first_replicate(dataset):
+    if "replicate" in dataset.dims:
+        return dataset.isel(replicate=0)
+    return dataset
+
+
+# --------------------------------------------------------------------------------------------
+# saving
+
+
+def _save(fig, path: Path) -> Path:
+    """Render with Agg into a temporary file beside ``path``, then rename it into place."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(fig)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}-", suffix=".png", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            fig.savefig(handle, format="png", dpi=DPI)
+        os.chmod(tmp, 0o644)  # mkstemp makes the file private; a figure is for sharing
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    finally:
+        fig.clear()  # a bare Figure is not registered with pyplot; clearing frees it
+    return path

@@ -1,0 +1,325 @@
+"""The scenario file (TOML) -> a validated, frozen Scenario.
+
+Every key of the contract (``SCENARIO.md`` in the project's shared notes, summarised in the
+README) is listed once in ``SCHEMA`` with its default and its check; nothing else in the
+package knows the key names. Unknown sections and keys are errors that suggest the closest
+known name, so a misspelt key is never silently ignored. Nothing in a scenario is executed.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import MappingProxyType
+from typing import Any, Callable
+
+from .dynamics import GROWTH_FORMS, RESPONSES
+from .errors import InputError
+
+__all__ = ["Scenario", "FieldRef", "SCHEMA", "read_scenario", "parse_scenario"]
+
+
+@dataclass(frozen=True)
+class FieldRef:
+    """A parameter taken per patch from an attribute of the patch file."""
+
+    field: str
+
+
+@dataclass(frozen=True)
+class Key:
+    """One scenario key: default, what it accepts, and whether it may be per patch."""
+
+    default: Any
+    check: Callable[[Any], str | None]
+    per_patch: bool = False
+    doc: str = ""
+
+
+# ----------------------------------------------------------------------- value checks
+def _number(lo=None, hi=None, *, lo_open=False, integer=False):
+    def check(v):
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            return f"must be a number, got {v!r}"
+        if integer and not float(v).is_integer():
+            return f"must be a whole number, got {v!r}"
+        if not math.isfinite(v):
+            return f"must be finite, got {v!r}"
+        if lo is not None and (v <= lo if lo_open else v < lo):
+            return f"must be {'>' if lo_open else '>='} {lo}, got {v!r}"
+        if hi is not None and v > hi:
+            return f"must be <= {hi}, got {v!r}"
+        return None
+
+    check.bounds = (lo, hi, lo_open)
+    return check
+
+
+def _choice(*options):
+    def check(v):
+        if v not in options:
+            return f"must be one of {', '.join(repr(o) for o in options)}, got {v!r}"
+        return None
+
+    return check
+
+
+def _text(optional=False):
+    def check(v):
+        if v is None and optional:
+            return None
+        if not isinstance(v, str) or not v.strip():
+            return f"must be a non-empty string, got {v!r}"
+        return None
+
+    return check
+
+
+def _number_or(word, **bounds):
+    inner = _number(**bounds)
+
+    def check(v):
+        if v == word:
+            return None
+        msg = inner(v)
+        return None if msg is None else f"{msg[:-len(repr(v))]}{v!r} (or {word!r})"
+
+    check.bounds = inner.bounds
+    return check
+
+
+_nonneg = _number(0)
+_pos = _number(0, lo_open=True)
+
+SCHEMA: dict[str, dict[str, Key]] = {
+    "": {
+        "name": Key(None, _text(optional=True), doc="title of the study"),
+        "time_unit": Key("year", _text(), doc="unit of every time and rate"),
+    },
+    "patches": {
+        "path": Key(None, _text(), doc="patch file, relative to the scenario"),
+        "id_field": Key(None, _text(optional=True)),
+        "quality_field": Key(None, _text(optional=True)),
+        "crs": Key("auto", _text()),
+        "layer": Key(None, _text(optional=True), doc="layer of a GeoPackage"),
+    },
+    "prey": {
+        "growth": Key("logistic", _choice(*GROWTH_FORMS)),
+        "growth_rate": Key(1.0, _nonneg, per_patch=True),
+        "capacity_density": Key(50.0, _pos, per_patch=True),
+        "allee_density": Key(5.0, _pos, per_patch=True),
+        "emigration_rate": Key(0.1, _nonneg, per_patch=True),
+        "kernel_scale_km": Key(2.0, _pos, per_patch=True),
+        "initial_density": Key(40.0, _number_or("equilibrium", lo=0), per_patch=True),
+    },
+    "predator": {
+        "mortality_rate": Key(0.5, _nonneg, per_patch=True),
+        "conversion": Key(0.4, _nonneg, per_patch=True),
+        "emigration_rate": Key(0.05, _nonneg, per_patch=True),
+        "kernel_scale_km": Key(5.0, _pos, per_patch=True),
+        "initial_density": Key(2.0, _number_or("equilibrium", lo=0), per_patch=True),
+    },
+    "predation": {
+        "response": Key("holling2", _choice(*RESPONSES)),
+        "attack_rate": Key(1.0, _nonneg, per_patch=True),
+        "handling_time": Key(0.2, _nonneg, per_patch=True),
+        "interference": Key(0.0, _nonneg, per_patch=True),
+    },
+    "dispersal": {
+        "kernel": Key("exponential", _choice("exponential", "gaussian", "step", "none")),
+        "max_distance_km": Key(15.0, _pos),
+        "distance": Key("boundary", _choice("boundary", "centroid")),
+        "survival_per_km": Key(0.97, _number(0, 1)),
+        "corridors": Key(None, _text(optional=True)),
+        "links": Key(None, _text(optional=True)),
+        "corridor_snap_km": Key(0.1, _nonneg, doc="how far a corridor end may be from its patch"),
+    },
+    "run": {
+        "duration": Key(400.0, _pos),
+        "burn_in": Key(100.0, _nonneg),
+        "census_interval": Key(0.5, _pos),
+        "extinction_abundance": Key(1.0, _nonneg),
+        "method": Key("auto", _choice("auto", "RK45", "RK23", "DOP853", "Radau", "BDF", "LSODA")),
+        "rtol": Key(1e-6, _number(0, 1, lo_open=True)),
+        "atol": Key(1e-8, _pos),
+        "seed": Key(1, _number(0, integer=True)),
+        "replicates": Key(1, _number(1, integer=True)),
+    },
+}
+
+#: Sections of the contract that this version reads but cannot act on yet.
+NOT_YET = {
+    "noise": "environmental and demographic noise",
+    "shock": "shocks",
+}
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """A validated scenario.
+
+    ``values`` maps ``"section.key"`` (top-level keys without a section) to the value, with
+    every default filled in; per-patch parameters are :class:`FieldRef`. ``path`` is the
+    scenario file (or None for a scenario built in code) and ``base_dir`` the folder that
+    relative paths are resolved against.
+    """
+
+    values: MappingProxyType
+    path: Path | None = None
+    base_dir: Path = field(default_factory=Path.cwd)
+    text: str = ""
+
+    def __getitem__(self, key: str):
+        return self.values[key]
+
+    @property
+    def name(self) -> str:
+        return self.values["name"] or (self.path.stem if self.path else "scenario")
+
+    def resolve(self, relative: str) -> Path:
+        """A path of the scenario, resolved against the scenario's folder."""
+        p = Path(relative).expanduser()
+        return p if p.is_absolute() else (self.base_dir / p)
+
+    def fields_used(self) -> dict[str, str]:
+        """Patch attributes the scenario names, mapped to the key naming each."""
+        used = {}
+        if self.values["patches.quality_field"]:
+            used[self.values["patches.quality_field"]] = "patches.quality_field"
+        for key, value in self.values.items():
+            if isinstance(value, FieldRef):
+                used.setdefault(value.field, key)
+        return used
+
+    def with_values(self, **changes) -> "Scenario":
+        """A copy with some ``section.key`` values replaced (checked like the file's).
+
+        Keys are given with ``__`` for the dot: ``with_values(run__duration=50)``.
+        """
+        raw = _nested(dict(self.values))
+        for k, v in changes.items():
+            section, _, key = k.rpartition("__")
+            raw.setdefault(section, {})[key] = v
+        return parse_scenario(raw, path=self.path, base_dir=self.base_dir, text=self.text)
+
+
+def _nested(flat: dict) -> dict:
+    out: dict = {}
+    for k, v in flat.items():
+        section, _, key = k.rpartition(".")
+        if isinstance(v, FieldRef):
+            v = {"field": v.field}
+        if v is None:
+            continue
+        if section:
+            out.setdefault(section, {})[key] = v
+        else:
+            out[key] = v
+    return out
+
+
+def _suggest(word, options):
+    close = difflib.get_close_matches(word, list(options), n=1, cutoff=0.6)
+    return f"; did you mean {close[0]!r}?" if close else ""
+
+
+def read_scenario(path) -> Scenario:
+    """Read and validate a scenario file.
+
+    Raises
+    ------
+    InputError
+        For an unreadable file, a TOML syntax error (with its line), an unknown section or
+        key (with the closest known name), or a value of the wrong type or range.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError("scenario file not found", file=path) from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"cannot read the scenario file ({exc})", file=path) from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        detail = str(exc)
+        if detail.endswith("(at end of document)"):
+            detail = detail.replace("(at end of document)",
+                                    f"(at the end, line {text.count(chr(10)) or 1})")
+        raise InputError(f"not valid TOML: {detail}", file=path) from None
+    return parse_scenario(raw, path=path, base_dir=path.resolve().parent, text=text)
+
+
+def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Scenario:
+    """Validate a scenario given as nested dictionaries (as ``tomllib`` returns them)."""
+    file = path
+    values: dict[str, Any] = {}
+    sections = [s for s in SCHEMA if s]
+    for name, content in raw.items():
+        if name in SCHEMA[""]:
+            continue
+        if name in NOT_YET:
+            raise InputError(
+                f"the [{name}] section ({NOT_YET[name]}) is not supported by this version "
+                "of trophoscape; remove it to run without it", file=file, field=name)
+        if name not in SCHEMA:
+            raise InputError(f"unknown section or key {name!r}"
+                             f"{_suggest(name, sections + list(SCHEMA['']))}", file=file,
+                             field=name)
+        if not isinstance(content, dict):
+            raise InputError(f"must be a table [{name}], got {content!r}", file=file, field=name)
+        for key in content:
+            if key not in SCHEMA[name]:
+                raise InputError(f"unknown key{_suggest(key, SCHEMA[name])}",
+                                 file=file, field=f"{name}.{key}")
+
+    for section, keys in SCHEMA.items():
+        given = raw if section == "" else raw.get(section, {})
+        for key, spec in keys.items():
+            full = f"{section}.{key}" if section else key
+            if key not in given:
+                if spec.default is None and section == "patches" and key == "path":
+                    raise InputError("is required: the patch file (GeoJSON, GeoPackage or "
+                                     "Shapefile) relative to the scenario", file=file, field=full)
+                values[full] = spec.default
+                continue
+            value = given[key]
+            if spec.per_patch and isinstance(value, dict):
+                if set(value) != {"field"} or not isinstance(value["field"], str):
+                    raise InputError('a per-patch value must be written { field = "ATTRIBUTE" },'
+                                     f" got {value!r}", file=file, field=full)
+                values[full] = FieldRef(value["field"])
+                continue
+            problem = spec.check(value)
+            if problem:
+                raise InputError(problem, file=file, field=full)
+            if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
+                value = float(value)
+            values[full] = value
+
+    run = values
+    if run["run.burn_in"] >= run["run.duration"]:
+        raise InputError(f"must be less than run.duration ({run['run.duration']}), "
+                         f"got {run['run.burn_in']}", file=file, field="run.burn_in")
+    if run["run.census_interval"] > run["run.duration"]:
+        raise InputError(f"must not exceed run.duration ({run['run.duration']}), "
+                         f"got {run['run.census_interval']}", file=file, field="run.census_interval")
+    if values["dispersal.kernel"] == "none" and not (values["dispersal.links"] or values["dispersal.corridors"]):
+        pass  # a network of isolated patches is allowed (no dispersal)
+    if run["run.replicates"] != 1:
+        raise InputError("replicates other than 1 need noise, which this version does not "
+                         "model yet; set replicates = 1", file=file, field="run.replicates")
+    values["run.seed"] = int(values["run.seed"])
+    values["run.replicates"] = int(values["run.replicates"])
+    base = Path(base_dir) if base_dir is not None else Path.cwd()
+    return Scenario(values=MappingProxyType(values), path=None if path is None else Path(path),
+                    base_dir=base, text=text)
+
+
+def bounds_of(full_key: str):
+    """``(lo, hi, lo_open)`` of a numeric key, for checking per-patch values."""
+    section, _, key = full_key.rpartition(".")
+    return getattr(SCHEMA[section][key].check, "bounds", (None, None, False))

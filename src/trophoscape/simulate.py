@@ -1,0 +1,241 @@
+"""Integration of a coupled system between census steps; the Trajectory it returns.
+
+Between census steps the system is a deterministic ODE integrated with one of scipy's
+``OdeSolver`` classes. At each census time abundances are read off the solver's dense
+output; local populations below the quasi-extinction abundance (and tiny negative values
+left by the integrator) are set to zero. The solver keeps running across census times
+while the census changes nothing, and when it must restart it starts with the step size
+it had reached, so the census does not cost a fresh step-size search each time.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.integrate as si
+import xarray as xr
+
+from .errors import RunError
+from .system import SPECIES, CoupledSystem
+
+__all__ = ["METHODS", "SolverStats", "Trajectory", "census_times", "simulate", "choose_method"]
+
+#: scipy solvers by the names ``solve_ivp`` uses.
+METHODS = {
+    "RK23": si.RK23,
+    "RK45": si.RK45,
+    "DOP853": si.DOP853,
+    "Radau": si.Radau,
+    "BDF": si.BDF,
+    "LSODA": si.LSODA,
+}
+#: Methods that take the sparse analytic Jacobian.
+IMPLICIT = ("Radau", "BDF")
+
+
+@dataclass(frozen=True)
+class SolverStats:
+    """What the solver did: as on scipy's ``OdeResult`` plus the census restarts."""
+
+    method: str
+    nfev: int
+    njev: int
+    nlu: int
+    steps: int
+    restarts: int
+    status: int
+    message: str
+
+    @property
+    def success(self) -> bool:
+        return self.status == 0
+
+    def as_dict(self) -> dict:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+
+@dataclass(frozen=True, eq=False)
+class Trajectory:
+    """Abundances over time, backed by an xarray Dataset.
+
+    Attributes
+    ----------
+    data : xarray.Dataset
+        Variables ``prey`` and ``predator`` (individuals), dims ``("time", "patch")`` (and
+        ``replicate`` last when there are several); coordinate ``patch`` holds the ids.
+    stats : SolverStats
+        Solver statistics.
+    """
+
+    data: xr.Dataset
+    stats: SolverStats
+
+    @property
+    def time(self) -> np.ndarray:
+        return self.data["time"].values
+
+    @property
+    def ids(self) -> np.ndarray:
+        return self.data["patch"].values
+
+    def __getitem__(self, species: str) -> xr.DataArray:
+        return self.data[species]
+
+
+def census_times(duration: float, census_interval: float) -> np.ndarray:
+    """Census times ``0, Δ, 2Δ, ...`` up to and including ``duration``."""
+    k = int(np.floor(duration / census_interval + 1e-9))
+    times = np.arange(k + 1) * census_interval
+    if duration - times[-1] > 1e-9 * max(1.0, duration):
+        times = np.append(times, duration)
+    return times
+
+
+def choose_method(method: str) -> str:
+    """Resolve ``"auto"`` to a scipy method name.
+
+    Explicit Runge–Kutta (RK45) is the default: on the non-stiff runs typical of patch
+    networks it was far faster than BDF with a sparse Jacobian, whose LU factorisation
+    fills in on planar graphs (see ``benchmarks/README.md``).
+    """
+    return "RK45" if method == "auto" else method
+
+
+def _census(y, threshold):
+    """Quasi-extinction: zero every abundance below ``threshold`` (and every negative)."""
+    low = y < threshold
+    if threshold <= 0:
+        low = y < 0
+    if np.any(low & (y != 0)):
+        y = np.where(low, 0.0, y)
+        return y, True
+    return y, False
+
+
+def simulate(
+    system: CoupledSystem,
+    y0,
+    *,
+    duration: float,
+    census_interval: float,
+    extinction_abundance: float = 1.0,
+    method: str = "auto",
+    rtol: float = 1e-6,
+    atol: float = 1e-8,
+    ids=None,
+    time_unit: str = "year",
+    progress: bool = False,
+) -> Trajectory:
+    """Integrate ``system`` from ``y0`` with census steps every ``census_interval``.
+
+    Parameters
+    ----------
+    system : CoupledSystem
+    y0 : ndarray, shape (2 n_patches,)
+        Initial abundances, laid out as in :mod:`trophoscape.system`.
+    duration, census_interval : float
+        In the scenario's time unit.
+    extinction_abundance : float
+        Local populations below this many individuals are set to zero at each census.
+    method : str
+        ``"auto"`` or a ``scipy.integrate.solve_ivp`` method name.
+    rtol, atol : float
+        Solver tolerances (``atol`` in individuals).
+    ids : array of str, shape (n_patches,), optional
+        Patch ids for the ``patch`` coordinate (default ``"0", "1", ...``).
+    progress : bool
+        Show a progress bar (it appears only on runs longer than two seconds).
+
+    Returns
+    -------
+    Trajectory
+
+    Raises
+    ------
+    RunError
+        When the solver fails; the message gives the time reached and what to try.
+    """
+    method = choose_method(method)
+    solver_cls = METHODS[method]
+    n = system.n_patches
+    times = census_times(float(duration), float(census_interval))
+    record = np.empty((times.size, 2 * n))
+    y, _ = _census(np.asarray(y0, dtype=float).copy(), extinction_abundance)
+    record[0] = y
+
+    rhs = system.rhs_function()
+    options = dict(rtol=rtol, atol=atol)
+    if method in IMPLICIT:
+        options["jac"] = system.jacobian_function()
+    totals = dict(nfev=0, njev=0, nlu=0)
+    steps = restarts = 0
+
+    def start(t0, y_start, first_step):
+        if first_step is not None:
+            first_step = min(first_step, times[-1] - t0)
+        return solver_cls(rhs, t0, y_start, times[-1], first_step=first_step, **options)
+
+    def harvest(s):
+        for key in totals:
+            totals[key] += int(getattr(s, key, 0) or 0)
+
+    from tqdm.auto import tqdm
+
+    bar = tqdm(total=times.size - 1, disable=not progress, delay=2.0, unit="census",
+               desc="integrating", leave=False)
+    solver = start(times[0], y, None)
+    k = 1
+    status, message = 0, "The solver successfully reached the end of the integration interval."
+    try:
+        while k < times.size:
+            if solver.status == "finished" and solver.t < times[k]:  # pragma: no cover
+                raise RunError("solver stopped before the end of the run")
+            outcome = solver.step()
+            steps += 1
+            if solver.status == "failed":
+                harvest(solver)
+                raise RunError(
+                    f"the ODE solver ({method}) failed at time {solver.t:.6g}: {outcome}; "
+                    "try method = \"BDF\" or \"Radau\" for stiff runs, or looser rtol/atol"
+                )
+            if not np.all(np.isfinite(solver.y)):
+                harvest(solver)
+                raise RunError(
+                    f"the state became non-finite at time {solver.t:.6g} ({method}); "
+                    "check for explosive growth (e.g. exponential prey with no predator)"
+                )
+            dense = None
+            while k < times.size and times[k] <= solver.t:
+                if times[k] == solver.t:
+                    y_k = solver.y.copy()
+                else:
+                    dense = dense or solver.dense_output()
+                    y_k = dense(times[k])
+                y_k, changed = _census(y_k, extinction_abundance)
+                record[k] = y_k
+                k += 1
+                bar.update(1)
+                if changed and k < times.size:
+                    harvest(solver)
+                    h = getattr(solver, "h_abs", None) or solver.step_size
+                    solver = start(times[k - 1], y_k, h)
+                    restarts += 1
+                    break
+        harvest(solver)
+    finally:
+        bar.close()
+
+    stats = SolverStats(method=method, steps=steps, restarts=restarts, status=status,
+                        message=message, **totals)
+    ids = np.asarray([str(i) for i in range(n)] if ids is None else ids, dtype=object)
+    data = xr.Dataset(
+        {
+            name: (("time", "patch"), record[:, s * n:(s + 1) * n],
+                   {"units": "individuals", "long_name": f"{name} abundance"})
+            for s, name in enumerate(SPECIES)
+        },
+        coords={"time": ("time", times, {"units": time_unit, "long_name": "time"}),
+                "patch": ("patch", ids, {"long_name": "patch id"})},
+    )
+    return Trajectory(data=data, stats=stats)

@@ -1,0 +1,176 @@
+"""Figures: each function writes a readable PNG, and importing the module stays light."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+gpd = pytest.importorskip("geopandas")
+xr = pytest.importorskip("xarray")
+from shapely.geometry import LineString, box  # noqa: E402
+
+from trophoscape import plot  # noqa: E402
+from trophoscape.errors import InputError  # noqa: E402
+
+SRC = Path(__file__).resolve().parents[1] / "src"
+
+
+def read_png(path):
+    from matplotlib.image import imread
+
+    return imread(path)
+
+
+@pytest.fixture
+def patches():
+    """A 4 x 3 grid of 1 km squares, 1 km apart, in UTM zone 32N (EPSG:32632)."""
+    x0, y0 = 440_000.0, 5_300_000.0
+    squares = [box(x0 + 2000 * i, y0 + 2000 * j, x0 + 2000 * i + 1000, y0 + 2000 * j + 1000)
+               for j in range(3) for i in range(4)]
+    n = len(squares)
+    frame = gpd.GeoDataFrame({
+        "patch_id": [f"P{k}" for k in range(n)],
+        "prey_mean": np.linspace(5.0, 60.0, n),
+        "difference": np.linspace(-3.0, 1.5, n),
+        "prey_persists": [bool(k % 3) for k in range(n)],
+        "habitat": ["heath", "fen", "scrub"] * (n // 3),
+    }, geometry=squares, crs="EPSG:32632")
+    frame.loc[2, "prey_mean"] = np.nan
+    return frame
+
+
+def test_patch_map_boolean_with_missing(tmp_path, patches):
+    flags = patches["prey_persists"].astype(object)
+    flags.iloc[0] = np.nan
+    for column in (flags, flags.astype("boolean")):
+        frame = patches.assign(prey_persists=column)
+        out = plot.patch_map(frame, "prey_persists", path=tmp_path / "b.png")
+        assert_png(out)
+
+
+@pytest.fixture
+def links(patches):
+    c = patches.geometry.centroid
+    lines = [LineString([c[i], c[i + 1]]) for i in range(len(c) - 1)]
+    return gpd.GeoDataFrame({"source": range(len(lines))}, geometry=lines, crs=patches.crs)
+
+
+@pytest.fixture
+def dataset():
+    time = np.arange(0.0, 100.5, 0.5)
+    ids = [f"P{k}" for k in range(12)]
+    phase = np.linspace(0.0, np.pi, len(ids))
+    prey = 50.0 + 40.0 * np.sin(0.3 * time[:, None] + phase[None, :])
+    predator = 10.0 + 8.0 * np.sin(0.3 * time[:, None] + phase[None, :] - 1.0)
+    predator[time > 70.0, 3:] = 0.0  # predator lost in most patches late on
+    return xr.Dataset(
+        {"prey": (("time", "patch"), prey), "predator": (("time", "patch"), predator)},
+        coords={"time": time, "patch": ids})
+
+
+def assert_png(path):
+    # A PNG file starts with these 8 bytes (PNG specification, W3C 2003, section 5.2).
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    image = read_png(path)
+    assert image.ndim == 3 and image.shape[0] > 100 and image.shape[1] > 100
+    # Not a blank canvas: some pixels differ from the first one.
+    assert np.ptp(image[..., :3]) > 0.1
+
+
+@pytest.mark.parametrize("column, options", [
+    ("prey_mean", {"label": "mean prey abundance (individuals)"}),
+    ("difference", {"diverging": True, "label": "change (individuals)"}),
+    ("prey_persists", {"title": "Prey present at the end"}),
+    ("habitat", {"label": "habitat"}),
+])
+def test_patch_map_writes_png(tmp_path, patches, links, column, options):
+    out = plot.patch_map(patches, column, path=tmp_path / f"{column}.png", links=links, **options)
+    assert out == tmp_path / f"{column}.png"
+    assert_png(out)
+    # Written atomically: no temporary file left beside it.
+    assert sorted(p.name for p in tmp_path.iterdir()) == [f"{column}.png"]
+
+
+def test_patch_map_size_follows_dpi(tmp_path, patches):
+    # savefig at 150 dpi: pixels = inches x dpi (matplotlib documentation, savefig "dpi").
+    out = plot.patch_map(patches, "prey_mean", path=tmp_path / "m.png")
+    image = read_png(out)
+    assert image.shape[1] == round(7.5 * plot.DPI)
+
+
+def test_patch_map_rejects_lon_lat(tmp_path, patches):
+    with pytest.raises(InputError, match="projected"):
+        plot.patch_map(patches.to_crs("EPSG:4326"), "prey_mean", path=tmp_path / "m.png")
+    assert not list(tmp_path.iterdir())
+
+
+def test_patch_map_rejects_unknown_column(tmp_path, patches):
+    with pytest.raises(InputError, match="no such column") as caught:
+        plot.patch_map(patches, "prey_men", path=tmp_path / "m.png")
+    assert caught.value.field == "prey_men"
+
+
+def test_nice_scale_length():
+    # 1-2-5 series of round lengths (common practice in map making).
+    assert plot._nice_length(30.0) == 5.0
+    assert plot._nice_length(12.0) == 2.0
+    assert plot._nice_length(4.0) == 0.5
+
+
+def test_timeseries_panels(tmp_path, dataset):
+    out = plot.timeseries_panels(dataset, ["P0", "P4", "P7"], path=tmp_path / "ts.png",
+                                 burn_in=20.0)
+    assert_png(out)
+
+
+def test_timeseries_panels_uses_first_replicate(tmp_path, dataset):
+    stacked = xr.concat([dataset, dataset * 2.0], dim="replicate").transpose(
+        "time", "patch", "replicate")
+    out = plot.timeseries_panels(stacked, ["P1"], path=tmp_path / "ts.png", time_unit="month")
+    assert_png(out)
+
+
+def test_timeseries_panels_rejects_bad_ids(tmp_path, dataset):
+    with pytest.raises(InputError, match="P99"):
+        plot.timeseries_panels(dataset, ["P0", "P99"], path=tmp_path / "ts.png")
+    with pytest.raises(InputError, match="1 to 6"):
+        plot.timeseries_panels(dataset, [f"P{k}" for k in range(7)], path=tmp_path / "ts.png")
+
+
+def test_occupancy_curve(tmp_path, dataset):
+    out = plot.occupancy_curve(dataset, path=tmp_path / "occ.png")
+    assert_png(out)
+
+
+def test_occupancy_curve_needs_both_species(tmp_path, dataset):
+    with pytest.raises(InputError, match="predator"):
+        plot.occupancy_curve(dataset.drop_vars("predator"), path=tmp_path / "occ.png")
+
+
+def test_import_does_not_load_matplotlib():
+    # Optional heavy packages stay unloaded until used (geopandas tests/test_api.py does the
+    # same check for its optional dependencies; common practice).
+    env = dict(os.environ, PYTHONPATH=str(SRC))
+    code = "import trophoscape.plot, sys; print('matplotlib' in sys.modules)"
+    result = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                            text=True, check=True)
+    assert result.stdout.strip() == "False"
+
+
+def test_does_not_touch_pyplot_backend(tmp_path, patches):
+    # Drawing on a bare Figure leaves pyplot unimported (so a notebook keeps its backend).
+    env = dict(os.environ, PYTHONPATH=str(SRC))
+    code = ("import sys, geopandas as gpd; from shapely.geometry import box;"
+            "from trophoscape.plot import patch_map;"
+            "g = gpd.GeoDataFrame({'v': [1.0, 2.0]}, geometry=[box(0, 0, 1e3, 1e3),"
+            " box(2e3, 0, 3e3, 1e3)], crs='EPSG:32632');"
+            f"patch_map(g, 'v', path={str(tmp_path / 'm.png')!r});"
+            "print('matplotlib.pyplot' in sys.modules)")
+    result = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                            text=True, check=True)
+    assert result.stdout.strip() == "False"

@@ -1,0 +1,98 @@
+"""Scenario parsing: defaults, checks and the exact error texts users see."""
+
+import pytest
+
+from trophoscape.errors import InputError
+from trophoscape.scenario import SCHEMA, FieldRef, read_scenario
+
+MINIMAL = '[patches]\npath = "p.geojson"\n'
+
+
+def write(tmp_path, text, name="s.toml"):
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_every_default_is_filled(tmp_path):
+    sc = read_scenario(write(tmp_path, MINIMAL))
+    for section, keys in SCHEMA.items():
+        for key, spec in keys.items():
+            full = f"{section}.{key}" if section else key
+            if full != "patches.path":
+                assert sc[full] == spec.default, full
+    assert sc.name == "s"
+    assert sc.resolve(sc["patches.path"]) == tmp_path / "p.geojson"
+
+
+def test_per_patch_field_reference(tmp_path):
+    sc = read_scenario(write(tmp_path, MINIMAL + '[prey]\ngrowth_rate = { field = "r" }\n'))
+    assert sc["prey.growth_rate"] == FieldRef("r")
+    assert sc.fields_used() == {"r": "prey.growth_rate"}
+
+
+def test_integers_become_floats(tmp_path):
+    sc = read_scenario(write(tmp_path, MINIMAL + "[run]\nduration = 50\nburn_in = 10\n"))
+    assert sc["run.duration"] == 50.0 and isinstance(sc["run.duration"], float)
+
+
+def test_with_values_rechecks(tmp_path):
+    sc = read_scenario(write(tmp_path, MINIMAL))
+    assert sc.with_values(run__duration=50.0, run__burn_in=5.0)["run.duration"] == 50.0
+    with pytest.raises(InputError, match="run.duration"):
+        sc.with_values(run__duration=-1.0)
+
+
+CASES = [
+    ("[patches]\npath = 'p.geojson'\n[prey]\ngrowth_rte = 1.0\n",
+     "s.toml: field 'prey.growth_rte': unknown key; did you mean 'growth_rate'?"),
+    ("[patches]\npath = 'p.geojson'\n[preditor]\nconversion = 0.1\n",
+     "s.toml: field 'preditor': unknown section or key 'preditor'; did you mean 'predator'?"),
+    ("[patches]\nid_field = 'x'\n",
+     "s.toml: field 'patches.path': is required: the patch file (GeoJSON, GeoPackage or "
+     "Shapefile) relative to the scenario"),
+    (MINIMAL + "[prey]\ngrowth_rate = -1\n",
+     "s.toml: field 'prey.growth_rate': must be >= 0, got -1"),
+    (MINIMAL + "[prey]\ngrowth_rate = 'fast'\n",
+     "s.toml: field 'prey.growth_rate': must be a number, got 'fast'"),
+    (MINIMAL + "[prey]\ngrowth = 'gompertz'\n",
+     "s.toml: field 'prey.growth': must be one of 'exponential', 'logistic', 'allee', got "
+     "'gompertz'"),
+    (MINIMAL + "[predation]\nresponse = 'holling4'\n",
+     "s.toml: field 'predation.response': must be one of 'lotka_volterra', 'holling2', "
+     "'holling3', 'beddington_deangelis', got 'holling4'"),
+    (MINIMAL + "[run]\nduration = 10\nburn_in = 20\n",
+     "s.toml: field 'run.burn_in': must be less than run.duration (10.0), got 20.0"),
+    (MINIMAL + "[dispersal]\nsurvival_per_km = 1.5\n",
+     "s.toml: field 'dispersal.survival_per_km': must be <= 1, got 1.5"),
+    (MINIMAL + "[prey]\ninitial_density = 'lots'\n",
+     "s.toml: field 'prey.initial_density': must be a number, got 'lots' (or 'equilibrium')"),
+    (MINIMAL + "[prey]\ngrowth_rate = { column = 'r' }\n",
+     "s.toml: field 'prey.growth_rate': a per-patch value must be written "
+     "{ field = \"ATTRIBUTE\" }, got {'column': 'r'}"),
+    (MINIMAL + "[noise]\nenvironmental_sd = 0.2\n",
+     "s.toml: field 'noise': the [noise] section (environmental and demographic noise) is not "
+     "supported by this version of trophoscape; remove it to run without it"),
+    (MINIMAL + "[run]\nseed = 1.5\n", "s.toml: field 'run.seed': must be a whole number, got 1.5"),
+    (MINIMAL + "[run]\nduration = inf\n", "s.toml: field 'run.duration': must be finite, got inf"),
+    ("[patches]\npath = 'p.geojson'\n[run]\nduration = = 5\n",
+     "s.toml: not valid TOML: Invalid value (at line 4, column 12)"),
+    ("[patches]\npath = 'p.geojson'\n[run]\nduration = 5\nburn_in = 'x\n",
+     "s.toml: not valid TOML: Expected \"'\" (at the end, line 5)"),
+]
+
+
+@pytest.mark.parametrize("text,message", CASES)
+def test_error_messages(tmp_path, monkeypatch, text, message):
+    monkeypatch.chdir(tmp_path)
+    write(tmp_path, text)
+    with pytest.raises(InputError) as info:
+        read_scenario("s.toml")
+    assert str(info.value) == message
+
+
+def test_missing_scenario_file(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(InputError) as info:
+        read_scenario("nothing.toml")
+    assert str(info.value) == "nothing.toml: scenario file not found"
