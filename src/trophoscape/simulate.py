@@ -191,7 +191,8 @@ def simulate(
         while k < times.size:
             if solver.status == "finished" and solver.t < times[k]:  # pragma: no cover
                 raise RunError("solver stopped before the end of the run")
-            outcome = solver.step()
+            with np.errstate(over="ignore", invalid="ignore"):  # reported below instead
+                outcome = solver.step()
             steps += 1
             if solver.status == "failed":
                 harvest(solver)

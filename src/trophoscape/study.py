@@ -162,7 +162,7 @@ def _initial_state(sc: Scenario, landscape: Landscape, model: LocalModel) -> np.
                 missing = np.isnan(eq[0])
                 if missing.any():
                     warnings.warn(
-                        f"{sc.path}: {int(missing.sum())} patch(es) have no coexistence "
+                        f"{sc.path or landscape.path}: {int(missing.sum())} patch(es) have no coexistence "
                         "equilibrium (the predator cannot persist there); they start with prey "
                         "at carrying capacity and no predator", TrophoscapeWarning, stacklevel=3)
                     k = model.params["capacity"]
