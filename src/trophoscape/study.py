@@ -196,16 +196,19 @@ def run_study(study: Study, *, progress: bool = False) -> RunResult:
         {"area_km2": study.landscape.area_km2, "links": net.links_per_patch()},
         index=pd.Index(study.ids.astype(str), name="patch_id"),
     )
-    pers = persistence_table(traj, burn_in=burn_in)
+    pers = persistence_table(traj, burn_in=burn_in,
+                             extinction_abundance=sc["run.extinction_abundance"])
     sync, sync_summary = synchrony_table(
         traj, burn_in=burn_in, source=net.source, target=net.target,
         weights={s: study.arc_weights(s) for s in SPECIES},
     )
     table = pd.concat([base, pers, sync], axis=1)
+    contract = ("persists", "occupancy", "mean", "cv", "last_extinction", "sync_local",
+                "sync_region")  # SCENARIO.md order first, then the rest
     ordered = ["area_km2", "links"]
     for s in SPECIES:
-        ordered += [f"{s}_{c}" for c in ("persists", "occupancy", "mean", "cv",
-                                         "last_extinction", "sync_local", "sync_region")]
+        ordered += [f"{s}_{c}" for c in contract]
+    ordered += [c for c in table.columns if c not in ordered]
     table = table[ordered]
     net_summary = net.summary()
     summary = {
@@ -214,7 +217,7 @@ def run_study(study: Study, *, progress: bool = False) -> RunResult:
         "links": net_summary["links"],
         "components": net_summary["components"],
         "isolated_patches": len(net_summary["isolated"]),
-        **regional_persistence(table),
+        **regional_persistence(table, traj, area_km2=study.landscape.area_km2),
         **sync_summary,
         "solver": traj.stats.as_dict(),
     }

@@ -1,9 +1,31 @@
-"""Persistence of each species, patch by patch.
+"""Persistence of each species, patch by patch and over the region.
 
-Columns (for each species ``S``): ``S_persists`` (present at the end), ``S_occupancy``
-(share of census steps after burn-in with S present), ``S_mean`` and ``S_cv`` (abundance
-after burn-in), ``S_last_extinction`` (time of the last census at which a present
-population was found gone; NaN if that never happened).
+Per patch and species ``S`` (columns of the output table):
+
+``S_persists``
+    present at the end of the run (with replicates: in at least half of them).
+``S_occupancy``
+    share of census steps after burn-in with ``S`` present.
+``S_mean``, ``S_cv``
+    mean and coefficient of variation of abundance after burn-in.
+``S_last_extinction``
+    time of the last census at which a population present before was found gone (NaN if
+    never).
+``S_extinctions``, ``S_recolonisations``
+    number of local extinctions (present -> absent) and recolonisations (absent -> present)
+    between successive census steps, over the whole run.
+``S_time_to_extinction``
+    mean length of the occupied spells that ended in a local extinction (NaN where none did).
+``S_margin``
+    lowest abundance after burn-in divided by the quasi-extinction abundance: below 1 means
+    the population was cleared at least once; a margin of 3 means it never came within a
+    factor of 3 of the threshold.
+``S_persistence_share``, ``S_persistence_low``, ``S_persistence_high``
+    with replicates only: share of replicates in which the patch keeps ``S`` at the end,
+    with its Wilson score interval (Wilson 1927).
+
+Trajectories may carry a ``replicate`` dimension (last); per-patch figures are then
+averaged over replicates.
 """
 
 from __future__ import annotations
@@ -13,52 +35,180 @@ import pandas as pd
 
 from ..system import SPECIES
 
-__all__ = ["persistence_table", "regional_persistence"]
+__all__ = ["persistence_table", "regional_persistence", "occupancy_curve", "wilson_interval"]
 
 
-def _values(traj, species):
-    data = getattr(traj, "data", traj)
-    return data["time"].values, np.asarray(data[species].values, dtype=float), data["patch"].values
+def wilson_interval(successes, trials, *, confidence: float = 0.95):
+    """Wilson score interval for a binomial proportion, vectorised.
+
+    ``(p + z²/2n ± z sqrt(p(1-p)/n + z²/4n²)) / (1 + z²/n)`` with ``p = k/n`` and ``z`` the
+    normal quantile (Wilson 1927, J. Am. Stat. Assoc. 22:209; from memory). It agrees with
+    ``scipy.stats.binomtest(k, n).proportion_ci(method="wilson")``; this version takes arrays.
+
+    Returns
+    -------
+    low, high : ndarray
+        NaN where ``trials`` is 0.
+    """
+    from scipy.stats import norm
+
+    k = np.asarray(successes, dtype=float)
+    n = np.asarray(trials, dtype=float)
+    z = norm.ppf(0.5 + confidence / 2.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p = k / n
+        z2n = z * z / n
+        centre = (p + z2n / 2.0) / (1.0 + z2n)
+        half = z * np.sqrt(p * (1.0 - p) / n + z2n / (4.0 * n)) / (1.0 + z2n)
+    low = np.where(n > 0, np.clip(centre - half, 0.0, 1.0), np.nan)
+    high = np.where(n > 0, np.clip(centre + half, 0.0, 1.0), np.nan)
+    return low, high
 
 
-def persistence_table(traj, *, burn_in: float, species=SPECIES) -> pd.DataFrame:
-    """Per-patch persistence figures, indexed by patch id.
+def _cube(data, species):
+    """Abundance as ``(time, patch, replicate)`` (a replicate axis of 1 when absent)."""
+    x = data[species]
+    if "replicate" in x.dims:
+        x = x.transpose("time", "patch", "replicate")
+        return np.asarray(x.values, dtype=float)
+    return np.asarray(x.transpose("time", "patch").values, dtype=float)[:, :, None]
+
+
+def _spell_statistics(present: np.ndarray, time: np.ndarray):
+    """Extinction counts and spell lengths from a presence cube ``(time, patch, rep)``.
+
+    An occupied spell starts at time 0 (if present then) or at a recolonisation, and ends in
+    an extinction; only spells that end are averaged.
+    """
+    lost = present[:-1] & ~present[1:]
+    gained = ~present[:-1] & present[1:]
+    n_lost = lost.sum(axis=0)
+    # the start time of the spell each census belongs to, carried forward along time
+    starts = np.zeros(present.shape, dtype=bool)
+    starts[0] = present[0]
+    starts[1:] = gained
+    start_time = np.where(starts, time[:, None, None], -np.inf)
+    start_time = np.maximum.accumulate(start_time, axis=0)
+    # a spell that ends between census t and t+1 lasted time[t+1] - start_time[t]
+    ended = np.where(lost, time[1:, None, None] - start_time[:-1], 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_spell = np.where(n_lost > 0, ended.sum(axis=0) / n_lost, np.nan)
+    last_idx = lost.shape[0] - 1 - np.argmax(lost[::-1], axis=0)
+    last = np.where(n_lost > 0, time[1:][last_idx], np.nan)
+    return n_lost, gained.sum(axis=0), mean_spell, last
+
+
+def persistence_table(traj, *, burn_in: float, extinction_abundance: float = 1.0,
+                      species=SPECIES, confidence: float = 0.95) -> pd.DataFrame:
+    """Per-patch persistence figures, indexed by patch id (columns: see the module notes).
 
     Parameters
     ----------
     traj : Trajectory or xarray.Dataset
-        Abundances with dims ``(time, patch)``.
+        Abundances with dims ``(time, patch[, replicate])``.
     burn_in : float
-        Times before this are left out of occupancy, mean and CV.
-
-    Returns
-    -------
-    pandas.DataFrame, one row per patch (index ``patch_id``).
+        Times before this are left out of occupancy, mean, CV and margin.
+    extinction_abundance : float
+        The quasi-extinction abundance the run used (for ``S_margin``).
     """
+    data = getattr(traj, "data", traj)
+    time = np.asarray(data["time"].values, dtype=float)
+    ids = data["patch"].values.astype(str)
+    after = time >= burn_in
     columns = {}
-    ids = None
     for s in species:
-        time, x, ids = _values(traj, s)
+        x = _cube(data, s)
+        reps = x.shape[2]
         present = x > 0
-        after = time >= burn_in
         xa = x[after]
         mean = xa.mean(axis=0)
         with np.errstate(invalid="ignore", divide="ignore"):
             cv = np.where(mean > 0, xa.std(axis=0) / mean, np.nan)
-        lost = present[:-1] & ~present[1:]                      # (time - 1, patch)
-        # the last census index at which the population was found gone
-        any_lost = lost.any(axis=0)
-        last_idx = lost.shape[0] - 1 - np.argmax(lost[::-1], axis=0)
-        last = np.where(any_lost, time[1:][last_idx], np.nan)
-        columns[f"{s}_persists"] = present[-1]
-        columns[f"{s}_occupancy"] = present[after].mean(axis=0)
-        columns[f"{s}_mean"] = mean
-        columns[f"{s}_cv"] = cv
-        columns[f"{s}_last_extinction"] = last
-    table = pd.DataFrame(columns, index=pd.Index(ids.astype(str), name="patch_id"))
-    return table
+            margin = (xa.min(axis=0) / extinction_abundance if extinction_abundance > 0
+                      else np.full(mean.shape, np.nan))
+        n_lost, n_gained, spell, last = _spell_statistics(present, time)
+        kept = present[-1].sum(axis=1)
+        low, high = wilson_interval(kept, reps, confidence=confidence)
+        counts = (lambda a: a[:, 0]) if reps == 1 else (lambda a: a.mean(axis=1))
+        columns[f"{s}_persists"] = kept * 2 >= reps
+        columns[f"{s}_occupancy"] = present[after].mean(axis=(0, 2))
+        columns[f"{s}_mean"] = mean.mean(axis=1)
+        columns[f"{s}_cv"] = _nanmean_rows(cv)
+        columns[f"{s}_last_extinction"] = _nanmax_rows(last)
+        columns[f"{s}_extinctions"] = counts(n_lost)
+        columns[f"{s}_recolonisations"] = counts(n_gained)
+        columns[f"{s}_time_to_extinction"] = _nanmean_rows(spell)
+        columns[f"{s}_margin"] = margin.min(axis=1)
+        if reps > 1:  # an interval from one deterministic run would only mislead
+            columns[f"{s}_persistence_share"] = kept / reps
+            columns[f"{s}_persistence_low"] = low
+            columns[f"{s}_persistence_high"] = high
+    return pd.DataFrame(columns, index=pd.Index(ids, name="patch_id"))
 
 
-def regional_persistence(table: pd.DataFrame, species=SPECIES) -> dict:
-    """Share of patches where each species persists (``S_regional_persistence``)."""
-    return {f"{s}_regional_persistence": float(table[f"{s}_persists"].mean()) for s in species}
+def _nanmean_rows(a: np.ndarray) -> np.ndarray:
+    """Mean over replicates ignoring NaN; NaN where a row has no value (no warning)."""
+    ok = ~np.isnan(a)
+    count = ok.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, np.where(ok, a, 0.0).sum(axis=1) / count, np.nan)
+
+
+def _nanmax_rows(a: np.ndarray) -> np.ndarray:
+    ok = ~np.isnan(a)
+    return np.where(ok.any(axis=1), np.where(ok, a, -np.inf).max(axis=1), np.nan)
+
+
+def occupancy_curve(traj, *, species=SPECIES):
+    """Share of patches occupied at each census, per species (mean over replicates).
+
+    Returns
+    -------
+    pandas.DataFrame indexed by time, one column per species.
+    """
+    data = getattr(traj, "data", traj)
+    time = np.asarray(data["time"].values, dtype=float)
+    return pd.DataFrame({s: (_cube(data, s) > 0).mean(axis=(1, 2)) for s in species},
+                        index=pd.Index(time, name="time"))
+
+
+def regional_persistence(table: pd.DataFrame, traj=None, *, species=SPECIES,
+                         area_km2=None, confidence: float = 0.95) -> dict:
+    """Network-level persistence figures.
+
+    ``S_regional_persistence``
+        share of patches where S persists at the end (mean over replicates).
+    ``S_area_persistence``
+        the same, weighted by patch area (when ``area_km2`` is given).
+    ``S_regional_extinction_time``
+        first census with S absent from every patch (NaN if it never happened; with
+        replicates the earliest over replicates).
+    ``S_regional_survival``, ``_low``, ``_high``
+        share of replicates in which S is still present somewhere at the end, with its
+        Wilson interval (the interval only with replicates).
+    """
+    out = {}
+    data = None if traj is None else getattr(traj, "data", traj)
+    for s in species:
+        share = table[f"{s}_persistence_share"] if f"{s}_persistence_share" in table else \
+            table[f"{s}_persists"].astype(float)
+        out[f"{s}_regional_persistence"] = float(share.mean())
+        if area_km2 is not None:
+            w = np.asarray(area_km2, dtype=float)
+            out[f"{s}_area_persistence"] = float(np.sum(w * share.to_numpy()) / w.sum())
+        if data is not None:
+            x = _cube(data, s)
+            time = np.asarray(data["time"].values, dtype=float)
+            anywhere = (x > 0).any(axis=1)                     # (time, replicate)
+            gone = ~anywhere
+            first = np.where(gone.any(axis=0), time[np.argmax(gone, axis=0)], np.nan)
+            out[f"{s}_regional_extinction_time"] = (float(np.nanmin(first))
+                                                    if np.isfinite(first).any() else float("nan"))
+            alive = int(anywhere[-1].sum())
+            reps = anywhere.shape[1]
+            out[f"{s}_regional_survival"] = alive / reps
+            if reps > 1:
+                low, high = wilson_interval(alive, reps, confidence=confidence)
+                out[f"{s}_regional_survival_low"] = float(low)
+                out[f"{s}_regional_survival_high"] = float(high)
+    return out
