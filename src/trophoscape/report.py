@@ -1,9 +1,16 @@
-"""Figures of a run and the self-contained HTML report (figures embedded)."""
+"""Figures of a run and the self-contained HTML report (figures embedded as data URIs).
+
+The report opens with the scenario in plain words and the caution, then the headline
+figures, then one section per analysis; every figure carries one sentence on how to read it.
+Figures whose columns a run did not produce are left out.
+"""
 
 from __future__ import annotations
 
 import base64
 import html
+import math
+from dataclasses import dataclass
 from pathlib import Path
 
 from .system import SPECIES
@@ -16,13 +23,49 @@ CAUTION = (
     "qualified practitioners that local rules require."
 )
 
-#: (column, title, legend label, kind) for each per-patch map.
-MAPS = [
-    ("{s}_persists", "{S}: present at the end of the run", "present at the end", "categorical"),
-    ("{s}_occupancy", "{S}: occupancy after burn-in", "share of census steps occupied", "sequential"),
-    ("{s}_sync_local", "{S}: synchrony with linked patches",
-     "link-weighted mean correlation of log(1 + abundance)", "diverging"),
-]
+
+@dataclass(frozen=True)
+class MapSpec:
+    """One per-patch map: column pattern, title, legend label, colouring, how to read it."""
+
+    column: str
+    title: str
+    label: str
+    kind: str  # "sequential" | "diverging" | "categorical"
+    read: str
+
+
+SECTIONS = {
+    "Persistence": [
+        MapSpec("{s}_persists", "{S}: present at the end of the run", "at the end",
+                "categorical", "Patches where the {s} was still present when the run ended."),
+        MapSpec("{s}_occupancy", "{S}: occupancy after burn-in", "share of census steps occupied",
+                "sequential", "1 means the {s} was present at every census after burn-in; "
+                "low values mark patches it keeps losing."),
+        MapSpec("{s}_persistence_share", "{S}: share of replicates keeping it",
+                "share of replicates", "sequential",
+                "Across the replicate runs, how often the patch still held the {s} at the end."),
+    ],
+    "Synchrony": [
+        MapSpec("{s}_sync_local", "{S}: synchrony with linked patches",
+                "correlation with linked patches", "diverging",
+                "Link-weighted mean correlation of log(1 + abundance) with the linked patches: "
+                "high values mean the patch rises and falls with its neighbours, which makes "
+                "a shared collapse more likely."),
+        MapSpec("{s}_phase_locking", "{S}: phase locking with the region",
+                "phase-locking value (0 to 1)", "sequential",
+                "How steadily the patch's cycle keeps step with the regional mean cycle."),
+        MapSpec("{s}_sync_group", "{S}: groups of patches that move together", "group",
+                "categorical", "Patches of one colour form a group whose numbers move "
+                "together; -1 marks patches without enough variation to tell."),
+    ],
+    "Metapopulation capacity": [
+        MapSpec("{s}_capacity_share", "{S}: share of metapopulation capacity",
+                "share of the leading eigenvector", "sequential",
+                "Each patch's contribution to the metapopulation capacity of the network "
+                "(Hanski & Ovaskainen 2000): large, well-connected patches score highest."),
+    ],
+}
 
 
 def _pick_panel_patches(result, k=6):
@@ -35,74 +78,143 @@ def _pick_panel_patches(result, k=6):
 
 
 def write_figures_and_report(folder, result, gdf, links, summary) -> None:
-    """Draw the maps and panels into ``folder/maps`` and write ``folder/report.html``."""
+    """Draw the maps and charts into ``folder/maps`` and write ``folder/report.html``."""
     from . import plot
 
     folder = Path(folder)
     maps = folder / "maps"
     maps.mkdir(exist_ok=True)
     sc = result.study.scenario
-    figures = []
-    for s in SPECIES:
-        for column, title, label, kind in MAPS:
-            col = column.format(s=s)
-            path = maps / f"{col}.png"
-            plot.patch_map(gdf, col, path=path, links=links,
-                           title=title.format(S=s.capitalize()), label=label,
-                           diverging=kind == "diverging", categorical=kind == "categorical")
-            figures.append((title.format(S=s.capitalize()), path))
-    panels = maps / "timeseries.png"
-    plot.timeseries_panels(result.trajectory.data, _pick_panel_patches(result), path=panels,
-                           time_unit=sc["time_unit"], burn_in=sc["run.burn_in"])
-    figures.append(("Abundance over time in six patches (largest to smallest)", panels))
-    occupancy = maps / "occupancy.png"
-    plot.occupancy_curve(result.trajectory.data, path=occupancy, time_unit=sc["time_unit"])
-    figures.append(("Share of patches occupied over time", occupancy))
-    (folder / "report.html").write_text(_html(result, summary, figures), encoding="utf-8")
+    sections: dict[str, list] = {}
+    for section, specs in SECTIONS.items():
+        for spec in specs:
+            for s in SPECIES:
+                col = spec.column.format(s=s)
+                if col not in gdf.columns:
+                    continue
+                path = maps / f"{col}.png"
+                plot.patch_map(gdf, col, path=path, links=links,
+                               title=spec.title.format(S=s.capitalize()), label=spec.label,
+                               diverging=spec.kind == "diverging",
+                               categorical=spec.kind == "categorical")
+                sections.setdefault(section, []).append(
+                    (spec.title.format(S=s.capitalize()), path, spec.read.format(s=s)))
+    data = result.trajectory.data
+    panels = plot.timeseries_panels(data, _pick_panel_patches(result),
+                                    path=maps / "timeseries.png", time_unit=sc["time_unit"],
+                                    burn_in=sc["run.burn_in"])
+    occupancy = plot.occupancy_curve(data, path=maps / "occupancy.png",
+                                     time_unit=sc["time_unit"])
+    sections.setdefault("Persistence", []).extend([
+        ("Share of patches occupied over time", occupancy,
+         "A falling curve means a species is losing patches faster than it recolonises them."),
+        ("Abundance in six patches, largest to smallest", panels,
+         "Prey (solid) and predator (dashed) numbers; the grey band is the burn-in, left out "
+         "of every figure above."),
+    ])
+    extras = getattr(result, "extras", {}) or {}
+    if extras.get("by_distance") and hasattr(plot, "synchrony_distance_plot"):
+        path = plot.synchrony_distance_plot(extras["by_distance"],
+                                            path=maps / "synchrony_distance.png")
+        sections.setdefault("Synchrony", []).append(
+            ("Synchrony against distance", path,
+             "Correlation between pairs of patches by the distance between them, with a "
+             "bootstrap band; the faster it falls, the more local the fluctuations."))
+    if extras.get("kuramoto") and hasattr(plot, "kuramoto_plot"):
+        path = plot.kuramoto_plot(extras["kuramoto"], path=maps / "phase_order.png",
+                                  time_unit=sc["time_unit"])
+        sections.setdefault("Synchrony", []).append(
+            ("Phase order over time", path,
+             "The Kuramoto order parameter: 1 when every patch cycles in step, near 0 when "
+             "their cycles are spread out."))
+    (folder / "report.html").write_text(_html(result, summary, sections), encoding="utf-8")
 
 
 def _img(path: Path) -> str:
-    data = base64.b64encode(path.read_bytes()).decode("ascii")
-    return f'<img alt="{html.escape(path.stem)}" src="data:image/png;base64,{data}">'
+    data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
+    return f'<img alt="{html.escape(Path(path).stem)}" src="data:image/png;base64,{data}">'
 
 
-def _html(result, summary, figures) -> str:
+def _fmt(value, kind="number"):
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return "–"
+    if kind == "share":
+        return f"{value:.1%}"
+    if isinstance(value, float):
+        return f"{value:.3g}"
+    return str(value)
+
+
+def _scenario_words(result) -> str:
     sc = result.study.scenario
-    esc = html.escape
-    rows = [
-        ("patches", summary["patches"]), ("links", summary["links"]),
-        ("connected groups of patches", summary["components"]),
-        ("isolated patches", summary["isolated_patches"]),
-    ]
+    land, net = result.study.landscape, result.study.network.summary()
+    area = land.area_km2
+    return (
+        f"{net['patches']} habitat patches ({area.sum():.1f} km² in all, {area.min():.2g} to "
+        f"{area.max():.2g} km² each) joined by {net['links']} links into "
+        f"{net['components']} connected group(s), {len(net['isolated'])} patch(es) isolated. "
+        f"Prey grow by the {sc['prey.growth']} form at rate {_fmt(sc['prey.growth_rate'])} per "
+        f"{sc['time_unit']} up to {_fmt(sc['prey.capacity_density'])} per km² (times patch "
+        f"quality); predators eat them with a {sc['predation.response'].replace('_', '–')} "
+        f"response and die at rate {_fmt(sc['predator.mortality_rate'])} per "
+        f"{sc['time_unit']}. Dispersal follows a {sc['dispersal.kernel']} kernel up to "
+        f"{_fmt(sc['dispersal.max_distance_km'])} km. The run lasts "
+        f"{_fmt(sc['run.duration'])} {sc['time_unit']}s; the first "
+        f"{_fmt(sc['run.burn_in'])} are burn-in."
+    )
+
+
+def _headline_rows(summary):
+    rows = []
     for s in SPECIES:
-        rows.append((f"{s}: share of patches where it persists",
-                     f"{summary[f'{s}_regional_persistence']:.1%}"))
-        sync = summary[f"{s}_synchrony"]
-        rows.append((f"{s}: mean pairwise synchrony", "n/a" if sync != sync else f"{sync:.2f}"))
+        rows += [
+            (f"{s}: share of patches where it persists",
+             _fmt(summary.get(f"{s}_regional_persistence"), "share")),
+            (f"{s}: the same, weighted by area", _fmt(summary.get(f"{s}_area_persistence"), "share")),
+            (f"{s}: mean pairwise synchrony", _fmt(summary.get(f"{s}_synchrony"))),
+        ]
+        for key, label in ((f"{s}_kuramoto_mean", f"{s}: mean phase order"),
+                           (f"{s}_community_synchrony", f"{s}: community synchrony φ"),
+                           (f"{s}_metapopulation_capacity", f"{s}: metapopulation capacity λ_M")):
+            if key in summary:
+                rows.append((label, _fmt(summary[key])))
+    if "stability" in summary:
+        rows.append(("coexistence state", summary["stability"]))
     solver = summary["solver"]
     rows.append(("solver", f"{solver['method']}, {solver['nfev']} right-hand-side evaluations"))
-    table = "\n".join(f"<tr><th>{esc(str(k))}</th><td>{esc(str(v))}</td></tr>" for k, v in rows)
-    figs = "\n".join(f"<figure>{_img(p)}<figcaption>{esc(t)}</figcaption></figure>"
-                     for t, p in figures)
+    return rows
+
+
+def _html(result, summary, sections) -> str:
+    sc = result.study.scenario
+    esc = html.escape
+    table = "\n".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>"
+                      for k, v in _headline_rows(summary))
+    body = []
+    for name, figures in sections.items():
+        body.append(f"<h2>{esc(name)}</h2>")
+        body.extend(f"<figure>{_img(p)}<figcaption><strong>{esc(t)}.</strong> {esc(r)}"
+                    "</figcaption></figure>" for t, p, r in figures)
+    prov = summary["provenance"]
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8">
 <title>{esc(sc.name)} — trophoscape report</title>
 <style>
-body {{ font-family: sans-serif; max-width: 1100px; margin: 2em auto; color: #222; }}
+body {{ font-family: sans-serif; max-width: 1120px; margin: 2em auto; color: #222;
+        line-height: 1.4; }}
 .caution {{ border-left: 4px solid #b35806; background: #fdf3e7; padding: .6em 1em; }}
 table {{ border-collapse: collapse; }} th, td {{ text-align: left; padding: .2em .8em; }}
 th {{ font-weight: normal; color: #555; }}
-figure {{ display: inline-block; margin: .5em; max-width: 520px; vertical-align: top; }}
+figure {{ display: inline-block; margin: .5em; width: 530px; vertical-align: top; }}
 figure img {{ max-width: 100%; }} figcaption {{ font-size: .9em; color: #444; }}
 </style></head><body>
 <h1>{esc(sc.name)}</h1>
+<p>{esc(_scenario_words(result))}</p>
 <p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>
 <h2>Headline results</h2>
 <table>{table}</table>
-<h2>Maps and figures</h2>
-{figs}
-<p><small>Run {esc(summary['provenance']['created'])} with trophoscape
-{esc(summary['provenance']['version'])}; scenario sha256
-{esc(summary['provenance']['scenario_sha256'][:12])}…</small></p>
+{''.join(body)}
+<p><small>Run {esc(prov['created'])} with trophoscape {esc(prov['version'])}; scenario sha256
+{esc(prov['scenario_sha256'][:12])}…; seed {esc(str(prov['seed']))}.</small></p>
 </body></html>
 """
