@@ -5,7 +5,8 @@ Between census steps the system is a deterministic ODE integrated with one of sc
 output; local populations below the quasi-extinction abundance (and tiny negative values
 left by the integrator) are set to zero. The solver keeps running across census times
 while the census changes nothing, and when it must restart it starts with the step size
-it had reached, so the census does not cost a fresh step-size search each time.
+it had reached (halved, since the zeroed components make the first step after a census
+harder), so the census does not cost a fresh step-size search each time.
 """
 
 from __future__ import annotations
@@ -219,8 +220,10 @@ def simulate(
                 bar.update(1)
                 if changed and k < times.size:
                     harvest(solver)
+                    # half the step reached: the full one was rejected at nearly every
+                    # restart once the census had zeroed components (benchmarks/README.md)
                     h = getattr(solver, "h_abs", None) or solver.step_size
-                    solver = start(times[k - 1], y_k, h)
+                    solver = start(times[k - 1], y_k, 0.5 * h)
                     restarts += 1
                     break
         harvest(solver)
