@@ -150,12 +150,12 @@ def test_geographic_crs_option_is_rejected(tmp_path):
     with pytest.raises(InputError) as err:
         read_patches(path, crs="EPSG:4326")
     assert str(err.value) == (
-        "field '[patches].crs': 'EPSG:4326' is a geographic (degrees) CRS; distances and areas "
+        "field 'patches.crs': 'EPSG:4326' is a geographic (degrees) CRS; distances and areas "
         "need a projected CRS in metres such as a UTM zone 'EPSG:326NN', or 'auto'")
     with pytest.raises(InputError) as err:
         read_patches(path, crs="EPSG:99999999")
     assert str(err.value) == (
-        "field '[patches].crs': 'EPSG:99999999' is not a CRS pyproj understands; expected "
+        "field 'patches.crs': 'EPSG:99999999' is not a CRS pyproj understands; expected "
         "'auto' or a projected CRS in metres such as 'EPSG:3035'")
 
 

@@ -71,7 +71,7 @@ def test_kernels_match_scipy_distributions():
     np.testing.assert_array_equal(kernel_weight("step", d, 3.0), np.ones_like(d))
     with pytest.raises(InputError) as err:
         kernel_weight("cauchy", d, 1.0)
-    assert str(err.value) == ("field '[dispersal].kernel': unknown kernel 'cauchy'; expected one "
+    assert str(err.value) == ("field 'dispersal.kernel': unknown kernel 'cauchy'; expected one "
                               "of 'exponential', 'gaussian', 'step'")
 
 
@@ -434,13 +434,13 @@ def test_error_corridor_geometry_and_survival(tmp_path):
 def test_bad_options_are_rejected():
     land = chain_landscape(2, spacing_km=2.0, size_km=1.0)
     assert raises(build_network, land, kernel="levy") == (
-        "field '[dispersal].kernel': unknown kernel 'levy'; expected one of 'exponential', "
+        "field 'dispersal.kernel': unknown kernel 'levy'; expected one of 'exponential', "
         "'gaussian', 'step', 'none'")
     assert raises(build_network, land, distance="edge") == (
-        "field '[dispersal].distance': unknown distance 'edge'; expected 'boundary' or "
+        "field 'dispersal.distance': unknown distance 'edge'; expected 'boundary' or "
         "'centroid'")
     assert raises(build_network, land, max_distance_km=-1) == (
-        "field '[dispersal].max_distance_km': must be a finite number >= 0, got -1")
+        "field 'dispersal.max_distance_km': must be a finite number >= 0, got -1")
 
 
 def test_no_links_at_all():

@@ -47,7 +47,7 @@ CASES = [
     ("[patches]\npath = 'p.geojson'\n[prey]\ngrowth_rte = 1.0\n",
      "s.toml: field 'prey.growth_rte': unknown key; did you mean 'growth_rate'?"),
     ("[patches]\npath = 'p.geojson'\n[preditor]\nconversion = 0.1\n",
-     "s.toml: field 'preditor': unknown section or key 'preditor'; did you mean 'predator'?"),
+     "s.toml: field 'preditor': unknown section or top-level key; did you mean 'predator'?"),
     ("[patches]\nid_field = 'x'\n",
      "s.toml: field 'patches.path': is required: the patch file (GeoJSON, GeoPackage or "
      "Shapefile) relative to the scenario"),

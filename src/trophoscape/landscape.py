@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import difflib
 import json
+import re
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -433,7 +434,11 @@ def _read_vector(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
     if not path.exists():
         raise InputError(f"no such file; expected {_VECTOR_FORMATS}", file=path)
     try:
-        return geopandas.read_file(path, engine="pyogrio", layer=layer)
+        with warnings.catch_warnings():
+            # a text value among numbers: the field checks that follow report it properly
+            warnings.filterwarnings("ignore", message="Could not parse column",
+                                    category=UserWarning)
+            return geopandas.read_file(path, engine="pyogrio", layer=layer)
     except Exception as exc:  # pyogrio/GDAL raise several unrelated types for unreadable data
         if path.suffix.lower() in (".geojson", ".json"):
             try:
@@ -449,8 +454,12 @@ def _read_vector(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
 
 
 def _first_line(exc: BaseException) -> str:
+    """The gist of a GDAL/pyogrio error: first line, without the path or driver advice."""
     text = str(exc).strip()
-    return text.splitlines()[0] if text else type(exc).__name__
+    if not text:
+        return type(exc).__name__
+    text = text.splitlines()[0].split("; It might help")[0].rstrip(".")
+    return re.sub(r"^'[^']*' ", "", text)
 
 
 def _is_auto(crs) -> bool:
@@ -458,7 +467,7 @@ def _is_auto(crs) -> bool:
 
 
 def _user_crs(crs) -> pyproj.CRS:
-    key = "[patches].crs"
+    key = "patches.crs"
     try:
         parsed = pyproj.CRS.from_user_input(crs)
     except pyproj.exceptions.CRSError:

@@ -76,7 +76,7 @@ def kernel_weight(kernel: str, distance_km, scale_km) -> np.ndarray:
     """
     if kernel not in KERNELS:
         raise InputError(f"unknown kernel {kernel!r}; expected one of "
-                         f"{', '.join(map(repr, KERNELS))}", field="[dispersal].kernel")
+                         f"{', '.join(map(repr, KERNELS))}", field="dispersal.kernel")
     d = np.asarray(distance_km, dtype=np.float64)
     return KERNELS[kernel](d, np.asarray(scale_km, dtype=np.float64))
 
@@ -318,12 +318,12 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
     """
     if kernel not in _KERNEL_NAMES:
         raise InputError(f"unknown kernel {kernel!r}; expected one of "
-                         f"{', '.join(map(repr, _KERNEL_NAMES))}", field="[dispersal].kernel")
+                         f"{', '.join(map(repr, _KERNEL_NAMES))}", field="dispersal.kernel")
     if distance not in _DISTANCES:
         raise InputError(f"unknown distance {distance!r}; expected 'boundary' or 'centroid'",
-                         field="[dispersal].distance")
-    max_distance_km = _nonnegative(max_distance_km, "[dispersal].max_distance_km")
-    corridor_snap_km = _nonnegative(corridor_snap_km, "[dispersal].corridor_snap_km")
+                         field="dispersal.distance")
+    max_distance_km = _nonnegative(max_distance_km, "dispersal.max_distance_km")
+    corridor_snap_km = _nonnegative(corridor_snap_km, "dispersal.corridor_snap_km")
 
     parts = []
     if kernel != "none":

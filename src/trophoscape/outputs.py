@@ -45,8 +45,8 @@ def provenance(study) -> dict:
     return {
         "package": "trophoscape",
         "version": __version__,
-        "scenario_file": None if sc.path is None else str(sc.path),
-        "scenario_sha256": hashlib.sha256(sc.text.encode("utf-8")).hexdigest(),
+        "scenario_file": None if sc.path is None else str(Path(sc.path).resolve()),
+        "scenario_sha256": sc.sha256,
         "input_sha256": {k: file_sha256(v) for k, v in inputs.items() if v is not None},
         "seed": sc["run.seed"],
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
@@ -62,6 +62,9 @@ def staged_folder(out):
     out = Path(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(staging, 0o777 & ~umask)  # mkdtemp makes it private; the result should not be
     try:
         yield staging
     except BaseException:

@@ -481,3 +481,139 @@ def _save(fig, path: Path) -> Path:
     finally:
         fig.clear()  # a bare Figure is not registered with pyplot; clearing frees it
     return path
+
+
+# --------------------------------------------------------------------------------------------
+# synchrony
+
+
+_SPECIES_STYLES = {"prey": PREY_STYLE, "predator": PREDATOR_STYLE}
+
+
+def _species_style(name, k):
+    # Species other than the two usual ones take the next colours of the safe palette.
+    return _SPECIES_STYLES.get(name, {"color": OKABE_ITO[(k + 2) % len(OKABE_ITO)],
+                                      "linestyle": "-"})
+
+
+def synchrony_distance_plot(tables, *, path, title="Synchrony against distance") -> Path:
+    """Correlation between patches against the distance between them, with bootstrap bands.
+
+    Parameters
+    ----------
+    tables : dict of str to pandas.DataFrame
+        Per species, the table of :func:`trophoscape.analysis.synchrony.synchrony_by_distance`
+        (columns ``distance_km``, ``correlation``, ``low``, ``high``, ``pairs``).
+    path : str or path-like
+        PNG file to write.
+    title : str
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+    """
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    need = ("distance_km", "correlation", "low", "high", "pairs")
+    for name, table in tables.items():
+        missing = [c for c in need if c not in table.columns]
+        if missing:
+            raise InputError(f"the table for {name} lacks {', '.join(missing)}", field=name)
+    fig = Figure(figsize=(6.4, 3.8), layout="constrained")
+    ax = fig.add_subplot()
+    ax.axhline(0.0, color="0.45", linewidth=0.8, zorder=1)
+    top, bottom, right = 0.0, 0.0, 0.0
+    for k, (name, table) in enumerate(tables.items()):
+        t = table[table["pairs"] > 0]
+        if not len(t):
+            continue
+        style = _species_style(name, k)
+        d = t["distance_km"].to_numpy(float)
+        if np.isfinite(t["low"]).any():
+            ax.fill_between(d, t["low"].to_numpy(float), t["high"].to_numpy(float),
+                            color=style["color"], alpha=0.2, linewidth=0, zorder=2)
+        ax.plot(d, t["correlation"].to_numpy(float), marker="o", markersize=3.5,
+                linewidth=1.4, label=name, zorder=3, **style)
+        values = t[["correlation", "low", "high"]].to_numpy(float)
+        values = values[np.isfinite(values)]
+        if values.size:
+            top, bottom = max(top, values.max()), min(bottom, values.min())
+        right = max(right, float(t["bin_upper_km"].max()) if "bin_upper_km" in t else d.max())
+    # Fit the data (with the zero line in view) rather than the full [-1, 1] range, so a weak
+    # decay is not squeezed into a strip.
+    span = max(top - bottom, 0.1)
+    ax.set_ylim(max(bottom - 0.08 * span, -1.05), min(top + 0.12 * span, 1.05))
+    ax.set_xlim(0.0, right * 1.02 if right > 0 else 1.0)
+    ax.set_xlabel("distance between patch centroids (km)", fontsize=9)
+    ax.set_ylabel("correlation of detrended\nlog(1 + abundance)", fontsize=9)
+    ax.tick_params(labelsize=8)
+    ax.grid(True, color="0.9", linewidth=0.5)
+    handles, labels = ax.get_legend_handles_labels()
+    if handles:
+        from matplotlib.patches import Patch
+
+        level = next((t.attrs["level"] for t in tables.values() if "level" in t.attrs), 0.95)
+        handles.append(Patch(facecolor="0.6", alpha=0.35, label=f"{level:.0%} bootstrap band"))
+        ax.legend(handles=handles, frameon=False, fontsize=8, loc="upper right")
+    ax.set_title(title, fontsize=10)
+    return _save(fig, path)
+
+
+def kuramoto_plot(series, *, path, time_unit="year", title="Phase synchrony") -> Path:
+    """Kuramoto order parameter R(t) of each species over time, with its mean.
+
+    Parameters
+    ----------
+    series : dict of str to xarray.DataArray
+        Per species, R(t) with a ``time`` coordinate (values in [0, 1]), as returned by
+        :func:`trophoscape.analysis.synchrony.phase_synchrony`.
+    path : str or path-like
+        PNG file to write.
+    time_unit : str
+        Unit of the ``time`` coordinate, for the axis label.
+    title : str
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+    """
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    fig = Figure(figsize=(6.4, 3.6), layout="constrained")
+    ax = fig.add_subplot()
+    lo, hi = np.inf, -np.inf
+    for k, (name, r) in enumerate(series.items()):
+        if "time" not in r.dims:
+            raise InputError(f"R(t) for {name} needs a 'time' dim, got {r.dims}", field=name)
+        time = np.asarray(r["time"].values, dtype=float)
+        values = np.asarray(r.values, dtype=float)
+        if not np.isfinite(values).any():
+            continue
+        colour = _species_style(name, k)["color"]
+        mean = float(np.nanmean(values))
+        ax.plot(time, values, color=colour, linewidth=1.1, linestyle="-", label=name,
+                zorder=3)
+        ax.axhline(mean, color=colour, linewidth=1.2, linestyle=(0, (5, 3)), zorder=4,
+                   label=f"{name} mean {mean:.2f}")
+        lo, hi = min(lo, time.min()), max(hi, time.max())
+    ax.set_ylim(0.0, 1.02)
+    if np.isfinite(lo) and hi > lo:
+        ax.set_xlim(lo, hi)
+    ax.set_xlabel(f"time ({time_unit})", fontsize=9)
+    ax.set_ylabel("order parameter R (0 = no phase\nagreement, 1 = all in phase)", fontsize=9)
+    ax.tick_params(labelsize=8)
+    ax.grid(True, color="0.9", linewidth=0.5)
+    handles, labels = ax.get_legend_handles_labels()
+    if handles:
+        # Above the axes: R(t) uses the whole height, so any inside corner would cover it.
+        fig.legend(handles=handles, labels=labels, loc="outside upper center",
+                   ncol=min(len(handles), 4), frameon=False, fontsize=8)
+    ax.set_title(title, fontsize=10)
+    return _save(fig, path)
+
+
+__all__ += ["synchrony_distance_plot", "kuramoto_plot"]

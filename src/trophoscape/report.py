@@ -33,6 +33,7 @@ class MapSpec:
     label: str
     kind: str  # "sequential" | "diverging" | "categorical"
     read: str
+    missing: object = None  # a value that means "no value" (drawn grey)
 
 
 SECTIONS = {
@@ -57,7 +58,8 @@ SECTIONS = {
                 "How steadily the patch's cycle keeps step with the regional mean cycle."),
         MapSpec("{s}_sync_group", "{S}: groups of patches that move together", "group",
                 "categorical", "Patches of one colour form a group whose numbers move "
-                "together; -1 marks patches without enough variation to tell."),
+                "together (group 0 is the largest); grey patches have too little variation "
+                "to tell.", missing=-1),
     ],
     "Metapopulation capacity": [
         MapSpec("{s}_capacity_share", "{S}: share of metapopulation capacity",
@@ -93,7 +95,12 @@ def write_figures_and_report(folder, result, gdf, links, summary) -> None:
                 if col not in gdf.columns:
                     continue
                 path = maps / f"{col}.png"
-                plot.patch_map(gdf, col, path=path, links=links,
+                frame = gdf
+                if spec.missing is not None:
+                    frame = gdf[[col, "geometry"]].copy()
+                    frame[col] = frame[col].where(frame[col] != spec.missing).astype(object)
+                    frame[col] = frame[col].map(lambda v: v if v != v else f"group {int(v)}")
+                plot.patch_map(frame, col, path=path, links=links,
                                title=spec.title.format(S=s.capitalize()), label=spec.label,
                                diverging=spec.kind == "diverging",
                                categorical=spec.kind == "categorical")

@@ -9,6 +9,7 @@ known name, so a misspelt key is never silently ignored. Nothing in a scenario i
 from __future__ import annotations
 
 import difflib
+import hashlib
 import math
 import tomllib
 from dataclasses import dataclass, field
@@ -76,6 +77,12 @@ def _text(optional=False):
         return None
 
     return check
+
+
+def _flag(v):
+    if not isinstance(v, bool):
+        return f"must be true or false, got {v!r}"
+    return None
 
 
 def _number_or(word, **bounds):
@@ -148,6 +155,12 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "seed": Key(1, _number(0, integer=True)),
         "replicates": Key(1, _number(1, integer=True)),
     },
+    "analysis": {
+        "stability": Key(True, _flag, doc="equilibrium and leading eigenvalues of the network"),
+        "capacity": Key(True, _flag, doc="metapopulation capacity and each patch's share"),
+        "synchrony_pairs": Key(200_000, _number(10, integer=True),
+                               doc="pairs sampled for synchrony against distance"),
+    },
 }
 
 #: Sections of the contract that this version reads but cannot act on yet.
@@ -171,6 +184,12 @@ class Scenario:
     path: Path | None = None
     base_dir: Path = field(default_factory=Path.cwd)
     text: str = ""
+    sha256: str = ""  # of the file's bytes (of ``text`` for a scenario built in code)
+
+    def __post_init__(self):
+        if not self.sha256:
+            object.__setattr__(self, "sha256",
+                               hashlib.sha256(self.text.encode("utf-8")).hexdigest())
 
     def __getitem__(self, key: str):
         return self.values[key]
@@ -237,7 +256,8 @@ def read_scenario(path) -> Scenario:
     """
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        raw_bytes = path.read_bytes()
+        text = raw_bytes.decode("utf-8")
     except FileNotFoundError:
         raise InputError("scenario file not found", file=path) from None
     except (OSError, UnicodeDecodeError) as exc:
@@ -250,7 +270,9 @@ def read_scenario(path) -> Scenario:
             detail = detail.replace("(at end of document)",
                                     f"(at the end, line {text.count(chr(10)) or 1})")
         raise InputError(f"not valid TOML: {detail}", file=path) from None
-    return parse_scenario(raw, path=path, base_dir=path.resolve().parent, text=text)
+    sc = parse_scenario(raw, path=path, base_dir=path.parent, text=text)
+    object.__setattr__(sc, "sha256", hashlib.sha256(raw_bytes).hexdigest())
+    return sc
 
 
 def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Scenario:
@@ -266,14 +288,16 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
                 f"the [{name}] section ({NOT_YET[name]}) is not supported by this version "
                 "of trophoscape; remove it to run without it", file=file, field=name)
         if name not in SCHEMA:
-            raise InputError(f"unknown section or key {name!r}"
-                             f"{_suggest(name, sections + list(SCHEMA['']))}", file=file,
-                             field=name)
+            hint = _suggest(name, sections + list(SCHEMA[""])) or (
+                f"; the sections are {', '.join(sections)}")
+            raise InputError(f"unknown section or top-level key{hint}", file=file, field=name)
         if not isinstance(content, dict):
             raise InputError(f"must be a table [{name}], got {content!r}", file=file, field=name)
         for key in content:
             if key not in SCHEMA[name]:
-                raise InputError(f"unknown key{_suggest(key, SCHEMA[name])}",
+                hint = _suggest(key, SCHEMA[name]) or (
+                    f"; [{name}] takes {', '.join(SCHEMA[name])}")
+                raise InputError(f"unknown key{hint}",
                                  file=file, field=f"{name}.{key}")
 
     for section, keys in SCHEMA.items():
@@ -313,6 +337,7 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
         raise InputError("replicates other than 1 need noise, which this version does not "
                          "model yet; set replicates = 1", file=file, field="run.replicates")
     values["run.seed"] = int(values["run.seed"])
+    values["analysis.synchrony_pairs"] = int(values["analysis.synchrony_pairs"])
     values["run.replicates"] = int(values["run.replicates"])
     base = Path(base_dir) if base_dir is not None else Path.cwd()
     return Scenario(values=MappingProxyType(values), path=None if path is None else Path(path),

@@ -197,10 +197,14 @@ def simulate(
             steps += 1
             if solver.status == "failed":
                 harvest(solver)
-                raise RunError(
-                    f"the ODE solver ({method}) failed at time {solver.t:.6g}: {outcome}; "
-                    "try method = \"BDF\" or \"Radau\" for stiff runs, or looser rtol/atol"
-                )
+                if np.abs(solver.y).max() > 1e12:
+                    advice = ("abundances passed 1e12 individuals: check for explosive growth "
+                              "(e.g. exponential prey with no predator)")
+                else:
+                    advice = ('try method = "BDF" or "Radau" for stiff runs, or looser '
+                              "rtol/atol")
+                raise RunError(f"the ODE solver ({method}) failed at time {solver.t:.6g}: "
+                               f"{str(outcome).rstrip('.')}; {advice}")
             if not np.all(np.isfinite(solver.y)):
                 harvest(solver)
                 raise RunError(

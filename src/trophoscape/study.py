@@ -15,8 +15,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .analysis.persistence import persistence_table, regional_persistence
-from .analysis.synchrony import synchrony_table
+from .analysis.capacity import capacity_analysis
+from .analysis.persistence import occupancy_curve, persistence_table, regional_persistence
+from .analysis.stability import stability_analysis
+from .analysis.synchrony import synchrony_analysis
 from .dynamics import PARAMETER_KEYS, LocalModel, interior_equilibrium
 from .errors import InputError, TrophoscapeWarning
 from .landscape import Landscape, read_patches
@@ -25,7 +27,7 @@ from .scenario import FieldRef, Scenario, bounds_of, read_scenario
 from .simulate import Trajectory, simulate
 from .system import SPECIES, CoupledSystem, pack
 
-__all__ = ["Study", "RunResult", "load_study", "build_study", "run_study"]
+__all__ = ["Study", "RunResult", "load_study", "build_study", "run_study", "analyse"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -57,6 +59,7 @@ class RunResult:
     trajectory: Trajectory
     patches: pd.DataFrame
     summary: dict
+    extras: dict = field(default_factory=dict, repr=False)
 
 
 def load_study(path) -> Study:
@@ -80,7 +83,7 @@ def _per_patch(scenario: Scenario, landscape: Landscape, key: str) -> np.ndarray
     if bad.any():
         i = int(np.argmax(bad))
         rule = f"{'>' if lo_open else '>='} {lo}" + (f" and <= {hi}" if hi is not None else "")
-        raise InputError(f"value {values[i]!r} for {key} must be {rule}",
+        raise InputError(f"value {float(values[i])!r} for {key} must be {rule}",
                          file=landscape.path, feature=_feature(landscape, i), field=value.field)
     return values
 
@@ -90,6 +93,24 @@ def _feature(landscape: Landscape, i: int):
 
 
 def build_study(scenario: Scenario) -> Study:
+    """Validate the inputs a scenario names and build its coupled system.
+
+    Raises
+    ------
+    InputError
+        For anything wrong in the scenario, the patch file, the corridors or the links table;
+        a problem with a scenario value names the scenario file.
+    """
+    try:
+        return _build_study(scenario)
+    except InputError as exc:
+        if exc.file is None:
+            raise InputError(exc.message, file=scenario.path, feature=exc.feature,
+                             field=exc.field) from None
+        raise
+
+
+def _build_study(scenario: Scenario) -> Study:
     """Validate the inputs a scenario names and build its coupled system.
 
     Raises
@@ -125,10 +146,15 @@ def build_study(scenario: Scenario) -> Study:
             field=sc["patches.quality_field"] or "prey.capacity_density")
     if growth == "allee" and np.any(params["allee_density"] >= params["capacity"]):
         i = int(np.argmax(params["allee_density"] >= params["capacity"]))
+        qf = sc["patches.quality_field"]
+        made_of = (f"prey.capacity_density {sc['prey.capacity_density']:g} × {qf} "
+                   f"{quality[i]:g}" if qf else "prey.capacity_density")
         raise InputError(
-            f"prey.allee_density ({params['allee_density'][i]:g}) must be below the carrying "
-            f"capacity density ({params['capacity'][i]:g})",
-            file=landscape.path, feature=_feature(landscape, i), field="prey.allee_density")
+            f"carrying capacity {params['capacity'][i]:g} per km² ({made_of}) is not above the "
+            f"Allee threshold prey.allee_density {params['allee_density'][i]:g}; raise the "
+            "quality or lower the threshold",
+            file=landscape.path, feature=_feature(landscape, i),
+            field=qf or "prey.capacity_density")
     model = LocalModel(growth=growth, response=sc["predation.response"], params=params)
 
     dispersal, operators = {}, {}
@@ -174,13 +200,14 @@ def _initial_state(sc: Scenario, landscape: Landscape, model: LocalModel) -> np.
 
 
 def run_study(study: Study, *, progress: bool = False) -> RunResult:
-    """Integrate a study and compute the first analyses (persistence, synchrony).
+    """Integrate a study and run the analyses on the result.
 
     Returns
     -------
     RunResult
         ``patches`` holds the per-patch columns of the output contract (indexed by patch id,
-        in the user's order); ``summary`` the network-level figures and solver statistics.
+        in the user's order); ``summary`` the network-level figures and solver statistics;
+        ``extras`` what the figures need beyond those (curves, binned tables).
     """
     sc = study.scenario
     traj = simulate(
@@ -190,26 +217,24 @@ def run_study(study: Study, *, progress: bool = False) -> RunResult:
         rtol=sc["run.rtol"], atol=sc["run.atol"], ids=study.ids,
         time_unit=sc["time_unit"], progress=progress,
     )
+    table, summary, extras = analyse(study, traj)
+    return RunResult(study=study, trajectory=traj, patches=table, summary=summary,
+                     extras=extras)
+
+
+#: Per-patch columns of the output contract, in order (SCENARIO.md); others follow.
+CONTRACT_COLUMNS = ("persists", "occupancy", "mean", "cv", "last_extinction", "sync_local",
+                    "sync_region")
+
+
+def analyse(study: Study, traj: Trajectory):
+    """Every analysis of one trajectory: ``(patch table, summary, extras)``."""
+    sc = study.scenario
     burn_in = sc["run.burn_in"]
     net = study.network
-    base = pd.DataFrame(
-        {"area_km2": study.landscape.area_km2, "links": net.links_per_patch()},
-        index=pd.Index(study.ids.astype(str), name="patch_id"),
-    )
-    pers = persistence_table(traj, burn_in=burn_in,
-                             extinction_abundance=sc["run.extinction_abundance"])
-    sync, sync_summary = synchrony_table(
-        traj, burn_in=burn_in, source=net.source, target=net.target,
-        weights={s: study.arc_weights(s) for s in SPECIES},
-    )
-    table = pd.concat([base, pers, sync], axis=1)
-    contract = ("persists", "occupancy", "mean", "cv", "last_extinction", "sync_local",
-                "sync_region")  # SCENARIO.md order first, then the rest
-    ordered = ["area_km2", "links"]
-    for s in SPECIES:
-        ordered += [f"{s}_{c}" for c in contract]
-    ordered += [c for c in table.columns if c not in ordered]
-    table = table[ordered]
+    area = study.landscape.area_km2
+    parts = [pd.DataFrame({"area_km2": area, "links": net.links_per_patch()},
+                          index=pd.Index(study.ids.astype(str), name="patch_id"))]
     net_summary = net.summary()
     summary = {
         "scenario": sc.name,
@@ -217,8 +242,42 @@ def run_study(study: Study, *, progress: bool = False) -> RunResult:
         "links": net_summary["links"],
         "components": net_summary["components"],
         "isolated_patches": len(net_summary["isolated"]),
-        **regional_persistence(table, traj, area_km2=study.landscape.area_km2),
-        **sync_summary,
-        "solver": traj.stats.as_dict(),
     }
-    return RunResult(study=study, trajectory=traj, patches=table, summary=summary)
+    extras: dict = {}
+    pers = persistence_table(traj, burn_in=burn_in,
+                             extinction_abundance=sc["run.extinction_abundance"])
+    parts.append(pers)
+    summary.update(regional_persistence(pers, traj, area_km2=area))
+    extras["occupancy"] = occupancy_curve(traj)
+
+    sync, sync_summary, sync_extras = synchrony_analysis(
+        traj, burn_in=burn_in, source=net.source, target=net.target,
+        weights={s: study.arc_weights(s) for s in SPECIES},
+        centroids=study.landscape.centroids, seed=sc["run.seed"],
+        max_pairs=sc["analysis.synchrony_pairs"],
+    )
+    parts.append(sync)
+    summary.update(sync_summary)
+    extras.update(sync_extras)
+
+    if sc["analysis.stability"]:
+        stab = stability_analysis(study.system)
+        eq = pd.DataFrame({f"{s}_equilibrium": stab.pop(f"{s}_equilibrium") for s in SPECIES},
+                          index=parts[0].index)
+        parts.append(eq)
+        summary["stability"] = stab.pop("stability")
+        summary["stability_details"] = stab
+    if sc["analysis.capacity"]:
+        kernel = net.kernel if net.kernel in ("exponential", "gaussian", "step") else "exponential"
+        for s in SPECIES:
+            cap, cap_summary = capacity_analysis(net, area, scale_km=study.dispersal[s]["scale_km"],
+                                                 kernel=kernel)
+            parts.append(cap.set_axis(parts[0].index).add_prefix(f"{s}_"))
+            summary.update({f"{s}_{k}": v for k, v in cap_summary.items()})
+
+    table = pd.concat(parts, axis=1)
+    ordered = ["area_km2", "links"] + [f"{s}_{c}" for s in SPECIES for c in CONTRACT_COLUMNS]
+    ordered += sorted((c for c in table.columns if c not in ordered),
+                      key=lambda c: (not c.startswith("prey_"), 0))
+    summary["solver"] = traj.stats.as_dict()
+    return table[ordered], summary, extras

@@ -1,0 +1,450 @@
+"""Bad input through the command line: exit code 2, one exact line on stderr, no output left.
+
+Each case writes a tiny landscape (four invented square patches near 11.2° E 46.3° N, ids
+"A1".."A4") and a scenario into its own folder, breaks one thing, and runs
+``trophoscape run s.toml --out out`` there. The expected texts are written out in full: they
+are what a user reads, and each names the file, the feature (id, or 0-based position where
+the file has no id field) and the field or key, and says what would be accepted. The rule
+that a bad-input message names file, feature and field is the project's scenario contract
+(SCENARIO.md, "Exit codes").
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+import re
+import subprocess
+import sys
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pytest
+
+SRC = Path(__file__).resolve().parents[1] / "src"
+
+# ------------------------------------------------------------------ the tiny valid inputs
+
+LON0, LAT0 = 11.20, 46.30
+SIDE_LON, SIDE_LAT, STEP_LON = 0.013, 0.009, 0.02  # about 1 km squares, 0.5 km apart
+
+
+def square(k: int) -> dict:
+    x0, y0 = LON0 + STEP_LON * k, LAT0
+    x1, y1 = x0 + SIDE_LON, y0 + SIDE_LAT
+    return {"type": "Polygon",
+            "coordinates": [[[x0, y0], [x1, y0], [x1, y1], [x0, y1], [x0, y0]]]}
+
+
+def features(n: int = 4) -> list[dict]:
+    return [{"type": "Feature", "properties": {"pid": f"A{k + 1}", "quality": 1.0 - 0.1 * k},
+             "geometry": square(k)} for k in range(n)]
+
+
+def collection(feats) -> str:
+    return json.dumps({"type": "FeatureCollection", "features": feats})
+
+
+def patches_with(change) -> str:
+    """The valid patch file with ``change(features)`` applied."""
+    feats = features()
+    change(feats)
+    return collection(feats)
+
+
+BASE = {
+    "": {"name": "tiny"},
+    "patches": {"path": "p.geojson", "id_field": "pid", "quality_field": "quality"},
+    "dispersal": {"max_distance_km": 2.0},
+    "run": {"duration": 2.0, "burn_in": 0.5, "census_interval": 0.5},
+}
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, dict):
+        return "{ " + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + " }"
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return json.dumps(v)
+    return repr(v)
+
+
+def scenario(**sections) -> str:
+    """The valid scenario with keys of some sections replaced (None removes a key)."""
+    merged = copy.deepcopy(BASE)
+    for name, keys in sections.items():
+        target = merged.setdefault(name, {})
+        for k, v in keys.items():
+            if v is None:
+                target.pop(k, None)
+            else:
+                target[k] = v
+    lines = [f"{k} = {_toml_value(v)}" for k, v in merged.pop("").items()]
+    for name, keys in merged.items():
+        lines.append(f"[{name}]")
+        lines += [f"{k} = {_toml_value(v)}" for k, v in keys.items()]
+    return "\n".join(lines) + "\n"
+
+
+def corridor(coords) -> str:
+    return json.dumps({"type": "FeatureCollection", "features": [
+        {"type": "Feature", "properties": {"corridor_id": "K1"},
+         "geometry": {"type": "LineString", "coordinates": coords}}]})
+
+
+def middle(k: int) -> tuple[float, float]:
+    return LON0 + STEP_LON * k + SIDE_LON / 2, LAT0 + SIDE_LAT / 2
+
+
+def run_cli(folder: Path, *args: str) -> subprocess.CompletedProcess:
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(SRC), env.get("PYTHONPATH")]))
+    return subprocess.run([sys.executable, "-m", "trophoscape", *args], cwd=folder, env=env,
+                          capture_output=True, text=True, timeout=120)
+
+
+# ------------------------------------------------------------------ the corpus
+
+
+@dataclass
+class Case:
+    """One malformed input and the line a user should see.
+
+    ``expected`` is the whole stderr line; input files appear as the scenario names them,
+    names input files by their absolute path. With ``prefix`` set only the start is checked
+    (the rest is a library's wording or a computed number). ``wrong_text``, ``extra_lines`` and
+    ``accepted`` mark known defects of src/ (strict xfail: XPASS once fixed, then drop the mark).
+    """
+
+    id: str
+    expected: str
+    files: dict = field(default_factory=dict)  # name -> text; s.toml, p.geojson valid by default
+    code: int = 2
+    command: str = "run"
+    prefix: bool = False
+    wrong_text: str | None = None
+    extra_lines: str | None = None
+    accepted: str | None = None  # bad input that src/ currently accepts (exit 0)
+
+
+_DROP = object()
+
+
+def _set(i, key, value):
+    def change(feats):
+        if key == "geometry":
+            feats[i]["geometry"] = value
+        elif value is _DROP:
+            feats[i]["properties"].pop(key)
+        else:
+            feats[i]["properties"][key] = value
+    return change
+
+
+def _scale_attribute(feats):
+    for k, f in enumerate(feats):
+        f["properties"]["scale"] = 0.0 if k == 3 else 1.5
+
+
+LINKS = {"kernel": "none", "links": "l.csv"}
+CORRIDORS = {"corridors": "c.geojson"}
+POLYGON_OPTIONS = "expected a Polygon or MultiPolygon"
+QUALITY_RULE = "expected a finite number >= 0 (named by patches.quality_field)"
+UNREADABLE = "cannot be read as a GeoJSON (.geojson), GeoPackage (.gpkg) or Shapefile (.shp)"
+LINKS_COLUMNS = "columns source,target,weight[,survival][,directed]"
+
+CASES = [
+    # ---------------------------------------------------------------- the scenario file
+    Case("toml-syntax",
+         "error: s.toml: not valid TOML: Expected '=' after a key in a key/value pair "
+         "(at line 12, column 6)",
+         {"s.toml": scenario() + "seed 2\n"}),
+    Case("toml-bad-number",
+         "error: s.toml: not valid TOML: Expected newline or end of document after a "
+         "statement (at line 9, column 15)",
+         {"s.toml": scenario().replace("duration = 2.0", "duration = 2.0.1")}),
+    Case("unknown-section",
+         "error: s.toml: field 'preditor': unknown section or top-level key; "
+         "did you mean 'predator'?",
+         {"s.toml": scenario(preditor={"conversion": 0.1})}),
+    Case("misspelt-key",
+         "error: s.toml: field 'run.duraton': unknown key; did you mean 'duration'?",
+         {"s.toml": scenario(run={"duraton": 3.0})}),
+    Case("unknown-key-no-suggestion",
+         "error: s.toml: field 'run.zzz': unknown key; [run] takes duration, burn_in, "
+         "census_interval, extinction_abundance, method, rtol, atol, seed, replicates",
+         {"s.toml": scenario(run={"zzz": 1})}),
+    Case("wrong-type",
+         "error: s.toml: field 'prey.growth_rate': must be a number, got 'fast'",
+         {"s.toml": scenario(prey={"growth_rate": "fast"})}),
+    Case("out-of-range",
+         "error: s.toml: field 'dispersal.survival_per_km': must be <= 1, got 1.5",
+         {"s.toml": scenario(dispersal={"survival_per_km": 1.5})}),
+    Case("bad-choice",
+         "error: s.toml: field 'predation.response': must be one of 'lotka_volterra', "
+         "'holling2', 'holling3', 'beddington_deangelis', got 'holling4'",
+         {"s.toml": scenario(predation={"response": "holling4"})}),
+    Case("burn-in-too-long",
+         "error: s.toml: field 'run.burn_in': must be less than run.duration (2.0), got 5.0",
+         {"s.toml": scenario(run={"burn_in": 5.0})}),
+    Case("no-patch-path",
+         "error: s.toml: field 'patches.path': is required: the patch file (GeoJSON, "
+         "GeoPackage or Shapefile) relative to the scenario",
+         {"s.toml": scenario(patches={"path": None})}),
+    Case("noise-not-yet",
+         "error: s.toml: field 'noise': the [noise] section (environmental and demographic "
+         "noise) is not supported by this version of trophoscape; remove it to run without it",
+         {"s.toml": scenario(noise={"environmental_sd": 0.2})}),
+    Case("bad-field-ref",
+         "error: s.toml: field 'prey.growth_rate': a per-patch value must be written "
+         "{ field = \"ATTRIBUTE\" }, got {'name': 'r'}",
+         {"s.toml": scenario(prey={"growth_rate": {"name": "r"}})}),
+    Case("geographic-crs",
+         "error: s.toml: field 'patches.crs': 'EPSG:4326' is a geographic (degrees) CRS; "
+         "distances and areas need a projected CRS in metres such as a UTM zone "
+         "'EPSG:326NN', or 'auto'",
+         {"s.toml": scenario(patches={"crs": "EPSG:4326"})}),
+    Case("unknown-crs",
+         "error: s.toml: field 'patches.crs': 'EPSG:999999' is not a CRS pyproj understands; "
+         "expected 'auto' or a projected CRS in metres such as 'EPSG:3035'",
+         {"s.toml": scenario(patches={"crs": "EPSG:999999"})}),
+    # ---------------------------------------------------------------- the patch file
+    Case("missing-patch-file",
+         "error: missing.geojson: no such file; expected a GeoJSON (.geojson), "
+         "GeoPackage (.gpkg) or Shapefile (.shp)",
+         {"s.toml": scenario(patches={"path": "missing.geojson"})}),
+    Case("missing-patch-file-check",
+         "error: missing.geojson: no such file; expected a GeoJSON (.geojson), "
+         "GeoPackage (.gpkg) or Shapefile (.shp)",
+         {"s.toml": scenario(patches={"path": "missing.geojson"})}, command="check"),
+    Case("bad-json",
+         "error: p.geojson: not valid JSON (Expecting ',' delimiter at line 1, "
+         "column 923); expected a GeoJSON FeatureCollection",
+         {"p.geojson": collection(features())[:-40]}),
+    Case("json-not-geojson", f"error: p.geojson: {UNREADABLE}: ",
+         {"p.geojson": "[1, 2, 3]"}, prefix=True),
+    Case("not-a-geopackage", f"error: p.gpkg: {UNREADABLE}: ",
+         {"s.toml": scenario(patches={"path": "p.gpkg"}), "p.gpkg": "not a database"},
+         prefix=True),
+    Case("empty-collection",
+         "error: p.geojson: the file holds no features; expected at least one polygon "
+         "patch",
+         {"p.geojson": collection([])}),
+    Case("null-geometry",
+         f"error: p.geojson: feature 'A2': field 'geometry': geometry is null; "
+         f"{POLYGON_OPTIONS}",
+         {"p.geojson": patches_with(_set(1, "geometry", None))}),
+    Case("point-geometry",
+         f"error: p.geojson: feature 'A3': field 'geometry': geometry type is Point; "
+         f"{POLYGON_OPTIONS}",
+         {"p.geojson": patches_with(
+             _set(2, "geometry", {"type": "Point", "coordinates": list(middle(2))}))}),
+    Case("no-such-id-field",
+         "error: p.geojson: field 'patch_id': no such attribute for patch ids; the file "
+         "has: 'pid', 'quality'",
+         {"s.toml": scenario(patches={"id_field": "patch_id"})}),
+    Case("missing-id",  # no id to name it by: its 0-based position
+         "error: p.geojson: feature 2: field 'pid': patch id is empty; every patch "
+         "needs an id",
+         {"p.geojson": patches_with(_set(2, "pid", _DROP))}),
+    Case("duplicate-ids",
+         "error: p.geojson: feature 'A2': field 'pid': id is not unique: features 1 "
+         "and 3 both have it; each patch needs its own id",
+         {"p.geojson": patches_with(_set(3, "pid", "A2"))}),
+    Case("quality-not-number",
+         f"error: p.geojson: feature 'A3': field 'quality': value 'high' is not a "
+         f"number; {QUALITY_RULE}",
+         {"p.geojson": patches_with(_set(2, "quality", "high"))}),
+    Case("quality-not-number-no-ids",  # without an id field features go by position
+         f"error: p.geojson: feature 2: field 'quality': value 'high' is not a "
+         f"number; {QUALITY_RULE}",
+         {"s.toml": scenario(patches={"id_field": None}),
+          "p.geojson": patches_with(_set(2, "quality", "high"))}),
+    Case("quality-negative",
+         f"error: p.geojson: feature 'A2': field 'quality': value -0.5 is out of "
+         f"range; {QUALITY_RULE}",
+         {"p.geojson": patches_with(_set(1, "quality", -0.5))}),
+    Case("quality-missing",
+         f"error: p.geojson: feature 'A2': field 'quality': value is missing; "
+         f"{QUALITY_RULE}",
+         {"p.geojson": patches_with(_set(1, "quality", None))}),
+    Case("quality-true",
+         f"error: p.geojson: feature 'A2': field 'quality': value True is "
+         f"true/false; {QUALITY_RULE}",
+         {"p.geojson": patches_with(_set(1, "quality", True))},
+         accepted="a JSON true among numbers is read by GDAL as 1.0 and accepted silently"),
+    Case("quality-zero-logistic",
+         "error: p.geojson: feature 'A2': field 'quality': carrying capacity is zero "
+         "(quality 0); give the patch a quality > 0 or remove it",
+         {"p.geojson": patches_with(_set(1, "quality", 0))}),
+    Case("field-ref-missing",
+         "error: p.geojson: field 'r_local': no such attribute (named by "
+         "prey.growth_rate); the file has: 'pid', 'quality'",
+         {"s.toml": scenario(prey={"growth_rate": {"field": "r_local"}})}),
+    Case("field-ref-out-of-range",
+         "error: p.geojson: feature 'A4': field 'scale': value 0.0 for "
+         "prey.kernel_scale_km must be > 0",
+         {"s.toml": scenario(prey={"kernel_scale_km": {"field": "scale"}}),
+          "p.geojson": patches_with(_scale_attribute)}),
+    Case("lon-out-of-range",
+         "error: p.geojson: feature 'A1': field 'geometry': coordinates span x 191 to "
+         "191.01, y 46.3 to 46.31, outside longitude -180..180 / latitude -90..90; GeoJSON "
+         "coordinates are WGS 84 lon/lat (RFC 7946); reproject the file to EPSG:4326",
+         {"p.geojson": patches_with(_set(0, "geometry", {"type": "Polygon", "coordinates": [
+             [[191.0, 46.3], [191.01, 46.3], [191.01, 46.31], [191.0, 46.3]]]}))}),
+    Case("zero-area",
+         "error: p.geojson: feature 'A2': field 'geometry': polygon has zero area; "
+         "expected a patch polygon with positive area",
+         {"p.geojson": patches_with(_set(1, "geometry", {"type": "Polygon", "coordinates": [
+             [[11.22, 46.3], [11.23, 46.3], [11.235, 46.3], [11.22, 46.3]]]}))}),
+    # ---------------------------------------------------------------- corridors
+    Case("corridor-one-patch",  # the coordinates printed are in the metric CRS (see report)
+         "error: c.geojson: feature 'K1': field 'geometry': its last point (",
+         {"s.toml": scenario(dispersal=CORRIDORS),
+          "c.geojson": corridor([list(middle(0)), [LON0 + 0.01, LAT0 + 0.1]])}, prefix=True),
+    Case("corridor-same-patch",
+         "error: c.geojson: feature 'K1': field 'geometry': both ends lie at patch "
+         "'A2'; a corridor must join two different patches",
+         {"s.toml": scenario(dispersal=CORRIDORS),
+          "c.geojson": corridor([list(middle(1)), [middle(1)[0] + 0.001, middle(1)[1]]])}),
+    Case("corridor-polygon",
+         "error: c.geojson: feature 0: field 'geometry': geometry type is Polygon; "
+         "expected a LineString or MultiLineString",
+         {"s.toml": scenario(dispersal=CORRIDORS), "c.geojson": collection(features()[:1])}),
+    # ---------------------------------------------------------------- links tables
+    Case("links-unknown-id",
+         "error: l.csv: feature 1: field 'target': no patch has id 'B7'; expected a "
+         "patch id of the patch file (e.g. 'A1', 'A2', 'A3')",
+         {"s.toml": scenario(dispersal=LINKS),
+          "l.csv": "source,target,weight\nA1,A2,1.0\nA2,B7,0.5\n"}),
+    Case("links-negative-weight",
+         "error: l.csv: feature 1: field 'weight': value -0.5 is out of range; "
+         "expected a finite number > 0",
+         {"s.toml": scenario(dispersal=LINKS),
+          "l.csv": "source,target,weight\nA1,A2,1.0\nA2,A3,-0.5\n"}),
+    Case("links-unknown-column",
+         f"error: l.csv: field 'wieght': unknown column (did you mean 'weight'?); "
+         f"expected {LINKS_COLUMNS}",
+         {"s.toml": scenario(dispersal=LINKS), "l.csv": "source,target,wieght\nA1,A2,1.0\n"}),
+    Case("links-to-itself",
+         "error: l.csv: feature 1: field 'target': links patch 'A3' to itself; "
+         "expected two different patches",
+         {"s.toml": scenario(dispersal=LINKS),
+          "l.csv": "source,target,weight\nA1,A2,1.0\nA3,A3,1.0\n"}),
+    Case("links-directed-word",
+         "error: l.csv: feature 0: field 'directed': value 'maybe' is not true/false; "
+         "expected true, false, 1, 0, yes, no or empty (false)",
+         {"s.toml": scenario(dispersal=LINKS),
+          "l.csv": "source,target,weight,directed\nA1,A2,1.0,maybe\n"}),
+    Case("links-missing-file",
+         f"error: nolinks.csv: no such file; expected a CSV table with {LINKS_COLUMNS}",
+         {"s.toml": scenario(dispersal={"kernel": "none", "links": "nolinks.csv"})}),
+    # ---------------------------------------------------------------- parameters together
+    Case("allee-above-capacity",  # capacity density 50 x quality 0.9 of A2 = 45 < 48
+         "error: p.geojson: feature 'A2': field 'quality': carrying capacity 45 per km² "
+         "(prey.capacity_density 50 × quality 0.9) is not above the Allee threshold "
+         "prey.allee_density 48; raise the quality or lower the threshold",
+         {"s.toml": scenario(
+             prey={"growth": "allee", "capacity_density": 50.0, "allee_density": 48.0})}),
+    # ---------------------------------------------------------------- a failed run: exit 1
+    Case("explosive-growth",  # exponential prey at r = 2000 per year, no predator
+         "error: the run failed: ",
+         {"s.toml": scenario(prey={"growth": "exponential", "growth_rate": 2000.0},
+                             predator={"initial_density": 0.0})}, code=1, prefix=True),
+]
+
+
+# ------------------------------------------------------------------ running the corpus
+
+
+@dataclass
+class Outcome:
+    folder: Path
+    returncode: int
+    stderr: str
+
+
+@pytest.fixture(scope="module")
+def outcomes(tmp_path_factory) -> dict[str, Outcome]:
+    """Every case run once through the CLI (in parallel: each call is ~1 s of start-up)."""
+    root = tmp_path_factory.mktemp("bad-inputs")
+
+    def one(case: Case) -> Outcome:
+        folder = root / case.id
+        folder.mkdir()
+        files = {"s.toml": scenario(), "p.geojson": collection(features()), **case.files}
+        for name, text in files.items():
+            (folder / name).write_text(text, encoding="utf-8")
+        args = [case.command, "s.toml"]
+        if case.command == "run":
+            args += ["--out", "out", "--no-maps"]
+        done = run_cli(folder, *args)
+        return Outcome(folder, done.returncode, done.stderr)
+
+    with ThreadPoolExecutor(max_workers=max(2, os.cpu_count() or 2)) as pool:
+        return dict(zip((c.id for c in CASES), pool.map(one, CASES)))
+
+
+def _param(case: Case, reason: str | None):
+    reason = case.accepted or reason
+    marks = [pytest.mark.xfail(strict=True, reason=reason)] if reason else []
+    return pytest.param(case, id=case.id, marks=marks)
+
+
+def test_corpus_is_large_and_has_unique_ids():
+    ids = [c.id for c in CASES]
+    assert len(set(ids)) == len(ids)
+    assert sum(c.code == 2 for c in CASES) >= 20
+
+
+@pytest.mark.parametrize("case", [_param(c, None) for c in CASES])
+def test_exit_code_no_traceback_no_output(case, outcomes):
+    got = outcomes[case.id]
+    assert got.returncode == case.code, got.stderr
+    assert "Traceback" not in got.stderr
+    # outputs are whole or absent: no folder, no staging folder beside it (SCENARIO.md)
+    assert not (got.folder / "out").exists()
+    assert not list(got.folder.glob(".out.partial-*"))
+    assert not list(got.folder.glob(".*partial*"))
+    # exactly one line says what went wrong
+    assert sum(line.startswith("error: ") for line in got.stderr.splitlines()) == 1
+
+
+@pytest.mark.parametrize("case", [_param(c, c.wrong_text) for c in CASES])
+def test_message_text(case, outcomes):
+    got = outcomes[case.id]
+    expected = case.expected.replace("{dir}", str(got.folder))
+    lines = got.stderr.splitlines()
+    assert lines, "nothing on stderr"
+    last = lines[-1]
+    if case.prefix:
+        assert last.startswith(expected), last
+        assert len(last) > len(expected)
+    else:
+        assert last == expected
+
+
+@pytest.mark.parametrize("case", [_param(c, c.extra_lines) for c in CASES])
+def test_stderr_is_exactly_one_line(case, outcomes):
+    got = outcomes[case.id]
+    assert got.stderr.endswith("\n")
+    assert len(got.stderr.splitlines()) == 1, got.stderr
+
+
+def test_messages_name_the_file_and_feature(outcomes):
+    # the rule of the contract, checked on the texts themselves: a message about a patch,
+    # corridor or links file names that file and, for a per-feature problem, the feature
+    for case in CASES:
+        if case.code != 2 or case.accepted:
+            continue
+        line = outcomes[case.id].stderr.splitlines()[-1]
+        named = [n for n in ("s.toml", "p.geojson", "p.gpkg", "c.geojson", "l.csv",
+                             "missing.geojson", "nolinks.csv") if n in line]
+        if case.wrong_text is None:
+            assert named, line
+        feature = re.search(r": feature ('[^']+'|\d+): ", case.expected)
+        if feature:
+            assert feature.group(0) in line, line
