@@ -167,7 +167,7 @@ def main():
           f"{time.perf_counter() - t0:.1f} s (separate process, not counted)")
 
     for name in ("read_patches", "build_network", "simulate", "persistence_table",
-                 "synchrony_table"):
+                 "synchrony_analysis", "stability_analysis", "capacity_analysis"):
         setattr(study_module, name, clock(name, getattr(study_module, name)))
     base_mb = peak_mb()
 
@@ -190,9 +190,12 @@ def main():
          load - STAGES["read_patches"] - STAGES["build_network"]),
         ("simulate (200 years, 400 census steps)", STAGES["simulate"]),
         ("analyses: persistence_table", STAGES["persistence_table"]),
-        ("analyses: synchrony_table", STAGES["synchrony_table"]),
+        ("analyses: synchrony_analysis", STAGES["synchrony_analysis"]),
+        ("analyses: stability_analysis", STAGES["stability_analysis"]),
+        ("analyses: capacity_analysis (both species)", STAGES["capacity_analysis"]),
         ("analyses: rest of run_study (tables, summary)",
-         run - STAGES["simulate"] - STAGES["persistence_table"] - STAGES["synchrony_table"]),
+         run - STAGES["simulate"] - STAGES["persistence_table"] - STAGES["synchrony_analysis"]
+         - STAGES["stability_analysis"] - STAGES["capacity_analysis"]),
         ("write_run(maps=False)", t_end - t_ran),
         ("end to end", total),
     ]

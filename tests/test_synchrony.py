@@ -406,3 +406,31 @@ def test_synchrony_plots(tmp_path):
         assert image.shape[0] > 300 and image.shape[1] > 500
         assert image[..., :3].std() > 0.05  # something is drawn
     assert sorted(p.name for p in tmp_path.iterdir()) == ["d.png", "k.png"]  # no temp files
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.4, 0.8])
+def test_moran_effect_two_ar1_populations(rho):
+    # Moran (1953), Aust. J. Zool. 1:291: two populations with identical linear dynamics
+    # (here AR(1), y' = 0.6 y + noise), no dispersal, driven by noises with correlation rho,
+    # are correlated at rho. log(1 + abundance) is made exactly the AR(1) series.
+    import xarray as xr
+
+    from trophoscape.analysis.synchrony import synchrony_table
+
+    rng = np.random.default_rng(1953)
+    steps = 40_000
+    cov = np.array([[1.0, rho], [rho, 1.0]])
+    noise = rng.multivariate_normal([0.0, 0.0], cov, size=steps) * 0.05
+    y = np.empty((steps, 2))
+    y[0] = 0.0
+    for t in range(1, steps):  # the series itself (test only)
+        y[t] = 0.6 * y[t - 1] + noise[t]
+    abundance = np.expm1(5.0 + y)
+    data = xr.Dataset({"prey": (("time", "patch"), abundance),
+                       "predator": (("time", "patch"), abundance)},
+                      coords={"time": np.arange(steps, dtype=float), "patch": ["a", "b"]})
+    _, summary = synchrony_table(data, burn_in=0.0, source=np.array([0]), target=np.array([1]),
+                                 weights=None)
+    # sampling error of a correlation from ~T/((1+a)/(1-a)) = T/4 effective samples
+    se = (1 - rho ** 2) / np.sqrt(steps / 4)
+    assert summary["prey_synchrony"] == pytest.approx(rho, abs=4 * se + 1e-3)
