@@ -11,9 +11,15 @@ import sys
 import warnings
 from pathlib import Path
 
+from importlib import import_module
+
 from .errors import InputError, RunError, TrophoscapeError
 
 __all__ = ["main", "demo_scenario_path"]
+
+#: Modules that add a command: each has ``add_parser(subparsers)``, which registers its
+#: parser with ``set_defaults(handler=fn)``; ``fn(args)`` returns the exit code.
+COMMAND_MODULES: tuple[str, ...] = ()
 
 EPILOG_RUN = "example:\n  trophoscape run valley.toml --out results/valley-a"
 EPILOG_CHECK = "example:\n  trophoscape check valley.toml"
@@ -63,6 +69,8 @@ def _parser() -> argparse.ArgumentParser:
                                       "patches with a few corridors.",
                           epilog=EPILOG_DEMO, formatter_class=fmt)
     _output_options(demo)
+    for module in COMMAND_MODULES:
+        import_module(f"trophoscape.{module}").add_parser(sub)
     return p
 
 
@@ -119,6 +127,8 @@ def main(argv=None) -> int:
 
 
 def _dispatch(args) -> int:
+    if getattr(args, "handler", None) is not None:
+        return int(args.handler(args) or 0)
     from .outputs import write_run
     from .study import load_study, run_study
 
