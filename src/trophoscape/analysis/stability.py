@@ -310,7 +310,7 @@ def _leading(system: CoupledSystem, state, k: int, method: str):
         # a constant vector, is not confined to the synchronous modes of a symmetric network
         v0 = np.random.default_rng(0).standard_normal(m)
         matrix = sp.csr_array(jacobian)
-        for ncv in (max(2 * k + 1, 20), max(4 * k + 1, 60)):
+        for ncv in (max(4 * k + 1, 40), max(8 * k + 1, 80)):
             try:
                 # tol 1e-6 (relative): ample for the sign and period of the leading
                 # eigenvalue, and 16x faster than machine precision on 10,000 patches
