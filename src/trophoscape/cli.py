@@ -97,6 +97,10 @@ def _print_check(study) -> None:
           f"{len(net['isolated'])} isolated patch(es))")
     if land.repaired:
         print(f"repaired   {len(land.repaired)} geometry(ies): {', '.join(land.repaired[:10])}")
+    from .advice import practical_warnings
+
+    for advice in practical_warnings(study):
+        print(f"note       {advice}")
 
 
 def _print_summary(result, out) -> None:
