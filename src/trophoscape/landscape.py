@@ -35,6 +35,7 @@ __all__ = [
     "landscape_from_frame",
     "read_corridors",
     "read_links_table",
+    "read_candidates",
     "metric_crs",
     "equal_area_crs",
 ]
@@ -352,6 +353,135 @@ def read_corridors(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     return geopandas.GeoDataFrame(out, geometry=lines.values, crs=crs)
 
 
+def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
+    """Read and validate a file of candidate corridors (not yet built), reprojected into ``crs``.
+
+    Parameters
+    ----------
+    path : str or path
+        GeoJSON / GeoPackage / Shapefile of LineString or MultiLineString features, or of
+        thin Polygon / MultiPolygon features (a strip of land drawn as an area). Attributes:
+        ``cost`` (required, a finite number >= 0, in the user's own unit), ``corridor_id``
+        (optional unique ids; default the feature order), ``quality`` (optional, > 0,
+        default 1) and ``survival`` (optional, 0 to 1, the share of dispersers surviving the
+        whole corridor; empty means "from survival_per_km").
+    crs : pyproj.CRS
+        The landscape's metric CRS.
+    layer : str or int, optional
+        Layer of a multi-layer file.
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        RangeIndex in the file's order; columns ``corridor_id`` (str: the id, or "0", "1",
+        ... without an id field), ``cost``, ``quality`` (1 where empty), ``survival`` (NaN
+        where empty), ``drawn_as`` ("line" or "polygon"); geometry one LineString per
+        candidate in ``crs``. The frame's ``attrs["has_ids"]`` says whether ids came from
+        the file (messages then name candidates by id, else by position).
+
+    Raises
+    ------
+    InputError
+        Unreadable or empty file, null / empty / other geometry, line parts that do not
+        join, zero length, null / duplicate ids, a missing cost, a cost that is negative
+        or not a number, bad quality or survival values.
+
+    Notes
+    -----
+    A polygon becomes the long axis of its minimum rotated rectangle
+    (``shapely.oriented_envelope``): the segment between the midpoints of the rectangle's
+    two short sides. Its ends are then snapped to patches like the ends of a line, and its
+    length is the rectangle's length, so a bent strip counts as straight (draw bent
+    corridors as lines to have their length measured along the bends).
+    """
+    path = Path(path)
+    frame = _read_vector(path, layer=layer)
+    if len(frame) == 0:
+        raise InputError("the file holds no features; expected candidate corridors "
+                         "(LineStrings or thin Polygons with a cost)", file=path)
+    has_ids = "corridor_id" in frame.columns
+    ids = _ids(frame, "corridor_id" if has_ids else None, path=path, what="candidate")
+    refs = ids if has_ids else None
+    geoms = shapely.force_2d(frame.geometry.to_numpy())
+    _check_types(geoms, (_LINESTRING, _MULTILINESTRING, _POLYGON, _MULTIPOLYGON),
+                 "a LineString, MultiLineString or (thin) Polygon", path=path, refs=refs)
+    source, assumed = (frame.crs, False) if frame.crs is not None else (
+        pyproj.CRS.from_epsg(4326), True)
+    if source.is_geographic:
+        _check_lonlat(geoms, path=path, refs=refs, assumed=assumed)
+    if "cost" not in frame.columns:
+        have = ", ".join(repr(c) for c in frame.columns if c != frame.geometry.name)
+        raise InputError(f"the file has no 'cost' attribute (it has: {have or 'none'}); "
+                         "expected a cost >= 0 for every candidate", file=path, field="cost")
+    cost = _numbers(frame["cost"], path=path, refs=refs, field="cost", lo=0.0)
+    quality = (_numbers(frame["quality"], path=path, refs=refs, field="quality", lo=0.0,
+                        lo_open=True, allow_missing=True)
+               if "quality" in frame.columns else np.full(len(frame), np.nan))
+    survival = (_numbers(frame["survival"], path=path, refs=refs, field="survival", lo=0.0,
+                         hi=1.0, allow_missing=True)
+                if "survival" in frame.columns else np.full(len(frame), np.nan))
+    projected = geopandas.GeoSeries(geoms, crs=source).to_crs(crs).to_numpy()
+    kind = shapely.get_type_id(projected)
+    area = np.isin(kind, (_POLYGON, _MULTIPOLYGON))
+    lines = projected.copy()
+    if area.any():
+        lines[area] = _long_axis(projected[area])
+    multi = shapely.get_type_id(lines) == _MULTILINESTRING
+    if multi.any():
+        lines[multi] = shapely.line_merge(lines[multi])
+        broken = shapely.get_type_id(lines) != _LINESTRING
+        if broken.any():
+            i = int(np.flatnonzero(broken)[0])
+            raise InputError("the parts of this MultiLineString do not join into one line; "
+                             "expected one continuous line from patch to patch",
+                             file=path, feature=_ref(refs, i), field="geometry")
+    short = ~(shapely.length(lines) > 0)
+    if short.any():
+        i = int(np.flatnonzero(short)[0])
+        raise InputError("candidate has zero length; expected a line or a strip joining two "
+                         "patches", file=path, feature=_ref(refs, i), field="geometry")
+    out = frame.drop(columns=[frame.geometry.name]).copy()
+    out["corridor_id"] = ids
+    out["cost"] = cost
+    out["quality"] = np.where(np.isnan(quality), 1.0, quality)
+    out["survival"] = survival
+    out["drawn_as"] = np.where(area, "polygon", "line")
+    result = geopandas.GeoDataFrame(out, geometry=lines, crs=crs)
+    result.attrs["has_ids"] = has_ids
+    return result
+
+
+def _long_axis(polygons: np.ndarray) -> np.ndarray:
+    """Long axis of each polygon's minimum rotated rectangle, LineStrings of shape (k,)."""
+    boxes = shapely.oriented_envelope(polygons)
+    # a rectangle has 5 ring points; a degenerate one (a segment or a point) has fewer
+    coords, owner = shapely.get_coordinates(shapely.boundary(boxes), return_index=True)
+    counts = np.bincount(owner, minlength=polygons.size)
+    out = np.empty(polygons.size, dtype=object)
+    ring = counts == 5
+    if ring.any():
+        c = coords[np.isin(owner, np.flatnonzero(ring))].reshape(-1, 5, 2)
+        side0 = np.hypot(*(c[:, 1] - c[:, 0]).T)
+        side1 = np.hypot(*(c[:, 2] - c[:, 1]).T)
+        along0 = (side0 >= side1)[:, None]
+        # long sides 0-1 and 2-3: the axis joins the midpoints of sides 3-0 and 1-2
+        a = np.where(along0, 0.5 * (c[:, 3] + c[:, 0]), 0.5 * (c[:, 0] + c[:, 1]))
+        b = np.where(along0, 0.5 * (c[:, 1] + c[:, 2]), 0.5 * (c[:, 2] + c[:, 3]))
+        out[ring] = shapely.linestrings(np.stack([a, b], axis=1))
+    rest = np.flatnonzero(~ring)
+    if rest.size:
+        # a flat "polygon" (its rectangle is a segment or a point): the segment itself, or
+        # an empty line that the zero-length check then reports
+        flat = shapely.get_coordinates(boxes[rest], return_index=True)
+        first = np.unique(flat[1], return_index=True)[1]
+        last = np.r_[first[1:], flat[1].size] - 1
+        ends = np.stack([flat[0][first], flat[0][last]], axis=1)
+        segments = shapely.linestrings(ends)
+        out[rest] = shapely.LineString()
+        out[rest[np.unique(flat[1])]] = segments
+    return out
+
+
 def read_links_table(path) -> pd.DataFrame:
     """Read and check a links table (CSV) without looking at patch ids.
 
@@ -650,3 +780,20 @@ def _numbers(column: pd.Series, *, path, refs, field: str, lo: float, hi: float 
 def _readonly(array: np.ndarray) -> np.ndarray:
     array.flags.writeable = False
     return array
+
+
+def read_attributes(path, *, layer=None) -> pd.DataFrame:
+    """The attribute table of a patch file, without geometries (for ``trophoscape init``)."""
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"no such file; expected {_VECTOR_FORMATS}", file=path)
+    import pyogrio
+
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message="Could not parse column",
+                                    category=UserWarning)
+            return pyogrio.read_dataframe(path, layer=layer, read_geometry=False)
+    except Exception as exc:  # GDAL raises several unrelated types for unreadable data
+        raise InputError(f"cannot be read as {_VECTOR_FORMATS}: {_first_line(exc)}",
+                         file=path) from exc

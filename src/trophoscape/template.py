@@ -1,0 +1,166 @@
+"""``trophoscape init``: a commented scenario template for a user's own patch file."""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+import pandas as pd
+
+from .errors import InputError
+from .landscape import read_attributes
+
+__all__ = ["guess_id_field", "scenario_template", "write_template", "find_patch_file",
+           "add_parser"]
+
+PATCH_SUFFIXES = (".geojson", ".json", ".gpkg", ".shp")
+
+
+def find_patch_file(folder: Path) -> Path:
+    """The one patch file in ``folder`` (GeoJSON, GeoPackage or Shapefile)."""
+    found = sorted(p for p in Path(folder).iterdir() if p.suffix.lower() in PATCH_SUFFIXES)
+    if not found:
+        raise InputError("no patch file here; expected a .geojson, .gpkg or .shp file, or "
+                         "name one with --patches", file=folder)
+    if len(found) > 1:
+        names = ", ".join(p.name for p in found)
+        raise InputError(f"several patch files ({names}); choose one with --patches",
+                         file=folder)
+    return found[0]
+
+
+def guess_id_field(table: pd.DataFrame) -> str | None:
+    """A column that can serve as patch ids: unique, no blanks; names with "id" first."""
+    def usable(col):
+        values = table[col]
+        return values.notna().all() and values.astype(str).str.strip().ne("").all() \
+            and values.astype(str).is_unique
+
+    ranked = sorted(table.columns, key=lambda c: (0 if "id" in c.lower() else 1, c))
+    return next((c for c in ranked if usable(c)), None)
+
+
+def _describe(table: pd.DataFrame) -> list[str]:
+    lines = []
+    for col in table.columns:
+        values = table[col]
+        if pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values):
+            lines.append(f"#   {col}: numbers, {values.min():g} to {values.max():g}"
+                         + (f" ({int(values.isna().sum())} missing)" if values.isna().any()
+                            else ""))
+        else:
+            sample = ", ".join(map(str, pd.unique(values.astype(str))[:3]))
+            lines.append(f"#   {col}: text, e.g. {sample}")
+    return lines
+
+
+def scenario_template(patch_file: Path, table: pd.DataFrame, *, relative_to: Path) -> str:
+    """The text of a commented scenario for ``patch_file``."""
+    id_field = guess_id_field(table)
+    quality = next((c for c in table.columns if "quality" in c.lower()
+                    and pd.api.types.is_numeric_dtype(table[c])), None)
+    rel = os.path.relpath(patch_file, relative_to)
+    id_line = (f'id_field = "{id_field}"            # unique in the file (guessed)' if id_field
+               else '# id_field = "..."               # no unique column found: patches are '
+                    'numbered 0, 1, ...')
+    q_line = (f'quality_field = "{quality}"       # multiplies the prey carrying capacity'
+              if quality else '# quality_field = "..."          # optional multiplier of '
+                              'carrying capacity (>= 0)')
+    attributes = "\n".join(_describe(table)) or "#   (none)"
+    return f'''# trophoscape scenario for {patch_file.name}
+# Every key below shows its default; change what your study needs. Times are in time_unit,
+# distances in km, densities per km², abundances in individuals. Any number in [prey],
+# [predator] or [predation] may instead be taken per patch: key = {{ field = "ATTRIBUTE" }}.
+#
+# Attributes found in the patch file ({len(table)} patches):
+{attributes}
+
+name = "{patch_file.stem}"
+time_unit = "year"
+
+[patches]
+path = "{rel}"
+{id_line}
+{q_line}
+crs = "auto"                    # local UTM zone, or Lambert equal-area for wide extents
+
+[prey]
+growth = "logistic"             # "exponential" | "logistic" | "allee"
+growth_rate = 1.0               # per time unit
+capacity_density = 50.0         # carrying capacity per km² (times quality)
+emigration_rate = 0.1           # per capita, per time unit
+kernel_scale_km = 2.0           # scale of the dispersal kernel
+initial_density = 40.0          # per km², or "equilibrium"
+
+[predator]
+mortality_rate = 0.5
+conversion = 0.4                # predators produced per prey eaten
+emigration_rate = 0.05
+kernel_scale_km = 5.0
+initial_density = 2.0           # 0 for a prey-only run
+
+[predation]
+response = "holling2"           # "lotka_volterra" | "holling2" | "holling3" | "beddington_deangelis"
+attack_rate = 1.0               # km² searched per predator per time unit
+handling_time = 0.2             # time units per prey eaten
+
+[dispersal]
+kernel = "exponential"          # "exponential" | "gaussian" | "step" | "none"
+max_distance_km = 15.0          # no link beyond this
+distance = "boundary"           # "boundary" (edge to edge) | "centroid"
+survival_per_km = 0.97
+# corridors = "corridors.geojson"   # LineStrings joining two patches
+# links = "links.csv"               # source,target,weight[,survival][,directed]
+
+[run]
+duration = 400
+burn_in = 100                   # analyses use times from here on
+census_interval = 0.5           # output step and quasi-extinction check
+extinction_abundance = 1.0      # below this a local population is set to zero
+seed = 1
+'''
+
+
+def write_template(folder, *, patches=None, name="scenario.toml", force=False) -> Path:
+    """Write ``folder/name`` for the patch file in ``folder`` (or ``patches``)."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise InputError("no such folder", file=folder)
+    patch_file = Path(patches) if patches else find_patch_file(folder)
+    table = read_attributes(patch_file)
+    if table.empty:
+        raise InputError("the file holds no features; expected at least one polygon patch",
+                         file=patch_file)
+    target = folder / name
+    if target.exists() and not force:
+        raise InputError("already exists; use --force to replace it", file=target)
+    text = scenario_template(patch_file.resolve(), table, relative_to=folder.resolve())
+    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", dir=folder)
+    with os.fdopen(fd, "w", encoding="utf-8") as fh:
+        fh.write(text)
+    os.replace(tmp, target)
+    return target
+
+
+def _handler(args) -> int:
+    target = write_template(args.folder, patches=args.patches, name=args.name,
+                            force=args.force)
+    print(f"wrote {target}; check it with: trophoscape check {target}")
+    return 0
+
+
+def add_parser(sub) -> None:
+    import argparse
+
+    p = sub.add_parser("init", help="write a commented scenario for your own patch file",
+                       description="Write a commented scenario template next to a patch "
+                                   "file, with the id field guessed and the attributes listed.",
+                       epilog="example:\n  trophoscape init my-valley/\n"
+                              "  trophoscape check my-valley/scenario.toml",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("folder", type=Path, help="folder holding the patch file")
+    p.add_argument("--patches", type=Path, help="the patch file, if the folder has several")
+    p.add_argument("--name", default="scenario.toml", help="file name of the scenario")
+    p.add_argument("--force", action="store_true", help="replace an existing scenario")
+    p.set_defaults(handler=_handler)
