@@ -1,0 +1,60 @@
+"""The HTML report renders in a real headless browser (Debian's chromium)."""
+
+import os
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+
+import trophoscape as ts
+from trophoscape.report import CAUTION
+from trophoscape.scenario import parse_scenario
+from trophoscape.testing import grid_landscape
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+# CI installs chromium (.ci/run); elsewhere the test is skipped when it is missing
+needs_browser = pytest.mark.skipif(CHROMIUM is None and not os.environ.get("CI"),
+                                   reason="chromium is not installed")
+
+
+@pytest.fixture(scope="module")
+def report(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("report")
+    land = grid_landscape(3, 4, spacing_km=1.5, size_km=1.0)
+    frame = land.frame.copy()
+    frame["quality"] = np.linspace(0.6, 1.4, land.n_patches)
+    frame.to_file(folder / "p.gpkg", driver="GPKG", engine="pyogrio")
+    sc = parse_scenario({"name": "Report check", "patches": {"path": "p.gpkg",
+                                                              "id_field": "patch_id",
+                                                              "quality_field": "quality"},
+                         "run": {"duration": 60.0, "burn_in": 10.0}}, base_dir=folder)
+    result = ts.run_study(ts.build_study(sc))
+    ts.write_run(result, folder / "out")
+    return folder / "out" / "report.html"
+
+
+def test_report_is_self_contained_and_cautious(report):
+    text = report.read_text(encoding="utf-8")
+    assert CAUTION in text
+    assert "Report check" in text
+    assert "http://" not in text and "https://" not in text  # nothing fetched from outside
+    assert text.count("data:image/png;base64,") >= 8
+
+
+@needs_browser
+def test_report_renders_in_headless_chromium(report, tmp_path):
+    shot = tmp_path / "report.png"
+    profile = tmp_path / "profile"
+    subprocess.run([CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+                    "--no-first-run", "--disable-background-networking",
+                    "--disable-component-update", "--disable-sync", f"--user-data-dir={profile}",
+                    "--hide-scrollbars", "--window-size=1200,2400", f"--screenshot={shot}",
+                    report.as_uri()], check=True, capture_output=True, timeout=120)
+    import matplotlib.image as mpimg
+
+    pixels = mpimg.imread(shot)
+    assert pixels.shape[0] == 2400 and pixels.shape[1] == 1200
+    # a rendered page with text and figures, not a blank or an error page
+    assert pixels[..., :3].std() > 0.05
+    assert (pixels[..., :3].mean(axis=2) < 0.5).mean() > 0.01
