@@ -19,7 +19,7 @@ __all__ = ["main", "demo_scenario_path"]
 
 #: Modules that add a command: each has ``add_parser(subparsers)``, which registers its
 #: parser with ``set_defaults(handler=fn)``; ``fn(args)`` returns the exit code.
-COMMAND_MODULES: tuple[str, ...] = ("template",)
+COMMAND_MODULES: tuple[str, ...] = ("template", "spread_cli", "planning_cli", "sweep_cli")
 
 EPILOG_RUN = "example:\n  trophoscape run valley.toml --out results/valley-a"
 EPILOG_CHECK = "example:\n  trophoscape check valley.toml"

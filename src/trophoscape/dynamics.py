@@ -272,11 +272,18 @@ class LocalModel:
         return int(np.shape(self.params["growth_rate"])[0])
 
     def rates(self, n, p):
-        """Local rates of change of density ``(dn/dt, dp/dt)``, arrays like ``n``."""
+        """Local rates of change of density ``(dn/dt, dp/dt)``, arrays like ``n``.
+
+        An optional parameter ``prey_harvest`` (per-capita removal rate q of the prey, set by
+        a harvest shock; absent means 0) adds ``- q n`` to ``dn/dt``.
+        """
         q = self.params
         f = self.functional_response.value(n, p, q)
         eaten = f * p
-        return self.growth_form.value(n, q) - eaten, q["conversion"] * eaten - q["mortality"] * p
+        dn = self.growth_form.value(n, q) - eaten
+        if "prey_harvest" in q:
+            dn = dn - q["prey_harvest"] * n
+        return dn, q["conversion"] * eaten - q["mortality"] * p
 
     def partials(self, n, p):
         """The four partial derivatives of the local rates (per patch, in density).
@@ -290,6 +297,8 @@ class LocalModel:
         fp = resp.dp(n, p, q)
         e = q["conversion"]
         dndn = self.growth_form.dn(n, q) - fn * p
+        if "prey_harvest" in q:
+            dndn = dndn - q["prey_harvest"]
         dndp = -(f + fp * p)
         dpdn = e * fn * p
         dpdp = e * (f + fp * p) - q["mortality"]

@@ -576,3 +576,100 @@ def _table_arcs(landscape: Landscape, path: Path, distance: str):
     survival = table["survival"].to_numpy(dtype=np.float64)[rows]
     return (src, dst, _pair_distance_km(landscape, src, dst, distance), weight, survival,
             _CODE["table"])
+
+
+# ---------------------------------------------------------------- variants of a network
+
+
+def with_links(network: Network, source, target, distance_km, *, weight=None, survival=None,
+               origin: str = "corridor", both_ways: bool = True) -> Network:
+    """A new network with extra links; ``network`` is left as it was.
+
+    Parameters
+    ----------
+    network : Network
+    source, target : array_like of int, shape (k,)
+        Patch positions of the new links' ends.
+    distance_km : array_like of float, shape (k,)
+        Length of each new link.
+    weight : array_like of float, shape (k,), optional
+        Fixed weights; NaN or None means "the species' kernel of ``distance_km``" (1 for a
+        network with kernel "none", which has no kernel to fall back on).
+    survival : array_like of float, shape (k,), optional
+        Fixed share surviving the trip; NaN or None means ``survival_per_km ** distance_km``.
+    origin : {"corridor", "kernel", "table"}
+    both_ways : bool
+        Each new link is two arcs (i -> j and j -> i), as corridors are.
+
+    Returns
+    -------
+    Network
+        Arcs re-sorted by (source, target) as :func:`build_network` sorts them; a link
+        parallel to an existing one is a second route (their entries add up in
+        :func:`movement_operator`).
+    """
+    if origin not in _ORIGINS:
+        raise ValueError(f"origin must be one of {_ORIGINS}, got {origin!r}")
+    s = np.asarray(source, dtype=np.int64).ravel()
+    t = np.asarray(target, dtype=np.int64).ravel()
+    d = np.broadcast_to(np.asarray(distance_km, dtype=np.float64), s.shape)
+    fallback = 1.0 if network.kernel == "none" else np.nan
+    w = np.broadcast_to(np.asarray(np.nan if weight is None else weight, dtype=np.float64),
+                        s.shape)
+    w = np.where(np.isnan(w), fallback, w)
+    sv = np.broadcast_to(np.asarray(np.nan if survival is None else survival,
+                                    dtype=np.float64), s.shape)
+    if both_ways:
+        s, t = np.concatenate([s, t]), np.concatenate([t, s])
+        d, w, sv = np.tile(d, 2), np.tile(w, 2), np.tile(sv, 2)
+    source_ = np.concatenate([network.source, s])
+    target_ = np.concatenate([network.target, t])
+    dist = np.concatenate([network.distance_km, d])
+    code = np.concatenate([np.searchsorted(_ORIGINS, network.origin),
+                           np.full(s.size, _CODE[origin])])
+    order = np.lexsort((dist, code, target_, source_))
+    return Network(
+        ids=network.ids, source=source_[order], target=target_[order], distance_km=dist[order],
+        weight=np.concatenate([network.weight, w])[order],
+        survival=np.concatenate([network.survival, sv])[order],
+        origin=np.asarray(_ORIGINS)[code[order]], kernel=network.kernel,
+        max_distance_km=network.max_distance_km)
+
+
+def without(network: Network, *, patches=(), links=()) -> Network:
+    """A new network without some links, or without every link of some patches.
+
+    Parameters
+    ----------
+    network : Network
+    patches : sequence of int
+        Patch positions that lose every arc (in and out). The patches stay in the network,
+        so positions and ids keep the fixed patch order; to model a lost patch, the caller
+        also empties it (a patch with no links sends and receives nobody).
+    links : sequence of (int, int)
+        Unordered pairs of patch positions; every arc between the two (both directions,
+        every route: kernel, corridor, table) is removed.
+
+    Returns
+    -------
+    Network
+    """
+    n = max(network.n_patches, 1)
+    keep = np.ones(network.n_arcs, dtype=bool)
+    lost = np.asarray(list(patches), dtype=np.int64)
+    if lost.size:
+        keep &= ~(np.isin(network.source, lost) | np.isin(network.target, lost))
+    pairs = np.asarray(list(links), dtype=np.int64).reshape(-1, 2)
+    if pairs.size:
+        cut = np.minimum(pairs[:, 0], pairs[:, 1]) * n + np.maximum(pairs[:, 0], pairs[:, 1])
+        arc = np.minimum(network.source, network.target) * n + np.maximum(network.source,
+                                                                          network.target)
+        keep &= ~np.isin(arc, cut)
+    return Network(
+        ids=network.ids, source=network.source[keep], target=network.target[keep],
+        distance_km=network.distance_km[keep], weight=network.weight[keep],
+        survival=network.survival[keep], origin=network.origin[keep], kernel=network.kernel,
+        max_distance_km=network.max_distance_km)
+
+
+__all__ += ["with_links", "without"]

@@ -5,6 +5,19 @@ can run any task and a retried task gives the same answer. Results are handed to
 ``on_result`` as they complete, in the main process, so a caller can record each one at
 once (an interrupted batch keeps what it had).
 
+What happens when things go wrong:
+
+- A task that raises is not retried (the same inputs give the same error): its error text
+  goes to ``on_result`` with ``ok=False`` and the batch goes on.
+- A local worker process that dies (killed, out of memory) breaks Python's process pool; the
+  pool is replaced and the tasks that were in flight are run again, each at most ``retries``
+  more times before it is recorded as failed.
+- A lost Dask worker is handled by Dask itself: the scheduler moves its tasks to other
+  workers, up to its ``distributed.scheduler.allowed-failures`` setting (set to ``retries``
+  for a LocalCluster we start); a task that keeps killing workers is recorded as failed.
+- Ctrl-C (KeyboardInterrupt) cancels what has not started, stops the local workers or
+  cancels the Dask futures, and is raised again, so the caller exits with what it recorded.
+
 Dask is an optional dependency (``pip install "trophoscape[dask]"``); it is imported only
 when a scheduler is asked for.
 """
@@ -12,12 +25,19 @@ when a scheduler is asked for.
 from __future__ import annotations
 
 import os
+import signal
+from collections import deque
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Callable, Iterable
 
 from .errors import InputError
 
 __all__ = ["run_tasks", "default_workers"]
+
+#: Tasks kept in flight per local worker: enough to keep a worker busy between results,
+#: few enough that a broken pool only has to re-run a handful.
+IN_FLIGHT_PER_WORKER = 2
 
 
 def default_workers() -> int:
@@ -36,6 +56,12 @@ def _call(fn, task):
         return False, f"{type(exc).__name__}: {exc}"
 
 
+def _ignore_sigint():
+    # Ctrl-C in a terminal reaches every process of the group; the main process alone
+    # decides what to do, so workers do not each print a traceback.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
 def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
               workers: int | None = None, scheduler: str | None = None,
               dask_local: int | None = None, retries: int = 2, progress: bool = True,
@@ -50,7 +76,7 @@ def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
         The tasks (picklable).
     on_result : callable
         ``on_result(task, ok, value)`` in the calling process: ``value`` is the result, or
-        the error text when ``ok`` is False.
+        the error text when ``ok`` is False. Called exactly once per task.
     workers : int, optional
         Local processes (default: all cores). ``workers=1`` runs in this process.
     scheduler : str, optional
@@ -58,11 +84,18 @@ def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
     dask_local : int, optional
         Start a Dask ``LocalCluster`` on loopback with this many workers.
     retries : int
-        Dask retries of a task whose worker was lost.
+        How many more times a task is run after its worker process was lost.
+
+    Raises
+    ------
+    KeyboardInterrupt
+        Re-raised after the workers were stopped; results handed over so far stay handed.
     """
     from tqdm.auto import tqdm
 
     tasks = list(tasks)
+    if retries < 0:
+        raise InputError(f"must be at least 0, got {retries}", field="retries")
     bar = tqdm(total=len(tasks), disable=not progress, desc=desc, unit="run", delay=1.0)
     try:
         if scheduler is not None or dask_local is not None:
@@ -76,36 +109,140 @@ def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
                 on_result(task, *_call(fn, task))
                 bar.update(1)
             return
-        with ProcessPoolExecutor(max_workers=min(workers, len(tasks))) as pool:
-            pending = {pool.submit(_call, fn, task): task for task in tasks}
-            while pending:
-                done, _ = wait(pending, return_when=FIRST_COMPLETED)
-                for future in done:
-                    task = pending.pop(future)
-                    on_result(task, *future.result())
-                    bar.update(1)
+        _run_pool(fn, tasks, on_result, min(workers, len(tasks)), retries, bar)
     finally:
         bar.close()
 
 
+def _stop_pool(pool: ProcessPoolExecutor) -> None:
+    """Cancel queued tasks and end the worker processes now, not when their tasks end."""
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for proc in processes:
+        if proc.is_alive():
+            proc.terminate()
+    for proc in processes:
+        proc.join(timeout=5)
+
+
+def _run_pool(fn, tasks, on_result, workers, retries, bar):
+    """The local pool, replaced whenever a worker process dies.
+
+    A dead worker breaks the whole pool, and every task in flight is lost with it, not only
+    the one that killed it. Those tasks become suspects and are run again one at a time, so
+    that a task taking its worker down is known for sure and charged one attempt.
+    """
+    queue = deque(range(len(tasks)))
+    suspects: deque = deque()
+    attempts = [0] * len(tasks)
+    while queue or suspects:
+        isolated = bool(suspects)
+        source = suspects if isolated else queue
+        pool = ProcessPoolExecutor(max_workers=1 if isolated else workers,
+                                   initializer=_ignore_sigint)
+        try:
+            lost = _drain(pool, fn, tasks, source, 1 if isolated else
+                          IN_FLIGHT_PER_WORKER * workers, on_result, bar)
+        except BaseException:
+            _stop_pool(pool)
+            raise
+        _stop_pool(pool)
+        if not isolated:
+            suspects.extend(lost)
+            continue
+        for i in lost:  # at most one: it ran alone
+            attempts[i] += 1
+            if attempts[i] > retries:
+                on_result(tasks[i], False, "WorkerLost: the worker process running this task "
+                          f"died {attempts[i]} times (killed, or out of memory?)")
+                bar.update(1)
+            else:
+                suspects.appendleft(i)
+
+
+def _drain(pool, fn, tasks, source, limit, on_result, bar) -> list[int]:
+    """Run the tasks of ``source`` with at most ``limit`` in flight; the lost ones if it broke."""
+    pending: dict = {}
+    while True:
+        while source and len(pending) < limit:
+            i = source.popleft()
+            try:
+                pending[pool.submit(_call, fn, tasks[i])] = i
+            except BrokenProcessPool:
+                source.appendleft(i)
+                break
+        if not pending:
+            return []
+        done, _ = wait(pending, return_when=FIRST_COMPLETED)
+        lost = []
+        for future in done:
+            i = pending.pop(future)
+            try:
+                ok, value = future.result()
+            except BrokenProcessPool:
+                lost.append(i)
+                continue
+            on_result(tasks[i], ok, value)
+            bar.update(1)
+        if lost:
+            for future, i in pending.items():
+                if future.done() and not future.cancelled() and future.exception() is None:
+                    on_result(tasks[i], *future.result())
+                    bar.update(1)
+                else:
+                    lost.append(i)
+            return lost
+
+
 def _run_dask(fn, tasks, on_result, scheduler, dask_local, retries, bar):
     try:
+        import dask
         from dask.distributed import Client, LocalCluster, as_completed
     except ImportError:
         raise InputError('needs Dask: pip install "trophoscape[dask]"',
                          field="--scheduler" if scheduler else "--dask-local") from None
     cluster = None
-    if scheduler is None:
-        cluster = LocalCluster(n_workers=int(dask_local), threads_per_worker=1,
-                               host="127.0.0.1", dashboard_address=None, processes=True)
-    client = Client(cluster if cluster is not None else scheduler)
+    client = None
+    futures = []
     try:
+        if scheduler is None:
+            if int(dask_local) < 1:
+                raise InputError(f"must be at least 1, got {dask_local}", field="--dask-local")
+            # A task is moved off a lost worker this many times before it counts as failed.
+            with dask.config.set({"distributed.scheduler.allowed-failures": int(retries)}):
+                cluster = LocalCluster(n_workers=int(dask_local), threads_per_worker=1,
+                                       host="127.0.0.1", dashboard_address=None,
+                                       processes=True)
+            client = Client(cluster)
+        else:
+            try:
+                client = Client(scheduler, timeout="30s")
+            except (OSError, TimeoutError, ValueError) as exc:
+                raise InputError(f"cannot reach a Dask scheduler at {scheduler!r} ({exc}); "
+                                 "start one with `dask scheduler` and give its tcp:// address",
+                                 field="--scheduler") from None
+        # ``retries`` covers a task that raises on the worker outside ``_call`` (for example
+        # when the task cannot be unpickled there); a lost worker is the scheduler's job.
         futures = client.map(_call, [fn] * len(tasks), tasks, retries=retries, pure=False)
         index = {f.key: i for i, f in enumerate(futures)}
         for future in as_completed(futures):
-            on_result(tasks[index[future.key]], *future.result())
+            task = tasks[index[future.key]]
+            try:
+                ok, value = future.result()
+            except Exception as exc:  # e.g. KilledWorker: the task took workers down with it
+                ok, value = False, f"{type(exc).__name__}: {exc}"
+            on_result(task, ok, value)
+            future.release()
             bar.update(1)
+    except BaseException:
+        if client is not None and futures:
+            try:
+                client.cancel(futures)
+            except Exception:  # pragma: no cover - the cluster may already be gone
+                pass
+        raise
     finally:
-        client.close()
+        if client is not None:
+            client.close()
         if cluster is not None:
             cluster.close()

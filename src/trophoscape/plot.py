@@ -617,3 +617,247 @@ def kuramoto_plot(series, *, path, time_unit="year", title="Phase synchrony") ->
 
 
 __all__ += ["synchrony_distance_plot", "kuramoto_plot"]
+
+
+# --------------------------------------------------------------------------------------------
+# sweeps
+
+
+def sweep_plot(table, result, key, *, path, group_by=(), max_groups=len(OKABE_ITO)) -> Path:
+    """One network-level result of a sweep against one varied value, and save it as a PNG.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame, one row per run
+        The sweep table (columns named by scenario key, and the result columns).
+    result : str
+        Result column (numbers or booleans) for the y axis.
+    key : str
+        Varied key for the x axis: numbers are placed by value, anything else as classes.
+    path : str or path-like
+        PNG file to write.
+    group_by : sequence of str
+        Other varied keys: one line per combination of their values (up to ``max_groups``;
+        with more, all points are drawn in one colour and the line is the mean over them).
+    max_groups : int
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+    """
+    import pandas as pd
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    for col in (result, key, *group_by):
+        if col not in table.columns:
+            raise InputError(f"the sweep table has no column {col!r}", field=col)
+    data = table[[key, result, *group_by]].copy()
+    # booleans (True = 1) and missing results (None) as floats
+    data[result] = pd.to_numeric(data[result].map(
+        lambda v: np.nan if v is None else float(v) if isinstance(v, (bool, np.bool_)) else v),
+        errors="coerce")
+    numeric_x = pd.api.types.is_numeric_dtype(data[key]) and not pd.api.types.is_bool_dtype(
+        data[key])
+    if numeric_x:
+        data["_x"] = data[key].astype(float)
+        ticks = None
+    else:
+        classes = list(dict.fromkeys(data[key].astype(str)))
+        data["_x"] = data[key].astype(str).map({c: i for i, c in enumerate(classes)})
+        ticks = classes
+    groups = list(group_by)
+    if groups and data.groupby(groups, dropna=False).ngroups > max_groups:
+        groups = []
+    fig = Figure(figsize=(6.4, 3.8), layout="constrained")
+    ax = fig.add_subplot()
+    parts = data.groupby(groups, dropna=False, sort=False) if groups else [((), data)]
+    for k, (label, part) in enumerate(parts):
+        colour = OKABE_ITO[k % len(OKABE_ITO)]
+        ax.plot(part["_x"], part[result], linestyle="none", marker="o", markersize=3,
+                color=colour, alpha=0.45, zorder=2)
+        mean = part.groupby("_x")[result].mean().sort_index()
+        if not isinstance(label, tuple):
+            label = (label,)
+        text = ", ".join(f"{g} = {v}" for g, v in zip(groups, label)) or None
+        ax.plot(mean.index, mean.to_numpy(), marker="o", markersize=4.5, linewidth=1.4,
+                color=colour, label=text, zorder=3)
+    if ticks is not None:
+        ax.set_xticks(range(len(ticks)), ticks, rotation=30 if len(ticks) > 4 else 0)
+    ax.ticklabel_format(axis="y", useOffset=False)  # an offset hides values near 1
+    ax.set_xlabel(key, fontsize=9)
+    ax.set_ylabel(result.replace("_", " "), fontsize=9)
+    ax.tick_params(labelsize=8)
+    ax.grid(True, color="0.9", linewidth=0.5)
+    if groups:
+        ax.legend(frameon=False, fontsize=8, loc="best")
+    ax.set_title(f"{result.replace('_', ' ')} against {key}\n(dots: runs; line: mean of "
+                 "the replicates)", fontsize=10)
+    return _save(fig, path)
+
+
+__all__ += ["sweep_plot"]
+
+
+# --------------------------------------------------------------------------------------------
+# corridor planning
+
+
+def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, title=None,
+                 label=None, cmap="viridis") -> Path:
+    """Candidate corridors coloured by a value (e.g. gain per cost) over the patches.
+
+    Parameters
+    ----------
+    patches : geopandas.GeoDataFrame, n_patches rows
+        Patch polygons in a projected CRS in metres; drawn in a light neutral fill.
+    candidates : geopandas.GeoDataFrame, k rows
+        Candidate lines; reprojected to the patches' CRS if needed.
+    column : str
+        Numeric column of ``candidates`` to colour by; NaN (and ±inf) drawn grey, dashed.
+    path : str or path-like
+        PNG file to write; its folder must exist.
+    chosen : array_like of bool, shape (k,), optional
+        Candidates of the chosen set, drawn with a dark casing.
+    links : geopandas.GeoDataFrame, optional
+        Existing links, drawn thin and light under everything.
+    title, label : str, optional
+        Figure title (default the column) and colourbar label.
+    cmap : str
+        A sequential matplotlib colormap.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    import matplotlib
+    from matplotlib.cm import ScalarMappable
+    from matplotlib.collections import LineCollection
+    from matplotlib.colors import Normalize
+    from matplotlib.lines import Line2D
+
+    path = Path(path)
+    if column not in candidates.columns:
+        raise InputError(f"no such column; available: {', '.join(map(str, candidates.columns))}",
+                         field=column)
+    _check_metric(patches.crs, "patches")
+    if candidates.crs is not None and candidates.crs != patches.crs:
+        candidates = candidates.to_crs(patches.crs)
+    geoms = np.asarray(patches.geometry.values, dtype=object)
+    lines = np.asarray(candidates.geometry.values, dtype=object)
+    values = candidates[column].to_numpy(dtype=float)
+    finite = np.isfinite(values)
+    chosen = np.zeros(len(lines), bool) if chosen is None else np.asarray(chosen, bool)
+
+    import shapely
+
+    extent = np.concatenate([geoms, lines]) if len(lines) else geoms
+    fig, ax = _map_figure(extent)
+    handles = []
+    if links is not None and len(links):
+        if links.crs is not None and links.crs != patches.crs:
+            links = links.to_crs(patches.crs)
+        ax.add_collection(_line_collection(np.asarray(links.geometry.values, dtype=object)))
+        handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="existing link"))
+    ax.add_collection(_polygon_collection(geoms, np.tile(_rgba("#e9e6df"), (len(geoms), 1))))
+
+    segments = [shapely.get_coordinates(g) / 1e3 for g in lines]
+    if chosen.any():
+        ax.add_collection(LineCollection([s for s, c in zip(segments, chosen) if c],
+                                         colors="black", linewidths=5.0, zorder=3,
+                                         capstyle="round"))
+        handles.append(Line2D([], [], color="black", linewidth=4.0, label="chosen set"))
+    colourmap = matplotlib.colormaps[cmap]
+    norm = None
+    colours = np.tile(_rgba(NO_VALUE_COLOUR), (len(lines), 1))
+    if finite.any():
+        lo, hi = float(values[finite].min()), float(values[finite].max())
+        if lo == hi:
+            lo, hi = lo - 0.5 * (abs(lo) or 1.0), hi + 0.5 * (abs(hi) or 1.0)
+        norm = Normalize(lo, hi)
+        colours[finite] = colourmap(norm(values[finite]))
+    styles = np.where(finite, "solid", "dashed")
+    ax.add_collection(LineCollection(segments, colors=colours, linewidths=2.6, zorder=4,
+                                     linestyles=list(styles), capstyle="round"))
+    if (~finite).any():
+        handles.append(Line2D([], [], color=NO_VALUE_COLOUR, linewidth=2.0, linestyle="--",
+                              label="no value"))
+    _frame_map(ax, extent, patches.crs)
+    if norm is not None:
+        bar = fig.colorbar(ScalarMappable(norm=norm, cmap=colourmap), ax=ax, shrink=0.8,
+                           pad=0.02)
+        bar.set_label(label or column)
+    if handles:
+        fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4),
+                   frameon=False, fontsize=8)
+    ax.set_title(title or column, fontsize=11)
+    return _save(fig, path)
+
+
+__all__ += ["corridor_map"]
+
+
+# --------------------------------------------------------------------------------------------
+# collapse spread
+
+__all__ += ["arrival_distance_plot"]
+
+
+def arrival_distance_plot(distance_km, arrival_time, *, path, speed=None, interval=None,
+                          shock_time=None, time_unit="year",
+                          title="Arrival of collapse against distance") -> Path:
+    """Arrival time of collapse against distance from the nearest shocked patch.
+
+    Parameters
+    ----------
+    distance_km, arrival_time : array_like, shape (n_patches,)
+        NaN arrival for patches never reached (left out and counted in the legend).
+    path : str or path-like
+        PNG file to write.
+    speed : float, optional
+        Front speed (km per time unit); drawn as the line ``distance = speed (t - t0)``
+        through the median point, with ``interval`` (low, high) as a band of slopes.
+    shock_time : float, optional
+        Drawn as a vertical line.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    d = np.asarray(distance_km, dtype=float)
+    t = np.asarray(arrival_time, dtype=float)
+    if d.shape != t.shape:
+        raise InputError(f"distance and arrival differ in shape: {d.shape} and {t.shape}",
+                         field="arrival_time")
+    reached = np.isfinite(t) & np.isfinite(d)
+    fig = Figure(figsize=(6.4, 4.0), layout="constrained")
+    ax = fig.add_subplot()
+    ax.scatter(t[reached], d[reached], s=14, color=OKABE_ITO[0], alpha=0.8, linewidths=0,
+               label=f"reached ({int(reached.sum())})", zorder=3)
+    if shock_time is not None:
+        ax.axvline(shock_time, color=OKABE_ITO[6], linewidth=1.0, linestyle=":",
+                   label="shock", zorder=2)
+    use = reached & (d > 0)
+    if speed is not None and np.isfinite(speed) and use.sum() >= 2:
+        t0, d0 = float(np.median(t[use])), float(np.median(d[use]))
+        grid = np.linspace(t[use].min(), t[use].max(), 50)
+        if interval is not None and np.all(np.isfinite(interval)):
+            lo, hi = (d0 + s * (grid - t0) for s in interval)
+            ax.fill_between(grid, np.minimum(lo, hi), np.maximum(lo, hi), color=OKABE_ITO[1],
+                            alpha=0.2, linewidth=0, zorder=1)
+        ax.plot(grid, d0 + speed * (grid - t0), color=OKABE_ITO[1], linewidth=1.5,
+                label=f"front speed {speed:.3g} km/{time_unit}", zorder=4)
+    never = int((~np.isfinite(t)).sum())
+    if never:
+        ax.plot([], [], " ", label=f"never reached: {never}")
+    ax.set_xlabel(f"arrival time ({time_unit})", fontsize=9)
+    ax.set_ylabel("distance from the nearest shocked patch (km)", fontsize=9)
+    ax.tick_params(labelsize=8)
+    ax.grid(True, color="0.9", linewidth=0.5)
+    ax.legend(frameon=False, fontsize=8, loc="best")
+    ax.set_title(title, fontsize=10)
+    return _save(fig, path)

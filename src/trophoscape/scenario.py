@@ -15,6 +15,7 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
+from collections.abc import Mapping
 from typing import Any, Callable
 
 from .dynamics import GROWTH_FORMS, RESPONSES
@@ -161,12 +162,19 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "synchrony_pairs": Key(200_000, _number(10, integer=True),
                                doc="pairs sampled for synchrony against distance"),
     },
+    "spread": {
+        "species": Key("predator", _choice("prey", "predator"),
+                       doc="the species whose collapse is followed"),
+        "collapse_share": Key(0.1, _number(0, 1, lo_open=True),
+                              doc="collapsed: below this share of the baseline's running mean"),
+        "sustained": Key(2.0, _pos, doc="for at least this long (time units)"),
+        "window": Key(20.0, _pos, doc="width of the baseline's centred running mean"),
+    },
 }
 
 #: Sections of the contract that this version reads but cannot act on yet.
 NOT_YET = {
     "noise": "environmental and demographic noise",
-    "shock": "shocks",
 }
 
 
@@ -233,6 +241,9 @@ def _nested(flat: dict) -> dict:
             v = {"field": v.field}
         if v is None:
             continue
+        if k == "shock":
+            v = [{key: (list(x) if isinstance(x, tuple) else x) for key, x in t.items()
+                  if x is not None} for t in v]
         if section:
             out.setdefault(section, {})[key] = v
         else:
@@ -281,7 +292,7 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
     values: dict[str, Any] = {}
     sections = [s for s in SCHEMA if s]
     for name, content in raw.items():
-        if name in SCHEMA[""]:
+        if name in SCHEMA[""] or name == "shock":
             continue
         if name in NOT_YET:
             raise InputError(
@@ -336,12 +347,108 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
     if run["run.replicates"] != 1:
         raise InputError("replicates other than 1 need noise, which this version does not "
                          "model yet; set replicates = 1", file=file, field="run.replicates")
+    values["shock"] = _parse_shocks(raw.get("shock", []), values, file)
     values["run.seed"] = int(values["run.seed"])
     values["analysis.synchrony_pairs"] = int(values["analysis.synchrony_pairs"])
     values["run.replicates"] = int(values["run.replicates"])
     base = Path(base_dir) if base_dir is not None else Path.cwd()
     return Scenario(values=MappingProxyType(values), path=None if path is None else Path(path),
                     base_dir=base, text=text)
+
+
+# ----------------------------------------------------------------------- [[shock]] tables
+def _ids_list(v, *, allow_all):
+    if allow_all and v == "all":
+        return None
+    if (not isinstance(v, (list, tuple)) or not v
+            or not all(isinstance(x, (str, int)) and not isinstance(x, bool) for x in v)):
+        alternative = ' or "all"' if allow_all else ""
+        return f"must be a list of patch ids{alternative}, got {v!r}"
+    return None
+
+
+def _pairs_list(v):
+    if (not isinstance(v, (list, tuple)) or not v
+            or not all(isinstance(p, (list, tuple)) and len(p) == 2 and not _ids_list(p, allow_all=False)
+                       for p in v)):
+        return f'must be a list of pairs of patch ids, e.g. [["A", "B"]], got {v!r}'
+    if any(str(a) == str(b) for a, b in v):
+        return "a pair must join two different patches"
+    return None
+
+
+#: Keys of a [[shock]] table besides ``kind``: default and check. ``None`` means "no default".
+SHOCK_KEYS: dict[str, Key] = {
+    "at": Key(None, _nonneg, doc="time of the shock; default run.burn_in"),
+    "patches": Key(None, lambda v: _ids_list(v, allow_all=True), doc='ids, or "all"'),
+    "share": Key(None, _number(0, 1), doc="share removed"),
+    "factor": Key(None, _nonneg, doc="capacity or mortality multiplier"),
+    "duration": Key(None, _pos, doc="temporary shocks; omit for permanent"),
+    "rate": Key(None, _nonneg, doc="per-capita removal rate (harvest)"),
+    "species": Key("predator", _choice("prey", "predator"), doc="harvested species"),
+    "links": Key(None, _pairs_list, doc="pairs of ids (link_cut)"),
+}
+
+
+def _parse_shocks(tables, values, file) -> tuple:
+    """Validate the ``[[shock]]`` array of tables; ids are checked later, against the patches."""
+    from .shocks import SHOCK_KINDS
+
+    if isinstance(tables, Mapping):
+        raise InputError("must be an array of tables, written [[shock]] (double brackets)",
+                         file=file, field="shock")
+    out = []
+    kinds = ", ".join(repr(k) for k in SHOCK_KINDS)
+    for i, table in enumerate(tables):
+        where = f"shock[{i}]"
+        if not isinstance(table, Mapping):
+            raise InputError(f"must be a table, got {table!r}", file=file, field=where)
+        table = dict(table)
+        if "kind" not in table:
+            raise InputError(f"is required: one of {kinds}", file=file, field=f"{where}.kind")
+        kind = table["kind"]
+        if kind not in SHOCK_KINDS:
+            hint = _suggest(str(kind), SHOCK_KINDS) if isinstance(kind, str) else ""
+            raise InputError(f"unknown shock kind {kind!r}{hint or f'; expected one of {kinds}'}",
+                             file=file, field=f"{where}.kind")
+        cls = SHOCK_KINDS[kind]
+        for key in table:
+            if key == "kind":
+                continue
+            if key not in SHOCK_KEYS:
+                hint = _suggest(key, SHOCK_KEYS) or f"; a shock takes kind, {', '.join(SHOCK_KEYS)}"
+                raise InputError(f"unknown key{hint}", file=file, field=f"{where}.{key}")
+            if key != "at" and key not in cls.takes:
+                raise InputError(f"does not apply to a {kind} shock, which takes at, "
+                                 f"{', '.join(cls.takes)}", file=file, field=f"{where}.{key}")
+        shock = {"kind": kind}
+        for key in ("at",) + cls.takes:
+            spec = SHOCK_KEYS[key]
+            if key not in table:
+                if key in cls.needs:
+                    raise InputError(f"is required for a {kind} shock ({spec.doc})",
+                                     file=file, field=f"{where}.{key}")
+                shock[key] = values["run.burn_in"] if key == "at" else spec.default
+                continue
+            value = table[key]
+            problem = spec.check(value)
+            if problem:
+                raise InputError(problem, file=file, field=f"{where}.{key}")
+            if key == "factor" and kind == "habitat_loss" and value == 0:
+                raise InputError("must be > 0 for habitat_loss (a capacity of zero is undefined); "
+                                 "use kind = \"patch_loss\" to remove a patch", file=file,
+                                 field=f"{where}.{key}")
+            if key in ("patches", "links") and value != "all":
+                value = (tuple(str(x) for x in value) if key == "patches"
+                         else tuple((str(a), str(b)) for a, b in value))
+            elif isinstance(value, int) and not isinstance(value, bool) and key != "species":
+                value = float(value)
+            shock[key] = value
+        if shock["at"] >= values["run.duration"]:
+            raise InputError(f"must be less than run.duration ({values['run.duration']}), "
+                             f"got {shock['at']}", file=file, field=f"{where}.at")
+        out.append(MappingProxyType(shock))
+    return tuple(out)
 
 
 def bounds_of(full_key: str):

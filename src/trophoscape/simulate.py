@@ -127,6 +127,7 @@ def simulate(
     ids=None,
     time_unit: str = "year",
     progress: bool = False,
+    events=(),
 ) -> Trajectory:
     """Integrate ``system`` from ``y0`` with census steps every ``census_interval``.
 
@@ -147,6 +148,12 @@ def simulate(
         Patch ids for the ``patch`` coordinate (default ``"0", "1", ...``).
     progress : bool
         Show a progress bar (it appears only on runs longer than two seconds).
+    events : sequence, optional
+        Shocks and other sudden changes (:mod:`trophoscape.shocks`): objects with a
+        ``time`` and ``apply(system, y) -> (system, y)``. Integration stops at each event
+        time, the event is applied, and integration restarts with the system it returns.
+        A census at the same time records the state before the event. Events at or after
+        ``duration`` are ignored; events at time 0 act before the first step.
 
     Returns
     -------
@@ -171,11 +178,31 @@ def simulate(
         options["jac"] = system.jacobian_function()
     totals = dict(nfev=0, njev=0, nlu=0)
     steps = restarts = 0
+    # events: the solver runs only up to the next one (its t_bound), so none is stepped over
+    pending = sorted((e for e in events if float(e.time) < times[-1]),
+                     key=lambda e: float(e.time))
+    next_event = 0
+
+    def bound():
+        return float(pending[next_event].time) if next_event < len(pending) else times[-1]
+
+    def apply_events(t0, y_start):
+        nonlocal system, rhs, next_event
+        if next_event >= len(pending) or float(pending[next_event].time) > t0:
+            return y_start
+        while next_event < len(pending) and float(pending[next_event].time) <= t0:
+            system, y_start = pending[next_event].apply(system, y_start)
+            next_event += 1
+        rhs = system.rhs_function()
+        if method in IMPLICIT:
+            options["jac"] = system.jacobian_function()
+        return np.asarray(y_start, dtype=float)
 
     def start(t0, y_start, first_step):
+        y_start = apply_events(t0, y_start)
         if first_step is not None:
-            first_step = min(first_step, times[-1] - t0)
-        return solver_cls(rhs, t0, y_start, times[-1], first_step=first_step, **options)
+            first_step = min(first_step, bound() - t0)
+        return solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options)
 
     def harvest(s):
         for key in totals:
@@ -190,8 +217,14 @@ def simulate(
     status, message = 0, "The solver successfully reached the end of the integration interval."
     try:
         while k < times.size:
-            if solver.status == "finished" and solver.t < times[k]:  # pragma: no cover
-                raise RunError("solver stopped before the end of the run")
+            if solver.status == "finished" and solver.t < times[k]:
+                if next_event < len(pending) and solver.t >= float(pending[next_event].time):
+                    harvest(solver)
+                    h = getattr(solver, "h_abs", None) or solver.step_size
+                    solver = start(solver.t, solver.y.copy(), 0.5 * h if h else None)
+                    restarts += 1
+                    continue
+                raise RunError("solver stopped before the end of the run")  # pragma: no cover
             with np.errstate(over="ignore", invalid="ignore"):  # reported below instead
                 outcome = solver.step()
             steps += 1

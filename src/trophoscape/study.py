@@ -41,6 +41,7 @@ class Study:
     system: CoupledSystem
     initial_state: np.ndarray
     dispersal: dict = field(repr=False)  # per species: emigration_rate, scale_km arrays
+    shocks: tuple = ()  # trophoscape.shocks objects from the [[shock]] tables
 
     @property
     def ids(self) -> np.ndarray:
@@ -168,8 +169,11 @@ def _build_study(scenario: Scenario) -> Study:
                            prey_movement=operators["prey"],
                            predator_movement=operators["predator"])
     initial = _initial_state(sc, landscape, model)
+    from .shocks import build_shocks
+
+    shocks = build_shocks(sc["shock"], ids=landscape.ids, network=network, file=sc.path)
     return Study(scenario=sc, landscape=landscape, network=network, model=model,
-                 system=system, initial_state=initial, dispersal=dispersal)
+                 system=system, initial_state=initial, dispersal=dispersal, shocks=shocks)
 
 
 def _initial_state(sc: Scenario, landscape: Landscape, model: LocalModel) -> np.ndarray:
@@ -210,12 +214,17 @@ def run_study(study: Study, *, progress: bool = False) -> RunResult:
         ``extras`` what the figures need beyond those (curves, binned tables).
     """
     sc = study.scenario
+    events = ()
+    if study.shocks:
+        from .shocks import ShockContext, shock_events
+
+        events = shock_events(study.shocks, ShockContext.from_study(study))
     traj = simulate(
         study.system, study.initial_state,
         duration=sc["run.duration"], census_interval=sc["run.census_interval"],
         extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
         rtol=sc["run.rtol"], atol=sc["run.atol"], ids=study.ids,
-        time_unit=sc["time_unit"], progress=progress,
+        time_unit=sc["time_unit"], progress=progress, events=events,
     )
     table, summary, extras = analyse(study, traj)
     return RunResult(study=study, trajectory=traj, patches=table, summary=summary,

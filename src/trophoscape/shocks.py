@@ -1,0 +1,433 @@
+"""Shocks: sudden changes to a running patch network, applied at given times.
+
+A shock (predator removal, prey crash, habitat loss, patch loss, mortality pulse, harvest,
+link cut) is a small frozen object holding *resolved* patch positions. It turns into one or
+more :class:`events <StateScale>`; each event has a ``time`` and an
+``apply(system, y) -> (system, y)`` method, which :func:`trophoscape.simulate.simulate`
+calls at that time before integrating on with the returned system. Events only rebuild what
+they change (``dataclasses.replace`` of the :class:`~trophoscape.system.CoupledSystem` with a
+new :class:`~trophoscape.dynamics.LocalModel` or new movement operators), so applying one is
+cheap.
+
+Shock kinds are a table, ``SHOCK_KINDS``, like the growth forms of :mod:`trophoscape.dynamics`.
+Each kind lists the scenario keys it takes (``takes``) and those it needs (``needs``);
+:mod:`trophoscape.scenario` reads that table to validate ``[[shock]]`` tables, and
+:func:`build_shocks` resolves their patch ids against the landscape.
+
+Temporary parameter changes (habitat loss or a mortality pulse with a ``duration``, a harvest
+with a ``duration``) are written as a shift of the parameter added at the start and taken off
+at the end, computed from the parameters the shocks were built against, so that overlapping
+shocks of the same patch add up and each ends cleanly.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+import pandas as pd
+
+from .dynamics import LocalModel
+from .errors import InputError
+from .system import SPECIES
+
+__all__ = [
+    "SHOCK_KINDS",
+    "ShockContext",
+    "Shock",
+    "PredatorRemoval",
+    "PreyCrash",
+    "HabitatLoss",
+    "PatchLoss",
+    "MortalityPulse",
+    "Harvest",
+    "LinkCut",
+    "StateScale",
+    "ParameterShift",
+    "Rewire",
+    "build_shocks",
+    "shock_events",
+    "shocked_patches",
+]
+
+
+# --------------------------------------------------------------------------------- context
+@dataclass(frozen=True, eq=False)
+class ShockContext:
+    """What events need beyond the system: the network and how each species moves.
+
+    Parameters
+    ----------
+    network : trophoscape.network.Network
+        The network the system's movement operators were built from.
+    dispersal : dict
+        Per species (``"prey"``, ``"predator"``): ``{"emigration_rate": ndarray (n,),
+        "scale_km": ndarray (n,)}``, as on :class:`trophoscape.study.Study`.
+    survival_per_km : float
+        Share of dispersers surviving each km (arcs without a fixed survival).
+    model : LocalModel
+        The local model before any shock; temporary changes are computed from it.
+    """
+
+    network: object
+    dispersal: dict
+    survival_per_km: float
+    model: LocalModel
+
+    @classmethod
+    def from_study(cls, study) -> "ShockContext":
+        return cls(network=study.network, dispersal=study.dispersal,
+                   survival_per_km=study.scenario["dispersal.survival_per_km"],
+                   model=study.model)
+
+
+# ---------------------------------------------------------------------------------- events
+@dataclass(frozen=True, eq=False)
+class StateScale:
+    """Multiply the abundance of one species in some patches by ``factor``.
+
+    ``factor = 0`` clears the patches (patch loss); ``1 - share`` removes a share.
+    """
+
+    time: float
+    species: str
+    index: np.ndarray  # int positions, shape (k,)
+    factor: float
+
+    def apply(self, system, y):
+        y = np.array(y, dtype=float)
+        n = system.n_patches
+        offset = SPECIES.index(self.species) * n
+        y[offset + self.index] *= self.factor
+        return system, y
+
+
+@dataclass(frozen=True, eq=False)
+class ParameterShift:
+    """Add ``delta`` (shape (k,)) to a local-model parameter in some patches.
+
+    A parameter the model does not have yet (``prey_harvest``) starts from zero.
+    """
+
+    time: float
+    name: str
+    index: np.ndarray
+    delta: np.ndarray
+
+    def apply(self, system, y):
+        model = system.model
+        params = dict(model.params)
+        n = system.n_patches
+        value = np.array(params.get(self.name, np.zeros(n)), dtype=float)
+        value[self.index] += self.delta
+        if self.name != "prey_harvest":
+            # a rounding residue after start + end must not leave, say, a negative mortality
+            value[self.index] = np.maximum(value[self.index], 0.0)
+        params[self.name] = value
+        new = LocalModel(growth=model.growth, response=model.response, params=params)
+        return dataclasses.replace(system, model=new), y
+
+
+@dataclass(frozen=True, eq=False)
+class Rewire:
+    """Rebuild the movement operators without the arcs in ``removed`` (bool, (n_arcs,)).
+
+    ``removed`` is cumulative: every arc removed by this or an earlier event, so that one
+    patch loss followed by a link cut leaves neither.
+    """
+
+    time: float
+    removed: np.ndarray
+    context: ShockContext
+
+    def apply(self, system, y):
+        from .network import movement_operator
+
+        net = self.context.network
+        keep = ~self.removed
+        masked = dataclasses.replace(
+            net, source=net.source[keep], target=net.target[keep],
+            distance_km=net.distance_km[keep], weight=net.weight[keep],
+            survival=net.survival[keep], origin=net.origin[keep])
+        ops = {s: movement_operator(masked, emigration_rate=self.context.dispersal[s]["emigration_rate"],
+                                    scale_km=self.context.dispersal[s]["scale_km"],
+                                    survival_per_km=self.context.survival_per_km)
+               for s in SPECIES}
+        return dataclasses.replace(system, prey_movement=ops["prey"],
+                                   predator_movement=ops["predator"]), y
+
+
+# ---------------------------------------------------------------------------------- shocks
+class Shock:
+    """Interface: ``events(context) -> list of events``; ``patches`` the positions hit."""
+
+    kind: ClassVar[str]
+    #: scenario keys this kind accepts besides ``kind`` and ``at``
+    takes: ClassVar[tuple[str, ...]]
+    #: of those, the keys without a default
+    needs: ClassVar[tuple[str, ...]]
+
+    def events(self, context: ShockContext) -> list:  # pragma: no cover - interface
+        raise NotImplementedError
+
+
+def _ends(at, duration):
+    return [at] if duration is None else [at, at + duration]
+
+
+@dataclass(frozen=True, eq=False)
+class PredatorRemoval(Shock):
+    """Remove a share of the predators in some patches at time ``at`` (a cull, a disease)."""
+
+    kind: ClassVar[str] = "predator_removal"
+    takes: ClassVar = ("patches", "share")
+    needs: ClassVar = ("patches", "share")
+    at: float
+    patches: np.ndarray
+    share: float
+
+    def events(self, context):
+        return [StateScale(self.at, "predator", self.patches, 1.0 - self.share)]
+
+
+@dataclass(frozen=True, eq=False)
+class PreyCrash(Shock):
+    """Remove a share of the prey in some patches at time ``at``."""
+
+    kind: ClassVar[str] = "prey_crash"
+    takes: ClassVar = ("patches", "share")
+    needs: ClassVar = ("patches", "share")
+    at: float
+    patches: np.ndarray
+    share: float
+
+    def events(self, context):
+        return [StateScale(self.at, "prey", self.patches, 1.0 - self.share)]
+
+
+@dataclass(frozen=True, eq=False)
+class HabitatLoss(Shock):
+    """Carrying capacity times ``factor`` (> 0) from ``at``, for ``duration`` or for good.
+
+    Has no effect on exponential prey growth, which has no carrying capacity.
+    """
+
+    kind: ClassVar[str] = "habitat_loss"
+    takes: ClassVar = ("patches", "factor", "duration")
+    needs: ClassVar = ("patches", "factor")
+    at: float
+    patches: np.ndarray
+    factor: float
+    duration: float | None = None
+
+    def events(self, context):
+        base = np.asarray(context.model.params["capacity"], dtype=float)[self.patches]
+        delta = base * (self.factor - 1.0)
+        out = [ParameterShift(self.at, "capacity", self.patches, delta)]
+        if self.duration is not None:
+            out.append(ParameterShift(self.at + self.duration, "capacity", self.patches, -delta))
+        return out
+
+
+@dataclass(frozen=True, eq=False)
+class MortalityPulse(Shock):
+    """Predator mortality times ``factor`` (>= 0) from ``at``, for ``duration`` or for good."""
+
+    kind: ClassVar[str] = "mortality_pulse"
+    takes: ClassVar = ("patches", "factor", "duration")
+    needs: ClassVar = ("patches", "factor")
+    at: float
+    patches: np.ndarray
+    factor: float
+    duration: float | None = None
+
+    def events(self, context):
+        base = np.asarray(context.model.params["mortality"], dtype=float)[self.patches]
+        delta = base * (self.factor - 1.0)
+        out = [ParameterShift(self.at, "mortality", self.patches, delta)]
+        if self.duration is not None:
+            out.append(ParameterShift(self.at + self.duration, "mortality", self.patches,
+                                      -delta))
+        return out
+
+
+@dataclass(frozen=True, eq=False)
+class Harvest(Shock):
+    """A constant per-capita removal ``rate`` of one species from ``at`` on.
+
+    For the predator it adds to the mortality rate; for the prey it is the ``prey_harvest``
+    term of :meth:`trophoscape.dynamics.LocalModel.rates` (``- q n``). With ``duration`` it
+    stops after that time.
+    """
+
+    kind: ClassVar[str] = "harvest"
+    takes: ClassVar = ("patches", "rate", "species", "duration")
+    needs: ClassVar = ("patches", "rate")
+    at: float
+    patches: np.ndarray
+    rate: float
+    species: str = "predator"
+    duration: float | None = None
+
+    def events(self, context):
+        name = "mortality" if self.species == "predator" else "prey_harvest"
+        delta = np.full(self.patches.size, float(self.rate))
+        return [ParameterShift(t, name, self.patches, delta if k == 0 else -delta)
+                for k, t in enumerate(_ends(self.at, self.duration))]
+
+
+@dataclass(frozen=True, eq=False)
+class PatchLoss(Shock):
+    """The patches are gone from ``at`` on: populations zeroed, every link to them removed."""
+
+    kind: ClassVar[str] = "patch_loss"
+    takes: ClassVar = ("patches",)
+    needs: ClassVar = ("patches",)
+    at: float
+    patches: np.ndarray
+
+    def events(self, context):
+        net = context.network
+        gone = np.zeros(net.n_patches, dtype=bool)
+        gone[self.patches] = True
+        removed = gone[net.source] | gone[net.target]
+        return [StateScale(self.at, s, self.patches, 0.0) for s in SPECIES] + [
+            Rewire(self.at, removed, context)]
+
+
+@dataclass(frozen=True, eq=False)
+class LinkCut(Shock):
+    """Links between pairs of patches cut from ``at`` on (both directions, every route).
+
+    ``pairs`` is an int array of shape (k, 2) of patch positions.
+    """
+
+    kind: ClassVar[str] = "link_cut"
+    takes: ClassVar = ("links",)
+    needs: ClassVar = ("links",)
+    at: float
+    pairs: np.ndarray
+
+    @property
+    def patches(self) -> np.ndarray:
+        return np.unique(self.pairs)
+
+    def events(self, context):
+        net = context.network
+        n = max(net.n_patches, 1)
+        a, b = self.pairs[:, 0], self.pairs[:, 1]
+        cut = np.concatenate([a * n + b, b * n + a])
+        removed = np.isin(net.source * n + net.target, cut)
+        return [Rewire(self.at, removed, context)]
+
+
+#: Shock kinds by their scenario name.
+SHOCK_KINDS: dict[str, type[Shock]] = {
+    cls.kind: cls for cls in (PredatorRemoval, PreyCrash, HabitatLoss, PatchLoss,
+                              MortalityPulse, Harvest, LinkCut)
+}
+
+
+def shock_events(shocks, context: ShockContext, *, time_offset: float = 0.0) -> list:
+    """The events of some shocks, in time order, with cumulative rewiring.
+
+    Parameters
+    ----------
+    shocks : sequence of Shock
+    context : ShockContext
+    time_offset : float
+        Added to every event time (``-burn_in`` to continue a run started after burn-in).
+
+    Returns
+    -------
+    list of events, sorted by time (stable: shocks at the same time keep their order)
+    """
+    events = [e for shock in shocks for e in shock.events(context)]
+    events.sort(key=lambda e: float(e.time))
+    removed = None
+    out = []
+    for e in events:
+        if isinstance(e, Rewire):
+            removed = e.removed if removed is None else (removed | e.removed)
+            e = dataclasses.replace(e, removed=removed)
+        if time_offset:
+            e = dataclasses.replace(e, time=float(e.time) + time_offset)
+        out.append(e)
+    return out
+
+
+def shocked_patches(shocks, n_patches: int) -> np.ndarray:
+    """Boolean mask, shape (n_patches,), of the patches any of the shocks hits."""
+    hit = np.zeros(n_patches, dtype=bool)
+    for shock in shocks:
+        hit[shock.patches] = True
+    return hit
+
+
+# ------------------------------------------------------------------- scenario -> shocks
+def _positions(ids: pd.Index, wanted, *, file, field: str) -> np.ndarray:
+    found = ids.get_indexer([str(w) for w in wanted])
+    missing = np.flatnonzero(found < 0)
+    if missing.size:
+        sample = ", ".join(repr(str(i)) for i in ids[:3])
+        raise InputError(f"no patch has id {str(wanted[int(missing[0])])!r}; expected ids of "
+                         f"the patch file (e.g. {sample})", file=file, field=field)
+    return found.astype(np.int64)
+
+
+def build_shocks(tables, *, ids, network=None, file=None) -> tuple[Shock, ...]:
+    """Shock objects from validated ``[[shock]]`` tables, ids resolved to positions.
+
+    Parameters
+    ----------
+    tables : sequence of mapping
+        As :func:`trophoscape.scenario.parse_scenario` leaves them under ``"shock"``: every
+        key of the kind filled in (``at``, ``patches``, ...).
+    ids : array of str, shape (n_patches,)
+        Patch ids in the fixed order.
+    network : Network, optional
+        Needed to check that the pairs of a ``link_cut`` are linked.
+    file : path, optional
+        The scenario file, for error messages.
+
+    Raises
+    ------
+    InputError
+        An unknown patch id, or a ``link_cut`` pair that no link joins; the field names the
+        shock by its 0-based position among the ``[[shock]]`` tables (``shock[0].patches``).
+    """
+    index = pd.Index(np.asarray(ids, dtype=str))
+    n = index.size
+    out = []
+    for i, table in enumerate(tables):
+        kind = table["kind"]
+        cls = SHOCK_KINDS[kind]
+        values = {"at": float(table["at"])}
+        for key in cls.takes:
+            value = table.get(key)
+            if key == "patches":
+                value = (np.arange(n, dtype=np.int64) if value == "all" else
+                         _positions(index, list(value), file=file,
+                                    field=f"shock[{i}].patches"))
+            elif key == "links":
+                flat = _positions(index, [p for pair in value for p in pair], file=file,
+                                  field=f"shock[{i}].links")
+                value = flat.reshape(-1, 2)
+                if network is not None:
+                    nn = max(n, 1)
+                    arcs = np.unique(network.source * nn + network.target)
+                    linked = np.isin(value[:, 0] * nn + value[:, 1], arcs) | np.isin(
+                        value[:, 1] * nn + value[:, 0], arcs)
+                    if not linked.all():
+                        k = int(np.flatnonzero(~linked)[0])
+                        a, b = value[k]
+                        raise InputError(f"no link joins {index[a]!r} and {index[b]!r}; "
+                                         "link_cut takes pairs of linked patches", file=file,
+                                         field=f"shock[{i}].links")
+            if value is None and key not in cls.needs:
+                continue
+            values["pairs" if key == "links" else key] = value
+        out.append(cls(**values))
+    return tuple(out)

@@ -1,0 +1,160 @@
+"""The ``trophoscape spread`` command: where a shock's collapse goes first, and how fast.
+
+Registered by ``cli.py`` through ``COMMAND_MODULES`` (``add_parser``). Writes, atomically
+(:func:`trophoscape.outputs.staged_folder`):
+
+* the usual run folder of the *shocked* run (burn-in included), with the spread columns added
+  to ``patches.gpkg`` / ``patches.csv`` and the spread figures under ``"spread"`` in
+  ``summary.json``;
+* ``spread.csv`` (per patch: ``patch_id``, ``arrival_time``, ``order``,
+  ``network_distance_km``, ``distance_km``, ``recovered_at``, then ``shocked`` and
+  ``baseline_collapse``) and ``spread.json`` (network-level figures and provenance);
+* ``maps/spread_arrival.png`` and ``maps/spread_arrival_distance.png``;
+* with ``--origins``: ``origins.csv`` and ``maps/origin_vulnerability.png``.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["add_parser", "run_command", "write_spread"]
+
+EPILOG = ("examples:\n  trophoscape spread valley.toml --out results/spread\n"
+          "  trophoscape spread valley.toml --out results/scan --origins 50")
+
+SPREAD_COLUMNS = ["arrival_time", "order", "network_distance_km", "distance_km",
+                  "recovered_at", "shocked", "baseline_collapse"]
+
+
+def add_parser(subparsers) -> argparse.ArgumentParser:
+    """Register ``spread`` on the CLI's subparsers."""
+    p = subparsers.add_parser(
+        "spread", help="follow the collapse a shock sets off, patch by patch",
+        description="Run the scenario's [[shock]] tables against a baseline from the same "
+                    "state after burn-in; write arrival times of collapse, distances, the "
+                    "front speed and maps. With --origins, shock each origin in turn.",
+        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("scenario", type=Path, help="scenario file (TOML) with [[shock]] tables")
+    p.add_argument("--out", type=Path, required=True, help="output folder")
+    p.add_argument("--origins", metavar="N|all", default=None,
+                   help="also scan origins: a spatially stratified sample of N patches, or "
+                        "'all'; the scenario's shocks are aimed at each in turn")
+    p.add_argument("--workers", type=int, default=None,
+                   help="processes for the origin scan (default: all cores)")
+    p.add_argument("--geojson", action="store_true", help="also write patches.geojson")
+    p.add_argument("--no-maps", action="store_true", help="skip the PNG maps and the report")
+    p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+    p.set_defaults(handler=run_command)
+    return p
+
+
+def _origin_count(text):
+    if text is None:
+        return None
+    if text == "all":
+        return "all"
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise InputError(f"must be a whole number >= 1 or 'all', got {text!r}",
+                         field="--origins")
+    return n
+
+
+def run_command(args) -> int:
+    """Handler of ``trophoscape spread``; returns the exit code."""
+    from .analysis.spread import origin_scan, run_spread, stratified_origins
+    from .study import load_study
+
+    count = _origin_count(args.origins)
+    study = load_study(args.scenario)
+    result = run_spread(study, progress=not args.quiet)
+    scan = None
+    if count is not None:
+        origins = (None if count == "all" else
+                   stratified_origins(study.landscape.centroids, count,
+                                      seed=study.scenario["run.seed"]))
+        scan = origin_scan(study, origins, workers=args.workers, progress=not args.quiet)
+    write_spread(study, result, args.out, scan=scan, maps=not args.no_maps,
+                 geojson=args.geojson)
+    if not args.quiet:
+        s = result.summary
+        speed = s["front_speed_km_per_time"]
+        print(f"wrote {args.out}")
+        print(f"  {s['species']} collapse reached {s['reached_share']:.0%} of patches"
+              + (f"; front speed {speed:.3g} km per {study.scenario['time_unit']}"
+                 if np.isfinite(speed) else ""))
+    return 0
+
+
+def write_spread(study, result, out, *, scan=None, maps=True, geojson=False) -> Path:
+    """Write the spread outputs (and the shocked run's folder) into ``out``, atomically.
+
+    Parameters
+    ----------
+    study : Study
+    result : trophoscape.analysis.spread.SpreadResult
+    out : path
+    scan : pandas.DataFrame, optional
+        From :func:`trophoscape.analysis.spread.origin_scan`.
+    """
+    from .outputs import provenance, staged_folder, write_json, write_run
+    from .study import RunResult, analyse
+
+    out = Path(out)
+    table, summary, extras = analyse(study, result.shocked)
+    table = table.join(result.table[SPREAD_COLUMNS])
+    summary["spread"] = result.summary
+    run = RunResult(study=study, trajectory=result.shocked, patches=table, summary=summary,
+                    extras=extras)
+    spread_summary = dict(result.summary)
+    spread_summary["scenario"] = study.scenario.name
+    spread_summary["time_unit"] = study.scenario["time_unit"]
+    spread_summary["shocks"] = [dict(t) for t in study.scenario["shock"]]
+    spread_summary["provenance"] = provenance(study)
+    with staged_folder(out) as stage:
+        write_run(run, stage, maps=maps, geojson=geojson)
+        result.table[SPREAD_COLUMNS].to_csv(stage / "spread.csv", index=True)
+        write_json(stage / "spread.json", spread_summary)
+        if scan is not None:
+            scan.to_csv(stage / "origins.csv", index=True)
+        if maps:
+            _spread_maps(stage, study, result, scan)
+    return out
+
+
+def _spread_maps(stage: Path, study, result, scan) -> None:
+    from .plot import arrival_distance_plot, patch_map
+
+    folder = stage / "maps"
+    folder.mkdir(exist_ok=True)
+    land = study.landscape
+    links = study.network.links_frame(land)
+    frame = land.frame[["patch_id", "geometry"]].copy()
+    for col in ("arrival_time", "distance_km", "network_distance_km"):
+        frame[col] = result.table[col].to_numpy()
+    unit = study.scenario["time_unit"]
+    species = result.summary["species"]
+    patch_map(frame, "arrival_time", path=folder / "spread_arrival.png", links=links,
+              title=f"Arrival of {species} collapse", label=f"arrival time ({unit})",
+              cmap="cividis_r")
+    s = result.summary
+    arrival_distance_plot(result.table["distance_km"].to_numpy(),
+                          result.table["arrival_time"].to_numpy(),
+                          path=folder / "spread_arrival_distance.png",
+                          speed=s["front_speed_km_per_time"],
+                          interval=s["front_speed_interval_km_per_time"],
+                          shock_time=s["shock_time"], time_unit=unit)
+    if scan is not None:
+        frame["cascade_share"] = scan["cascade_share"].reindex(
+            land.ids.astype(str)).to_numpy(dtype=float)
+        patch_map(frame, "cascade_share", path=folder / "origin_vulnerability.png",
+                  links=links, title="Origins: share of other patches a collapse reaches",
+                  label="share of patches reached", cmap="magma_r")

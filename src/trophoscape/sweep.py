@@ -1,0 +1,789 @@
+"""Parameter sweeps: one scenario, many variants and replicates, every finished run recorded.
+
+A sweep is a list of *runs*: every point of the sweep (a set of scenario values, the
+Cartesian product of the ``--vary`` values and/or the rows of a sweep table) times every
+replicate. Each run is a pure function of (scenario text, variant, seed), computed by
+:func:`run_point` on any worker (a local process or a Dask worker), which re-reads the
+scenario from its text and builds the study itself; nothing large is pickled.
+
+Every finished run is written at once, from the main process, to a results ledger: an SQLite
+file ``ledger.sqlite`` in the output folder (WAL journal, one transaction per run, the run id
+as primary key). ``resume=True`` skips the runs already recorded as ok, re-runs failed ones,
+and never records a run twice. The table ``sweep.csv`` is regenerated from the ledger when the
+sweep ends; ``runs/<run_id>.json`` holds each run's results; ``plots/`` shows each key result
+against each varied value.
+
+Replicates of a point get seeds from ``numpy.random.SeedSequence(seed).spawn(replicates)``,
+where ``seed`` is the point's ``run.seed``; so replicate r has the same seed at every point
+(common random numbers across points, common practice in simulation experiments) and adding
+replicates later keeps the seeds of the earlier ones.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import difflib
+import hashlib
+import itertools
+import json
+import math
+import os
+import sqlite3
+import tempfile
+import time
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Mapping, Sequence
+
+from .errors import InputError, RunError
+
+__all__ = ["sweep", "parse_vary", "read_sweep_table", "plan_sweep", "run_point", "Ledger",
+           "SweepRun", "flatten_summary", "run_id_of", "replicate_seeds", "KEY_RESULTS",
+           "LEDGER_NAME", "TABLE_NAME"]
+
+LEDGER_NAME = "ledger.sqlite"
+TABLE_NAME = "sweep.csv"
+#: Network-level results drawn against every varied value.
+KEY_RESULTS = ("prey_regional_persistence", "predator_regional_persistence",
+               "prey_synchrony", "predator_synchrony")
+#: Columns of the table that depend on when and how fast a run went, not on its inputs.
+TIME_COLUMNS = ("seconds", "finished")
+LEDGER_FORMAT = "1"
+
+
+# ------------------------------------------------------------------------------ the plan
+def _all_keys() -> list[str]:
+    from .scenario import SCHEMA
+
+    return [f"{s}.{k}" if s else k for s, keys in SCHEMA.items() for k in keys]
+
+
+def _check_key(key: str, *, field: str, file=None, feature=None) -> None:
+    keys = _all_keys()
+    if key in keys:
+        return
+    close = difflib.get_close_matches(key, keys, n=1, cutoff=0.6)
+    hint = f"; did you mean {close[0]!r}?" if close else (
+        "; keys are written section.key, e.g. 'prey.growth_rate'")
+    raise InputError(f"unknown scenario key {key!r}{hint}", file=file, feature=feature,
+                     field=field)
+
+
+def _kind(key: str) -> str:
+    """"text", "flag" or "number": how a key's values are written (from its schema check)."""
+    from .scenario import SCHEMA
+
+    section, _, name = key.rpartition(".")
+    check = SCHEMA[section][name].check
+    if hasattr(check, "bounds"):  # the schema's numeric checks carry their range
+        return "number"
+    return "flag" if check(True) is None else "text"
+
+
+def _default_is_text(key: str) -> bool:
+    return _kind(key) == "text"
+
+
+def _token(text: str, key: str):
+    """One value as written on the command line or in a table cell: number, bool or text."""
+    text = text.strip()
+    if len(text) >= 2 and text[0] == text[-1] and text[0] in "'\"":
+        return text[1:-1]
+    kind = _kind(key)
+    if kind == "text":
+        return text
+    if kind == "flag":
+        return {"true": True, "false": False}.get(text.lower(), text)
+    try:
+        return int(text)
+    except ValueError:
+        pass
+    try:
+        return float(text)
+    except ValueError:
+        return text
+
+
+def _tidy(x: float) -> float:
+    # linspace steps such as 0.7000000000000001 would give ugly labels and unstable ids
+    return float(f"{x:.12g}")
+
+
+def parse_vary(arg: str) -> tuple[str, list]:
+    """Parse one ``KEY=SPEC`` argument of ``--vary``.
+
+    ``SPEC`` is ``START:STOP:COUNT`` (COUNT evenly spaced numbers from START to STOP, both
+    included, as :func:`numpy.linspace`) or a comma-separated list of numbers or words.
+
+    Returns
+    -------
+    key : str
+    values : list
+        In the order given.
+
+    Raises
+    ------
+    InputError
+        Naming the argument (``field='--vary KEY=SPEC'``), for a missing ``=``, an unknown
+        key, a malformed range, an empty or repeated value.
+
+    Examples
+    --------
+    >>> parse_vary("prey.growth_rate=0.5:1.5:3")
+    ('prey.growth_rate', [0.5, 1.0, 1.5])
+    >>> parse_vary("dispersal.kernel=exponential,gaussian")
+    ('dispersal.kernel', ['exponential', 'gaussian'])
+    """
+    field = f"--vary {arg}"
+    key, eq, spec = arg.partition("=")
+    key, spec = key.strip(), spec.strip()
+    if not eq or not key:
+        raise InputError("must be KEY=VALUES, e.g. prey.growth_rate=0.5:1.5:11 or "
+                         "dispersal.max_distance_km=5,10,20", field=field)
+    _check_key(key, field=field)
+    if not spec:
+        raise InputError("no values after '='; give START:STOP:COUNT or a comma list",
+                         field=field)
+    if ":" in spec and "," not in spec and not _default_is_text(key):
+        parts = spec.split(":")
+        if len(parts) != 3:
+            raise InputError(f"a range must be START:STOP:COUNT, got {spec!r}", field=field)
+        try:
+            start, stop = float(parts[0]), float(parts[1])
+        except ValueError:
+            raise InputError(f"START and STOP of a range must be numbers, got {spec!r}",
+                             field=field) from None
+        try:
+            count = int(parts[2])
+        except ValueError:
+            count = 0
+        if count < 1 or not math.isfinite(start) or not math.isfinite(stop):
+            raise InputError(f"COUNT of a range must be a whole number >= 1, got {parts[2]!r}"
+                             if count < 1 else f"START and STOP must be finite, got {spec!r}",
+                             field=field)
+        if count == 1:
+            values = [_tidy(start)]
+        else:
+            step = (stop - start) / (count - 1)
+            values = [_tidy(start + k * step) for k in range(count - 1)] + [_tidy(stop)]
+    else:
+        items = [s for s in spec.split(",")]
+        if any(not s.strip() for s in items):
+            raise InputError(f"empty value in the list {spec!r}", field=field)
+        values = [_token(s, key) for s in items]
+    seen = set()
+    for v in values:
+        number = isinstance(v, (int, float)) and not isinstance(v, bool)
+        marker = repr(float(v)) if number else json.dumps(v)
+        if marker in seen:
+            raise InputError(f"the value {v!r} is given twice", field=field)
+        seen.add(marker)
+    return key, values
+
+
+def read_sweep_table(path) -> list[dict]:
+    """Read a sweep table: a CSV file with one column per scenario key, one row per point.
+
+    Raises
+    ------
+    InputError
+        For a missing file, an unknown key as a column header (with the closest known one),
+        an empty cell (naming the row, 0-based, and the column) or a repeated row.
+    """
+    path = Path(path)
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            rows = list(csv.reader(fh))
+    except FileNotFoundError:
+        raise InputError("sweep table not found", file=path, field="--table") from None
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"cannot read the sweep table ({exc})", file=path,
+                         field="--table") from None
+    rows = [r for r in rows if any(c.strip() for c in r)]
+    if not rows:
+        raise InputError("the sweep table is empty; give a header of scenario keys and one "
+                         "row per point", file=path, field="--table")
+    header = [h.strip() for h in rows[0]]
+    for h in header:
+        if not h:
+            raise InputError("empty column name in the header", file=path, field="--table")
+        _check_key(h, file=path, field=h)
+    if len(set(header)) != len(header):
+        dup = next(h for h in header if header.count(h) > 1)
+        raise InputError("column given twice", file=path, field=dup)
+    if len(rows) == 1:
+        raise InputError("the sweep table has a header but no rows", file=path,
+                         field="--table")
+    points, seen = [], {}
+    for i, row in enumerate(rows[1:]):
+        if len(row) != len(header):
+            raise InputError(f"has {len(row)} cells, the header {len(header)}", file=path,
+                             feature=i, field="--table")
+        point = {}
+        for h, cell in zip(header, row):
+            if not cell.strip():
+                raise InputError("empty cell; every row needs a value for every column",
+                                 file=path, feature=i, field=h)
+            point[h] = _token(cell, h)
+        marker = json.dumps(point, sort_keys=True)
+        if marker in seen:
+            raise InputError(f"repeats row {seen[marker]}", file=path, feature=i,
+                             field="--table")
+        seen[marker] = i
+        points.append(point)
+    return points
+
+
+@dataclass(frozen=True)
+class SweepRun:
+    """One run of a sweep: what a worker needs, and nothing large.
+
+    ``variant`` is a tuple of ``(key, value)`` pairs in the sweep's key order; the scenario
+    travels as its text and the folder its relative paths are resolved against.
+    """
+
+    run_id: str
+    point: int
+    replicate: int
+    seed: int
+    variant: tuple
+    scenario_text: str
+    scenario_path: str | None
+    base_dir: str
+
+    @property
+    def values(self) -> dict:
+        return dict(self.variant)
+
+
+def run_id_of(variant: Mapping, replicate: int) -> str:
+    """A stable id of a run: a hash of its variant (keys sorted) and its replicate number."""
+    text = json.dumps({"variant": dict(variant), "replicate": int(replicate)},
+                      sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+
+def replicate_seeds(seed: int, replicates: int) -> list[int]:
+    """Seeds of the replicates: ``SeedSequence(seed).spawn(replicates)``, 63-bit integers.
+
+    63 bits so that a seed fits a TOML integer and an SQLite INTEGER (both signed 64-bit).
+    """
+    import numpy as np
+
+    children = np.random.SeedSequence(int(seed)).spawn(int(replicates))
+    return [int(c.generate_state(1, dtype=np.uint64)[0] >> np.uint64(1)) for c in children]
+
+
+def _apply(raw: dict, variant: Mapping) -> dict:
+    """The scenario's TOML tables with some ``section.key`` values replaced (a copy)."""
+    out = {k: (dict(v) if isinstance(v, dict) else v) for k, v in raw.items()}
+    for key, value in variant.items():
+        section, _, name = key.rpartition(".")
+        if section:
+            table = out.get(section)
+            out[section] = dict(table) if isinstance(table, dict) else {}
+            out[section][name] = value
+        else:
+            out[name] = value
+    return out
+
+
+def _scenario_for(text: str, path, base_dir, variant: Mapping):
+    from .scenario import parse_scenario
+
+    raw = tomllib.loads(text)
+    return parse_scenario(_apply(raw, variant), path=None if path is None else Path(path),
+                          base_dir=Path(base_dir), text=text)
+
+
+def _describe(variant: Mapping) -> str:
+    return ", ".join(f"{k}={v!r}" for k, v in variant.items())
+
+
+def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
+    """Keys, points and where each key came from (for messages), from the sweep's inputs.
+
+    ``spec`` is a list of --vary strings (a ``.csv`` path among them is a sweep table), a
+    dict of value lists, or a list of dicts (explicit points); groups combine as a Cartesian
+    product. ``origins[key]`` is ``("--vary", argument)`` or ``("--table", path, rows)``.
+    """
+    groups: list[tuple[list[str], list[dict]]] = []
+    origins: dict[str, tuple] = {}
+
+    def add_table(path):
+        rows = read_sweep_table(path)
+        groups.append((list(rows[0]), rows))
+        for k in rows[0]:
+            origins.setdefault(k, ("--table", Path(path), rows))
+
+    if table is not None:
+        add_table(table)
+    if spec is None:
+        spec = []
+    if isinstance(spec, (str, os.PathLike)):
+        spec = [spec]
+    if isinstance(spec, Mapping):
+        for key, values in spec.items():
+            _check_key(key, field=f"--vary {key}")
+            values = list(values) if isinstance(values, (list, tuple, range)) else [values]
+            if not values:
+                raise InputError("no values", field=f"--vary {key}")
+            groups.append(([key], [{key: v} for v in values]))
+            origins.setdefault(key, ("--vary", key))
+    else:
+        spec = list(spec)
+        if spec and all(isinstance(s, Mapping) for s in spec):
+            keys = list(spec[0])
+            for i, point in enumerate(spec):
+                if list(point) != keys:
+                    raise InputError(f"point {i} has keys {list(point)}, point 0 has {keys}",
+                                     field="variants")
+                for k in keys:
+                    _check_key(k, field="variants")
+                    origins.setdefault(k, ("--vary", k))
+            groups.append((keys, [dict(p) for p in spec]))
+        else:
+            for s in spec:
+                if isinstance(s, Mapping):
+                    raise InputError("give either --vary strings or a list of dicts, not both",
+                                     field="variants")
+                if isinstance(s, os.PathLike) or (str(s).endswith(".csv") and "=" not in str(s)):
+                    add_table(s)
+                    continue
+                key, values = parse_vary(str(s))
+                groups.append(([key], [{key: v} for v in values]))
+                origins.setdefault(key, ("--vary", str(s)))
+    keys: list[str] = []
+    for group_keys, _ in groups:
+        for k in group_keys:
+            if k in keys:
+                raise InputError(f"the key {k!r} is varied twice", field=f"--vary {k}")
+            keys.append(k)
+    if not groups:
+        return [], [{}], origins
+    points = [dict(itertools.chain.from_iterable(p.items() for p in combo))
+              for combo in itertools.product(*(rows for _, rows in groups))]
+    return keys, points, origins
+
+
+def _value_error(scenario, exc: InputError, point: dict, origins: dict) -> InputError:
+    """The error of a point that is not a scenario, naming the argument or table cell at fault.
+
+    A value that is wrong on its own (in the base scenario) is blamed on the --vary argument
+    or the table cell it came from; otherwise the combination is.
+    """
+    key = exc.field
+    if key in point and key in origins:
+        try:
+            _scenario_for(scenario.text, scenario.path, scenario.base_dir, {key: point[key]})
+        except InputError as alone:
+            origin = origins[key]
+            if origin[0] == "--vary":
+                return InputError(f"{key} {alone.message}", field=f"--vary {origin[1]}")
+            _, path, rows = origin
+            row = next(i for i, r in enumerate(rows) if r.get(key) == point[key])
+            return InputError(alone.message, file=path, feature=row, field=key)
+    return InputError(f"the point {_describe(point)} is not a valid scenario: "
+                      f"{exc.field} {exc.message}", file=scenario.path, field="--vary")
+
+
+def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 1,
+               table=None) -> tuple[list[str], list[SweepRun], Any]:
+    """Check a sweep and list its runs, without running anything.
+
+    Every point is validated as a whole scenario here, so a bad value is an
+    :class:`InputError` before the first run starts.
+
+    Returns
+    -------
+    keys : list of str
+        The varied keys, in order.
+    runs : list of SweepRun
+        Point by point (the last key varies fastest), replicate by replicate.
+    scenario : Scenario
+        The base scenario.
+    """
+    from .scenario import read_scenario
+
+    scenario = read_scenario(scenario_path)
+    if isinstance(replicates, bool) or not isinstance(replicates, int) or replicates < 1:
+        raise InputError(f"must be a whole number >= 1, got {replicates!r}",
+                         field="--replicates")
+    keys, points, origins = _as_points(variants_or_vary_specs, table=table)
+    runs = []
+    base_dir = str(Path(scenario.base_dir).resolve())
+    path = None if scenario.path is None else str(Path(scenario.path).resolve())
+    seen_points: dict[tuple, dict] = {}
+    for p, point in enumerate(points):
+        try:
+            sc = _scenario_for(scenario.text, scenario.path, scenario.base_dir, point)
+        except InputError as exc:
+            raise _value_error(scenario, exc, point, origins) from None
+        except TypeError:
+            raise InputError(f"the point {_describe(point)} holds a value a scenario cannot "
+                             "hold (numbers, words, true/false)", field="--vary") from None
+        # The validated value is the canonical one (5 and 5.0 are the same distance).
+        canonical = tuple((k, _canonical(sc[k], point[k])) for k in keys)
+        if canonical in seen_points:
+            raise InputError(f"the points {_describe(seen_points[canonical])} and "
+                             f"{_describe(point)} are the same scenario; give each once",
+                             field="--vary")
+        seen_points[canonical] = point
+        for r, seed in enumerate(replicate_seeds(sc["run.seed"], replicates)):
+            runs.append(SweepRun(run_id=run_id_of(dict(canonical), r), point=p, replicate=r,
+                                 seed=seed, variant=canonical, scenario_text=scenario.text,
+                                 scenario_path=path, base_dir=base_dir))
+    return keys, runs, scenario
+
+
+def _canonical(validated, given):
+    from .scenario import FieldRef
+
+    if isinstance(validated, FieldRef):
+        return given
+    return validated
+
+
+# ------------------------------------------------------------------------------ the task
+def flatten_summary(summary: Mapping) -> dict:
+    """Every scalar of a run's summary (numbers, booleans, text) as one flat dict.
+
+    Nested tables are flattened with their key as prefix (``solver`` -> ``solver_nfev``;
+    ``stability_details`` -> ``stability_leading_eigenvalue_real``); lists are left out;
+    NaN and None become None.
+    """
+    import numpy as np
+
+    out: dict[str, Any] = {}
+
+    def put(name, value):
+        if isinstance(value, np.generic):
+            value = value.item()
+        if value is None or isinstance(value, (bool, str)):
+            out[name] = value
+        elif isinstance(value, (int, float)):
+            out[name] = value if math.isfinite(value) else None
+        # lists, arrays and other objects have no single cell
+
+    for key, value in summary.items():
+        if isinstance(value, Mapping):
+            prefix = key[:-len("_details")] if key.endswith("_details") else key
+            for sub, v in value.items():
+                name = f"{prefix}_{sub}"
+                if name in summary or name in out:
+                    name = f"{key}_{sub}"
+                if not isinstance(v, Mapping):
+                    put(name, v)
+        else:
+            put(key, value)
+    return out
+
+
+def run_point(task: SweepRun) -> dict:
+    """Run one point of a sweep from scratch: scenario text -> study -> results.
+
+    A pure function of the task: the scenario is parsed from its text, the variant applied,
+    ``run.seed`` set to the run's seed, the study built and run (no maps, no files).
+
+    Returns
+    -------
+    dict
+        ``results`` (see :func:`flatten_summary`) and ``seconds`` (wall time of the run).
+    """
+    from .study import build_study, run_study
+
+    t0 = time.perf_counter()
+    sc = _scenario_for(task.scenario_text, task.scenario_path, task.base_dir,
+                       {**task.values, "run.seed": task.seed})
+    result = run_study(build_study(sc))
+    return {"results": flatten_summary(result.summary),
+            "seconds": round(time.perf_counter() - t0, 4)}
+
+
+# ------------------------------------------------------------------------------ the ledger
+class Ledger:
+    """The results ledger of a sweep: an SQLite file with one row per finished run.
+
+    Table ``runs``: ``run_id`` (primary key), ``point``, ``replicate``, ``seed``, ``variant``
+    (JSON), ``status`` ("ok" or "failed"), ``error``, ``results`` (JSON), ``seconds``,
+    ``finished`` (UTC, ISO 8601). Table ``meta``: what the sweep was started with (format,
+    scenario hash, varied keys). Each record is one transaction in WAL mode, so a process
+    killed at any moment leaves every committed run whole and nothing half-written.
+    """
+
+    SCHEMA = """
+    CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+    CREATE TABLE IF NOT EXISTS runs (
+        run_id    TEXT PRIMARY KEY,
+        point     INTEGER NOT NULL,
+        replicate INTEGER NOT NULL,
+        seed      INTEGER NOT NULL,
+        variant   TEXT NOT NULL,
+        status    TEXT NOT NULL CHECK (status IN ('ok', 'failed')),
+        error     TEXT,
+        results   TEXT,
+        seconds   REAL,
+        finished  TEXT NOT NULL
+    );
+    """
+
+    def __init__(self, path):
+        self.path = Path(path)
+        self.conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
+        self.conn.execute("PRAGMA journal_mode=WAL")
+        self.conn.execute("PRAGMA synchronous=FULL")
+        with self:
+            for statement in self.SCHEMA.split(";"):
+                if statement.strip():
+                    self.conn.execute(statement)
+
+    def __enter__(self):
+        self.conn.execute("BEGIN IMMEDIATE")
+        return self
+
+    def __exit__(self, kind, exc, tb):
+        self.conn.execute("COMMIT" if kind is None else "ROLLBACK")
+        return False
+
+    def close(self) -> None:
+        self.conn.close()
+
+    def meta(self) -> dict:
+        return dict(self.conn.execute("SELECT key, value FROM meta"))
+
+    def set_meta(self, **values) -> None:
+        with self:
+            self.conn.executemany("INSERT OR REPLACE INTO meta (key, value) VALUES (?, ?)",
+                                  [(k, str(v)) for k, v in values.items()])
+
+    def ok_ids(self) -> set[str]:
+        return {r[0] for r in self.conn.execute("SELECT run_id FROM runs WHERE status = 'ok'")}
+
+    def count(self) -> int:
+        return int(self.conn.execute("SELECT COUNT(*) FROM runs").fetchone()[0])
+
+    def record(self, run: SweepRun, *, ok: bool, results: dict | None, error: str | None,
+               seconds: float | None, finished: str) -> None:
+        """Write one finished run (replacing an earlier failed attempt of the same run)."""
+        with self:
+            self.conn.execute(
+                "INSERT INTO runs (run_id, point, replicate, seed, variant, status, error, "
+                "results, seconds, finished) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+                "ON CONFLICT(run_id) DO UPDATE SET point=excluded.point, "
+                "replicate=excluded.replicate, seed=excluded.seed, variant=excluded.variant, "
+                "status=excluded.status, error=excluded.error, results=excluded.results, "
+                "seconds=excluded.seconds, finished=excluded.finished",
+                (run.run_id, run.point, run.replicate, run.seed,
+                 json.dumps(run.values, default=str), "ok" if ok else "failed", error,
+                 None if results is None else json.dumps(results, allow_nan=False),
+                 seconds, finished))
+
+    def rows(self) -> list[dict]:
+        cur = self.conn.execute("SELECT run_id, point, replicate, seed, variant, status, "
+                                "error, results, seconds, finished FROM runs")
+        names = [d[0] for d in cur.description]
+        out = []
+        for row in cur:
+            r = dict(zip(names, row))
+            r["variant"] = json.loads(r["variant"])
+            r["results"] = json.loads(r["results"]) if r["results"] else {}
+            out.append(r)
+        return out
+
+
+# ------------------------------------------------------------------------------ outputs
+def _atomic_write(path: Path, text: str) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}-", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def sweep_frame(ledger: Ledger, keys: Sequence[str], runs: Sequence[SweepRun] = ()):
+    """The sweep table from the ledger: runs of the plan in plan order, then any others.
+
+    Columns: ``run_id``, the varied keys, ``seed``, ``replicate``, every network-level result,
+    ``status``, ``error``, ``seconds``, ``finished``.
+    """
+    import pandas as pd
+
+    rows = {r["run_id"]: r for r in ledger.rows()}
+    order = [r.run_id for r in runs if r.run_id in rows]
+    order += sorted(set(rows) - set(order), key=lambda i: (rows[i]["point"],
+                                                          rows[i]["replicate"], i))
+    result_cols: dict[str, None] = {}
+    for i in order:
+        result_cols.update(dict.fromkeys(rows[i]["results"]))
+    records = []
+    for i in order:
+        r = rows[i]
+        rec = {"run_id": i}
+        rec.update({k: r["variant"].get(k) for k in keys})
+        rec["seed"] = r["seed"]
+        rec["replicate"] = r["replicate"]
+        rec.update({c: r["results"].get(c) for c in result_cols})
+        rec.update(status=r["status"], error=r["error"], seconds=r["seconds"],
+                   finished=r["finished"])
+        records.append(rec)
+    columns = (["run_id", *keys, "seed", "replicate", *result_cols, "status", "error",
+                *TIME_COLUMNS])
+    return pd.DataFrame.from_records(records, columns=columns)
+
+
+def _write_table(frame, out: Path) -> Path:
+    path = out / TABLE_NAME
+    _atomic_write(path, frame.to_csv(index=False))
+    return path
+
+
+def _write_plots(frame, keys: Sequence[str], out: Path) -> list[Path]:
+    from .plot import sweep_plot
+
+    ok = frame[frame["status"] == "ok"]
+    if ok.empty or not keys:
+        return []
+    folder = out / "plots"
+    folder.mkdir(exist_ok=True)
+    written = []
+    for result in KEY_RESULTS:
+        if result not in ok.columns or ok[result].isna().all():
+            continue
+        for key in keys:
+            others = [k for k in keys if k != key]
+            written.append(sweep_plot(ok, result, key, group_by=others,
+                                      path=folder / f"{result}_vs_{key}.png"))
+    return written
+
+
+# ------------------------------------------------------------------------------ the sweep
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
+
+
+def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 1,
+          workers: int | None = None, scheduler: str | None = None,
+          dask_local: int | None = None, resume: bool = False, table=None,
+          plots: bool = True, progress: bool = False, retries: int = 2):
+    """Run a parameter sweep of a scenario, recording every run as it finishes.
+
+    Parameters
+    ----------
+    scenario_path : path
+        The scenario file (TOML).
+    variants_or_vary_specs : list of str, dict, list of dict, or None
+        ``["prey.growth_rate=0.5:1.5:11", "dispersal.max_distance_km=5,10,20"]`` (the
+        ``--vary`` syntax; a ``.csv`` path among them is read as a sweep table), or
+        ``{"prey.growth_rate": [0.5, 1.0]}``, or explicit points
+        ``[{"prey.growth_rate": 0.5}, ...]``. Groups combine as a Cartesian product.
+    out : path
+        Output folder: ``ledger.sqlite``, ``sweep.csv``, ``runs/``, ``plots/``.
+    replicates : int
+        Runs per point, seeds from ``SeedSequence(run.seed).spawn(replicates)``.
+    workers : int, optional
+        Local processes (default all cores).
+    scheduler : str, optional
+        Address of a running Dask scheduler.
+    dask_local : int, optional
+        Start a Dask LocalCluster with this many workers on loopback.
+    resume : bool
+        Continue the sweep recorded in ``out``: skip the runs already ok. Without it an
+        existing ledger in ``out`` is an error.
+    table : path, optional
+        A sweep table (CSV, one column per key, one row per point).
+    plots : bool
+        Draw ``plots/<result>_vs_<key>.png``.
+    progress : bool
+        A progress bar on stderr.
+    retries : int
+        Re-runs of a run whose worker was lost.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The sweep table, as written to ``sweep.csv`` (one row per run).
+
+    Raises
+    ------
+    InputError
+        For a bad scenario, key, value or table, or an existing ledger without ``resume``.
+    RunError
+        When every run failed (the table and ledger are still written).
+    KeyboardInterrupt
+        After Ctrl-C; the ledger keeps every run finished so far.
+    """
+    from .parallel import run_tasks
+
+    keys, runs, scenario = plan_sweep(scenario_path, variants_or_vary_specs,
+                                      replicates=replicates, table=table)
+    out = Path(out)
+    ledger_path = out / LEDGER_NAME
+    if ledger_path.exists() and not resume:
+        raise InputError("a sweep ledger is already here; add --resume to continue that "
+                         "sweep, or give another --out folder", file=ledger_path)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "runs").mkdir(exist_ok=True)
+    for stale in (out / "runs").glob(".*.tmp"):
+        stale.unlink(missing_ok=True)  # left by a process killed while renaming
+    ledger = Ledger(ledger_path)
+    try:
+        meta = ledger.meta()
+        started = {"format": LEDGER_FORMAT, "scenario_sha256": scenario.sha256,
+                   "keys": json.dumps(keys)}
+        if meta:
+            if meta.get("scenario_sha256") != scenario.sha256:
+                raise InputError("the scenario file changed since this sweep began; restore "
+                                 "it, or start the new sweep in another --out folder",
+                                 file=ledger_path, field="--resume")
+            if meta.get("keys") != started["keys"]:
+                raise InputError(f"this sweep varies {json.loads(meta['keys'])}, not {keys}; "
+                                 "vary the same keys, or use another --out folder",
+                                 file=ledger_path, field="--resume")
+        else:
+            ledger.set_meta(**started, created=_now())
+        done = ledger.ok_ids()
+        todo = [r for r in runs if r.run_id not in done]
+
+        def on_result(run: SweepRun, ok: bool, value) -> None:
+            results = value["results"] if ok else None
+            seconds = value["seconds"] if ok else None
+            error = None if ok else str(value)
+            finished = _now()
+            record = {"run_id": run.run_id, "variant": run.values, "replicate": run.replicate,
+                      "seed": run.seed, "status": "ok" if ok else "failed", "error": error,
+                      "results": results, "seconds": seconds, "finished": finished}
+            _atomic_write(out / "runs" / f"{run.run_id}.json",
+                          json.dumps(record, indent=2, default=str) + "\n")
+            ledger.record(run, ok=ok, results=results, error=error, seconds=seconds,
+                          finished=finished)
+
+        if todo:
+            # Imported before the pool starts: forked local workers then start warm instead
+            # of each importing scipy, geopandas and the analyses again.
+            from . import study  # noqa: F401
+
+            run_tasks(run_point, todo, on_result=on_result, workers=workers,
+                      scheduler=scheduler, dask_local=dask_local, retries=retries,
+                      progress=progress, desc="sweep")
+        frame = sweep_frame(ledger, keys, runs)
+    finally:
+        ledger.close()
+    import pandas as pd
+
+    # The table as written (what a reader of sweep.csv gets: NaN for missing values).
+    frame = pd.read_csv(_write_table(frame, out))
+    if plots:
+        _write_plots(frame, keys, out)
+    planned = {r.run_id for r in runs}
+    mine = frame[frame["run_id"].isin(planned)]
+    if len(mine) and (mine["status"] != "ok").all():
+        first = mine["error"].iloc[0]
+        raise RunError(f"every run of the sweep failed; the first error: {first} (see "
+                       f"{out / TABLE_NAME})")
+    return frame

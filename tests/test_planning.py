@@ -1,0 +1,526 @@
+"""Corridor planning and network comparison, on small landscapes built here.
+
+The landscapes are rows of 1 km square patches 1.5 km apart (linked by the kernel, which
+reaches 3 km) and "sink" patches farther out whose carrying capacity is below the prey
+density at which the predator breaks even, N* = m / (a (e − m h)). Alone, a sink loses its
+predator (its growth rate at the prey's carrying capacity, e f(K) − m, is negative:
+Rosenzweig & MacArthur 1963, "Graphical representation and stability conditions of
+predator-prey interactions", from memory); linked to the row it keeps predators that
+immigrate. So a corridor to a sink "reconnects a patch that otherwise loses its predator".
+"""
+
+from __future__ import annotations
+
+import json
+
+import geopandas
+import networkx as nx
+import numpy as np
+import pandas as pd
+import pyogrio
+import pytest
+import scipy.linalg
+import shapely
+
+import trophoscape as ts
+import trophoscape.cli as cli
+from trophoscape.analysis import planning as pl
+from trophoscape.analysis.capacity import landscape_matrix, metapopulation_capacity
+from trophoscape.errors import InputError
+from trophoscape.network import build_network, movement_operator, with_links, without
+from trophoscape.scenario import parse_scenario
+from trophoscape.testing import grid_landscape
+
+CRS = "EPSG:32633"
+X0, Y0 = 500_000.0, 5_000_000.0
+# Holling type II parameters of the test scenarios: N* = 0.4 / (0.05 (0.3 - 0.04)) = 30.8
+# per km²; a sink of quality 0.15 has K = 22.5 < N*.
+SINK_QUALITY = 0.15
+ROW = [("A", 0.0, 1.0), ("B", 1.5, 1.0), ("C", 3.0, 1.0), ("D", 4.5, 1.0)]
+# the facing edges of D (x = 4.5 ± 0.5 km) and of a 2 km sink S at x = 10 km
+EDGES = {"D": 5.0, "S": 9.0}
+
+
+def _square(x_km, size_km):
+    h = size_km * 500.0
+    return shapely.box(X0 + x_km * 1000 - h, Y0 - h, X0 + x_km * 1000 + h, Y0 + h)
+
+
+def write_patches(folder, specs, name="patches.gpkg"):
+    """specs: (id, x_km, size_km, quality); all patches on the line y = 0."""
+    frame = geopandas.GeoDataFrame(
+        {"patch_id": [s[0] for s in specs], "quality": [s[3] for s in specs]},
+        geometry=[_square(s[1], s[2]) for s in specs], crs=CRS)
+    path = folder / name
+    frame.to_file(path, driver="GPKG", engine="pyogrio")
+    return path
+
+
+def write_lines(folder, specs, centres, name="candidates.gpkg", **extra_columns):
+    """specs: (corridor_id, patch_a, patch_b, cost, quality): centre-to-centre lines."""
+    rows = []
+    for cid, a, b, cost, quality in specs:
+        line = shapely.LineString([(X0 + centres[a] * 1000, Y0), (X0 + centres[b] * 1000, Y0)])
+        rows.append({"corridor_id": cid, "cost": cost, "quality": quality, "geometry": line})
+    frame = geopandas.GeoDataFrame(rows, geometry="geometry", crs=CRS)
+    for k, v in extra_columns.items():
+        frame[k] = v
+    path = folder / name
+    frame.to_file(path, driver="GPKG", engine="pyogrio")
+    return path
+
+
+def raw_scenario(patches, **sections):
+    raw = {"patches": {"path": str(patches), "id_field": "patch_id", "quality_field": "quality"},
+           "prey": {"capacity_density": 150.0, "initial_density": 100.0,
+                    "kernel_scale_km": 1.0, "emigration_rate": 0.1},
+           "predator": {"mortality_rate": 0.4, "conversion": 0.3, "initial_density": 10.0,
+                        "kernel_scale_km": 5.0, "emigration_rate": 0.05},
+           "predation": {"attack_rate": 0.05, "handling_time": 0.1},
+           "dispersal": {"max_distance_km": 3.0, "survival_per_km": 0.97},
+           "run": {"duration": 150.0, "burn_in": 75.0, "census_interval": 1.0},
+           "analysis": {"stability": False, "capacity": False}}
+    for k, v in sections.items():
+        raw.setdefault(k, {}).update(v)
+    return raw
+
+
+def to_toml(raw) -> str:
+    def value(v):
+        return json.dumps(v) if isinstance(v, str) else repr(v).lower() if isinstance(v, bool) \
+            else repr(v)
+
+    lines = []
+    for section, keys in raw.items():
+        lines.append(f"[{section}]")
+        lines += [f"{k} = {value(v)}" for k, v in keys.items()]
+    return "\n".join(lines) + "\n"
+
+
+def study_of(patches, **sections):
+    return ts.build_study(parse_scenario(raw_scenario(patches, **sections),
+                                         base_dir=patches.parent))
+
+
+def centres_of(specs):
+    return {s[0]: s[1] for s in specs}
+
+
+def area_share(study, patch_id):
+    # definition of area-weighted persistence: the persisting patches' share of the area
+    # (common practice)
+    area = study.landscape.area_km2
+    return float(area[list(study.ids).index(patch_id)] / area.sum())
+
+
+def run_cli(monkeypatch, *args):
+    # the lead adds "planning_cli" to cli.COMMAND_MODULES; until then register it here
+    monkeypatch.setattr(cli, "COMMAND_MODULES", tuple(dict.fromkeys(
+        (*cli.COMMAND_MODULES, "planning_cli"))))
+    return cli.main([str(a) for a in args])
+
+
+# ------------------------------------------------------------------ one sink: ranking
+
+
+@pytest.fixture(scope="module")
+def one_sink(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("one_sink")
+    specs = [(i, x, s, 1.0) for i, x, s in ROW] + [("S", 10.0, 2.0, SINK_QUALITY)]
+    patches = write_patches(folder, [(s[0], s[1], s[2], s[3]) for s in specs])
+    centres = centres_of(specs)
+    cands = write_lines(folder, [("R", "D", "S", 2.0, 5.0),     # reconnects the sink
+                                 ("W", "B", "C", 1.0, 1.0),     # joins two linked patches
+                                 ("V", "A", "C", 1.5, 1.0)],    # the same, farther
+                        centres)
+    study = study_of(patches)
+    candidates = pl.read_candidates(cands, study.landscape)
+    planner = pl.Planner(study, candidates, workers=1)
+    return {"folder": folder, "patches": patches, "candidates_path": cands, "study": study,
+            "candidates": candidates, "planner": planner, "centres": centres}
+
+
+def test_reconnecting_candidate_ranks_first(one_sink):
+    planner, study = one_sink["planner"], one_sink["study"]
+    table = pl.rank_candidates(planner.add_one())
+    # the premise: alone, the sink loses its predator
+    base = ts.run_study(study).patches
+    assert not base.loc["S", "predator_persists"]
+    assert base.loc[["A", "B", "C", "D"], "predator_persists"].all()
+    assert table.loc["R", "rank"] == 1
+    # its gain is exactly the sink's share of the habitat area (the sink is rescued, nothing
+    # else changes its persistence)
+    assert table.loc["R", "gain_predator_area_persistence"] == pytest.approx(
+        area_share(study, "S"), rel=1e-12)
+    assert table.loc["R", "gain_predator_persistence"] == pytest.approx(1 / 5)
+    # corridors between patches the kernel already links add no persistence: ranked last
+    assert set(table.loc[["W", "V"], "rank"]) == {2, 3}
+    assert (table.loc[["W", "V"], "gain_predator_area_persistence"] == 0).all()
+    assert table.loc["R", "score_per_cost"] == pytest.approx(table.loc["R", "score"] / 2.0)
+
+
+def test_snapping_and_candidate_attributes(one_sink):
+    cand, study = one_sink["candidates"], one_sink["study"]
+    ids = list(study.ids)
+    assert [ids[i] for i in cand.source] == ["D", "B", "A"]
+    assert [ids[i] for i in cand.target] == ["S", "C", "C"]
+    # centre-to-centre lengths of the construction (common practice: planar distance in a
+    # UTM zone); quality 5 makes R act as a line a fifth as long
+    np.testing.assert_allclose(cand.length_km, [5.5, 1.5, 3.0], rtol=1e-12)
+    np.testing.assert_allclose(cand.distance_km, [1.1, 1.5, 3.0], rtol=1e-12)
+
+
+def test_screening_by_capacity_keeps_the_reconnecting_candidate(one_sink):
+    planner = one_sink["planner"]
+    gains = planner.capacity_gains()
+    # W and V run parallel to kernel links that are shorter (boundary to boundary), so λ_M,
+    # which keeps each pair's best route, does not move; R links a new pair
+    assert gains[0] > 0
+    np.testing.assert_allclose(gains[1:], 0.0, atol=1e-12)
+    assert planner.screen(1) == [0]
+    table = pl.rank_candidates(planner.add_one([0]).assign())
+    assert table.loc["R", "rank"] == 1
+
+
+def test_weights_and_sign_of_synchrony(one_sink):
+    planner = one_sink["planner"]
+    v = pl.Variant.of(add=[0])
+    gains = planner.gains(v)
+    after, before = planner.results[v], planner.baseline
+    # lower synchrony is better: the gain is the fall in synchrony
+    assert gains["gain_predator_synchrony"] == pytest.approx(
+        before["predator_synchrony"] - after["predator_synchrony"])
+    weights = {"predator_capacity": 2.0, "prey_persistence": 1.0}
+    expected = (2.0 * gains["gain_predator_capacity"] / before["predator_capacity"]
+                + gains["gain_prey_persistence"])
+    assert pl._score(gains, before, weights) == pytest.approx(expected)
+
+
+def test_parse_weights():
+    assert pl.parse_weights(None) == pl.DEFAULT_WEIGHTS
+    assert pl.parse_weights("predator_persistence=1, capacity=0.5") == {
+        "predator_persistence": 1.0, "predator_capacity": 0.5}
+    with pytest.raises(InputError) as err:
+        pl.parse_weights("predator_persistance=1")
+    assert str(err.value).startswith("field '--weights': unknown objective "
+                                     "'predator_persistance' (did you mean "
+                                     "'predator_persistence'?)")
+    with pytest.raises(InputError, match="weight 'x' of predator_capacity is not a number"):
+        pl.parse_weights("capacity=x")
+
+
+def test_parallel_runs_match_and_partial_log_is_reused(one_sink, tmp_path):
+    study, cand = one_sink["study"], one_sink["candidates"]
+    log = tmp_path / "corridors.partial.csv"
+    first = pl.Planner(study, cand, workers=2, log=log)
+    table2 = first.add_one()
+    # tasks are pure: two processes give the numbers one process gives
+    table1 = one_sink["planner"].add_one()
+    gains = [c for c in table1.columns if c.startswith("gain_")]
+    np.testing.assert_allclose(table2[gains].to_numpy(float), table1[gains].to_numpy(float),
+                               rtol=1e-12, atol=1e-15)
+    rows = pd.read_csv(log)
+    assert len(rows) == 4 and (rows["status"] == "ok").all()   # baseline + 3 candidates
+    # an interrupted ranking restarted with the same log runs nothing again
+    again = pl.Planner(study, cand, workers=1, log=log)
+    again.add_one()
+    assert again.runs == 0
+    np.testing.assert_allclose(again.add_one()[gains].to_numpy(float),
+                               table1[gains].to_numpy(float), rtol=1e-12)
+
+
+# ------------------------------------------------------------------ budgeted sets
+
+
+@pytest.fixture(scope="module")
+def two_sinks(tmp_path_factory):
+    """Sinks at both ends of the row: each reconnecting candidate rescues its own sink."""
+    folder = tmp_path_factory.mktemp("two_sinks")
+    specs = ([("W1", -5.5, 1.0, SINK_QUALITY)] + [(i, x, s, 1.0) for i, x, s in ROW]
+             + [("E1", 10.0, 2.0, SINK_QUALITY)])
+    patches = write_patches(folder, specs)
+    cands = write_lines(folder, [("L", "A", "W1", 1.0, 5.0), ("R", "D", "E1", 1.0, 5.0),
+                                 ("M", "B", "C", 1.0, 1.0)], centres_of(specs))
+    study = study_of(patches)
+    return pl.Planner(study, pl.read_candidates(cands, study.landscape), workers=1)
+
+
+def test_greedy_equals_exhaustive_when_gains_add_up(two_sinks):
+    planner = two_sinks
+    a, b = pl.Variant.of(add=[0]), pl.Variant.of(add=[1])
+    both = pl.Variant.of(add=[0, 1])
+    planner.evaluate([a, b, both])
+    # the premise: the two rescues are independent, so the gains add up
+    assert planner.score(both) == pytest.approx(planner.score(a) + planner.score(b), rel=1e-12)
+    assert planner.score(a) > 0 and planner.score(b) > 0
+    greedy = planner.greedy(2.0)
+    exact = planner.exhaustive(2.0)
+    # with an additive score and equal costs the greedy choice is optimal (the top k by
+    # gain; Nemhauser, Wolsey & Fisher 1978, "An analysis of approximations for maximizing
+    # submodular set functions", from memory: greedy is exact for modular functions)
+    assert sorted(greedy["chosen"]) == exact["chosen"] == [0, 1]
+    assert greedy["score"] == pytest.approx(exact["score"], rel=1e-12)
+    # every subset within the budget was run: 3 singles and 3 pairs
+    assert exact["subsets"] == 6
+
+
+@pytest.fixture(scope="module")
+def complements(tmp_path_factory):
+    """Two weak corridors to one large sink rescue it only together; a cheap corridor
+    rescues a small sink alone."""
+    folder = tmp_path_factory.mktemp("complements")
+    specs = ([("W1", -5.5, 1.0, SINK_QUALITY)] + [(i, x, s, 1.0) for i, x, s in ROW]
+             + [("E1", 10.0, 2.0, SINK_QUALITY)])
+    patches = write_patches(folder, specs)
+    cands = write_lines(folder, [("R1", "D", "E1", 1.0, 1.0), ("R2", "C", "E1", 1.0, 1.3),
+                                 ("L", "A", "W1", 1.0, 5.0)], centres_of(specs))
+    raw = raw_scenario(patches)
+    raw["patches"]["path"] = patches.name
+    scenario = folder / "scenario.toml"
+    scenario.write_text(to_toml(raw), encoding="utf-8")
+    return {"folder": folder, "scenario": scenario, "candidates": cands}
+
+
+def test_report_states_gap_when_gains_do_not_add_up(complements, monkeypatch):
+    folder = complements["folder"]
+    out = folder / "plan"
+    code = run_cli(monkeypatch, "corridors", complements["scenario"], "--candidates",
+                   complements["candidates"], "--budget", 2, "--out", out, "--workers", 1,
+                   "--quiet")
+    assert code == 0
+    summary = json.loads((out / "corridors.json").read_text())
+    table = pd.read_csv(out / "corridors.csv", dtype={"corridor_id": str}).set_index(
+        "corridor_id")
+    # the premise: R1 and R2 are worth nothing alone and much together (not additive)
+    assert table.loc["R1", "score"] == 0 and table.loc["R2", "score"] == 0
+    assert summary["exhaustive"]["chosen"] == ["R1", "R2"]
+    assert summary["greedy"]["chosen"] == ["L"]
+    gap = summary["greedy_gap"]
+    assert gap["absolute"] == pytest.approx(summary["exhaustive"]["score"]
+                                            - summary["greedy"]["score"])
+    assert gap["absolute"] > 0 and not gap["same_set"]
+    report = (out / "corridors.html").read_text()
+    assert f"Greedy falls short of the best set by {gap['absolute']:.4g}" in report
+    assert "Lower synchrony is better for regional survival" in report
+    # the outputs of the contract (SCENARIO.md, "Other commands and their files")
+    assert list(table.columns[:4]) == ["source", "target", "length_km", "cost"]
+    assert {"rank", "chosen"} <= set(table.columns)
+    assert sum(c.startswith("gain_") for c in table.columns) == len(pl.OBJECTIVES)
+    assert set(table.index[table["chosen"]]) == {"R1", "R2"}
+    assert summary["weights"] == pl.DEFAULT_WEIGHTS
+    layers = [name for name, _ in pyogrio.list_layers(out / "corridors.gpkg")]
+    assert {"candidates", "critical_links", "critical_patches"} <= set(layers)
+    lines = geopandas.read_file(out / "corridors.gpkg", layer="candidates")
+    assert sorted(lines["corridor_id"]) == ["L", "R1", "R2"]
+    assert (out / "maps" / "corridors_gain_per_cost.png").stat().st_size > 0
+    assert not (out / "corridors.partial.csv").exists()
+    assert len(pd.read_csv(out / "evaluations.csv")) == summary["timing"]["runs"]
+    critical = pd.read_csv(out / "critical.csv")
+    assert set(critical["kind"]) == {"link", "patch"}
+    # every link was tested: the pairs within 3 km edge to edge, found by brute force with
+    # shapely.distance as the outside reference
+    poly = geopandas.read_file(folder / "patches.gpkg").set_index("patch_id").geometry
+    expected = {frozenset((a, b)) for a in poly.index for b in poly.index
+                if a < b and shapely.distance(poly[a], poly[b]) <= 3000.0}
+    tested = {frozenset(e.split("–")) for e in critical.loc[critical["kind"] == "link",
+                                                             "element"]}
+    assert tested == expected
+    graph = nx.Graph([tuple(e) for e in tested])
+    assert nx.is_connected(graph) and graph.number_of_nodes() == 4  # the row; sinks apart
+
+
+# ------------------------------------------------------------------ remove-one
+
+
+def test_remove_one_finds_the_critical_corridor(tmp_path):
+    specs = [(i, x, s, 1.0) for i, x, s in ROW] + [("S", 10.0, 2.0, SINK_QUALITY)]
+    patches = write_patches(tmp_path, specs)
+    # an existing corridor from D's east edge to S's west edge, survived by all who enter it
+    corridors = write_lines(tmp_path, [("K", "D", "S", 0.0, 1.0)], EDGES, name="corridors.gpkg",
+                            survival=1.0)
+    study = study_of(patches, dispersal={"corridors": str(corridors)})
+    empty = pl.Candidates(ids=np.array([], dtype=str), source=np.array([], dtype=np.int64),
+                          target=np.array([], dtype=np.int64), length_km=np.array([]),
+                          distance_km=np.array([]), survival=np.array([]), cost=np.array([]))
+    planner = pl.Planner(study, empty, workers=1)
+    assert planner.baseline["predator_persistence"] == 1.0
+    table = planner.remove_one()
+    links = table[table["kind"] == "link"].set_index("element")
+    assert links.loc["D–S", "rank"] == 1
+    assert links.loc["D–S", "loss_predator_area_persistence"] == pytest.approx(
+        area_share(study, "S"), rel=1e-12)
+    patches_ = table[table["kind"] == "patch"].set_index("element")
+    # a lost patch counts as one where neither species persists: losing the sink costs
+    # exactly its area share of prey persistence
+    assert patches_.loc["S", "loss_prey_area_persistence"] == pytest.approx(
+        area_share(study, "S"), rel=1e-12)
+    # 5 pairs of the row within 3 km edge to edge (A–B, A–C, B–C, B–D, C–D) and the corridor
+    assert len(patches_) == 5 and len(links) == 6
+    assert (links.drop(index="D–S")["loss_predator_area_persistence"] == 0).all()
+
+
+# ------------------------------------------------------------------ networks and λ_M
+
+
+def test_adding_a_link_never_lowers_capacity(rng):
+    # Perron–Frobenius: the spectral radius of a non-negative matrix does not decrease when
+    # an entry grows (Horn & Johnson 1985, "Matrix Analysis", Thm 8.1.18, from memory);
+    # with_links only adds routes and the landscape matrix keeps each pair's best one
+    for trial in range(25):
+        land = grid_landscape(3, 4, spacing_km=float(rng.uniform(1.5, 4.0)),
+                              size_km=float(rng.uniform(0.3, 1.2)))
+        net = build_network(land, kernel="exponential",
+                            max_distance_km=float(rng.uniform(0.5, 4.0)))
+        area = land.area_km2
+        base, _ = metapopulation_capacity(net, area, scale_km=2.0)
+        k = int(rng.integers(1, 4))
+        a = rng.integers(0, land.n_patches, k)
+        b = (a + rng.integers(1, land.n_patches, k)) % land.n_patches
+        bigger = with_links(net, a, b, rng.uniform(0.1, 8.0, k))
+        after, _ = metapopulation_capacity(bigger, area, scale_km=2.0)
+        assert after >= base * (1 - 1e-12) - 1e-12
+        # and the value is the leading eigenvalue of the matrix (scipy dense solve)
+        dense = landscape_matrix(bigger, area, scale_km=2.0).toarray()
+        assert after == pytest.approx(scipy.linalg.eigvalsh(dense)[-1], rel=1e-9, abs=1e-12)
+
+
+def test_with_links_and_without_keep_the_network_rules():
+    land = grid_landscape(1, 4, spacing_km=2.0, size_km=1.0)
+    net = build_network(land, kernel="exponential", max_distance_km=1.5)
+    assert net.n_links == 3
+    more = with_links(net, [0], [3], [4.0], survival=[1.0])
+    assert more.n_links == 4 and net.n_links == 3       # the original is untouched
+    move = movement_operator(more, emigration_rate=0.2, scale_km=1.0, survival_per_km=1.0)
+    # with survival 1 individuals are conserved: columns sum to zero (SCENARIO.md,
+    # "Dispersal, exactly")
+    np.testing.assert_allclose(move.sum(axis=0), 0.0, atol=1e-15)
+    back = without(more, links=[(3, 0)])
+    assert back.n_arcs == net.n_arcs
+    np.testing.assert_array_equal(back.source, net.source)
+    cut = without(net, patches=[1])
+    assert cut.links_per_patch().tolist() == [0, 0, 1, 1]
+    assert cut.ids.tolist() == net.ids.tolist()
+
+
+# ------------------------------------------------------------------ candidate-file errors
+
+
+def _write(folder, frame, name="bad.gpkg"):
+    path = folder / name
+    frame.to_file(path, driver="GPKG", engine="pyogrio")
+    return path
+
+
+@pytest.fixture
+def row_study(tmp_path):
+    specs = [(i, x, s, 1.0) for i, x, s in ROW]
+    return study_of(write_patches(tmp_path, specs)), tmp_path
+
+
+def _line(x0_km, x1_km, y_km=0.0):
+    return shapely.LineString([(X0 + x0_km * 1000, Y0 + y_km * 1000),
+                               (X0 + x1_km * 1000, Y0 + y_km * 1000)])
+
+
+def test_candidate_errors(row_study):
+    study, folder = row_study
+    land = study.landscape
+    cases = [
+        (geopandas.GeoDataFrame({"corridor_id": ["X", "Y"], "cost": [1.0, 2.0]},
+                                geometry=[_line(0, 3), _line(0, 3, y_km=4.0)], crs=CRS),
+         "feature 'Y': field 'geometry': the candidate joins fewer than two patches: its "
+         "first point (500000.0, 5004000.0) is not within 0.1 km of any patch; each end "
+         "must lie on or near a patch"),
+        (geopandas.GeoDataFrame({"corridor_id": ["X"], "cost": [1.0]},
+                                geometry=[_line(-0.2, 0.2)], crs=CRS),
+         "feature 'X': field 'geometry': the candidate joins fewer than two patches: both "
+         "ends lie at patch 'A'; a corridor must join two different patches"),
+        (geopandas.GeoDataFrame({"corridor_id": ["X", "Y"], "cost": [1.0, -3.0]},
+                                geometry=[_line(0, 3), _line(1.5, 4.5)], crs=CRS),
+         "feature 'Y': field 'cost': value -3.0 is out of range; expected a finite number "
+         ">= 0"),
+        (geopandas.GeoDataFrame({"corridor_id": ["X", "X"], "cost": [1.0, 1.0]},
+                                geometry=[_line(0, 3), _line(1.5, 4.5)], crs=CRS),
+         "feature 'X': field 'corridor_id': id is not unique: features 0 and 1 both have "
+         "it; each candidate needs its own id"),
+        (geopandas.GeoDataFrame({"name": ["X"]}, geometry=[_line(0, 3)], crs=CRS),
+         "field 'cost': the file has no 'cost' attribute (it has: 'name'); expected a cost "
+         ">= 0 for every candidate"),
+        (geopandas.GeoDataFrame({"cost": [1.0, 1.0]}, geometry=[_line(0, 3), _line(0, 9)],
+                                crs=CRS),
+         "feature 1: field 'geometry': the candidate joins fewer than two patches: its last "
+         "point (509000.0, 5000000.0) is not within 0.1 km of any patch; each end must lie "
+         "on or near a patch"),
+    ]
+    for k, (frame, message) in enumerate(cases):
+        path = _write(folder, frame, f"bad{k}.gpkg")
+        with pytest.raises(InputError) as err:
+            pl.read_candidates(path, land)
+        assert str(err.value) == f"{path}: {message}"
+
+
+def test_thin_polygon_candidates_use_their_long_axis(row_study):
+    study, folder = row_study
+    # a 3.4 km × 0.1 km strip from inside A to inside C: its long axis runs from x = -0.2 to
+    # 3.2 km (the midpoints of the short sides; plane geometry, common practice)
+    strip = shapely.box(X0 - 200, Y0 - 50, X0 + 3200, Y0 + 50)
+    path = _write(folder, geopandas.GeoDataFrame({"cost": [4.0]}, geometry=[strip], crs=CRS),
+                  "strip.gpkg")
+    cand = pl.read_candidates(path, study.landscape)
+    assert [study.ids[cand.source[0]], study.ids[cand.target[0]]] == ["A", "C"]
+    assert cand.length_km[0] == pytest.approx(3.4, rel=1e-12)
+    assert cand.frame["drawn_as"].tolist() == ["polygon"]
+
+
+def test_cli_bad_candidates_exit_2_without_output(row_study, monkeypatch, capsys):
+    study, folder = row_study
+    raw = raw_scenario(folder / "patches.gpkg")
+    scenario = folder / "s.toml"
+    scenario.write_text(to_toml(raw), encoding="utf-8")
+    bad = _write(folder, geopandas.GeoDataFrame({"cost": [-1.0]}, geometry=[_line(0, 3)],
+                                                crs=CRS))
+    out = folder / "never"
+    assert run_cli(monkeypatch, "corridors", scenario, "--candidates", bad, "--budget", 1,
+                   "--out", out, "--quiet") == 2
+    assert capsys.readouterr().err.strip() == (
+        f"error: {bad}: feature 0: field 'cost': value -1.0 is out of range; expected a "
+        "finite number >= 0")
+    assert not out.exists()
+    assert run_cli(monkeypatch, "corridors", scenario, "--candidates", bad, "--budget", -1,
+                   "--out", out, "--quiet") == 2
+    assert not out.exists()
+
+
+# ------------------------------------------------------------------ compare
+
+
+def test_compare_gives_the_expected_difference_for_a_shared_patch(tmp_path, monkeypatch):
+    specs = [(i, x, s, 1.0) for i, x, s in ROW] + [("S", 10.0, 2.0, SINK_QUALITY)]
+    patches_a = write_patches(tmp_path, specs, "a.gpkg")
+    # B: the same patches plus one more (not shared), and a corridor D–S of survival 1
+    patches_b = write_patches(tmp_path, specs + [("X", -1.5, 1.0, 1.0)], "b.gpkg")
+    corridors = write_lines(tmp_path, [("K", "D", "S", 0.0, 1.0)], EDGES, name="k.gpkg",
+                            survival=1.0)
+    raw_a = raw_scenario(patches_a.name)
+    raw_b = raw_scenario(patches_b.name, dispersal={"corridors": corridors.name,
+                                                   "kernel": "exponential"})
+    (tmp_path / "a.toml").write_text(to_toml(raw_a), encoding="utf-8")
+    (tmp_path / "b.toml").write_text(to_toml(raw_b), encoding="utf-8")
+    out = tmp_path / "cmp"
+    assert run_cli(monkeypatch, "compare", tmp_path / "a.toml", tmp_path / "b.toml",
+                   "--out", out, "--quiet", "--no-runs") == 0
+    table = pd.read_csv(out / "comparison.csv").set_index("scenario")
+    assert list(table.index) == ["a", "b"]
+    assert table.loc["a", "patches"] == 5 and table.loc["b", "patches"] == 6
+    diff = pd.read_csv(out / "differences_b_minus_a.csv", dtype={"patch_id": str}).set_index(
+        "patch_id")
+    # only shared ids; in A the sink cannot hold the predator (e f(K) − m < 0, see the module
+    # notes), so its occupancy after burn-in is 0; in B the corridor keeps predators there at
+    # every census, occupancy 1: the difference is exactly 1
+    assert sorted(diff.index) == ["A", "B", "C", "D", "S"]
+    assert diff.loc["S", "predator_occupancy_reference"] == 0.0
+    assert diff.loc["S", "predator_occupancy_difference"] == 1.0
+    assert diff.loc["A", "predator_occupancy_difference"] == 0.0
+    assert (out / "maps" / "difference_predator_occupancy_b_minus_a.png").stat().st_size > 0
+    assert table.loc["b", "predator_area_persistence"] > table.loc["a",
+                                                                   "predator_area_persistence"]
