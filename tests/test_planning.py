@@ -242,7 +242,9 @@ def two_sinks(tmp_path_factory):
     cands = write_lines(folder, [("L", "A", "W1", 1.0, 5.0), ("R", "D", "E1", 1.0, 5.0),
                                  ("M", "B", "C", 1.0, 1.0)], centres_of(specs))
     study = study_of(patches)
-    return pl.Planner(study, pl.read_candidates(cands, study.landscape), workers=1)
+    # persistence alone: the score is then exactly additive over independent rescues
+    return pl.Planner(study, pl.read_candidates(cands, study.landscape), workers=1,
+                      weights={"predator_area_persistence": 1.0})
 
 
 def test_greedy_equals_exhaustive_when_gains_add_up(two_sinks):
@@ -286,7 +288,7 @@ def test_report_states_gap_when_gains_do_not_add_up(complements, monkeypatch):
     out = folder / "plan"
     code = run_cli(monkeypatch, "corridors", complements["scenario"], "--candidates",
                    complements["candidates"], "--budget", 2, "--out", out, "--workers", 1,
-                   "--quiet")
+                   "--weights", "predator_area_persistence=1", "--quiet")
     assert code == 0
     summary = json.loads((out / "corridors.json").read_text())
     table = pd.read_csv(out / "corridors.csv", dtype={"corridor_id": str}).set_index(
@@ -307,7 +309,7 @@ def test_report_states_gap_when_gains_do_not_add_up(complements, monkeypatch):
     assert {"rank", "chosen"} <= set(table.columns)
     assert sum(c.startswith("gain_") for c in table.columns) == len(pl.OBJECTIVES)
     assert set(table.index[table["chosen"]]) == {"R1", "R2"}
-    assert summary["weights"] == pl.DEFAULT_WEIGHTS
+    assert summary["weights"] == {"predator_area_persistence": 1.0}
     layers = [name for name, _ in pyogrio.list_layers(out / "corridors.gpkg")]
     assert {"candidates", "critical_links", "critical_patches"} <= set(layers)
     lines = geopandas.read_file(out / "corridors.gpkg", layer="candidates")

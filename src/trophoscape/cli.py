@@ -125,6 +125,9 @@ def main(argv=None) -> int:
     except TrophoscapeError as exc:  # pragma: no cover - every error has a subclass
         print(f"error: {exc}", file=sys.stderr)
         return 1
+    except BrokenPipeError:  # output piped into `head` and the like
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print("interrupted; no output was written", file=sys.stderr)
         return 130

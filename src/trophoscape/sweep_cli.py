@@ -15,7 +15,7 @@ EPILOG = """examples:
   trophoscape sweep valley.toml --vary patches.path=option_a.gpkg,option_b.gpkg --out sweeps/ab
   trophoscape sweep valley.toml --vary prey.growth_rate=0.5:1.5:11 --out sweeps/valley --resume
   trophoscape sweep valley.toml --vary prey.growth_rate=0.5:1.5:11 --out sweeps/valley \\
-      --scheduler tcp://10.0.0.5:8786
+      --scheduler tcp://scheduler.example.org:8786
 
 VALUES is START:STOP:COUNT (COUNT evenly spaced numbers, both ends included) or a comma
 list of numbers or words. Several --vary give every combination of their values.

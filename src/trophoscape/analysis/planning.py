@@ -23,7 +23,8 @@ A weighted combination of the gains ranks candidates (the *score*); capacity ent
 score as its relative change (gain ÷ baseline λ_M), so that km⁴ and shares can be weighed
 together. The default weights are :data:`DEFAULT_WEIGHTS`: the predator's area-weighted
 regional persistence (the share of habitat area where the predator is still present at
-the end of the run).
+the end of the run), plus a tenth of the relative gain in its metapopulation capacity to
+break ties.
 
 Runs go to :func:`trophoscape.parallel.run_tasks`. A task is small and picklable: the
 scenario (its values, not the built study, which holds read-only views and a mapping
@@ -84,8 +85,10 @@ OBJECTIVES = {
                        "regional survival", -1),
 }
 
-#: Weights of the score when none are given.
-DEFAULT_WEIGHTS = {"predator_area_persistence": 1.0}
+#: Weights of the score when none are given: persistence first; the relative gain in the
+#: predator's metapopulation capacity breaks ties between options that leave persistence
+#: unchanged (on well-connected networks most of them do), with a tenth of the weight.
+DEFAULT_WEIGHTS = {"predator_area_persistence": 1.0, "predator_capacity": 0.1}
 
 #: Largest candidate list for which the exact best set is found by exhaustive search.
 EXHAUSTIVE_LIMIT = 12
