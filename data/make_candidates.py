@@ -52,6 +52,9 @@ def main():
     frame = gpd.GeoDataFrame(
         {"corridor_id": [f"C{k + 1:02d}" for k in range(len(lines))],
          "cost": cost,
+         # invented: planted hedgerows that animals follow act as a shorter, safer route
+         # (a link of length length_km / quality); longer links get better-built corridors
+         "quality": np.where(length_km > 3.0, 4.0, np.where(length_km > 1.0, 2.0, 1.0)),
          "joins": [f"{ids[i]}-{ids[j]}" for i, j in pairs]},
         geometry=lines, crs="EPSG:32632").to_crs("EPSG:4326")
     frame.to_file(HERE / "demo_candidates.geojson", driver="GeoJSON", engine="pyogrio",
