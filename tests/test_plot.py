@@ -174,3 +174,21 @@ def test_does_not_touch_pyplot_backend(tmp_path, patches):
     result = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
                             text=True, check=True)
     assert result.stdout.strip() == "False"
+
+
+def test_isolines_are_drawn(tmp_path):
+    # isochrones: contour lines over the patch centroids change the picture (common practice)
+    import matplotlib.image as mpimg
+
+    from trophoscape.testing import grid_landscape
+
+    land = grid_landscape(5, 6, spacing_km=1.5, size_km=1.0)
+    frame = land.frame[["patch_id", "geometry"]].copy()
+    frame["arrival_time"] = np.hypot(*(land.centroids - land.centroids[0]).T) / 1000.0
+    from trophoscape.plot import patch_map
+
+    plain = patch_map(frame, "arrival_time", path=tmp_path / "plain.png")
+    lines = patch_map(frame, "arrival_time", path=tmp_path / "lines.png", isolines=4)
+    a, b = mpimg.imread(plain), mpimg.imread(lines)
+    assert a.shape == b.shape
+    assert np.abs(a - b).max() > 0.2

@@ -144,7 +144,7 @@ def _spread_maps(stage: Path, study, result, scan) -> None:
     species = result.summary["species"]
     patch_map(frame, "arrival_time", path=folder / "spread_arrival.png", links=links,
               title=f"Arrival of {species} collapse", label=f"arrival time ({unit})",
-              cmap="cividis_r")
+              cmap="viridis_r", isolines=6)
     s = result.summary
     arrival_distance_plot(result.table["distance_km"].to_numpy(),
                           result.table["arrival_time"].to_numpy(),
