@@ -194,10 +194,9 @@ CASES = [
          "error: s.toml: field 'patches.path': is required: the patch file (GeoJSON, "
          "GeoPackage or Shapefile) relative to the scenario",
          {"s.toml": scenario(patches={"path": None})}),
-    Case("noise-not-yet",
-         "error: s.toml: field 'noise': the [noise] section (environmental and demographic "
-         "noise) is not supported by this version of trophoscape; remove it to run without it",
-         {"s.toml": scenario(noise={"environmental_sd": 0.2})}),
+    Case("noise-autocorrelation-one",
+         "error: s.toml: field 'noise.autocorrelation': must be >= 0 and < 1, got 1.0",
+         {"s.toml": scenario(noise={"environmental_sd": 0.2, "autocorrelation": 1.0})}),
     Case("bad-field-ref",
          "error: s.toml: field 'prey.growth_rate': a per-patch value must be written "
          "{ field = \"ATTRIBUTE\" }, got {'name': 'r'}",

@@ -70,9 +70,12 @@ CASES = [
     (MINIMAL + "[prey]\ngrowth_rate = { column = 'r' }\n",
      "s.toml: field 'prey.growth_rate': a per-patch value must be written "
      "{ field = \"ATTRIBUTE\" }, got {'column': 'r'}"),
-    (MINIMAL + "[noise]\nenvironmental_sd = 0.2\n",
-     "s.toml: field 'noise': the [noise] section (environmental and demographic noise) is not "
-     "supported by this version of trophoscape; remove it to run without it"),
+    (MINIMAL + "[noise]\nenvironmental_sd = -0.2\n",
+     "s.toml: field 'noise.environmental_sd': must be >= 0, got -0.2"),
+    (MINIMAL + "[run]\nreplicates = 3\n",
+     "s.toml: field 'run.replicates': replicates other than 1 need noise "
+     "(noise.environmental_sd > 0, noise.predator_mortality_sd > 0 or noise.demographic = "
+     "true): without it every replicate is the same run; set replicates = 1 or add noise"),
     (MINIMAL + "[run]\nseed = 1.5\n", "s.toml: field 'run.seed': must be a whole number, got 1.5"),
     (MINIMAL + "[run]\nduration = inf\n", "s.toml: field 'run.duration': must be finite, got inf"),
     ("[patches]\npath = 'p.geojson'\n[run]\nduration = = 5\n",

@@ -42,7 +42,8 @@ MAX_PANELS = 6
 
 
 def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap=None,
-              diverging=False, categorical=False, bool_labels=("present", "absent")) -> Path:
+              diverging=False, categorical=False, bool_labels=("present", "absent"),
+              isolines=None) -> Path:
     """Draw one per-patch value as a map and save it as a PNG.
 
     Parameters
@@ -69,6 +70,10 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         Treat the column as classes even if it holds numbers.
     bool_labels : (str, str)
         Legend words for True and False.
+    isolines : int or sequence of float, optional
+        For numbers: contour lines of the value over the patch centroids (a Delaunay
+        triangulation of the patches that have a value), e.g. isochrones of an arrival
+        time; an int asks for that many levels.
 
     Returns
     -------
@@ -141,6 +146,9 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="link"))
     ax.add_collection(_polygon_collection(geoms, colours))
     _frame_map(ax, geoms, patches.crs)
+    contours = None
+    if isolines is not None and kind == "number" and (~missing).sum() >= 3:
+        contours = _isolines(ax, geoms[~missing], finite, isolines, handles)
 
     if colourbar is not None:
         from matplotlib.cm import ScalarMappable
@@ -148,6 +156,8 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         bar = fig.colorbar(ScalarMappable(norm=colourbar[1], cmap=colourbar[0]), ax=ax,
                            shrink=0.8, pad=0.02)
         bar.set_label(label or column)
+        if contours is not None:
+            bar.add_lines(contours)
     if handles:
         # Beside the map when there is no colourbar, else in a row under it; constrained
         # layout makes room for "outside" figure legends.
@@ -157,6 +167,26 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
                    frameon=False, fontsize=8, title_fontsize=8)
     ax.set_title(title or column, fontsize=11)
     return _save(fig, path)
+
+
+def _isolines(ax, geoms, values, levels, handles):
+    """Contour lines of per-patch values over a triangulation of the patch centroids."""
+    import shapely
+    from matplotlib.lines import Line2D
+    from matplotlib.tri import Triangulation
+
+    xy = shapely.get_coordinates(shapely.centroid(geoms)) / 1e3  # the map is drawn in km
+    try:
+        tri = Triangulation(xy[:, 0], xy[:, 1])
+    except (ValueError, RuntimeError):  # collinear or duplicate points: no surface to contour
+        return
+    if np.ptp(values) <= 0:
+        return
+    lines = ax.tricontour(tri, values, levels=levels, colors="0.15", linewidths=0.7,
+                          linestyles="--", zorder=6)
+    handles.append(Line2D([], [], color="0.15", linewidth=0.7, linestyle="--",
+                          label="isoline (levels marked on the colour bar)"))
+    return lines
 
 
 def _value_kind(values, categorical):
@@ -861,3 +891,89 @@ def arrival_distance_plot(distance_km, arrival_time, *, path, speed=None, interv
     ax.legend(frameon=False, fontsize=8, loc="best")
     ax.set_title(title, fontsize=10)
     return _save(fig, path)
+
+
+# --------------------------------------------------------------------------------------------
+# replicates
+
+
+def regional_extinction_probability(dataset, species="predator", *, confidence=0.95):
+    """Share of replicates in which ``species`` is gone from every patch by each census.
+
+    Regional extinction is for good (no patch is left to recolonise from), so "gone by t"
+    and "gone at t" agree; the share is taken of the replicates, with its Wilson score
+    interval (:func:`trophoscape.analysis.persistence.wilson_interval`).
+
+    Parameters
+    ----------
+    dataset : xarray.Dataset
+        ``species`` with dims ``(time, patch, replicate)``.
+
+    Returns
+    -------
+    pandas.DataFrame indexed by time: ``share``, ``low``, ``high``, ``replicates``.
+    """
+    import pandas as pd
+
+    from .analysis.persistence import wilson_interval
+
+    x = dataset[species].transpose("time", "patch", "replicate").values
+    gone = ~(x > 0).any(axis=1)                                   # (time, replicate)
+    gone_by = np.logical_or.accumulate(gone, axis=0)
+    k = gone_by.sum(axis=1)
+    reps = gone_by.shape[1]
+    low, high = wilson_interval(k, np.full(k.shape, reps), confidence=confidence)
+    time = np.asarray(dataset["time"].values, dtype=float)
+    return pd.DataFrame({"share": k / reps, "low": low, "high": high,
+                         "replicates": np.full(k.shape, reps)},
+                        index=pd.Index(time, name="time"))
+
+
+def regional_extinction_plot(dataset, *, path, species="predator", time_unit="year",
+                             confidence=0.95) -> Path:
+    """The probability that ``species`` is regionally extinct by time t, with its band.
+
+    Parameters
+    ----------
+    dataset : xarray.Dataset
+        ``prey`` and ``predator`` with dims ``(time, patch, replicate)``.
+    path : str or path-like
+        PNG file to write.
+    species : str
+    time_unit : str
+    confidence : float
+        Of the Wilson score band.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    dataset = _check_dataset(dataset)
+    if "replicate" not in dataset[species].dims:
+        raise InputError("a probability over replicates needs a 'replicate' dim",
+                         field=species)
+    curve = regional_extinction_probability(dataset, species, confidence=confidence)
+    style = _species_style(species, 0)
+    fig = Figure(figsize=(6.4, 3.6), layout="constrained")
+    ax = fig.add_subplot()
+    t = curve.index.to_numpy()
+    ax.fill_between(t, curve["low"], curve["high"], color=style["color"], alpha=0.2,
+                    linewidth=0, step="post", label=f"{confidence:.0%} Wilson interval")
+    ax.step(t, curve["share"], where="post", color=style["color"], linewidth=1.4,
+            label="share of replicates")
+    ax.set_ylim(-0.02, 1.02)
+    ax.set_xlim(t[0], t[-1])
+    ax.set_xlabel(f"time ({time_unit})", fontsize=9)
+    ax.set_ylabel(f"probability the {species} is\ngone from every patch", fontsize=9)
+    ax.tick_params(labelsize=8)
+    ax.grid(True, color="0.9", linewidth=0.5)
+    ax.legend(frameon=False, fontsize=8, loc="upper left")
+    ax.set_title(f"Regional extinction of the {species} by time t "
+                 f"({int(curve['replicates'].iloc[0])} replicates)", fontsize=10)
+    return _save(fig, path)
+
+
+__all__ += ["regional_extinction_probability", "regional_extinction_plot"]

@@ -134,6 +134,13 @@ def write_figures_and_report(folder, result, gdf, links, summary) -> None:
             ("Phase order over time", path,
              "The Kuramoto order parameter: 1 when every patch cycles in step, near 0 when "
              "their cycles are spread out."))
+    if "replicate" in data.dims and hasattr(plot, "regional_extinction_plot"):
+        path = plot.regional_extinction_plot(data, path=maps / "predator_regional_extinction.png",
+                                             time_unit=sc["time_unit"])
+        sections.setdefault("Persistence", []).append(
+            ("Probability that the predator is gone from every patch by time t", path,
+             f"Share of the {data.sizes['replicate']} replicate runs in which the predator had "
+             "vanished from the whole network by each time, with its 95% Wilson interval."))
     (folder / "report.html").write_text(_html(result, summary, sections), encoding="utf-8")
 
 

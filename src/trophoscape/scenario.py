@@ -100,6 +100,14 @@ def _number_or(word, **bounds):
 
 
 _nonneg = _number(0)
+
+
+def _below_one(v):
+    """A coefficient in [0, 1): 1 would be noise that never changes."""
+    msg = _nonneg(v)
+    if msg is None and v >= 1:
+        return f"must be >= 0 and < 1, got {v!r}"
+    return msg
 _pos = _number(0, lo_open=True)
 
 SCHEMA: dict[str, dict[str, Key]] = {
@@ -162,6 +170,26 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "synchrony_pairs": Key(200_000, _number(10, integer=True),
                                doc="pairs sampled for synchrony against distance"),
     },
+    "noise": {
+        "environmental_sd": Key(0.0, _nonneg,
+                                doc="sd of the log multiplier of prey growth rate per census "
+                                    "interval (0: no environmental noise)"),
+        "predator_mortality_sd": Key(0.0, _nonneg,
+                                     doc="the same for predator mortality (independent field)"),
+        "correlation_km": Key(10.0, _number_or("regional", lo=0, lo_open=True),
+                              doc='spatial correlation length, or "regional" (one shared value)'),
+        "kernel": Key("exponential", _choice("exponential", "gaussian"),
+                      doc="how correlation decays with the distance between patch centroids"),
+        "shared_share": Key(0.0, _number(0, 1),
+                            doc="share of the variance common to every patch (Moran effect)"),
+        "autocorrelation": Key(0.0, _below_one,
+                               doc="AR(1) coefficient between successive census intervals"),
+        "demographic": Key(False, _flag,
+                           doc="census-step demographic fluctuations of births, deaths, "
+                               "predation and moves"),
+        "rank": Key(500, _number(1, 100_000, integer=True),
+                    doc="random Fourier features per replicate"),
+    },
     "spread": {
         "species": Key("predator", _choice("prey", "predator"),
                        doc="the species whose collapse is followed"),
@@ -173,9 +201,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
 }
 
 #: Sections of the contract that this version reads but cannot act on yet.
-NOT_YET = {
-    "noise": "environmental and demographic noise",
-}
+NOT_YET: dict[str, str] = {}
 
 
 @dataclass(frozen=True)
@@ -344,13 +370,19 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
                          f"got {run['run.census_interval']}", file=file, field="run.census_interval")
     if values["dispersal.kernel"] == "none" and not (values["dispersal.links"] or values["dispersal.corridors"]):
         pass  # a network of isolated patches is allowed (no dispersal)
-    if run["run.replicates"] != 1:
-        raise InputError("replicates other than 1 need noise, which this version does not "
-                         "model yet; set replicates = 1", file=file, field="run.replicates")
+    if run["run.replicates"] != 1 and not (values["noise.environmental_sd"] > 0
+                                           or values["noise.predator_mortality_sd"] > 0
+                                           or values["noise.demographic"]):
+        # identical deterministic copies would give a falsely narrow Wilson interval
+        raise InputError("replicates other than 1 need noise (noise.environmental_sd > 0, "
+                         "noise.predator_mortality_sd > 0 or noise.demographic = true): "
+                         "without it every replicate is the same run; set replicates = 1 "
+                         "or add noise", file=file, field="run.replicates")
     values["shock"] = _parse_shocks(raw.get("shock", []), values, file)
     values["run.seed"] = int(values["run.seed"])
     values["analysis.synchrony_pairs"] = int(values["analysis.synchrony_pairs"])
     values["run.replicates"] = int(values["run.replicates"])
+    values["noise.rank"] = int(values["noise.rank"])
     base = Path(base_dir) if base_dir is not None else Path.cwd()
     return Scenario(values=MappingProxyType(values), path=None if path is None else Path(path),
                     base_dir=base, text=text)

@@ -128,6 +128,7 @@ def simulate(
     time_unit: str = "year",
     progress: bool = False,
     events=(),
+    noise=None,
 ) -> Trajectory:
     """Integrate ``system`` from ``y0`` with census steps every ``census_interval``.
 
@@ -154,6 +155,14 @@ def simulate(
         time, the event is applied, and integration restarts with the system it returns.
         A census at the same time records the state before the event. Events at or after
         ``duration`` are ignored; events at time 0 act before the first step.
+    noise : optional
+        Stochasticity applied at census steps: an object with ``start()`` returning a
+        stateful run with ``interval(system, changed_base=False) -> system`` (the system to
+        integrate over the next census interval, e.g. with noisy rates) and
+        ``census(system, y_start, y_end, dt) -> y`` (the state at a census, e.g. with
+        demographic fluctuations, before quasi-extinction); see
+        :class:`trophoscape.noise.NoiseModel`. With noise the solver stops at every census
+        and restarts with the step size it had reached. Without it (None) nothing changes.
 
     Returns
     -------
@@ -172,6 +181,12 @@ def simulate(
     y, _ = _census(np.asarray(y0, dtype=float).copy(), extinction_abundance)
     record[0] = y
 
+    noisy = noise is not None
+    if noisy:
+        run = noise.start()
+        base = system  # the system without noise; events change it, noise perturbs it
+        system = run.interval(base)
+        y_last = y  # state after the last census: the start of the interval
     rhs = system.rhs_function()
     options = dict(rtol=rtol, atol=atol)
     if method in IMPLICIT:
@@ -184,15 +199,22 @@ def simulate(
     next_event = 0
 
     def bound():
-        return float(pending[next_event].time) if next_event < len(pending) else times[-1]
+        b = float(pending[next_event].time) if next_event < len(pending) else times[-1]
+        # with noise the rates change at every census: never step across one
+        return min(b, float(times[k])) if noisy and k < times.size else b
 
     def apply_events(t0, y_start):
-        nonlocal system, rhs, next_event
+        nonlocal system, rhs, next_event, base
         if next_event >= len(pending) or float(pending[next_event].time) > t0:
             return y_start
         while next_event < len(pending) and float(pending[next_event].time) <= t0:
-            system, y_start = pending[next_event].apply(system, y_start)
+            if noisy:
+                base, y_start = pending[next_event].apply(base, y_start)
+            else:
+                system, y_start = pending[next_event].apply(system, y_start)
             next_event += 1
+        if noisy:  # the same noisy rates on the changed system, up to the next census
+            system = run.interval(base, changed_base=True, redraw=False)
         rhs = system.rhs_function()
         if method in IMPLICIT:
             options["jac"] = system.jacobian_function()
@@ -212,8 +234,10 @@ def simulate(
 
     bar = tqdm(total=times.size - 1, disable=not progress, delay=2.0, unit="census",
                desc="integrating", leave=False)
-    solver = start(times[0], y, None)
     k = 1
+    if not noisy:
+        base = None
+    solver = start(times[0], y, None)
     status, message = 0, "The solver successfully reached the end of the integration interval."
     try:
         while k < times.size:
@@ -225,6 +249,8 @@ def simulate(
                     restarts += 1
                     continue
                 raise RunError("solver stopped before the end of the run")  # pragma: no cover
+            if noisy:  # the step wanted, before a census cuts it short
+                h_wanted = getattr(solver, "h_abs", None)
             with np.errstate(over="ignore", invalid="ignore"):  # reported below instead
                 outcome = solver.step()
             steps += 1
@@ -251,10 +277,25 @@ def simulate(
                 else:
                     dense = dense or solver.dense_output()
                     y_k = dense(times[k])
+                if noisy:
+                    y_k = run.census(system, y_last, y_k, float(times[k] - times[k - 1]))
                 y_k, changed = _census(y_k, extinction_abundance)
                 record[k] = y_k
                 k += 1
                 bar.update(1)
+                if noisy and k < times.size:
+                    harvest(solver)
+                    y_last = y_k
+                    system = run.interval(base)
+                    rhs = system.rhs_function()
+                    if method in IMPLICIT:
+                        options["jac"] = system.jacobian_function()
+                    h = getattr(solver, "h_abs", None) or solver.step_size
+                    # the last step was cut to end at the census: keep the one wanted
+                    h = max(h or 0.0, h_wanted or 0.0) or None
+                    solver = start(times[k - 1], y_k, (0.5 * h if changed else h) if h else None)
+                    restarts += 1
+                    break
                 if changed and k < times.size:
                     harvest(solver)
                     # half the step reached: the full one was rejected at nearly every

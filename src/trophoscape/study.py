@@ -27,7 +27,8 @@ from .scenario import FieldRef, Scenario, bounds_of, read_scenario
 from .simulate import Trajectory, simulate
 from .system import SPECIES, CoupledSystem, pack
 
-__all__ = ["Study", "RunResult", "load_study", "build_study", "run_study", "analyse"]
+__all__ = ["Study", "RunResult", "load_study", "build_study", "run_study", "analyse",
+           "run_seeds", "noise_model", "simulate_replicates"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -203,8 +204,142 @@ def _initial_state(sc: Scenario, landscape: Landscape, model: LocalModel) -> np.
     return pack(densities["prey"] * area, densities["predator"] * area)
 
 
-def run_study(study: Study, *, progress: bool = False) -> RunResult:
+def run_seeds(scenario: Scenario) -> list[int]:
+    """The seed of every replicate.
+
+    One replicate uses ``run.seed`` itself; ``R > 1`` replicates use
+    ``SeedSequence(run.seed).spawn(R)`` (:func:`trophoscape.sweep.replicate_seeds`), so
+    replicate ``r`` draws the same environmental noise as a single run whose ``run.seed`` is
+    that replicate's seed (as a sweep runs it).
+    """
+    reps = scenario["run.replicates"]
+    if reps == 1:
+        return [int(scenario["run.seed"])]
+    from .sweep import replicate_seeds
+
+    return replicate_seeds(scenario["run.seed"], reps)
+
+
+def noise_model(study: Study, seeds) -> "NoiseModel | None":
+    """The study's ``[noise]`` settings as a :class:`~trophoscape.noise.NoiseModel`, or None
+    when the scenario has no noise."""
+    from .noise import NoiseModel
+
+    sc = study.scenario
+    corr = sc["noise.correlation_km"]
+    model = NoiseModel(
+        centroids_km=study.landscape.centroids / 1000.0, seeds=tuple(seeds),
+        environmental_sd=sc["noise.environmental_sd"],
+        mortality_sd=sc["noise.predator_mortality_sd"],
+        correlation_km=None if corr == "regional" else float(corr),
+        kernel=sc["noise.kernel"], shared_share=sc["noise.shared_share"],
+        autocorrelation=sc["noise.autocorrelation"], demographic=sc["noise.demographic"],
+        prey_movement=study.system.prey_movement,
+        predator_movement=study.system.predator_movement, rank=sc["noise.rank"])
+    return model if model.active else None
+
+
+def _stacked_events(events, n: int, reps: int):
+    """Events of one copy, for the stacked system of ``reps`` copies; None if one cannot be."""
+    import dataclasses
+
+    from .shocks import ParameterShift, StateScale
+
+    offsets = (np.arange(reps) * n)[:, None]
+    out = []
+    for e in events:
+        if isinstance(e, StateScale):
+            out.append(dataclasses.replace(e, index=(e.index[None, :] + offsets).ravel()))
+        elif isinstance(e, ParameterShift):
+            out.append(dataclasses.replace(e, index=(e.index[None, :] + offsets).ravel(),
+                                           delta=np.tile(np.asarray(e.delta), reps)))
+        else:  # rewiring rebuilds one copy's operators: run the replicates one by one
+            return None
+    return out
+
+
+def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=None,
+                        progress: bool = False) -> Trajectory:
+    """Integrate every replicate of a study; dims ``(time, patch, replicate)``.
+
+    Parameters
+    ----------
+    seeds : sequence of int, length R > 1
+        One per replicate; a coordinate ``seed`` along ``replicate``.
+    noise : NoiseModel, optional
+        With one seed per replicate (the same ``seeds``).
+    events : sequence
+        Shock events of one copy of the network.
+    stacked : bool or None
+        Integrate all replicates as one block-diagonal system (solver overhead paid once) or
+        one by one. None: stacked unless a shock rewires the network.
+
+    Notes
+    -----
+    Stacked, the solver's error norm (an RMS over all components) spans every replicate, and
+    a census that zeroes a population in one replicate restarts all of them; one by one,
+    each replicate keeps its own step size. The noise of each replicate is the same either
+    way; the integration errors differ at the level of the tolerances.
+    """
+    from .noise import stack_state, stack_system
+
+    sc = study.scenario
+    reps = len(seeds)
+    n = study.landscape.n_patches
+    common = dict(duration=sc["run.duration"], census_interval=sc["run.census_interval"],
+                  extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
+                  rtol=sc["run.rtol"], atol=sc["run.atol"], time_unit=sc["time_unit"],
+                  progress=progress)
+    stacked_events = _stacked_events(events, n, reps)
+    if stacked is None:
+        stacked = stacked_events is not None
+    elif stacked and stacked_events is None:
+        raise ValueError("replicates with shocks that rewire the network run one by one")
+    if stacked:
+        big = simulate(stack_system(study.system, reps), stack_state(study.initial_state, reps),
+                       events=stacked_events, noise=noise, **common)
+        cubes = {s: big.data[s].values.reshape(-1, reps, n).transpose(0, 2, 1)
+                 for s in SPECIES}
+        stats = big.stats
+        time = big.data["time"]
+    else:
+        runs = [simulate(study.system, study.initial_state, events=events,
+                         noise=None if noise is None else noise.for_replicates(r), **common)
+                for r in range(reps)]
+        cubes = {s: np.stack([t.data[s].values for t in runs], axis=-1) for s in SPECIES}
+        stats = _sum_stats([t.stats for t in runs])
+        time = runs[0].data["time"]
+    import xarray as xr
+
+    data = xr.Dataset(
+        {s: (("time", "patch", "replicate"), cubes[s],
+             {"units": "individuals", "long_name": f"{s} abundance"}) for s in SPECIES},
+        coords={"time": time,
+                "patch": ("patch", np.asarray(study.ids, dtype=object), {"long_name": "patch id"}),
+                "replicate": ("replicate", np.arange(reps), {"long_name": "replicate"}),
+                "seed": ("replicate", np.asarray(seeds, dtype=np.int64),
+                         {"long_name": "seed of the replicate's random numbers"})},
+    )
+    return Trajectory(data=data, stats=stats)
+
+
+def _sum_stats(all_stats):
+    from .simulate import SolverStats
+
+    first = all_stats[0]
+    worst = max(all_stats, key=lambda st: abs(st.status))
+    return SolverStats(method=first.method,
+                       **{k: sum(getattr(st, k) for st in all_stats)
+                          for k in ("nfev", "njev", "nlu", "steps", "restarts")},
+                       status=worst.status, message=worst.message)
+
+
+def run_study(study: Study, *, progress: bool = False, stacked=None) -> RunResult:
     """Integrate a study and run the analyses on the result.
+
+    With ``[run] replicates = R > 1`` the trajectory has dims ``(time, patch, replicate)``
+    and a ``seed`` coordinate; ``stacked`` chooses how replicates are integrated (see
+    :func:`simulate_replicates`).
 
     Returns
     -------
@@ -219,14 +354,25 @@ def run_study(study: Study, *, progress: bool = False) -> RunResult:
         from .shocks import ShockContext, shock_events
 
         events = shock_events(study.shocks, ShockContext.from_study(study))
-    traj = simulate(
-        study.system, study.initial_state,
-        duration=sc["run.duration"], census_interval=sc["run.census_interval"],
-        extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
-        rtol=sc["run.rtol"], atol=sc["run.atol"], ids=study.ids,
-        time_unit=sc["time_unit"], progress=progress, events=events,
-    )
+    seeds = run_seeds(sc)
+    noise = noise_model(study, seeds)
+    if len(seeds) == 1:
+        traj = simulate(
+            study.system, study.initial_state,
+            duration=sc["run.duration"], census_interval=sc["run.census_interval"],
+            extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
+            rtol=sc["run.rtol"], atol=sc["run.atol"], ids=study.ids,
+            time_unit=sc["time_unit"], progress=progress, events=events, noise=noise,
+        )
+    else:
+        traj = simulate_replicates(study, seeds=seeds, noise=noise, events=events,
+                                   stacked=stacked, progress=progress)
     table, summary, extras = analyse(study, traj)
+    summary["replicates"] = len(seeds)
+    summary["seeds"] = seeds
+    if noise is not None:
+        summary["noise"] = {k.split(".", 1)[1]: sc[k] for k in sc.values
+                            if k.startswith("noise.")}
     return RunResult(study=study, trajectory=traj, patches=table, summary=summary,
                      extras=extras)
 

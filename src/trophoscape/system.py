@@ -8,6 +8,13 @@ State layout (written down once): the flat vector ``y`` of length ``2 n`` holds 
 Local dynamics are evaluated on densities ``N / A`` (``A`` the patch area in km²) and scaled
 back to abundances; dispersal is one sparse product with the block-diagonal movement
 operator ``diag(M_prey, M_predator)``.
+
+Internal patch order: on large networks the patches can be numbered internally so that linked
+patches get nearby numbers (reverse Cuthill–McKee on the links, or a Hilbert curve over the
+centroids), which keeps the sparse product's reads of the state within few cache lines.
+Every public array (``y``, ``dy/dt``, Jacobian rows and columns, ``movement``) stays in the
+user's patch order; only :meth:`CoupledSystem.rhs_function` with ``internal=True`` (and
+``to_internal`` / ``to_user``) works in the internal order.
 """
 
 from __future__ import annotations
@@ -16,10 +23,27 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
+from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from .dynamics import LocalModel
 
-__all__ = ["CoupledSystem", "pack", "unpack", "SPECIES"]
+try:  # y += A @ x in place, the kernel behind scipy's CSR mat-vec (private, hence the guard)
+    from scipy.sparse._sparsetools import csr_matvec as _csr_matvec
+except ImportError:  # pragma: no cover - depends on the scipy version
+    _csr_matvec = None
+
+__all__ = ["CoupledSystem", "pack", "unpack", "SPECIES", "spatial_order", "locality",
+           "REORDER_MIN_PATCHES", "REORDER_MIN_GAIN"]
+
+#: Reorder only networks at least this large. Below about 250,000 patches the state vector
+#: (2 n float64 = 4 MB) fits in one core's 4 MiB L2 cache on the benchmark machine, random
+#: reads of it are cheap, and the gather/scatter that a reordered product needs cost more
+#: than they save (benchmarks/README.md, 2026-12-02: no gain at 10k and 100k, 1.3x at 1M
+#: in a shuffled order).
+REORDER_MIN_PATCHES = 250_000
+#: ... and only when the internal order touches at most 1/REORDER_MIN_GAIN as many cache
+#: lines per operator row as the user's order (see :func:`locality`).
+REORDER_MIN_GAIN = 2.0
 
 #: Species in state order.
 SPECIES = ("prey", "predator")
@@ -36,6 +60,127 @@ def unpack(y):
     return y[:n], y[n:]
 
 
+def locality(matrix, order=None) -> float:
+    """Mean number of distinct 64-byte cache lines of ``x`` one row of ``matrix @ x`` reads.
+
+    Parameters
+    ----------
+    matrix : sparse array, shape (m, m)
+    order : ndarray of int, shape (m,), optional
+        Internal numbering to measure: internal position ``k`` holds row/column
+        ``order[k]`` (default: the order as given).
+
+    Returns
+    -------
+    float
+        Between 1 (all of a row's entries in one line of 8 float64) and the stored entries
+        per row (none share a line). The cost of a sparse mat-vec on a state larger than the
+        cache grows with it.
+    """
+    a = sp.csr_array(matrix)
+    m = a.shape[0]
+    if m == 0 or a.nnz == 0:
+        return 1.0
+    if order is not None:
+        a = _permuted(a, np.asarray(order))
+    rows = np.repeat(np.arange(m, dtype=np.int64), np.diff(a.indptr))
+    key = rows * (m // 8 + 1) + a.indices.astype(np.int64) // 8
+    key.sort()
+    return float((np.count_nonzero(np.diff(key)) + 1) / m)
+
+
+def spatial_order(centroids, bits: int = 16) -> np.ndarray:
+    """Patch order along a Hilbert curve through the centroids.
+
+    Parameters
+    ----------
+    centroids : ndarray, shape (n, 2)
+        Patch centroids in a projected CRS.
+    bits : int
+        Resolution of the curve: a 2**bits × 2**bits grid over the bounding square.
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+        ``order[k]`` is the patch at position ``k`` of the curve (ties keep the input order).
+
+    Notes
+    -----
+    The index is computed for all points at once with integer bit operations, one pass per
+    level of the curve, by the rotate-and-reflect rule of the Hilbert curve (Hilbert 1891,
+    Math. Ann. 38:459; the iterative form is common practice, from memory).
+    """
+    c = np.asarray(centroids, dtype=np.float64).reshape(-1, 2)
+    if c.shape[0] == 0:
+        return np.empty(0, dtype=np.int64)
+    lo = c.min(axis=0)
+    span = max(float((c.max(axis=0) - lo).max()), 1e-300)
+    cells = (1 << bits) - 1
+    q = np.clip(((c - lo) / span * cells).round(), 0, cells).astype(np.int64)
+    x, y = q[:, 0].copy(), q[:, 1].copy()
+    index = np.zeros(c.shape[0], dtype=np.int64)
+    s = 1 << (bits - 1)
+    while s > 0:
+        rx = (x & s) > 0
+        ry = (y & s) > 0
+        index += s * s * ((3 * rx.astype(np.int64)) ^ ry.astype(np.int64))
+        # rotate the quadrant so that the sub-curve starts and ends where the next one joins
+        flip = ~ry & rx
+        x = np.where(flip, s - 1 - x, x)
+        y = np.where(flip, s - 1 - y, y)
+        x, y = np.where(ry, x, y), np.where(ry, y, x)
+        s >>= 1
+    return np.argsort(index, kind="stable")
+
+
+def _permuted(a, order):
+    """``a`` renumbered: entry (i, j) moves to (pos[i], pos[j]) with ``order[pos[i]] = i``."""
+    a = sp.csr_array(a[order][:, order])
+    a.sort_indices()
+    return a
+
+
+def _int32(a):
+    if a.nnz < np.iinfo(np.int32).max:  # 32-bit indices: a faster sparse product
+        a.indices = a.indices.astype(np.int32)
+        a.indptr = a.indptr.astype(np.int32)
+    return a
+
+
+def _rhs(n, area, rates, movement):
+    """``rhs(t, y)`` for a state in the order of ``area`` / ``rates`` / ``movement``.
+
+    ``movement=None`` gives the local terms alone.
+
+    Buffers for the clipped state and the densities are allocated once; each call still
+    returns a fresh array, because scipy's Runge–Kutta solvers keep the returned derivative
+    (``self.f``) and reuse it after a rejected step, while the stages call ``rhs`` again.
+    """
+    area2 = np.concatenate([area, area])
+    x = np.empty(2 * n)
+    dens = np.empty(2 * n)
+    m = 2 * n
+    if movement is not None:
+        indptr, indices, data = movement.indptr, movement.indices, movement.data
+
+    def rhs(t, y):
+        np.maximum(y, 0.0, out=x)
+        np.divide(x, area2, out=dens)
+        dn, dp = rates(dens[:n], dens[n:])
+        dy = np.empty(m)
+        np.multiply(dn, area, out=dy[:n])
+        np.multiply(dp, area, out=dy[n:])
+        if movement is None:
+            pass
+        elif _csr_matvec is not None:
+            _csr_matvec(m, m, indptr, indices, data, x, dy)  # dy += M x, no temporary
+        else:  # pragma: no cover
+            dy += movement @ x
+        return dy
+
+    return rhs
+
+
 @dataclass(frozen=True, eq=False)
 class CoupledSystem:
     """The whole network as one ODE system ``dy/dt = rhs(t, y)``.
@@ -48,6 +193,14 @@ class CoupledSystem:
         Patch areas.
     prey_movement, predator_movement : sparse array, shape (n_patches, n_patches)
         Movement operators (``dx/dt = M x``) from :func:`trophoscape.network.movement_operator`.
+    order : {"auto", "none", "rcm"} or ndarray of int, shape (n_patches,)
+        Internal patch numbering. "auto" (default): reverse Cuthill–McKee on the links
+        (:func:`scipy.sparse.csgraph.reverse_cuthill_mckee`), used only on networks of at least
+        ``REORDER_MIN_PATCHES`` patches where it cuts :func:`locality` by ``REORDER_MIN_GAIN``
+        or more; "rcm": always that order; "none": the user's order; an array: that order
+        (``order[k]`` is the patch at internal position ``k``), e.g. ``spatial_order(centroids)``.
+        Results do not depend on it beyond rounding (the sums of the sparse product are taken
+        in another order).
 
     Notes
     -----
@@ -61,20 +214,67 @@ class CoupledSystem:
     area_km2: np.ndarray
     prey_movement: sp.sparray
     predator_movement: sp.sparray
+    order: object = "auto"
     movement: sp.csr_array = field(init=False, repr=False)
+    permutation: np.ndarray = field(init=False, repr=False)
+    _internal: dict = field(init=False, repr=False)
 
     def __post_init__(self):
+        object.__setattr__(self, "area_km2", np.asarray(self.area_km2, dtype=float))
         n = self.n_patches
         for name in ("prey_movement", "predator_movement"):
             if getattr(self, name).shape != (n, n):
                 raise ValueError(f"{name} must have shape ({n}, {n})")
-        block = sp.csr_array(sp.block_diag([self.prey_movement, self.predator_movement],
-                                           format="csr"))
-        if block.nnz < np.iinfo(np.int32).max:  # 32-bit indices: a faster sparse product
-            block.indices = block.indices.astype(np.int32)
-            block.indptr = block.indptr.astype(np.int32)
+        block = _int32(sp.csr_array(sp.block_diag([self.prey_movement, self.predator_movement],
+                                                  format="csr")))
         object.__setattr__(self, "movement", block)
-        object.__setattr__(self, "area_km2", np.asarray(self.area_km2, dtype=float))
+        perm = self._choose_order(block)
+        object.__setattr__(self, "permutation", perm)
+        internal = {}
+        if perm is not None:
+            perm2 = np.concatenate([perm, perm + n])
+            internal = {
+                "perm2": perm2,
+                "inverse2": np.argsort(perm2),
+                "movement": _int32(_permuted(block, perm2)),
+            }
+        object.__setattr__(self, "_internal", internal)
+
+    def _choose_order(self, block):
+        """Internal order ``(n,)`` of int64, or None for the user's order."""
+        n = self.n_patches
+        order = self.order
+        if isinstance(order, str):
+            if order not in ("auto", "none", "rcm"):
+                raise ValueError(f"order must be 'auto', 'none', 'rcm' or an array, got {order!r}")
+            if order == "none" or n < 2 or (order == "auto" and n < REORDER_MIN_PATCHES):
+                return None
+            links = block[:n, :n] + block[n:, n:]
+            links = abs(links) + abs(links.T)
+            perm = reverse_cuthill_mckee(sp.csr_matrix(links), symmetric_mode=True)
+            perm = np.asarray(perm, dtype=np.int64)
+            if order == "auto":
+                pair = np.concatenate([perm, perm + n])
+                if locality(block) < REORDER_MIN_GAIN * locality(block, pair):
+                    return None
+            return perm
+        perm = np.asarray(order, dtype=np.int64)
+        if perm.shape != (n,) or not np.array_equal(np.sort(perm), np.arange(n)):
+            raise ValueError(f"order must be a permutation of 0..{n - 1}")
+        return None if np.array_equal(perm, np.arange(n)) else perm
+
+    @property
+    def reordered(self) -> bool:
+        """True when patches are numbered internally in another order than the user's."""
+        return self.permutation is not None
+
+    def to_internal(self, y):
+        """A state (or ``(2 n, k)`` block) in the user's order, in the internal order."""
+        return y if not self.reordered else np.asarray(y)[self._internal["perm2"]]
+
+    def to_user(self, y):
+        """A state (or ``(2 n, k)`` block) in the internal order, in the user's order."""
+        return y if not self.reordered else np.asarray(y)[self._internal["inverse2"]]
 
     @property
     def n_patches(self) -> int:
@@ -84,25 +284,81 @@ class CoupledSystem:
     def n_state(self) -> int:
         return 2 * self.n_patches
 
-    def rhs_function(self):
-        """Return the pure closure ``rhs(t, y) -> dy/dt`` (arrays of shape (2 n,))."""
+    def rhs_function(self, internal: bool = False):
+        """Return the closure ``rhs(t, y) -> dy/dt`` (arrays of shape (2 n,)).
+
+        Parameters
+        ----------
+        internal : bool
+            False (default): ``y`` and ``dy/dt`` in the user's patch order; on a reordered
+            system the sparse product runs in the internal order, with a gather before and a
+            scatter after. True: ``y`` and ``dy/dt`` in the internal order (convert with
+            :meth:`to_internal` / :meth:`to_user`), with no gather or scatter: the fastest
+            form for an integrator that keeps the whole run in the internal order.
+
+        Notes
+        -----
+        Each call returns a fresh array (scipy's solvers keep it); the closure keeps work
+        buffers, so one closure must not be called from several threads at once.
+        """
         n = self.n_patches
         area = self.area_km2
-        movement = self.movement
         rates = self.model.rates
-        out = np.empty(2 * n)
+        if not self.reordered:
+            return _rhs(n, area, rates, self.movement)
+        perm = self.permutation
+        inner = self._internal
+        if internal:
+            model = LocalModel(growth=self.model.growth, response=self.model.response,
+                               params={k: np.asarray(v)[perm] if np.ndim(v) else v
+                                       for k, v in self.model.params.items()})
+            return _rhs(n, area[perm], model.rates, inner["movement"])
+        perm2, inverse2 = inner["perm2"], inner["inverse2"]
+        movement = inner["movement"]
+        local = _rhs(n, area, rates, None)
+        x = np.empty(2 * n)
 
         def rhs(t, y):
-            x = np.maximum(y, 0.0)
-            dn, dp = rates(x[:n] / area, x[n:] / area)
-            out[:n] = dn
-            out[n:] = dp
-            out[:n] *= area
-            out[n:] *= area
-            # solve_ivp keeps what we return; hand it a fresh array.
-            return out + movement @ x
+            dy = local(t, y)
+            np.take(y, perm2, out=x)
+            np.maximum(x, 0.0, out=x)
+            dy += (movement @ x)[inverse2]
+            return dy
 
         return rhs
+
+    def stiffness_ratio(self, y) -> float:
+        """How much faster dispersal is than the local dynamics, at state ``y``.
+
+        Parameters
+        ----------
+        y : ndarray, shape (2 n,)
+            State in the user's order (e.g. the initial state).
+
+        Returns
+        -------
+        float
+            ``ρ_move / ρ_local``: ``ρ_move`` bounds the spectral radius of the movement
+            operator by Gershgorin's theorem on its columns (the largest ``|M_jj| + Σ_i≠j |M_ij|``,
+            at most twice the largest emigration rate); ``ρ_local`` is the largest modulus of an
+            eigenvalue of a patch's 2×2 local Jacobian at ``y`` (at least 1e-12). Explicit
+            Runge–Kutta steps are limited to about ``3 / ρ_move`` by stability, while the
+            dynamics need steps of about ``1 / ρ_local``; a ratio well above one means a
+            stiff run (see benchmarks/README.md for where the methods cross over).
+        """
+        n = self.n_patches
+        if n == 0:
+            return 0.0
+        m = sp.csc_array(self.movement)
+        # the column's absolute sum bounds |λ| for every Gershgorin disc of that column
+        rho_move = float(np.max(np.abs(m).sum(axis=0))) if m.nnz else 0.0
+        x = np.maximum(np.asarray(y, dtype=float), 0.0)
+        a, b, c, d = self.model.partials(x[:n] / self.area_km2, x[n:] / self.area_km2)
+        half_trace = 0.5 * (a + d)
+        root = np.sqrt((half_trace * half_trace - (a * d - b * c)).astype(complex))
+        rho_local = float(np.max(np.maximum(np.abs(half_trace + root),
+                                            np.abs(half_trace - root))))
+        return rho_move / max(rho_local, 1e-12)
 
     def jacobian_sparsity(self) -> sp.csr_array:
         """Sparsity pattern of the Jacobian: the local 2×2 blocks plus the links."""

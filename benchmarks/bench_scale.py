@@ -1,0 +1,171 @@
+"""End to end at scale: 10,000 and 100,000 synthetic patches, stage by stage, with peak memory.
+
+For each size a GeoPackage of synthetic patches (``synthetic.py``, not counted) and a scenario
+file are written to a temporary folder, then a fresh child process runs the study exactly as
+the command line does: ``load_study`` (read the GeoPackage, build the network, assemble the
+system), ``run_study`` (200 time units, a census every 0.5, so 400 census steps; persistence,
+synchrony, capacity; ``[analysis] stability = false`` by default) and ``write_run(maps=False)``.
+Each size runs in its own process so that its peak resident memory (``ru_maxrss``) is its own.
+Stage times are wall and CPU (``time.process_time``) seconds; the machine is shared.
+
+Targets (issue 8): cost per patch at 100,000 within 2x of that at 10,000; peak memory under 4 GB.
+
+    OPENBLAS_NUM_THREADS=1 PYTHONPATH=src python benchmarks/bench_scale.py
+    OPENBLAS_NUM_THREADS=1 PYTHONPATH=src python benchmarks/bench_scale.py --sizes 100000 \
+        --stability --profile /tmp/scale.prof
+"""
+
+from __future__ import annotations
+
+import os
+
+os.environ["OPENBLAS_NUM_THREADS"] = "1"
+
+import argparse  # noqa: E402
+import functools  # noqa: E402
+import json  # noqa: E402
+import resource  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+from bench_run import SCENARIO  # noqa: E402
+from common import table, versions  # noqa: E402
+
+HERE = Path(__file__).resolve().parent
+WRAPPED = ("read_patches", "build_network", "simulate", "persistence_table",
+           "synchrony_analysis", "stability_analysis", "capacity_analysis")
+
+
+def now() -> np.ndarray:
+    return np.array([time.perf_counter(), time.process_time()])
+
+
+def child(folder: Path, profile: str | None) -> dict:
+    """Run one study in this process; return stage (wall, CPU) seconds and peak memory."""
+    import trophoscape.study as study_module
+    from trophoscape.outputs import write_run
+
+    stages: dict[str, np.ndarray] = {}
+
+    def clock(name, fn):
+        @functools.wraps(fn)
+        def wrapper(*args, **kwargs):
+            t0 = now()
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                stages[name] = stages.get(name, 0.0) + now() - t0
+        return wrapper
+
+    for name in WRAPPED:
+        setattr(study_module, name, clock(name, getattr(study_module, name)))
+    base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    prof = None
+    if profile:
+        import cProfile
+
+        prof = cProfile.Profile()
+        prof.enable()
+    t0 = now()
+    study = study_module.load_study(folder / "scenario.toml")
+    t1 = now()
+    result = study_module.run_study(study)
+    t2 = now()
+    write_run(result, folder / "out", maps=False)
+    t3 = now()
+    if prof is not None:
+        prof.disable()
+        prof.dump_stats(profile)
+    zero = np.zeros(2)
+    got = {k: stages.get(k, zero) for k in WRAPPED}
+    load, run = t1 - t0, t2 - t1
+    rows = {
+        "landscape (read GeoPackage)": got["read_patches"],
+        "network (boundary 2 km)": got["build_network"],
+        "system assembly": load - got["read_patches"] - got["build_network"],
+        "simulate": got["simulate"],
+        "persistence_table": got["persistence_table"],
+        "synchrony_analysis": got["synchrony_analysis"],
+        "stability_analysis": got["stability_analysis"],
+        "capacity_analysis": got["capacity_analysis"],
+        "rest of run_study": run - sum(got[k] for k in WRAPPED[2:]),
+        "write_run(maps=False)": t3 - t2,
+        "end to end": t3 - t0,
+    }
+    stats = result.trajectory.stats
+    sizes = {p.name: p.stat().st_size / 1e6 for p in (folder / "out").iterdir()}
+    return {"stages": {k: v.tolist() for k, v in rows.items()},
+            "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
+            "base_mb": base, "links": result.summary["links"],
+            "solver": {"method": stats.method, "steps": stats.steps, "nfev": stats.nfev,
+                       "restarts": stats.restarts},
+            "outputs_mb": sizes}
+
+
+def prepare(n: int, stability: bool) -> Path:
+    folder = Path(tempfile.mkdtemp(prefix=f"trophoscape-scale-{n}-"))
+    env = {**os.environ, "PYTHONPATH": os.environ.get("PYTHONPATH", "src")}
+    subprocess.run([sys.executable, str(HERE / "synthetic.py"), str(n),
+                    str(folder / "patches.gpkg")], check=True, stdout=subprocess.DEVNULL, env=env)
+    text = SCENARIO.format(n=n) + ("\n[analysis]\nstability = %s\n"
+                                   % ("true" if stability else "false"))
+    (folder / "scenario.toml").write_text(text, encoding="utf-8")
+    return folder
+
+
+def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--sizes", type=int, nargs="+", default=[10_000, 100_000])
+    ap.add_argument("--stability", action="store_true", help="run stability_analysis too")
+    ap.add_argument("--profile", help="cProfile output file (largest size only)")
+    ap.add_argument("--child", help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.child:
+        print("RESULT " + json.dumps(child(Path(args.child), args.profile)))
+        return
+    print("bench_scale:", versions())
+    results = {}
+    for n in args.sizes:
+        folder = prepare(n, args.stability)
+        cmd = [sys.executable, __file__, "--child", str(folder)]
+        if args.profile and n == max(args.sizes):
+            cmd += ["--profile", args.profile]
+        t0 = time.perf_counter()
+        out = subprocess.run(cmd, check=True, capture_output=True, text=True,
+                             env={**os.environ, "PYTHONPATH": os.environ.get("PYTHONPATH", "src")})
+        line = [ln for ln in out.stdout.splitlines() if ln.startswith("RESULT ")][-1]
+        results[n] = json.loads(line[7:])
+        r = results[n]
+        print(f"\n{n:,} patches, {r['links']:,} links ({time.perf_counter() - t0:.0f} s in the "
+              f"child); peak RSS {r['peak_mb']:.0f} MB (imports {r['base_mb']:.0f} MB); solver "
+              f"{r['solver']}; outputs " + ", ".join(f"{k} {v:.1f} MB"
+                                                    for k, v in sorted(r["outputs_mb"].items())))
+        total = np.array(r["stages"]["end to end"])
+        table([[k, f"{v[0]:.2f}", f"{v[1]:.2f}", f"{100 * v[0] / total[0]:.0f}%",
+                f"{v[1] / n * 1e6:.0f}"] for k, v in r["stages"].items()],
+              ["stage", "wall s", "CPU s", "share", "CPU us/patch"])
+    if len(results) >= 2:
+        small, big = min(results), max(results)
+        print()
+        for k in results[small]["stages"]:
+            a = np.array(results[small]["stages"][k]) / small
+            b = np.array(results[big]["stages"][k]) / big
+            if a[1] > 0:
+                print(f"  per-patch ratio {big:,} / {small:,}, {k}: {b[1] / a[1]:.2f}x CPU, "
+                      f"{b[0] / a[0]:.2f}x wall")
+        a = np.array(results[small]["stages"]["end to end"]) / small
+        b = np.array(results[big]["stages"]["end to end"]) / big
+        print(f"target: cost per patch at {big:,} within 2x of {small:,}: {b[1] / a[1]:.2f}x CPU "
+              f"({b[0] / a[0]:.2f}x wall) -> {'PASS' if b[1] / a[1] <= 2 else 'MISS'}")
+    for n, r in results.items():
+        print(f"target: peak memory under 4 GB at {n:,}: {r['peak_mb']:.0f} MB -> "
+              f"{'PASS' if r['peak_mb'] < 4096 else 'MISS'}")
+
+
+if __name__ == "__main__":
+    main()
