@@ -500,39 +500,53 @@ def _corridor_arcs(landscape: Landscape, path: Path, kernel: str, snap_m: float)
     refs = lines["corridor_id"].to_numpy() if "corridor_id" in lines.columns else None
     geoms = lines.geometry.to_numpy()
     k = geoms.size
-    ends = np.concatenate([shapely.get_point(geoms, 0), shapely.get_point(geoms, -1)])
-    tree = shapely.STRtree(landscape.geometries)
-    # the index needs a positive search radius; an end inside a patch is at distance 0
-    (which, patch), gap = tree.query_nearest(ends, max_distance=max(snap_m, 1e-6),
-                                             return_distance=True, all_matches=True)
-    # an end on two overlapping patches: take the first in patch order, deterministically
-    order = np.lexsort((patch, which))
-    which, patch, gap = which[order], patch[order], gap[order]
-    first = np.r_[True, which[1:] != which[:-1]]
-    nearest = np.full(2 * k, -1, dtype=np.int64)
-    nearest[which[first & (gap <= snap_m)]] = patch[first & (gap <= snap_m)]
-    loose = np.flatnonzero(nearest < 0)
-    if loose.size:
-        e = int(loose[0])
-        c = e % k
-        x, y = shapely.get_coordinates(ends[e])[0]
-        raise InputError(
-            f"its {'first' if e < k else 'last'} point ({x:.1f}, {y:.1f}) is not within "
-            f"{snap_m / 1000:g} km of any patch; each end of a corridor must lie on or near a "
-            "patch", file=path, feature=_corridor_ref(refs, c), field="geometry")
-    a, b = nearest[:k], nearest[k:]
-    same = np.flatnonzero(a == b)
-    if same.size:
-        c = int(same[0])
-        raise InputError(
-            f"both ends lie at patch {landscape.feature(int(a[c]))!r}; a corridor must join two "
-            "different patches", file=path, feature=_corridor_ref(refs, c), field="geometry")
+    a, b = snap_line_ends(landscape, geoms, snap_m, path=path,
+                          ref=lambda c: _corridor_ref(refs, c))
     length_km = shapely.length(geoms) / 1000.0
     weight = np.full(k, 1.0 if kernel == "none" else np.nan)
     survival = (lines["survival"].to_numpy(dtype=np.float64) if "survival" in lines.columns
                 else np.full(k, np.nan))
     return (np.concatenate([a, b]), np.concatenate([b, a]), np.tile(length_km, 2),
             np.tile(weight, 2), np.tile(survival, 2), _CODE["corridor"])
+
+
+def snap_line_ends(landscape: Landscape, geoms, snap_m: float, *, path, ref, what=""):
+    """The patches at the two ends of each line, ``(first_end, last_end)`` index arrays.
+
+    Each end must lie within ``snap_m`` metres of a patch (an end on two overlapping patches
+    takes the first in patch order), and the two ends at different patches; otherwise an
+    InputError names the file, the line (``ref(c)``) and the field 'geometry'. ``what``
+    starts the message (e.g. "the candidate joins fewer than two patches: ").
+    """
+    k = geoms.size
+    ends = np.concatenate([shapely.get_point(geoms, 0), shapely.get_point(geoms, -1)])
+    tree = shapely.STRtree(landscape.geometries)
+    # the index needs a positive search radius; an end inside a patch is at distance 0
+    (which, patch), gap = tree.query_nearest(ends, max_distance=max(snap_m, 1e-6),
+                                             return_distance=True, all_matches=True)
+    order = np.lexsort((patch, which))
+    which, patch, gap = which[order], patch[order], gap[order]
+    first = np.r_[True, which[1:] != which[:-1]] if which.size else which.astype(bool)
+    near = first & (gap <= snap_m)
+    nearest = np.full(2 * k, -1, dtype=np.int64)
+    nearest[which[near]] = patch[near]
+    loose = np.flatnonzero(nearest < 0)
+    if loose.size:
+        e = int(loose[0])
+        x, y = shapely.get_coordinates(ends[e])[0]
+        raise InputError(
+            f"{what}its {'first' if e < k else 'last'} point ({x:.1f}, {y:.1f}) is not within "
+            f"{snap_m / 1000:g} km of any patch; each end "
+            f"{'must' if what else 'of a corridor must'} lie on or near a patch",
+            file=path, feature=ref(e % k), field="geometry")
+    a, b = nearest[:k], nearest[k:]
+    same = np.flatnonzero(a == b)
+    if same.size:
+        c = int(same[0])
+        raise InputError(
+            f"{what}both ends lie at patch {landscape.feature(int(a[c]))!r}; a corridor must "
+            "join two different patches", file=path, feature=ref(c), field="geometry")
+    return a, b
 
 
 def _corridor_ref(refs, c: int):

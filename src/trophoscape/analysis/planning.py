@@ -48,7 +48,7 @@ import pandas as pd
 import shapely
 
 from ..errors import InputError, RunError
-from ..network import KERNELS, Network, movement_operator, with_links, without
+from ..network import KERNELS, Network, movement_operator, snap_line_ends, with_links, without
 from ..system import SPECIES, CoupledSystem
 from .capacity import metapopulation_capacity
 
@@ -190,33 +190,8 @@ def snap_candidates(frame, landscape, *, snap_km: float = 0.1, path=None) -> Can
 
     geoms = frame.geometry.to_numpy()
     k = geoms.size
-    ends = np.concatenate([shapely.get_point(geoms, 0), shapely.get_point(geoms, -1)])
-    tree = shapely.STRtree(landscape.geometries)
-    # the index needs a positive search radius; an end inside a patch is at distance 0
-    (which, patch), gap = tree.query_nearest(ends, max_distance=max(snap_m, 1e-6),
-                                             return_distance=True, all_matches=True)
-    order = np.lexsort((patch, which))
-    which, patch, gap = which[order], patch[order], gap[order]
-    first = np.r_[True, which[1:] != which[:-1]] if which.size else which.astype(bool)
-    near = first & (gap <= snap_m)
-    nearest = np.full(2 * k, -1, dtype=np.int64)
-    nearest[which[near]] = patch[near]
-    loose = np.flatnonzero(nearest < 0)
-    if loose.size:
-        e = int(loose[0])
-        x, y = shapely.get_coordinates(ends[e])[0]
-        raise InputError(
-            f"the candidate joins fewer than two patches: its {'first' if e < k else 'last'} "
-            f"point ({x:.1f}, {y:.1f}) is not within {snap_m / 1000:g} km of any patch; each "
-            "end must lie on or near a patch", file=path, feature=ref(e % k), field="geometry")
-    a, b = nearest[:k], nearest[k:]
-    same = np.flatnonzero(a == b)
-    if same.size:
-        c = int(same[0])
-        raise InputError(
-            f"the candidate joins fewer than two patches: both ends lie at patch "
-            f"{landscape.feature(int(a[c]))!r}; a corridor must join two different patches",
-            file=path, feature=ref(c), field="geometry")
+    a, b = snap_line_ends(landscape, geoms, snap_m, path=path, ref=ref,
+                          what="the candidate joins fewer than two patches: ")
     length = shapely.length(geoms) / 1000.0
     quality = frame["quality"].to_numpy(dtype=float) if "quality" in frame.columns else \
         np.ones(k)
