@@ -146,6 +146,9 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="link"))
     ax.add_collection(_polygon_collection(geoms, colours))
     _frame_map(ax, geoms, patches.crs)
+    if kind == "number" and "patch_id" in patches.columns and finite.size >= 2 \
+            and np.ptp(finite) > 0:
+        _label_extremes(ax, geoms, numbers, patches["patch_id"].astype(str).to_numpy())
     contours = None
     if isolines is not None and kind == "number" and (~missing).sum() >= 3:
         contours = _isolines(ax, geoms[~missing], finite, isolines, handles)
@@ -167,6 +170,22 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
                    frameon=False, fontsize=8, title_fontsize=8)
     ax.set_title(title or column, fontsize=11)
     return _save(fig, path)
+
+
+def _label_extremes(ax, geoms, numbers, ids):
+    """Name the patches with the highest and the lowest value, so a reader can find them."""
+    import shapely
+
+    for i, word in ((int(np.nanargmax(numbers)), "highest"), (int(np.nanargmin(numbers)),
+                                                              "lowest")):
+        ties = int(np.sum(numbers == numbers[i])) - 1
+        name = f"{ids[i]} and {ties} more" if ties else ids[i]
+        x, y = shapely.get_coordinates(shapely.point_on_surface(geoms[i]))[0] / 1e3
+        ax.annotate(f"{name} ({word}: {numbers[i]:.3g})", (x, y), xytext=(6, 6),
+                    textcoords="offset points", fontsize=7, zorder=7,
+                    bbox={"boxstyle": "round,pad=0.2", "fc": "white", "ec": "0.5",
+                          "alpha": 0.85},
+                    arrowprops={"arrowstyle": "-", "color": "0.3", "lw": 0.6})
 
 
 def _isolines(ax, geoms, values, levels, handles):
