@@ -15,7 +15,7 @@ from pathlib import Path
 
 from .system import SPECIES
 
-__all__ = ["write_figures_and_report", "CAUTION"]
+__all__ = ["write_figures_and_report", "add_section", "CAUTION"]
 
 CAUTION = (
     "These results are model projections for comparing options, not predictions of real "
@@ -144,6 +144,27 @@ def write_figures_and_report(folder, result, gdf, links, summary) -> None:
     (folder / "report.html").write_text(_html(result, summary, sections), encoding="utf-8")
 
 
+def _figures_html(figures) -> str:
+    esc = html.escape
+    return "\n".join(f"<figure>{_img(p)}<figcaption><strong>{esc(t)}.</strong> {esc(r)}"
+                     "</figcaption></figure>" for t, p, r in figures)
+
+
+def add_section(report: Path, name: str, figures, *, intro: str = "") -> None:
+    """Insert a section (heading, a paragraph, figures with a reading guide each) into a
+    written report, before its closing provenance line; used by commands that add their own
+    results to a run's report (``spread``)."""
+    report = Path(report)
+    text = report.read_text(encoding="utf-8")
+    block = (f"<h2>{html.escape(name)}</h2>\n"
+             + (f"<p>{html.escape(intro)}</p>\n" if intro else "")
+             + _figures_html(figures) + "\n")
+    marker = "<p><small>Run "
+    at = text.rfind(marker)
+    text = text[:at] + block + text[at:] if at >= 0 else text + block
+    report.write_text(text, encoding="utf-8")
+
+
 def _img(path: Path) -> str:
     data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
     return f'<img alt="{html.escape(Path(path).stem)}" src="data:image/png;base64,{data}">'
@@ -212,8 +233,7 @@ def _html(result, summary, sections) -> str:
     body = []
     for name, figures in sections.items():
         body.append(f"<h2>{esc(name)}</h2>")
-        body.extend(f"<figure>{_img(p)}<figcaption><strong>{esc(t)}.</strong> {esc(r)}"
-                    "</figcaption></figure>" for t, p, r in figures)
+        body.append(_figures_html(figures))
     prov = summary["provenance"]
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8">

@@ -158,3 +158,24 @@ def _spread_maps(stage: Path, study, result, scan) -> None:
         patch_map(frame, "cascade_share", path=folder / "origin_vulnerability.png",
                   links=links, title="Origins: share of other patches a collapse reaches",
                   label="share of patches reached", cmap="magma_r")
+    report = stage / "report.html"
+    if report.exists():
+        from .report import add_section
+
+        speed = s["front_speed_km_per_time"]
+        figures = [
+            (f"Arrival of {species} collapse", folder / "spread_arrival.png",
+             "When collapse reached each patch after the shock; dashed lines are isochrones, "
+             "grey patches were never reached."),
+            ("Arrival time against distance", folder / "spread_arrival_distance.png",
+             "Each dot is a reached patch; the line is the robust (Theil–Sen) front speed."),
+        ]
+        if scan is not None:
+            figures.append(("Worst origins", folder / "origin_vulnerability.png",
+                            "Each patch coloured by the share of the other patches a collapse "
+                            "starting there reaches: the darkest are the origins to watch."))
+        intro = (f"Shock at {s['shock_time']:g} {unit}; collapse reached "
+                 f"{s['reached_share']:.0%} of the patches"
+                 + (f", at {speed:.3g} km per {unit}." if speed is not None
+                    and speed == speed else "."))
+        add_section(report, "Collapse spread", figures, intro=intro)
