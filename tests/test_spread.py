@@ -288,6 +288,9 @@ def test_spread_command_writes_its_files(tmp_path, spread_command):
         assert (out / name).is_file(), name
     patches = pd.read_csv(out / "patches.csv", dtype={"patch_id": str})
     assert "arrival_time" in patches.columns
+    report = (out / "report.html").read_text(encoding="utf-8")
+    assert "<h2>Collapse spread</h2>" in report and "Worst origins" in report
+    assert report.index("<h2>Collapse spread</h2>") < report.index("<p><small>Run ")
 
 
 def test_spread_command_bad_input_exits_2_and_writes_nothing(tmp_path, spread_command,
