@@ -185,8 +185,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "autocorrelation": Key(0.0, _below_one,
                                doc="AR(1) coefficient between successive census intervals"),
         "demographic": Key(False, _flag,
-                           doc="census-step demographic fluctuations of births, deaths, "
-                               "predation and moves"),
+                           doc="births, deaths, predation and moves as random events "
+                               "(tau-leaping with exact steps for small counts)"),
         "rank": Key(500, _number(1, 100_000, integer=True),
                     doc="random Fourier features per replicate"),
     },

@@ -163,6 +163,9 @@ def simulate(
         demographic fluctuations, before quasi-extinction); see
         :class:`trophoscape.noise.NoiseModel`. With noise the solver stops at every census
         and restarts with the step size it had reached. Without it (None) nothing changes.
+        With demographic noise the run is event-based instead (whole individuals,
+        :func:`trophoscape.noise.simulate_events`); ``method``, ``rtol`` and ``atol`` do not
+        apply.
 
     Returns
     -------
@@ -173,6 +176,13 @@ def simulate(
     RunError
         When the solver fails; the message gives the time reached and what to try.
     """
+    if noise is not None and getattr(noise, "demographic", False):
+        # whole individuals and random events: no ODE (trophoscape.noise.simulate_events)
+        from .noise import simulate_events
+
+        return simulate_events(system, y0, duration=duration, census_interval=census_interval,
+                               noise=noise, extinction_abundance=extinction_abundance, ids=ids,
+                               time_unit=time_unit, events=events, progress=progress)
     method = choose_method(method)
     solver_cls = METHODS[method]
     n = system.n_patches

@@ -291,7 +291,9 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
                   progress=progress)
     stacked_events = _stacked_events(events, n, reps)
     if stacked is None:
-        stacked = stacked_events is not None
+        # event-based (demographic) runs take one leap size per run: replicates one by one
+        demographic = noise is not None and getattr(noise, "demographic", False)
+        stacked = stacked_events is not None and not demographic
     elif stacked and stacked_events is None:
         raise ValueError("replicates with shocks that rewire the network run one by one")
     if stacked:
