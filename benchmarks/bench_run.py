@@ -30,8 +30,6 @@ import os
 
 os.environ["OPENBLAS_NUM_THREADS"] = "1"
 
-import functools  # noqa: E402
-import resource  # noqa: E402
 import subprocess  # noqa: E402
 import sys  # noqa: E402
 import tempfile  # noqa: E402
@@ -42,7 +40,7 @@ import numpy as np  # noqa: E402
 import scipy.integrate as si  # noqa: E402
 import scipy.integrate._ivp.rk as rk  # noqa: E402
 
-from common import table, versions  # noqa: E402
+from common import clock, now, peak_mb, table, versions  # noqa: E402
 
 import trophoscape.simulate as simulate_module  # noqa: E402
 import trophoscape.study as study_module  # noqa: E402
@@ -99,27 +97,6 @@ atol = 1e-8
 STAGES: dict[str, np.ndarray] = {}
 
 
-def now() -> np.ndarray:
-    """(wall, CPU) seconds; the machine is shared, so CPU time is given beside wall time."""
-    return np.array([time.perf_counter(), time.process_time()])
-
-
-def clock(name, fn):
-    """``fn`` wrapped so that the (wall, CPU) seconds it takes add up in ``STAGES[name]``."""
-    @functools.wraps(fn)
-    def wrapper(*args, **kwargs):
-        t0 = now()
-        try:
-            return fn(*args, **kwargs)
-        finally:
-            STAGES[name] = STAGES.get(name, 0.0) + now() - t0
-    return wrapper
-
-
-def peak_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # KiB on Linux
-
-
 def census_per_interval(system, y0, *, duration, census_interval, threshold, rtol, atol):
     """Reference variant: ``solve_ivp`` once per census interval, no first_step carried."""
     times = simulate_module.census_times(duration, census_interval)
@@ -168,7 +145,7 @@ def main():
 
     for name in ("read_patches", "build_network", "simulate", "persistence_table",
                  "synchrony_analysis", "stability_analysis", "capacity_analysis"):
-        setattr(study_module, name, clock(name, getattr(study_module, name)))
+        setattr(study_module, name, clock(STAGES, name, getattr(study_module, name)))
     base_mb = peak_mb()
 
     t_start = now()

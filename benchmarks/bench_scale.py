@@ -22,7 +22,6 @@ import os
 os.environ["OPENBLAS_NUM_THREADS"] = "1"
 
 import argparse  # noqa: E402
-import functools  # noqa: E402
 import json  # noqa: E402
 import resource  # noqa: E402
 import subprocess  # noqa: E402
@@ -34,15 +33,11 @@ from pathlib import Path  # noqa: E402
 import numpy as np  # noqa: E402
 
 from bench_run import SCENARIO  # noqa: E402
-from common import table, versions  # noqa: E402
+from common import clock, now, table, versions  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 WRAPPED = ("read_patches", "build_network", "simulate", "persistence_table",
            "synchrony_analysis", "stability_analysis", "capacity_analysis")
-
-
-def now() -> np.ndarray:
-    return np.array([time.perf_counter(), time.process_time()])
 
 
 def child(folder: Path, profile: str | None) -> dict:
@@ -52,18 +47,8 @@ def child(folder: Path, profile: str | None) -> dict:
 
     stages: dict[str, np.ndarray] = {}
 
-    def clock(name, fn):
-        @functools.wraps(fn)
-        def wrapper(*args, **kwargs):
-            t0 = now()
-            try:
-                return fn(*args, **kwargs)
-            finally:
-                stages[name] = stages.get(name, 0.0) + now() - t0
-        return wrapper
-
     for name in WRAPPED:
-        setattr(study_module, name, clock(name, getattr(study_module, name)))
+        setattr(study_module, name, clock(stages, name, getattr(study_module, name)))
     base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     prof = None
     if profile:

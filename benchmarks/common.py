@@ -11,7 +11,9 @@ import os
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
+import functools  # noqa: E402
 import platform  # noqa: E402
+import resource  # noqa: E402
 import sys  # noqa: E402
 import time  # noqa: E402
 from pathlib import Path  # noqa: E402
@@ -119,3 +121,25 @@ def table(rows, headers):
     print("-" * len(line))
     for r in rows:
         print("  ".join(c.rjust(w) for c, w in zip(r, widths)))
+
+
+def now() -> np.ndarray:
+    """(wall, CPU) seconds; the machine is shared, so CPU time is given beside wall time."""
+    return np.array([time.perf_counter(), time.process_time()])
+
+
+def clock(stages: dict, name: str, fn):
+    """``fn`` wrapped so that the (wall, CPU) seconds it takes add up in ``stages[name]``."""
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        t0 = now()
+        try:
+            return fn(*args, **kwargs)
+        finally:
+            stages[name] = stages.get(name, 0.0) + now() - t0
+    return wrapper
+
+
+def peak_mb() -> float:
+    """Peak resident memory of this process so far, MB (ru_maxrss is in KiB on Linux)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0

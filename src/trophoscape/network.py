@@ -373,7 +373,7 @@ def arc_weights(network: Network, *, scale_km) -> np.ndarray:
         return weight.copy()
     if network.kernel == "none":
         raise ValueError("an arc without a fixed weight in a network with kernel 'none'")
-    scale = _per_patch(scale_km, network.n_patches, "kernel_scale_km", positive=True)
+    scale = per_patch_array(scale_km, network.n_patches, "kernel_scale_km", positive=True)
     out = weight.copy()
     out[free] = kernel_weight(network.kernel, network.distance_km[free],
                               scale[network.source[free]])
@@ -418,7 +418,7 @@ def movement_operator(network: Network, *, emigration_rate, scale_km,
     [[-0.5, 0.5], [0.5, -0.5]]
     """
     n = network.n_patches
-    rate = _per_patch(emigration_rate, n, "emigration_rate", positive=False)
+    rate = per_patch_array(emigration_rate, n, "emigration_rate", positive=False)
     survival_per_km = float(survival_per_km)
     if not 0.0 <= survival_per_km <= 1.0:
         raise InputError(f"must be a number from 0 to 1, got {survival_per_km!r}",
@@ -451,7 +451,8 @@ def _nonnegative(value, key: str) -> float:
     return number
 
 
-def _per_patch(value, n: int, name: str, *, positive: bool) -> np.ndarray:
+def per_patch_array(value, n: int, name: str, *, positive: bool) -> np.ndarray:
+    """A number or an array of shape (n,) as a checked float array of shape (n,)."""
     array = np.asarray(value, dtype=np.float64)
     if array.ndim == 0:
         array = np.full(n, float(array))

@@ -354,13 +354,12 @@ class NoiseRun:
         self.z[name] = z
         return z.reshape(-1)
 
-    def interval(self, system, *, changed_base: bool = False, redraw: bool = True):
+    def interval(self, system, *, redraw: bool = True):
         """The system for the next census interval: ``system`` with noisy rates.
 
-        ``system`` is the run's system without noise (shocks may change it). ``redraw=False``
-        applies the multipliers of the current interval again (to a system a shock changed
-        within the interval; ``changed_base`` is accepted for clarity and has no other
-        effect: the unperturbed rates are always read from ``system``).
+        ``system`` is the run's system without noise (shocks may change it); the unperturbed
+        rates are always read from it. ``redraw=False`` applies the multipliers of the
+        current interval again (to a system a shock changed within the interval).
         """
         m = self.model
         if not m.environmental:
@@ -378,15 +377,6 @@ class NoiseRun:
         model = system.model
         new = LocalModel(growth=model.growth, response=model.response, params=params)
         return dataclasses.replace(system, model=new)
-
-    # -- demographic
-    def census(self, system, y_start: np.ndarray, y_end: np.ndarray, dt: float) -> np.ndarray:
-        """The state at a census of an ODE run: ``y_end`` unchanged.
-
-        Demographic noise is not a census-step correction: with ``demographic=True``
-        :func:`trophoscape.simulate.simulate` runs :func:`simulate_events` instead.
-        """
-        return y_end
 
 
 # --------------------------------------------------------------------------- stacking
@@ -767,7 +757,7 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
                     # a shock that keeps the counts whole leaves them unchanged
                     x = y.astype(np.int64) if np.all(y == np.round(y)) else whole(y, rng)
                     next_event += 1
-                current = run.interval(base, changed_base=True, redraw=False)
+                current = run.interval(base, redraw=False)
                 channels = event_channels(current)  # a shock may rewire: build anew
             stop = float(times[k])
             if next_event < len(pending):

@@ -112,6 +112,8 @@ def patches_frame(result):
 
 def write_timeseries(path, result):
     """NetCDF4 time series (CF attributes), abundances as float32."""
+    from . import __version__
+
     sc = result.study.scenario
     ds = result.trajectory.data.copy()
     for s in SPECIES:
@@ -124,7 +126,7 @@ def write_timeseries(path, result):
     ds.attrs.update(
         title=f"trophoscape run: {sc.name}",
         Conventions="CF-1.8",
-        source=f"trophoscape {provenance(result.study)['version']}",
+        source=f"trophoscape {__version__}",
         scenario=sc.text,
         time_unit=sc["time_unit"],
     )

@@ -178,33 +178,32 @@ def _ends(at, duration):
 
 
 @dataclass(frozen=True, eq=False)
-class PredatorRemoval(Shock):
+class _Removal(Shock):
+    """Remove a share of one species in some patches at time ``at``."""
+
+    species: ClassVar[str]
+    takes: ClassVar = ("patches", "share")
+    needs: ClassVar = ("patches", "share")
+    at: float
+    patches: np.ndarray
+    share: float
+
+    def events(self, context):
+        return [StateScale(self.at, self.species, self.patches, 1.0 - self.share)]
+
+
+class PredatorRemoval(_Removal):
     """Remove a share of the predators in some patches at time ``at`` (a cull, a disease)."""
 
     kind: ClassVar[str] = "predator_removal"
-    takes: ClassVar = ("patches", "share")
-    needs: ClassVar = ("patches", "share")
-    at: float
-    patches: np.ndarray
-    share: float
-
-    def events(self, context):
-        return [StateScale(self.at, "predator", self.patches, 1.0 - self.share)]
+    species: ClassVar[str] = "predator"
 
 
-@dataclass(frozen=True, eq=False)
-class PreyCrash(Shock):
+class PreyCrash(_Removal):
     """Remove a share of the prey in some patches at time ``at``."""
 
     kind: ClassVar[str] = "prey_crash"
-    takes: ClassVar = ("patches", "share")
-    needs: ClassVar = ("patches", "share")
-    at: float
-    patches: np.ndarray
-    share: float
-
-    def events(self, context):
-        return [StateScale(self.at, "prey", self.patches, 1.0 - self.share)]
+    species: ClassVar[str] = "prey"
 
 
 @dataclass(frozen=True, eq=False)

@@ -157,10 +157,8 @@ def simulate(
         ``duration`` are ignored; events at time 0 act before the first step.
     noise : optional
         Stochasticity applied at census steps: an object with ``start()`` returning a
-        stateful run with ``interval(system, changed_base=False) -> system`` (the system to
-        integrate over the next census interval, e.g. with noisy rates) and
-        ``census(system, y_start, y_end, dt) -> y`` (the state at a census, e.g. with
-        demographic fluctuations, before quasi-extinction); see
+        stateful run with ``interval(system, redraw=True) -> system`` (the system to
+        integrate over the next census interval, with noisy rates); see
         :class:`trophoscape.noise.NoiseModel`. With noise the solver stops at every census
         and restarts with the step size it had reached. Without it (None) nothing changes.
         With demographic noise the run is event-based instead (whole individuals,
@@ -196,7 +194,6 @@ def simulate(
         run = noise.start()
         base = system  # the system without noise; events change it, noise perturbs it
         system = run.interval(base)
-        y_last = y  # state after the last census: the start of the interval
     rhs = system.rhs_function()
     options = dict(rtol=rtol, atol=atol)
     if method in IMPLICIT:
@@ -224,7 +221,7 @@ def simulate(
                 system, y_start = pending[next_event].apply(system, y_start)
             next_event += 1
         if noisy:  # the same noisy rates on the changed system, up to the next census
-            system = run.interval(base, changed_base=True, redraw=False)
+            system = run.interval(base, redraw=False)
         rhs = system.rhs_function()
         if method in IMPLICIT:
             options["jac"] = system.jacobian_function()
@@ -287,15 +284,12 @@ def simulate(
                 else:
                     dense = dense or solver.dense_output()
                     y_k = dense(times[k])
-                if noisy:
-                    y_k = run.census(system, y_last, y_k, float(times[k] - times[k - 1]))
                 y_k, changed = _census(y_k, extinction_abundance)
                 record[k] = y_k
                 k += 1
                 bar.update(1)
                 if noisy and k < times.size:
                     harvest(solver)
-                    y_last = y_k
                     system = run.interval(base)
                     rhs = system.rhs_function()
                     if method in IMPLICIT:

@@ -25,7 +25,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.sparse.csgraph import connected_components
 
-from ..network import KERNELS, Network, kernel_weight
+from ..network import KERNELS, Network, kernel_weight, per_patch_array
 
 __all__ = [
     "landscape_matrix",
@@ -45,14 +45,7 @@ _DENSE_SIZE = 64
 
 
 def _pair_scale(scale_km, n: int, lo, hi) -> np.ndarray:
-    scale = np.asarray(scale_km, dtype=np.float64)
-    if scale.ndim == 0:
-        scale = np.full(n, float(scale))
-    if scale.shape != (n,):
-        raise ValueError(f"scale_km must be a number or an array of shape ({n},), "
-                         f"got shape {scale.shape}")
-    if not np.all(np.isfinite(scale) & (scale > 0)):
-        raise ValueError("scale_km must be finite and > 0")
+    scale = per_patch_array(scale_km, n, "scale_km", positive=True)  # the network's own check
     # per-patch scales: a pair uses the mean of its two patches' scales, so M stays symmetric
     return 0.5 * (scale[lo] + scale[hi])
 
