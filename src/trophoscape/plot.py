@@ -179,6 +179,8 @@ def _label_extremes(ax, geoms, numbers, ids):
     for i, word in ((int(np.nanargmax(numbers)), "highest"), (int(np.nanargmin(numbers)),
                                                               "lowest")):
         ties = int(np.sum(numbers == numbers[i])) - 1
+        if ties > 2:  # a value many patches share singles nothing out
+            continue
         name = f"{ids[i]} and {ties} more" if ties else ids[i]
         x, y = shapely.get_coordinates(shapely.point_on_surface(geoms[i]))[0] / 1e3
         ax.annotate(f"{name} ({word}: {numbers[i]:.3g})", (x, y), xytext=(6, 6),
