@@ -11,7 +11,9 @@ immigrate. So a corridor to a sink "reconnects a patch that otherwise loses its 
 
 from __future__ import annotations
 
+import base64
 import json
+from html.parser import HTMLParser
 
 import geopandas
 import networkx as nx
@@ -27,6 +29,7 @@ import trophoscape.cli as cli
 from trophoscape.analysis import planning as pl
 from trophoscape.analysis.capacity import landscape_matrix, metapopulation_capacity
 from trophoscape.errors import InputError
+from trophoscape.report import CAUTION
 from trophoscape.network import build_network, movement_operator, with_links, without
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
@@ -121,6 +124,63 @@ def run_cli(monkeypatch, *args):
 
 
 # ------------------------------------------------------------------ one sink: ranking
+
+
+class _Page(HTMLParser):
+    """The headings, tables (rows of cell texts) and embedded PNGs of a page, in order, read
+    with the standard library's HTML parser (the outside reference for the markup)."""
+
+    def __init__(self, text):
+        super().__init__()
+        self.items, self._cell, self._row, self._heading = [], None, None, None
+        self.feed(text)
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        if tag in ("h1", "h2", "h3"):
+            self._heading = [tag, attrs.get("id"), ""]
+        elif tag == "table":
+            self.items.append(["table", []])
+        elif tag == "tr":
+            self._row = []
+        elif tag in ("td", "th") and self._row is not None:
+            self._cell = ""
+        elif tag == "img":
+            self.items.append(["img", attrs.get("src", "")])
+
+    def handle_endtag(self, tag):
+        if tag in ("h1", "h2", "h3") and self._heading:
+            self.items.append(["heading", *self._heading])
+            self._heading = None
+        elif tag in ("td", "th") and self._cell is not None:
+            self._row.append(self._cell.strip())
+            self._cell = None
+        elif tag == "tr" and self._row is not None:
+            self.items[-1][1].append(self._row)
+            self._row = None
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell += data
+        if self._heading is not None:
+            self._heading[2] += data
+
+    def after(self, heading_id):
+        """The items after the heading with that id, up to the next heading of its level."""
+        at = next(k for k, it in enumerate(self.items)
+                  if it[0] == "heading" and it[2] == heading_id)
+        level = self.items[at][1]
+        out = []
+        for it in self.items[at + 1:]:
+            if it[0] == "heading" and it[1] <= level:
+                break
+            out.append(it)
+        return out
+
+
+def _png_bytes(src):
+    assert src.startswith("data:image/png;base64,")
+    return base64.b64decode(src.split(",", 1)[1])
 
 
 @pytest.fixture(scope="module")
@@ -304,6 +364,33 @@ def test_report_states_gap_when_gains_do_not_add_up(complements, monkeypatch):
     report = (out / "corridors.html").read_text()
     assert f"Greedy falls short of the best set by {gap['absolute']:.4g}" in report
     assert "Lower synchrony is better for regional survival" in report
+    # report.html: the network as it is, as `run` reports it, then the corridor section
+    full = (out / "report.html").read_text(encoding="utf-8")
+    assert full.index(CAUTION) < full.index("Headline results") < full.index(
+        'id="corridors"')
+    assert "http://" not in full and "https://" not in full  # self-contained
+    page = _Page(full)
+    h2 = [it[3] for it in page.items if it[0] == "heading" and it[1] == "h2"]
+    assert h2[:2] == ["Headline results", "Persistence"] and h2[-1] == "Corridor planning"
+    section = page.after("corridors")
+    text = full[full.index('id="corridors"'):]
+    assert f"Greedy falls short of the best set by {gap['absolute']:.4g}" in text
+    assert "Chosen set (exhaustive):</strong> R1, R2" in text
+    # the two corridor maps, embedded: the very PNG files of maps/
+    images = [_png_bytes(it[1]) for it in section if it[0] == "img"]
+    assert images == [(out / "maps" / "corridors_gain_per_cost.png").read_bytes(),
+                      (out / "maps" / "critical_patches.png").read_bytes()]
+    assert "Each candidate line is coloured by the score it adds per unit cost" in text
+    assert "Each patch coloured by how much the score falls" in text
+    # the ranking table: one row per ranked candidate, in rank order, as corridors.csv has it
+    ranking = next(it[1] for it in section if it[0] == "table")
+    assert ranking[0][:2] == ["rank", "corridor id"]
+    by_rank = table[table["rank"] > 0].sort_values("rank")
+    assert [r[1] for r in ranking[1:]] == list(by_rank.index)
+    assert [int(r[0]) for r in ranking[1:]] == list(by_rank["rank"])
+    assert [r[-1] for r in ranking[1:]] == ["yes" if c else "no" for c in by_rank["chosen"]]
+    # the baseline part of the report is the run's: its own maps are in maps/ as well
+    assert (out / "maps" / "predator_occupancy.png").is_file()
     # the outputs of the contract (SCENARIO.md, "Other commands and their files")
     assert list(table.columns[:4]) == ["source", "target", "length_km", "cost"]
     assert {"rank", "chosen"} <= set(table.columns)
@@ -524,5 +611,18 @@ def test_compare_gives_the_expected_difference_for_a_shared_patch(tmp_path, monk
     assert diff.loc["S", "predator_occupancy_difference"] == 1.0
     assert diff.loc["A", "predator_occupancy_difference"] == 0.0
     assert (out / "maps" / "difference_predator_occupancy_b_minus_a.png").stat().st_size > 0
+    # report.html: both scenarios in words, the caution, the headline table, the maps
+    text = (out / "report.html").read_text(encoding="utf-8")
+    assert CAUTION in text and "5 habitat patches" in text and "6 habitat patches" in text
+    page = _Page(text)
+    headline = next(it[1] for it in page.items if it[0] == "table")
+    assert headline[0][1:] == ["a", "b"]
+    rows = {r[0]: r[1:] for r in headline[1:]}
+    assert rows["predator: the same, weighted by area"] == [
+        f"{table.loc[k, 'predator_area_persistence']:.1%}" for k in ("a", "b")]
+    images = [_png_bytes(it[1]) for it in page.items if it[0] == "img"]
+    assert images == [(out / "maps" / f"difference_{c}_b_minus_a.png").read_bytes()
+                      for c in ("predator_occupancy", "prey_occupancy")]
+    assert "purple where it is higher in b, orange where it is lower" in text
     assert table.loc["b", "predator_area_persistence"] > table.loc["a",
                                                                    "predator_area_persistence"]

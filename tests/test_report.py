@@ -4,10 +4,13 @@ import os
 import shutil
 import subprocess
 
+import geopandas
 import numpy as np
 import pytest
+import shapely
 
 import trophoscape as ts
+from trophoscape.cli import main as cli_main
 from trophoscape.report import CAUTION
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
@@ -34,6 +37,28 @@ def report(tmp_path_factory):
     return folder / "out" / "report.html"
 
 
+@pytest.fixture(scope="module")
+def corridor_report(tmp_path_factory):
+    """``trophoscape corridors`` on the same kind of grid, two candidates, nothing removed."""
+    folder = tmp_path_factory.mktemp("corridor_report")
+    land = grid_landscape(2, 3, spacing_km=1.5, size_km=1.0)
+    land.frame.to_file(folder / "p.gpkg", driver="GPKG", engine="pyogrio")
+    c = land.centroids
+    lines = [shapely.LineString([c[0], c[5]]), shapely.LineString([c[2], c[3]])]
+    geopandas.GeoDataFrame({"corridor_id": ["diagonal", "across"], "cost": [2.0, 1.0]},
+                           geometry=lines, crs=land.crs).to_file(
+        folder / "cand.gpkg", driver="GPKG", engine="pyogrio")
+    (folder / "s.toml").write_text('name = "Corridor report check"\n[patches]\n'
+                                   'path = "p.gpkg"\nid_field = "patch_id"\n'
+                                   "[run]\nduration = 60.0\nburn_in = 10.0\n",
+                                   encoding="utf-8")
+    assert cli_main(["corridors", str(folder / "s.toml"), "--candidates",
+                     str(folder / "cand.gpkg"), "--budget", "2", "--out", str(folder / "out"),
+                     "--remove-links", "none", "--remove-patches", "none", "--workers", "1",
+                     "--quiet"]) == 0
+    return folder / "out" / "report.html"
+
+
 def test_report_is_self_contained_and_cautious(report):
     text = report.read_text(encoding="utf-8")
     assert CAUTION in text
@@ -42,8 +67,21 @@ def test_report_is_self_contained_and_cautious(report):
     assert text.count("data:image/png;base64,") >= 8
 
 
+def test_corridor_report_is_the_run_report_with_a_corridor_section(corridor_report):
+    text = corridor_report.read_text(encoding="utf-8")
+    assert CAUTION in text and "Corridor report check" in text
+    assert "http://" not in text and "https://" not in text
+    head, section = text.split('<h2 id="corridors">Corridor planning</h2>')
+    assert "Headline results" in head and head.count("data:image/png;base64,") >= 8
+    assert section.count("data:image/png;base64,") == 1  # the candidate map (no patch removed)
+    assert "<td>diagonal</td>" in section and "<td>across</td>" in section
+    assert (corridor_report.parent / "corridors.html").is_file()
+
+
 @needs_browser
-def test_report_renders_in_headless_chromium(report, tmp_path):
+@pytest.mark.parametrize("which", ["report", "corridor_report"])
+def test_report_renders_in_headless_chromium(which, request, tmp_path):
+    report = request.getfixturevalue(which)
     shot = tmp_path / "report.png"
     profile = tmp_path / "profile"
     subprocess.run([CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",

@@ -13,7 +13,6 @@ reads those rows back instead of running them again.
 from __future__ import annotations
 
 import argparse
-import base64
 import html
 import math
 import re
@@ -25,14 +24,12 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
+from .report import CAUTION
 
 __all__ = ["add_parser", "run_corridors", "run_compare", "read_link_list",
            "write_corridors", "write_comparison"]
 
 PARTIAL = "corridors.partial.csv"
-CAUTION = ("These results are model projections for comparing options, not predictions of real "
-           "populations. Confirm any decision with field data, and with the assessment and the "
-           "qualified practitioners that local rules require.")
 SYNCHRONY_NOTE = ("Lower synchrony is better for regional survival: patches that fluctuate out "
                   "of step rescue one another, while synchronous ones can crash together. So "
                   "gain_*_synchrony is the fall in synchrony (positive is better).")
@@ -83,7 +80,8 @@ def add_parser(subparsers) -> None:
                    help="exact best set by exhaustive search when at most N candidates are "
                         f"simulated (default {EXHAUSTIVE_LIMIT}; 0 turns it off)")
     p.add_argument("--workers", type=int, default=None, help="processes (default all cores)")
-    p.add_argument("--no-maps", action="store_true", help="skip the PNG maps")
+    p.add_argument("--no-maps", action="store_true",
+                   help="skip the PNG maps and report.html (corridors.html is still written)")
     p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
     p.set_defaults(handler=run_corridors)
 
@@ -265,13 +263,21 @@ def _set_json(result, ids):
     return out
 
 
-def write_corridors(plan, out, *, maps: bool = True) -> Path:
+def write_corridors(plan, out, *, maps: bool = True, baseline=None) -> Path:
     """Write the ``corridors`` output folder (atomically; the partial log is then removed).
 
     Files: ``corridors.csv``, ``critical.csv``, ``chosen.csv``, ``corridors.json``,
     ``corridors.gpkg`` (layers ``candidates``, ``critical_links``, ``critical_patches``),
-    ``evaluations.csv`` (every run), ``corridors.html`` (a report section) and
-    ``maps/corridors_gain_per_cost.png``, ``maps/critical_patches.png``.
+    ``evaluations.csv`` (every run), ``corridors.html`` (the Corridor planning section alone)
+    and, with ``maps``, ``maps/corridors_gain_per_cost.png``, ``maps/critical_patches.png``
+    and ``report.html``: the report of the network as it is (as ``trophoscape run`` writes it,
+    with its maps) followed by the Corridor planning section.
+
+    Parameters
+    ----------
+    baseline : RunResult, optional
+        The run of the network as it is, for ``report.html``; run here when not given (the
+        planner's own baseline run skips the stability and capacity analyses).
     """
     import geopandas
 
@@ -379,89 +385,117 @@ def write_corridors(plan, out, *, maps: bool = True) -> Path:
                     patches, "score_loss", path=stage / "maps" / "critical_patches.png",
                     links=links_frame, title="Patches: score lost if the patch is lost",
                     label="score lost")
-        (stage / "corridors.html").write_text(_corridors_html(plan, summary, table, critical,
-                                                              figures), encoding="utf-8")
+        blocks = corridor_blocks(plan, summary, table, critical, figures)
+        (stage / "corridors.html").write_text(_corridors_page(blocks, summary),
+                                              encoding="utf-8")
+        if maps:
+            from .report import add_section, write_report
+
+            if baseline is None:
+                from .study import run_study
+
+                baseline = run_study(study)
+            report = write_report(stage, baseline)
+            add_section(report, "Corridor planning", blocks=blocks, anchor="corridors")
     (out / PARTIAL).unlink(missing_ok=True)
     return out
 
 
-def _image(path) -> str:
-    data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
-    return f'<img alt="" style="max-width:100%" src="data:image/png;base64,{data}">'
+RANK_ROWS = 20  # rows of each table in the report; the CSV files hold every row
 
 
-def _fmt(v) -> str:
-    if isinstance(v, (bool, np.bool_)):
-        return "yes" if v else "no"
-    if isinstance(v, (float, np.floating)):
-        return "–" if not math.isfinite(v) else f"{v:.4g}"
-    return html.escape(str(v))
+def corridor_blocks(plan, summary, table, critical, figures) -> list:
+    """The Corridor planning section as report blocks (:func:`trophoscape.report.add_section`):
+    what was done, the chosen set and the greedy–exhaustive gap, the ranking table, the two
+    maps with a sentence each on how to read them, the critical elements."""
+    from .analysis.planning import OBJECTIVES
+    from .report import Html, figures_html, table_html
 
-
-def _html_table(frame, columns, n=10) -> str:
-    head = "".join(f"<th>{html.escape(c)}</th>" for c in columns)
-    body = "".join("<tr>" + "".join(f"<td>{_fmt(row[c])}</td>" for c in columns) + "</tr>"
-                   for _, row in frame.head(n).iterrows())
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
-
-
-def _corridors_html(plan, summary, table, critical, figures) -> str:
-    weights = ", ".join(f"{html.escape(k)} × {v:g}" for k, v in summary["weights"].items())
+    weights = ", ".join(f"{k} × {v:g}" for k, v in summary["weights"].items())
     ranked = table.reset_index().sort_values("rank")
     ranked = ranked[ranked["rank"] > 0]
-    parts = ["<section id=\"corridors\">", "<h2>Corridor planning</h2>",
-             f"<p>{len(table)} candidate corridors, budget {plan['budget']:g}. Each candidate "
-             "was added alone to the network and the run repeated; the gains are changes "
-             "against the network as it is, positive when good for the species. The score "
-             f"weighs them: {weights} (capacity as its relative change).</p>",
-             f"<p>{html.escape(SYNCHRONY_NOTE)}</p>"]
+    blocks = [
+        f"{len(table)} candidate corridors, budget {plan['budget']:g}. Each candidate was added "
+        "alone to the network and the run repeated; the gains are changes against the network "
+        "as it is, positive when good for the species. The score weighs "
+        f"them: {weights} (capacity as its relative change).",
+        SYNCHRONY_NOTE,
+    ]
     greedy, exhaustive, gap = plan["greedy"], plan["exhaustive"], plan["gap"]
 
-    def names(which):
-        return ", ".join(summary["greedy" if which is greedy else "exhaustive"]["chosen"]) \
-            or "none"
+    def names(key):
+        return ", ".join(summary[key]["chosen"]) or "none"
 
-    parts.append(f"<p>Greedy set (best score gained per cost, re-evaluated after each "
-                 f"addition): {html.escape(names(greedy))}, cost {greedy['cost']:g}, score "
-                 f"{greedy['score']:.4g}.</p>")
+    blocks.append(f"Greedy set (best score gained per cost, re-evaluated after each addition): "
+                  f"{names('greedy')}, cost {greedy['cost']:g}, score {greedy['score']:.4g}.")
     if exhaustive is not None:
         if gap["same_set"] or gap["absolute"] <= 1e-9:
             verdict = "Greedy found the best set."
         else:
             verdict = (f"Greedy falls short of the best set by {gap['absolute']:.4g} in score "
                        f"({gap['relative']:.1%} of the best).")
-        parts.append(f"<p>Best set by exhaustive search over the {exhaustive['subsets']} "
-                     f"subsets within budget: {html.escape(names(exhaustive))}, cost "
-                     f"{exhaustive['cost']:g}, score {exhaustive['score']:.4g}. "
-                     f"{verdict}</p>")
+        blocks.append(f"Best set by exhaustive search over the {exhaustive['subsets']} subsets "
+                      f"within budget: {names('exhaustive')}, cost {exhaustive['cost']:g}, "
+                      f"score {exhaustive['score']:.4g}. {verdict}")
     else:
-        parts.append("<p>No exhaustive search (too many candidates); the greedy set is "
-                     "reported as chosen and may fall short of the best set.</p>")
+        blocks.append("No exhaustive search (too many candidates); the greedy set is reported "
+                      "as chosen and may fall short of the best set.")
     if plan["screened"] is not None:
-        parts.append(f"<p>Two-stage screening: only the {len(plan['screened'])} candidates with "
-                     "the largest gain in metapopulation capacity per cost were simulated.</p>")
-    parts.append("<h3>Candidates, best first</h3>")
-    parts.append(_html_table(ranked, ["rank", "corridor_id", "source", "target", "cost",
-                                      "gain_predator_area_persistence",
-                                      "gain_predator_capacity", "gain_predator_synchrony",
-                                      "score", "score_per_cost", "chosen"]))
+        blocks.append(f"Two-stage screening: only the {len(plan['screened'])} candidates with the "
+                      "largest gain in metapopulation capacity per cost were simulated.")
+    chosen = ", ".join(summary["chosen"]) or "none"
+    blocks.append(Html(f"<p><strong>Chosen set ({summary['chosen_by']}):</strong> "
+                       f"{html.escape(chosen)}, cost {summary['chosen_cost']:g} of the budget "
+                       f"{plan['budget']:g}.</p>"))
+    gains = ["gain_predator_area_persistence", "gain_predator_capacity",
+             "gain_predator_synchrony"]
+    gains += [f"gain_{k}" for k in summary["weights"] if f"gain_{k}" not in gains
+              and k in OBJECTIVES]
+    shown = f"the first {RANK_ROWS} of {len(ranked)}; " if len(ranked) > RANK_ROWS else ""
+    blocks.append(Html("<h3>Candidates, best first</h3>"))
+    blocks.append(table_html(
+        ranked, ["rank", "corridor_id", "source", "target", "cost", *gains, "score",
+                 "score_per_cost", "chosen"], n=RANK_ROWS,
+        caption=f"Ranked by score ({shown}corridors.csv has every candidate and objective). "
+                "A gain of 0 means the candidate changes nothing that objective measures."))
     if "gain" in figures:
-        parts.append(_image(figures["gain"]))
-        parts.append("<p>Each candidate is coloured by the score it adds per unit cost; the "
-                     "chosen set has a dark casing; grey lines are existing links.</p>")
+        blocks.append(figures_html([(
+            "Candidate corridors: score gained per unit cost", figures["gain"],
+            "Each candidate line is coloured by the score it adds per unit cost (brighter is "
+            "better value); the chosen set has a dark casing; thin grey lines are the existing "
+            "links.")]))
     if len(critical):
-        parts.append("<h3>Critical elements</h3><p>Each existing link and patch removed alone; "
-                     "the loss is what the score falls by without it.</p>")
-        for kind in ("link", "patch"):
+        blocks.append(Html("<h3>Critical elements</h3>"))
+        blocks.append("Each existing link and patch removed alone and the run repeated; the "
+                      "loss is what the score falls by without it, so the top rows are the "
+                      "ones to protect first.")
+        for kind, what in (("link", "Links"), ("patch", "Patches")):
             rows = critical[critical["kind"] == kind]
             if len(rows):
-                parts.append(_html_table(rows, ["rank", "element", "loss_predator_area_persistence",
-                                                "loss_predator_capacity", "score_loss"]))
+                blocks.append(table_html(
+                    rows, ["rank", "element", "loss_predator_area_persistence",
+                           "loss_predator_capacity", "score_loss"], n=RANK_ROWS,
+                    caption=f"{what}, most critical first (critical.csv has every row)."))
         if "patches" in figures:
-            parts.append(_image(figures["patches"]))
-    parts.append(f"<p><strong>Caution.</strong> {html.escape(CAUTION)}</p>")
-    parts.append("</section>")
-    return "\n".join(parts) + "\n"
+            blocks.append(figures_html([(
+                "Patches: score lost if the patch is lost", figures["patches"],
+                "Each patch coloured by how much the score falls when that patch alone is "
+                "lost (brighter is a larger loss): the brightest are the patches the network "
+                "can least spare.")]))
+    return blocks
+
+
+def _corridors_page(blocks, summary) -> str:
+    """``corridors.html``: the Corridor planning section on its own page, with the caution."""
+    from .report import Html, footer_text, page_html, section_html
+
+    study_name = summary["provenance"].get("scenario_file") or "scenario"
+    caution = Html(f'<p class="caution"><strong>Caution.</strong> {html.escape(CAUTION)}</p>')
+    body = section_html("Corridor planning", blocks=[caution, *blocks], anchor="corridors")
+    body += ("<p>The same section, after the network as it is (scenario, headline results and "
+             'maps), is in <a href="report.html">report.html</a> when the maps were drawn.</p>')
+    return page_html(f"Corridor planning: {Path(study_name).stem}", body,
+                     footer_text(summary["provenance"]))
 
 
 def _print_plan(plan, out) -> None:
@@ -514,8 +548,9 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
 
     Files: ``comparison.csv`` (one row per scenario), ``differences_<B>_minus_<A>.csv`` per
     scenario after the first (the reference A), ``maps/difference_<column>_<B>_minus_<A>.png``
-    (diverging colours centred on 0), and ``runs/<name>/`` (each scenario's own output
-    folder, with its maps and report) unless ``runs`` is False.
+    (diverging colours centred on 0), ``report.html`` (the scenarios in plain words, the
+    headline results side by side, the difference maps; with ``maps``), and ``runs/<name>/``
+    (each scenario's own output folder, with its maps and report) unless ``runs`` is False.
     """
     from .analysis.planning import compare_results, patch_differences
     from .outputs import staged_folder, write_run, write_json
@@ -528,6 +563,7 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
             s += "-2"
         slugs.append(s)
     diffs = [patch_differences(results[0], r, columns) for r in results[1:]]
+    drawn = []
     with staged_folder(out) as stage:
         table.to_csv(stage / "comparison.csv", index=True)
         write_json(stage / "comparison.json", {
@@ -546,12 +582,19 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
                 frame = frame[["geometry"]].reset_index()
                 for c in columns:
                     frame[c] = diff[f"{c}_difference"].to_numpy()
-                    patch_map(frame.set_geometry("geometry"), c,
-                              path=stage / "maps" / f"difference_{c}_{stem}.png",
-                              diverging=True,
-                              title=f"{c}: {table.index[k]} − {table.index[0]}",
-                              label=f"difference in {c} (other − reference)")
+                    path = patch_map(frame.set_geometry("geometry"), c,
+                                     path=stage / "maps" / f"difference_{c}_{stem}.png",
+                                     diverging=True,
+                                     title=f"{c.replace('_', ' ')}: {table.index[k]} − "
+                                           f"{table.index[0]}",
+                                     label=f"difference in {c} (other − reference)")
+                    drawn.append((c, table.index[k], path))
         if runs:
             for slug, r in zip(slugs, results):
                 write_run(r, stage / "runs" / slug, maps=maps)
+        if maps:
+            from .report import write_comparison_report
+
+            write_comparison_report(stage, results, table, drawn,
+                                    runs=[f"runs/{s}" for s in slugs] if runs else None)
     return Path(out)

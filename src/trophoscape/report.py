@@ -13,9 +13,12 @@ import math
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
+
 from .system import SPECIES
 
-__all__ = ["write_figures_and_report", "add_section", "CAUTION"]
+__all__ = ["write_figures_and_report", "write_report", "write_comparison_report",
+           "add_section", "Html", "table_html", "CAUTION"]
 
 CAUTION = (
     "These results are model projections for comparing options, not predictions of real "
@@ -144,25 +147,108 @@ def write_figures_and_report(folder, result, gdf, links, summary) -> None:
     (folder / "report.html").write_text(_html(result, summary, sections), encoding="utf-8")
 
 
+def write_report(folder, result) -> Path:
+    """The maps and ``report.html`` of a run, without the run's data files.
+
+    For commands whose folder is about something else but whose report opens with the
+    network as it is (``corridors``): the same figures and page as :func:`write_figures_and_report`
+    called by :func:`trophoscape.outputs.write_run`.
+    """
+    from .outputs import patches_frame, provenance
+
+    folder = Path(folder)
+    gdf = patches_frame(result)
+    links = result.study.network.links_frame(result.study.landscape)
+    summary = dict(result.summary)
+    summary["provenance"] = provenance(result.study)
+    write_figures_and_report(folder, result, gdf, links, summary)
+    return folder / "report.html"
+
+
+class Html(str):
+    """A piece of HTML that is already safe to insert (not escaped again)."""
+
+
+def _block(part) -> str:
+    """A block of a section: :class:`Html` as it is, any other text as an escaped paragraph."""
+    return part if isinstance(part, Html) else f"<p>{html.escape(str(part))}</p>"
+
+
+def _cell(value) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, (bool, np.bool_)):
+        return "yes" if value else "no"
+    if isinstance(value, (float, np.floating)):
+        if not math.isfinite(value):
+            return "–"
+        return "0" if value == 0 else f"{value:.4g}"  # no "-0"
+    return html.escape(str(value))
+
+
+def table_html(frame, columns=None, *, n=None, labels=None, caption=None) -> Html:
+    """A table of the first ``n`` rows of ``frame`` (all by default).
+
+    ``labels`` maps a column to its header (default: the column name with spaces for
+    underscores); the column name itself stays in the header's tooltip, so a reader can find
+    it in the CSV.
+    """
+    columns = list(frame.columns if columns is None else columns)
+    labels = labels or {}
+    head = "".join(f'<th title="{html.escape(c)}">'
+                   f"{html.escape(labels.get(c, c.replace('_', ' ')))}</th>" for c in columns)
+    rows = frame if n is None else frame.head(n)
+    body = "".join("<tr>" + "".join(f"<td>{_cell(row[c])}</td>" for c in columns) + "</tr>"
+                   for _, row in rows.iterrows())
+    cap = f"<caption>{html.escape(caption)}</caption>" if caption else ""
+    return Html(f'<div class="wide"><table class="data">{cap}<thead><tr>{head}</tr></thead>'
+                f"<tbody>{body}</tbody></table></div>")
+
+
 def _figures_html(figures) -> str:
     esc = html.escape
     return "\n".join(f"<figure>{_img(p)}<figcaption><strong>{esc(t)}.</strong> {esc(r)}"
                      "</figcaption></figure>" for t, p, r in figures)
 
 
-def add_section(report: Path, name: str, figures, *, intro: str = "") -> None:
-    """Insert a section (heading, a paragraph, figures with a reading guide each) into a
-    written report, before its closing provenance line; used by commands that add their own
-    results to a run's report (``spread``)."""
+def figures_html(figures) -> Html:
+    """Figures ``(title, png path, how to read it)`` as a block of a section."""
+    return Html(_figures_html(figures))
+
+
+def add_section(report: Path, name: str, figures=(), *, intro: str = "", blocks=(),
+                anchor: str | None = None) -> None:
+    """Insert a section into a written report, before its closing provenance line.
+
+    The section is a heading, an ``intro`` paragraph, then ``blocks`` in order (plain text
+    becomes a paragraph; :class:`Html` from :func:`table_html`, :func:`figures_html` is
+    inserted as it is), then ``figures`` (``(title, png path, how to read it)``). Used by
+    commands that add their own results to a run's report (``spread``, ``corridors``).
+    """
     report = Path(report)
     text = report.read_text(encoding="utf-8")
-    block = (f"<h2>{html.escape(name)}</h2>\n"
-             + (f"<p>{html.escape(intro)}</p>\n" if intro else "")
-             + _figures_html(figures) + "\n")
+    text = insert_section(text, section_html(name, figures, intro=intro, blocks=blocks,
+                                             anchor=anchor))
+    report.write_text(text, encoding="utf-8")
+
+
+def section_html(name: str, figures=(), *, intro: str = "", blocks=(),
+                 anchor: str | None = None) -> Html:
+    """The HTML of one section, as :func:`add_section` inserts it."""
+    ident = f' id="{html.escape(anchor)}"' if anchor else ""
+    parts = [f"<h2{ident}>{html.escape(name)}</h2>"]
+    if intro:
+        parts.append(_block(intro))
+    parts += [_block(b) for b in blocks]
+    if figures:
+        parts.append(_figures_html(figures))
+    return Html("\n".join(parts) + "\n")
+
+
+def insert_section(text: str, block: str) -> str:
     marker = "<p><small>Run "
     at = text.rfind(marker)
-    text = text[:at] + block + text[at:] if at >= 0 else text + block
-    report.write_text(text, encoding="utf-8")
+    return text[:at] + block + text[at:] if at >= 0 else text + block
 
 
 def _img(path: Path) -> str:
@@ -225,35 +311,117 @@ def _headline_rows(summary):
     return rows
 
 
+STYLE = """
+body { font-family: sans-serif; max-width: 1120px; margin: 2em auto; color: #222;
+       line-height: 1.4; }
+.caution { border-left: 4px solid #b35806; background: #fdf3e7; padding: .6em 1em; }
+table { border-collapse: collapse; } th, td { text-align: left; padding: .2em .8em; }
+th { font-weight: normal; color: #555; }
+.wide { overflow-x: auto; margin: .5em 0; }
+table.data { font-size: .9em; } table.data td, table.data th { padding: .2em .6em; }
+table.data thead th { border-bottom: 1px solid #999; color: #333; vertical-align: bottom; }
+table.data tbody tr:nth-child(even) { background: #f4f4f4; }
+table.data caption { text-align: left; color: #444; padding-bottom: .3em; }
+figure { display: inline-block; margin: .5em; width: 530px; vertical-align: top; }
+figure img { max-width: 100%; } figcaption { font-size: .9em; color: #444; }
+"""
+
+
+def page_html(title: str, body: str, footer: str) -> str:
+    """A whole self-contained page: ``body`` is HTML; ``footer`` the provenance line's text
+    (it starts with "Run ", which :func:`add_section` inserts before)."""
+    esc = html.escape
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8">
+<title>{esc(title)} — trophoscape report</title>
+<style>{STYLE}</style></head><body>
+{body}
+<p><small>{esc(footer)}</small></p>
+</body></html>
+"""
+
+
+def footer_text(prov) -> str:
+    """The provenance line of a report from a run's ``provenance`` dict."""
+    return (f"Run {prov['created']} with trophoscape {prov['version']}; scenario sha256 "
+            f"{prov['scenario_sha256'][:12]}…; seed {prov['seed']}.")
+
+
 def _html(result, summary, sections) -> str:
     sc = result.study.scenario
     esc = html.escape
     table = "\n".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>"
                       for k, v in _headline_rows(summary))
-    body = []
+    body = [f"<h1>{esc(sc.name)}</h1>",
+            f"<p>{esc(_scenario_words(result))}</p>",
+            f'<p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>',
+            "<h2>Headline results</h2>", f"<table>{table}</table>"]
     for name, figures in sections.items():
         body.append(f"<h2>{esc(name)}</h2>")
         body.append(_figures_html(figures))
-    prov = summary["provenance"]
-    return f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8">
-<title>{esc(sc.name)} — trophoscape report</title>
-<style>
-body {{ font-family: sans-serif; max-width: 1120px; margin: 2em auto; color: #222;
-        line-height: 1.4; }}
-.caution {{ border-left: 4px solid #b35806; background: #fdf3e7; padding: .6em 1em; }}
-table {{ border-collapse: collapse; }} th, td {{ text-align: left; padding: .2em .8em; }}
-th {{ font-weight: normal; color: #555; }}
-figure {{ display: inline-block; margin: .5em; width: 530px; vertical-align: top; }}
-figure img {{ max-width: 100%; }} figcaption {{ font-size: .9em; color: #444; }}
-</style></head><body>
-<h1>{esc(sc.name)}</h1>
-<p>{esc(_scenario_words(result))}</p>
-<p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>
-<h2>Headline results</h2>
-<table>{table}</table>
-{''.join(body)}
-<p><small>Run {esc(prov['created'])} with trophoscape {esc(prov['version'])}; scenario sha256
-{esc(prov['scenario_sha256'][:12])}…; seed {esc(str(prov['seed']))}.</small></p>
-</body></html>
-"""
+    return page_html(sc.name, "\n".join(body), footer_text(summary["provenance"]))
+
+
+def write_comparison_report(folder, results, table, maps, *, names=None, runs=None) -> Path:
+    """``folder/report.html`` of ``compare``: each scenario in plain words, the caution, the
+    headline results side by side, the difference maps, links to each scenario's report.
+
+    Parameters
+    ----------
+    results : sequence of RunResult
+        The first is the reference.
+    table : pandas.DataFrame
+        :func:`trophoscape.analysis.planning.compare_results` of ``results``.
+    maps : sequence of (column, other name, png path)
+        Difference maps, other − reference.
+    runs : sequence of str, optional
+        Each scenario's own folder, relative to ``folder`` (linked when it has a report).
+    """
+    from . import __version__
+    import datetime as _dt
+
+    folder = Path(folder)
+    esc = html.escape
+    names = list(table.index if names is None else names)
+    ref = names[0]
+    body = [f"<h1>Comparison of {len(results)} scenarios</h1>",
+            f"<p>Each scenario was run as it is. Differences are the other scenario minus the "
+            f"reference, <strong>{esc(ref)}</strong>, patch by patch for the patches both share "
+            "by id.</p><ul>"]
+    for k, (name, r) in enumerate(zip(names, results)):
+        link = ""
+        if runs is not None and (folder / runs[k] / "report.html").is_file():
+            link = f' (<a href="{esc(runs[k])}/report.html">its own report</a>)'
+        body.append(f"<li><strong>{esc(name)}</strong>{link}: {esc(_scenario_words(r))}</li>")
+    body.append("</ul>")
+    body.append(f'<p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>')
+    rows: dict = {}
+    for r in results:
+        for label, _ in _headline_rows(r.summary):
+            rows.setdefault(label, None)
+    cells = [dict(_headline_rows(r.summary)) for r in results]
+    head = "".join(f"<th>{esc(n)}</th>" for n in names)
+    lines = "".join(f"<tr><th>{esc(label)}</th>"
+                    + "".join(f"<td>{esc(c.get(label, '–'))}</td>" for c in cells) + "</tr>"
+                    for label in rows)
+    body += ["<h2>Headline results side by side</h2>",
+             "<p>One column per scenario; comparison.csv holds every network-level figure.</p>",
+             f'<div class="wide"><table class="data"><thead><tr><th></th>{head}</tr></thead>'
+             f"<tbody>{lines}</tbody></table></div>"]
+    if maps:
+        body.append("<h2>Differences, patch by patch</h2>")
+        figures = []
+        for column, other, path in maps:
+            what = column.replace("_", " ")
+            figures.append((f"{what}: {other} − {ref}", path,
+                            f"Each shared patch coloured by its {what} in {other} minus in "
+                            f"{ref}: purple where it is higher in {other}, orange where it is "
+                            "lower, white where the two agree; patches found in only one "
+                            "scenario are left out."))
+        body.append(_figures_html(figures))
+    created = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    footer = f"Run {created} with trophoscape {__version__}; {len(results)} scenarios."
+    path = folder / "report.html"
+    path.write_text(page_html(f"Comparison: {', '.join(names)}", "\n".join(body), footer),
+                    encoding="utf-8")
+    return path
