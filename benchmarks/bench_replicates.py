@@ -9,8 +9,8 @@ Case 2: a 4 × 5 grid of 20 patches (``benchmarks/common.py`` model), the same n
 Each case times :func:`trophoscape.study.simulate_replicates` only (no analyses) as CPU
 seconds of this process, stacked and one by one, and reports the ratio. It also times the
 per-interval cost of the noise itself: drawing the field and rebuilding the system's
-parameters (``NoiseRun.interval``: a new ``LocalModel`` and ``dataclasses.replace`` of the
-``CoupledSystem``, whose constructor rebuilds the block-diagonal movement operator).
+parameters (``NoiseRun.interval``: a new ``LocalModel`` swapped into the ``CoupledSystem``
+with ``with_model``, which shares the movement operators instead of rebuilding them).
 
     OPENBLAS_NUM_THREADS=1 PYTHONPATH=src python benchmarks/bench_replicates.py
 """

@@ -129,6 +129,10 @@ def test_demo_timeseries(demo, demo_inputs):
             assert ds[s].dims == ("time", "patch")
             assert "units" in ds[s].attrs
             assert np.all(np.isfinite(ds[s].values)) and np.all(ds[s].values >= 0)
+            # stored as float32 in compressed chunks (netCDF-4 / HDF5 chunked storage)
+            assert ds[s].dtype == np.float32
+            chunks = ds[s].encoding["chunksizes"]
+            assert chunks is not None and all(1 <= c <= d for c, d in zip(chunks, ds[s].shape))
         # coordinate patch = the ids of the input file, in the file's order
         assert [str(p) for p in ds["patch"].values] == ids
         time = ds["time"].values

@@ -97,5 +97,5 @@ def test_failed_solve_is_a_run_error(grid_file):
     # explosive exponential growth with no predator overflows: a RunError, not a traceback
     sc = scenario(grid_file, prey={"growth": "exponential", "growth_rate": 400.0},
                   predator={"initial_density": 0.0}, run={"duration": 20.0})
-    with pytest.raises(ts.RunError, match="the state became non-finite|failed"):
+    with pytest.raises(ts.RunError, match="non-finite|failed|explosive growth"):
         ts.run_study(ts.build_study(sc))

@@ -119,3 +119,41 @@ def test_census_restarts_are_cheap(rng):
     assert free.stats.restarts == 0
     assert sink.stats.restarts >= 190
     assert sink.stats.nfev <= free.stats.nfev + 8 * sink.stats.restarts
+
+
+def test_with_model_shares_the_network_and_gives_the_rebuilt_rhs(rng):
+    # swapping the local model (as noise and shocks do each interval) must not rebuild the
+    # movement operator, and must give the same dy/dt as a system built from scratch
+    n = 12
+    model = make_model(n=n, capacity=60.0, attack_rate=0.3)
+    link = random_operator(rng, n, 0.1, density=0.5)
+    system = make_system(model, area=rng.uniform(0.5, 2.0, n), prey_movement=link,
+                         predator_movement=link * 0.5)
+    params = dict(model.params, growth_rate=model.params["growth_rate"] * rng.uniform(0.5, 2, n))
+    other = type(model)(growth=model.growth, response=model.response, params=params)
+    swapped = system.with_model(other)
+    assert swapped.movement is system.movement
+    assert swapped.model is other and system.model is model
+    rebuilt = make_system(other, area=system.area_km2, prey_movement=link,
+                          predator_movement=link * 0.5)
+    y = rng.uniform(0.0, 50.0, 2 * n)
+    np.testing.assert_array_equal(swapped.rhs_function()(0.0, y), rebuilt.rhs_function()(0.0, y))
+    with pytest.raises(ValueError, match="shape"):
+        system.with_model(make_model(n=n + 1))
+
+
+def test_float32_storage_records_the_float64_run_rounded(rng):
+    # the state is integrated in float64 whatever the storage type: a float32 record is the
+    # float64 record rounded once (IEEE 754 round to nearest), not a float32 integration
+    n = 8
+    model = make_model(n=n, capacity=80.0, attack_rate=0.5, handling_time=0.3)
+    link = random_operator(rng, n, 0.2, density=0.5)
+    system = make_system(model, area=np.full(n, 2.0), prey_movement=link, predator_movement=link)
+    y0 = np.concatenate([rng.uniform(20, 80, n), rng.uniform(1, 5, n)])
+    runs = {dt: simulate(system, y0, duration=30.0, census_interval=0.5, dtype=dt)
+            for dt in (np.float64, np.float32)}
+    for species in ("prey", "predator"):
+        wide, narrow = runs[np.float64][species].values, runs[np.float32][species].values
+        assert narrow.dtype == np.float32 and narrow.flags.c_contiguous
+        np.testing.assert_array_equal(narrow, wide.astype(np.float32))
+    assert runs[np.float32].stats == runs[np.float64].stats

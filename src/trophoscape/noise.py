@@ -376,7 +376,7 @@ class NoiseRun:
             params[name] = np.asarray(params[name]) * factor
         model = system.model
         new = LocalModel(growth=model.growth, response=model.response, params=params)
-        return dataclasses.replace(system, model=new)
+        return system.with_model(new)
 
 
 # --------------------------------------------------------------------------- stacking

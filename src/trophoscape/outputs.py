@@ -115,9 +115,10 @@ def write_timeseries(path, result):
     from . import __version__
 
     sc = result.study.scenario
-    ds = result.trajectory.data.copy()
+    ds = result.trajectory.data.copy()  # shallow: the series are not copied
     for s in SPECIES:
-        ds[s] = ds[s].astype("float32")
+        if ds[s].dtype != np.float32:
+            ds[s] = ds[s].astype("float32")
         ds[s].attrs.update(units="1", long_name=f"{s} abundance (individuals)")
     ds["patch"] = ds["patch"].astype(str)
     ds["area_km2"] = ("patch", result.study.landscape.area_km2,
@@ -130,7 +131,11 @@ def write_timeseries(path, result):
         scenario=sc.text,
         time_unit=sc["time_unit"],
     )
-    encoding = {s: {"zlib": True, "complevel": 4} for s in SPECIES}
+    # chunks of about 1 MB: one time slice or one patch's whole series reads few of them
+    shape = ds[SPECIES[0]].shape
+    chunks = tuple(max(1, int(min(size, limit))) for size, limit in
+                   zip(shape, (64, 4096, 16)[:len(shape)]))
+    encoding = {s: {"zlib": True, "complevel": 4, "chunksizes": chunks} for s in SPECIES}
     ds.to_netcdf(path, engine="h5netcdf", encoding=encoding)
 
 

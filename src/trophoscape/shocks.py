@@ -5,7 +5,7 @@ link cut) is a small frozen object holding *resolved* patch positions. It turns 
 more :class:`events <StateScale>`; each event has a ``time`` and an
 ``apply(system, y) -> (system, y)`` method, which :func:`trophoscape.simulate.simulate`
 calls at that time before integrating on with the returned system. Events only rebuild what
-they change (``dataclasses.replace`` of the :class:`~trophoscape.system.CoupledSystem` with a
+they change (``CoupledSystem.with_model`` or ``dataclasses.replace`` of the :class:`~trophoscape.system.CoupledSystem` with a
 new :class:`~trophoscape.dynamics.LocalModel` or new movement operators), so applying one is
 cheap.
 
@@ -127,7 +127,7 @@ class ParameterShift:
             value[self.index] = np.maximum(value[self.index], 0.0)
         params[self.name] = value
         new = LocalModel(growth=model.growth, response=model.response, params=params)
-        return dataclasses.replace(system, model=new), y
+        return system.with_model(new), y
 
 
 @dataclass(frozen=True, eq=False)

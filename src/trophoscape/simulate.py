@@ -129,6 +129,7 @@ def simulate(
     progress: bool = False,
     events=(),
     noise=None,
+    dtype=np.float64,
 ) -> Trajectory:
     """Integrate ``system`` from ``y0`` with census steps every ``census_interval``.
 
@@ -164,6 +165,12 @@ def simulate(
         With demographic noise the run is event-based instead (whole individuals,
         :func:`trophoscape.noise.simulate_events`); ``method``, ``rtol`` and ``atol`` do not
         apply.
+    dtype : numpy dtype
+        Storage type of the recorded census states. The state is always integrated in
+        float64; ``numpy.float32`` halves the memory of the time series (as written to
+        ``timeseries.nc``), which is what :func:`trophoscape.study.run_study` uses. Each
+        species' series is one contiguous ``(time, patch)`` block, so it is written to a
+        file without another copy.
 
     Returns
     -------
@@ -185,9 +192,11 @@ def simulate(
     solver_cls = METHODS[method]
     n = system.n_patches
     times = census_times(float(duration), float(census_interval))
-    record = np.empty((times.size, 2 * n))
+    # (species, time, patch): each species' series contiguous, held once
+    record = np.empty((2, times.size, n), dtype=dtype)
+    limit = float(np.finfo(dtype).max)
     y, _ = _census(np.asarray(y0, dtype=float).copy(), extinction_abundance)
-    record[0] = y
+    record[:, 0] = y.reshape(2, n)
 
     noisy = noise is not None
     if noisy:
@@ -285,7 +294,13 @@ def simulate(
                     dense = dense or solver.dense_output()
                     y_k = dense(times[k])
                 y_k, changed = _census(y_k, extinction_abundance)
-                record[k] = y_k
+                if np.abs(y_k).max(initial=0.0) > limit:
+                    harvest(solver)
+                    raise RunError(
+                        f"abundances passed {limit:.3g} individuals at time {times[k]:.6g}, "
+                        f"more than the time series can store ({np.dtype(dtype).name}); check "
+                        "for explosive growth (e.g. exponential prey with no predator)")
+                record[:, k] = y_k.reshape(2, n)
                 k += 1
                 bar.update(1)
                 if noisy and k < times.size:
@@ -317,7 +332,7 @@ def simulate(
     ids = np.asarray([str(i) for i in range(n)] if ids is None else ids, dtype=object)
     data = xr.Dataset(
         {
-            name: (("time", "patch"), record[:, s * n:(s + 1) * n],
+            name: (("time", "patch"), record[s],
                    {"units": "individuals", "long_name": f"{name} abundance"})
             for s, name in enumerate(SPECIES)
         },

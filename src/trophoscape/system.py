@@ -19,6 +19,7 @@ user's patch order; only :meth:`CoupledSystem.rhs_function` with ``internal=True
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -262,6 +263,22 @@ class CoupledSystem:
         if perm.shape != (n,) or not np.array_equal(np.sort(perm), np.arange(n)):
             raise ValueError(f"order must be a permutation of 0..{n - 1}")
         return None if np.array_equal(perm, np.arange(n)) else perm
+
+    def with_model(self, model: LocalModel) -> "CoupledSystem":
+        """The same network with other local dynamics (e.g. noisy or shocked rates).
+
+        Areas, movement operators and the internal order are shared with this system, not
+        rebuilt: ``dataclasses.replace`` would assemble the block-diagonal operator again,
+        which on a stack of replicates costs more than the RHS evaluations of a census
+        interval (benchmarks/README.md). ``model`` must have per-patch parameters of the
+        same length.
+        """
+        for key, value in model.params.items():
+            if np.ndim(value) and np.shape(value) != (self.n_patches,):
+                raise ValueError(f"parameter {key!r} must have shape ({self.n_patches},)")
+        new = copy.copy(self)
+        object.__setattr__(new, "model", model)
+        return new
 
     @property
     def reordered(self) -> bool:
