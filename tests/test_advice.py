@@ -35,6 +35,12 @@ def test_warnings_name_what_they_found(tmp_path):
     notes = practical_warnings(study)
     text = " | ".join(notes)
     assert "1 patch(es) have no link (5)" in text
+    # the advice names the distance that would link it: its nearest boundary-to-boundary gap,
+    # found here by brute force with shapely.distance (the outside reference)
+    geoms = study.landscape.geometries
+    gap = min(shapely.distance(geoms[5], g) for g in geoms[:5]) / 1000.0
+    assert f"set [dispersal] max_distance_km above {gap:.3g} km" in text
+    assert "raise prey.kernel_scale_km towards" in text
     assert "6 patch(es) hold fewer than 1 prey even at carrying capacity" in text
     assert "the prey kernel scale (0.1 km) is far below the typical gap" in text
     assert "the census interval (2 year) is coarse" in text

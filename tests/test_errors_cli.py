@@ -151,8 +151,9 @@ def _scale_attribute(feats):
 
 LINKS = {"kernel": "none", "links": "l.csv"}
 CORRIDORS = {"corridors": "c.geojson"}
-POLYGON_OPTIONS = "expected a Polygon or MultiPolygon"
-QUALITY_RULE = "expected a finite number >= 0 (named by patches.quality_field)"
+POLYGON_OPTIONS = "expected a Polygon or MultiPolygon: fix the feature or remove it"
+QUALITY_RULE = "give a number of at least 0 (named by patches.quality_field)"
+TOML_ADVICE = "; correct the file there (text values need quotes, sections [brackets])"
 UNREADABLE = "cannot be read as a GeoJSON (.geojson), GeoPackage (.gpkg) or Shapefile (.shp)"
 LINKS_COLUMNS = "columns source,target,weight[,survival][,directed]"
 
@@ -160,11 +161,11 @@ CASES = [
     # ---------------------------------------------------------------- the scenario file
     Case("toml-syntax",
          "error: s.toml: not valid TOML: Expected '=' after a key in a key/value pair "
-         "(at line 12, column 6)",
+         "(at line 12, column 6)" + TOML_ADVICE,
          {"s.toml": scenario() + "seed 2\n"}),
     Case("toml-bad-number",
          "error: s.toml: not valid TOML: Expected newline or end of document after a "
-         "statement (at line 9, column 15)",
+         "statement (at line 9, column 15)" + TOML_ADVICE,
          {"s.toml": scenario().replace("duration = 2.0", "duration = 2.0.1")}),
     Case("unknown-section",
          "error: s.toml: field 'preditor': unknown section or top-level key; "
@@ -178,46 +179,52 @@ CASES = [
          "census_interval, extinction_abundance, method, rtol, atol, seed, replicates",
          {"s.toml": scenario(run={"zzz": 1})}),
     Case("wrong-type",
-         "error: s.toml: field 'prey.growth_rate': must be a number, got 'fast'",
+         "error: s.toml: field 'prey.growth_rate': 'fast' is not a number; give a number of "
+         "at least 0",
          {"s.toml": scenario(prey={"growth_rate": "fast"})}),
     Case("out-of-range",
-         "error: s.toml: field 'dispersal.survival_per_km': must be <= 1, got 1.5",
+         "error: s.toml: field 'dispersal.survival_per_km': 1.5 is out of range; give a "
+         "number from 0 to 1",
          {"s.toml": scenario(dispersal={"survival_per_km": 1.5})}),
     Case("bad-choice",
-         "error: s.toml: field 'predation.response': must be one of 'lotka_volterra', "
-         "'holling2', 'holling3', 'beddington_deangelis', got 'holling4'",
+         "error: s.toml: field 'predation.response': 'holling4' is not one of "
+         "'lotka_volterra', 'holling2', 'holling3', 'beddington_deangelis'; did you mean "
+         "'holling3'?",
          {"s.toml": scenario(predation={"response": "holling4"})}),
     Case("burn-in-too-long",
-         "error: s.toml: field 'run.burn_in': must be less than run.duration (2.0), got 5.0",
+         "error: s.toml: field 'run.burn_in': 5 is not below run.duration 2; shorten the "
+         "burn-in or lengthen the run",
          {"s.toml": scenario(run={"burn_in": 5.0})}),
     Case("no-patch-path",
-         "error: s.toml: field 'patches.path': is required: the patch file (GeoJSON, "
-         "GeoPackage or Shapefile) relative to the scenario",
+         "error: s.toml: field 'patches.path': is missing; add path = \"patches.geojson\" "
+         "under [patches], naming the patch file (GeoJSON, GeoPackage or Shapefile) relative "
+         "to the scenario",
          {"s.toml": scenario(patches={"path": None})}),
     Case("noise-autocorrelation-one",
-         "error: s.toml: field 'noise.autocorrelation': must be >= 0 and < 1, got 1.0",
+         "error: s.toml: field 'noise.autocorrelation': 1.0 is out of range; give a number "
+         "of at least 0 and below 1 (1 would never change)",
          {"s.toml": scenario(noise={"environmental_sd": 0.2, "autocorrelation": 1.0})}),
     Case("bad-field-ref",
-         "error: s.toml: field 'prey.growth_rate': a per-patch value must be written "
-         "{ field = \"ATTRIBUTE\" }, got {'name': 'r'}",
+         "error: s.toml: field 'prey.growth_rate': {'name': 'r'} is not a per-patch value; "
+         "write { field = \"ATTRIBUTE\" } with a column of the patch file, or give one number",
          {"s.toml": scenario(prey={"growth_rate": {"name": "r"}})}),
     Case("geographic-crs",
          "error: s.toml: field 'patches.crs': 'EPSG:4326' is a geographic (degrees) CRS; "
-         "distances and areas need a projected CRS in metres such as a UTM zone "
-         "'EPSG:326NN', or 'auto'",
+         "distances and areas need a projected CRS: give 'auto' or one in metres such as a "
+         "UTM zone 'EPSG:326NN'",
          {"s.toml": scenario(patches={"crs": "EPSG:4326"})}),
     Case("unknown-crs",
          "error: s.toml: field 'patches.crs': 'EPSG:999999' is not a CRS pyproj understands; "
-         "expected 'auto' or a projected CRS in metres such as 'EPSG:3035'",
+         "give 'auto' or a projected CRS in metres such as 'EPSG:3035'",
          {"s.toml": scenario(patches={"crs": "EPSG:999999"})}),
     # ---------------------------------------------------------------- the patch file
     Case("missing-patch-file",
-         "error: missing.geojson: no such file; expected a GeoJSON (.geojson), "
-         "GeoPackage (.gpkg) or Shapefile (.shp)",
+         "error: missing.geojson: no such file; check the path, which should name a "
+         "GeoJSON (.geojson), GeoPackage (.gpkg) or Shapefile (.shp)",
          {"s.toml": scenario(patches={"path": "missing.geojson"})}),
     Case("missing-patch-file-check",
-         "error: missing.geojson: no such file; expected a GeoJSON (.geojson), "
-         "GeoPackage (.gpkg) or Shapefile (.shp)",
+         "error: missing.geojson: no such file; check the path, which should name a "
+         "GeoJSON (.geojson), GeoPackage (.gpkg) or Shapefile (.shp)",
          {"s.toml": scenario(patches={"path": "missing.geojson"})}, command="check"),
     Case("bad-json",
          "error: p.geojson: not valid JSON (Expecting ',' delimiter at line 1, "
@@ -229,8 +236,8 @@ CASES = [
          {"s.toml": scenario(patches={"path": "p.gpkg"}), "p.gpkg": "not a database"},
          prefix=True),
     Case("empty-collection",
-         "error: p.geojson: the file holds no features; expected at least one polygon "
-         "patch",
+         "error: p.geojson: the file holds no features; give a file with at least one "
+         "patch polygon (or name its layer with [patches] layer)",
          {"p.geojson": collection([])}),
     Case("null-geometry",
          f"error: p.geojson: feature 'A2': field 'geometry': geometry is null; "
@@ -243,15 +250,16 @@ CASES = [
              _set(2, "geometry", {"type": "Point", "coordinates": list(middle(2))}))}),
     Case("no-such-id-field",
          "error: p.geojson: field 'patch_id': no such attribute for patch ids; the file "
-         "has: 'pid', 'quality'",
+         "has: 'pid', 'quality'; name one of them in [patches] id_field, or leave id_field "
+         "out to number the features",
          {"s.toml": scenario(patches={"id_field": "patch_id"})}),
     Case("missing-id",  # no id to name it by: its 0-based position
-         "error: p.geojson: feature 2: field 'pid': patch id is empty; every patch "
-         "needs an id",
+         "error: p.geojson: feature 2: field 'pid': patch id is empty; give every patch "
+         "an id",
          {"p.geojson": patches_with(_set(2, "pid", _DROP))}),
     Case("duplicate-ids",
          "error: p.geojson: feature 'A2': field 'pid': id is not unique: features 1 "
-         "and 3 both have it; each patch needs its own id",
+         "and 3 both have it; give each patch its own id",
          {"p.geojson": patches_with(_set(3, "pid", "A2"))}),
     Case("quality-not-number",
          f"error: p.geojson: feature 'A3': field 'quality': value 'high' is not a "
@@ -281,11 +289,12 @@ CASES = [
          {"p.geojson": patches_with(_set(1, "quality", 0))}),
     Case("field-ref-missing",
          "error: p.geojson: field 'r_local': no such attribute (named by "
-         "prey.growth_rate); the file has: 'pid', 'quality'",
+         "prey.growth_rate); the file has: 'pid', 'quality'; add the column to the patch "
+         "file or name one of these",
          {"s.toml": scenario(prey={"growth_rate": {"field": "r_local"}})}),
     Case("field-ref-out-of-range",
-         "error: p.geojson: feature 'A4': field 'scale': value 0.0 for "
-         "prey.kernel_scale_km must be > 0",
+         "error: p.geojson: feature 'A4': field 'scale': value 0.0 is out of range for "
+         "prey.kernel_scale_km; give a number above 0 in every feature",
          {"s.toml": scenario(prey={"kernel_scale_km": {"field": "scale"}}),
           "p.geojson": patches_with(_scale_attribute)}),
     Case("lon-out-of-range",
@@ -296,7 +305,7 @@ CASES = [
              [[191.0, 46.3], [191.01, 46.3], [191.01, 46.31], [191.0, 46.3]]]}))}),
     Case("zero-area",
          "error: p.geojson: feature 'A2': field 'geometry': polygon has zero area; "
-         "expected a patch polygon with positive area",
+         "redraw the patch with a positive area or remove the feature",
          {"p.geojson": patches_with(_set(1, "geometry", {"type": "Polygon", "coordinates": [
              [[11.22, 46.3], [11.23, 46.3], [11.235, 46.3], [11.22, 46.3]]]}))}),
     # ---------------------------------------------------------------- corridors
@@ -306,22 +315,23 @@ CASES = [
           "c.geojson": corridor([list(middle(0)), [LON0 + 0.01, LAT0 + 0.1]])}, prefix=True),
     Case("corridor-same-patch",
          "error: c.geojson: feature 'K1': field 'geometry': both ends lie at patch "
-         "'A2'; a corridor must join two different patches",
+         "'A2'; a corridor must join two different patches: move one end to the other "
+         "patch",
          {"s.toml": scenario(dispersal=CORRIDORS),
           "c.geojson": corridor([list(middle(1)), [middle(1)[0] + 0.001, middle(1)[1]]])}),
     Case("corridor-polygon",
          "error: c.geojson: feature 0: field 'geometry': geometry type is Polygon; "
-         "expected a LineString or MultiLineString",
+         "expected a LineString or MultiLineString: fix the feature or remove it",
          {"s.toml": scenario(dispersal=CORRIDORS), "c.geojson": collection(features()[:1])}),
     # ---------------------------------------------------------------- links tables
     Case("links-unknown-id",
-         "error: l.csv: feature 1: field 'target': no patch has id 'B7'; expected a "
-         "patch id of the patch file (e.g. 'A1', 'A2', 'A3')",
+         "error: l.csv: feature 1: field 'target': no patch has id 'B7'; use an id of the "
+         "patch file (e.g. 'A1', 'A2', 'A3')",
          {"s.toml": scenario(dispersal=LINKS),
           "l.csv": "source,target,weight\nA1,A2,1.0\nA2,B7,0.5\n"}),
     Case("links-negative-weight",
          "error: l.csv: feature 1: field 'weight': value -0.5 is out of range; "
-         "expected a finite number > 0",
+         "give a number above 0",
          {"s.toml": scenario(dispersal=LINKS),
           "l.csv": "source,target,weight\nA1,A2,1.0\nA2,A3,-0.5\n"}),
     Case("links-unknown-column",
@@ -330,7 +340,7 @@ CASES = [
          {"s.toml": scenario(dispersal=LINKS), "l.csv": "source,target,wieght\nA1,A2,1.0\n"}),
     Case("links-to-itself",
          "error: l.csv: feature 1: field 'target': links patch 'A3' to itself; "
-         "expected two different patches",
+         "give two different patches or drop the row",
          {"s.toml": scenario(dispersal=LINKS),
           "l.csv": "source,target,weight\nA1,A2,1.0\nA3,A3,1.0\n"}),
     Case("links-directed-word",
@@ -339,7 +349,8 @@ CASES = [
          {"s.toml": scenario(dispersal=LINKS),
           "l.csv": "source,target,weight,directed\nA1,A2,1.0,maybe\n"}),
     Case("links-missing-file",
-         f"error: nolinks.csv: no such file; expected a CSV table with {LINKS_COLUMNS}",
+         "error: nolinks.csv: no such file; check the path (relative to the scenario); "
+         f"expected a CSV table with {LINKS_COLUMNS}",
          {"s.toml": scenario(dispersal={"kernel": "none", "links": "nolinks.csv"})}),
     # ---------------------------------------------------------------- parameters together
     Case("allee-above-capacity",  # capacity density 50 x quality 0.9 of A2 = 45 < 48

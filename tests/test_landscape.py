@@ -151,11 +151,11 @@ def test_geographic_crs_option_is_rejected(tmp_path):
         read_patches(path, crs="EPSG:4326")
     assert str(err.value) == (
         "field 'patches.crs': 'EPSG:4326' is a geographic (degrees) CRS; distances and areas "
-        "need a projected CRS in metres such as a UTM zone 'EPSG:326NN', or 'auto'")
+        "need a projected CRS: give 'auto' or one in metres such as a UTM zone 'EPSG:326NN'")
     with pytest.raises(InputError) as err:
         read_patches(path, crs="EPSG:99999999")
     assert str(err.value) == (
-        "field 'patches.crs': 'EPSG:99999999' is not a CRS pyproj understands; expected "
+        "field 'patches.crs': 'EPSG:99999999' is not a CRS pyproj understands; give "
         "'auto' or a projected CRS in metres such as 'EPSG:3035'")
 
 
@@ -212,7 +212,8 @@ def test_invalid_polygon_is_repaired_with_a_warning(tmp_path):
     with pytest.warns(TrophoscapeWarning) as record:
         land = read_patches(path, id_field="n")
     assert [str(w.message) for w in record] == [
-        f"{path}: feature 'bow': geometry was invalid and has been repaired"]
+        f"{path}: feature 'bow': geometry was invalid and has been repaired (shapely "
+        "make_valid); check its outline in a GIS if its area looks wrong"]
     assert land.repaired == ("bow",)
     assert land.frame.geometry.is_valid.all()
     fixed = shapely.make_valid(bow)
@@ -238,8 +239,8 @@ def raises(fn, *args, **kwargs) -> str:
 def test_error_missing_file(tmp_path):
     path = tmp_path / "nothere.geojson"
     assert raises(read_patches, path) == (
-        f"{path}: no such file; expected a GeoJSON (.geojson), GeoPackage (.gpkg) or "
-        "Shapefile (.shp)")
+        f"{path}: no such file; check the path, which should name a GeoJSON (.geojson), "
+        "GeoPackage (.gpkg) or Shapefile (.shp)")
 
 
 def test_error_bad_json(tmp_path):
@@ -253,7 +254,8 @@ def test_error_bad_json(tmp_path):
 def test_error_empty_collection(tmp_path):
     path = write_geojson(tmp_path / "empty.geojson", [])
     assert raises(read_patches, path) == (
-        f"{path}: the file holds no features; expected at least one polygon patch")
+        f"{path}: the file holds no features; give a file with at least one patch polygon "
+        "(or name its layer with [patches] layer)")
 
 
 def test_error_null_geometry(tmp_path):
@@ -261,10 +263,10 @@ def test_error_null_geometry(tmp_path):
                          [{"id": "A"}, {"id": "B"}])
     assert raises(read_patches, path, id_field="id") == (
         f"{path}: feature 'B': field 'geometry': geometry is null; expected a Polygon or "
-        "MultiPolygon")
+        "MultiPolygon: fix the feature or remove it")
     assert raises(read_patches, path) == (
         f"{path}: feature 1: field 'geometry': geometry is null; expected a Polygon or "
-        "MultiPolygon")
+        "MultiPolygon: fix the feature or remove it")
 
 
 def test_error_point_geometry(tmp_path):
@@ -272,13 +274,14 @@ def test_error_point_geometry(tmp_path):
                          [square(10, 47, 0.01), {"type": "Point", "coordinates": [10, 47]}])
     assert raises(read_patches, path) == (
         f"{path}: feature 1: field 'geometry': geometry type is Point; expected a Polygon or "
-        "MultiPolygon")
+        "MultiPolygon: fix the feature or remove it")
 
 
 def test_error_missing_id_field(tmp_path):
     path = write_geojson(tmp_path / "p.geojson", [square(10, 47, 0.01)], [{"name": "A"}])
     assert raises(read_patches, path, id_field="patch") == (
-        f"{path}: field 'patch': no such attribute for patch ids; the file has: 'name'")
+        f"{path}: field 'patch': no such attribute for patch ids; the file has: 'name'; name "
+        "one of them in [patches] id_field, or leave id_field out to number the features")
 
 
 def test_error_duplicate_ids(tmp_path):
@@ -287,7 +290,7 @@ def test_error_duplicate_ids(tmp_path):
                          [{"id": v} for v in ("W1", "W2", "W3", "W2")])
     assert raises(read_patches, path, id_field="id") == (
         f"{path}: feature 'W2': field 'id': id is not unique: features 1 and 3 both have it; "
-        "each patch needs its own id")
+        "give each patch its own id")
 
 
 def test_error_null_id(tmp_path):
@@ -295,7 +298,7 @@ def test_error_null_id(tmp_path):
                          [square(10 + k * 0.02, 47, 0.01) for k in range(2)],
                          [{"id": "W1"}, {"id": None}])
     assert raises(read_patches, path, id_field="id") == (
-        f"{path}: feature 1: field 'id': patch id is empty; every patch needs an id")
+        f"{path}: feature 1: field 'id': patch id is empty; give every patch an id")
 
 
 def test_error_non_numeric_quality_field(tmp_path):
@@ -307,8 +310,8 @@ def test_error_non_numeric_quality_field(tmp_path):
         message = raises(read_patches, path, id_field="id",
                          fields={"quality": "[patches].quality_field"})
     assert message == (
-        f"{path}: feature 'W2': field 'quality': value 'high' is not a number; expected a "
-        "finite number >= 0 (named by [patches].quality_field)")
+        f"{path}: feature 'W2': field 'quality': value 'high' is not a number; give a "
+        "number of at least 0 (named by [patches].quality_field)")
 
 
 def test_error_negative_field_value(tmp_path):
@@ -317,14 +320,14 @@ def test_error_negative_field_value(tmp_path):
                          [{"id": f"W{k}", "quality": q} for k, q in enumerate([1.0, 0.0, -1.0])])
     assert raises(read_patches, path, id_field="id", fields={"quality": "[patches].quality_field"}
                   ) == (f"{path}: feature 'W2': field 'quality': value -1.0 is out of range; "
-                        "expected a finite number >= 0 (named by [patches].quality_field)")
+                        "give a number of at least 0 (named by [patches].quality_field)")
     land = read_patches(path, id_field="id")
     assert raises(land.values, "quality") == (
-        f"{path}: feature 'W2': field 'quality': value -1.0 is out of range; expected a finite "
-        "number >= 0")
+        f"{path}: feature 'W2': field 'quality': value -1.0 is out of range; give a number "
+        "of at least 0")
     assert raises(land.values, "qualty", key="prey.growth_rate") == (
         f"{path}: field 'qualty': no such attribute (named by prey.growth_rate); the file has: "
-        "'id', 'quality'")
+        "'id', 'quality'; add the column to the patch file or name one of these")
 
 
 def test_error_missing_field_value(tmp_path):
@@ -332,7 +335,7 @@ def test_error_missing_field_value(tmp_path):
                          [square(10 + k * 0.02, 47, 0.01) for k in range(2)],
                          [{"quality": 1.0}, {"quality": None}])
     assert raises(read_patches, path, fields=["quality"]) == (
-        f"{path}: feature 1: field 'quality': value is missing; expected a finite number >= 0")
+        f"{path}: feature 1: field 'quality': value is missing; give a number of at least 0")
 
 
 def test_error_longitude_out_of_range(tmp_path):
@@ -359,8 +362,8 @@ def test_error_zero_area_polygon(tmp_path):
     path = write_geojson(tmp_path / "p.geojson", [square(10, 47.1, 0.01), flat],
                          [{"id": "A"}, {"id": "F"}])
     assert raises(read_patches, path, id_field="id") == (
-        f"{path}: feature 'F': field 'geometry': polygon has zero area; expected a patch polygon "
-        "with positive area")
+        f"{path}: feature 'F': field 'geometry': polygon has zero area; redraw the patch with "
+        "a positive area or remove the feature")
 
 
 def test_repair_keeps_only_the_polygonal_part(tmp_path):

@@ -71,7 +71,7 @@ def test_kernels_match_scipy_distributions():
     np.testing.assert_array_equal(kernel_weight("step", d, 3.0), np.ones_like(d))
     with pytest.raises(InputError) as err:
         kernel_weight("cauchy", d, 1.0)
-    assert str(err.value) == ("field 'dispersal.kernel': unknown kernel 'cauchy'; expected one "
+    assert str(err.value) == ("field 'dispersal.kernel': unknown kernel 'cauchy'; give one "
                               "of 'exponential', 'gaussian', 'step'")
 
 
@@ -257,11 +257,12 @@ def test_movement_operator_rejects_bad_rates():
     with pytest.raises(InputError) as err:
         movement_operator(net, emigration_rate=[0.1, -0.2, 0.1], scale_km=1.0,
                           survival_per_km=0.9)
-    assert str(err.value) == ("feature 1: field 'emigration_rate': must be a finite number "
-                              ">= 0, got -0.2")
+    assert str(err.value) == ("feature 1: field 'emigration_rate': -0.2 is out of range; "
+                              "give a number of at least 0")
     with pytest.raises(InputError) as err:
         movement_operator(net, emigration_rate=0.1, scale_km=1.0, survival_per_km=1.2)
-    assert str(err.value) == "field 'survival_per_km': must be a number from 0 to 1, got 1.2"
+    assert str(err.value) == ("field 'survival_per_km': 1.2 is out of range; give a number "
+                              "from 0 to 1")
 
 
 # ------------------------------------------------------------------ links table
@@ -321,7 +322,7 @@ def test_error_links_table_unknown_id(tmp_path):
     path = tmp_path / "links.csv"
     path.write_text("source,target,weight\nP0,P1,1\nP2,Q9,1\n")
     assert raises(build_network, named_chain(), links_table=path) == (
-        f"{path}: feature 1: field 'target': no patch has id 'Q9'; expected a patch id of the "
+        f"{path}: feature 1: field 'target': no patch has id 'Q9'; use an id of the "
         "patch file (e.g. 'P0', 'P1', 'P2')")
 
 
@@ -329,8 +330,8 @@ def test_error_links_table_negative_weight(tmp_path):
     path = tmp_path / "links.csv"
     path.write_text("source,target,weight\nP0,P1,1\nP1,P2,-0.5\n")
     assert raises(build_network, named_chain(), links_table=path) == (
-        f"{path}: feature 1: field 'weight': value -0.5 is out of range; expected a finite "
-        "number > 0")
+        f"{path}: feature 1: field 'weight': value -0.5 is out of range; give a number "
+        "above 0")
 
 
 def test_error_links_table_other_rows(tmp_path):
@@ -338,8 +339,8 @@ def test_error_links_table_other_rows(tmp_path):
     land = named_chain()
     path.write_text("source,target,weight\nP1,P1,1\n")
     assert raises(build_network, land, links_table=path) == (
-        f"{path}: feature 0: field 'target': links patch 'P1' to itself; expected two "
-        "different patches")
+        f"{path}: feature 0: field 'target': links patch 'P1' to itself; give two "
+        "different patches or drop the row")
     path.write_text("source,target,weight\nP0,P1,1\nP1,P0,2\n")
     assert raises(build_network, land, links_table=path) == (
         f"{path}: feature 1: field 'target': links 'P0' to 'P1' again (also in feature 0); "
@@ -350,7 +351,7 @@ def test_error_links_table_other_rows(tmp_path):
         "source,target,weight[,survival][,directed]")
     path.write_text("source,target,weight,survival\nP0,P1,1,1.5\n")
     assert raises(build_network, land, links_table=path) == (
-        f"{path}: feature 0: field 'survival': value 1.5 is out of range; expected a number "
+        f"{path}: feature 0: field 'survival': value 1.5 is out of range; give a number "
         "from 0 to 1")
     path.write_text("source,target,weight,directed\nP0,P1,1,maybe\n")
     assert raises(build_network, land, links_table=path) == (
@@ -358,8 +359,8 @@ def test_error_links_table_other_rows(tmp_path):
         "false, 1, 0, yes, no or empty (false)")
     missing = tmp_path / "none.csv"
     assert raises(build_network, land, links_table=missing) == (
-        f"{missing}: no such file; expected a CSV table with columns "
-        "source,target,weight[,survival][,directed]")
+        f"{missing}: no such file; check the path (relative to the scenario); expected a CSV "
+        "table with columns source,target,weight[,survival][,directed]")
 
 
 # ------------------------------------------------------------------ corridors
@@ -410,12 +411,13 @@ def test_error_corridor_touching_only_one_patch(tmp_path):
     path = write_lines(tmp_path / "c.geojson", [line], {"corridor_id": ["C1"]})
     assert raises(build_network, land, corridors=path) == (
         f"{path}: feature 'C1': field 'geometry': its last point (510000.0, 5000000.0) is not "
-        "within 0.1 km of any patch; each end of a corridor must lie on or near a patch")
+        "within 0.1 km of any patch; each end of a corridor must lie on or near a patch: "
+        "move the point onto its patch, or raise [dispersal] corridor_snap_km")
     inside = shapely.LineString([(500_000, 5_000_000), (500_200, 5_000_300)])
     path = write_lines(tmp_path / "c2.geojson", [inside])
     assert raises(build_network, land, corridors=path) == (
         f"{path}: feature 0: field 'geometry': both ends lie at patch 0; a corridor must join "
-        "two different patches")
+        "two different patches: move one end to the other patch")
 
 
 def test_error_corridor_geometry_and_survival(tmp_path):
@@ -423,24 +425,24 @@ def test_error_corridor_geometry_and_survival(tmp_path):
     path = write_lines(tmp_path / "c.geojson", [shapely.Point(500_000, 5_000_000)])
     assert raises(build_network, land, corridors=path) == (
         f"{path}: feature 0: field 'geometry': geometry type is Point; expected a LineString "
-        "or MultiLineString")
+        "or MultiLineString: fix the feature or remove it")
     line = shapely.LineString([(500_000, 5_000_000), (520_000, 5_000_000)])
     path = write_lines(tmp_path / "s.geojson", [line], {"survival": [1.5]})
     assert raises(build_network, land, corridors=path) == (
-        f"{path}: feature 0: field 'survival': value 1.5 is out of range; expected a number "
+        f"{path}: feature 0: field 'survival': value 1.5 is out of range; give a number "
         "from 0 to 1")
 
 
 def test_bad_options_are_rejected():
     land = chain_landscape(2, spacing_km=2.0, size_km=1.0)
     assert raises(build_network, land, kernel="levy") == (
-        "field 'dispersal.kernel': unknown kernel 'levy'; expected one of 'exponential', "
+        "field 'dispersal.kernel': unknown kernel 'levy'; give one of 'exponential', "
         "'gaussian', 'step', 'none'")
     assert raises(build_network, land, distance="edge") == (
-        "field 'dispersal.distance': unknown distance 'edge'; expected 'boundary' or "
+        "field 'dispersal.distance': unknown distance 'edge'; give 'boundary' or "
         "'centroid'")
     assert raises(build_network, land, max_distance_km=-1) == (
-        "field 'dispersal.max_distance_km': must be a finite number >= 0, got -1")
+        "field 'dispersal.max_distance_km': -1 is out of range; give a number of at least 0")
 
 
 def test_no_links_at_all():

@@ -236,7 +236,8 @@ def test_noise_keys_are_checked():
     sc = _parse(noise={"environmental_sd": 0.2, "correlation_km": "regional",
                        "autocorrelation": 0.5})
     assert sc["noise.correlation_km"] == "regional" and sc["noise.rank"] == 500
-    with pytest.raises(InputError, match=r"noise.autocorrelation.*must be >= 0 and < 1"):
+    with pytest.raises(InputError, match=r"noise.autocorrelation': 1.0 is out of range; give a "
+                       r"number of at least 0 and below 1"):
         _parse(noise={"autocorrelation": 1.0})
     with pytest.raises(InputError, match="noise.correlation_km"):
         _parse(noise={"correlation_km": 0})

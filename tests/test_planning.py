@@ -519,27 +519,30 @@ def test_candidate_errors(row_study):
                                 geometry=[_line(0, 3), _line(0, 3, y_km=4.0)], crs=CRS),
          "feature 'Y': field 'geometry': the candidate joins fewer than two patches: its "
          "first point (500000.0, 5004000.0) is not within 0.1 km of any patch; each end "
-         "must lie on or near a patch"),
+         "must lie on or near a patch: move the point onto its patch, or raise [dispersal] "
+         "corridor_snap_km"),
         (geopandas.GeoDataFrame({"corridor_id": ["X"], "cost": [1.0]},
                                 geometry=[_line(-0.2, 0.2)], crs=CRS),
          "feature 'X': field 'geometry': the candidate joins fewer than two patches: both "
-         "ends lie at patch 'A'; a corridor must join two different patches"),
+         "ends lie at patch 'A'; a corridor must join two different patches: move one end to "
+         "the other patch"),
         (geopandas.GeoDataFrame({"corridor_id": ["X", "Y"], "cost": [1.0, -3.0]},
                                 geometry=[_line(0, 3), _line(1.5, 4.5)], crs=CRS),
-         "feature 'Y': field 'cost': value -3.0 is out of range; expected a finite number "
-         ">= 0"),
+         "feature 'Y': field 'cost': value -3.0 is out of range; give a number of at "
+         "least 0"),
         (geopandas.GeoDataFrame({"corridor_id": ["X", "X"], "cost": [1.0, 1.0]},
                                 geometry=[_line(0, 3), _line(1.5, 4.5)], crs=CRS),
          "feature 'X': field 'corridor_id': id is not unique: features 0 and 1 both have "
-         "it; each candidate needs its own id"),
+         "it; give each candidate its own id"),
         (geopandas.GeoDataFrame({"name": ["X"]}, geometry=[_line(0, 3)], crs=CRS),
-         "field 'cost': the file has no 'cost' attribute (it has: 'name'); expected a cost "
-         ">= 0 for every candidate"),
+         "field 'cost': the file has no 'cost' attribute (it has: 'name'); add a 'cost' "
+         "column with a number >= 0 for every candidate"),
         (geopandas.GeoDataFrame({"cost": [1.0, 1.0]}, geometry=[_line(0, 3), _line(0, 9)],
                                 crs=CRS),
          "feature 1: field 'geometry': the candidate joins fewer than two patches: its last "
          "point (509000.0, 5000000.0) is not within 0.1 km of any patch; each end must lie "
-         "on or near a patch"),
+         "on or near a patch: move the point onto its patch, or raise [dispersal] "
+         "corridor_snap_km"),
     ]
     for k, (frame, message) in enumerate(cases):
         path = _write(folder, frame, f"bad{k}.gpkg")
@@ -572,8 +575,8 @@ def test_cli_bad_candidates_exit_2_without_output(row_study, monkeypatch, capsys
     assert run_cli(monkeypatch, "corridors", scenario, "--candidates", bad, "--budget", 1,
                    "--out", out, "--quiet") == 2
     assert capsys.readouterr().err.strip() == (
-        f"error: {bad}: feature 0: field 'cost': value -1.0 is out of range; expected a "
-        "finite number >= 0")
+        f"error: {bad}: feature 0: field 'cost': value -1.0 is out of range; give a "
+        "number of at least 0")
     assert not out.exists()
     assert run_cli(monkeypatch, "corridors", scenario, "--candidates", bad, "--budget", -1,
                    "--out", out, "--quiet") == 2

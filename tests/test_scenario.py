@@ -49,39 +49,45 @@ CASES = [
     ("[patches]\npath = 'p.geojson'\n[preditor]\nconversion = 0.1\n",
      "s.toml: field 'preditor': unknown section or top-level key; did you mean 'predator'?"),
     ("[patches]\nid_field = 'x'\n",
-     "s.toml: field 'patches.path': is required: the patch file (GeoJSON, GeoPackage or "
-     "Shapefile) relative to the scenario"),
+     "s.toml: field 'patches.path': is missing; add path = \"patches.geojson\" under "
+     "[patches], naming the patch file (GeoJSON, GeoPackage or Shapefile) relative to the "
+     "scenario"),
     (MINIMAL + "[prey]\ngrowth_rate = -1\n",
-     "s.toml: field 'prey.growth_rate': must be >= 0, got -1"),
+     "s.toml: field 'prey.growth_rate': -1 is out of range; give a number of at least 0"),
     (MINIMAL + "[prey]\ngrowth_rate = 'fast'\n",
-     "s.toml: field 'prey.growth_rate': must be a number, got 'fast'"),
+     "s.toml: field 'prey.growth_rate': 'fast' is not a number; give a number of at least 0"),
     (MINIMAL + "[prey]\ngrowth = 'gompertz'\n",
-     "s.toml: field 'prey.growth': must be one of 'exponential', 'logistic', 'allee', got "
-     "'gompertz'"),
+     "s.toml: field 'prey.growth': 'gompertz' is not one of the choices; give one of "
+     "'exponential', 'logistic', 'allee'"),
     (MINIMAL + "[predation]\nresponse = 'holling4'\n",
-     "s.toml: field 'predation.response': must be one of 'lotka_volterra', 'holling2', "
-     "'holling3', 'beddington_deangelis', got 'holling4'"),
+     "s.toml: field 'predation.response': 'holling4' is not one of 'lotka_volterra', "
+     "'holling2', 'holling3', 'beddington_deangelis'; did you mean 'holling3'?"),
     (MINIMAL + "[run]\nduration = 10\nburn_in = 20\n",
-     "s.toml: field 'run.burn_in': must be less than run.duration (10.0), got 20.0"),
+     "s.toml: field 'run.burn_in': 20 is not below run.duration 10; shorten the burn-in or "
+     "lengthen the run"),
     (MINIMAL + "[dispersal]\nsurvival_per_km = 1.5\n",
-     "s.toml: field 'dispersal.survival_per_km': must be <= 1, got 1.5"),
+     "s.toml: field 'dispersal.survival_per_km': 1.5 is out of range; give a number from 0 to 1"),
     (MINIMAL + "[prey]\ninitial_density = 'lots'\n",
-     "s.toml: field 'prey.initial_density': must be a number, got 'lots' (or 'equilibrium')"),
+     "s.toml: field 'prey.initial_density': 'lots' is not a number; give a number of at "
+     "least 0, or 'equilibrium'"),
     (MINIMAL + "[prey]\ngrowth_rate = { column = 'r' }\n",
-     "s.toml: field 'prey.growth_rate': a per-patch value must be written "
-     "{ field = \"ATTRIBUTE\" }, got {'column': 'r'}"),
+     "s.toml: field 'prey.growth_rate': {'column': 'r'} is not a per-patch value; write "
+     "{ field = \"ATTRIBUTE\" } with a column of the patch file, or give one number"),
     (MINIMAL + "[noise]\nenvironmental_sd = -0.2\n",
-     "s.toml: field 'noise.environmental_sd': must be >= 0, got -0.2"),
+     "s.toml: field 'noise.environmental_sd': -0.2 is out of range; give a number of at "
+     "least 0"),
     (MINIMAL + "[run]\nreplicates = 3\n",
      "s.toml: field 'run.replicates': replicates other than 1 need noise "
      "(noise.environmental_sd > 0, noise.predator_mortality_sd > 0 or noise.demographic = "
      "true): without it every replicate is the same run; set replicates = 1 or add noise"),
-    (MINIMAL + "[run]\nseed = 1.5\n", "s.toml: field 'run.seed': must be a whole number, got 1.5"),
-    (MINIMAL + "[run]\nduration = inf\n", "s.toml: field 'run.duration': must be finite, got inf"),
+    (MINIMAL + "[run]\nseed = 1.5\n", "s.toml: field 'run.seed': 1.5 is not a whole number; give a whole number of at least 0"),
+    (MINIMAL + "[run]\nduration = inf\n", "s.toml: field 'run.duration': inf is not a finite number; give a number above 0"),
     ("[patches]\npath = 'p.geojson'\n[run]\nduration = = 5\n",
-     "s.toml: not valid TOML: Invalid value (at line 4, column 12)"),
+     "s.toml: not valid TOML: Invalid value (at line 4, column 12); correct the file there "
+     "(text values need quotes, sections [brackets])"),
     ("[patches]\npath = 'p.geojson'\n[run]\nduration = 5\nburn_in = 'x\n",
-     "s.toml: not valid TOML: Expected \"'\" (at the end, line 5)"),
+     "s.toml: not valid TOML: Expected \"'\" (at the end, line 5); correct the file there "
+     "(text values need quotes, sections [brackets])"),
 ]
 
 
@@ -98,4 +104,5 @@ def test_missing_scenario_file(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     with pytest.raises(InputError) as info:
         read_scenario("nothing.toml")
-    assert str(info.value) == "nothing.toml: scenario file not found"
+    assert str(info.value) == ("nothing.toml: scenario file not found; check the path (a "
+                                "relative path starts from the current folder)")

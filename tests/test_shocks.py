@@ -198,29 +198,31 @@ def parse_shock(**table):
      "s.toml: field 'shock[0].kind': unknown shock kind 'predator_remval'; did you mean "
      "'predator_removal'?"),
     ({"kind": "predator_removal", "patches": ["0"], "share": 1.5},
-     "s.toml: field 'shock[0].share': must be <= 1, got 1.5"),
+     "s.toml: field 'shock[0].share': 1.5 is out of range; give a number from 0 to 1"),
     ({"kind": "prey_crash", "patches": ["0"], "share": -0.1},
-     "s.toml: field 'shock[0].share': must be >= 0, got -0.1"),
+     "s.toml: field 'shock[0].share': -0.1 is out of range; give a number from 0 to 1"),
     ({"kind": "mortality_pulse", "patches": "all", "factor": -1.0},
-     "s.toml: field 'shock[0].factor': must be >= 0, got -1.0"),
+     "s.toml: field 'shock[0].factor': -1.0 is out of range; give a number of at least 0"),
     ({"kind": "mortality_pulse", "patches": "all", "factor": 2.0, "duration": 0},
-     "s.toml: field 'shock[0].duration': must be > 0, got 0"),
+     "s.toml: field 'shock[0].duration': 0 is out of range; give a number above 0"),
     ({"kind": "habitat_loss", "patches": "all", "factor": 0.0},
      "s.toml: field 'shock[0].factor': must be > 0 for habitat_loss (a capacity of zero is "
      "undefined); use kind = \"patch_loss\" to remove a patch"),
     ({"kind": "predator_removal", "patches": ["0"], "share": 0.5, "factor": 2.0},
      "s.toml: field 'shock[0].factor': does not apply to a predator_removal shock, which "
-     "takes at, patches, share"),
+     "takes at, patches, share; remove it or change the kind"),
     ({"kind": "harvest", "patches": ["0"]},
-     "s.toml: field 'shock[0].rate': is required for a harvest shock (per-capita removal "
-     "rate (harvest))"),
+     "s.toml: field 'shock[0].rate': is missing; a harvest shock needs it (per-capita "
+     "removal rate (harvest)): add rate = ... to this [[shock]] table"),
     ({"kind": "patch_loss", "patchs": ["0"]},
      "s.toml: field 'shock[0].patchs': unknown key; did you mean 'patches'?"),
     ({"patches": ["0"]},
-     "s.toml: field 'shock[0].kind': is required: one of 'predator_removal', 'prey_crash', "
+     "s.toml: field 'shock[0].kind': is missing; add kind = one of 'predator_removal', "
+     "'prey_crash', "
      "'habitat_loss', 'patch_loss', 'mortality_pulse', 'harvest', 'link_cut'"),
     ({"kind": "patch_loss", "patches": ["0"], "at": 900},
-     "s.toml: field 'shock[0].at': must be less than run.duration (400.0), got 900.0"),
+     "s.toml: field 'shock[0].at': 900 is not before the end of the run (run.duration 400); "
+     "set the shock earlier or lengthen the run"),
 ])
 def test_shock_table_errors(table, message):
     with pytest.raises(InputError) as info:

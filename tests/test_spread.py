@@ -183,7 +183,9 @@ def test_spread_needs_a_shock_after_burn_in(tmp_path):
     late = chain_scenario(path, [{"kind": "patch_loss", "at": 10.0, "patches": ["0"]}])
     with pytest.raises(ts.InputError) as info:
         sp.run_spread(ts.build_study(late))
-    assert "field 'shock[0].at': must be at or after run.burn_in (60)" in str(info.value)
+    assert str(info.value).endswith(
+        "field 'shock[0].at': 10 is before run.burn_in 60; set the shock at 60 or later (the "
+        "spread is measured from the state after burn-in)")
 
 
 # --------------------------------------------------------------------------- the pieces

@@ -140,18 +140,18 @@ def test_lists_of_numbers_and_words():
      "section.key, e.g. 'prey.growth_rate'"),
     ("prey.growth_rate=", "field '--vary prey.growth_rate=': no values after '='; give "
      "START:STOP:COUNT or a comma list"),
-    ("prey.growth_rate=1:2", "field '--vary prey.growth_rate=1:2': a range must be "
-     "START:STOP:COUNT, got '1:2'"),
-    ("prey.growth_rate=a:2:3", "field '--vary prey.growth_rate=a:2:3': START and STOP of a "
-     "range must be numbers, got 'a:2:3'"),
-    ("prey.growth_rate=1:2:0", "field '--vary prey.growth_rate=1:2:0': COUNT of a range must "
-     "be a whole number >= 1, got '0'"),
-    ("prey.growth_rate=1:2:x", "field '--vary prey.growth_rate=1:2:x': COUNT of a range must "
-     "be a whole number >= 1, got 'x'"),
+    ("prey.growth_rate=1:2", "field '--vary prey.growth_rate=1:2': '1:2' is not a range "
+     "START:STOP:COUNT; give e.g. 0.5:1.5:11"),
+    ("prey.growth_rate=a:2:3", "field '--vary prey.growth_rate=a:2:3': START and STOP of the "
+     "range 'a:2:3' are not both numbers; give numbers, e.g. 0.5:1.5:11"),
+    ("prey.growth_rate=1:2:0", "field '--vary prey.growth_rate=1:2:0': COUNT '0' of the "
+     "range is not a whole number of at least 1; give e.g. 0.5:1.5:11"),
+    ("prey.growth_rate=1:2:x", "field '--vary prey.growth_rate=1:2:x': COUNT 'x' of the "
+     "range is not a whole number of at least 1; give e.g. 0.5:1.5:11"),
     ("prey.growth_rate=1,,2", "field '--vary prey.growth_rate=1,,2': empty value in the list "
-     "'1,,2'"),
+     "'1,,2'; remove the extra comma"),
     ("prey.growth_rate=1,1.0", "field '--vary prey.growth_rate=1,1.0': the value 1.0 is "
-     "given twice"),
+     "given twice; give each value once"),
 ])
 def test_vary_syntax_errors(arg, message):
     with pytest.raises(InputError) as info:
@@ -160,15 +160,15 @@ def test_vary_syntax_errors(arg, message):
 
 
 @pytest.mark.parametrize("specs, message", [
-    (["prey.growth_rate=-1,1"], "field '--vary prey.growth_rate=-1,1': prey.growth_rate "
-     "must be >= 0, got -1"),
-    (["prey.growth_rate=fast"], "field '--vary prey.growth_rate=fast': prey.growth_rate must "
-     "be a number, got 'fast'"),
+    (["prey.growth_rate=-1,1"], "field '--vary prey.growth_rate=-1,1': prey.growth_rate: "
+     "-1 is out of range; give a number of at least 0"),
+    (["prey.growth_rate=fast"], "field '--vary prey.growth_rate=fast': prey.growth_rate: "
+     "'fast' is not a number; give a number of at least 0"),
     (["dispersal.kernel=exponential,cubic"], "field '--vary dispersal.kernel=exponential,"
-     "cubic': dispersal.kernel must be one of 'exponential', 'gaussian', 'step', 'none', got "
-     "'cubic'"),
+     "cubic': dispersal.kernel: 'cubic' is not one of the choices; give one of "
+     "'exponential', 'gaussian', 'step', 'none'"),
     (["prey.growth_rate=1,2", "prey.growth_rate=3"], "field '--vary prey.growth_rate': the "
-     "key 'prey.growth_rate' is varied twice"),
+     "key 'prey.growth_rate' is varied twice; give all its values in one --vary"),
 ])
 def test_bad_values_name_the_vary_argument(scenario, specs, message):
     with pytest.raises(InputError) as info:
@@ -183,7 +183,8 @@ def test_a_combination_that_is_not_a_scenario(scenario, tmp_path):
         plan_sweep(scenario, ["run.duration=2,10", "run.burn_in=1,3"])
     assert str(info.value) == (
         f"{scenario}: field '--vary': the point run.duration=2, run.burn_in=3 is not a valid "
-        "scenario: run.burn_in must be less than run.duration (2.0), got 3.0")
+        "scenario: run.burn_in: 3 is not below run.duration 2; shorten the burn-in or "
+        "lengthen the run")
     # a table whose rows pair them well is a valid sweep; a bad cell is named by its row
     table = tmp_path / "t.csv"
     table.write_text("run.duration,run.burn_in\n10,6\n3,1\n", encoding="utf-8")
@@ -191,11 +192,12 @@ def test_a_combination_that_is_not_a_scenario(scenario, tmp_path):
     table.write_text("run.duration,run.burn_in\n10,6\n3,-1\n", encoding="utf-8")
     with pytest.raises(InputError) as info:
         plan_sweep(scenario, None, table=table)
-    assert str(info.value) == f"{table}: feature 1: field 'run.burn_in': must be >= 0, got -1"
+    assert str(info.value) == (f"{table}: feature 1: field 'run.burn_in': -1 is out of "
+                               "range; give a number of at least 0")
     with pytest.raises(InputError) as info:
         plan_sweep(scenario, ["run.duration=4,4.0"])
     assert str(info.value) == ("field '--vary run.duration=4,4.0': the value 4.0 is given "
-                               "twice")
+                               "twice; give each value once")
 
 
 def test_cartesian_product_and_seeds(scenario):
@@ -247,7 +249,8 @@ def test_sweep_table(tmp_path, scenario):
     bad.write_text("prey.growth_rate\n1\n1\n", encoding="utf-8")
     with pytest.raises(InputError) as info:
         read_sweep_table(bad)
-    assert str(info.value) == f"{bad}: feature 1: field '--table': repeats row 0"
+    assert str(info.value) == (f"{bad}: feature 1: field '--table': repeats row 0; give "
+                               "each point once")
 
 
 # ------------------------------------------------------------------------ sweeps

@@ -32,6 +32,18 @@ def typical_gap_km(landscape) -> float:
     return float(np.median(dist) / 1000.0)
 
 
+def nearest_gap_km(landscape, positions) -> np.ndarray:
+    """Boundary-to-boundary distance (km) from each patch at ``positions`` to its nearest
+    other patch, through the spatial index."""
+    geoms = landscape.geometries
+    if geoms.size < 2 or len(positions) == 0:
+        return np.full(len(positions), np.nan)
+    tree = shapely.STRtree(geoms)
+    (_, _), dist = tree.query_nearest(geoms[np.asarray(positions)], exclusive=True,
+                                      return_distance=True, all_matches=False)
+    return np.asarray(dist, dtype=float) / 1000.0
+
+
 def practical_warnings(study) -> list[str]:
     """Advice on a study, one sentence or two each; empty when nothing stands out."""
     sc = study.scenario
@@ -41,16 +53,25 @@ def practical_warnings(study) -> list[str]:
     out = []
     isolated = net.summary()["isolated"]
     if isolated:
+        where = np.flatnonzero(np.isin(ids.astype(str), [str(i) for i in isolated]))
+        gap = nearest_gap_km(land, where)
+        if sc["dispersal.distance"] == "boundary" and np.isfinite(gap).any():
+            fix = (f"If animals do cross, set [dispersal] max_distance_km above "
+                   f"{np.nanmax(gap):.3g} km (the widest gap from one of them to its nearest "
+                   "patch) or add corridors.")
+        else:
+            fix = "If animals do cross, raise [dispersal] max_distance_km or add corridors."
         out.append(f"{len(isolated)} patch(es) have no link ({_some(isolated)}): nothing moves "
-                   "in or out, so a local extinction there is permanent. Consider a larger "
-                   "dispersal.max_distance_km or corridors if animals do cross.")
+                   f"in or out, so a local extinction there is permanent. {fix}")
     threshold = sc["run.extinction_abundance"]
     if threshold > 0 and sc["prey.growth"] != "exponential":
         small = model.params["capacity"] * area < threshold
         if small.any():
             out.append(f"{int(small.sum())} patch(es) hold fewer than {threshold:g} prey even at "
                        f"carrying capacity ({_some(ids[small])}): they are cleared at every "
-                       "census and act only as stepping stones.")
+                       "census and act only as stepping stones. If they should hold prey, "
+                       "check their area and quality, prey.capacity_density, or lower "
+                       "run.extinction_abundance.")
         try:
             _, p_star = interior_equilibrium(model)
         except NotImplementedError:
@@ -60,7 +81,9 @@ def practical_warnings(study) -> list[str]:
             if low.any():
                 out.append(f"{int(low.sum())} patch(es) would hold fewer than {threshold:g} "
                            f"predator(s) at the local equilibrium ({_some(ids[low])}): the "
-                           "predator can live there only as part of the wider network.")
+                           "predator can live there only as part of the wider network, so "
+                           "keep them linked; if they should hold predators on their own, "
+                           "check their quality and prey.capacity_density.")
     gap = typical_gap_km(land)
     if np.isfinite(gap) and gap > 0:
         for s in SPECIES:
@@ -69,7 +92,8 @@ def practical_warnings(study) -> list[str]:
                 out.append(f"the {s} kernel scale ({scale:g} km) is far below the typical gap "
                            f"between neighbouring patches ({gap:.2g} km): emigrants still "
                            "leave at the emigration rate, but nearly all of them go to the "
-                           "nearest neighbour.")
+                           f"nearest neighbour. If they travel farther, raise "
+                           f"{s}.kernel_scale_km towards {gap:.2g} km.")
     rate = float(np.max(model.params["growth_rate"]))
     fastest = max(rate, float(np.max(model.params["mortality"])))
     if fastest > 0 and sc["run.census_interval"] > 0.5 / fastest:

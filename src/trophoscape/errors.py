@@ -7,7 +7,8 @@ links table); the command line prints its one-line message and exits with code 2
 
 from __future__ import annotations
 
-__all__ = ["TrophoscapeError", "InputError", "RunError", "TrophoscapeWarning"]
+__all__ = ["TrophoscapeError", "InputError", "RunError", "TrophoscapeWarning",
+           "allowed_range"]
 
 
 class TrophoscapeError(Exception):
@@ -56,3 +57,16 @@ class RunError(TrophoscapeError, RuntimeError):
 
 class TrophoscapeWarning(UserWarning):
     """Warnings about input that was accepted but changed."""
+
+
+def allowed_range(lo=None, hi=None, lo_open=False, *, integer=False) -> str:
+    """The accepted values in words: "a number from 0 to 1", "a whole number of at least 1"."""
+    what = "a whole number" if integer else "a number"
+    if lo is not None and hi is not None:
+        return f"{what} from {lo:g} to {hi:g}" if not lo_open else \
+            f"{what} above {lo:g} and at most {hi:g}"
+    if lo is not None:
+        return f"{what} above {lo:g}" if lo_open else f"{what} of at least {lo:g}"
+    if hi is not None:
+        return f"{what} of at most {hi:g}"
+    return what

@@ -27,7 +27,7 @@ import pandas as pd
 import pyproj
 import shapely
 
-from .errors import InputError, TrophoscapeWarning
+from .errors import InputError, TrophoscapeWarning, allowed_range
 
 __all__ = [
     "Landscape",
@@ -208,8 +208,8 @@ def landscape_from_frame(gdf, *, id_field=None, crs="auto", fields=None, path=No
     path = None if path is None else Path(path)
     target = None if _is_auto(crs) else _user_crs(crs)
     if len(gdf) == 0:
-        raise InputError("the file holds no features; expected at least one polygon patch",
-                         file=path)
+        raise InputError("the file holds no features; give a file with at least one patch "
+                         "polygon (or name its layer with [patches] layer)", file=path)
     frame = gdf.reset_index(drop=True)
     ids = _ids(frame, id_field, path=path, what="patch")
     refs = ids if id_field is not None else None
@@ -238,12 +238,13 @@ def landscape_from_frame(gdf, *, id_field=None, crs="auto", fields=None, path=No
     flat = ~(area_km2 > 0)  # also catches a repair that left no polygonal part (NaN/0)
     if flat.any():
         i = int(np.flatnonzero(flat)[0])
-        raise InputError("polygon has zero area; expected a patch polygon with positive area",
-                         file=path, feature=_ref(refs, i), field="geometry")
+        raise InputError("polygon has zero area; redraw the patch with a positive area or "
+                         "remove the feature", file=path, feature=_ref(refs, i), field="geometry")
     for i in np.flatnonzero(invalid):
         where = f"{path}: " if path is not None else ""
         warnings.warn(f"{where}{_feature_text(_ref(refs, i))}: geometry was invalid and has "
-                      "been repaired", TrophoscapeWarning, stacklevel=3)
+                      "been repaired (shapely make_valid); check its outline in a GIS if its "
+                      "area looks wrong", TrophoscapeWarning, stacklevel=3)
 
     attributes = frame.drop(columns=[frame.geometry.name, "patch_id", "area_km2"],
                             errors="ignore")
@@ -336,13 +337,14 @@ def read_corridors(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
         if broken.any():
             i = int(np.flatnonzero(broken)[0])
             raise InputError("the parts of this MultiLineString do not join into one line; "
-                             "expected one continuous line from patch to patch",
+                             "merge them into one continuous line from patch to patch",
                              file=path, feature=_ref(refs, i), field="geometry")
     lines = geopandas.GeoSeries(geoms, crs=source).to_crs(crs)
     short = ~(lines.length.to_numpy() > 0)
     if short.any():
         i = int(np.flatnonzero(short)[0])
-        raise InputError("line has zero length; expected a line joining two patches",
+        raise InputError("line has zero length; draw the corridor as a line from one patch "
+                         "to another, or remove the feature",
                          file=path, feature=_ref(refs, i), field="geometry")
     out = frame.drop(columns=[frame.geometry.name])
     if has_ids:
@@ -412,7 +414,8 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     if "cost" not in frame.columns:
         have = ", ".join(repr(c) for c in frame.columns if c != frame.geometry.name)
         raise InputError(f"the file has no 'cost' attribute (it has: {have or 'none'}); "
-                         "expected a cost >= 0 for every candidate", file=path, field="cost")
+                         "add a 'cost' column with a number >= 0 for every candidate",
+                         file=path, field="cost")
     cost = _numbers(frame["cost"], path=path, refs=refs, field="cost", lo=0.0)
     quality = (_numbers(frame["quality"], path=path, refs=refs, field="quality", lo=0.0,
                         lo_open=True, allow_missing=True)
@@ -433,13 +436,14 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
         if broken.any():
             i = int(np.flatnonzero(broken)[0])
             raise InputError("the parts of this MultiLineString do not join into one line; "
-                             "expected one continuous line from patch to patch",
+                             "merge them into one continuous line from patch to patch",
                              file=path, feature=_ref(refs, i), field="geometry")
     short = ~(shapely.length(lines) > 0)
     if short.any():
         i = int(np.flatnonzero(short)[0])
-        raise InputError("candidate has zero length; expected a line or a strip joining two "
-                         "patches", file=path, feature=_ref(refs, i), field="geometry")
+        raise InputError("candidate has zero length; draw it as a line or a strip from one "
+                         "patch to another, or remove the feature", file=path,
+                         feature=_ref(refs, i), field="geometry")
     out = frame.drop(columns=[frame.geometry.name]).copy()
     out["corridor_id"] = ids
     out["cost"] = cost
@@ -507,11 +511,12 @@ def read_links_table(path) -> pd.DataFrame:
     path = Path(path)
     expected = "columns source,target,weight[,survival][,directed]"
     if not path.is_file():
-        raise InputError(f"no such file; expected a CSV table with {expected}", file=path)
+        raise InputError(f"no such file; check the path (relative to the scenario); expected "
+                         f"a CSV table with {expected}", file=path)
     try:
         table = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True)
     except pd.errors.EmptyDataError:
-        raise InputError(f"the file is empty; expected a header row with {expected}",
+        raise InputError(f"the file is empty; write a header row with {expected}",
                          file=path) from None
     except (pd.errors.ParserError, UnicodeDecodeError, OSError) as exc:
         raise InputError(f"cannot be read as CSV ({_first_line(exc)}); expected {expected}",
@@ -532,7 +537,7 @@ def read_links_table(path) -> pd.DataFrame:
     for column in ("source", "target"):
         empty = (table[column] == "").to_numpy()
         if empty.any():
-            raise InputError("patch id is missing; expected the id of a patch", file=path,
+            raise InputError("patch id is missing; fill in the id of a patch", file=path,
                              feature=int(np.flatnonzero(empty)[0]), field=column)
     out = pd.DataFrame({"source": table["source"].astype(str),
                         "target": table["target"].astype(str)})
@@ -562,7 +567,8 @@ def read_links_table(path) -> pd.DataFrame:
 
 def _read_vector(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
     if not path.exists():
-        raise InputError(f"no such file; expected {_VECTOR_FORMATS}", file=path)
+        raise InputError(f"no such file; check the path, which should name {_VECTOR_FORMATS}",
+                         file=path)
     try:
         with warnings.catch_warnings():
             # a text value among numbers: the field checks that follow report it properly
@@ -579,8 +585,8 @@ def _read_vector(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
                                  file=path) from exc
             except (OSError, UnicodeDecodeError):
                 pass
-        raise InputError(f"cannot be read as {_VECTOR_FORMATS}: {_first_line(exc)}",
-                         file=path) from exc
+        raise InputError(f"cannot be read as {_VECTOR_FORMATS}: {_first_line(exc)}; check "
+                         "that it opens in a GIS, or export it again", file=path) from exc
 
 
 def _first_line(exc: BaseException) -> str:
@@ -601,15 +607,16 @@ def _user_crs(crs) -> pyproj.CRS:
     try:
         parsed = pyproj.CRS.from_user_input(crs)
     except pyproj.exceptions.CRSError:
-        raise InputError(f"{crs!r} is not a CRS pyproj understands; expected 'auto' or a "
+        raise InputError(f"{crs!r} is not a CRS pyproj understands; give 'auto' or a "
                          "projected CRS in metres such as 'EPSG:3035'", field=key) from None
     if not parsed.is_projected:
         kind = "a geographic (degrees)" if parsed.is_geographic else "not a projected"
-        raise InputError(f"{crs!r} is {kind} CRS; distances and areas need a projected CRS "
-                         "in metres such as a UTM zone 'EPSG:326NN', or 'auto'", field=key)
+        raise InputError(f"{crs!r} is {kind} CRS; distances and areas need a projected CRS: "
+                         "give 'auto' or one in metres such as a UTM zone 'EPSG:326NN'",
+                         field=key)
     if not _in_metres(parsed):
-        raise InputError(f"{crs!r} is not in metres; expected a projected CRS in metres such "
-                         "as 'EPSG:3035', or 'auto'", field=key)
+        raise InputError(f"{crs!r} is not in metres; give 'auto' or a projected CRS in metres "
+                         "such as 'EPSG:3035'", field=key)
     return parsed
 
 
@@ -624,8 +631,9 @@ def _ids(frame, id_field, *, path, what: str) -> np.ndarray:
         return np.arange(n).astype(str)
     if id_field not in frame.columns or id_field == frame.geometry.name:
         have = ", ".join(repr(c) for c in frame.columns if c != frame.geometry.name)
-        raise InputError(f"no such attribute for {what} ids; the file has: {have or 'none'}",
-                         file=path, field=id_field)
+        raise InputError(f"no such attribute for {what} ids; the file has: {have or 'none'}; "
+                         "name one of them in [patches] id_field, or leave id_field out to "
+                         "number the features", file=path, field=id_field)
     column = frame[id_field]
     missing = column.isna().to_numpy()
     if pd.api.types.is_float_dtype(column) and not missing.any():
@@ -636,15 +644,15 @@ def _ids(frame, id_field, *, path, what: str) -> np.ndarray:
     ids = column.astype(str).str.strip().to_numpy(dtype=object)
     missing = missing | (ids == "")
     if missing.any():
-        raise InputError(f"{what} id is empty; every {what} needs an id", file=path,
+        raise InputError(f"{what} id is empty; give every {what} an id", file=path,
                          feature=int(np.flatnonzero(missing)[0]), field=id_field)
     ids = ids.astype(str)
     dup = pd.Series(ids).duplicated().to_numpy()
     if dup.any():
         j = int(np.flatnonzero(dup)[0])
         i = int(np.flatnonzero(ids == ids[j])[0])
-        raise InputError(f"id is not unique: features {i} and {j} both have it; each {what} "
-                         "needs its own id", file=path, feature=str(ids[j]), field=id_field)
+        raise InputError(f"id is not unique: features {i} and {j} both have it; give each "
+                         f"{what} its own id", file=path, feature=str(ids[j]), field=id_field)
     return ids
 
 
@@ -670,8 +678,8 @@ def _check_types(geoms: np.ndarray, allowed: tuple[int, ...], expected: str, *, 
         problem = "geometry is empty"
     else:
         problem = f"geometry type is {geoms[i].geom_type}"
-    raise InputError(f"{problem}; expected {expected}", file=path, feature=_ref(refs, i),
-                     field="geometry")
+    raise InputError(f"{problem}; expected {expected}: fix the feature or remove it",
+                     file=path, feature=_ref(refs, i), field="geometry")
 
 
 def _check_lonlat(geoms: np.ndarray, *, path, refs, assumed: bool):
@@ -687,7 +695,8 @@ def _check_lonlat(geoms: np.ndarray, *, path, refs, assumed: bool):
     elif path is not None and path.suffix.lower() in (".geojson", ".json"):
         why = "GeoJSON coordinates are WGS 84 lon/lat (RFC 7946); reproject the file to EPSG:4326"
     else:
-        why = "the file's CRS is in degrees"
+        why = ("the file's CRS is in degrees, so these coordinates do not fit it; store the "
+               "file with its true CRS")
     raise InputError(f"coordinates span x {x0:.6g} to {x1:.6g}, y {y0:.6g} to {y1:.6g}, outside "
                      f"longitude -180..180 / latitude -90..90; {why}", file=path,
                      feature=_ref(refs, i), field="geometry")
@@ -739,20 +748,19 @@ def _attribute_values(frame, field: str, *, key, path, refs) -> np.ndarray:
     if field not in frame.columns or field == frame.geometry.name:
         have = ", ".join(repr(c) for c in frame.columns
                          if c not in (frame.geometry.name, "patch_id", "area_km2"))
-        raise InputError(f"no such attribute{named}; the file has: {have or 'none'}",
-                         file=path, field=field)
+        raise InputError(f"no such attribute{named}; the file has: {have or 'none'}; add "
+                         "the column to the patch file or name one of these", file=path,
+                         field=field)
     return _numbers(frame[field], path=path, refs=refs, field=field, lo=0.0, named=named)
 
 
 def _numbers(column: pd.Series, *, path, refs, field: str, lo: float, hi: float | None = None,
              lo_open: bool = False, allow_missing: bool = False, named: str = "") -> np.ndarray:
     """A column as float64, shape (n,); the first bad value raises, naming its feature."""
-    rule = f"a finite number {'>' if lo_open else '>='} {lo:g}"
-    if hi is not None:
-        rule = f"a number from {lo:g} to {hi:g}"
+    rule = allowed_range(lo, hi, lo_open)
 
     def fail(i, problem):
-        raise InputError(f"{problem}; expected {rule}{named}", file=path, feature=_ref(refs, i),
+        raise InputError(f"{problem}; give {rule}{named}", file=path, feature=_ref(refs, i),
                          field=field)
 
     column = column.reset_index(drop=True)
@@ -786,7 +794,8 @@ def read_attributes(path, *, layer=None) -> pd.DataFrame:
     """The attribute table of a patch file, without geometries (for ``trophoscape init``)."""
     path = Path(path)
     if not path.exists():
-        raise InputError(f"no such file; expected {_VECTOR_FORMATS}", file=path)
+        raise InputError(f"no such file; check the path, which should name {_VECTOR_FORMATS}",
+                         file=path)
     import pyogrio
 
     try:
@@ -795,5 +804,5 @@ def read_attributes(path, *, layer=None) -> pd.DataFrame:
                                     category=UserWarning)
             return pyogrio.read_dataframe(path, layer=layer, read_geometry=False)
     except Exception as exc:  # GDAL raises several unrelated types for unreadable data
-        raise InputError(f"cannot be read as {_VECTOR_FORMATS}: {_first_line(exc)}",
-                         file=path) from exc
+        raise InputError(f"cannot be read as {_VECTOR_FORMATS}: {_first_line(exc)}; check "
+                         "that it opens in a GIS, or export it again", file=path) from exc

@@ -21,7 +21,7 @@ import shapely
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from .errors import InputError
+from .errors import InputError, allowed_range
 from .landscape import Landscape, read_corridors, read_links_table
 
 __all__ = [
@@ -75,7 +75,7 @@ def kernel_weight(kernel: str, distance_km, scale_km) -> np.ndarray:
     [1.0, 0.3679]
     """
     if kernel not in KERNELS:
-        raise InputError(f"unknown kernel {kernel!r}; expected one of "
+        raise InputError(f"unknown kernel {kernel!r}; give one of "
                          f"{', '.join(map(repr, KERNELS))}", field="dispersal.kernel")
     d = np.asarray(distance_km, dtype=np.float64)
     return KERNELS[kernel](d, np.asarray(scale_km, dtype=np.float64))
@@ -317,10 +317,10 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
     O(n log n + links), not O(n²).
     """
     if kernel not in _KERNEL_NAMES:
-        raise InputError(f"unknown kernel {kernel!r}; expected one of "
+        raise InputError(f"unknown kernel {kernel!r}; give one of "
                          f"{', '.join(map(repr, _KERNEL_NAMES))}", field="dispersal.kernel")
     if distance not in _DISTANCES:
-        raise InputError(f"unknown distance {distance!r}; expected 'boundary' or 'centroid'",
+        raise InputError(f"unknown distance {distance!r}; give 'boundary' or 'centroid'",
                          field="dispersal.distance")
     max_distance_km = _nonnegative(max_distance_km, "dispersal.max_distance_km")
     corridor_snap_km = _nonnegative(corridor_snap_km, "dispersal.corridor_snap_km")
@@ -421,7 +421,7 @@ def movement_operator(network: Network, *, emigration_rate, scale_km,
     rate = per_patch_array(emigration_rate, n, "emigration_rate", positive=False)
     survival_per_km = float(survival_per_km)
     if not 0.0 <= survival_per_km <= 1.0:
-        raise InputError(f"must be a number from 0 to 1, got {survival_per_km!r}",
+        raise InputError(f"{survival_per_km!r} is out of range; give a number from 0 to 1",
                          field="survival_per_km")
     src, dst = network.source, network.target
     weight = arc_weights(network, scale_km=scale_km)
@@ -447,7 +447,7 @@ def _nonnegative(value, key: str) -> float:
     except (TypeError, ValueError):
         number = np.nan
     if not (np.isfinite(number) and number >= 0):
-        raise InputError(f"must be a finite number >= 0, got {value!r}", field=key)
+        raise InputError(f"{value!r} is out of range; give a number of at least 0", field=key)
     return number
 
 
@@ -461,8 +461,8 @@ def per_patch_array(value, n: int, name: str, *, positive: bool) -> np.ndarray:
                          f"got shape {array.shape}")
     bad = ~np.isfinite(array) | ((array <= 0) if positive else (array < 0))
     if bad.any():
-        rule = "> 0" if positive else ">= 0"
-        raise InputError(f"must be a finite number {rule}, got {float(array[bad][0])!r}",
+        rule = allowed_range(0, None, positive)
+        raise InputError(f"{float(array[bad][0])!r} is out of range; give {rule}",
                          feature=int(np.flatnonzero(bad)[0]), field=name)
     return array
 
@@ -538,7 +538,8 @@ def snap_line_ends(landscape: Landscape, geoms, snap_m: float, *, path, ref, wha
         raise InputError(
             f"{what}its {'first' if e < k else 'last'} point ({x:.1f}, {y:.1f}) is not within "
             f"{snap_m / 1000:g} km of any patch; each end "
-            f"{'must' if what else 'of a corridor must'} lie on or near a patch",
+            f"{'must' if what else 'of a corridor must'} lie on or near a patch: move the "
+            "point onto its patch, or raise [dispersal] corridor_snap_km",
             file=path, feature=ref(e % k), field="geometry")
     a, b = nearest[:k], nearest[k:]
     same = np.flatnonzero(a == b)
@@ -546,7 +547,8 @@ def snap_line_ends(landscape: Landscape, geoms, snap_m: float, *, path, ref, wha
         c = int(same[0])
         raise InputError(
             f"{what}both ends lie at patch {landscape.feature(int(a[c]))!r}; a corridor must "
-            "join two different patches", file=path, feature=ref(c), field="geometry")
+            "join two different patches: move one end to the other patch", file=path,
+            feature=ref(c), field="geometry")
     return a, b
 
 
@@ -564,16 +566,17 @@ def _table_arcs(landscape: Landscape, path: Path, distance: str):
         if unknown.size:
             r = int(unknown[0])
             sample = ", ".join(repr(str(i)) for i in landscape.ids[:3])
-            raise InputError(f"no patch has id {table[column].iloc[r]!r}; expected a patch id "
-                             f"of the patch file (e.g. {sample})", file=path, feature=r,
+            raise InputError(f"no patch has id {table[column].iloc[r]!r}; use an id of the "
+                             f"patch file (e.g. {sample})", file=path, feature=r,
                              field=column)
         ends[column] = found.astype(np.int64)
     s, t = ends["source"], ends["target"]
     loop = np.flatnonzero(s == t)
     if loop.size:
         r = int(loop[0])
-        raise InputError(f"links patch {table['source'].iloc[r]!r} to itself; expected two "
-                         "different patches", file=path, feature=r, field="target")
+        raise InputError(f"links patch {table['source'].iloc[r]!r} to itself; give two "
+                         "different patches or drop the row", file=path, feature=r,
+                         field="target")
     both = ~table["directed"].to_numpy(dtype=bool)
     rows = np.concatenate([np.arange(len(table)), np.flatnonzero(both)])
     src = np.concatenate([s, t[both]])

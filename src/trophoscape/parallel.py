@@ -95,7 +95,8 @@ def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
 
     tasks = list(tasks)
     if retries < 0:
-        raise InputError(f"must be at least 0, got {retries}", field="retries")
+        raise InputError(f"{retries} is out of range; give a whole number of at least 0",
+                         field="retries")
     bar = tqdm(total=len(tasks), disable=not progress, desc=desc, unit="run", delay=1.0)
     try:
         if scheduler is not None or dask_local is not None:
@@ -103,7 +104,8 @@ def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
             return
         workers = default_workers() if workers is None else int(workers)
         if workers < 1:
-            raise InputError(f"must be at least 1, got {workers}", field="--workers")
+            raise InputError(f"{workers} is out of range; give a whole number of at least 1, "
+                             "or leave --workers out to use every core", field="--workers")
         if workers == 1 or len(tasks) <= 1:
             for task in tasks:
                 on_result(task, *_call(fn, task))
@@ -207,7 +209,8 @@ def _run_dask(fn, tasks, on_result, scheduler, dask_local, retries, bar):
     try:
         if scheduler is None:
             if int(dask_local) < 1:
-                raise InputError(f"must be at least 1, got {dask_local}", field="--dask-local")
+                raise InputError(f"{dask_local} is out of range; give the number of local Dask "
+                                 "workers, a whole number of at least 1", field="--dask-local")
             # A task is moved off a lost worker this many times before it counts as failed.
             with dask.config.set({"distributed.scheduler.allowed-failures": int(retries)}):
                 cluster = LocalCluster(n_workers=int(dask_local), threads_per_worker=1,

@@ -122,7 +122,8 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
     path = Path(path)
     expected = "a CSV with columns source,target (patch ids of linked patches)"
     if not path.is_file():
-        raise InputError(f"no such file; expected {expected}, or 'all' or 'none'", file=path)
+        raise InputError(f"no such file; check the path, or give 'all' or 'none'; expected "
+                         f"{expected}", file=path)
     try:
         table = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True)
     except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
@@ -131,7 +132,7 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
     table.columns = [str(c).strip() for c in table.columns]
     for column in ("source", "target"):
         if column not in table.columns:
-            raise InputError(f"the table has no {column!r} column; expected {expected}",
+            raise InputError(f"the table has no {column!r} column; add it: expected {expected}",
                              file=path, field=column)
     position = pd.Index(study.ids)
     ends = []
@@ -139,7 +140,8 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
         found = position.get_indexer(table[column].str.strip().to_numpy())
         if (found < 0).any():
             r = int(np.flatnonzero(found < 0)[0])
-            raise InputError(f"no patch has id {table[column].iloc[r]!r}; expected a patch id",
+            raise InputError(f"no patch has id {table[column].iloc[r]!r}; use an id of the "
+                             "patch file",
                              file=path, feature=r, field=column)
         ends.append(found)
     from .analysis.planning import _linked_pairs
@@ -150,8 +152,9 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
         pair = (min(a, b), max(a, b))
         if pair not in linked:
             raise InputError(f"patches {table['source'].iloc[r]!r} and "
-                             f"{table['target'].iloc[r]!r} are not linked; expected a link of "
-                             "the network", file=path, feature=r, field="target")
+                             f"{table['target'].iloc[r]!r} are not linked; list only links of "
+                             "the network (layer 'links' of a run's patches.gpkg)", file=path,
+                             feature=r, field="target")
         pairs.append(pair)
     return pairs
 
@@ -162,14 +165,19 @@ def run_corridors(args) -> int:
     from .study import load_study
 
     if not math.isfinite(args.budget) or args.budget < 0:
-        raise InputError(f"must be a finite number >= 0, got {args.budget!r}", field="--budget")
+        raise InputError(f"{args.budget!r} is out of range; give the total cost the chosen set "
+                         "may reach, a number of at least 0 in the unit of 'cost'",
+                         field="--budget")
     if args.screen is not None and args.screen < 1:
-        raise InputError(f"must be at least 1, got {args.screen}", field="--screen")
+        raise InputError(f"{args.screen} is out of range; give how many candidates to "
+                         "simulate, a whole number of at least 1", field="--screen")
     if args.exhaustive_limit < 0:
-        raise InputError(f"must be 0 or more, got {args.exhaustive_limit}",
+        raise InputError(f"{args.exhaustive_limit} is out of range; give a whole number of at "
+                         "least 0 (0 turns the exhaustive search off)",
                          field="--exhaustive-limit")
     if args.workers is not None and args.workers < 1:
-        raise InputError(f"must be at least 1, got {args.workers}", field="--workers")
+        raise InputError(f"{args.workers} is out of range; give a whole number of at least 1, "
+                         "or leave --workers out to use every core", field="--workers")
     weights = parse_weights(args.weights)
     study = load_study(args.scenario)
     candidates = read_candidates(args.candidates, study.landscape, layer=args.layer,
@@ -526,7 +534,8 @@ def run_compare(args) -> int:
     from .study import load_study, run_study
 
     if len(args.scenarios) < 2:
-        raise InputError(f"needs at least two scenarios, got {len(args.scenarios)}",
+        raise InputError(f"needs at least two scenarios, got {len(args.scenarios)}; give two "
+                         "or more scenario files, the first being the reference",
                          field="scenarios")
     columns = [c.strip() for c in args.columns.split(",") if c.strip()]
     studies = [load_study(p) for p in args.scenarios]

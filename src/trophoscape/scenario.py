@@ -19,7 +19,7 @@ from collections.abc import Mapping
 from typing import Any, Callable
 
 from .dynamics import GROWTH_FORMS, RESPONSES
-from .errors import InputError
+from .errors import InputError, allowed_range
 
 __all__ = ["Scenario", "FieldRef", "SCHEMA", "read_scenario", "parse_scenario"]
 
@@ -43,17 +43,24 @@ class Key:
 
 # ----------------------------------------------------------------------- value checks
 def _number(lo=None, hi=None, *, lo_open=False, integer=False):
+    wanted = allowed_range(lo, hi, lo_open, integer=integer)
+
     def check(v):
         if isinstance(v, bool) or not isinstance(v, (int, float)):
-            return f"must be a number, got {v!r}"
+            quoted = ""
+            if isinstance(v, str):
+                try:
+                    float(v)
+                    quoted = ", without quotes"
+                except ValueError:
+                    pass
+            return f"{v!r} is not a number; give {wanted}{quoted}"
         if integer and not float(v).is_integer():
-            return f"must be a whole number, got {v!r}"
+            return f"{v!r} is not a whole number; give {wanted}"
         if not math.isfinite(v):
-            return f"must be finite, got {v!r}"
-        if lo is not None and (v <= lo if lo_open else v < lo):
-            return f"must be {'>' if lo_open else '>='} {lo}, got {v!r}"
-        if hi is not None and v > hi:
-            return f"must be <= {hi}, got {v!r}"
+            return f"{v!r} is not a finite number; give {wanted}"
+        if lo is not None and (v <= lo if lo_open else v < lo) or hi is not None and v > hi:
+            return f"{v!r} is out of range; give {wanted}"
         return None
 
     check.bounds = (lo, hi, lo_open)
@@ -63,7 +70,12 @@ def _number(lo=None, hi=None, *, lo_open=False, integer=False):
 def _choice(*options):
     def check(v):
         if v not in options:
-            return f"must be one of {', '.join(repr(o) for o in options)}, got {v!r}"
+            close = (difflib.get_close_matches(v, [str(o) for o in options], n=1, cutoff=0.6)
+                     if isinstance(v, str) else [])
+            choices = ", ".join(repr(o) for o in options)
+            if close:
+                return f"{v!r} is not one of {choices}; did you mean {close[0]!r}?"
+            return f"{v!r} is not one of the choices; give one of {choices}"
         return None
 
     return check
@@ -74,7 +86,7 @@ def _text(optional=False):
         if v is None and optional:
             return None
         if not isinstance(v, str) or not v.strip():
-            return f"must be a non-empty string, got {v!r}"
+            return f"{v!r} is not a text; give a non-empty text in quotes"
         return None
 
     return check
@@ -82,7 +94,7 @@ def _text(optional=False):
 
 def _flag(v):
     if not isinstance(v, bool):
-        return f"must be true or false, got {v!r}"
+        return f"{v!r} is not true or false; write true or false (lower case, no quotes)"
     return None
 
 
@@ -93,7 +105,7 @@ def _number_or(word, **bounds):
         if v == word:
             return None
         msg = inner(v)
-        return None if msg is None else f"{msg[:-len(repr(v))]}{v!r} (or {word!r})"
+        return None if msg is None else f"{msg}, or {word!r}"
 
     check.bounds = inner.bounds
     return check
@@ -106,7 +118,8 @@ def _below_one(v):
     """A coefficient in [0, 1): 1 would be noise that never changes."""
     msg = _nonneg(v)
     if msg is None and v >= 1:
-        return f"must be >= 0 and < 1, got {v!r}"
+        return (f"{v!r} is out of range; give a number of at least 0 and below 1 "
+                "(1 would never change)")
     return msg
 _pos = _number(0, lo_open=True)
 
@@ -296,9 +309,14 @@ def read_scenario(path) -> Scenario:
         raw_bytes = path.read_bytes()
         text = raw_bytes.decode("utf-8")
     except FileNotFoundError:
-        raise InputError("scenario file not found", file=path) from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read the scenario file ({exc})", file=path) from None
+        raise InputError("scenario file not found; check the path (a relative path starts "
+                         "from the current folder)", file=path) from None
+    except UnicodeDecodeError:
+        raise InputError("cannot read the scenario file: it is not UTF-8 text; save it as "
+                         "UTF-8 (plain text) and try again", file=path) from None
+    except OSError as exc:
+        raise InputError(f"cannot read the scenario file ({exc.strerror or exc}); check that "
+                         "it is a readable file", file=path) from None
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -306,7 +324,8 @@ def read_scenario(path) -> Scenario:
         if detail.endswith("(at end of document)"):
             detail = detail.replace("(at end of document)",
                                     f"(at the end, line {text.count(chr(10)) or 1})")
-        raise InputError(f"not valid TOML: {detail}", file=path) from None
+        raise InputError(f"not valid TOML: {detail}; correct the file there (text values "
+                         "need quotes, sections [brackets])", file=path) from None
     sc = parse_scenario(raw, path=path, base_dir=path.parent, text=text)
     object.__setattr__(sc, "sha256", hashlib.sha256(raw_bytes).hexdigest())
     return sc
@@ -329,7 +348,8 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
                 f"; the sections are {', '.join(sections)}")
             raise InputError(f"unknown section or top-level key{hint}", file=file, field=name)
         if not isinstance(content, dict):
-            raise InputError(f"must be a table [{name}], got {content!r}", file=file, field=name)
+            raise InputError(f"{content!r} is not a section; write [{name}] on a line of its "
+                             "own with its keys below it", file=file, field=name)
         for key in content:
             if key not in SCHEMA[name]:
                 hint = _suggest(key, SCHEMA[name]) or (
@@ -343,15 +363,17 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
             full = f"{section}.{key}" if section else key
             if key not in given:
                 if spec.default is None and section == "patches" and key == "path":
-                    raise InputError("is required: the patch file (GeoJSON, GeoPackage or "
+                    raise InputError("is missing; add path = \"patches.geojson\" under "
+                                     "[patches], naming the patch file (GeoJSON, GeoPackage or "
                                      "Shapefile) relative to the scenario", file=file, field=full)
                 values[full] = spec.default
                 continue
             value = given[key]
             if spec.per_patch and isinstance(value, dict):
                 if set(value) != {"field"} or not isinstance(value["field"], str):
-                    raise InputError('a per-patch value must be written { field = "ATTRIBUTE" },'
-                                     f" got {value!r}", file=file, field=full)
+                    raise InputError(f"{value!r} is not a per-patch value; write "
+                                     '{ field = "ATTRIBUTE" } with a column of the patch file, '
+                                     "or give one number", file=file, field=full)
                 values[full] = FieldRef(value["field"])
                 continue
             problem = spec.check(value)
@@ -363,11 +385,13 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
 
     run = values
     if run["run.burn_in"] >= run["run.duration"]:
-        raise InputError(f"must be less than run.duration ({run['run.duration']}), "
-                         f"got {run['run.burn_in']}", file=file, field="run.burn_in")
+        raise InputError(f"{run['run.burn_in']:g} is not below run.duration "
+                         f"{run['run.duration']:g}; shorten the burn-in or lengthen the run",
+                         file=file, field="run.burn_in")
     if run["run.census_interval"] > run["run.duration"]:
-        raise InputError(f"must not exceed run.duration ({run['run.duration']}), "
-                         f"got {run['run.census_interval']}", file=file, field="run.census_interval")
+        raise InputError(f"{run['run.census_interval']:g} is longer than run.duration "
+                         f"{run['run.duration']:g}; give a census interval at most the duration",
+                         file=file, field="run.census_interval")
     if values["dispersal.kernel"] == "none" and not (values["dispersal.links"] or values["dispersal.corridors"]):
         pass  # a network of isolated patches is allowed (no dispersal)
     if run["run.replicates"] != 1 and not (values["noise.environmental_sd"] > 0
@@ -395,7 +419,7 @@ def _ids_list(v, *, allow_all):
     if (not isinstance(v, (list, tuple)) or not v
             or not all(isinstance(x, (str, int)) and not isinstance(x, bool) for x in v)):
         alternative = ' or "all"' if allow_all else ""
-        return f"must be a list of patch ids{alternative}, got {v!r}"
+        return f"{v!r} is not a list of patch ids; give a list such as [\"A\", \"B\"]{alternative}"
     return None
 
 
@@ -403,9 +427,9 @@ def _pairs_list(v):
     if (not isinstance(v, (list, tuple)) or not v
             or not all(isinstance(p, (list, tuple)) and len(p) == 2 and not _ids_list(p, allow_all=False)
                        for p in v)):
-        return f'must be a list of pairs of patch ids, e.g. [["A", "B"]], got {v!r}'
+        return f'{v!r} is not a list of pairs of patch ids; give pairs such as [["A", "B"]]'
     if any(str(a) == str(b) for a, b in v):
-        return "a pair must join two different patches"
+        return "a pair names the same patch twice; give two different patch ids in each pair"
     return None
 
 
@@ -427,21 +451,24 @@ def _parse_shocks(tables, values, file) -> tuple:
     from .shocks import SHOCK_KINDS
 
     if isinstance(tables, Mapping):
-        raise InputError("must be an array of tables, written [[shock]] (double brackets)",
+        raise InputError("is not a list of shock tables; write each shock as a [[shock]] "
+                         "table (double brackets) with its keys below it",
                          file=file, field="shock")
     out = []
     kinds = ", ".join(repr(k) for k in SHOCK_KINDS)
     for i, table in enumerate(tables):
         where = f"shock[{i}]"
         if not isinstance(table, Mapping):
-            raise InputError(f"must be a table, got {table!r}", file=file, field=where)
+            raise InputError(f"{table!r} is not a shock table; write the shock's keys on "
+                             "the lines below its [[shock]] line", file=file, field=where)
         table = dict(table)
         if "kind" not in table:
-            raise InputError(f"is required: one of {kinds}", file=file, field=f"{where}.kind")
+            raise InputError(f"is missing; add kind = one of {kinds}", file=file,
+                             field=f"{where}.kind")
         kind = table["kind"]
         if kind not in SHOCK_KINDS:
             hint = _suggest(str(kind), SHOCK_KINDS) if isinstance(kind, str) else ""
-            raise InputError(f"unknown shock kind {kind!r}{hint or f'; expected one of {kinds}'}",
+            raise InputError(f"unknown shock kind {kind!r}{hint or f'; give one of {kinds}'}",
                              file=file, field=f"{where}.kind")
         cls = SHOCK_KINDS[kind]
         for key in table:
@@ -452,13 +479,15 @@ def _parse_shocks(tables, values, file) -> tuple:
                 raise InputError(f"unknown key{hint}", file=file, field=f"{where}.{key}")
             if key != "at" and key not in cls.takes:
                 raise InputError(f"does not apply to a {kind} shock, which takes at, "
-                                 f"{', '.join(cls.takes)}", file=file, field=f"{where}.{key}")
+                                 f"{', '.join(cls.takes)}; remove it or change the kind",
+                                 file=file, field=f"{where}.{key}")
         shock = {"kind": kind}
         for key in ("at",) + cls.takes:
             spec = SHOCK_KEYS[key]
             if key not in table:
                 if key in cls.needs:
-                    raise InputError(f"is required for a {kind} shock ({spec.doc})",
+                    raise InputError(f"is missing; a {kind} shock needs it ({spec.doc}): "
+                                     f"add {key} = ... to this [[shock]] table",
                                      file=file, field=f"{where}.{key}")
                 shock[key] = values["run.burn_in"] if key == "at" else spec.default
                 continue
@@ -477,8 +506,9 @@ def _parse_shocks(tables, values, file) -> tuple:
                 value = float(value)
             shock[key] = value
         if shock["at"] >= values["run.duration"]:
-            raise InputError(f"must be less than run.duration ({values['run.duration']}), "
-                             f"got {shock['at']}", file=file, field=f"{where}.at")
+            raise InputError(f"{shock['at']:g} is not before the end of the run "
+                             f"(run.duration {values['run.duration']:g}); set the shock earlier "
+                             "or lengthen the run", file=file, field=f"{where}.at")
         out.append(MappingProxyType(shock))
     return tuple(out)
 

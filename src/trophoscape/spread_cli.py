@@ -63,8 +63,8 @@ def _origin_count(text):
     except ValueError:
         n = 0
     if n < 1:
-        raise InputError(f"must be a whole number >= 1 or 'all', got {text!r}",
-                         field="--origins")
+        raise InputError(f"{text!r} is not a whole number of at least 1 or 'all'; give e.g. "
+                         "--origins 50, or --origins all", field="--origins")
     return n
 
 

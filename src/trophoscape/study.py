@@ -19,7 +19,7 @@ from .analysis.persistence import occupancy_curve, persistence_table, regional_p
 from .analysis.stability import stability_analysis
 from .analysis.synchrony import synchrony_analysis
 from .dynamics import PARAMETER_KEYS, LocalModel, interior_equilibrium
-from .errors import InputError, TrophoscapeWarning
+from .errors import InputError, TrophoscapeWarning, allowed_range
 from .landscape import Landscape, read_patches
 from .network import Network, arc_weights, build_network, movement_operator
 from .scenario import FieldRef, Scenario, bounds_of, read_scenario
@@ -83,8 +83,8 @@ def _per_patch(scenario: Scenario, landscape: Landscape, key: str) -> np.ndarray
         bad |= values > hi
     if bad.any():
         i = int(np.argmax(bad))
-        rule = f"{'>' if lo_open else '>='} {lo}" + (f" and <= {hi}" if hi is not None else "")
-        raise InputError(f"value {float(values[i])!r} for {key} must be {rule}",
+        raise InputError(f"value {float(values[i])!r} is out of range for {key}; give "
+                         f"{allowed_range(lo, hi, lo_open)} in every feature",
                          file=landscape.path, feature=_feature(landscape, i), field=value.field)
     return values
 
@@ -194,7 +194,9 @@ def _initial_state(sc: Scenario, landscape: Landscape, model: LocalModel) -> np.
                     warnings.warn(
                         f"{sc.path or landscape.path}: {int(missing.sum())} patch(es) have no coexistence "
                         "equilibrium (the predator cannot persist there); they start with prey "
-                        "at carrying capacity and no predator", TrophoscapeWarning, stacklevel=3)
+                        "at carrying capacity and no predator; give a predator density per "
+                        "km² instead of 'equilibrium' if they should start with predators",
+                        TrophoscapeWarning, stacklevel=3)
                     k = model.params["capacity"]
                     eq = (np.where(missing, k, eq[0]), np.where(missing, 0.0, eq[1]))
             densities[s] = eq[SPECIES.index(s)]

@@ -149,20 +149,22 @@ def parse_vary(arg: str) -> tuple[str, list]:
     if ":" in spec and "," not in spec and not _default_is_text(key):
         parts = spec.split(":")
         if len(parts) != 3:
-            raise InputError(f"a range must be START:STOP:COUNT, got {spec!r}", field=field)
+            raise InputError(f"{spec!r} is not a range START:STOP:COUNT; give e.g. 0.5:1.5:11",
+                             field=field)
         try:
             start, stop = float(parts[0]), float(parts[1])
         except ValueError:
-            raise InputError(f"START and STOP of a range must be numbers, got {spec!r}",
-                             field=field) from None
+            raise InputError(f"START and STOP of the range {spec!r} are not both numbers; give "
+                             "numbers, e.g. 0.5:1.5:11", field=field) from None
         try:
             count = int(parts[2])
         except ValueError:
             count = 0
         if count < 1 or not math.isfinite(start) or not math.isfinite(stop):
-            raise InputError(f"COUNT of a range must be a whole number >= 1, got {parts[2]!r}"
-                             if count < 1 else f"START and STOP must be finite, got {spec!r}",
-                             field=field)
+            raise InputError(f"COUNT {parts[2]!r} of the range is not a whole number of at "
+                             "least 1; give e.g. 0.5:1.5:11" if count < 1 else
+                             f"START and STOP of the range {spec!r} are not both finite; give "
+                             "finite numbers, e.g. 0.5:1.5:11", field=field)
         if count == 1:
             values = [_tidy(start)]
         else:
@@ -171,14 +173,16 @@ def parse_vary(arg: str) -> tuple[str, list]:
     else:
         items = [s for s in spec.split(",")]
         if any(not s.strip() for s in items):
-            raise InputError(f"empty value in the list {spec!r}", field=field)
+            raise InputError(f"empty value in the list {spec!r}; remove the extra comma",
+                             field=field)
         values = [_token(s, key) for s in items]
     seen = set()
     for v in values:
         number = isinstance(v, (int, float)) and not isinstance(v, bool)
         marker = repr(float(v)) if number else json.dumps(v)
         if marker in seen:
-            raise InputError(f"the value {v!r} is given twice", field=field)
+            raise InputError(f"the value {v!r} is given twice; give each value once",
+                             field=field)
         seen.add(marker)
     return key, values
 
@@ -197,10 +201,11 @@ def read_sweep_table(path) -> list[dict]:
         with open(path, newline="", encoding="utf-8-sig") as fh:
             rows = list(csv.reader(fh))
     except FileNotFoundError:
-        raise InputError("sweep table not found", file=path, field="--table") from None
-    except (OSError, UnicodeDecodeError, csv.Error) as exc:
-        raise InputError(f"cannot read the sweep table ({exc})", file=path,
+        raise InputError("sweep table not found; check the path", file=path,
                          field="--table") from None
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"cannot read the sweep table ({exc}); save it as a CSV text file",
+                         file=path, field="--table") from None
     rows = [r for r in rows if any(c.strip() for c in r)]
     if not rows:
         raise InputError("the sweep table is empty; give a header of scenario keys and one "
@@ -208,19 +213,21 @@ def read_sweep_table(path) -> list[dict]:
     header = [h.strip() for h in rows[0]]
     for h in header:
         if not h:
-            raise InputError("empty column name in the header", file=path, field="--table")
+            raise InputError("empty column name in the header; head every column with a "
+                             "scenario key, e.g. prey.growth_rate", file=path, field="--table")
         _check_key(h, file=path, field=h)
     if len(set(header)) != len(header):
         dup = next(h for h in header if header.count(h) > 1)
-        raise InputError("column given twice", file=path, field=dup)
+        raise InputError("column given twice; give each key one column", file=path,
+                         field=dup)
     if len(rows) == 1:
-        raise InputError("the sweep table has a header but no rows", file=path,
-                         field="--table")
+        raise InputError("the sweep table has a header but no rows; add one row per point",
+                         file=path, field="--table")
     points, seen = [], {}
     for i, row in enumerate(rows[1:]):
         if len(row) != len(header):
-            raise InputError(f"has {len(row)} cells, the header {len(header)}", file=path,
-                             feature=i, field="--table")
+            raise InputError(f"has {len(row)} cells, the header {len(header)}; give every row "
+                             "one cell per column", file=path, feature=i, field="--table")
         point = {}
         for h, cell in zip(header, row):
             if not cell.strip():
@@ -229,8 +236,8 @@ def read_sweep_table(path) -> list[dict]:
             point[h] = _token(cell, h)
         marker = json.dumps(point, sort_keys=True)
         if marker in seen:
-            raise InputError(f"repeats row {seen[marker]}", file=path, feature=i,
-                             field="--table")
+            raise InputError(f"repeats row {seen[marker]}; give each point once", file=path,
+                             feature=i, field="--table")
         seen[marker] = i
         points.append(point)
     return points
@@ -329,7 +336,8 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
             _check_key(key, field=f"--vary {key}")
             values = list(values) if isinstance(values, (list, tuple, range)) else [values]
             if not values:
-                raise InputError("no values", field=f"--vary {key}")
+                raise InputError("no values; give KEY=VALUES, e.g. prey.growth_rate=0.5,1,1.5",
+                                 field=f"--vary {key}")
             groups.append(([key], [{key: v} for v in values]))
             origins.setdefault(key, ("--vary", key))
     else:
@@ -338,8 +346,8 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
             keys = list(spec[0])
             for i, point in enumerate(spec):
                 if list(point) != keys:
-                    raise InputError(f"point {i} has keys {list(point)}, point 0 has {keys}",
-                                     field="variants")
+                    raise InputError(f"point {i} has keys {list(point)}, point 0 has {keys}; "
+                                     "give every point the same keys", field="variants")
                 for k in keys:
                     _check_key(k, field="variants")
                     origins.setdefault(k, ("--vary", k))
@@ -359,7 +367,8 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
     for group_keys, _ in groups:
         for k in group_keys:
             if k in keys:
-                raise InputError(f"the key {k!r} is varied twice", field=f"--vary {k}")
+                raise InputError(f"the key {k!r} is varied twice; give all its values in one "
+                                 "--vary", field=f"--vary {k}")
             keys.append(k)
     if not groups:
         return [], [{}], origins
@@ -381,12 +390,12 @@ def _value_error(scenario, exc: InputError, point: dict, origins: dict) -> Input
         except InputError as alone:
             origin = origins[key]
             if origin[0] == "--vary":
-                return InputError(f"{key} {alone.message}", field=f"--vary {origin[1]}")
+                return InputError(f"{key}: {alone.message}", field=f"--vary {origin[1]}")
             _, path, rows = origin
             row = next(i for i, r in enumerate(rows) if r.get(key) == point[key])
             return InputError(alone.message, file=path, feature=row, field=key)
     return InputError(f"the point {_describe(point)} is not a valid scenario: "
-                      f"{exc.field} {exc.message}", file=scenario.path, field="--vary")
+                      f"{exc.field}: {exc.message}", file=scenario.path, field="--vary")
 
 
 def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 1,
@@ -409,7 +418,8 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
 
     scenario = read_scenario(scenario_path)
     if isinstance(replicates, bool) or not isinstance(replicates, int) or replicates < 1:
-        raise InputError(f"must be a whole number >= 1, got {replicates!r}",
+        raise InputError(f"{replicates!r} is not a whole number of at least 1; give the "
+                         "number of replicates per point, e.g. --replicates 10",
                          field="--replicates")
     keys, points, origins = _as_points(variants_or_vary_specs, table=table)
     runs = []
@@ -785,5 +795,5 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
     if len(mine) and (mine["status"] != "ok").all():
         first = mine["error"].iloc[0]
         raise RunError(f"every run of the sweep failed; the first error: {first} (see "
-                       f"{out / TABLE_NAME})")
+                       f"{out / TABLE_NAME}); fix that and run the sweep again")
     return frame

@@ -126,12 +126,13 @@ def write_template(folder, *, patches=None, name="scenario.toml", force=False) -
     """Write ``folder/name`` for the patch file in ``folder`` (or ``patches``)."""
     folder = Path(folder)
     if not folder.is_dir():
-        raise InputError("no such folder", file=folder)
+        raise InputError("no such folder; create it and put the patch file in it, or check "
+                         "the path", file=folder)
     patch_file = Path(patches) if patches else find_patch_file(folder)
     table = read_attributes(patch_file)
     if table.empty:
-        raise InputError("the file holds no features; expected at least one polygon patch",
-                         file=patch_file)
+        raise InputError("the file holds no features; give a file with at least one patch "
+                         "polygon", file=patch_file)
     target = folder / name
     if target.exists() and not force:
         raise InputError("already exists; use --force to replace it", file=target)

@@ -746,7 +746,8 @@ class Planner:
                           dtype=np.int64)
         if pool.size > limit:
             raise InputError(f"{pool.size} candidates are too many for an exhaustive search "
-                             f"(2^{pool.size} runs); at most {limit}", field="--exhaustive")
+                             f"(2^{pool.size} runs); at most {limit}: simulate fewer with "
+                             "--screen K, or rely on the greedy set", field="--exhaustive")
         masks = np.arange(1, 1 << pool.size, dtype=np.int64)
         bits = (masks[:, None] >> np.arange(pool.size)) & 1
         total = bits @ cost[pool] if pool.size else np.zeros(0)

@@ -416,12 +416,14 @@ def _burn_in(study, *, progress=False):
 def _check_shocks(study, shocks):
     sc = study.scenario
     if not shocks:
-        raise InputError("the spread analysis needs at least one [[shock]] table",
+        raise InputError("the spread analysis needs at least one [[shock]] table; add one, "
+                         "e.g. [[shock]] with kind = \"predator_removal\" and patches = [...]",
                          file=sc.path, field="shock")
     for i, shock in enumerate(shocks):
         if shock.at < sc["run.burn_in"]:
-            raise InputError(f"must be at or after run.burn_in ({sc['run.burn_in']:g}) for "
-                             f"the spread analysis, got {shock.at:g}", file=sc.path,
+            raise InputError(f"{shock.at:g} is before run.burn_in {sc['run.burn_in']:g}; set "
+                             f"the shock at {sc['run.burn_in']:g} or later (the spread is "
+                             "measured from the state after burn-in)", file=sc.path,
                              field=f"shock[{i}].at")
 
 
@@ -617,7 +619,8 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
     tables = [dict(t) for t in sc["shock"]]
     if not _retarget(tables, "x"):
         raise InputError("an origin scan needs a shock other than link_cut to aim at each "
-                         "origin", file=sc.path, field="shock")
+                         "origin; add one, e.g. kind = \"predator_removal\"", file=sc.path,
+                         field="shock")
     origins = (np.arange(study.landscape.n_patches) if origins is None
                else np.asarray(origins, dtype=np.int64))
     key = uuid.uuid4().hex
