@@ -192,3 +192,40 @@ def test_isolines_are_drawn(tmp_path):
     a, b = mpimg.imread(plain), mpimg.imread(lines)
     assert a.shape == b.shape
     assert np.abs(a - b).max() > 0.2
+
+
+def _drawn_texts(monkeypatch):
+    """Collect every text a map draws (monkeypatched around the saving step)."""
+    import matplotlib.text
+
+    import trophoscape.plot as plot
+
+    texts, save = [], plot._save
+
+    def keep(fig, path):
+        texts.extend(t.get_text() for t in fig.findobj(matplotlib.text.Text))
+        return save(fig, path)
+
+    monkeypatch.setattr(plot, "_save", keep)
+    return texts
+
+
+def test_constant_map_says_so_and_labels_no_extremes(tmp_path, monkeypatch):
+    # values equal up to rounding: one tick "(every patch)", no offset such as "1e-9+9.97e-1",
+    # and no "highest"/"lowest" labels that would single out a rounding error
+    from trophoscape.plot import patch_map
+    from trophoscape.testing import grid_landscape
+
+    land = grid_landscape(2, 3, spacing_km=1.5, size_km=1.0)
+    frame = land.frame[["patch_id", "geometry"]].copy()
+    frame["share"] = 1.0 + np.array([0.0, 1e-12, -1e-12, 0.0, 0.0, 0.0])
+    texts = _drawn_texts(monkeypatch)
+    patch_map(frame, "share", path=tmp_path / "c.png")
+    assert "1 (every patch)" in texts
+    assert not any("highest" in t or "lowest" in t or "e-" in t for t in texts)
+    texts.clear()
+    frame["share"] = [-0.0, 0.5, 0.2, 0.3, 0.1, 0.4]
+    patch_map(frame, "share", path=tmp_path / "z.png")
+    lowest = [t for t in texts if "lowest" in t]
+    assert lowest == [f"{frame['patch_id'].iloc[0]} (lowest: 0)"]
+    assert any("highest: 0.5" in t for t in texts)

@@ -247,12 +247,12 @@ def test_unknown_ids_and_unlinked_pairs_are_named():
     with pytest.raises(InputError) as info:
         build_shocks(tables, ids=land.ids, network=net, file="s.toml")
     assert str(info.value) == ("s.toml: field 'shock[0].patches': no patch has id '9'; "
-                               "expected ids of the patch file (e.g. '0', '1', '2')")
+                               "use ids of the patch file's id field (e.g. '0', '1', '2')")
     cut = [{"kind": "link_cut", "at": 1.0, "links": (("0", "1"), ("0", "3"))}]
     with pytest.raises(InputError) as info:
         build_shocks(cut, ids=land.ids, network=net, file="s.toml")
     assert str(info.value) == ("s.toml: field 'shock[0].links': no link joins '0' and '3'; "
-                               "link_cut takes pairs of linked patches")
+                               "list only linked pairs (layer links of patches.gpkg)")
     (ok,) = build_shocks([{"kind": "link_cut", "at": 1.0, "links": (("0", "1"),)}],
                          ids=land.ids, network=net)
     np.testing.assert_array_equal(ok.pairs, [[0, 1]])

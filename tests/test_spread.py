@@ -304,5 +304,5 @@ def test_spread_command_bad_input_exits_2_and_writes_nothing(tmp_path, spread_co
     assert spread_command(["spread", str(toml), "--out", str(out), "--quiet"]) == 2
     err = capsys.readouterr().err
     assert err.strip() == (f"error: {toml}: field 'shock[0].patches': no patch has id "
-                           "'nowhere'; expected ids of the patch file (e.g. '0', '1', '2')")
+                           "'nowhere'; use ids of the patch file's id field (e.g. '0', '1', '2')")
     assert not out.exists()

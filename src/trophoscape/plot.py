@@ -100,7 +100,7 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
 
     kind = _value_kind(values, categorical)
     handles = []
-    colourbar = None
+    colourbar = constant = None
     colours = np.tile(_rgba(NO_VALUE_COLOUR), (len(geoms), 1))
     if kind == "bool":
         # Works for bool, nullable "boolean" and object columns of True/False/NaN alike.
@@ -129,8 +129,11 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
                 norm = CenteredNorm(vcenter=0.0, halfrange=half)
             else:
                 lo, hi = float(finite.min()), float(finite.max())
-                if lo == hi:  # one value: give the scale some width so the colour is mid-range
-                    lo, hi = lo - 0.5 * (abs(lo) or 1.0), hi + 0.5 * (abs(hi) or 1.0)
+                if hi - lo <= 1e-9 * max(abs(lo), abs(hi)):
+                    # one value (up to rounding): mid-range colour, one tick at that value
+                    constant = 0.5 * (lo + hi) + 0.0  # + 0.0 turns -0.0 into 0.0
+                    lo = constant - 0.5 * (abs(constant) or 1.0)
+                    hi = constant + 0.5 * (abs(constant) or 1.0)
                 norm = Normalize(lo, hi)
             colourmap = matplotlib.colormaps[cmap or ("PuOr" if diverging else "viridis")]
             colours[~missing] = colourmap(norm(finite))
@@ -147,7 +150,7 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
     ax.add_collection(_polygon_collection(geoms, colours))
     _frame_map(ax, geoms, patches.crs)
     if kind == "number" and "patch_id" in patches.columns and finite.size >= 2 \
-            and np.ptp(finite) > 0:
+            and np.ptp(finite) > 0 and constant is None:
         _label_extremes(ax, geoms, numbers, patches["patch_id"].astype(str).to_numpy())
     contours = None
     if isolines is not None and kind == "number" and (~missing).sum() >= 3:
@@ -159,6 +162,10 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         bar = fig.colorbar(ScalarMappable(norm=colourbar[1], cmap=colourbar[0]), ax=ax,
                            shrink=0.8, pad=0.02)
         bar.set_label(label or column)
+        if constant is not None:
+            bar.set_ticks([constant], labels=[f"{constant:.4g} (every patch)"])
+        elif hasattr(bar.formatter, "set_useOffset"):
+            bar.formatter.set_useOffset(False)  # an offset ("1e-9+9.97e-1") hides the values
         if contours is not None:
             bar.add_lines(contours)
     if handles:
@@ -183,7 +190,7 @@ def _label_extremes(ax, geoms, numbers, ids):
             continue
         name = f"{ids[i]} and {ties} more" if ties else ids[i]
         x, y = shapely.get_coordinates(shapely.point_on_surface(geoms[i]))[0] / 1e3
-        ax.annotate(f"{name} ({word}: {numbers[i]:.3g})", (x, y), xytext=(6, 6),
+        ax.annotate(f"{name} ({word}: {numbers[i] + 0.0:.3g})", (x, y), xytext=(6, 6),
                     textcoords="offset points", fontsize=7, zorder=7,
                     bbox={"boxstyle": "round,pad=0.2", "fc": "white", "ec": "0.5",
                           "alpha": 0.85},

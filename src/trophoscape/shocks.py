@@ -371,8 +371,8 @@ def _positions(ids: pd.Index, wanted, *, file, field: str) -> np.ndarray:
     missing = np.flatnonzero(found < 0)
     if missing.size:
         sample = ", ".join(repr(str(i)) for i in ids[:3])
-        raise InputError(f"no patch has id {str(wanted[int(missing[0])])!r}; expected ids of "
-                         f"the patch file (e.g. {sample})", file=file, field=field)
+        raise InputError(f"no patch has id {str(wanted[int(missing[0])])!r}; use ids of the "
+                         f"patch file's id field (e.g. {sample})", file=file, field=field)
     return found.astype(np.int64)
 
 
@@ -423,7 +423,7 @@ def build_shocks(tables, *, ids, network=None, file=None) -> tuple[Shock, ...]:
                         k = int(np.flatnonzero(~linked)[0])
                         a, b = value[k]
                         raise InputError(f"no link joins {index[a]!r} and {index[b]!r}; "
-                                         "link_cut takes pairs of linked patches", file=file,
+                                         "list only linked pairs (layer links of patches.gpkg)", file=file,
                                          field=f"shock[{i}].links")
             if value is None and key not in cls.needs:
                 continue

@@ -203,10 +203,17 @@ def simulate(
         run = noise.start()
         base = system  # the system without noise; events change it, noise perturbs it
         system = run.interval(base)
-    rhs = system.rhs_function()
+    # a reordered system (CoupledSystem.order) is integrated in its internal patch order with
+    # explicit methods: no gather/scatter per RHS call, one per census and event instead.
+    # Implicit methods take the Jacobian in the user's order and stay there.
+    internal = system.reordered and method not in IMPLICIT
+    rhs = system.rhs_function(internal=internal)
     options = dict(rtol=rtol, atol=atol)
     if method in IMPLICIT:
         options["jac"] = system.jacobian_function()
+
+    def user_order(v):
+        return system.to_user(v) if internal else v
     totals = dict(nfev=0, njev=0, nlu=0)
     steps = restarts = 0
     # events: the solver runs only up to the next one (its t_bound), so none is stepped over
@@ -223,6 +230,7 @@ def simulate(
         nonlocal system, rhs, next_event, base
         if next_event >= len(pending) or float(pending[next_event].time) > t0:
             return y_start
+        y_start = user_order(y_start)  # events index patches in the user's order
         while next_event < len(pending) and float(pending[next_event].time) <= t0:
             if noisy:
                 base, y_start = pending[next_event].apply(base, y_start)
@@ -231,10 +239,12 @@ def simulate(
             next_event += 1
         if noisy:  # the same noisy rates on the changed system, up to the next census
             system = run.interval(base, redraw=False)
-        rhs = system.rhs_function()
+        rhs = system.rhs_function(internal=internal)
         if method in IMPLICIT:
             options["jac"] = system.jacobian_function()
-        return np.asarray(y_start, dtype=float)
+        y_start = np.asarray(y_start, dtype=float)
+        # a rewired system may number its patches differently: back into its own order
+        return system.to_internal(y_start) if internal else y_start
 
     def start(t0, y_start, first_step):
         y_start = apply_events(t0, y_start)
@@ -253,7 +263,7 @@ def simulate(
     k = 1
     if not noisy:
         base = None
-    solver = start(times[0], y, None)
+    solver = start(times[0], system.to_internal(y) if internal else y, None)
     status, message = 0, "The solver successfully reached the end of the integration interval."
     try:
         while k < times.size:
@@ -264,7 +274,9 @@ def simulate(
                     solver = start(solver.t, solver.y.copy(), 0.5 * h if h else None)
                     restarts += 1
                     continue
-                raise RunError("solver stopped before the end of the run")  # pragma: no cover
+                raise RunError(  # pragma: no cover
+                    'the solver stopped before the end of the run; try method = "BDF" or '
+                    "looser rtol/atol")
             if noisy:  # the step wanted, before a census cuts it short
                 h_wanted = getattr(solver, "h_abs", None)
             with np.errstate(over="ignore", invalid="ignore"):  # reported below instead
@@ -300,13 +312,13 @@ def simulate(
                         f"abundances passed {limit:.3g} individuals at time {times[k]:.6g}, "
                         f"more than the time series can store ({np.dtype(dtype).name}); check "
                         "for explosive growth (e.g. exponential prey with no predator)")
-                record[:, k] = y_k.reshape(2, n)
+                record[:, k] = user_order(y_k).reshape(2, n)
                 k += 1
                 bar.update(1)
                 if noisy and k < times.size:
                     harvest(solver)
                     system = run.interval(base)
-                    rhs = system.rhs_function()
+                    rhs = system.rhs_function(internal=internal)
                     if method in IMPLICIT:
                         options["jac"] = system.jacobian_function()
                     h = getattr(solver, "h_abs", None) or solver.step_size
