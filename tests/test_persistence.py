@@ -79,3 +79,28 @@ def test_wilson_interval_against_newcombe(k, n, low, high):
     ci = binomtest(k, n).proportion_ci(method="wilson")
     assert float(got_low) == pytest.approx(ci.low, abs=1e-12)
     assert float(got_high) == pytest.approx(ci.high, abs=1e-12)
+
+
+@pytest.mark.parametrize("reps", [1, 3])
+def test_blocks_and_float32_storage_give_the_same_table(monkeypatch, reps):
+    # the table is computed over blocks of patches to bound memory; block edges must not
+    # matter, and float32 storage (as a study records it) must agree with float64 to float32
+    # rounding (IEEE 754 single precision, about 6e-8 relative)
+    import trophoscape.analysis.persistence as persistence
+
+    rng = np.random.default_rng(3)
+    shape = (40, 23) + ((reps,) if reps > 1 else ())
+    x = rng.lognormal(1.0, 1.0, shape) * (rng.uniform(size=shape) > 0.3)
+    whole = persistence_table(dataset(x), burn_in=10.0)
+    monkeypatch.setattr(persistence, "PATCH_BLOCK", 40 * reps * 4)  # blocks of 4 patches
+    blocked = persistence_table(dataset(x), burn_in=10.0)
+    assert list(blocked.columns) == list(whole.columns)
+    for c in whole.columns:
+        np.testing.assert_allclose(blocked[c].to_numpy(float), whole[c].to_numpy(float),
+                                   rtol=1e-12, err_msg=c)
+    narrow = dataset(x)
+    narrow["prey"] = narrow["prey"].astype(np.float32)
+    single = persistence_table(narrow, burn_in=10.0)
+    for c in whole.columns:
+        np.testing.assert_allclose(single[c].to_numpy(float), whole[c].to_numpy(float),
+                                   rtol=1e-6, err_msg=c)

@@ -229,3 +229,24 @@ def test_constant_map_says_so_and_labels_no_extremes(tmp_path, monkeypatch):
     lowest = [t for t in texts if "lowest" in t]
     assert lowest == [f"{frame['patch_id'].iloc[0]} (lowest: 0)"]
     assert any("highest: 0.5" in t for t in texts)
+
+
+def test_empty_synchrony_charts_say_why(tmp_path, monkeypatch):
+    # when every series is constant or extinct there is nothing to draw: the chart says so
+    import pandas as pd
+    import xarray as xr
+
+    from trophoscape.plot import kuramoto_plot, synchrony_distance_plot
+
+    texts = _drawn_texts(monkeypatch)
+    empty = pd.DataFrame({"distance_km": [0.5], "correlation": [np.nan], "low": [np.nan],
+                          "high": [np.nan], "pairs": [0]})
+    synchrony_distance_plot({"prey": empty}, path=tmp_path / "d.png")
+    assert any("no pair of patches" in t for t in texts)
+    texts.clear()
+    r = xr.DataArray(np.full(5, np.nan), dims=("time",), coords={"time": np.arange(5.0)})
+    kuramoto_plot({"prey": r}, path=tmp_path / "k.png")
+    assert any("no phases to compare" in t for t in texts)
+    texts.clear()
+    kuramoto_plot({"prey": r.fillna(0.5)}, path=tmp_path / "k2.png")
+    assert not any("no phases" in t for t in texts)

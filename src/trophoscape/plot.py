@@ -85,7 +85,7 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
     InputError
         If ``column`` is missing or the CRS is not projected in metres.
     """
-    from matplotlib.colors import CenteredNorm, Normalize
+    from matplotlib.colors import CenteredNorm
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
 
@@ -128,13 +128,7 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
                 half = float(np.abs(finite).max()) or 1.0
                 norm = CenteredNorm(vcenter=0.0, halfrange=half)
             else:
-                lo, hi = float(finite.min()), float(finite.max())
-                if hi - lo <= 1e-9 * max(abs(lo), abs(hi)):
-                    # one value (up to rounding): mid-range colour, one tick at that value
-                    constant = 0.5 * (lo + hi) + 0.0  # + 0.0 turns -0.0 into 0.0
-                    lo = constant - 0.5 * (abs(constant) or 1.0)
-                    hi = constant + 0.5 * (abs(constant) or 1.0)
-                norm = Normalize(lo, hi)
+                norm, constant = _sequential_norm(finite)
             colourmap = matplotlib.colormaps[cmap or ("PuOr" if diverging else "viridis")]
             colours[~missing] = colourmap(norm(finite))
             colourbar = (colourmap, norm)
@@ -162,10 +156,7 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         bar = fig.colorbar(ScalarMappable(norm=colourbar[1], cmap=colourbar[0]), ax=ax,
                            shrink=0.8, pad=0.02)
         bar.set_label(label or column)
-        if constant is not None:
-            bar.set_ticks([constant], labels=[f"{constant:.4g} (every patch)"])
-        elif hasattr(bar.formatter, "set_useOffset"):
-            bar.formatter.set_useOffset(False)  # an offset ("1e-9+9.97e-1") hides the values
+        _colourbar_ticks(bar, constant, "every patch")
         if contours is not None:
             bar.add_lines(contours)
     if handles:
@@ -177,6 +168,30 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
                    frameon=False, fontsize=8, title_fontsize=8)
     ax.set_title(title or column, fontsize=11)
     return _save(fig, path)
+
+
+def _sequential_norm(finite):
+    """``(Normalize, constant)`` for finite values; ``constant`` is their one value or None.
+
+    Values equal up to rounding get a scale around that value (so the colour is mid-range)
+    and ``constant`` is set, so that the colourbar can say so instead of inventing a range.
+    """
+    from matplotlib.colors import Normalize
+
+    lo, hi = float(np.min(finite)), float(np.max(finite))
+    if hi - lo > 1e-9 * max(abs(lo), abs(hi)):
+        return Normalize(lo, hi), None
+    constant = 0.5 * (lo + hi) + 0.0  # + 0.0 turns -0.0 into 0.0
+    half = 0.5 * (abs(constant) or 1.0)
+    return Normalize(constant - half, constant + half), constant
+
+
+def _colourbar_ticks(bar, constant, what):
+    """One tick naming the value when every item has it; otherwise ticks without an offset."""
+    if constant is not None:
+        bar.set_ticks([constant], labels=[f"{constant:.4g} ({what})"])
+    elif hasattr(bar.formatter, "set_useOffset"):
+        bar.formatter.set_useOffset(False)  # an offset ("1e-9+9.97e-1") hides the values
 
 
 def _label_extremes(ax, geoms, numbers, ids):
@@ -615,8 +630,17 @@ def synchrony_distance_plot(tables, *, path, title="Synchrony against distance")
         level = next((t.attrs["level"] for t in tables.values() if "level" in t.attrs), 0.95)
         handles.append(Patch(facecolor="0.6", alpha=0.35, label=f"{level:.0%} bootstrap band"))
         ax.legend(handles=handles, frameon=False, fontsize=8, loc="upper right")
+    else:
+        _no_data(ax, "no pair of patches with fluctuating abundances to correlate\n"
+                     "(every series after burn-in is constant or extinct)")
     ax.set_title(title, fontsize=10)
     return _save(fig, path)
+
+
+def _no_data(ax, text):
+    """Say in the middle of an empty chart why it is empty."""
+    ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center", fontsize=9,
+            color="0.35")
 
 
 def kuramoto_plot(series, *, path, time_unit="year", title="Phase synchrony") -> Path:
@@ -670,6 +694,9 @@ def kuramoto_plot(series, *, path, time_unit="year", title="Phase synchrony") ->
         # Above the axes: R(t) uses the whole height, so any inside corner would cover it.
         fig.legend(handles=handles, labels=labels, loc="outside upper center",
                    ncol=min(len(handles), 4), frameon=False, fontsize=8)
+    else:
+        _no_data(ax, "no phases to compare\n(every series after burn-in is constant or "
+                     "extinct)")
     ax.set_title(title, fontsize=10)
     return _save(fig, path)
 
@@ -792,7 +819,6 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
     import matplotlib
     from matplotlib.cm import ScalarMappable
     from matplotlib.collections import LineCollection
-    from matplotlib.colors import Normalize
     from matplotlib.lines import Line2D
 
     path = Path(path)
@@ -827,13 +853,10 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
                                          capstyle="round"))
         handles.append(Line2D([], [], color="black", linewidth=4.0, label="chosen set"))
     colourmap = matplotlib.colormaps[cmap]
-    norm = None
+    norm = constant = None
     colours = np.tile(_rgba(NO_VALUE_COLOUR), (len(lines), 1))
     if finite.any():
-        lo, hi = float(values[finite].min()), float(values[finite].max())
-        if lo == hi:
-            lo, hi = lo - 0.5 * (abs(lo) or 1.0), hi + 0.5 * (abs(hi) or 1.0)
-        norm = Normalize(lo, hi)
+        norm, constant = _sequential_norm(values[finite])
         colours[finite] = colourmap(norm(values[finite]))
     styles = np.where(finite, "solid", "dashed")
     ax.add_collection(LineCollection(segments, colors=colours, linewidths=2.6, zorder=4,
@@ -846,6 +869,7 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
         bar = fig.colorbar(ScalarMappable(norm=norm, cmap=colourmap), ax=ax, shrink=0.8,
                            pad=0.02)
         bar.set_label(label or column)
+        _colourbar_ticks(bar, constant, "every candidate")
     if handles:
         fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4),
                    frameon=False, fontsize=8)

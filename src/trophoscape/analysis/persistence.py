@@ -70,8 +70,14 @@ def _cube(data, species):
     x = data[species]
     if "replicate" in x.dims:
         x = x.transpose("time", "patch", "replicate")
-        return np.asarray(x.values, dtype=float)
-    return np.asarray(x.transpose("time", "patch").values, dtype=float)[:, :, None]
+        return _floating(x.values)
+    return _floating(x.transpose("time", "patch").values)[:, :, None]
+
+
+def _floating(values) -> np.ndarray:
+    """The values as they are when floating point (float32 storage is not copied)."""
+    values = np.asarray(values)
+    return values if np.issubdtype(values.dtype, np.floating) else values.astype(float)
 
 
 def _spell_statistics(present: np.ndarray, time: np.ndarray):
@@ -114,36 +120,56 @@ def persistence_table(traj, *, burn_in: float, extinction_abundance: float = 1.0
     data = getattr(traj, "data", traj)
     time = np.asarray(data["time"].values, dtype=float)
     ids = data["patch"].values.astype(str)
-    after = time >= burn_in
+    first = int(np.searchsorted(time, burn_in, side="left"))  # census times are sorted
     columns = {}
     for s in species:
         x = _cube(data, s)
         reps = x.shape[2]
-        present = x > 0
-        xa = x[after]
-        mean = xa.mean(axis=0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            cv = np.where(mean > 0, xa.std(axis=0) / mean, np.nan)
-            margin = (xa.min(axis=0) / extinction_abundance if extinction_abundance > 0
-                      else np.full(mean.shape, np.nan))
-        n_lost, n_gained, spell, last = _spell_statistics(present, time)
-        kept = present[-1].sum(axis=1)
+        # blocks of patches bound the temporaries (a few copies of time x block x replicate)
+        # however large the network; every block is vectorised
+        block = max(1, PATCH_BLOCK // max(1, x.shape[0] * reps))
+        parts = [_species_block(x[:, i:i + block], time, first, extinction_abundance)
+                 for i in range(0, x.shape[1], block)]
+        got = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+        kept = got["kept"]
         low, high = wilson_interval(kept, reps, confidence=confidence)
         counts = (lambda a: a[:, 0]) if reps == 1 else (lambda a: a.mean(axis=1))
         columns[f"{s}_persists"] = kept * 2 >= reps
-        columns[f"{s}_occupancy"] = present[after].mean(axis=(0, 2))
-        columns[f"{s}_mean"] = mean.mean(axis=1)
-        columns[f"{s}_cv"] = _nanmean_rows(cv)
-        columns[f"{s}_last_extinction"] = _nanmax_rows(last)
-        columns[f"{s}_extinctions"] = counts(n_lost)
-        columns[f"{s}_recolonisations"] = counts(n_gained)
-        columns[f"{s}_time_to_extinction"] = _nanmean_rows(spell)
-        columns[f"{s}_margin"] = margin.min(axis=1)
+        columns[f"{s}_occupancy"] = got["occupancy"]
+        columns[f"{s}_mean"] = got["mean"].mean(axis=1)
+        columns[f"{s}_cv"] = _nanmean_rows(got["cv"])
+        columns[f"{s}_last_extinction"] = _nanmax_rows(got["last"])
+        columns[f"{s}_extinctions"] = counts(got["lost"])
+        columns[f"{s}_recolonisations"] = counts(got["gained"])
+        columns[f"{s}_time_to_extinction"] = _nanmean_rows(got["spell"])
+        columns[f"{s}_margin"] = got["margin"].min(axis=1)
         if reps > 1:  # an interval from one deterministic run would only mislead
             columns[f"{s}_persistence_share"] = kept / reps
             columns[f"{s}_persistence_low"] = low
             columns[f"{s}_persistence_high"] = high
     return pd.DataFrame(columns, index=pd.Index(ids, name="patch_id"))
+
+
+#: Census values (time x patches x replicates) per block of :func:`persistence_table`.
+PATCH_BLOCK = 4_000_000
+
+
+def _species_block(x, time, first, extinction_abundance) -> dict:
+    """Per-patch figures of one species for a block ``x`` of shape (time, patch, replicate).
+
+    ``x`` may be float32 (as a study stores it): sums and moments are taken in float64.
+    """
+    present = x > 0
+    xa = x[first:]
+    mean = xa.mean(axis=0, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cv = np.where(mean > 0, xa.std(axis=0, dtype=np.float64) / mean, np.nan)
+        margin = (xa.min(axis=0).astype(np.float64) / extinction_abundance
+                  if extinction_abundance > 0 else np.full(mean.shape, np.nan))
+    n_lost, n_gained, spell, last = _spell_statistics(present, time)
+    return {"kept": present[-1].sum(axis=1), "occupancy": present[first:].mean(axis=(0, 2)),
+            "mean": mean, "cv": cv, "margin": margin, "lost": n_lost, "gained": n_gained,
+            "spell": spell, "last": last}
 
 
 def _nanmean_rows(a: np.ndarray) -> np.ndarray:
