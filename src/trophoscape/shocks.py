@@ -5,9 +5,9 @@ link cut) is a small frozen object holding *resolved* patch positions. It turns 
 more :class:`events <StateScale>`; each event has a ``time`` and an
 ``apply(system, y) -> (system, y)`` method, which :func:`trophoscape.simulate.simulate`
 calls at that time before integrating on with the returned system. Events only rebuild what
-they change (``CoupledSystem.with_model`` or ``dataclasses.replace`` of the :class:`~trophoscape.system.CoupledSystem` with a
-new :class:`~trophoscape.dynamics.LocalModel` or new movement operators), so applying one is
-cheap.
+they change (:meth:`~trophoscape.system.CoupledSystem.with_model` for a new
+:class:`~trophoscape.dynamics.LocalModel`, ``dataclasses.replace`` of the system for new
+movement operators), so applying one is cheap.
 
 Shock kinds are a table, ``SHOCK_KINDS``, like the growth forms of :mod:`trophoscape.dynamics`.
 Each kind lists the scenario keys it takes (``takes``) and those it needs (``needs``);

@@ -114,6 +114,19 @@ def _census(y, threshold):
     return y, False
 
 
+def _release(solver) -> None:
+    """Free a finished solver's arrays now, not at the next cyclic garbage collection.
+
+    scipy's solvers hold closures over themselves (``fun``, and ``jac`` for implicit
+    methods), a reference cycle that only the cyclic collector breaks; a run with a census
+    restart every interval allocates few Python objects, so that collector seldom runs and
+    dead solvers piled up: at 100,000 patches, about 20 MB each and 1.6 GB in all.
+    """
+    for name in ("fun", "jac", "fun_single", "fun_vectorized"):
+        if name in vars(solver):
+            setattr(solver, name, None)
+
+
 def simulate(
     system: CoupledSystem,
     y0,
@@ -256,6 +269,11 @@ def simulate(
         for key in totals:
             totals[key] += int(getattr(s, key, 0) or 0)
 
+    def restart(old, t0, y_start, first_step):
+        new = start(t0, y_start, first_step)
+        _release(old)
+        return new
+
     from tqdm.auto import tqdm
 
     bar = tqdm(total=times.size - 1, disable=not progress, delay=2.0, unit="census",
@@ -271,7 +289,7 @@ def simulate(
                 if next_event < len(pending) and solver.t >= float(pending[next_event].time):
                     harvest(solver)
                     h = getattr(solver, "h_abs", None) or solver.step_size
-                    solver = start(solver.t, solver.y.copy(), 0.5 * h if h else None)
+                    solver = restart(solver, solver.t, solver.y.copy(), 0.5 * h if h else None)
                     restarts += 1
                     continue
                 raise RunError(  # pragma: no cover
@@ -324,7 +342,8 @@ def simulate(
                     h = getattr(solver, "h_abs", None) or solver.step_size
                     # the last step was cut to end at the census: keep the one wanted
                     h = max(h or 0.0, h_wanted or 0.0) or None
-                    solver = start(times[k - 1], y_k, (0.5 * h if changed else h) if h else None)
+                    first = (0.5 * h if changed else h) if h else None
+                    solver = restart(solver, times[k - 1], y_k, first)
                     restarts += 1
                     break
                 if changed and k < times.size:
@@ -332,7 +351,7 @@ def simulate(
                     # half the step reached: the full one was rejected at nearly every
                     # restart once the census had zeroed components (benchmarks/README.md)
                     h = getattr(solver, "h_abs", None) or solver.step_size
-                    solver = start(times[k - 1], y_k, 0.5 * h)
+                    solver = restart(solver, times[k - 1], y_k, 0.5 * h)
                     restarts += 1
                     break
         harvest(solver)
