@@ -13,7 +13,12 @@ import shapely
 from .dynamics import interior_equilibrium
 from .system import SPECIES
 
-__all__ = ["practical_warnings", "typical_gap_km"]
+__all__ = ["practical_warnings", "typical_gap_km", "LARGE_NETWORK"]
+
+#: From this many patches ``check`` mentions the solver's absolute tolerance: at that size
+#: some small sink patch almost always sets the step for the whole network by resolving a
+#: fraction of one individual (benchmarks/README.md, "bench_steps.py").
+LARGE_NETWORK = 50_000
 
 
 def _some(ids, k=5) -> str:
@@ -94,6 +99,13 @@ def practical_warnings(study) -> list[str]:
                            "leave at the emigration rate, but nearly all of them go to the "
                            f"nearest neighbour. If they travel farther, raise "
                            f"{s}.kernel_scale_km towards {gap:.2g} km.")
+    atol = sc["run.atol"]
+    if land.n_patches >= LARGE_NETWORK and threshold > 0 and atol < 1e-4 * threshold:
+        out.append(f"with {land.n_patches:,} patches the solver spends most of its steps "
+                   f"resolving populations of a fraction of one individual in small patches "
+                   f"(run.atol = {atol:g}); if the run is slow, consider run.atol = "
+                   f"{1e-4 * threshold:g} (1/10,000 of run.extinction_abundance), which halved "
+                   "the work with the same persistence results in our 10,000-patch benchmark.")
     rate = float(np.max(model.params["growth_rate"]))
     fastest = max(rate, float(np.max(model.params["mortality"])))
     if fastest > 0 and sc["run.census_interval"] > 0.5 / fastest:
