@@ -434,3 +434,26 @@ def test_moran_effect_two_ar1_populations(rho):
     # sampling error of a correlation from ~T/((1+a)/(1-a)) = T/4 effective samples
     se = (1 - rho ** 2) / np.sqrt(steps / 4)
     assert summary["prey_synchrony"] == pytest.approx(rho, abs=4 * se + 1e-3)
+
+
+def test_blocks_of_patches_do_not_change_the_results(rng, monkeypatch):
+    # the O(n T) figures are computed over blocks of patches to bound memory; block edges
+    # must not matter (the same sums in another grouping: equal to rounding)
+    n, t = 23, 120
+    shared = rng.standard_normal(t)
+    x = np.exp(1.0 + 0.3 * (0.6 * shared[:, None] + rng.standard_normal((t, n))))
+    x[:, 4] = 5.0  # a constant series: left out
+    data = dataset(x)
+    src, dst = np.arange(n - 1), np.arange(1, n)
+    opts = dict(burn_in=0.0, source=src, target=dst, weights=None,
+                centroids=rng.uniform(0, 5000, (n, 2)), species=("prey",), n_boot=20)
+    whole = sy.synchrony_analysis(data, **opts)
+    monkeypatch.setattr(sy, "_PHASE_BLOCK", 3 * t)  # blocks of 3 patches
+    blocked = sy.synchrony_analysis(data, **opts)
+    for c in whole[0].columns:
+        np.testing.assert_allclose(blocked[0][c], whole[0][c], rtol=1e-10, atol=1e-12,
+                                   err_msg=c)
+    for k, v in whole[1].items():
+        assert blocked[1][k] == pytest.approx(v, rel=1e-10, abs=1e-12, nan_ok=True), k
+    np.testing.assert_allclose(blocked[2]["kuramoto"]["prey"], whole[2]["kuramoto"]["prey"],
+                               rtol=1e-10)

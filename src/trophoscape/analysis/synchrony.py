@@ -97,18 +97,21 @@ def standardized_log_series(x: np.ndarray, *, detrend: bool = False):
     """
     x = np.asarray(x, dtype=float)
     finite = np.isfinite(x).all(axis=0)
-    y = np.log1p(np.maximum(np.where(finite, x, 0.0), 0.0))
+    y = np.where(finite, x, 0.0)  # the one new array; the steps below work in place
+    np.maximum(y, 0.0, out=y)
+    np.log1p(y, out=y)
     if detrend and y.shape[0] > 1:
         from scipy.signal import detrend as linear_detrend  # slow import: only when used
 
-        y = linear_detrend(y, axis=0, type="linear", overwrite_data=True)
+        for cols in _column_blocks(y.shape):  # scipy's least squares copies its input
+            y[:, cols] = linear_detrend(y[:, cols], axis=0, type="linear")
     else:
-        y = y - y.mean(axis=0)
-    sd = np.sqrt((y * y).mean(axis=0))
+        y -= y.mean(axis=0)
+    sd = np.sqrt(np.einsum("tj,tj->j", y, y) / max(y.shape[0], 1))  # no n_times x n copy
     valid = finite & (sd > MIN_VARIATION)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        z = np.where(valid, y / np.where(valid, sd, 1.0), np.nan)
-    return z, valid
+    y /= np.where(valid, sd, 1.0)
+    y[:, ~valid] = np.nan
+    return y, valid
 
 
 def _pair_products(zt: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -155,8 +158,16 @@ def mean_pairwise(z: np.ndarray, valid: np.ndarray) -> float:
     k = int(valid.sum())
     if k < 2:
         return float("nan")
-    total = z[:, valid].sum(axis=1)
+    total = _valid_total(z, valid)
     return float(((total * total).mean() - k) / (k * (k - 1)))
+
+
+def _valid_total(z, valid):
+    """``z[:, valid].sum(axis=1)`` without copying ``z[:, valid]`` whole."""
+    total = np.zeros(z.shape[0])
+    for cols in _column_blocks(z.shape):
+        total += z[:, cols][:, valid[cols]].sum(axis=1)
+    return total
 
 
 def mean_correlation_with_all(z: np.ndarray, valid: np.ndarray) -> np.ndarray:
@@ -177,9 +188,10 @@ def mean_correlation_with_all(z: np.ndarray, valid: np.ndarray) -> np.ndarray:
     out = np.full(z.shape[1], np.nan)
     if k < 2:
         return out
-    zv = z[:, valid]
-    total = zv.sum(axis=1)
-    out[valid] = ((zv * total[:, None]).mean(axis=0) - 1.0) / (k - 1)
+    total = _valid_total(z, valid)
+    for cols in _column_blocks(z.shape):  # (total @ z) / T, block by block
+        idx = np.flatnonzero(valid[cols]) + cols.start
+        out[idx] = (total @ z[:, idx] / z.shape[0] - 1.0) / (k - 1)
     return out
 
 
@@ -243,8 +255,18 @@ def kuramoto_order(theta: np.ndarray):
     if not ok.any():
         nan = np.full(theta.shape[0], np.nan)
         return nan, nan.copy()
-    field = np.exp(1j * theta[:, ok]).mean(axis=1)
+    field = np.zeros(theta.shape[0], dtype=complex)
+    for cols in _column_blocks(theta.shape):  # blocks bound the complex temporaries
+        field += np.exp(1j * theta[:, cols][:, ok[cols]]).sum(axis=1)
+    field /= np.count_nonzero(ok)
     return np.abs(field), np.angle(field)
+
+
+def _column_blocks(shape):
+    """Slices over the columns of an array of ``shape`` (n_times, n_patches), each block
+    holding about ``_PHASE_BLOCK`` values."""
+    step = max(1, _PHASE_BLOCK // max(shape[0], 1))
+    return [slice(start, start + step) for start in range(0, shape[1], step)]
 
 
 def phase_locking(theta: np.ndarray, psi: np.ndarray) -> np.ndarray:
@@ -261,7 +283,10 @@ def phase_locking(theta: np.ndarray, psi: np.ndarray) -> np.ndarray:
         ``|mean_t exp(i(θ_i − ψ))|`` in [0, 1]: 1 for a constant phase lag, near 0 when the
         lag wanders; NaN where θ or ψ is missing.
     """
-    return np.abs(np.exp(1j * (theta - psi[:, None])).mean(axis=0))
+    out = np.empty(theta.shape[1])
+    for cols in _column_blocks(theta.shape):  # blocks bound the complex temporaries
+        out[cols] = np.abs(np.exp(1j * (theta[:, cols] - psi[:, None])).mean(axis=0))
+    return out
 
 
 def community_synchrony(x: np.ndarray) -> float:
@@ -283,13 +308,17 @@ def community_synchrony(x: np.ndarray) -> float:
     Loreau & de Mazancourt (2008), Am. Nat. 172:E48 (from memory).
     """
     x = np.asarray(x, dtype=float)
-    x = x[:, np.isfinite(x).all(axis=0)]
-    if x.shape[0] < 2 or x.shape[1] == 0:
+    finite = np.isfinite(x).all(axis=0)
+    if x.shape[0] < 2 or not finite.any():
         return float("nan")
-    sd_sum = x.std(axis=0).sum()
+    sd_sum, total = 0.0, np.zeros(x.shape[0])
+    for cols in _column_blocks(x.shape):  # blocks bound the temporaries of std
+        block = x[:, cols][:, finite[cols]]
+        sd_sum += block.std(axis=0).sum()
+        total += block.sum(axis=1)
     if not sd_sum > 0:
         return float("nan")
-    return float(x.sum(axis=1).var() / sd_sum ** 2)
+    return float(total.var() / sd_sum ** 2)
 
 
 # --------------------------------------------------------------------------------------------
@@ -312,7 +341,12 @@ def _replicates(data, name: str, after: np.ndarray):
     dims = var.dims
     if dims[:2] != ("time", "patch") or not set(dims) <= {"time", "patch", "replicate"}:
         raise InputError(f"dims must be ('time', 'patch'[, 'replicate']), got {dims}", field=name)
-    values = np.asarray(var.values, dtype=float)[after]
+    kept = np.flatnonzero(after)
+    if kept.size and kept[-1] - kept[0] + 1 == kept.size:  # a tail of the run: a view
+        values = var.values[kept[0]:kept[-1] + 1]
+    else:
+        values = var.values[after]
+    values = np.asarray(values, dtype=float)  # one float64 copy of the kept times only
     if values.ndim == 2:
         return [values]
     return [values[:, :, r] for r in range(values.shape[2])]
@@ -386,7 +420,7 @@ def _region(x, z, detrend):
     total_z, total_ok = standardized_log_series(x.sum(axis=1, keepdims=True), detrend=detrend)
     if not total_ok[0]:
         return np.full(z.shape[1], np.nan)
-    return (z * total_z).mean(axis=0)
+    return total_z[:, 0] @ z / z.shape[0]  # NaN stays NaN for series without a value
 
 
 def _run(data, *, burn_in, species, parts, detrend=True, source=None, target=None,
