@@ -37,7 +37,6 @@ import time  # noqa: E402
 import networkx as nx  # noqa: E402
 import numpy as np  # noqa: E402
 
-import scipy.sparse as sp  # noqa: E402
 from scipy.spatial import cKDTree  # noqa: E402
 
 from common import (DISPERSAL, LOCAL, SURVIVAL_PER_KM, assemble, per_call,  # noqa: E402
@@ -138,7 +137,6 @@ def compare_orders(label, model, area, ops, centroids, y, units, rows):
     n = area.size
     pair = lambda p: np.concatenate([p, p + n])  # noqa: E731
     systems = {}
-    t0 = time.process_time()
     systems["user order"] = CoupledSystem(model=model, area_km2=area, prey_movement=ops[0],
                                           predator_movement=ops[1], order="none")
     t_rcm = time.process_time()

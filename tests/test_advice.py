@@ -1,6 +1,5 @@
 """Practical warnings of `trophoscape check`."""
 
-import numpy as np
 import shapely
 
 import trophoscape as ts
