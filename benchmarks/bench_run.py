@@ -30,8 +30,6 @@ import os
 
 os.environ["OPENBLAS_NUM_THREADS"] = "1"
 
-import subprocess  # noqa: E402
-import sys  # noqa: E402
 import tempfile  # noqa: E402
 import time  # noqa: E402
 from pathlib import Path  # noqa: E402
@@ -40,14 +38,11 @@ import numpy as np  # noqa: E402
 import scipy.integrate as si  # noqa: E402
 import scipy.integrate._ivp.rk as rk  # noqa: E402
 
-from common import clock, now, peak_mb, table, versions  # noqa: E402
+from common import now, table, timed_study, versions, write_study_inputs  # noqa: E402
 
 import trophoscape.simulate as simulate_module  # noqa: E402
-import trophoscape.study as study_module  # noqa: E402
-from trophoscape.outputs import write_run  # noqa: E402
 
 N_PATCHES = 10_000
-HERE = Path(__file__).resolve().parent
 
 SCENARIO = """\
 name = "benchmark: {n} synthetic patches"
@@ -94,7 +89,6 @@ rtol = 1e-6
 atol = 1e-8
 """
 
-STAGES: dict[str, np.ndarray] = {}
 
 
 def census_per_interval(system, y0, *, duration, census_interval, threshold, rtol, atol):
@@ -136,30 +130,14 @@ def main():
     print("bench_run:", versions())
     folder = Path(tempfile.mkdtemp(prefix="trophoscape-bench-"))
     t0 = time.perf_counter()
-    subprocess.run([sys.executable, str(HERE / "synthetic.py"), str(N_PATCHES),
-                    str(folder / "patches.gpkg")], check=True, stdout=subprocess.DEVNULL,
-                   env={**os.environ, "PYTHONPATH": os.environ.get("PYTHONPATH", "src")})
-    (folder / "scenario.toml").write_text(SCENARIO.format(n=N_PATCHES), encoding="utf-8")
+    write_study_inputs(folder, N_PATCHES, SCENARIO.format(n=N_PATCHES))
     print(f"input: {N_PATCHES:,} patches written to {folder} in "
           f"{time.perf_counter() - t0:.1f} s (separate process, not counted)")
 
-    for name in ("read_patches", "build_network", "simulate", "persistence_table",
-                 "synchrony_analysis", "stability_analysis", "capacity_analysis"):
-        setattr(study_module, name, clock(STAGES, name, getattr(study_module, name)))
-    base_mb = peak_mb()
-
-    t_start = now()
-    study = study_module.load_study(folder / "scenario.toml")
-    t_built = now()
-    result = study_module.run_study(study)
-    t_ran = now()
-    write_run(result, folder / "out", maps=False)
-    t_end = now()
-    total = t_end - t_start
-    mem = peak_mb()
-
-    load = t_built - t_start
-    run = t_ran - t_built
+    timed = timed_study(folder)
+    STAGES, study, result = timed["stages"], timed["study"], timed["result"]
+    load, run, total = timed["load"], timed["run"], timed["total"]
+    base_mb, mem = timed["base_mb"], timed["peak_mb"]
     stages = [
         ("landscape (read GeoPackage, validate, areas)", STAGES["read_patches"]),
         ("network (build_network, boundary 2 km)", STAGES["build_network"]),
@@ -173,7 +151,7 @@ def main():
         ("analyses: rest of run_study (tables, summary)",
          run - STAGES["simulate"] - STAGES["persistence_table"] - STAGES["synchrony_analysis"]
          - STAGES["stability_analysis"] - STAGES["capacity_analysis"]),
-        ("write_run(maps=False)", t_end - t_ran),
+        ("write_run(maps=False)", timed["write"]),
         ("end to end", total),
     ]
     print()

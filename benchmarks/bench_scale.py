@@ -23,7 +23,6 @@ os.environ["OPENBLAS_NUM_THREADS"] = "1"
 
 import argparse  # noqa: E402
 import json  # noqa: E402
-import resource  # noqa: E402
 import subprocess  # noqa: E402
 import sys  # noqa: E402
 import tempfile  # noqa: E402
@@ -33,42 +32,15 @@ from pathlib import Path  # noqa: E402
 import numpy as np  # noqa: E402
 
 from bench_run import SCENARIO  # noqa: E402
-from common import clock, now, table, versions  # noqa: E402
-
-HERE = Path(__file__).resolve().parent
-WRAPPED = ("read_patches", "build_network", "simulate", "persistence_table",
-           "synchrony_analysis", "stability_analysis", "capacity_analysis")
+from common import (STUDY_STAGES, table, timed_study, versions,  # noqa: E402
+                    write_study_inputs)
 
 
 def child(folder: Path, profile: str | None) -> dict:
     """Run one study in this process; return stage (wall, CPU) seconds and peak memory."""
-    import trophoscape.study as study_module
-    from trophoscape.outputs import write_run
-
-    stages: dict[str, np.ndarray] = {}
-
-    for name in WRAPPED:
-        setattr(study_module, name, clock(stages, name, getattr(study_module, name)))
-    base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-    prof = None
-    if profile:
-        import cProfile
-
-        prof = cProfile.Profile()
-        prof.enable()
-    t0 = now()
-    study = study_module.load_study(folder / "scenario.toml")
-    t1 = now()
-    result = study_module.run_study(study)
-    t2 = now()
-    write_run(result, folder / "out", maps=False)
-    t3 = now()
-    if prof is not None:
-        prof.disable()
-        prof.dump_stats(profile)
-    zero = np.zeros(2)
-    got = {k: stages.get(k, zero) for k in WRAPPED}
-    load, run = t1 - t0, t2 - t1
+    timed = timed_study(folder, profile=profile)
+    got, load, run = timed["stages"], timed["load"], timed["run"]
+    result = timed["result"]
     rows = {
         "landscape (read GeoPackage)": got["read_patches"],
         "network (boundary 2 km)": got["build_network"],
@@ -78,15 +50,14 @@ def child(folder: Path, profile: str | None) -> dict:
         "synchrony_analysis": got["synchrony_analysis"],
         "stability_analysis": got["stability_analysis"],
         "capacity_analysis": got["capacity_analysis"],
-        "rest of run_study": run - sum(got[k] for k in WRAPPED[2:]),
-        "write_run(maps=False)": t3 - t2,
-        "end to end": t3 - t0,
+        "rest of run_study": run - sum(got[k] for k in STUDY_STAGES[2:]),
+        "write_run(maps=False)": timed["write"],
+        "end to end": timed["total"],
     }
     stats = result.trajectory.stats
     sizes = {p.name: p.stat().st_size / 1e6 for p in (folder / "out").iterdir()}
     return {"stages": {k: v.tolist() for k, v in rows.items()},
-            "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
-            "base_mb": base, "links": result.summary["links"],
+            "peak_mb": timed["peak_mb"], "base_mb": timed["base_mb"], "links": result.summary["links"],
             "solver": {"method": stats.method, "steps": stats.steps, "nfev": stats.nfev,
                        "restarts": stats.restarts},
             "outputs_mb": sizes}
@@ -94,12 +65,8 @@ def child(folder: Path, profile: str | None) -> dict:
 
 def prepare(n: int, stability: bool) -> Path:
     folder = Path(tempfile.mkdtemp(prefix=f"trophoscape-scale-{n}-"))
-    env = {**os.environ, "PYTHONPATH": os.environ.get("PYTHONPATH", "src")}
-    subprocess.run([sys.executable, str(HERE / "synthetic.py"), str(n),
-                    str(folder / "patches.gpkg")], check=True, stdout=subprocess.DEVNULL, env=env)
-    text = SCENARIO.format(n=n) + ("\n[analysis]\nstability = %s\n"
-                                   % ("true" if stability else "false"))
-    (folder / "scenario.toml").write_text(text, encoding="utf-8")
+    write_study_inputs(folder, n, SCENARIO.format(n=n) + "\n[analysis]\nstability = %s\n"
+                       % ("true" if stability else "false"))
     return folder
 
 

@@ -143,3 +143,68 @@ def clock(stages: dict, name: str, fn):
 def peak_mb() -> float:
     """Peak resident memory of this process so far, MB (ru_maxrss is in KiB on Linux)."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+#: The study functions whose time each end-to-end benchmark reports as a stage.
+STUDY_STAGES = ("read_patches", "build_network", "simulate", "persistence_table",
+                "synchrony_analysis", "stability_analysis", "capacity_analysis")
+
+
+def write_study_inputs(folder: Path, n: int, scenario_text: str) -> None:
+    """A GeoPackage of ``n`` synthetic patches (by a separate process, so that neither its
+    time nor its memory counts) and ``scenario.toml`` beside it."""
+    import subprocess
+
+    env = {**os.environ, "PYTHONPATH": os.environ.get("PYTHONPATH", "src")}
+    subprocess.run([sys.executable, str(Path(__file__).resolve().parent / "synthetic.py"),
+                    str(n), str(folder / "patches.gpkg")], check=True,
+                   stdout=subprocess.DEVNULL, env=env)
+    (folder / "scenario.toml").write_text(scenario_text, encoding="utf-8")
+
+
+def timed_study(folder: Path, *, profile: str | None = None) -> dict:
+    """Run ``folder/scenario.toml`` as the command line does, timing every stage.
+
+    ``load_study``, ``run_study`` and ``write_run(maps=False)`` into ``folder/out``, with the
+    functions of :data:`STUDY_STAGES` wrapped by :func:`clock` for the time of the call.
+    ``profile``: a cProfile output file for the whole of it.
+
+    Returns
+    -------
+    dict
+        ``stages`` (name -> (wall, CPU) seconds, every :data:`STUDY_STAGES` name), ``load``,
+        ``run``, ``write``, ``total`` (the same pairs), ``study``, ``result``, ``base_mb``
+        (peak RSS before the run) and ``peak_mb``.
+    """
+    import trophoscape.study as study_module
+    from trophoscape.outputs import write_run
+
+    stages: dict[str, np.ndarray] = {}
+    originals = {name: getattr(study_module, name) for name in STUDY_STAGES}
+    for name, fn in originals.items():
+        setattr(study_module, name, clock(stages, name, fn))
+    base = peak_mb()
+    prof = None
+    if profile:
+        import cProfile
+
+        prof = cProfile.Profile()
+        prof.enable()
+    try:
+        t0 = now()
+        study = study_module.load_study(folder / "scenario.toml")
+        t1 = now()
+        result = study_module.run_study(study)
+        t2 = now()
+        write_run(result, folder / "out", maps=False)
+        t3 = now()
+    finally:
+        if prof is not None:
+            prof.disable()
+            prof.dump_stats(profile)
+        for name, fn in originals.items():
+            setattr(study_module, name, fn)
+    zero = np.zeros(2)
+    return {"stages": {k: stages.get(k, zero) for k in STUDY_STAGES}, "load": t1 - t0,
+            "run": t2 - t1, "write": t3 - t2, "total": t3 - t0, "study": study,
+            "result": result, "base_mb": base, "peak_mb": peak_mb()}

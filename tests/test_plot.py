@@ -229,6 +229,10 @@ def test_constant_map_says_so_and_labels_no_extremes(tmp_path, monkeypatch):
     lowest = [t for t in texts if "lowest" in t]
     assert lowest == [f"{frame['patch_id'].iloc[0]} (lowest: 0)"]
     assert any("highest: 0.5" in t for t in texts)
+    texts.clear()
+    frame["share"] = [2.5, np.nan, np.nan, np.nan, np.nan, np.nan]  # one patch with a value
+    patch_map(frame, "share", path=tmp_path / "one.png")
+    assert "2.5 (every patch with a value)" in texts
 
 
 def test_empty_synchrony_charts_say_why(tmp_path, monkeypatch):

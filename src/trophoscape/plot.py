@@ -156,7 +156,8 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         bar = fig.colorbar(ScalarMappable(norm=colourbar[1], cmap=colourbar[0]), ax=ax,
                            shrink=0.8, pad=0.02)
         bar.set_label(label or column)
-        _colourbar_ticks(bar, constant, "every patch")
+        _colourbar_ticks(bar, constant, "every patch with a value" if missing.any()
+                         else "every patch")
         if contours is not None:
             bar.add_lines(contours)
     if handles:
@@ -869,7 +870,8 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
         bar = fig.colorbar(ScalarMappable(norm=norm, cmap=colourmap), ax=ax, shrink=0.8,
                            pad=0.02)
         bar.set_label(label or column)
-        _colourbar_ticks(bar, constant, "every candidate")
+        _colourbar_ticks(bar, constant, "every candidate" if finite.all()
+                         else "every candidate with a value")
     if handles:
         fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4),
                    frameon=False, fontsize=8)

@@ -207,7 +207,8 @@ def simulate(
     times = census_times(float(duration), float(census_interval))
     # (species, time, patch): each species' series contiguous, held once
     record = np.empty((2, times.size, n), dtype=dtype)
-    limit = float(np.finfo(dtype).max)
+    # a finite float64 state can still overflow a narrower storage type
+    limit = float(np.finfo(dtype).max) if np.dtype(dtype).itemsize < 8 else None
     y, _ = _census(np.asarray(y0, dtype=float).copy(), extinction_abundance)
     record[:, 0] = y.reshape(2, n)
 
@@ -324,7 +325,7 @@ def simulate(
                     dense = dense or solver.dense_output()
                     y_k = dense(times[k])
                 y_k, changed = _census(y_k, extinction_abundance)
-                if np.abs(y_k).max(initial=0.0) > limit:
+                if limit is not None and np.abs(y_k).max(initial=0.0) > limit:
                     harvest(solver)
                     raise RunError(
                         f"abundances passed {limit:.3g} individuals at time {times[k]:.6g}, "

@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 
 from ..system import SPECIES
+from ._blocks import blocks
 
 __all__ = ["persistence_table", "regional_persistence", "occupancy_curve", "wilson_interval"]
 
@@ -127,9 +128,8 @@ def persistence_table(traj, *, burn_in: float, extinction_abundance: float = 1.0
         reps = x.shape[2]
         # blocks of patches bound the temporaries (a few copies of time x block x replicate)
         # however large the network; every block is vectorised
-        block = max(1, PATCH_BLOCK // max(1, x.shape[0] * reps))
-        parts = [_species_block(x[:, i:i + block], time, first, extinction_abundance)
-                 for i in range(0, x.shape[1], block)]
+        parts = [_species_block(x[:, cols], time, first, extinction_abundance)
+                 for cols in blocks(x.shape[1], x.shape[0] * reps, PATCH_BLOCK)]
         got = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
         kept = got["kept"]
         low, high = wilson_interval(kept, reps, confidence=confidence)

@@ -46,6 +46,7 @@ import xarray as xr
 
 from ..errors import InputError
 from ..system import SPECIES
+from ._blocks import blocks
 
 __all__ = [
     "standardized_log_series",
@@ -122,10 +123,8 @@ def _pair_products(zt: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """
     t = zt.shape[1]
     out = np.empty(a.shape[0])
-    step = max(1, _LINK_BLOCK // max(t, 1))
-    for start in range(0, a.shape[0], step):  # loop over blocks of pairs, not pairs
-        s, g = a[start:start + step], b[start:start + step]
-        out[start:start + step] = np.einsum("it,it->i", zt[s], zt[g]) / max(t, 1)
+    for sl in blocks(a.shape[0], t, _LINK_BLOCK):  # loop over blocks of pairs, not pairs
+        out[sl] = np.einsum("it,it->i", zt[a[sl]], zt[b[sl]]) / max(t, 1)
     return out
 
 
@@ -216,12 +215,11 @@ def analytic_phases(z: np.ndarray, *, trim: float = 0.1) -> np.ndarray:
     theta = np.full((hi - lo, z.shape[1]), np.nan)
     from scipy.signal import hilbert  # slow import: only when used
 
-    step = max(1, _PHASE_BLOCK // max(z.shape[0], 1))
-    for start in range(0, z.shape[1], step):  # blocks of patches bound the complex buffer
-        block = z[:, start:start + step]
+    for cols in _column_blocks(z.shape):  # blocks of patches bound the complex buffer
+        block = z[:, cols]
         ok = np.isfinite(block).all(axis=0)
         h = hilbert(np.where(ok, block, 0.0), axis=0)[lo:hi]
-        theta[:, start:start + step] = np.where(ok, np.angle(h), np.nan)
+        theta[:, cols] = np.where(ok, np.angle(h), np.nan)
     return theta
 
 
@@ -265,8 +263,7 @@ def kuramoto_order(theta: np.ndarray):
 def _column_blocks(shape):
     """Slices over the columns of an array of ``shape`` (n_times, n_patches), each block
     holding about ``_PHASE_BLOCK`` values."""
-    step = max(1, _PHASE_BLOCK // max(shape[0], 1))
-    return [slice(start, start + step) for start in range(0, shape[1], step)]
+    return blocks(shape[1], shape[0], _PHASE_BLOCK)
 
 
 def phase_locking(theta: np.ndarray, psi: np.ndarray) -> np.ndarray:
@@ -675,9 +672,7 @@ def _binned_products(zt, a, b, which, nb):
     r = np.empty(a.shape[0])
     sums = np.zeros((nb, t))
     counts = np.zeros(nb)
-    step = max(1, _LINK_BLOCK // max(t, 1))
-    for start in range(0, a.shape[0], step):  # loop over blocks of pairs, not pairs
-        sl = slice(start, start + step)
+    for sl in blocks(a.shape[0], t, _LINK_BLOCK):  # loop over blocks of pairs, not pairs
         prod = zt[a[sl]] * zt[b[sl]]
         r[sl] = prod.mean(axis=1)
         ok = np.isfinite(r[sl])
