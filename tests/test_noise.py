@@ -279,6 +279,9 @@ def test_replicates_seeds_outputs_and_figure(grid_file, tmp_path):
     res = ts.run_study(study)
     assert res.summary["seeds"] == replicate_seeds(42, 4)  # SeedSequence(42).spawn(4)
     assert res.trajectory.data["prey"].dims == ("time", "patch", "replicate")
+    # event-based runs are stored like ODE runs: float32, here whole counts (exact below 2**24)
+    prey = res.trajectory.data["prey"].values
+    assert prey.dtype == np.float32 and np.array_equal(prey, np.round(prey))
     again = ts.run_study(study)
     for s in ("prey", "predator"):  # same seed, same numbers, bit for bit
         assert np.array_equal(res.trajectory.data[s].values, again.trajectory.data[s].values)

@@ -198,9 +198,12 @@ def simulate(
         # whole individuals and random events: no ODE (trophoscape.noise.simulate_events)
         from .noise import simulate_events
 
-        return simulate_events(system, y0, duration=duration, census_interval=census_interval,
+        traj = simulate_events(system, y0, duration=duration, census_interval=census_interval,
                                noise=noise, extinction_abundance=extinction_abundance, ids=ids,
                                time_unit=time_unit, events=events, progress=progress)
+        # whole counts: exact in float32 up to 2**24 individuals per patch
+        data = traj.data.assign({s: traj.data[s].astype(dtype) for s in SPECIES})
+        return Trajectory(data=data, stats=traj.stats)
     method = choose_method(method)
     solver_cls = METHODS[method]
     n = system.n_patches
