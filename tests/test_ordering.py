@@ -7,7 +7,8 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from trophoscape.network import build_network, movement_operator
 from trophoscape.simulate import simulate
-from trophoscape.system import CoupledSystem, locality, spatial_order
+from trophoscape.system import (ORDER_MIN_PATCHES, CoupledSystem, group_rows, locality,
+                                spatial_order)
 from trophoscape.testing import grid_landscape
 
 from conftest import make_model
@@ -105,6 +106,38 @@ def test_hilbert_order_visits_neighbouring_cells():
     steps = np.abs(np.diff(path, axis=0)).sum(axis=1)
     assert np.all(steps == 1)
     assert np.unique(path, axis=0).shape[0] == xy.shape[0]
+
+
+def test_group_rows_sorts_each_run_by_row_length(rng):
+    plain, _, _, n = scattered_system(rng, n_side=20)
+    block = plain.movement
+    base = rng.permutation(n)
+    grouped = group_rows(block, base, size=64)
+    length = np.diff(block.indptr)
+    np.testing.assert_array_equal(np.sort(grouped), np.arange(n))
+    assert np.unique(length[:n]).size > 2  # the grid's edges and corners have fewer links
+    for start in range(0, n, 64):
+        run, was = grouped[start:start + 64], base[start:start + 64]
+        np.testing.assert_array_equal(np.sort(run), np.sort(was))  # same patches per run
+        assert np.all(np.diff(length[run]) >= 0)
+        # ties keep the given order
+        for value in np.unique(length[run]):
+            np.testing.assert_array_equal(run[length[run] == value], was[length[was] == value])
+
+
+def test_auto_groups_rows_on_large_networks(rng):
+    side = int(np.ceil(np.sqrt(ORDER_MIN_PATCHES)))
+    plain, ordered, _, n = scattered_system(rng, n_side=side, order="auto")
+    assert n >= ORDER_MIN_PATCHES and ordered.reordered
+    length = np.diff(ordered._internal["movement"].indptr)[:n]
+    # fewer changes of row length along the internal rows than in the user's order
+    assert (np.count_nonzero(np.diff(length))
+            < 0.5 * np.count_nonzero(np.diff(np.diff(plain.movement.indptr)[:n])))
+    y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
+    opts = dict(duration=5.0, census_interval=0.5, rtol=1e-9, atol=1e-9)
+    a, b = simulate(plain, y0, **opts), simulate(ordered, y0, **opts)
+    for s in ("prey", "predator"):
+        np.testing.assert_allclose(b[s].values, a[s].values, rtol=1e-7, atol=1e-6)
 
 
 def test_auto_keeps_user_order_on_small_networks(rng):

@@ -9,9 +9,11 @@ Local dynamics are evaluated on densities ``N / A`` (``A`` the patch area in km�
 back to abundances; dispersal is one sparse product with the block-diagonal movement
 operator ``diag(M_prey, M_predator)``.
 
-Internal patch order: on large networks the patches can be numbered internally so that linked
-patches get nearby numbers (reverse Cuthill–McKee on the links, or a Hilbert curve over the
-centroids), which keeps the sparse product's reads of the state within few cache lines.
+Internal patch order: the patches can be numbered internally so that linked patches get nearby
+numbers (reverse Cuthill–McKee on the links, or a Hilbert curve over the centroids), which keeps
+the sparse product's reads of the state within few cache lines, and so that, within runs of
+``ROW_GROUP`` patches, rows with the same number of links follow each other (see
+:func:`group_rows`).
 Every public array (``y``, ``dy/dt``, Jacobian rows and columns, ``movement``) stays in the
 user's patch order; only :meth:`CoupledSystem.rhs_function` with ``internal=True`` (and
 ``to_internal`` / ``to_user``) works in the internal order.
@@ -34,17 +36,18 @@ except ImportError:  # pragma: no cover - depends on the scipy version
     _csr_matvec = None
 
 __all__ = ["CoupledSystem", "pack", "unpack", "SPECIES", "spatial_order", "locality",
-           "REORDER_MIN_PATCHES", "REORDER_MIN_GAIN"]
+           "group_rows", "ORDER_MIN_PATCHES", "ROW_GROUP"]
 
-#: Reorder only networks at least this large. Below about 250,000 patches the state vector
-#: (2 n float64 = 4 MB) fits in one core's 4 MiB L2 cache on the benchmark machine, random
-#: reads of it are cheap, and the gather/scatter that a reordered product needs cost more
-#: than they save (benchmarks/README.md, 2026-12-02: no gain at 10k and 100k, 1.3x at 1M
-#: in a shuffled order).
-REORDER_MIN_PATCHES = 250_000
-#: ... and only when the internal order touches at most 1/REORDER_MIN_GAIN as many cache
-#: lines per operator row as the user's order (see :func:`locality`).
-REORDER_MIN_GAIN = 2.0
+#: ``order="auto"`` numbers the patches internally on networks of at least this many patches:
+#: reverse Cuthill–McKee, then rows grouped by length in runs of ``ROW_GROUP``. It made the
+#: whole RHS 1.5x faster at 1,000 patches, 1.8x at 10,000 and 1.9x at 100,000 on the
+#: benchmark machine (benchmarks/README.md, `bench_rhs.py`); below, the state is a few cache
+#: lines and the per-call overhead dominates.
+ORDER_MIN_PATCHES = 1_000
+#: Length of the runs of consecutive internal positions within which rows are sorted by their
+#: number of stored entries (:func:`group_rows`). 1,024 was the fastest of 128-4,096 at
+#: 100,000 patches; 256 at 1,000,000 (benchmarks/README.md).
+ROW_GROUP = 1_024
 
 #: Species in state order.
 SPECIES = ("prey", "predator")
@@ -134,6 +137,41 @@ def spatial_order(centroids, bits: int = 16) -> np.ndarray:
     return np.argsort(index, kind="stable")
 
 
+def group_rows(matrix, order, size: int = ROW_GROUP) -> np.ndarray:
+    """``order`` with the patches of each run of ``size`` positions sorted by row length.
+
+    Parameters
+    ----------
+    matrix : sparse array, shape (2 n, 2 n)
+        The block-diagonal movement operator (prey rows, then predator rows).
+    order : ndarray of int, shape (n,)
+        A patch order (``order[k]`` is the patch at position ``k``).
+    size : int
+        Run length.
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+        Within each run ``order[k*size:(k+1)*size]`` the same patches, sorted by the number
+        of stored entries of their prey row, then of their predator row (ties keep ``order``).
+
+    Notes
+    -----
+    The loop over a row's entries in a CSR product ends at a different count on each row.
+    In a mixed order the processor mispredicts that end about once per row, which on the
+    synthetic landscapes (4–28 entries per row) cost as much as the arithmetic. With rows of
+    equal length next to each other the end is predicted; keeping the sort within short runs
+    keeps the locality of ``order`` (measured: benchmarks/README.md, "Rows grouped by
+    length"; the effect of branch misprediction on short inner loops is common practice).
+    """
+    a = sp.csr_array(matrix)
+    order = np.asarray(order, dtype=np.int64)
+    n = order.size
+    length = np.diff(a.indptr)
+    run = np.arange(n) // max(int(size), 1)
+    return order[np.lexsort((np.arange(n), length[n + order], length[order], run))]
+
+
 def _permuted(a, order):
     """``a`` renumbered: entry (i, j) moves to (pos[i], pos[j]) with ``order[pos[i]] = i``."""
     a = sp.csr_array(a[order][:, order])
@@ -160,12 +198,15 @@ def _rhs(n, area, rates, movement):
     area2 = np.concatenate([area, area])
     x = np.empty(2 * n)
     dens = np.empty(2 * n)
+    # max(y, 0) against an array of zeros: numpy 2.4 takes its vectorised loop for two arrays
+    # but not for an array and a scalar (0.045 against 0.091 ms at 100,000 patches)
+    zero = np.zeros(2 * n)
     m = 2 * n
     if movement is not None:
         indptr, indices, data = movement.indptr, movement.indices, movement.data
 
     def rhs(t, y):
-        np.maximum(y, 0.0, out=x)
+        np.maximum(y, zero, out=x)
         np.divide(x, area2, out=dens)
         dn, dp = rates(dens[:n], dens[n:])
         dy = np.empty(m)
@@ -195,13 +236,13 @@ class CoupledSystem:
     prey_movement, predator_movement : sparse array, shape (n_patches, n_patches)
         Movement operators (``dx/dt = M x``) from :func:`trophoscape.network.movement_operator`.
     order : {"auto", "none", "rcm"} or ndarray of int, shape (n_patches,)
-        Internal patch numbering. "auto" (default): reverse Cuthill–McKee on the links
-        (:func:`scipy.sparse.csgraph.reverse_cuthill_mckee`), used only on networks of at least
-        ``REORDER_MIN_PATCHES`` patches where it cuts :func:`locality` by ``REORDER_MIN_GAIN``
-        or more; "rcm": always that order; "none": the user's order; an array: that order
-        (``order[k]`` is the patch at internal position ``k``), e.g. ``spatial_order(centroids)``.
-        Results do not depend on it beyond rounding (the sums of the sparse product are taken
-        in another order).
+        Internal patch numbering. "auto" (default): on networks of at least
+        ``ORDER_MIN_PATCHES`` patches, reverse Cuthill–McKee on the links
+        (:func:`scipy.sparse.csgraph.reverse_cuthill_mckee`) with rows grouped by length
+        (:func:`group_rows`); on smaller ones the user's order. "rcm": reverse Cuthill–McKee
+        alone; "none": the user's order; an array: that order (``order[k]`` is the patch at
+        internal position ``k``), e.g. ``spatial_order(centroids)``. Results do not depend on
+        it beyond rounding (the sums of the sparse product are taken in another order).
 
     Notes
     -----
@@ -248,16 +289,14 @@ class CoupledSystem:
         if isinstance(order, str):
             if order not in ("auto", "none", "rcm"):
                 raise ValueError(f"order must be 'auto', 'none', 'rcm' or an array, got {order!r}")
-            if order == "none" or n < 2 or (order == "auto" and n < REORDER_MIN_PATCHES):
+            if order == "none" or n < 2 or (order == "auto" and n < ORDER_MIN_PATCHES):
                 return None
             links = block[:n, :n] + block[n:, n:]
             links = abs(links) + abs(links.T)
             perm = reverse_cuthill_mckee(sp.csr_matrix(links), symmetric_mode=True)
             perm = np.asarray(perm, dtype=np.int64)
             if order == "auto":
-                pair = np.concatenate([perm, perm + n])
-                if locality(block) < REORDER_MIN_GAIN * locality(block, pair):
-                    return None
+                perm = group_rows(block, perm)
             return perm
         perm = np.asarray(order, dtype=np.int64)
         if perm.shape != (n,) or not np.array_equal(np.sort(perm), np.arange(n)):
