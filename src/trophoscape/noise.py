@@ -336,14 +336,20 @@ class NoiseRun:
         m = self.model
         reps, n = self.shape
         s = m.shared_share
-        out = np.empty(self.shape)
+        # each replicate draws from its own stream, in the same order as when run alone
+        # (features first, then the shared value); the products are then one batched matmul
+        weights = np.empty((reps, m.rank)) if s < 1.0 else None
+        shared = np.empty(reps) if s > 0.0 else None
         for r, rng in enumerate(self.rngs):
-            field_r = np.zeros(n)
-            if s < 1.0:
-                field_r += np.sqrt(1.0 - s) * (self.features[r] @ rng.standard_normal(m.rank))
-            if s > 0.0:
-                field_r += np.sqrt(s) * rng.standard_normal()
-            out[r] = field_r
+            if weights is not None:
+                rng.standard_normal(out=weights[r])
+            if shared is not None:
+                shared[r] = rng.standard_normal()
+        out = np.zeros(self.shape)
+        if weights is not None:
+            out += np.sqrt(1.0 - s) * np.matmul(self.features, weights[:, :, None])[:, :, 0]
+        if shared is not None:
+            out += np.sqrt(s) * shared[:, None]
         return out
 
     def _advance(self, name: str) -> np.ndarray:
