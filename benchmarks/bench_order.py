@@ -5,9 +5,9 @@ order with explicit methods: the state stays in that order between census steps,
 the census record and the shocks see the user's order. This script times ``simulate`` on the
 1,000,000 point patches of ``bench_rhs.point_system`` (shuffled feature order, about 11
 links per patch) for ``DURATION`` time units with a census every 0.5, in the user's order
-(``order="none"``), in the order ``"auto"`` picks (reverse Cuthill–McKee at this size) and in
-a Hilbert order over the centroids. CPU seconds of this process; the time to find the order
-is reported apart. It also checks that every run records the same trajectory.
+(``order="none"``), in the order ``"auto"`` picks (reverse Cuthill–McKee, rows grouped by
+length) and in a Hilbert order over the centroids. CPU seconds of this process; the time to
+find the order is reported apart. It also checks that every run records the same trajectory.
 
     OPENBLAS_NUM_THREADS=1 PYTHONPATH=src python benchmarks/bench_order.py
 """
@@ -41,9 +41,9 @@ def main():
     model, area, ops, centroids, y0, links = point_system(N, shuffle=True)
     print(f"{N:,} point patches, {links:,} links, {DURATION:g} time units, census 0.5")
     rows, reference = [], None
-    for label in ("user order", "auto (RCM)", "Hilbert"):
+    for label in ("user order", "auto (RCM, rows grouped)", "Hilbert"):
         t0 = time.process_time()
-        order = {"user order": "none", "auto (RCM)": "auto",
+        order = {"user order": "none", "auto (RCM, rows grouped)": "auto",
                  "Hilbert": None}[label]
         if order is None:
             order = spatial_order(centroids)
