@@ -252,8 +252,9 @@ def main():
         # what simulate integrates: the RHS in the internal order chosen by order="auto"
         inner = system.rhs_function(internal=True)
         yi = system.to_internal(y)
-        if not np.allclose(system.to_user(inner(0.0, yi)), rhs(0.0, y), rtol=1e-12,
-                           atol=1e-12 * np.abs(rhs(0.0, y)).max()):
+        user = rhs(0.0, y)
+        if not np.allclose(system.to_user(inner(0.0, yi)), user, rtol=1e-12,
+                           atol=1e-12 * np.abs(user).max()):
             raise SystemExit("internal and user-order RHS differ")
         t_vec = per_call(inner, 0.0, yi)
         t_user = per_call(rhs, 0.0, y)

@@ -41,8 +41,8 @@ __all__ = ["CoupledSystem", "pack", "unpack", "SPECIES", "spatial_order", "local
 #: ``order="auto"`` numbers the patches internally on networks of at least this many patches:
 #: reverse Cuthill–McKee, then rows grouped by length in runs of ``ROW_GROUP``. It made the
 #: whole RHS 1.5x faster at 1,000 patches, 1.8x at 10,000 and 1.9x at 100,000 on the
-#: benchmark machine (benchmarks/README.md, `bench_rhs.py`); below, the state is a few cache
-#: lines and the per-call overhead dominates.
+#: benchmark machine (benchmarks/README.md, `bench_rhs.py`). Smaller networks keep the user's
+#: order (not measured there: the per-call overhead is most of such a call).
 ORDER_MIN_PATCHES = 1_000
 #: Length of the runs of consecutive internal positions within which rows are sorted by their
 #: number of stored entries (:func:`group_rows`). 1,024 was the fastest of 128-4,096 at
@@ -279,6 +279,7 @@ class CoupledSystem:
                 "perm2": perm2,
                 "inverse2": np.argsort(perm2),
                 "movement": _int32(_permuted(block, perm2)),
+                "area": self.area_km2[perm],
             }
         object.__setattr__(self, "_internal", internal)
 
@@ -368,7 +369,7 @@ class CoupledSystem:
             model = LocalModel(growth=self.model.growth, response=self.model.response,
                                params={k: np.asarray(v)[perm] if np.ndim(v) else v
                                        for k, v in self.model.params.items()})
-            return _rhs(n, area[perm], model.rates, inner["movement"])
+            return _rhs(n, inner["area"], model.rates, inner["movement"])
         perm2, inverse2 = inner["perm2"], inner["inverse2"]
         movement = inner["movement"]
         local = _rhs(n, area, rates, None)

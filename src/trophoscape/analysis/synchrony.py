@@ -66,7 +66,7 @@ __all__ = [
 ]
 
 _LINK_BLOCK = 1 << 20  # elements per block of link products (bounded memory)
-_PHASE_BLOCK = 1 << 21  # elements per block of Hilbert transforms (bounded memory)
+_PHASE_BLOCK = 1 << 21  # elements per block of patch columns (Hilbert, detrend, sums)
 
 
 # --------------------------------------------------------------------------------------------
@@ -77,6 +77,12 @@ _PHASE_BLOCK = 1 << 21  # elements per block of Hilbert transforms (bounded memo
 #: population is at a steady state: its correlations would measure solver noise, not
 #: synchrony, so it is left out.
 MIN_VARIATION = 1e-3
+
+
+def _column_blocks(shape):
+    """Slices over the columns of an array of ``shape`` (n_times, n_patches), each block
+    holding about ``_PHASE_BLOCK`` values."""
+    return blocks(shape[1], shape[0], _PHASE_BLOCK)
 
 
 def standardized_log_series(x: np.ndarray, *, detrend: bool = False):
@@ -258,12 +264,6 @@ def kuramoto_order(theta: np.ndarray):
         field += np.exp(1j * theta[:, cols][:, ok[cols]]).sum(axis=1)
     field /= np.count_nonzero(ok)
     return np.abs(field), np.angle(field)
-
-
-def _column_blocks(shape):
-    """Slices over the columns of an array of ``shape`` (n_times, n_patches), each block
-    holding about ``_PHASE_BLOCK`` values."""
-    return blocks(shape[1], shape[0], _PHASE_BLOCK)
 
 
 def phase_locking(theta: np.ndarray, psi: np.ndarray) -> np.ndarray:
