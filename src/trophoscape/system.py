@@ -22,6 +22,7 @@ user's patch order; only :meth:`CoupledSystem.rhs_function` with ``internal=True
 from __future__ import annotations
 
 import copy
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -36,7 +37,8 @@ except ImportError:  # pragma: no cover - depends on the scipy version
     _csr_matvec = None
 
 __all__ = ["CoupledSystem", "pack", "unpack", "SPECIES", "spatial_order", "locality",
-           "group_rows", "ORDER_MIN_PATCHES", "ROW_GROUP"]
+           "group_rows", "ORDER_MIN_PATCHES", "ROW_GROUP", "COMPILED_MIN_PATCHES",
+           "compiled_available"]
 
 #: ``order="auto"`` numbers the patches internally on networks of at least this many patches:
 #: reverse Cuthill–McKee, then rows grouped by length in runs of ``ROW_GROUP``. It made the
@@ -48,6 +50,12 @@ ORDER_MIN_PATCHES = 1_000
 #: number of stored entries (:func:`group_rows`). 1,024 was the fastest of 128-4,096 at
 #: 100,000 patches; 256 at 1,000,000 (benchmarks/README.md).
 ROW_GROUP = 1_024
+
+#: ``kernel="auto"`` evaluates the local terms with the compiled kernel (numba, optional) on
+#: networks of at least this many patches: below it, importing numba and loading the kernel
+#: (about 0.5 s) costs more than the kernel saves in a typical run (benchmarks/README.md,
+#: "Compiled local terms").
+COMPILED_MIN_PATCHES = 10_000
 
 #: Species in state order.
 SPECIES = ("prey", "predator")
@@ -186,24 +194,57 @@ def _int32(a):
     return a
 
 
-def _rhs(n, area, rates, movement):
-    """``rhs(t, y)`` for a state in the order of ``area`` / ``rates`` / ``movement``.
+@functools.cache
+def _compiled_module():
+    """The compiled-kernel module, or None when numba is not installed (or fails to load)."""
+    try:
+        from . import _compiled
+    except ImportError:
+        return None
+    return _compiled
 
-    ``movement=None`` gives the local terms alone.
+
+def compiled_available() -> bool:
+    """True when the optional compiled kernel for the local terms can be used (numba)."""
+    return _compiled_module() is not None
+
+
+def _rhs(n, area, model, movement, compiled=False):
+    """``rhs(t, y)`` for a state in the order of ``area`` / ``model`` / ``movement``.
+
+    ``movement=None`` gives the local terms alone; ``compiled=True`` evaluates the local terms
+    with the compiled kernel (:mod:`trophoscape._compiled`, same numbers bit for bit).
 
     Buffers for the clipped state and the densities are allocated once; each call still
     returns a fresh array, because scipy's Runge–Kutta solvers keep the returned derivative
     (``self.f``) and reuse it after a rejected step, while the stages call ``rhs`` again.
     """
-    area2 = np.concatenate([area, area])
     x = np.empty(2 * n)
+    m = 2 * n
+    if movement is not None:
+        indptr, indices, data = movement.indptr, movement.indices, movement.data
+    if compiled:
+        local = _compiled_module().local_terms_function(model, area)
+
+        def rhs(t, y):
+            dy = np.empty(m)
+            local(y, x, dy)  # x = max(y, 0), dy = local terms
+            if movement is None:
+                pass
+            elif _csr_matvec is not None:
+                _csr_matvec(m, m, indptr, indices, data, x, dy)  # dy += M x
+            else:  # pragma: no cover
+                dy += movement @ x
+            return dy
+
+        return rhs
+
+    rates = model.rates
+    area2 = np.concatenate([area, area])
     dens = np.empty(2 * n)
     # max(y, 0) against an array of zeros: numpy 2.4 takes its vectorised loop for two arrays
     # but not for an array and a scalar (0.045 against 0.091 ms at 100,000 patches)
     zero = np.zeros(2 * n)
-    m = 2 * n
-    if movement is not None:
-        indptr, indices, data = movement.indptr, movement.indices, movement.data
 
     def rhs(t, y):
         np.maximum(y, zero, out=x)
@@ -243,6 +284,13 @@ class CoupledSystem:
         alone; "none": the user's order; an array: that order (``order[k]`` is the patch at
         internal position ``k``), e.g. ``spatial_order(centroids)``. Results do not depend on
         it beyond rounding (the sums of the sparse product are taken in another order).
+    kernel : {"auto", "numpy", "compiled"}
+        How the local terms of ``rhs`` are evaluated. "numpy": elementwise numpy, the
+        reference. "compiled": one compiled pass (numba, the optional extra
+        ``trophoscape[fast]``) wherever it knows the model's growth form and response;
+        without numba, a ValueError. "auto" (default): "compiled" on networks of at least
+        ``COMPILED_MIN_PATCHES`` patches when numba is installed, else "numpy". Both give
+        the same numbers bit for bit; see :attr:`local_kernel` for the one in use.
 
     Notes
     -----
@@ -257,6 +305,7 @@ class CoupledSystem:
     prey_movement: sp.sparray
     predator_movement: sp.sparray
     order: object = "auto"
+    kernel: str = "auto"
     movement: sp.csr_array = field(init=False, repr=False)
     permutation: np.ndarray = field(init=False, repr=False)
     _internal: dict = field(init=False, repr=False)
@@ -267,6 +316,12 @@ class CoupledSystem:
         for name in ("prey_movement", "predator_movement"):
             if getattr(self, name).shape != (n, n):
                 raise ValueError(f"{name} must have shape ({n}, {n})")
+        if self.kernel not in ("auto", "numpy", "compiled"):
+            raise ValueError(f"kernel must be 'auto', 'numpy' or 'compiled', got {self.kernel!r}")
+        if self.kernel == "compiled" and not compiled_available():
+            raise ValueError("kernel='compiled' needs numba, which is not installed; "
+                             "install it with pip install 'trophoscape[fast]', or use "
+                             "kernel='auto'")
         block = _int32(sp.csr_array(sp.block_diag([self.prey_movement, self.predator_movement],
                                                   format="csr")))
         object.__setattr__(self, "movement", block)
@@ -321,6 +376,15 @@ class CoupledSystem:
         return new
 
     @property
+    def local_kernel(self) -> str:
+        """The evaluation of the local terms that ``rhs`` uses: "numpy" or "compiled"."""
+        if self.kernel == "numpy" or (self.kernel == "auto"
+                                      and self.n_patches < COMPILED_MIN_PATCHES):
+            return "numpy"
+        module = _compiled_module()
+        return "compiled" if module is not None and module.supports(self.model) else "numpy"
+
+    @property
     def reordered(self) -> bool:
         """True when patches are numbered internally in another order than the user's."""
         return self.permutation is not None
@@ -360,19 +424,19 @@ class CoupledSystem:
         """
         n = self.n_patches
         area = self.area_km2
-        rates = self.model.rates
+        compiled = self.local_kernel == "compiled"
         if not self.reordered:
-            return _rhs(n, area, rates, self.movement)
+            return _rhs(n, area, self.model, self.movement, compiled)
         perm = self.permutation
         inner = self._internal
         if internal:
             model = LocalModel(growth=self.model.growth, response=self.model.response,
                                params={k: np.asarray(v)[perm] if np.ndim(v) else v
                                        for k, v in self.model.params.items()})
-            return _rhs(n, inner["area"], model.rates, inner["movement"])
+            return _rhs(n, inner["area"], model, inner["movement"], compiled)
         perm2, inverse2 = inner["perm2"], inner["inverse2"]
         movement = inner["movement"]
-        local = _rhs(n, area, rates, None)
+        local = _rhs(n, area, self.model, None, compiled)
         x = np.empty(2 * n)
 
         def rhs(t, y):

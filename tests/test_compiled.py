@@ -1,0 +1,170 @@
+"""The optional compiled kernel for the local terms: the same numbers as the numpy path.
+
+The numpy path is the reference (checked against closed forms and published results in
+test_dynamics.py and test_system.py); the compiled kernel repeats its formulas operation for
+operation, so the two must agree bit for bit, and so must whole trajectories.
+"""
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+
+from trophoscape import system as system_module
+from trophoscape.dynamics import GROWTH_FORMS, RESPONSES, LocalModel
+from trophoscape.network import build_network, movement_operator
+from trophoscape.simulate import simulate
+from trophoscape.system import COMPILED_MIN_PATCHES, CoupledSystem
+from trophoscape.testing import grid_landscape
+
+from conftest import DEFAULTS, make_model
+
+compiled = pytest.importorskip("trophoscape._compiled", reason="numba is not installed")
+
+
+def grid_operators(n_side=12):
+    land = grid_landscape(n_side, n_side, spacing_km=1.0, size_km=0.5)
+    net = build_network(land, kernel="exponential", max_distance_km=1.6)
+    return [movement_operator(net, emigration_rate=rate, scale_km=1.0, survival_per_km=0.9)
+            for rate in (0.3, 0.1)]
+
+
+def varied_model(rng, n, growth, response, harvest=False):
+    """Per-patch parameters that differ, so a row mix-up in the kernel would show."""
+    params = {k: np.full(n, v) * rng.uniform(0.8, 1.2, n) for k, v in DEFAULTS.items()}
+    params["interference"] = rng.uniform(0.0, 0.3, n)
+    if harvest:
+        params["prey_harvest"] = rng.uniform(0.0, 0.2, n)
+    return LocalModel(growth=growth, response=response, params=params)
+
+
+def pair(model, area, ops, order="none"):
+    return [CoupledSystem(model=model, area_km2=area, prey_movement=ops[0],
+                          predator_movement=ops[1], order=order, kernel=k)
+            for k in ("numpy", "compiled")]
+
+
+def state(rng, n):
+    y = rng.uniform(0.0, 120.0, 2 * n)
+    y[rng.choice(2 * n, 12, replace=False)] = -1e-3  # the clipping path
+    y[rng.choice(2 * n, 6, replace=False)] = 0.0
+    return y
+
+
+@pytest.mark.parametrize("growth", sorted(GROWTH_FORMS))
+@pytest.mark.parametrize("response", sorted(RESPONSES))
+@pytest.mark.parametrize("harvest", [False, True])
+def test_compiled_rhs_equals_numpy_bit_for_bit(rng, growth, response, harvest):
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    area = rng.uniform(0.2, 3.0, n)
+    model = varied_model(rng, n, growth, response, harvest)
+    y = state(rng, n)
+    for order in ("none", "rcm"):
+        ref, fast = pair(model, area, ops, order)
+        assert (ref.local_kernel, fast.local_kernel) == ("numpy", "compiled")
+        np.testing.assert_array_equal(fast.rhs_function()(0.0, y), ref.rhs_function()(0.0, y))
+        yi = ref.to_internal(y)
+        np.testing.assert_array_equal(fast.rhs_function(internal=True)(0.0, yi),
+                                      ref.rhs_function(internal=True)(0.0, yi))
+
+
+def test_compiled_rhs_with_scalar_parameters_and_no_links(rng):
+    # parameters may be scalars (CoupledSystem.with_model takes them); no links at all
+    n = 30
+    params = {k: float(v) for k, v in DEFAULTS.items()}
+    params["interference"] = 0.1
+    model = LocalModel(growth="logistic", response="beddington_deangelis", params=params)
+    zero = sp.csr_array((n, n))
+    ref, fast = pair(model, rng.uniform(0.5, 2.0, n), [zero, zero])
+    y = state(rng, n)
+    np.testing.assert_array_equal(fast.rhs_function()(0.0, y), ref.rhs_function()(0.0, y))
+
+
+def test_compiled_rhs_keeps_nan(rng):
+    # np.maximum keeps a NaN, so a failing solve shows up; the kernel's clip must too
+    ops = grid_operators(4)
+    n = ops[0].shape[0]
+    ref, fast = pair(make_model(n=n), np.ones(n), ops)
+    y = state(rng, n)
+    y[3] = np.nan
+    got, want = fast.rhs_function()(0.0, y), ref.rhs_function()(0.0, y)
+    assert np.isnan(got[3])
+    np.testing.assert_array_equal(np.isnan(got), np.isnan(want))
+
+
+def test_compiled_trajectory_equals_numpy(rng):
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    model = varied_model(rng, n, "logistic", "holling2")
+    area = rng.uniform(0.2, 3.0, n)
+    y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
+    runs = [simulate(s, y0, duration=20.0, census_interval=0.5)
+            for s in pair(model, area, ops, order="rcm")]
+    for species in ("prey", "predator"):
+        np.testing.assert_array_equal(runs[1].data[species].values, runs[0].data[species].values)
+    assert runs[1].stats.nfev == runs[0].stats.nfev
+
+
+def test_compiled_lotka_volterra_keeps_its_first_integral():
+    # V = e a n - m ln n + a p - r ln p is constant along Lotka–Volterra orbits (Lotka 1925;
+    # Volterra 1926; Murray 2002, Mathematical Biology I, §3.1, from memory); uncoupled
+    # patches each keep their own V
+    n = 3
+    values = dict(growth_rate=1.0, attack_rate=0.1, mortality=1.5, conversion=0.75)
+    model = make_model(n=n, growth="exponential", response="lotka_volterra", **values)
+    zero = sp.csr_array((n, n))
+    fast = CoupledSystem(model=model, area_km2=np.ones(n), prey_movement=zero,
+                         predator_movement=zero, kernel="compiled")
+    y0 = np.array([10.0, 15.0, 30.0, 5.0, 8.0, 12.0])
+    traj = simulate(fast, y0, duration=30.0, census_interval=0.05, method="DOP853",
+                    rtol=1e-11, atol=1e-11, extinction_abundance=0.0)
+    prey, predator = traj.data["prey"].values, traj.data["predator"].values
+    v = 0.75 * 0.1 * prey - 1.5 * np.log(prey) + 0.1 * predator - 1.0 * np.log(predator)
+    assert np.all(np.ptp(v, axis=0) < 1e-7 * np.abs(v[0]))
+    assert np.all(np.ptp(prey, axis=0) > 5.0)  # they really cycle
+
+
+def test_auto_kernel_by_size_and_availability(rng, monkeypatch):
+    ops = grid_operators(4)
+    n = ops[0].shape[0]
+    model = make_model(n=n)
+
+    def make(kernel="auto"):
+        return CoupledSystem(model=model, area_km2=np.ones(n), prey_movement=ops[0],
+                             predator_movement=ops[1], kernel=kernel)
+
+    assert make().local_kernel == "numpy"  # small network: numpy
+    monkeypatch.setattr(system_module, "COMPILED_MIN_PATCHES", n)
+    assert make().local_kernel == "compiled"
+    assert make("numpy").local_kernel == "numpy"
+    # with_model (noise, shocks) keeps the choice
+    assert make().with_model(make_model(n=n, growth_rate=2.0)).local_kernel == "compiled"
+    # a growth form the kernel does not know is evaluated by numpy
+    monkeypatch.setattr(compiled, "GROWTH_CODES", {"exponential": 0})
+    assert make().local_kernel == "numpy"
+    assert make("compiled").local_kernel == "numpy"
+    assert COMPILED_MIN_PATCHES >= 1_000
+
+
+def test_without_numba_auto_falls_back_and_compiled_says_what_to_do(monkeypatch):
+    ops = grid_operators(4)
+    n = ops[0].shape[0]
+    monkeypatch.setattr(system_module, "_compiled_module", lambda: None)
+    monkeypatch.setattr(system_module, "COMPILED_MIN_PATCHES", 1)
+    auto = CoupledSystem(model=make_model(n=n), area_km2=np.ones(n), prey_movement=ops[0],
+                         predator_movement=ops[1])
+    assert auto.local_kernel == "numpy"
+    assert np.all(np.isfinite(auto.rhs_function()(0.0, np.full(2 * n, 5.0))))
+    with pytest.raises(ValueError, match=r"kernel='compiled' needs numba, which is not "
+                                         r"installed; install it with pip install"):
+        CoupledSystem(model=make_model(n=n), area_km2=np.ones(n), prey_movement=ops[0],
+                      predator_movement=ops[1], kernel="compiled")
+    with pytest.raises(ValueError, match="kernel must be"):
+        CoupledSystem(model=make_model(n=n), area_km2=np.ones(n), prey_movement=ops[0],
+                      predator_movement=ops[1], kernel="fortran")
+
+
+def test_every_growth_form_and_response_has_a_kernel_code():
+    # a new entry in the tables would silently run on numpy only; make that a decision
+    assert set(compiled.GROWTH_CODES) == set(GROWTH_FORMS)
+    assert set(compiled.RESPONSE_CODES) == set(RESPONSES)
