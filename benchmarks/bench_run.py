@@ -4,7 +4,8 @@ The patch file (GeoPackage) and a scenario file are written to a temporary folde
 separate process first, so that neither the generation time nor its memory counts. The run
 then goes through the public API exactly as the command line does: ``load_study`` (scenario,
 patches, network, system), ``run_study`` (simulate, persistence, synchrony) and
-``write_run(maps=False)``. Stage times come from wrapping the functions ``trophoscape.study``
+``write_run_files(maps=False)`` (``timeseries.nc`` written during the run, as the
+command line does). Stage times come from wrapping the functions ``trophoscape.study``
 calls (``read_patches``, ``build_network``, ``simulate``, ``persistence_table``,
 ``synchrony_table``); "system assembly" is what ``build_study`` spends besides reading the
 patches and building the network, "analyses" is what ``run_study`` spends besides simulating.
@@ -143,7 +144,9 @@ def main():
         ("network (build_network, boundary 2 km)", STAGES["build_network"]),
         ("system assembly (scenario, parameters, operators)",
          load - STAGES["read_patches"] - STAGES["build_network"]),
-        ("simulate (200 years, 400 census steps)", STAGES["simulate"]),
+        ("simulate (200 years, 400 census steps; integration)",
+         STAGES["simulate"] - STAGES["series_blocks"]),
+        ("timeseries.nc blocks, during the run", STAGES["series_blocks"]),
         ("analyses: persistence_table", STAGES["persistence_table"]),
         ("analyses: synchrony_analysis", STAGES["synchrony_analysis"]),
         ("analyses: stability_analysis", STAGES["stability_analysis"]),
@@ -151,7 +154,7 @@ def main():
         ("analyses: rest of run_study (tables, summary)",
          run - STAGES["simulate"] - STAGES["persistence_table"] - STAGES["synchrony_analysis"]
          - STAGES["stability_analysis"] - STAGES["capacity_analysis"]),
-        ("write_run(maps=False)", timed["write"]),
+        ("write_run_files(maps=False)", timed["write"]),
         ("end to end", total),
     ]
     print()

@@ -4,7 +4,8 @@ For each size a GeoPackage of synthetic patches (``synthetic.py``, not counted) 
 file are written to a temporary folder, then a fresh child process runs the study exactly as
 the command line does: ``load_study`` (read the GeoPackage, build the network, assemble the
 system), ``run_study`` (200 time units, a census every 0.5, so 400 census steps; persistence,
-synchrony, capacity; ``[analysis] stability = false`` by default) and ``write_run(maps=False)``.
+synchrony, capacity; ``[analysis] stability = false`` by default; ``timeseries.nc`` written
+into the staged output folder as the run goes) and ``write_run_files(maps=False)``.
 Each size runs in its own process so that its peak resident memory (``ru_maxrss``) is its own.
 Stage times are wall and CPU (``time.process_time``) seconds; the machine is shared.
 
@@ -36,22 +37,23 @@ from common import (STUDY_STAGES, table, timed_study, versions,  # noqa: E402
                     write_study_inputs)
 
 
-def child(folder: Path, profile: str | None) -> dict:
+def child(folder: Path, profile: str | None, kernel: str) -> dict:
     """Run one study in this process; return stage (wall, CPU) seconds and peak memory."""
-    timed = timed_study(folder, profile=profile)
+    timed = timed_study(folder, profile=profile, kernel=kernel)
     got, load, run = timed["stages"], timed["load"], timed["run"]
     result = timed["result"]
     rows = {
         "landscape (read GeoPackage)": got["read_patches"],
         "network (boundary 2 km)": got["build_network"],
         "system assembly": load - got["read_patches"] - got["build_network"],
-        "simulate": got["simulate"],
+        "simulate (integration)": got["simulate"] - got["series_blocks"],
+        "timeseries.nc blocks, during the run": got["series_blocks"],
         "persistence_table": got["persistence_table"],
         "synchrony_analysis": got["synchrony_analysis"],
         "stability_analysis": got["stability_analysis"],
         "capacity_analysis": got["capacity_analysis"],
         "rest of run_study": run - sum(got[k] for k in STUDY_STAGES[2:]),
-        "write_run(maps=False)": timed["write"],
+        "write_run_files(maps=False)": timed["write"],
         "end to end": timed["total"],
     }
     stats = result.trajectory.stats
@@ -59,7 +61,8 @@ def child(folder: Path, profile: str | None) -> dict:
     return {"stages": {k: v.tolist() for k, v in rows.items()},
             "peak_mb": timed["peak_mb"], "base_mb": timed["base_mb"], "links": result.summary["links"],
             "solver": {"method": stats.method, "steps": stats.steps, "nfev": stats.nfev,
-                       "restarts": stats.restarts},
+                       "restarts": stats.restarts,
+                       "local_kernel": result.summary["solver"]["local_kernel"]},
             "outputs_mb": sizes}
 
 
@@ -75,16 +78,18 @@ def main():
     ap.add_argument("--sizes", type=int, nargs="+", default=[10_000, 100_000])
     ap.add_argument("--stability", action="store_true", help="run stability_analysis too")
     ap.add_argument("--profile", help="cProfile output file (largest size only)")
+    ap.add_argument("--kernel", choices=["auto", "numpy"], default="auto",
+                    help="numpy: keep the local terms on numpy at every size")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
-        print("RESULT " + json.dumps(child(Path(args.child), args.profile)))
+        print("RESULT " + json.dumps(child(Path(args.child), args.profile, args.kernel)))
         return
     print("bench_scale:", versions())
     results = {}
     for n in args.sizes:
         folder = prepare(n, args.stability)
-        cmd = [sys.executable, __file__, "--child", str(folder)]
+        cmd = [sys.executable, __file__, "--child", str(folder), "--kernel", args.kernel]
         if args.profile and n == max(args.sizes):
             cmd += ["--profile", args.profile]
         t0 = time.perf_counter()

@@ -162,27 +162,35 @@ def write_study_inputs(folder: Path, n: int, scenario_text: str) -> None:
     (folder / "scenario.toml").write_text(scenario_text, encoding="utf-8")
 
 
-def timed_study(folder: Path, *, profile: str | None = None) -> dict:
+def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto") -> dict:
     """Run ``folder/scenario.toml`` as the command line does, timing every stage.
 
-    ``load_study``, ``run_study`` and ``write_run(maps=False)`` into ``folder/out``, with the
-    functions of :data:`STUDY_STAGES` wrapped by :func:`clock` for the time of the call.
-    ``profile``: a cProfile output file for the whole of it.
+    ``load_study``; then, inside the staged output folder ``folder/out``, ``run_study`` with
+    ``series_to`` (``timeseries.nc`` written as the run goes) and ``write_run_files(maps=False)``;
+    the functions of :data:`STUDY_STAGES` and the series writer's block writes are wrapped
+    by :func:`clock` for the time of the call. ``profile``: a cProfile output file for the
+    whole of it. ``kernel="numpy"`` keeps the local terms on numpy at every size.
 
     Returns
     -------
     dict
-        ``stages`` (name -> (wall, CPU) seconds, every :data:`STUDY_STAGES` name), ``load``,
-        ``run``, ``write``, ``total`` (the same pairs), ``study``, ``result``, ``base_mb``
-        (peak RSS before the run) and ``peak_mb``.
+        ``stages`` (name -> (wall, CPU) seconds, every :data:`STUDY_STAGES` name and
+        ``series_blocks``), ``load``, ``run``, ``write``, ``total`` (the same pairs),
+        ``study``, ``result``, ``base_mb`` (peak RSS before the run) and ``peak_mb``.
     """
     import trophoscape.study as study_module
-    from trophoscape.outputs import write_run
+    import trophoscape.system as system_module
+    from trophoscape.outputs import SeriesWriter, staged_folder, write_run_files
 
     stages: dict[str, np.ndarray] = {}
     originals = {name: getattr(study_module, name) for name in STUDY_STAGES}
     for name, fn in originals.items():
         setattr(study_module, name, clock(stages, name, fn))
+    write_block = SeriesWriter.write
+    SeriesWriter.write = clock(stages, "series_blocks", write_block)
+    threshold = system_module.COMPILED_MIN_PATCHES
+    if kernel == "numpy":
+        system_module.COMPILED_MIN_PATCHES = 1 << 62
     base = peak_mb()
     prof = None
     if profile:
@@ -194,9 +202,10 @@ def timed_study(folder: Path, *, profile: str | None = None) -> dict:
         t0 = now()
         study = study_module.load_study(folder / "scenario.toml")
         t1 = now()
-        result = study_module.run_study(study)
-        t2 = now()
-        write_run(result, folder / "out", maps=False)
+        with staged_folder(folder / "out") as stage:
+            result = study_module.run_study(study, series_to=stage / "timeseries.nc")
+            t2 = now()
+            write_run_files(result, stage, maps=False)
         t3 = now()
     finally:
         if prof is not None:
@@ -204,7 +213,9 @@ def timed_study(folder: Path, *, profile: str | None = None) -> dict:
             prof.dump_stats(profile)
         for name, fn in originals.items():
             setattr(study_module, name, fn)
+        SeriesWriter.write = write_block
+        system_module.COMPILED_MIN_PATCHES = threshold
     zero = np.zeros(2)
-    return {"stages": {k: stages.get(k, zero) for k in STUDY_STAGES}, "load": t1 - t0,
-            "run": t2 - t1, "write": t3 - t2, "total": t3 - t0, "study": study,
-            "result": result, "base_mb": base, "peak_mb": peak_mb()}
+    return {"stages": {k: stages.get(k, zero) for k in (*STUDY_STAGES, "series_blocks")},
+            "load": t1 - t0, "run": t2 - t1, "write": t3 - t2, "total": t3 - t0,
+            "study": study, "result": result, "base_mb": base, "peak_mb": peak_mb()}

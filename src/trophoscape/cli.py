@@ -136,7 +136,7 @@ def main(argv=None) -> int:
 def _dispatch(args) -> int:
     if getattr(args, "handler", None) is not None:
         return int(args.handler(args) or 0)
-    from .outputs import write_run
+    from .outputs import staged_folder, write_run_files
     from .study import load_study, run_study
 
     if args.command == "check":
@@ -146,8 +146,10 @@ def _dispatch(args) -> int:
     study = load_study(scenario)
     if not args.quiet:
         _print_check(study)
-    result = run_study(study, progress=not args.quiet)
-    write_run(result, args.out, maps=not args.no_maps, geojson=args.geojson)
+    # the output folder is staged before the run, which writes timeseries.nc into it as it goes
+    with staged_folder(args.out) as stage:
+        result = run_study(study, progress=not args.quiet, series_to=stage / "timeseries.nc")
+        write_run_files(result, stage, maps=not args.no_maps, geojson=args.geojson)
     if not args.quiet:
         _print_summary(result, args.out)
     return 0

@@ -21,7 +21,8 @@ import numpy as np
 
 from .system import SPECIES
 
-__all__ = ["staged_folder", "write_run", "provenance", "file_sha256"]
+__all__ = ["staged_folder", "write_run", "write_run_files", "provenance", "file_sha256",
+           "SeriesWriter", "SERIES_BLOCK_ROWS"]
 
 
 def file_sha256(path) -> str:
@@ -110,33 +111,165 @@ def patches_frame(result):
     return gdf.set_geometry("geometry")
 
 
-def write_timeseries(path, result):
-    """NetCDF4 time series (CF attributes), abundances as float32."""
-    from . import __version__
+#: Time rows of a NetCDF chunk, and the census rows a run hands the writer at a time.
+SERIES_BLOCK_ROWS = 64
+#: Chunk sizes along (time, patch, replicate): about 1 MB, so that one time slice or one
+#: patch's whole series reads few chunks.
+_CHUNK_LIMITS = (SERIES_BLOCK_ROWS, 4096, 16)
 
-    sc = result.study.scenario
-    ds = result.trajectory.data.copy()  # shallow: the series are not copied
-    for s in SPECIES:
-        if ds[s].dtype != np.float32:
-            ds[s] = ds[s].astype("float32")
-        ds[s].attrs.update(units="1", long_name=f"{s} abundance (individuals)")
-    ds["patch"] = ds["patch"].astype(str)
-    ds["area_km2"] = ("patch", result.study.landscape.area_km2,
-                      {"units": "km2", "long_name": "patch area"})
-    ds["time"].attrs.update(units=sc["time_unit"], standard_name="time", axis="T")
-    ds.attrs.update(
-        title=f"trophoscape run: {sc.name}",
-        Conventions="CF-1.8",
-        source=f"trophoscape {__version__}",
-        scenario=sc.text,
-        time_unit=sc["time_unit"],
-    )
-    # chunks of about 1 MB: one time slice or one patch's whole series reads few of them
-    shape = ds[SPECIES[0]].shape
-    chunks = tuple(max(1, int(min(size, limit))) for size, limit in
-                   zip(shape, (64, 4096, 16)[:len(shape)]))
-    encoding = {s: {"zlib": True, "complevel": 4, "chunksizes": chunks} for s in SPECIES}
-    ds.to_netcdf(path, engine="h5netcdf", encoding=encoding)
+
+class SeriesWriter:
+    """``timeseries.nc`` (NetCDF4, CF attributes, abundances as float32) written as a run goes.
+
+    The coordinates, patch areas and attributes are written first (by xarray); the two
+    abundance variables are then filled block by block, as census rows arrive from
+    :func:`trophoscape.simulate.simulate` (its ``sink``), in chunks of
+    ``SERIES_BLOCK_ROWS`` time rows, compressed. The file is written under a temporary name
+    beside ``path`` and renamed by :meth:`finish` once every row is in; :meth:`abort`
+    (or an exception inside a ``with`` block) deletes it, so ``path`` is whole or absent.
+
+    Parameters
+    ----------
+    path : path
+        The file to write.
+    study : Study
+        Patch ids, areas, the scenario (attributes).
+    times : ndarray, shape (n_times,)
+        Census times.
+    seeds : sequence of int, optional
+        One per replicate: dims ``(time, patch, replicate)`` and a ``seed`` coordinate.
+    """
+
+    def __init__(self, path, *, study, times, seeds=None):
+        import h5netcdf
+        import xarray as xr
+
+        from . import __version__
+
+        self.path = Path(path)
+        sc = study.scenario
+        n = study.landscape.n_patches
+        self.replicates = None if seeds is None else len(seeds)
+        dims = ("time", "patch") if seeds is None else ("time", "patch", "replicate")
+        self.shape = (len(times), n) + (() if seeds is None else (self.replicates,))
+        coords = {
+            "time": ("time", np.asarray(times, dtype=float),
+                     {"units": sc["time_unit"], "long_name": "time", "standard_name": "time",
+                      "axis": "T"}),
+            "patch": ("patch", np.asarray(study.ids).astype(str), {"long_name": "patch id"}),
+        }
+        if seeds is not None:
+            coords["replicate"] = ("replicate", np.arange(self.replicates),
+                                   {"long_name": "replicate"})
+            coords["seed"] = ("replicate", np.asarray(seeds, dtype=np.int64),
+                              {"long_name": "seed of the replicate's random numbers"})
+        skeleton = xr.Dataset(
+            {"area_km2": ("patch", study.landscape.area_km2,
+                          {"units": "km2", "long_name": "patch area"})},
+            coords=coords,
+            attrs=dict(title=f"trophoscape run: {sc.name}", Conventions="CF-1.8",
+                       source=f"trophoscape {__version__}", scenario=sc.text,
+                       time_unit=sc["time_unit"]))
+        fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.partial-", dir=self.path.parent)
+        os.close(fd)
+        self._tmp = Path(tmp)
+        self.rows_written = 0
+        self._file = None
+        try:
+            skeleton.to_netcdf(self._tmp, engine="h5netcdf")
+            self._file = h5netcdf.File(self._tmp, "a")
+            chunks = tuple(max(1, int(min(size, limit)))
+                           for size, limit in zip(self.shape, _CHUNK_LIMITS))
+            self._vars = []
+            for name in SPECIES:
+                var = self._file.create_variable(
+                    name, dims, np.float32, chunks=chunks, compression="gzip",
+                    compression_opts=4, fillvalue=np.float32(np.nan))
+                var.attrs.update(units="1", long_name=f"{name} abundance (individuals)")
+                if seeds is not None:
+                    var.attrs["coordinates"] = "seed"
+                self._vars.append(var)
+        except BaseException:
+            self.abort()
+            raise
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, kind, value, tb):
+        if kind is None:
+            self.finish()
+        else:
+            self.abort()
+
+    def write(self, start: int, blocks) -> None:
+        """Rows ``start ..`` of each species: ``blocks`` is (prey, predator), each of shape
+        (rows, n_patches) or (rows, n_patches, n_replicates)."""
+        for var, block in zip(self._vars, blocks):
+            block = np.asarray(block, dtype=np.float32)
+            var[start:start + block.shape[0]] = block
+        self.rows_written = max(self.rows_written, start + np.shape(blocks[0])[0])
+
+    def sink_options(self, replicates: int | None = None) -> dict:
+        """``sink`` and ``sink_rows`` for :func:`trophoscape.simulate.simulate`.
+
+        The sink takes ``(start, stop, record)``, with ``record`` the run's (species, time,
+        state patch) array; with ``replicates`` the state holds that many stacked copies of
+        the network (``noise.stack_system``), which become the ``replicate`` dimension.
+        """
+        n = self.shape[1]
+
+        def sink(start, stop, record):
+            blocks = record[:, start:stop]
+            if replicates is not None:
+                blocks = blocks.reshape(2, stop - start, replicates, n).transpose(0, 1, 3, 2)
+            self.write(start, blocks)
+
+        return {"sink": sink, "sink_rows": SERIES_BLOCK_ROWS}
+
+    def finish(self, trajectory=None) -> Path:
+        """Write the rows not written yet (from ``trajectory``), close and rename into place."""
+        try:
+            if self.rows_written < self.shape[0]:
+                if trajectory is None:
+                    raise ValueError(f"{self.shape[0] - self.rows_written} census rows of "
+                                     f"{self.path.name} were never written")
+                start = self.rows_written
+                self.write(start, [trajectory.data[s].values[start:] for s in SPECIES])
+            self._file.close()
+            self._file = None
+            os.replace(self._tmp, self.path)
+        except BaseException:
+            self.abort()
+            raise
+        return self.path
+
+    def abort(self) -> None:
+        """Close and delete the partial file."""
+        if self._file is not None:
+            with contextlib.suppress(Exception):
+                self._file.close()
+            self._file = None
+        self._tmp.unlink(missing_ok=True)
+
+
+def write_timeseries(path, result):
+    """NetCDF4 time series (CF attributes), abundances as float32.
+
+    A run started with ``run_study(..., series_to=...)`` wrote its file as it went; that
+    file is copied. Otherwise the series are written from memory by the same writer.
+    """
+    path = Path(path)
+    streamed = getattr(result, "series_file", None)
+    if streamed is not None and Path(streamed).exists():
+        if Path(streamed).resolve() != path.resolve():
+            shutil.copyfile(streamed, path)
+        return
+    data = result.trajectory.data
+    seeds = data["seed"].values if "replicate" in data.dims else None
+    with SeriesWriter(path, study=result.study, times=data["time"].values,
+                      seeds=seeds) as writer:
+        writer.write(0, [data[s].values for s in SPECIES])
 
 
 def write_run(result, out, *, maps: bool = True, geojson: bool = False) -> Path:
@@ -154,23 +287,31 @@ def write_run(result, out, *, maps: bool = True, geojson: bool = False) -> Path:
         Also write ``patches.geojson`` (WGS 84, as RFC 7946 wants).
     """
     out = Path(out)
+    with staged_folder(out) as stage:
+        write_run_files(result, stage, maps=maps, geojson=geojson)
+    return out
+
+
+def write_run_files(result, stage, *, maps: bool = True, geojson: bool = False) -> None:
+    """The files of :func:`write_run`, written into ``stage``, a folder from
+    :func:`staged_folder` (the command line opens it before the run, so that the run
+    writes ``timeseries.nc`` there as it goes)."""
+    stage = Path(stage)
     gdf = patches_frame(result)
     links = result.study.network.links_frame(result.study.landscape)
     summary = dict(result.summary)
     summary["crs"] = result.study.landscape.crs.to_string()
     summary["repaired_geometries"] = list(result.study.landscape.repaired)
     summary["provenance"] = provenance(result.study)
-    with staged_folder(out) as stage:
-        gdf.to_file(stage / "patches.gpkg", layer="patches", driver="GPKG", engine="pyogrio")
-        links.to_file(stage / "patches.gpkg", layer="links", driver="GPKG", engine="pyogrio")
-        if geojson:
-            gdf.to_crs("EPSG:4326").to_file(stage / "patches.geojson", driver="GeoJSON",
-                                            engine="pyogrio")
-        result.patches.to_csv(stage / "patches.csv", index=True)
-        write_timeseries(stage / "timeseries.nc", result)
-        write_json(stage / "summary.json", summary)
-        if maps:
-            from .report import write_figures_and_report
+    gdf.to_file(stage / "patches.gpkg", layer="patches", driver="GPKG", engine="pyogrio")
+    links.to_file(stage / "patches.gpkg", layer="links", driver="GPKG", engine="pyogrio")
+    if geojson:
+        gdf.to_crs("EPSG:4326").to_file(stage / "patches.geojson", driver="GeoJSON",
+                                        engine="pyogrio")
+    result.patches.to_csv(stage / "patches.csv", index=True)
+    write_timeseries(stage / "timeseries.nc", result)
+    write_json(stage / "summary.json", summary)
+    if maps:
+        from .report import write_figures_and_report
 
-            write_figures_and_report(stage, result, gdf, links, summary)
-    return out
+        write_figures_and_report(stage, result, gdf, links, summary)

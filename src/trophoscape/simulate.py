@@ -143,6 +143,8 @@ def simulate(
     events=(),
     noise=None,
     dtype=np.float64,
+    sink=None,
+    sink_rows: int = 64,
 ) -> Trajectory:
     """Integrate ``system`` from ``y0`` with census steps every ``census_interval``.
 
@@ -184,6 +186,14 @@ def simulate(
         ``timeseries.nc``), which is what :func:`trophoscape.study.run_study` uses. Each
         species' series is one contiguous ``(time, patch)`` block, so it is written to a
         file without another copy.
+    sink : callable, optional
+        ``sink(start, stop, record)``, called as the run goes each time ``sink_rows`` more
+        census rows are recorded (and once for the last rows), with ``record`` the
+        ``(species, time, patch)`` array in the user's patch order, rows ``start:stop`` new
+        (:class:`trophoscape.outputs.SeriesWriter` writes them to NetCDF). Event-based
+        (demographic) runs do not call it.
+    sink_rows : int
+        Census rows per call of ``sink``.
 
     Returns
     -------
@@ -283,6 +293,10 @@ def simulate(
     bar = tqdm(total=times.size - 1, disable=not progress, delay=2.0, unit="census",
                desc="integrating", leave=False)
     k = 1
+    sunk = 0  # census rows handed to the sink
+    if sink is not None and times.size == 1:
+        sink(0, 1, record)
+        sunk = 1
     if not noisy:
         base = None
     solver = start(times[0], system.to_internal(y) if internal else y, None)
@@ -337,6 +351,9 @@ def simulate(
                 record[:, k] = user_order(y_k).reshape(2, n)
                 k += 1
                 bar.update(1)
+                if sink is not None and (k - sunk == sink_rows or k == times.size):
+                    sink(sunk, k, record)
+                    sunk = k
                 if noisy and k < times.size:
                     harvest(solver)
                     system = run.interval(base)

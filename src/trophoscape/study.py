@@ -8,8 +8,10 @@ same numbers as the CLI.
 
 from __future__ import annotations
 
+import contextlib
 import warnings
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -61,6 +63,8 @@ class RunResult:
     patches: pd.DataFrame
     summary: dict
     extras: dict = field(default_factory=dict, repr=False)
+    #: ``timeseries.nc`` as the run wrote it (``run_study(series_to=...)``), or None
+    series_file: Path | None = None
 
 
 def load_study(path) -> Study:
@@ -260,7 +264,7 @@ def _stacked_events(events, n: int, reps: int):
 
 
 def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=None,
-                        progress: bool = False) -> Trajectory:
+                        progress: bool = False, writer=None) -> Trajectory:
     """Integrate every replicate of a study; dims ``(time, patch, replicate)``.
 
     Parameters
@@ -274,6 +278,9 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
     stacked : bool or None
         Integrate all replicates as one block-diagonal system (solver overhead paid once) or
         one by one. None: stacked unless a shock rewires the network.
+    writer : trophoscape.outputs.SeriesWriter, optional
+        Stacked, the census rows are written to it as the run goes; one by one, the caller
+        writes them at the end (``writer.finish(trajectory)``).
 
     Notes
     -----
@@ -300,7 +307,9 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
         raise ValueError("replicates with shocks that rewire the network run one by one")
     if stacked:
         big = simulate(stack_system(study.system, reps), stack_state(study.initial_state, reps),
-                       events=stacked_events, noise=noise, **common)
+                       events=stacked_events, noise=noise,
+                       **({} if writer is None else writer.sink_options(replicates=reps)),
+                       **common)
         cubes = {s: big.data[s].values.reshape(-1, reps, n).transpose(0, 2, 1)
                  for s in SPECIES}
         stats = big.stats
@@ -343,12 +352,19 @@ def _sum_stats(all_stats):
 STORAGE_DTYPE = np.float32
 
 
-def run_study(study: Study, *, progress: bool = False, stacked=None) -> RunResult:
+def run_study(study: Study, *, progress: bool = False, stacked=None,
+              series_to=None) -> RunResult:
     """Integrate a study and run the analyses on the result.
 
     With ``[run] replicates = R > 1`` the trajectory has dims ``(time, patch, replicate)``
     and a ``seed`` coordinate; ``stacked`` chooses how replicates are integrated (see
     :func:`simulate_replicates`).
+
+    ``series_to``: a path for ``timeseries.nc``, written as the run goes, in blocks of
+    ``outputs.SERIES_BLOCK_ROWS`` census rows (under a temporary name, renamed when the last
+    row is in, deleted if the run fails). :func:`trophoscape.outputs.write_run` then takes
+    that file instead of writing the series again. Replicates run one by one and event-based
+    (demographic) runs write theirs when the integration ends.
 
     Returns
     -------
@@ -365,18 +381,31 @@ def run_study(study: Study, *, progress: bool = False, stacked=None) -> RunResul
         events = shock_events(study.shocks, ShockContext.from_study(study))
     seeds = run_seeds(sc)
     noise = noise_model(study, seeds)
-    if len(seeds) == 1:
-        traj = simulate(
-            study.system, study.initial_state,
-            duration=sc["run.duration"], census_interval=sc["run.census_interval"],
-            extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
-            rtol=sc["run.rtol"], atol=sc["run.atol"], ids=study.ids,
-            time_unit=sc["time_unit"], progress=progress, events=events, noise=noise,
-            dtype=STORAGE_DTYPE,
-        )
-    else:
-        traj = simulate_replicates(study, seeds=seeds, noise=noise, events=events,
-                                   stacked=stacked, progress=progress)
+    writer = None
+    if series_to is not None:
+        from .outputs import SeriesWriter
+        from .simulate import census_times
+
+        writer = SeriesWriter(series_to, study=study,
+                              times=census_times(sc["run.duration"], sc["run.census_interval"]),
+                              seeds=None if len(seeds) == 1 else seeds)
+    with contextlib.ExitStack() as cleanup:
+        if writer is not None:
+            cleanup.callback(writer.abort)  # a no-op once finish has renamed the file
+        if len(seeds) == 1:
+            traj = simulate(
+                study.system, study.initial_state,
+                duration=sc["run.duration"], census_interval=sc["run.census_interval"],
+                extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
+                rtol=sc["run.rtol"], atol=sc["run.atol"], ids=study.ids,
+                time_unit=sc["time_unit"], progress=progress, events=events, noise=noise,
+                dtype=STORAGE_DTYPE, **({} if writer is None else writer.sink_options()),
+            )
+        else:
+            traj = simulate_replicates(study, seeds=seeds, noise=noise, events=events,
+                                       stacked=stacked, progress=progress, writer=writer)
+        if writer is not None:
+            writer.finish(traj)
     table, summary, extras = analyse(study, traj)
     summary["replicates"] = len(seeds)
     summary["seeds"] = seeds
@@ -384,7 +413,7 @@ def run_study(study: Study, *, progress: bool = False, stacked=None) -> RunResul
         summary["noise"] = {k.split(".", 1)[1]: sc[k] for k in sc.values
                             if k.startswith("noise.")}
     return RunResult(study=study, trajectory=traj, patches=table, summary=summary,
-                     extras=extras)
+                     extras=extras, series_file=None if writer is None else writer.path)
 
 
 #: Per-patch columns of the output contract, in order (SCENARIO.md); others follow.

@@ -1,0 +1,131 @@
+"""timeseries.nc written as the run goes: the same file xarray writes, whole or absent.
+
+The reference is xarray's own NetCDF writer (``Dataset.to_netcdf`` with the h5netcdf engine)
+applied to the finished trajectory with the CF attributes of the output contract; the file
+streamed block by block must read back identical to it (``xarray.testing.assert_identical``).
+"""
+
+import numpy as np
+import pytest
+import xarray as xr
+
+import trophoscape as ts
+from trophoscape.errors import RunError
+from trophoscape.outputs import SERIES_BLOCK_ROWS
+from trophoscape.scenario import parse_scenario
+from trophoscape.system import SPECIES
+from trophoscape.testing import grid_landscape
+
+
+@pytest.fixture(scope="module")
+def grid_file(tmp_path_factory):
+    land = grid_landscape(3, 4, spacing_km=2.0, size_km=1.0)
+    path = tmp_path_factory.mktemp("grid") / "grid.gpkg"
+    land.frame.to_file(path, driver="GPKG", engine="pyogrio")
+    return path
+
+
+def study_of(path, **sections):
+    raw = {"patches": {"path": str(path), "id_field": "patch_id"},
+           "run": {"duration": 80.0, "burn_in": 2.0, "census_interval": 0.5},
+           "analysis": {"stability": False, "capacity": False}}
+    for k, v in sections.items():
+        raw.setdefault(k, {}).update(v)
+    return ts.build_study(parse_scenario(raw, base_dir=path.parent))
+
+
+def reference_file(result, path):
+    """The finished trajectory written in one go by xarray, with the contract's attributes."""
+    sc = result.study.scenario
+    ds = result.trajectory.data.copy()
+    for s in SPECIES:
+        ds[s] = ds[s].astype("float32")
+        ds[s].attrs = {"units": "1", "long_name": f"{s} abundance (individuals)"}
+    ds["patch"] = ds["patch"].astype(str)
+    ds["area_km2"] = ("patch", result.study.landscape.area_km2,
+                      {"units": "km2", "long_name": "patch area"})
+    ds["time"].attrs.update(standard_name="time", axis="T")
+    ds.attrs.update(title=f"trophoscape run: {sc.name}", Conventions="CF-1.8",
+                    source=f"trophoscape {ts.__version__}", scenario=sc.text,
+                    time_unit=sc["time_unit"])
+    ds.to_netcdf(path, engine="h5netcdf")
+    return path
+
+
+def assert_same_file(got, want):
+    with xr.open_dataset(got, engine="h5netcdf") as a, xr.open_dataset(want,
+                                                                       engine="h5netcdf") as b:
+        xr.testing.assert_identical(a.load(), b.load())
+        for s in SPECIES:
+            assert a[s].dtype == np.float32
+            assert a[s].encoding["zlib"] or a[s].encoding.get("compression") == "gzip"
+
+
+def test_streamed_file_equals_xarrays_and_arrives_in_blocks(grid_file, tmp_path, monkeypatch):
+    study = study_of(grid_file)
+    seen = []
+    from trophoscape import outputs
+
+    original = outputs.SeriesWriter.write
+
+    def spy(self, start, blocks):
+        # the file is being filled while the run goes: rows so far, before the run ends
+        seen.append((start, np.shape(blocks[0])[0], self._tmp.exists(), self.path.exists()))
+        return original(self, start, blocks)
+
+    monkeypatch.setattr(outputs.SeriesWriter, "write", spy)
+    target = tmp_path / "series.nc"
+    result = ts.run_study(study, series_to=target)
+    n_times = result.trajectory.data.sizes["time"]
+    assert n_times == 161
+    # blocks of 64 census rows, in order, then the last 33; all while the name is temporary
+    assert [(s, r) for s, r, _, _ in seen] == [(0, 64), (64, 64), (128, 33)]
+    assert all(tmp and not final for _, _, tmp, final in seen)
+    assert result.series_file == target and target.exists()
+    assert not list(tmp_path.glob(".series.nc.partial-*"))
+    assert_same_file(target, reference_file(result, tmp_path / "reference.nc"))
+    # write_run takes the streamed file as it is
+    out = ts.write_run(result, tmp_path / "out")
+    assert (out / "timeseries.nc").read_bytes() == target.read_bytes()
+
+
+def test_file_written_from_memory_equals_xarrays(grid_file, tmp_path):
+    result = ts.run_study(study_of(grid_file))
+    assert result.series_file is None
+    out = ts.write_run(result, tmp_path / "out")
+    assert_same_file(out / "timeseries.nc", reference_file(result, tmp_path / "reference.nc"))
+
+
+@pytest.mark.parametrize("stacked", [True, False])
+def test_replicates_streamed_or_written_at_the_end(grid_file, tmp_path, stacked):
+    study = study_of(grid_file, run={"replicates": 3, "seed": 7, "duration": 40.0},
+                     noise={"environmental_sd": 0.3, "correlation_km": 3.0})
+    target = tmp_path / "series.nc"
+    result = ts.run_study(study, stacked=stacked, series_to=target)
+    assert result.trajectory.data["prey"].dims == ("time", "patch", "replicate")
+    assert_same_file(target, reference_file(result, tmp_path / "reference.nc"))
+
+
+def test_demographic_run_written_at_the_end(grid_file, tmp_path):
+    study = study_of(grid_file, run={"replicates": 2, "seed": 3, "duration": 6.0},
+                     noise={"demographic": True})
+    target = tmp_path / "series.nc"
+    result = ts.run_study(study, series_to=target)
+    assert_same_file(target, reference_file(result, tmp_path / "reference.nc"))
+
+
+def test_failed_run_leaves_no_series_file(grid_file, tmp_path):
+    # exponential prey with no predator grows past what float32 stores: the run fails
+    study = study_of(grid_file, prey={"growth": "exponential", "growth_rate": 3.0},
+                     predator={"initial_density": 0.0})
+    target = tmp_path / "series.nc"
+    with pytest.raises(RunError):
+        ts.run_study(study, series_to=target)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_block_rows_match_the_netcdf_chunks(grid_file, tmp_path):
+    # one block of census rows fills whole chunks along time, so no chunk is written twice
+    result = ts.run_study(study_of(grid_file), series_to=tmp_path / "s.nc")
+    with xr.open_dataset(result.series_file, engine="h5netcdf") as ds:
+        assert ds["prey"].encoding["chunksizes"][0] == SERIES_BLOCK_ROWS
