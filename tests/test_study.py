@@ -33,9 +33,9 @@ def scenario(path, **sections):
 
 
 def test_import_is_light():
-    # `import trophoscape` must not pull in matplotlib or geopandas (STYLE.md habit 8)
-    code = ("import sys, trophoscape; "
-            "print(sorted(m for m in ('matplotlib', 'geopandas') if m in sys.modules))")
+    # `import trophoscape` must not pull in matplotlib, geopandas or numba (STYLE.md habit 8)
+    code = ("import sys, trophoscape, trophoscape.system; "
+            "print(sorted(m for m in ('matplotlib', 'geopandas', 'numba') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.strip() == "[]"
