@@ -9,7 +9,8 @@ import xarray as xr
 
 from conftest import make_model, make_system
 from trophoscape.errors import InputError
-from trophoscape.noise import (NoiseModel, kernel_correlation, lognormal_multiplier,
+from trophoscape.noise import (NoiseModel, covariance_root, kernel_correlation,
+                               lognormal_multiplier,
                                stack_state, stack_system)
 from trophoscape.scenario import parse_scenario
 from trophoscape.simulate import simulate
@@ -69,6 +70,25 @@ def test_one_feature_set_is_within_its_rank_error():
     bound = 4 * np.sqrt(1 / (2 * 2000)) + 4 / np.sqrt(20_000)
     assert np.all(np.abs(got - target) < bound)
     assert np.allclose(np.diag(np.cov(z.T)), 1.0, atol=4 * np.sqrt(2 / 20_000))
+
+
+def test_covariance_root_reproduces_the_feature_covariance(rng):
+    # L Lᵀ = Φ Φᵀ, so L z (z ~ N(0, I_n)) has the law of Φ w (w ~ N(0, I_D)); checked
+    # against numpy's product, for a regular stack and one with two patches at one place
+    # (a singular Φ Φᵀ: the eigen-decomposition path)
+    phi = rng.standard_normal((3, 6, 40))
+    phi /= np.linalg.norm(phi, axis=2, keepdims=True)
+    singular = phi.copy()
+    singular[:, 1] = singular[:, 0]
+    for f in (phi, singular):
+        root = covariance_root(f)
+        assert root.shape == (3, 6, 6) and np.all(np.isfinite(root))
+        np.testing.assert_allclose(root @ root.transpose(0, 2, 1), f @ f.transpose(0, 2, 1),
+                                   atol=1e-12)
+    # a run with fewer patches than features draws from the root: one normal per patch
+    model = NoiseModel(centroids_km=[[0.0, 0.0], [1.0, 0.0], [0.0, 2.0]], seeds=[4],
+                       environmental_sd=0.2, correlation_km=3.0, rank=50)
+    assert model.start().features.shape == (1, 3, 3)
 
 
 def test_regional_setting_and_shared_share():

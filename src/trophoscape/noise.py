@@ -35,7 +35,9 @@ Environmental noise
     correction needs it exactly); correlations carry the Monte Carlo error of ``D``
     features, an sd of about ``sqrt(1/(2D))`` (0.03 at the default rank ``D = 500``).
     ``Φ`` is drawn once per replicate; each step then costs O(patches × D), never
-    O(patches²), and memory is patches × D per replicate.
+    O(patches²), and memory is patches × D per replicate. With fewer patches than features
+    the field is drawn as ``L z`` instead, ``L Lᵀ = Φ Φᵀ`` (:func:`covariance_root`): the
+    same law from ``patches`` normals per step (O(patches²) per step, below O(patches × D)).
 
 Demographic noise: event-based, tau-leaping with exact steps for small counts
     With ``demographic = True`` a run is no longer an ODE: abundances are whole individuals
@@ -155,6 +157,32 @@ def fourier_features(xy_km: np.ndarray, omega: np.ndarray, phase: np.ndarray) ->
     phi = np.cos(xy_km @ omega.T + phase)
     norm = np.sqrt(np.einsum("ij,ij->i", phi, phi))
     return phi / np.where(norm > 0, norm, 1.0)[:, None]
+
+
+def covariance_root(features: np.ndarray) -> np.ndarray:
+    """``L`` with ``L Lᵀ = Φ Φᵀ``, for stacks of feature matrices Φ of shape (n, D).
+
+    The field ``Φ w`` with ``w ~ N(0, I_D)`` is Gaussian with covariance ``Φ Φᵀ``, and so is
+    ``L z`` with ``z ~ N(0, I_n)``: with fewer patches than features (n < D) a field then
+    takes n normal draws and an n × n product instead of D draws and an n × D product. ``L``
+    is the Cholesky factor, or, where ``Φ Φᵀ`` is singular (patches sharing a centroid), the
+    symmetric root from its eigen-decomposition with round-off negatives set to zero
+    (Golub & Van Loan 2013, Matrix Computations, §4.2; from memory).
+
+    Parameters
+    ----------
+    features : ndarray, shape (R, n, D)
+
+    Returns
+    -------
+    ndarray, shape (R, n, n)
+    """
+    cov = features @ features.transpose(0, 2, 1)
+    try:
+        return np.linalg.cholesky(cov)
+    except np.linalg.LinAlgError:
+        values, vectors = np.linalg.eigh(cov)
+        return vectors * np.sqrt(np.clip(values, 0.0, None))[:, None, :]
 
 
 def lognormal_multiplier(z, sd: float) -> np.ndarray:
@@ -323,6 +351,9 @@ class NoiseRun:
                 phase = rng.uniform(0.0, 2.0 * np.pi, model.rank)
                 feats.append(fourier_features(xy, omega, phase))
             self.features = np.stack(feats)                      # (R, n, D)
+            if n < model.rank:
+                # fewer patches than features: the same Gaussian law from n normals
+                self.features = covariance_root(self.features)   # (R, n, n)
         self.multipliers = {}
         self.arcs = {}
         if model.demographic:
@@ -338,7 +369,7 @@ class NoiseRun:
         s = m.shared_share
         # each replicate draws from its own stream, in the same order as when run alone
         # (features first, then the shared value); the products are then one batched matmul
-        weights = np.empty((reps, m.rank)) if s < 1.0 else None
+        weights = np.empty((reps, self.features.shape[2])) if s < 1.0 else None
         shared = np.empty(reps) if s > 0.0 else None
         for r, rng in enumerate(self.rngs):
             if weights is not None:
