@@ -377,10 +377,17 @@ def reference(long_scenario, tmp_path_factory):
     return read_table(out)
 
 
+def _default_sigint():
+    # as in a terminal: a shell running the test suite in the background (`pytest &` in a
+    # script) starts it with SIGINT ignored, and children would inherit that
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _cli_process(args):
     env = dict(os.environ, PYTHONPATH=str(SRC), OPENBLAS_NUM_THREADS="1")
     return subprocess.Popen([sys.executable, "-c", RUNNER, *map(str, args)], env=env,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=_default_sigint)
 
 
 def _wait_for_rows(ledger: Path, proc, total: int, timeout=60.0) -> int:
