@@ -26,3 +26,27 @@ def make_system(model, area=None, prey_movement=None, predator_movement=None):
 @pytest.fixture
 def rng():
     return np.random.default_rng(20261202)
+
+
+def write_grid_file(folder):
+    """A 3 × 4 grid of 1 km squares, 2 km apart, as a GeoPackage in ``folder``."""
+    from trophoscape.testing import grid_landscape
+
+    land = grid_landscape(3, 4, spacing_km=2.0, size_km=1.0)
+    path = folder / "grid.gpkg"
+    land.frame.to_file(path, driver="GPKG", engine="pyogrio")
+    return path
+
+
+def grid_study(path, *, duration, **sections):
+    """A study of the grid file: census every 0.5, burn-in 2, stability and capacity off;
+    ``sections`` add or override scenario keys by section."""
+    import trophoscape as ts
+    from trophoscape.scenario import parse_scenario
+
+    raw = {"patches": {"path": str(path), "id_field": "patch_id"},
+           "run": {"duration": duration, "burn_in": 2.0, "census_interval": 0.5},
+           "analysis": {"stability": False, "capacity": False}}
+    for k, v in sections.items():
+        raw.setdefault(k, {}).update(v)
+    return ts.build_study(parse_scenario(raw, base_dir=path.parent))

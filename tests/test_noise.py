@@ -7,7 +7,7 @@ import scipy.sparse as sp
 import scipy.stats as st
 import xarray as xr
 
-from conftest import make_model, make_system
+from conftest import grid_study, make_model, make_system, write_grid_file
 from trophoscape.errors import InputError
 from trophoscape.noise import (NoiseModel, covariance_root, kernel_correlation,
                                lognormal_multiplier,
@@ -270,23 +270,11 @@ def test_noise_keys_are_checked():
 
 @pytest.fixture
 def grid_file(tmp_path):
-    from trophoscape.testing import grid_landscape
-
-    land = grid_landscape(3, 4, spacing_km=2.0, size_km=1.0)
-    path = tmp_path / "grid.gpkg"
-    land.frame.to_file(path, driver="GPKG", engine="pyogrio")
-    return path
+    return write_grid_file(tmp_path)
 
 
 def _study(path, **sections):
-    import trophoscape as ts
-
-    raw = {"patches": {"path": str(path), "id_field": "patch_id"},
-           "run": {"duration": 12.0, "burn_in": 2.0, "census_interval": 0.5},
-           "analysis": {"stability": False, "capacity": False}}
-    for k, v in sections.items():
-        raw.setdefault(k, {}).update(v)
-    return ts.build_study(parse_scenario(raw, base_dir=path.parent))
+    return grid_study(path, duration=12.0, **sections)
 
 
 def test_replicates_seeds_outputs_and_figure(grid_file, tmp_path):

@@ -12,26 +12,19 @@ import xarray as xr
 import trophoscape as ts
 from trophoscape.errors import RunError
 from trophoscape.outputs import SERIES_BLOCK_ROWS
-from trophoscape.scenario import parse_scenario
 from trophoscape.system import SPECIES
-from trophoscape.testing import grid_landscape
+
+from conftest import grid_study, write_grid_file
 
 
 @pytest.fixture(scope="module")
 def grid_file(tmp_path_factory):
-    land = grid_landscape(3, 4, spacing_km=2.0, size_km=1.0)
-    path = tmp_path_factory.mktemp("grid") / "grid.gpkg"
-    land.frame.to_file(path, driver="GPKG", engine="pyogrio")
-    return path
+    return write_grid_file(tmp_path_factory.mktemp("grid"))
 
 
 def study_of(path, **sections):
-    raw = {"patches": {"path": str(path), "id_field": "patch_id"},
-           "run": {"duration": 80.0, "burn_in": 2.0, "census_interval": 0.5},
-           "analysis": {"stability": False, "capacity": False}}
-    for k, v in sections.items():
-        raw.setdefault(k, {}).update(v)
-    return ts.build_study(parse_scenario(raw, base_dir=path.parent))
+    run = dict(sections.pop("run", {}))
+    return grid_study(path, duration=run.pop("duration", 80.0), run=run, **sections)
 
 
 def reference_file(result, path):
