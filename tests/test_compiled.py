@@ -137,8 +137,12 @@ def test_auto_kernel_by_size_and_availability(rng, monkeypatch):
     monkeypatch.setattr(system_module, "COMPILED_MIN_PATCHES", n)
     assert make().local_kernel == "compiled"
     assert make("numpy").local_kernel == "numpy"
-    # with_model (noise, shocks) keeps the choice
+    # with_model (noise, shocks) and stacking replicates keep the choice
     assert make().with_model(make_model(n=n, growth_rate=2.0)).local_kernel == "compiled"
+    from trophoscape.noise import stack_system
+
+    assert stack_system(make("numpy"), 3).local_kernel == "numpy"
+    assert stack_system(make("compiled"), 3).kernel == "compiled"
     # a growth form the kernel does not know is evaluated by numpy
     monkeypatch.setattr(compiled, "GROWTH_CODES", {"exponential": 0})
     assert make().local_kernel == "numpy"

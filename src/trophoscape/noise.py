@@ -437,7 +437,8 @@ def stack_system(system, replicates: int):
         prey_movement=sp.csr_array(sp.block_diag([system.prey_movement] * replicates,
                                                  format="csr")),
         predator_movement=sp.csr_array(sp.block_diag([system.predator_movement] * replicates,
-                                                     format="csr")))
+                                                     format="csr")),
+        kernel=system.kernel)
 
 
 def stack_state(y: np.ndarray, replicates: int) -> np.ndarray:
@@ -720,7 +721,8 @@ def _replicate_system(system, r: int, n: int):
     return CoupledSystem(
         model=LocalModel(growth=model.growth, response=model.response, params=params),
         area_km2=system.area_km2[sl], prey_movement=sp.csr_array(system.prey_movement[sl, sl]),
-        predator_movement=sp.csr_array(system.predator_movement[sl, sl]), order="none")
+        predator_movement=sp.csr_array(system.predator_movement[sl, sl]), order="none",
+        kernel=system.kernel)
 
 
 def simulate_events(system, y0, *, duration: float, census_interval: float, noise,

@@ -170,6 +170,7 @@ class SeriesWriter:
             attrs=dict(title=f"trophoscape run: {sc.name}", Conventions="CF-1.8",
                        source=f"trophoscape {__version__}", scenario=sc.text,
                        time_unit=sc["time_unit"]))
+        self.path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.partial-", dir=self.path.parent)
         os.close(fd)
         self._tmp = Path(tmp)
