@@ -172,3 +172,26 @@ def test_every_growth_form_and_response_has_a_kernel_code():
     # a new entry in the tables would silently run on numpy only; make that a decision
     assert set(compiled.GROWTH_CODES) == set(GROWTH_FORMS)
     assert set(compiled.RESPONSE_CODES) == set(RESPONSES)
+
+
+def test_kernel_still_compiles_where_numba_cannot_cache():
+    # numba raises RuntimeError when it finds no cache folder it may use (a read-only
+    # install); an unknown locator class set in the environment takes the same path
+    import os
+    import subprocess
+    import sys
+
+    code = ("import numpy as np; from trophoscape import _compiled as c; "
+            "from trophoscape.dynamics import LocalModel; "
+            "q = {k: np.ones(3) for k in c.PARAMETER_ROWS[:-1]}; "
+            "f = c.local_terms_function(LocalModel('logistic', 'holling2', q), np.ones(3)); "
+            "y = np.arange(6.0); x = np.empty(6); dy = np.empty(6); f(y, x, dy); "
+            "print(c._local_terms._cache.__class__.__name__, dy.tolist())")
+    env = dict(os.environ, NUMBA_CACHE_LOCATOR_CLASSES="no_such_module.NoLocator")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
+    assert out.returncode == 0, out.stderr
+    name, values = out.stdout.split(" ", 1)
+    assert name == "NullCache"  # compiled, not cached
+    # logistic r n (1 - n/K) - a n p / (1 + a h n) with every parameter 1, n = 0..2, p = 3..5
+    n, p = np.arange(3.0), np.arange(3.0, 6.0)
+    np.testing.assert_allclose(eval(values)[:3], n * (1 - n) - n * p / (1 + n))

@@ -28,9 +28,20 @@ PARAMETER_ROWS = ("growth_rate", "capacity", "allee_density", "attack_rate", "ha
                   "interference", "conversion", "mortality", "prey_harvest")
 
 
-# error_model="numpy": no Python zero-division checks, so the loop vectorises; the division
-# by a zero area cannot occur (areas are checked positive when the landscape is read)
-@numba.njit(cache=True, error_model="numpy", boundscheck=False, nogil=True)
+def _jit(function):
+    """Compiled with numba, the machine code cached on disk when a folder for it is writable.
+
+    error_model="numpy": no Python zero-division checks, so the loop vectorises; a division by
+    a zero area cannot occur (areas are checked positive when the landscape is read).
+    """
+    options = dict(error_model="numpy", boundscheck=False, nogil=True)
+    try:
+        return numba.njit(cache=True, **options)(function)
+    except RuntimeError:  # no writable cache folder (numba's words): compile in each process
+        return numba.njit(cache=False, **options)(function)
+
+
+@_jit
 def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no cover - compiled
     n = area.size
     r, k, t, a, h, c, e, m, hv = q[0], q[1], q[2], q[3], q[4], q[5], q[6], q[7], q[8]
