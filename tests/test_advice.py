@@ -61,3 +61,17 @@ def test_large_networks_hear_about_the_absolute_tolerance(tmp_path, monkeypatch)
     assert "consider run.atol = 0.0001" in note
     loose, _ = study_of(tmp_path, dispersal={"max_distance_km": 100.0}, run={"atol": 1e-4})
     assert practical_warnings(loose) == []
+
+
+def test_large_networks_hear_about_the_compiled_kernel_only_without_numba(tmp_path,
+                                                                         monkeypatch):
+    import trophoscape.system as system_module
+
+    study, _ = study_of(tmp_path, dispersal={"max_distance_km": 100.0})
+    monkeypatch.setattr(system_module, "COMPILED_MIN_PATCHES", 6)
+    monkeypatch.setattr(system_module, "_compiled_module", lambda: None)
+    (note,) = practical_warnings(study)
+    assert note.startswith("with 6 patches the local equations run faster compiled")
+    assert note.endswith("numba is not installed: pip install 'trophoscape[fast]'.")
+    monkeypatch.setattr(system_module, "_compiled_module", lambda: object())
+    assert practical_warnings(study) == []
