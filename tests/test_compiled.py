@@ -185,7 +185,7 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
             "from trophoscape.dynamics import LocalModel; "
             "q = {k: np.ones(3) for k in c.PARAMETER_ROWS[:-1]}; "
             "f = c.local_terms_function(LocalModel('logistic', 'holling2', q), np.ones(3)); "
-            "y = np.arange(6.0); x = np.empty(6); dy = np.empty(6); f(y, x, dy); "
+            "y = np.arange(6.0); x = np.empty(6); dy = f(y, x); "
             "print(c._local_terms._cache.__class__.__name__, dy.tolist())")
     env = dict(os.environ, NUMBA_CACHE_LOCATOR_CLASSES="no_such_module.NoLocator")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)

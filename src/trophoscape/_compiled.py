@@ -86,7 +86,8 @@ def supports(model) -> bool:
 
 
 def local_terms_function(model, area):
-    """``local(y, x, dy)``: ``x = max(y, 0)`` and ``dy`` = the local terms, in abundance.
+    """``local(y, x) -> dy``: ``x = max(y, 0)`` in place, and a new array of the local terms,
+    in abundance.
 
     Parameters
     ----------
@@ -98,8 +99,8 @@ def local_terms_function(model, area):
     Returns
     -------
     callable
-        ``local(y, x, dy)`` with ``y``, ``x``, ``dy`` float64 arrays of shape (2 n,); writes
-        ``x`` and ``dy`` in place.
+        ``local(y, x)`` with ``y``, ``x`` float64 arrays of shape (2 n,); writes ``x`` in
+        place and returns ``dy``, shape (2 n,).
     """
     area = np.ascontiguousarray(area, dtype=np.float64)
     n = area.size
@@ -112,7 +113,9 @@ def local_terms_function(model, area):
     harvest = "prey_harvest" in params
     kernel = _local_terms
 
-    def local(y, x, dy):
+    def local(y, x):
+        dy = np.empty(2 * n)
         kernel(growth, response, harvest, y, area, block, x, dy)
+        return dy
 
     return local

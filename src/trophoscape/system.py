@@ -209,6 +209,33 @@ def compiled_available() -> bool:
     return _compiled_module() is not None
 
 
+def _numpy_local_terms(model, area):
+    """``local(y, x) -> dy``: ``x = max(y, 0)`` in place, and a new array of the local terms,
+    by numpy.
+
+    The reference evaluation; :func:`trophoscape._compiled.local_terms_function` is the same
+    in one compiled pass.
+    """
+    n = area.size
+    rates = model.rates
+    area2 = np.concatenate([area, area])
+    dens = np.empty(2 * n)
+    # max(y, 0) against an array of zeros: numpy 2.4 takes its vectorised loop for two arrays
+    # but not for an array and a scalar (0.045 against 0.091 ms at 100,000 patches)
+    zero = np.zeros(2 * n)
+
+    def local(y, x):
+        np.maximum(y, zero, out=x)
+        np.divide(x, area2, out=dens)
+        dn, dp = rates(dens[:n], dens[n:])
+        dy = np.empty(2 * n)
+        np.multiply(dn, area, out=dy[:n])
+        np.multiply(dp, area, out=dy[n:])
+        return dy
+
+    return local
+
+
 def _rhs(n, area, model, movement, compiled=False):
     """``rhs(t, y)`` for a state in the order of ``area`` / ``model`` / ``movement``.
 
@@ -221,38 +248,15 @@ def _rhs(n, area, model, movement, compiled=False):
     """
     x = np.empty(2 * n)
     m = 2 * n
-    if movement is not None:
-        indptr, indices, data = movement.indptr, movement.indices, movement.data
     if compiled:
         local = _compiled_module().local_terms_function(model, area)
-
-        def rhs(t, y):
-            dy = np.empty(m)
-            local(y, x, dy)  # x = max(y, 0), dy = local terms
-            if movement is None:
-                pass
-            elif _csr_matvec is not None:
-                _csr_matvec(m, m, indptr, indices, data, x, dy)  # dy += M x
-            else:  # pragma: no cover
-                dy += movement @ x
-            return dy
-
-        return rhs
-
-    rates = model.rates
-    area2 = np.concatenate([area, area])
-    dens = np.empty(2 * n)
-    # max(y, 0) against an array of zeros: numpy 2.4 takes its vectorised loop for two arrays
-    # but not for an array and a scalar (0.045 against 0.091 ms at 100,000 patches)
-    zero = np.zeros(2 * n)
+    else:
+        local = _numpy_local_terms(model, area)
+    if movement is not None:
+        indptr, indices, data = movement.indptr, movement.indices, movement.data
 
     def rhs(t, y):
-        np.maximum(y, zero, out=x)
-        np.divide(x, area2, out=dens)
-        dn, dp = rates(dens[:n], dens[n:])
-        dy = np.empty(m)
-        np.multiply(dn, area, out=dy[:n])
-        np.multiply(dp, area, out=dy[n:])
+        dy = local(y, x)  # x = max(y, 0), dy = local terms
         if movement is None:
             pass
         elif _csr_matvec is not None:
