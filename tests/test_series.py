@@ -5,6 +5,9 @@ applied to the finished trajectory with the CF attributes of the output contract
 streamed block by block must read back identical to it (``xarray.testing.assert_identical``).
 """
 
+import os
+import stat
+
 import numpy as np
 import pytest
 import xarray as xr
@@ -75,6 +78,10 @@ def test_streamed_file_equals_xarrays_and_arrives_in_blocks(grid_file, tmp_path,
     assert [(s, r) for s, r, _, _ in seen] == [(0, 64), (64, 64), (128, 33)]
     assert all(tmp and not final for _, _, tmp, final in seen)
     assert result.series_file == target and target.exists()
+    # the permissions of any file the user writes, not the private ones of a temporary file
+    umask = os.umask(0)
+    os.umask(umask)
+    assert stat.S_IMODE(target.stat().st_mode) == 0o666 & ~umask
     assert not list(tmp_path.glob(".series.nc.partial-*"))
     assert_same_file(target, reference_file(result, tmp_path / "reference.nc"))
     # write_run takes the streamed file as it is

@@ -54,6 +54,14 @@ def provenance(study) -> dict:
     }
 
 
+def _usual_mode(path, mode: int) -> None:
+    """``mode`` less the umask: mkdtemp and mkstemp make their results private, and a
+    result should get the permissions of any other file the user writes."""
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(path, mode & ~umask)
+
+
 @contextlib.contextmanager
 def staged_folder(out):
     """Yield a fresh staging folder; on success move its files into ``out``.
@@ -63,9 +71,7 @@ def staged_folder(out):
     out = Path(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
-    umask = os.umask(0)
-    os.umask(umask)
-    os.chmod(staging, 0o777 & ~umask)  # mkdtemp makes it private; the result should not be
+    _usual_mode(staging, 0o777)
     try:
         yield staging
     except BaseException:
@@ -174,6 +180,7 @@ class SeriesWriter:
         fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.partial-", dir=self.path.parent)
         os.close(fd)
         self._tmp = Path(tmp)
+        _usual_mode(self._tmp, 0o666)
         self.rows_written = 0
         self._file = None
         try:
