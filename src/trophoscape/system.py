@@ -236,11 +236,18 @@ def _numpy_local_terms(model, area):
     return local
 
 
+def _local_terms(model, area, compiled: bool):
+    """``local(y, x) -> dy`` (see :func:`_numpy_local_terms`), compiled or by numpy."""
+    if compiled:
+        return _compiled_module().local_terms_function(model, area)
+    return _numpy_local_terms(model, area)
+
+
 def _rhs(n, area, model, movement, compiled=False):
     """``rhs(t, y)`` for a state in the order of ``area`` / ``model`` / ``movement``.
 
-    ``movement=None`` gives the local terms alone; ``compiled=True`` evaluates the local terms
-    with the compiled kernel (:mod:`trophoscape._compiled`, same numbers bit for bit).
+    ``compiled=True`` evaluates the local terms with the compiled kernel
+    (:mod:`trophoscape._compiled`, same numbers bit for bit).
 
     Buffers for the clipped state and the densities are allocated once; each call still
     returns a fresh array, because scipy's Runge–Kutta solvers keep the returned derivative
@@ -248,18 +255,12 @@ def _rhs(n, area, model, movement, compiled=False):
     """
     x = np.empty(2 * n)
     m = 2 * n
-    if compiled:
-        local = _compiled_module().local_terms_function(model, area)
-    else:
-        local = _numpy_local_terms(model, area)
-    if movement is not None:
-        indptr, indices, data = movement.indptr, movement.indices, movement.data
+    local = _local_terms(model, area, compiled)
+    indptr, indices, data = movement.indptr, movement.indices, movement.data
 
     def rhs(t, y):
         dy = local(y, x)  # x = max(y, 0), dy = local terms
-        if movement is None:
-            pass
-        elif _csr_matvec is not None:
+        if _csr_matvec is not None:
             _csr_matvec(m, m, indptr, indices, data, x, dy)  # dy += M x, no temporary
         else:  # pragma: no cover
             dy += movement @ x
@@ -440,13 +441,13 @@ class CoupledSystem:
             return _rhs(n, inner["area"], model, inner["movement"], compiled)
         perm2, inverse2 = inner["perm2"], inner["inverse2"]
         movement = inner["movement"]
-        local = _rhs(n, area, self.model, None, compiled)
+        local = _local_terms(self.model, area, compiled)
+        clipped = np.empty(2 * n)
         x = np.empty(2 * n)
 
         def rhs(t, y):
-            dy = local(t, y)
-            np.take(y, perm2, out=x)
-            np.maximum(x, 0.0, out=x)
+            dy = local(y, clipped)  # the local terms and max(y, 0), in the user's order
+            np.take(clipped, perm2, out=x)
             dy += (movement @ x)[inverse2]
             return dy
 
