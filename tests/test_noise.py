@@ -10,7 +10,7 @@ import xarray as xr
 from conftest import grid_study, make_model, make_system, write_grid_file
 from trophoscape.errors import InputError
 from trophoscape.noise import (NoiseModel, covariance_root, kernel_correlation,
-                               lognormal_multiplier,
+                               lognormal_multiplier, unstack_series,
                                stack_state, stack_system)
 from trophoscape.scenario import parse_scenario
 from trophoscape.simulate import simulate
@@ -89,6 +89,18 @@ def test_covariance_root_reproduces_the_feature_covariance(rng):
     model = NoiseModel(centroids_km=[[0.0, 0.0], [1.0, 0.0], [0.0, 2.0]], seeds=[4],
                        environmental_sd=0.2, correlation_km=3.0, rank=50)
     assert model.start().features.shape == (1, 3, 3)
+
+
+def test_unstack_series_inverts_the_stacked_layout(rng):
+    # stack_system puts patch i of replicate r at r * n + i
+    reps, n, t = 3, 4, 5
+    each = rng.standard_normal((reps, t, n))
+    stacked = np.concatenate(list(each), axis=-1)                  # (t, R n)
+    cube = unstack_series(stacked, reps)                             # (t, n, R)
+    assert cube.shape == (t, n, reps)
+    np.testing.assert_array_equal(cube, each.transpose(1, 2, 0))
+    two = unstack_series(np.stack([stacked, -stacked]), reps)       # leading axes kept
+    np.testing.assert_array_equal(two[1], -cube)
 
 
 def test_regional_setting_and_shared_share():

@@ -441,6 +441,14 @@ def stack_system(system, replicates: int):
         kernel=system.kernel)
 
 
+def unstack_series(series: np.ndarray, replicates: int) -> np.ndarray:
+    """Series of a stacked system, ``(..., R n)`` over its patches, as ``(..., n, R)``.
+
+    A view where numpy can make one (the inverse of the layout of :func:`stack_system`).
+    """
+    return series.reshape(*series.shape[:-1], replicates, -1).swapaxes(-1, -2)
+
+
 def stack_state(y: np.ndarray, replicates: int) -> np.ndarray:
     """A state of one copy, shape (2 n,), repeated for the stacked system, shape (2 R n,)."""
     n = y.size // 2

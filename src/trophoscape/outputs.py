@@ -225,12 +225,12 @@ class SeriesWriter:
         state patch) array; with ``replicates`` the state holds that many stacked copies of
         the network (``noise.stack_system``), which become the ``replicate`` dimension.
         """
-        n = self.shape[1]
-
         def sink(start, stop, record):
             blocks = record[:, start:stop]
             if replicates is not None:
-                blocks = blocks.reshape(2, stop - start, replicates, n).transpose(0, 1, 3, 2)
+                from .noise import unstack_series
+
+                blocks = unstack_series(blocks, replicates)
             self.write(start, blocks)
 
         return {"sink": sink, "sink_rows": SERIES_BLOCK_ROWS}

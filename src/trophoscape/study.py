@@ -289,7 +289,7 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
     each replicate keeps its own step size. The noise of each replicate is the same either
     way; the integration errors differ at the level of the tolerances.
     """
-    from .noise import stack_state, stack_system
+    from .noise import stack_state, stack_system, unstack_series
 
     sc = study.scenario
     reps = len(seeds)
@@ -310,8 +310,7 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
                        events=stacked_events, noise=noise,
                        **({} if writer is None else writer.sink_options(replicates=reps)),
                        **common)
-        cubes = {s: big.data[s].values.reshape(-1, reps, n).transpose(0, 2, 1)
-                 for s in SPECIES}
+        cubes = {s: unstack_series(big.data[s].values, reps) for s in SPECIES}
         stats = big.stats
         time = big.data["time"]
     else:
