@@ -12,7 +12,8 @@ operation, in the same order, so the two paths give the same numbers bit for bit
 (``tests/test_compiled.py`` checks every growth form and response). A growth form or
 response without a code here is simply evaluated by numpy.
 
-This module imports numba at import time; import it only through :func:`load`.
+This module imports numba at import time; :mod:`trophoscape.system` imports it only when a
+system takes the compiled path (``system._compiled_module``), never at ``import trophoscape``.
 """
 
 from __future__ import annotations

@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 import shapely
 
+from . import system as system_module
 from .dynamics import interior_equilibrium
 from .system import SPECIES
 
@@ -106,8 +107,6 @@ def practical_warnings(study) -> list[str]:
                    f"(run.atol = {atol:g}); if the run is slow, consider run.atol = "
                    f"{1e-4 * threshold:g} (1/10,000 of run.extinction_abundance), which halved "
                    "the work with the same persistence results in our 10,000-patch benchmark.")
-    from . import system as system_module
-
     if (land.n_patches >= system_module.COMPILED_MIN_PATCHES
             and not system_module.compiled_available()):
         out.append(f"with {land.n_patches:,} patches the local equations run faster compiled "

@@ -155,9 +155,8 @@ class SeriesWriter:
         self.path = Path(path)
         sc = study.scenario
         n = study.landscape.n_patches
-        self.replicates = None if seeds is None else len(seeds)
         dims = ("time", "patch") if seeds is None else ("time", "patch", "replicate")
-        self.shape = (len(times), n) + (() if seeds is None else (self.replicates,))
+        self.shape = (len(times), n) + (() if seeds is None else (len(seeds),))
         coords = {
             "time": ("time", np.asarray(times, dtype=float),
                      {"units": sc["time_unit"], "long_name": "time", "standard_name": "time",
@@ -165,7 +164,7 @@ class SeriesWriter:
             "patch": ("patch", np.asarray(study.ids).astype(str), {"long_name": "patch id"}),
         }
         if seeds is not None:
-            coords["replicate"] = ("replicate", np.arange(self.replicates),
+            coords["replicate"] = ("replicate", np.arange(len(seeds)),
                                    {"long_name": "replicate"})
             coords["seed"] = ("replicate", np.asarray(seeds, dtype=np.int64),
                               {"long_name": "seed of the replicate's random numbers"})
@@ -268,7 +267,7 @@ def write_timeseries(path, result):
     file is copied. Otherwise the series are written from memory by the same writer.
     """
     path = Path(path)
-    streamed = getattr(result, "series_file", None)
+    streamed = result.series_file
     if streamed is not None and Path(streamed).exists():
         if Path(streamed).resolve() != path.resolve():
             shutil.copyfile(streamed, path)

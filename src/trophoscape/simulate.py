@@ -294,9 +294,6 @@ def simulate(
                desc="integrating", leave=False)
     k = 1
     sunk = 0  # census rows handed to the sink
-    if sink is not None and times.size == 1:
-        sink(0, 1, record)
-        sunk = 1
     if not noisy:
         base = None
     solver = start(times[0], system.to_internal(y) if internal else y, None)
@@ -351,7 +348,7 @@ def simulate(
                 record[:, k] = user_order(y_k).reshape(2, n)
                 k += 1
                 bar.update(1)
-                if sink is not None and (k - sunk == sink_rows or k == times.size):
+                if sink is not None and k - sunk == sink_rows:
                     sink(sunk, k, record)
                     sunk = k
                 if noisy and k < times.size:
@@ -376,6 +373,8 @@ def simulate(
                     restarts += 1
                     break
         harvest(solver)
+        if sink is not None and sunk < k:  # the last rows, fewer than sink_rows
+            sink(sunk, k, record)
     finally:
         bar.close()
 
