@@ -8,7 +8,6 @@ same numbers as the CLI.
 
 from __future__ import annotations
 
-import contextlib
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -388,9 +387,7 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
         writer = SeriesWriter(series_to, study=study,
                               times=census_times(sc["run.duration"], sc["run.census_interval"]),
                               seeds=None if len(seeds) == 1 else seeds)
-    with contextlib.ExitStack() as cleanup:
-        if writer is not None:
-            cleanup.callback(writer.abort)  # a no-op once finish has renamed the file
+    try:
         if len(seeds) == 1:
             traj = simulate(
                 study.system, study.initial_state,
@@ -403,8 +400,12 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
         else:
             traj = simulate_replicates(study, seeds=seeds, noise=noise, events=events,
                                        stacked=stacked, progress=progress, writer=writer)
+    except BaseException:
         if writer is not None:
-            writer.finish(traj)
+            writer.abort()
+        raise
+    if writer is not None:
+        writer.finish(traj)  # deletes the file itself if this fails
     table, summary, extras = analyse(study, traj)
     summary["replicates"] = len(seeds)
     summary["seeds"] = seeds
