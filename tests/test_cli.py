@@ -446,3 +446,17 @@ def test_scenario_hash_is_the_files_sha256_with_crlf_line_ends(tmp_path):
     assert done.returncode == 0, done.stderr
     prov = json.loads((tmp_path / "out" / "summary.json").read_text())["provenance"]
     assert prov["scenario_sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_an_output_folder_that_cannot_be_made_is_an_input_error(tmp_path):
+    # a file where the output folder's parent should be: one line, exit code 2, and the
+    # error comes before the run, not after it
+    blocker = tmp_path / "afile"
+    blocker.write_text("not a folder", encoding="utf-8")
+    done = run_cli("demo", "--out", blocker / "out", "--quiet")
+    assert done.returncode == 2
+    assert "Traceback" not in done.stderr
+    assert done.stderr.strip().splitlines() == [
+        f"error: {blocker / 'out'}: field '--out': cannot create the output folder here "
+        "(file exists); give --out a folder that can be created and written to"]
+    assert [p.name for p in tmp_path.iterdir()] == ["afile"]

@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .errors import InputError
 from .system import SPECIES
 
 __all__ = ["staged_folder", "write_run", "write_run_files", "provenance", "file_sha256",
@@ -69,8 +70,13 @@ def staged_folder(out):
     On an exception the staging folder is removed and ``out`` is left as it was.
     """
     out = Path(out)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    except OSError as exc:  # a file in the way, no permission, a read-only disk
+        raise InputError(f"cannot create the output folder here ({exc.strerror.lower()}); give "
+                         "--out a folder that can be created and written to",
+                         file=out, field="--out") from None
     _usual_mode(staging, 0o777)
     try:
         yield staging
