@@ -96,3 +96,14 @@ def test_report_renders_in_headless_chromium(which, request, tmp_path):
     # a rendered page with text and figures, not a blank or an error page
     assert pixels[..., :3].std() > 0.05
     assert (pixels[..., :3].mean(axis=2) < 0.5).mean() > 0.01
+
+
+def test_headline_says_when_the_local_equations_ran_compiled():
+    from trophoscape.report import _headline_rows
+
+    base = {"solver": {"method": "RK45", "nfev": 30125, "local_kernel": "numpy"}}
+    rows = dict(_headline_rows(base))
+    assert rows["solver"] == "RK45, 30125 right-hand-side evaluations"
+    base["solver"]["local_kernel"] = "compiled"
+    assert dict(_headline_rows(base))["solver"] == (
+        "RK45, 30125 right-hand-side evaluations, local equations compiled")

@@ -307,7 +307,9 @@ def _headline_rows(summary):
     if "stability" in summary:
         rows.append(("coexistence state", summary["stability"]))
     solver = summary["solver"]
-    rows.append(("solver", f"{solver['method']}, {solver['nfev']} right-hand-side evaluations"))
+    rows.append(("solver", f"{solver['method']}, {solver['nfev']} right-hand-side evaluations"
+                 + (", local equations compiled" if solver.get("local_kernel") == "compiled"
+                    else "")))
     return rows
 
 
