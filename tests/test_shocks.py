@@ -13,7 +13,7 @@ from trophoscape.shocks import (SHOCK_KINDS, Harvest, HabitatLoss, LinkCut, Mort
                                 PatchLoss, PredatorRemoval, PreyCrash, ShockContext,
                                 build_shocks, shock_events)
 from trophoscape.simulate import simulate
-from trophoscape.system import CoupledSystem, pack
+from trophoscape.system import SPECIES, CoupledSystem, pack
 from trophoscape.testing import chain_landscape, grid_landscape
 
 
@@ -178,6 +178,233 @@ def test_events_leave_default_runs_unchanged_and_census_sees_the_state_before():
     np.testing.assert_allclose(c["predator"].values[:k + 1], a["predator"].values[:k + 1],
                                rtol=1e-4)
     assert np.all(c["predator"].values[k + 1:] == 0.0)
+
+
+# -------------------------------------------------------------------- overlapping shocks
+def params_after(shocks, context, system, t):
+    """The model's parameters once every event at or before ``t`` has acted (as simulate)."""
+    for event in shock_events(shocks, context):
+        if event.time <= t:
+            system, _ = event.apply(system, np.zeros(2 * system.n_patches))
+    return system.model.params
+
+
+def logistic(n0, k, t):
+    # n(t) = K n0 e^{t} / (K + n0 (e^{t} - 1)) for r = 1 (Verhulst 1838, from memory)
+    return k * n0 * np.exp(t) / (k + n0 * (np.exp(t) - 1.0))
+
+
+def test_overlapping_habitat_losses_multiply_and_end_exactly():
+    # two halvings of K leave K / 4 while both act; 0.5 * 0.5 is exact in binary floating
+    # point, so equality is fair; once both end, K itself, bit for bit
+    land, net, system, ctx = chain_context(3)
+    base = ctx.model.params["capacity"]
+    shocks = [HabitatLoss(at=1.0, patches=np.array([1]), factor=0.5, duration=4.0),
+              HabitatLoss(at=2.0, patches=np.array([1, 2]), factor=0.5, duration=5.0)]
+
+    def capacity(t):
+        return params_after(shocks, ctx, system, t)["capacity"]
+
+    np.testing.assert_array_equal(capacity(1.5), [base[0], base[1] * 0.5, base[2]])
+    np.testing.assert_array_equal(capacity(3.0), [base[0], base[1] * 0.25, base[2] * 0.5])
+    np.testing.assert_array_equal(capacity(5.0), [base[0], base[1] * 0.5, base[2] * 0.5])
+    np.testing.assert_array_equal(capacity(7.0), base)
+
+
+def test_two_halvings_of_capacity_run_as_one_quartering():
+    # one isolated logistic patch at K = 50, two halvings from t = 1 to t = 4: logistic growth
+    # towards K / 4, then back towards K (closed form between events). An additive shift
+    # would have made K zero here and the run fail.
+    model = make_model(1, growth="logistic", attack_rate=0.0)
+    system = make_system(model)
+    ctx = ShockContext(network=None, dispersal={}, survival_per_km=1.0, model=model)
+    shocks = [HabitatLoss(at=1.0, patches=np.array([0]), factor=0.5, duration=3.0)
+              for _ in range(2)]
+    traj = simulate(system, pack([50.0], [0.0]), duration=8.0, census_interval=1.0,
+                    extinction_abundance=0.0, rtol=1e-10, atol=1e-12,
+                    events=shock_events(shocks, ctx))
+    n = traj["prey"].values[:, 0]
+    n4 = logistic(50.0, 12.5, 3.0)
+    np.testing.assert_allclose(n[4], n4, rtol=1e-7)
+    np.testing.assert_allclose(n[8], logistic(n4, 50.0, 4.0), rtol=1e-7)
+
+
+def test_identical_zero_pulses_act_as_one():
+    land, net, system, ctx = chain_context(3, mortality=0.4)
+
+    def pulse():
+        return MortalityPulse(at=2.0, patches=np.array([0, 1]), factor=0.0, duration=3.0)
+
+    y0 = pack(np.full(3, 30.0), np.full(3, 4.0))
+    kw = dict(duration=12.0, census_interval=0.5, rtol=1e-9, atol=1e-9)
+    one = simulate(system, y0, events=shock_events([pulse()], ctx), **kw)
+    two = simulate(system, y0, events=shock_events([pulse(), pulse()], ctx), **kw)
+    # consistency test: 0 * 0 = 0, so the two runs see the same rates at the same times
+    for s in SPECIES:
+        np.testing.assert_array_equal(two[s].values, one[s].values)
+    assert np.all(params_after([pulse(), pulse()], ctx, system, 3.0)["mortality"][:2] == 0.0)
+    # after both, the unshocked mortality exactly (an additive shift left it doubled)
+    np.testing.assert_array_equal(params_after([pulse(), pulse()], ctx, system, 5.0)["mortality"],
+                                  ctx.model.params["mortality"])
+
+
+def test_two_zero_pulses_on_a_lone_predator_pause_its_decay():
+    # no prey: p' = -m p, and m = 0 during the pulses, so p(t) = p0 exp(-m (t - 3))
+    # (elementary)
+    model = make_model(1, mortality=0.5)
+    system = make_system(model)
+    ctx = ShockContext(network=None, dispersal={}, survival_per_km=1.0, model=model)
+    shocks = [MortalityPulse(at=1.0, patches=np.array([0]), factor=0.0, duration=3.0)
+              for _ in range(2)]
+    traj = simulate(system, pack([0.0], [100.0]), duration=6.0, census_interval=1.0,
+                    extinction_abundance=0.0, rtol=1e-10, atol=1e-12,
+                    events=shock_events(shocks, ctx))
+    expected = 100.0 * np.exp(-0.5 * (traj.time - np.clip(traj.time - 1.0, 0.0, 3.0)))
+    np.testing.assert_allclose(traj["predator"].values[:, 0], expected, rtol=1e-7)
+
+
+def test_overlapping_pulses_multiply_their_factors():
+    # m f alone, m f g while both act, m g once f has ended, m after both (elementary);
+    # 3.0 * 0.2 is not exact in binary, hence a tolerance of a few units in the last place
+    f, g = 3.0, 0.2
+    land, net, system, ctx = chain_context(2, mortality=0.3)
+    m = ctx.model.params["mortality"][0]
+    shocks = [MortalityPulse(at=1.0, patches=np.array([0]), factor=f, duration=3.0),
+              MortalityPulse(at=2.0, patches=np.array([0]), factor=g, duration=4.0)]
+
+    def mortality(t):
+        return params_after(shocks, ctx, system, t)["mortality"]
+
+    assert mortality(1.0)[0] == pytest.approx(m * f, rel=1e-15)
+    assert mortality(3.0)[0] == pytest.approx(m * f * g, rel=1e-15)
+    assert mortality(4.0)[0] == pytest.approx(m * g, rel=1e-15)
+    assert mortality(6.0)[0] == m
+    assert np.all(mortality(3.0)[1:] == ctx.model.params["mortality"][1:])
+    # consistency test: with f over, the value is that of g alone, bit for bit
+    assert mortality(4.0)[0] == params_after(shocks[1:], ctx, system, 4.0)["mortality"][0]
+
+
+def test_overlapping_harvests_add_their_rates():
+    # predator: m f + q1 + q2 (a pulse scales the mortality, not the harvests); prey: q1 + q2
+    # (the definitions of the module); back to m and to no harvest after all end
+    land, net, system, ctx = chain_context(2, mortality=0.4)
+    m = ctx.model.params["mortality"][0]
+    shocks = [Harvest(at=1.0, patches=np.array([0]), rate=0.1, duration=4.0),
+              Harvest(at=2.0, patches=np.array([0]), rate=0.25, duration=2.0),
+              MortalityPulse(at=3.0, patches=np.array([0]), factor=2.0, duration=3.0),
+              Harvest(at=1.0, patches=np.array([1]), rate=0.2, species="prey", duration=4.0),
+              Harvest(at=2.0, patches=np.array([1]), rate=0.3, species="prey", duration=2.0)]
+
+    def params(t):
+        return params_after(shocks, ctx, system, t)
+
+    assert params(1.5)["mortality"][0] == pytest.approx(m + 0.1, rel=1e-15)
+    assert params(3.5)["mortality"][0] == pytest.approx(2 * m + 0.35, rel=1e-15)
+    assert params(4.5)["mortality"][0] == pytest.approx(2 * m + 0.1, rel=1e-15)
+    assert params(5.5)["mortality"][0] == 2 * m
+    np.testing.assert_allclose(params(3.5)["prey_harvest"], [0.0, 0.5], rtol=1e-15)
+    np.testing.assert_array_equal(params(7.0)["mortality"], ctx.model.params["mortality"])
+    np.testing.assert_array_equal(params(7.0)["prey_harvest"], 0.0)
+
+
+def test_overlapping_prey_harvests_slow_exponential_growth_by_their_sum():
+    # n' = (r - q1 - q2) n while both act (elementary)
+    r, q1, q2 = 0.3, 0.2, 0.3
+    model = make_model(1, growth="exponential", growth_rate=r, attack_rate=0.0)
+    system = make_system(model)
+    ctx = ShockContext(network=None, dispersal={}, survival_per_km=1.0, model=model)
+    shocks = [Harvest(at=1.0, patches=np.array([0]), rate=q1, species="prey", duration=4.0),
+              Harvest(at=2.0, patches=np.array([0]), rate=q2, species="prey", duration=2.0)]
+    traj = simulate(system, pack([10.0], [0.0]), duration=6.0, census_interval=1.0,
+                    extinction_abundance=0.0, rtol=1e-10, atol=1e-12,
+                    events=shock_events(shocks, ctx))
+    expected = 10.0 * np.exp(r * 6.0 - q1 * 4.0 - q2 * 2.0)
+    assert traj["prey"].values[-1, 0] == pytest.approx(expected, rel=1e-7)
+
+
+def test_two_removals_at_once_leave_the_square_of_what_one_leaves():
+    # removing a share s twice removes 1 - (1 - s)^2 (common practice)
+    s = 0.4
+    land, net, system, ctx = chain_context(3)
+    y = pack(np.full(3, 20.0), np.full(3, 5.0))
+    shocks = [PredatorRemoval(at=1.0, patches=np.array([0, 2]), share=s) for _ in range(2)]
+    _, out = apply_all(shocks + [PreyCrash(at=1.0, patches=np.array([1]), share=s)] * 2,
+                       ctx, system, y)
+    np.testing.assert_allclose(out[3:], [5.0 * (1 - s) ** 2, 5.0, 5.0 * (1 - s) ** 2])
+    np.testing.assert_allclose(out[:3], [20.0, 20.0 * (1 - s) ** 2, 20.0])
+
+
+def test_a_temporary_shock_inside_a_permanent_one_ends_on_the_permanent_value():
+    # factors chosen to round (0.3, 0.7, 0.1, 3.3): undoing by division would miss by a bit
+    land, net, system, ctx = chain_context(3, mortality=0.45)
+    hit = np.array([0, 2])
+    permanent = [HabitatLoss(at=1.0, patches=hit, factor=0.3),
+                 MortalityPulse(at=1.0, patches=hit, factor=0.1),
+                 Harvest(at=1.0, patches=hit, rate=0.07)]
+    temporary = [HabitatLoss(at=2.0, patches=hit, factor=0.7, duration=3.0),
+                 MortalityPulse(at=2.0, patches=hit, factor=3.3, duration=3.0),
+                 Harvest(at=2.0, patches=hit, rate=0.11, duration=3.0)]
+    both = permanent + temporary
+    k, m = ctx.model.params["capacity"], ctx.model.params["mortality"]
+    during, after = params_after(both, ctx, system, 3.0), params_after(both, ctx, system, 6.0)
+    np.testing.assert_allclose(during["capacity"][hit], k[hit] * 0.3 * 0.7, rtol=1e-15)
+    np.testing.assert_allclose(during["mortality"][hit], m[hit] * 0.1 * 3.3 + 0.07 + 0.11,
+                               rtol=1e-15)
+    np.testing.assert_allclose(after["capacity"][hit], k[hit] * 0.3, rtol=1e-15)
+    np.testing.assert_allclose(after["mortality"][hit], m[hit] * 0.1 + 0.07, rtol=1e-15)
+    # consistency test: bit for bit the value before the temporary shock and the value of
+    # the permanent shocks alone
+    before = params_after(both, ctx, system, 1.5)
+    alone = params_after(permanent, ctx, system, 6.0)
+    for name in ("capacity", "mortality"):
+        np.testing.assert_array_equal(after[name], before[name])
+        np.testing.assert_array_equal(after[name], alone[name])
+    assert after["capacity"][1] == k[1] and after["mortality"][1] == m[1]
+
+
+def test_any_set_of_ended_shocks_leaves_the_unshocked_parameters(rng):
+    # random overlapping pulses, harvests and habitat losses on random patches of random
+    # rates: once the last has ended every parameter is the unshocked one, bit for bit
+    n = 6
+    land, net, system, ctx = chain_context(n, mortality=0.37, capacity=41.3)
+    shocks = []
+    for _ in range(12):
+        at = float(rng.uniform(0.0, 5.0))
+        duration = float(rng.uniform(0.1, 5.0))
+        patches = rng.choice(n, int(rng.integers(1, n + 1)), replace=False)
+        kind = rng.integers(3)
+        if kind == 0:
+            shocks.append(MortalityPulse(at=at, patches=patches,
+                                         factor=float(rng.uniform(0.0, 4.0)),
+                                         duration=duration))
+        elif kind == 1:
+            shocks.append(Harvest(at=at, patches=patches, rate=float(rng.uniform(0, 0.5)),
+                                  species=str(rng.choice(["prey", "predator"])),
+                                  duration=duration))
+        else:
+            shocks.append(HabitatLoss(at=at, patches=patches,
+                                      factor=float(rng.uniform(0.05, 1.0)),
+                                      duration=duration))
+    end = params_after(shocks, ctx, system, 10.0)
+    for name in ("capacity", "mortality"):
+        np.testing.assert_array_equal(end[name], ctx.model.params[name])
+    np.testing.assert_array_equal(end.get("prey_harvest", np.zeros(n)), 0.0)
+
+
+def test_scalar_parameters_become_per_patch_where_a_shock_acts():
+    # a model given one value for every patch: a shock of one patch leaves the others alone
+    values = {k: float(v[0]) for k, v in make_model(1).params.items()}
+    model = ts.LocalModel(growth="logistic", response="holling2", params=values)
+    zero = sp.csr_array((3, 3))
+    system = CoupledSystem(model=model, area_km2=np.ones(3), prey_movement=zero,
+                           predator_movement=zero)
+    ctx = ShockContext(network=None, dispersal={}, survival_per_km=1.0, model=model)
+    shocks = [MortalityPulse(at=1.0, patches=np.array([1]), factor=2.0, duration=1.0)]
+    mid = params_after(shocks, ctx, system, 1.0)
+    m = values["mortality"]
+    np.testing.assert_array_equal(mid["mortality"], [m, 2.0 * m, m])
+    np.testing.assert_array_equal(mid["capacity"], np.full(3, values["capacity"]))
+    np.testing.assert_array_equal(params_after(shocks, ctx, system, 2.0)["mortality"], m)
 
 
 def test_every_kind_is_in_the_table():

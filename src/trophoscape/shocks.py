@@ -14,15 +14,29 @@ Each kind lists the scenario keys it takes (``takes``) and those it needs (``nee
 :mod:`trophoscape.scenario` reads that table to validate ``[[shock]]`` tables, and
 :func:`build_shocks` resolves their patch ids against the landscape.
 
-Temporary parameter changes (habitat loss or a mortality pulse with a ``duration``, a harvest
-with a ``duration``) are written as a shift of the parameter added at the start and taken off
-at the end, computed from the parameters the shocks were built against, so that overlapping
-shocks of the same patch add up and each ends cleanly.
+Parameter shocks compose by multiplication (factors) and addition (removal rates). Each
+parameter shock is a set of *modifiers*, active from ``at`` until ``at + duration`` (or for
+good), and :func:`shock_events` turns the modifiers of all shocks together into events that
+*set* the parameter, at every time a modifier starts or ends, to its value from the
+unshocked parameters (:attr:`ShockContext.model`) and the modifiers active from that time on:
+
+* ``capacity = K × (f1 × f2 × ...)``, the factors of the active habitat losses;
+* ``mortality = m × (f1 × f2 × ...) + (q1 + q2 + ...)``, the factors of the active mortality
+  pulses, then the rates of the active predator harvests (a pulse does not scale a harvest);
+* ``prey_harvest = q0 + (q1 + q2 + ...)``, the model's own rate (0 if it has none) plus
+  the rates of the active prey harvests.
+
+Products and sums run in the order of the shocks. A value is never the previous one undone
+(a division or a subtraction would leave rounding residue), so when a shock ends the
+parameter is, bit for bit, what it would be without that shock, and the unshocked value once
+every shock of a patch has ended. State shocks multiply the state (two removals of a share s
+leave ``(1 - s)**2``); link cuts and patch losses add up the arcs they remove.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import math
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -106,25 +120,44 @@ class StateScale:
 
 @dataclass(frozen=True, eq=False)
 class ParameterShift:
-    """Add ``delta`` (shape (k,)) to a local-model parameter in some patches.
+    """Set a local-model parameter in some patches to ``delta``, or add ``delta`` to it.
 
-    A parameter the model does not have yet (``prey_harvest``) starts from zero.
+    Parameters
+    ----------
+    time : float
+    name : str
+        A key of the model's ``params``; one it does not have yet (``prey_harvest``) starts
+        from zero.
+    index : ndarray of int, shape (k,)
+        Patch positions.
+    delta : ndarray, shape (k,)
+        The new values (``absolute``) or the change.
+    absolute : bool
+        Set rather than add. :func:`shock_events` writes every parameter shock this way, so
+        that values never carry the rounding of earlier events; adding is for events made
+        by hand.
     """
 
     time: float
     name: str
     index: np.ndarray
     delta: np.ndarray
+    absolute: bool = False
 
     def apply(self, system, y):
         model = system.model
-        params = dict(model.params)
         n = system.n_patches
+        # one shape for every parameter: a scalar one becomes per-patch beside a changed array
+        params = {k: np.full(n, float(v)) if np.ndim(v) == 0 else v
+                  for k, v in model.params.items()}
         value = np.array(params.get(self.name, np.zeros(n)), dtype=float)
-        value[self.index] += self.delta
-        if self.name != "prey_harvest":
-            # a rounding residue after start + end must not leave, say, a negative mortality
-            value[self.index] = np.maximum(value[self.index], 0.0)
+        if self.absolute:
+            value[self.index] = self.delta
+        else:
+            value[self.index] += self.delta
+            if self.name != "prey_harvest":
+                # a shift below zero would make a negative capacity or mortality
+                value[self.index] = np.maximum(value[self.index], 0.0)
         params[self.name] = value
         new = LocalModel(growth=model.growth, response=model.response, params=params)
         return system.with_model(new), y
@@ -160,8 +193,24 @@ class Rewire:
 
 
 # ---------------------------------------------------------------------------------- shocks
+@dataclass(frozen=True, eq=False)
+class _Modifier:
+    """One shock's change of a parameter on ``[start, end)``: times ``factor``, plus ``rate``."""
+
+    start: float
+    end: float  # math.inf for good
+    name: str
+    index: np.ndarray
+    factor: float = 1.0
+    rate: float = 0.0
+
+
 class Shock:
-    """Interface: ``events(context) -> list of events``; ``patches`` the positions hit."""
+    """Interface: ``events(context) -> list of events``; ``patches`` the positions hit.
+
+    A kind that changes parameters also gives ``modifiers()``, which :func:`shock_events`
+    composes with those of the other shocks; its ``events`` are those of the shock alone.
+    """
 
     kind: ClassVar[str]
     #: scenario keys this kind accepts besides ``kind`` and ``at``
@@ -172,9 +221,54 @@ class Shock:
     def events(self, context: ShockContext) -> list:  # pragma: no cover - interface
         raise NotImplementedError
 
+    def modifiers(self) -> tuple:
+        """The parameter changes of the shock; empty for one that acts through events."""
+        return ()
 
-def _ends(at, duration):
-    return [at] if duration is None else [at, at + duration]
+
+class _ParameterShock(Shock):
+    """A shock made of parameter modifiers; alone, its events are their schedule."""
+
+    def events(self, context):
+        return _parameter_events(self.modifiers(), context)
+
+
+def _end(at, duration):
+    return math.inf if duration is None else float(at) + float(duration)
+
+
+def _base_at(value, index: np.ndarray) -> np.ndarray:
+    """An unshocked parameter (scalar or per patch) at some patch positions, as floats."""
+    value = np.asarray(value, dtype=float)
+    return value[index] if value.ndim else np.full(index.size, float(value))
+
+
+def _parameter_events(modifiers, context: ShockContext) -> list:
+    """Events setting each modified parameter at every start and end of a modifier.
+
+    At each such time the patches of the modifiers starting or ending then get the
+    unshocked value times the product of the active factors plus the sum of the active
+    rates, both in the order of ``modifiers``; a modifier is active on ``[start, end)``.
+    """
+    out = []
+    for name in dict.fromkeys(m.name for m in modifiers):  # first-seen order
+        mods = [m for m in modifiers if m.name == name]
+        size = 1 + max(int(np.max(m.index, initial=-1)) for m in mods)
+        base = context.model.params.get(name, 0.0)  # prey_harvest may be absent: none
+        times = sorted({m.start for m in mods} | {m.end for m in mods if m.end < math.inf})
+        for t in times:
+            touched = np.unique(np.concatenate(
+                [m.index for m in mods if t == m.start or t == m.end])).astype(np.int64)
+            if not touched.size:
+                continue
+            scale, add = np.ones(size), np.zeros(size)
+            for m in mods:
+                if m.start <= t < m.end:
+                    scale[m.index] *= m.factor
+                    add[m.index] += m.rate
+            value = _base_at(base, touched) * scale[touched] + add[touched]
+            out.append(ParameterShift(t, name, touched, value, absolute=True))
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -207,7 +301,7 @@ class PreyCrash(_Removal):
 
 
 @dataclass(frozen=True, eq=False)
-class HabitatLoss(Shock):
+class HabitatLoss(_ParameterShock):
     """Carrying capacity times ``factor`` (> 0) from ``at``, for ``duration`` or for good.
 
     Has no effect on exponential prey growth, which has no carrying capacity.
@@ -221,17 +315,13 @@ class HabitatLoss(Shock):
     factor: float
     duration: float | None = None
 
-    def events(self, context):
-        base = np.asarray(context.model.params["capacity"], dtype=float)[self.patches]
-        delta = base * (self.factor - 1.0)
-        out = [ParameterShift(self.at, "capacity", self.patches, delta)]
-        if self.duration is not None:
-            out.append(ParameterShift(self.at + self.duration, "capacity", self.patches, -delta))
-        return out
+    def modifiers(self):
+        return (_Modifier(float(self.at), _end(self.at, self.duration), "capacity",
+                          self.patches, factor=float(self.factor)),)
 
 
 @dataclass(frozen=True, eq=False)
-class MortalityPulse(Shock):
+class MortalityPulse(_ParameterShock):
     """Predator mortality times ``factor`` (>= 0) from ``at``, for ``duration`` or for good."""
 
     kind: ClassVar[str] = "mortality_pulse"
@@ -242,18 +332,13 @@ class MortalityPulse(Shock):
     factor: float
     duration: float | None = None
 
-    def events(self, context):
-        base = np.asarray(context.model.params["mortality"], dtype=float)[self.patches]
-        delta = base * (self.factor - 1.0)
-        out = [ParameterShift(self.at, "mortality", self.patches, delta)]
-        if self.duration is not None:
-            out.append(ParameterShift(self.at + self.duration, "mortality", self.patches,
-                                      -delta))
-        return out
+    def modifiers(self):
+        return (_Modifier(float(self.at), _end(self.at, self.duration), "mortality",
+                          self.patches, factor=float(self.factor)),)
 
 
 @dataclass(frozen=True, eq=False)
-class Harvest(Shock):
+class Harvest(_ParameterShock):
     """A constant per-capita removal ``rate`` of one species from ``at`` on.
 
     For the predator it adds to the mortality rate; for the prey it is the ``prey_harvest``
@@ -270,11 +355,10 @@ class Harvest(Shock):
     species: str = "predator"
     duration: float | None = None
 
-    def events(self, context):
+    def modifiers(self):
         name = "mortality" if self.species == "predator" else "prey_harvest"
-        delta = np.full(self.patches.size, float(self.rate))
-        return [ParameterShift(t, name, self.patches, delta if k == 0 else -delta)
-                for k, t in enumerate(_ends(self.at, self.duration))]
+        return (_Modifier(float(self.at), _end(self.at, self.duration), name, self.patches,
+                          rate=float(self.rate)),)
 
 
 @dataclass(frozen=True, eq=False)
@@ -330,7 +414,11 @@ SHOCK_KINDS: dict[str, type[Shock]] = {
 
 
 def shock_events(shocks, context: ShockContext, *, time_offset: float = 0.0) -> list:
-    """The events of some shocks, in time order, with cumulative rewiring.
+    """The events of some shocks, in time order: parameters composed, rewiring cumulative.
+
+    The modifiers of all parameter shocks are scheduled together (see the module notes):
+    each parameter event sets the value from the unshocked model and every shock active from
+    its time on, so overlapping shocks multiply (factors) or add (rates) and each ends exactly.
 
     Parameters
     ----------
@@ -343,7 +431,9 @@ def shock_events(shocks, context: ShockContext, *, time_offset: float = 0.0) -> 
     -------
     list of events, sorted by time (stable: shocks at the same time keep their order)
     """
-    events = [e for shock in shocks for e in shock.events(context)]
+    modifiers = [m for shock in shocks for m in shock.modifiers()]
+    events = [e for shock in shocks if not shock.modifiers() for e in shock.events(context)]
+    events += _parameter_events(modifiers, context)
     events.sort(key=lambda e: float(e.time))
     removed = None
     out = []
