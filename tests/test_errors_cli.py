@@ -359,6 +359,15 @@ CASES = [
          "prey.allee_density 48; raise the quality or lower the threshold",
          {"s.toml": scenario(
              prey={"growth": "allee", "capacity_density": 50.0, "allee_density": 48.0})}),
+    # ---------------------------------------------------------------- the spread command
+    Case("spread-species-absent",  # no predators, and a patch loss: the predator is followed
+         "error: s.toml: field 'spread.species': the predator (followed by default: "
+         "shock[0], a patch_loss, acts on both species) is absent from every patch at the "
+         "shock time 0.5, so there is no collapse of it to follow; set species = \"prey\" "
+         "under [spread], or give the predator an initial_density above 0 and check that it "
+         "persists through burn-in",
+         {"s.toml": scenario(predator={"initial_density": 0.0})
+          + '[[shock]]\nkind = "patch_loss"\npatches = ["A1"]\n'}, command="spread"),
     # ---------------------------------------------------------------- a failed run: exit 1
     Case("explosive-growth",  # exponential prey at r = 2000 per year, no predator
          "error: the run failed: ",
@@ -389,7 +398,7 @@ def outcomes(tmp_path_factory) -> dict[str, Outcome]:
         for name, text in files.items():
             (folder / name).write_text(text, encoding="utf-8")
         args = [case.command, "s.toml"]
-        if case.command == "run":
+        if case.command in ("run", "spread"):
             args += ["--out", "out", "--no-maps"]
         done = run_cli(folder, *args)
         return Outcome(folder, done.returncode, done.stderr)

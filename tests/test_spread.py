@@ -188,6 +188,124 @@ def test_spread_needs_a_shock_after_burn_in(tmp_path):
         "spread is measured from the state after burn-in)")
 
 
+# ------------------------------------------------------------------ the species followed
+PREY_CRASH = [{"kind": "prey_crash", "at": 80.0, "patches": ["0", "1"], "share": 1.0}]
+PREDATOR_REMOVAL = [{"kind": "predator_removal", "at": 80.0, "patches": ["0"], "share": 1.0}]
+NO_PREDATORS = {"initial_density": 0.0}
+
+
+@pytest.mark.parametrize("tables, species", [
+    ([{"kind": "prey_crash", "share": 0.5}], "prey"),
+    ([{"kind": "habitat_loss", "factor": 0.5}, {"kind": "harvest", "rate": 0.2,
+                                                "species": "prey"}], "prey"),
+    ([{"kind": "harvest", "rate": 0.2}], "predator"),  # a harvest takes the predator by default
+    ([{"kind": "predator_removal", "share": 0.5}], "predator"),
+    ([{"kind": "mortality_pulse", "factor": 2.0, "duration": 5.0}], "predator"),
+    ([{"kind": "prey_crash", "share": 0.5}, {"kind": "patch_loss"}], "predator"),
+    ([{"kind": "prey_crash", "share": 0.5}, {"kind": "link_cut", "links": [["0", "1"]]}],
+     "predator"),
+])
+def test_the_shocks_decide_the_species_followed_by_default(tmp_path, tables, species):
+    from trophoscape.shocks import build_shocks
+
+    tables = [dict(t, at=80.0, **({} if "links" in t else {"patches": ["0"]})) for t in tables]
+    sc = chain_scenario(tmp_path / "chain.gpkg", tables)
+    assert sc["spread.species"] == sp.AUTO
+    shocks = build_shocks(sc["shock"], ids=[str(i) for i in range(8)])
+    assert sp.followed_species(shocks) == species
+    rule = sp.CollapseRule.from_scenario(sc)
+    assert rule.species == sp.AUTO and rule.resolve(shocks).species == species
+    assert rule.resolve(shocks).share == rule.share
+    other = "prey" if species == "predator" else "predator"
+    assert sp.CollapseRule(species=other).resolve(shocks).species == other
+
+
+def test_spread_species_is_checked_in_the_scenario(tmp_path):
+    with pytest.raises(ts.InputError) as info:
+        chain_scenario(tmp_path / "chain.gpkg", PREY_CRASH, spread={"species": "prey_"})
+    assert info.value.field == "spread.species" and "did you mean 'prey'?" in str(info.value)
+
+
+def test_a_prey_crash_without_predators_follows_the_prey(tmp_path):
+    # prey do not move in this chain, so patches emptied of prey stay empty: exactly the two
+    # crashed patches collapse, one census after the shock
+    sc = chain_scenario(source_sink_file(tmp_path), PREY_CRASH, predator=NO_PREDATORS)
+    study = ts.build_study(sc)
+    result = sp.run_spread(study)
+    s = result.summary
+    assert s["species"] == "prey"
+    assert s["reached_share"] == pytest.approx(2 / 8) and s["reached"] == 2
+    reached = result.table.dropna(subset=["arrival_time"])
+    assert sorted(reached.index) == ["0", "1"]
+    assert (reached["arrival_time"] > 80.0).all() and (reached["arrival_time"] <= 81.0).all()
+    # the origin scan follows the same species: the crash empties each origin of prey
+    scan = sp.origin_scan(study, [0, 5], workers=1, progress=False)
+    assert (scan["status"] == "ok").all() and scan["origin_collapses"].all()
+    assert (scan["cascade_size"] == 0).all()
+
+
+def test_a_predator_removal_follows_the_predator_by_default(tmp_path):
+    path = source_sink_file(tmp_path)
+    result = sp.run_spread(ts.build_study(chain_scenario(path, PREDATOR_REMOVAL)))
+    assert result.summary["species"] == "predator"
+    reached = result.table.dropna(subset=["arrival_time"])
+    assert "0" in reached.index  # the source, emptied of predators, refills only slowly
+    # consistency test: the default gives the same table as naming the predator
+    named = sp.run_spread(ts.build_study(chain_scenario(path, PREDATOR_REMOVAL,
+                                                        spread={"species": "predator"})))
+    pd.testing.assert_frame_equal(result.table, named.table)
+    assert named.summary["species"] == "predator"
+
+
+def test_an_explicit_species_wins_over_the_shocks(tmp_path):
+    path = source_sink_file(tmp_path)
+    prey = sp.run_spread(ts.build_study(chain_scenario(path, PREY_CRASH)))
+    predator = sp.run_spread(ts.build_study(chain_scenario(path, PREY_CRASH,
+                                                           spread={"species": "predator"})))
+    assert prey.summary["species"] == "prey" and predator.summary["species"] == "predator"
+    # the prey collapse stays in the crashed patches (prey do not move); the predators of the
+    # source starve there, and the sinks they fed collapse after them, further away later
+    assert sorted(prey.table.dropna(subset=["arrival_time"]).index) == ["0", "1"]
+    starved = predator.table.dropna(subset=["arrival_time"])
+    assert {"0", "1", "2"} <= set(starved.index) and len(starved) > 3
+    assert starved.loc["2", "arrival_time"] > starved.loc["0", "arrival_time"]
+    # and a rule handed in by the caller wins over the scenario: removing predators never
+    # drives the prey down, so no prey collapse
+    rule = sp.CollapseRule(species="prey", window=10.0)
+    result = sp.run_spread(ts.build_study(chain_scenario(path, PREDATOR_REMOVAL)), rule=rule)
+    assert result.summary["species"] == "prey" and result.summary["reached"] == 0
+
+
+def test_a_followed_species_absent_after_burn_in_is_an_input_error(tmp_path, monkeypatch):
+    path = source_sink_file(tmp_path)
+    named = chain_scenario(path, PREY_CRASH, predator=NO_PREDATORS,
+                           spread={"species": "predator"})
+    with pytest.raises(ts.InputError) as info:
+        sp.run_spread(ts.build_study(named))
+    err = info.value
+    assert err.file == str(path.parent / "s.toml") and err.field == "spread.species"
+    assert err.message.startswith("the predator is absent from every patch at the shock "
+                                  "time 80")
+    wrong, advice = err.message.split("; ")
+    assert 'set species = "prey" under [spread]' in advice and "initial_density" in advice
+    assert "\n" not in str(err)
+    # by default, the message says which shock made the predator the species followed
+    default = chain_scenario(path, [{"kind": "patch_loss", "at": 80.0, "patches": ["0"]}],
+                             predator=NO_PREDATORS)
+    with pytest.raises(ts.InputError, match=r"shock\[0\], a patch_loss, acts on both species"):
+        sp.run_spread(ts.build_study(default))
+    # the origin scan checks once, before any origin is run
+    import trophoscape.parallel
+
+    def no_tasks(*args, **kwargs):
+        raise AssertionError("origins were dispatched")
+
+    monkeypatch.setattr(trophoscape.parallel, "run_tasks", no_tasks)
+    with pytest.raises(ts.InputError) as scan_info:
+        sp.origin_scan(ts.build_study(named), [0, 1], workers=1, progress=False)
+    assert str(scan_info.value) == str(err)
+
+
 # --------------------------------------------------------------------------- the pieces
 def test_running_mean_matches_pandas_centred_rolling(rng):
     # pandas (reference library): centred rolling mean with shortened windows at the ends
@@ -306,3 +424,24 @@ def test_spread_command_bad_input_exits_2_and_writes_nothing(tmp_path, spread_co
     assert err.strip() == (f"error: {toml}: field 'shock[0].patches': no patch has id "
                            "'nowhere'; use ids of the patch file's id field (e.g. '0', '1', '2')")
     assert not out.exists()
+
+
+def test_spread_command_with_the_followed_species_absent_exits_2(tmp_path, spread_command,
+                                                                capsys):
+    source_sink_file(tmp_path)
+    toml = write_toml(tmp_path / "s.toml", tmp_path,
+                      '[[shock]]\nkind = "predator_removal"\nat = 70\nshare = 1.0\n'
+                      'patches = ["0"]\n')
+    text = toml.read_text(encoding="utf-8")
+    toml.write_text(text.replace("initial_density = 5.0", "initial_density = 0.0"),
+                    encoding="utf-8")
+    out = tmp_path / "out"
+    assert spread_command(["spread", str(toml), "--out", str(out), "--quiet"]) == 2
+    captured = capsys.readouterr()
+    lines = captured.err.splitlines()
+    assert len(lines) == 1 and "Traceback" not in captured.err
+    assert lines[0].startswith(f"error: {toml}: field 'spread.species': the predator "
+                               "(followed by default: shock[0], a predator_removal, acts on "
+                               "the predator) is absent")
+    assert captured.out == ""
+    assert not out.exists() and not list(tmp_path.glob(".*partial*"))

@@ -204,8 +204,9 @@ SCHEMA: dict[str, dict[str, Key]] = {
                     doc="random Fourier features per replicate"),
     },
     "spread": {
-        "species": Key("predator", _choice("prey", "predator"),
-                       doc="the species whose collapse is followed"),
+        "species": Key("auto", _choice("auto", "prey", "predator"),
+                       doc='the species whose collapse is followed; "auto": the prey when '
+                           "every shock acts on the prey, else the predator"),
         "collapse_share": Key(0.1, _number(0, 1, lo_open=True),
                               doc="collapsed: below this share of the baseline's running mean"),
         "sustained": Key(2.0, _pos, doc="for at least this long (time units)"),

@@ -12,6 +12,11 @@ length with abundance back at or above that level. The baseline is also tested w
 rule (``baseline_collapse``): where a deep predator–prey cycle dips that low by itself, an
 arrival there is not the shock's doing alone.
 
+The species followed is the rule's ``species``; ``"auto"`` (the default) resolves to the prey
+when every shock acts on the prey alone (``prey_crash``, ``habitat_loss``, a ``harvest`` of the
+prey) and to the predator otherwise (:func:`followed_species`). A species absent from the
+baseline at the shock time has no collapse to follow: that is an input error.
+
 Distances are measured from the nearest shocked patch: along links (shortest path over arcs,
 weighted by their distance; ``scipy.sparse.csgraph.dijkstra``) and in a straight line between
 centroids (``scipy.spatial.cKDTree``). The front speed is the Theil–Sen slope of distance on
@@ -23,7 +28,7 @@ Everything here is vectorised over patches (arrays of shape ``(time, patch)``).
 from __future__ import annotations
 
 import uuid
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -36,6 +41,9 @@ from ..errors import InputError
 
 __all__ = [
     "CollapseRule",
+    "AUTO",
+    "acts_on",
+    "followed_species",
     "running_mean",
     "first_sustained",
     "collapse_times",
@@ -52,6 +60,37 @@ __all__ = [
 
 _TOL = 1e-9
 
+#: ``[spread] species`` value meaning "follow the species the shocks act on"
+AUTO = "auto"
+
+#: The one species a shock kind acts on; None where it acts on both (the patch and its
+#: links go, links are cut). A harvest names its species itself (``Harvest.species``).
+_KIND_SPECIES = {"predator_removal": "predator", "prey_crash": "prey", "habitat_loss": "prey",
+                 "mortality_pulse": "predator", "patch_loss": None, "link_cut": None}
+
+
+def acts_on(shock) -> str | None:
+    """The one species a shock acts on (``"prey"`` or ``"predator"``), or None for both.
+
+    Parameters
+    ----------
+    shock : trophoscape.shocks.Shock
+    """
+    species = getattr(shock, "species", None)
+    return species if species is not None else _KIND_SPECIES.get(shock.kind)
+
+
+def followed_species(shocks) -> str:
+    """The species a spread analysis follows by default: the prey when every shock acts on
+    the prey alone, the predator otherwise (also with no shocks).
+
+    Parameters
+    ----------
+    shocks : sequence of trophoscape.shocks.Shock
+    """
+    shocks = list(shocks)
+    return "prey" if shocks and all(acts_on(s) == "prey" for s in shocks) else "predator"
+
 
 @dataclass(frozen=True)
 class CollapseRule:
@@ -59,7 +98,9 @@ class CollapseRule:
 
     Attributes
     ----------
-    species : {"predator", "prey"}
+    species : {"auto", "predator", "prey"}
+        ``"auto"``: the species the shocks act on, see :func:`followed_species` and
+        :meth:`resolve`.
     share : float
         Collapsed below this share of the baseline's running mean, 0 < share <= 1.
     sustained : float
@@ -68,7 +109,7 @@ class CollapseRule:
         Width of the centred running mean of the baseline (time units).
     """
 
-    species: str = "predator"
+    species: str = AUTO
     share: float = 0.1
     sustained: float = 2.0
     window: float = 20.0
@@ -77,6 +118,12 @@ class CollapseRule:
     def from_scenario(cls, scenario) -> "CollapseRule":
         return cls(species=scenario["spread.species"], share=scenario["spread.collapse_share"],
                    sustained=scenario["spread.sustained"], window=scenario["spread.window"])
+
+    def resolve(self, shocks) -> "CollapseRule":
+        """This rule with ``"auto"`` replaced by the species the ``shocks`` act on."""
+        if self.species != AUTO:
+            return self
+        return replace(self, species=followed_species(shocks))
 
 
 # ------------------------------------------------------------------------------ time series
@@ -427,6 +474,30 @@ def _check_shocks(study, shocks):
                              field=f"shock[{i}].at")
 
 
+def _require_species(study, rule, baseline, shock_time, *, by_default: bool) -> None:
+    """Raise an InputError when ``rule.species`` is absent from every patch of the baseline
+    at the shock time (the last census at or before it): nothing to follow."""
+    species = rule.species
+    times = np.asarray(baseline.time, dtype=float)
+    row = max(int(np.searchsorted(times, shock_time + _TOL, side="right")) - 1, 0)
+    if np.any(np.asarray(baseline[species].isel(time=row).values) > 0):
+        return
+    other = "prey" if species == "predator" else "predator"
+    why = ""
+    if by_default:
+        if species == "prey":
+            why = " (followed by default: every shock acts on the prey)"
+        else:
+            i, shock = next((i, s) for i, s in enumerate(study.shocks) if acts_on(s) != "prey")
+            target = "the predator" if acts_on(shock) == "predator" else "both species"
+            why = f" (followed by default: shock[{i}], a {shock.kind}, acts on {target})"
+    raise InputError(f"the {species}{why} is absent from every patch at the shock time "
+                     f"{shock_time:g}, so there is no collapse of it to follow; set species = "
+                     f"\"{other}\" under [spread], or give the {species} an initial_density "
+                     "above 0 and check that it persists through burn-in",
+                     file=study.scenario.path, field="spread.species")
+
+
 def _join(first, second):
     """One trajectory from a burn-in run and its continuation (which repeats its last time)."""
     from ..simulate import SolverStats, Trajectory
@@ -453,26 +524,31 @@ def run_spread(study, *, rule: CollapseRule | None = None, progress: bool = Fals
     study : trophoscape.study.Study
         With at least one shock, every shock at or after ``run.burn_in``.
     rule : CollapseRule, optional
-        Default: the scenario's ``[spread]`` section.
+        Default: the scenario's ``[spread]`` section. A species of ``"auto"`` is resolved
+        from the study's shocks (:meth:`CollapseRule.resolve`); the summary's ``species`` is
+        the resolved one.
 
     Raises
     ------
     InputError
-        No shock, or a shock before the end of burn-in.
+        No shock, a shock before the end of burn-in, or the followed species absent from
+        every patch of the baseline at the shock time.
     """
     from ..shocks import ShockContext, shock_events, shocked_patches
 
     sc = study.scenario
-    rule = rule or CollapseRule.from_scenario(sc)
+    given = rule or CollapseRule.from_scenario(sc)
     _check_shocks(study, study.shocks)
+    rule = given.resolve(study.shocks)
     burn_in = sc["run.burn_in"]
     rest = sc["run.duration"] - burn_in
+    shock_time = min(float(s.at) for s in study.shocks)
     first_traj, y_burn = _burn_in(study, progress=progress)
     baseline = _simulate(study, y_burn, rest, progress=progress, offset=burn_in)
+    _require_species(study, rule, baseline, shock_time, by_default=given.species == AUTO)
     events = shock_events(study.shocks, ShockContext.from_study(study), time_offset=-burn_in)
     shocked = _simulate(study, y_burn, rest, events=events, progress=progress, offset=burn_in)
     origins = shocked_patches(study.shocks, study.landscape.n_patches)
-    shock_time = min(float(s.at) for s in study.shocks)
     table, summary = spread_table(
         baseline.time, shocked[rule.species].values, baseline[rule.species].values,
         ids=study.ids, shock_time=shock_time, origins=origins, network=study.network,
@@ -599,9 +675,18 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
     study : Study
     origins : array of int positions, optional
         Default: every patch.
+    rule : CollapseRule, optional
+        Default: the scenario's ``[spread]`` section; ``"auto"`` is resolved from the
+        study's shocks, as in :func:`run_spread`.
     workers : int, optional
         Local processes (default all cores; 1 runs here); see
         :func:`trophoscape.parallel.run_tasks`.
+
+    Raises
+    ------
+    InputError
+        As :func:`run_spread` (checked once, before any origin runs), or no shock other
+        than ``link_cut``.
 
     Returns
     -------
@@ -614,18 +699,23 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
     from ..parallel import run_tasks
 
     sc = study.scenario
-    rule = rule or CollapseRule.from_scenario(sc)
+    given = rule or CollapseRule.from_scenario(sc)
     _check_shocks(study, study.shocks)
+    rule = given.resolve(study.shocks)
     tables = [dict(t) for t in sc["shock"]]
-    if not _retarget(tables, "x"):
+    aimed = _retarget(tables, "x")
+    if not aimed:
         raise InputError("an origin scan needs a shock other than link_cut to aim at each "
                          "origin; add one, e.g. kind = \"predator_removal\"", file=sc.path,
                          field="shock")
     origins = (np.arange(study.landscape.n_patches) if origins is None
                else np.asarray(origins, dtype=np.int64))
+    # burn-in and baseline are run once, here; forked workers inherit them through the cache
+    state = _scan_state(study)
+    _require_species(study, rule, state[2], min(float(t["at"]) for t in aimed),
+                     by_default=given.species == AUTO)
     key = uuid.uuid4().hex
-    # forked workers inherit this: burn-in and baseline are run once, here
-    _SCAN_CACHE[key] = _scan_state(study)
+    _SCAN_CACHE[key] = state
     payload = _scenario_payload(sc)
     rows = {}
 
