@@ -50,19 +50,6 @@ def test_no_warnings_for_a_reasonable_setup(tmp_path):
     assert practical_warnings(study) == []
 
 
-def test_large_networks_hear_about_the_absolute_tolerance(tmp_path, monkeypatch):
-    # the threshold is lowered so that a 6-patch study counts as large
-    import trophoscape.advice as advice
-
-    study, _ = study_of(tmp_path, dispersal={"max_distance_km": 100.0})
-    monkeypatch.setattr(advice, "LARGE_NETWORK", 6)
-    (note,) = practical_warnings(study)
-    assert note.startswith("with 6 patches the solver spends most of its steps")
-    assert "consider run.atol = 0.0001" in note
-    loose, _ = study_of(tmp_path, dispersal={"max_distance_km": 100.0}, run={"atol": 1e-4})
-    assert practical_warnings(loose) == []
-
-
 def test_large_networks_hear_about_the_compiled_kernel_only_without_numba(tmp_path,
                                                                          monkeypatch):
     import trophoscape.system as system_module

@@ -14,12 +14,7 @@ from . import system as system_module
 from .dynamics import interior_equilibrium
 from .system import SPECIES
 
-__all__ = ["practical_warnings", "typical_gap_km", "LARGE_NETWORK"]
-
-#: From this many patches ``check`` mentions the solver's absolute tolerance: at that size
-#: some small sink patch almost always sets the step for the whole network by resolving a
-#: fraction of one individual (benchmarks/README.md, "bench_steps.py").
-LARGE_NETWORK = 50_000
+__all__ = ["practical_warnings", "typical_gap_km"]
 
 
 def _some(ids, k=5) -> str:
@@ -74,8 +69,9 @@ def practical_warnings(study) -> list[str]:
         small = model.params["capacity"] * area < threshold
         if small.any():
             out.append(f"{int(small.sum())} patch(es) hold fewer than {threshold:g} prey even at "
-                       f"carrying capacity ({_some(ids[small])}): they are cleared at every "
-                       "census and act only as stepping stones. If they should hold prey, "
+                       f"carrying capacity ({_some(ids[small])}): prey never count as present "
+                       "there and the patches act only as stepping stones. If they should "
+                       "hold prey, "
                        "check their area and quality, prey.capacity_density, or lower "
                        "run.extinction_abundance.")
         try:
@@ -100,13 +96,6 @@ def practical_warnings(study) -> list[str]:
                            "leave at the emigration rate, but nearly all of them go to the "
                            f"nearest neighbour. If they travel farther, raise "
                            f"{s}.kernel_scale_km towards {gap:.2g} km.")
-    atol = sc["run.atol"]
-    if land.n_patches >= LARGE_NETWORK and threshold > 0 and atol < 1e-4 * threshold:
-        out.append(f"with {land.n_patches:,} patches the solver spends most of its steps "
-                   f"resolving populations of a fraction of one individual in small patches "
-                   f"(run.atol = {atol:g}); if the run is slow, consider run.atol = "
-                   f"{1e-4 * threshold:g} (1/10,000 of run.extinction_abundance), which halved "
-                   "the work with the same persistence results in our 10,000-patch benchmark.")
     if (land.n_patches >= system_module.COMPILED_MIN_PATCHES
             and not system_module.compiled_available()):
         out.append(f"with {land.n_patches:,} patches the local equations run faster compiled "
@@ -116,7 +105,8 @@ def practical_warnings(study) -> list[str]:
     fastest = max(rate, float(np.max(model.params["mortality"])))
     if fastest > 0 and sc["run.census_interval"] > 0.5 / fastest:
         out.append(f"the census interval ({sc['run.census_interval']:g} {sc['time_unit']}) is "
-                   f"coarse for local rates up to {fastest:g} per {sc['time_unit']}: "
-                   "quasi-extinction is checked rarely and the time series may miss troughs; "
-                   f"consider run.census_interval <= {0.5 / fastest:.2g}.")
+                   f"coarse for local rates up to {fastest:g} per {sc['time_unit']}: the "
+                   "recorded series may miss troughs and peaks (the run itself does not "
+                   "change), and synchrony and occupancy are computed from it; consider "
+                   f"run.census_interval <= {0.5 / fastest:.2g}.")
     return out

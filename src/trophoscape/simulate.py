@@ -1,12 +1,21 @@
-"""Integration of a coupled system between census steps; the Trajectory it returns.
+"""Integration of a coupled system; the Trajectory it returns.
 
-Between census steps the system is a deterministic ODE integrated with one of scipy's
-``OdeSolver`` classes. At each census time abundances are read off the solver's dense
-output; local populations below the quasi-extinction abundance (and tiny negative values
-left by the integrator) are set to zero. The solver keeps running across census times
-while the census changes nothing, and when it must restart it starts with the step size
-it had reached (halved, since the zeroed components make the first step after a census
-harder), so the census does not cost a fresh step-size search each time.
+The system is a deterministic ODE integrated with one of scipy's ``OdeSolver`` classes
+(:data:`METHODS`), with two rules that make every result independent of when the series is
+recorded:
+
+Quasi-extinction is an event of the integration, not of the census
+    A local population that falls through ``extinction_abundance`` from above is removed at
+    the moment it crosses (located on the solver's dense output), and the solver restarts
+    there. A population below the threshold that is not falling through it (one growing from
+    zero by immigration, a trickle-fed sink) is left alone. Census times only record the
+    state, so the census interval changes what is recorded, never what happens.
+Error control per patch
+    The explicit Runge–Kutta methods take the largest scaled error over all components (a max
+    norm) instead of scipy's root mean square, so one patch's accuracy does not dilute as
+    quiet patches or replicates are added beside it. Implicit methods keep scipy's norm with
+    tolerances divided by the square root of the state size, which bounds the error of every
+    component by the same tolerance.
 """
 
 from __future__ import annotations
@@ -20,24 +29,183 @@ import xarray as xr
 from .errors import RunError
 from .system import SPECIES, CoupledSystem
 
-__all__ = ["METHODS", "SolverStats", "Trajectory", "census_times", "simulate", "choose_method"]
+__all__ = ["METHODS", "SolverStats", "Trajectory", "census_times", "simulate", "choose_method",
+           "first_crossing"]
 
-#: scipy solvers by the names ``solve_ivp`` uses.
+class _MaxNormRK:
+    """Error control by the largest scaled error over all components (a max norm).
+
+    scipy's explicit Runge–Kutta classes take the root mean square of the scaled error over
+    the whole state, so a patch's error may grow with the square root of the number of quiet
+    patches beside it. Here every component must meet ``atol + rtol |y|`` on its own; a
+    patch's accuracy is then the same alone, in a network of 100,000 patches or in a stack
+    of replicates. Only the norm changes: the coefficients, the step-size controller and the
+    dense output are scipy's.
+    """
+
+    def _estimate_error_norm(self, K, h, scale):
+        err = np.abs(self._estimate_error(K, h))
+        err /= scale
+        return float(err.max(initial=0.0))
+
+
+class RK23(_MaxNormRK, si.RK23):
+    """scipy's RK23 (Bogacki–Shampine 3(2)) with a max-norm error control."""
+
+
+class RK45(_MaxNormRK, si.RK45):
+    """scipy's RK45 (Dormand–Prince 5(4)) with a max-norm error control."""
+
+
+class DOP853(si.DOP853):
+    """scipy's DOP853 with its combined 5th/3rd-order error estimate taken per component.
+
+    scipy combines the two estimates over the whole state (Hairer, Nørsett & Wanner 1993,
+    Solving Ordinary Differential Equations I, §II.10); the same formula is applied to each
+    component on its own and the largest is kept.
+    """
+
+    def _estimate_error_norm(self, K, h, scale):
+        err5 = np.dot(K.T, self.E5) / scale
+        err3 = np.dot(K.T, self.E3) / scale
+        e5 = err5 * err5
+        denom = e5 + 0.01 * (err3 * err3)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = np.where(denom > 0, e5 / np.sqrt(denom), 0.0)
+        return float(abs(h) * ratio.max(initial=0.0))
+
+
+#: Solvers by the names ``solve_ivp`` uses. The explicit ones control the error per
+#: component (max norm); the implicit ones and LSODA are scipy's own, given tolerances
+#: divided by the square root of the state size (:func:`_tolerances`).
 METHODS = {
-    "RK23": si.RK23,
-    "RK45": si.RK45,
-    "DOP853": si.DOP853,
+    "RK23": RK23,
+    "RK45": RK45,
+    "DOP853": DOP853,
     "Radau": si.Radau,
     "BDF": si.BDF,
     "LSODA": si.LSODA,
 }
+#: Methods whose error control is per component.
+MAX_NORM = ("RK23", "RK45", "DOP853")
 #: Methods that take the sparse analytic Jacobian.
 IMPLICIT = ("Radau", "BDF")
 
 
+def _tolerances(method: str, rtol: float, atol: float, size: int) -> tuple[float, float]:
+    """The tolerances handed to the solver so that every component meets ``rtol, atol``.
+
+    A root-mean-square norm of the scaled error below 1 over ``size`` components allows one
+    component an error of ``sqrt(size)`` times the tolerance; dividing the tolerances by
+    ``sqrt(size)`` makes the norm a Euclidean one, which bounds every component.
+    """
+    if method in MAX_NORM or size <= 1:
+        return rtol, atol
+    root = float(np.sqrt(size))
+    return rtol / root, atol / root
+
+
+def _initial_step(fun, t0, y0, t_bound, order, rtol, atol) -> float:
+    """A first step size by the rule of Hairer, Nørsett & Wanner (1993, §II.4), max norm.
+
+    The rule scipy uses, with the max norm of :class:`_MaxNormRK` in place of the root mean
+    square, so the first step of a large network is as careful as that of its busiest patch.
+    """
+    interval = abs(t_bound - t0)
+    if y0.size == 0 or interval == 0.0:
+        return interval or 1.0
+    scale = atol + np.abs(y0) * rtol
+    f0 = fun(t0, y0)
+    d0 = float(np.max(np.abs(y0) / scale))
+    d1 = float(np.max(np.abs(f0) / scale))
+    h0 = 1e-6 if d0 < 1e-5 or d1 < 1e-5 else 0.01 * d0 / d1
+    h0 = min(h0, interval)
+    f1 = fun(t0 + h0, y0 + h0 * f0)
+    d2 = float(np.max(np.abs(f1 - f0) / scale)) / h0
+    if d1 <= 1e-15 and d2 <= 1e-15:
+        h1 = max(1e-6, h0 * 1e-3)
+    else:
+        h1 = (0.01 / max(d1, d2)) ** (1.0 / (order + 1))
+    return min(100 * h0, h1, interval)
+
+
+def _components(dense, index):
+    """The dense output of one step restricted to some components: ``t -> y(t)[index]``.
+
+    scipy's Runge–Kutta interpolants are linear in per-component arrays, so a copy holding
+    only those rows evaluates in O(len(index)); other interpolants are evaluated whole.
+    """
+    import copy
+
+    sub = copy.copy(dense)
+    if isinstance(dense, si._ivp.rk.RkDenseOutput):
+        sub.Q, sub.y_old = dense.Q[index], dense.y_old[index]
+        return sub
+    if isinstance(dense, si._ivp.rk.Dop853DenseOutput):
+        sub.F, sub.y_old = dense.F[:, index], dense.y_old[index]
+        return sub
+    return lambda t: dense(t)[index]
+
+
+def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> float:
+    """The earliest time in ``(t_old, t_new]`` at which a component falls to ``level``.
+
+    Parameters
+    ----------
+    dense : callable
+        The step's dense output, ``t -> y(t)``.
+    index : ndarray of int
+        Components at or above ``level`` at ``t_old`` and below it at ``t_new``.
+
+    Returns
+    -------
+    float
+        A time ``t`` with some component of ``index`` below ``level`` and every one at or
+        above it a hair earlier: the right end of a bracket narrowed by the Illinois
+        variant of regula falsi (Dowell & Jarratt 1971, BIT 11:168; from memory) to
+        ``1e-12`` of the step, so the state there always has a component to remove.
+    """
+    y = _components(dense, index)
+
+    def gap(t):
+        return float(np.min(y(t))) - level
+
+    a, b = float(t_old), float(t_new)
+    fa, fb = gap(a), gap(b)
+    if fa < 0:  # already below at the start: act at once
+        return a
+    width = 1e-12 * (b - a) + 4 * np.spacing(b)
+    side = 0
+    for i in range(200):
+        if b - a <= width:
+            break
+        # Illinois steps, with a bisection every fourth so the bracket always shrinks
+        c = 0.5 * (a + b) if i % 4 == 3 else b - fb * (b - a) / (fb - fa)
+        if not a < c < b:
+            c = 0.5 * (a + b)
+        fc = gap(c)
+        if fc < 0:
+            b, fb = c, fc
+            if side == -1:
+                fa *= 0.5
+            side = -1
+        else:
+            a, fa = c, fc
+            if side == 1:
+                fb *= 0.5
+            side = 1
+    return b
+
+
 @dataclass(frozen=True)
 class SolverStats:
-    """What the solver did: as on scipy's ``OdeResult`` plus the census restarts."""
+    """What the solver did: as on scipy's ``OdeResult``, plus restarts and removals.
+
+    ``restarts`` counts the times the solver was started afresh inside the run (after a
+    quasi-extinction, a shock, or a census with noisy rates). ``removals`` and
+    ``removed_individuals`` count, per species (prey, predator), the local populations the
+    quasi-extinction rule removed and the individuals they held.
+    """
 
     method: str
     nfev: int
@@ -47,6 +215,8 @@ class SolverStats:
     restarts: int
     status: int
     message: str
+    removals: tuple = (0, 0)
+    removed_individuals: tuple = (0.0, 0.0)
 
     @property
     def success(self) -> bool:
@@ -104,7 +274,11 @@ def choose_method(method: str) -> str:
 
 
 def _census(y, threshold):
-    """Quasi-extinction: zero every abundance below ``threshold`` (and every negative)."""
+    """Zero every abundance below ``threshold`` (and every negative).
+
+    The rule of event-based (demographic) runs at census times; ODE runs remove populations
+    as they fall through the threshold instead (:func:`simulate`).
+    """
     low = y < threshold
     if threshold <= 0:
         low = y < 0
@@ -154,9 +328,13 @@ def simulate(
     y0 : ndarray, shape (2 n_patches,)
         Initial abundances, laid out as in :mod:`trophoscape.system`.
     duration, census_interval : float
-        In the scenario's time unit.
+        In the scenario's time unit. The census interval only says when the state is
+        recorded.
     extinction_abundance : float
-        Local populations below this many individuals are set to zero at each census.
+        A local population that falls through this many individuals from above (in the
+        integration or through a shock) is removed at that moment; one below it that is
+        not falling through it (growing from zero, fed by immigrants) is left alone. 0
+        turns the rule off.
     method : str
         ``"auto"`` or a ``scipy.integrate.solve_ivp`` method name.
     rtol, atol : float
@@ -222,8 +400,11 @@ def simulate(
     record = np.empty((2, times.size, n), dtype=dtype)
     # a finite float64 state can still overflow a narrower storage type
     limit = float(np.finfo(dtype).max) if np.dtype(dtype).itemsize < 8 else None
-    y, _ = _census(np.asarray(y0, dtype=float).copy(), extinction_abundance)
-    record[:, 0] = y.reshape(2, n)
+    level = float(extinction_abundance)
+    rule = level > 0
+    y = np.asarray(y0, dtype=float).copy()
+    # tiny negatives (a Runge-Kutta stage, a numerical residue) are recorded as zero
+    record[:, 0] = np.maximum(y, 0.0).reshape(2, n)
 
     noisy = noise is not None
     if noisy:
@@ -235,7 +416,8 @@ def simulate(
     # Implicit methods take the Jacobian in the user's order and stay there.
     internal = system.reordered and method not in IMPLICIT
     rhs = system.rhs_function(internal=internal)
-    options = dict(rtol=rtol, atol=atol)
+    rtol_used, atol_used = _tolerances(method, rtol, atol, 2 * n)
+    options = dict(rtol=rtol_used, atol=atol_used)
     if method in IMPLICIT:
         options["jac"] = system.jacobian_function()
 
@@ -243,6 +425,8 @@ def simulate(
         return system.to_user(v) if internal else v
     totals = dict(nfev=0, njev=0, nlu=0)
     steps = restarts = 0
+    removals = np.zeros(2, dtype=np.int64)
+    removed = np.zeros(2)
     # events: the solver runs only up to the next one (its t_bound), so none is stepped over
     pending = sorted((e for e in events if float(e.time) < times[-1]),
                      key=lambda e: float(e.time))
@@ -253,11 +437,23 @@ def simulate(
         # with noise the rates change at every census: never step across one
         return min(b, float(times[k])) if noisy and k < times.size else b
 
+    def remove(y_now, falling):
+        """Quasi-extinction of the components ``falling`` (bool): zeroed, counted."""
+        if not falling.any():
+            return y_now
+        halves = falling.reshape(2, -1)
+        removals[:] += halves.sum(axis=1)
+        removed[:] += np.where(halves, y_now.reshape(2, -1), 0.0).sum(axis=1)
+        y_now = y_now.copy()
+        y_now[falling] = 0.0
+        return y_now
+
     def apply_events(t0, y_start):
         nonlocal system, rhs, next_event, base
         if next_event >= len(pending) or float(pending[next_event].time) > t0:
             return y_start
         y_start = user_order(y_start)  # events index patches in the user's order
+        above = y_start >= level
         while next_event < len(pending) and float(pending[next_event].time) <= t0:
             if noisy:
                 base, y_start = pending[next_event].apply(base, y_start)
@@ -270,13 +466,21 @@ def simulate(
         if method in IMPLICIT:
             options["jac"] = system.jacobian_function()
         y_start = np.asarray(y_start, dtype=float)
+        if rule:  # a shock that takes a population through the threshold removes it
+            y_start = remove(y_start, above & (y_start < level))
         # a rewired system may number its patches differently: back into its own order
         return system.to_internal(y_start) if internal else y_start
 
     def start(t0, y_start, first_step):
         y_start = apply_events(t0, y_start)
-        if first_step is not None:
+        if bound() <= t0:  # nothing to integrate before the next census or event
+            first_step = None
+        elif first_step is not None:
             first_step = min(first_step, bound() - t0)
+        elif method in MAX_NORM:
+            first_step = _initial_step(rhs, t0, y_start, bound(), solver_cls.error_estimator_order,
+                                       rtol_used, atol_used)
+            totals["nfev"] += 2
         return solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options)
 
     def harvest(s):
@@ -288,6 +492,18 @@ def simulate(
         _release(old)
         return new
 
+    def step_wanted(s):
+        return getattr(s, "h_abs", None) or s.step_size
+
+    def store(k, y_k):
+        y_k = np.maximum(y_k, 0.0)
+        if limit is not None and y_k.max(initial=0.0) > limit:
+            raise RunError(
+                f"abundances passed {limit:.3g} individuals at time {times[k]:.6g}, "
+                f"more than the time series can store ({np.dtype(dtype).name}); check "
+                "for explosive growth (e.g. exponential prey with no predator)")
+        record[:, k] = user_order(y_k).reshape(2, n)
+
     from tqdm.auto import tqdm
 
     bar = tqdm(total=times.size - 1, disable=not progress, delay=2.0, unit="census",
@@ -297,14 +513,17 @@ def simulate(
     if not noisy:
         base = None
     solver = start(times[0], system.to_internal(y) if internal else y, None)
+    # components at or above the threshold at the last step's end: those can fall through it
+    above = solver.y >= level
     status, message = 0, "The solver successfully reached the end of the integration interval."
     try:
         while k < times.size:
             if solver.status == "finished" and solver.t < times[k]:
                 if next_event < len(pending) and solver.t >= float(pending[next_event].time):
                     harvest(solver)
-                    h = getattr(solver, "h_abs", None) or solver.step_size
+                    h = step_wanted(solver)
                     solver = restart(solver, solver.t, solver.y.copy(), 0.5 * h if h else None)
+                    above = solver.y >= level
                     restarts += 1
                     continue
                 raise RunError(  # pragma: no cover
@@ -312,6 +531,7 @@ def simulate(
                     "looser rtol/atol")
             if noisy:  # the step wanted, before a census cuts it short
                 h_wanted = getattr(solver, "h_abs", None)
+            t_old = solver.t
             with np.errstate(over="ignore", invalid="ignore"):  # reported below instead
                 outcome = solver.step()
             steps += 1
@@ -332,46 +552,58 @@ def simulate(
                     "check for explosive growth (e.g. exponential prey with no predator)"
                 )
             dense = None
-            while k < times.size and times[k] <= solver.t:
+            t_end = solver.t  # the state is known up to here
+            falling = None
+            if rule:
+                now = solver.y >= level
+                crossed = above & ~now
+                if crossed.any():
+                    # removed where it crosses: the step is cut back to the first crossing
+                    dense = solver.dense_output()
+                    t_end = first_crossing(dense, np.flatnonzero(crossed), level, t_old,
+                                           solver.t)
+                    y_end = dense(t_end) if t_end < solver.t else solver.y.copy()
+                    falling = above & (y_end < level)
+                    now = y_end >= level
+                above = now
+            while k < times.size and times[k] <= t_end and (falling is None or times[k] < t_end):
                 if times[k] == solver.t:
-                    y_k = solver.y.copy()
+                    y_k = solver.y
                 else:
                     dense = dense or solver.dense_output()
                     y_k = dense(times[k])
-                y_k, changed = _census(y_k, extinction_abundance)
-                if limit is not None and np.abs(y_k).max(initial=0.0) > limit:
+                try:
+                    store(k, y_k)
+                except RunError:
                     harvest(solver)
-                    raise RunError(
-                        f"abundances passed {limit:.3g} individuals at time {times[k]:.6g}, "
-                        f"more than the time series can store ({np.dtype(dtype).name}); check "
-                        "for explosive growth (e.g. exponential prey with no predator)")
-                record[:, k] = user_order(y_k).reshape(2, n)
+                    raise
                 k += 1
                 bar.update(1)
                 if sink is not None and k - sunk == sink_rows:
                     sink(sunk, k, record)
                     sunk = k
-                if noisy and k < times.size:
+                if noisy and k < times.size and falling is None:
                     harvest(solver)
                     system = run.interval(base)
                     rhs = system.rhs_function(internal=internal)
                     if method in IMPLICIT:
                         options["jac"] = system.jacobian_function()
-                    h = getattr(solver, "h_abs", None) or solver.step_size
+                    h = step_wanted(solver)
                     # the last step was cut to end at the census: keep the one wanted
                     h = max(h or 0.0, h_wanted or 0.0) or None
-                    first = (0.5 * h if changed else h) if h else None
-                    solver = restart(solver, times[k - 1], y_k, first)
+                    solver = restart(solver, times[k - 1], y_k.copy(), h)
+                    above = solver.y >= level
                     restarts += 1
                     break
-                if changed and k < times.size:
-                    harvest(solver)
-                    # half the step reached: the full one was rejected at nearly every
-                    # restart once the census had zeroed components (benchmarks/README.md)
-                    h = getattr(solver, "h_abs", None) or solver.step_size
-                    solver = restart(solver, times[k - 1], y_k, 0.5 * h)
-                    restarts += 1
-                    break
+            if falling is not None:
+                harvest(solver)
+                y_end = remove(y_end, falling)
+                above &= ~falling
+                # half the step reached: the full one was often rejected right after a
+                # population was zeroed (benchmarks/README.md)
+                h = step_wanted(solver)
+                solver = restart(solver, t_end, y_end, 0.5 * h if h else None)
+                restarts += 1
         harvest(solver)
         if sink is not None and sunk < k:  # the last rows, fewer than sink_rows
             sink(sunk, k, record)
@@ -379,7 +611,8 @@ def simulate(
         bar.close()
 
     stats = SolverStats(method=method, steps=steps, restarts=restarts, status=status,
-                        message=message, **totals)
+                        message=message, removals=tuple(int(v) for v in removals),
+                        removed_individuals=tuple(float(v) for v in removed), **totals)
     ids = np.asarray([str(i) for i in range(n)] if ids is None else ids, dtype=object)
     data = xr.Dataset(
         {

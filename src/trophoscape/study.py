@@ -283,10 +283,11 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
 
     Notes
     -----
-    Stacked, the solver's error norm (an RMS over all components) spans every replicate, and
-    a census that zeroes a population in one replicate restarts all of them; one by one,
-    each replicate keeps its own step size. The noise of each replicate is the same either
-    way; the integration errors differ at the level of the tolerances.
+    Stacked, the solver's error control (a max norm over every component) holds each
+    replicate to the tolerances as if it ran alone, but the step size is shared and a
+    quasi-extinction in one replicate restarts all of them; one by one, each replicate keeps
+    its own step size. The noise of each replicate is the same either way; the integration
+    errors differ at the level of the tolerances.
     """
     from .noise import stack_state, stack_system, unstack_series
 
@@ -341,7 +342,18 @@ def _sum_stats(all_stats):
     return SolverStats(method=first.method,
                        **{k: sum(getattr(st, k) for st in all_stats)
                           for k in ("nfev", "njev", "nlu", "steps", "restarts")},
-                       status=worst.status, message=worst.message)
+                       status=worst.status, message=worst.message,
+                       **{k: tuple(sum(v) for v in zip(*(getattr(st, k) for st in all_stats)))
+                          for k in ("removals", "removed_individuals")})
+
+
+def quasi_extinction_summary(stats, replicates: int = 1) -> dict:
+    """What the quasi-extinction rule removed, per species: ``removals`` (local populations
+    that fell through the threshold) and ``individuals_removed``, summed over replicates."""
+    return {s: {"removals": int(stats.removals[i]),
+                "individuals_removed": float(stats.removed_individuals[i]),
+                "replicates": int(replicates)}
+            for i, s in enumerate(SPECIES)}
 
 
 #: Storage type of a study's time series: the state is integrated in float64 and each census
@@ -409,6 +421,7 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
     table, summary, extras = analyse(study, traj)
     summary["replicates"] = len(seeds)
     summary["seeds"] = seeds
+    summary["quasi_extinction"] = quasi_extinction_summary(traj.stats, len(seeds))
     if noise is not None:
         summary["noise"] = {k.split(".", 1)[1]: sc[k] for k in sc.values
                             if k.startswith("noise.")}
@@ -422,13 +435,27 @@ CONTRACT_COLUMNS = ("persists", "occupancy", "mean", "cv", "last_extinction", "s
 
 
 def analyse(study: Study, traj: Trajectory):
-    """Every analysis of one trajectory: ``(patch table, summary, extras)``."""
+    """Every analysis of one trajectory: ``(patch table, summary, extras)``.
+
+    No analysis can lose a run. Each one (persistence, synchrony, stability, capacity) runs
+    guarded: if it raises an ``Exception``, ``summary["analysis_errors"]`` gets
+    ``{"analysis": name, "reason": one line}`` (the list is always there, empty when all
+    ran), a one-line ``TrophoscapeWarning`` names it, and its per-patch columns and summary
+    figures are kept under their usual names but empty (NaN columns; NaN or None in the
+    summary, null in ``summary.json``), so that ``patches.csv`` has the same columns
+    whatever failed. The other analyses are written as usual.
+    """
+    from scipy.sparse.linalg import ArpackNoConvergence
+
+    from .analysis.capacity import capacity_columns
+
     sc = study.scenario
     burn_in = sc["run.burn_in"]
     net = study.network
     area = study.landscape.area_km2
     parts = [pd.DataFrame({"area_km2": area, "links": net.links_per_patch()},
                           index=pd.Index(study.ids.astype(str), name="patch_id"))]
+    index = parts[0].index
     net_summary = net.summary()
     summary = {
         "scenario": sc.name,
@@ -436,38 +463,107 @@ def analyse(study: Study, traj: Trajectory):
         "links": net_summary["links"],
         "components": net_summary["components"],
         "isolated_patches": len(net_summary["isolated"]),
+        "analysis_errors": [],
     }
     extras: dict = {}
-    pers = persistence_table(traj, burn_in=burn_in,
-                             extinction_abundance=sc["run.extinction_abundance"])
-    parts.append(pers)
-    summary.update(regional_persistence(pers, traj, area_km2=area))
-    extras["occupancy"] = occupancy_curve(traj)
+    reps = traj.data.sizes.get("replicate", 1)
+    # summary keys that hold text or a table: None, not NaN, when their analysis failed
+    text_keys = {"stability", "stability_details", *(f"{s}_capacity_drop_method" for s in SPECIES)}
 
-    sync, sync_summary, sync_extras = synchrony_analysis(
-        traj, burn_in=burn_in, source=net.source, target=net.target,
-        weights={s: study.arc_weights(s) for s in SPECIES},
-        centroids=study.landscape.centroids, seed=sc["run.seed"],
-        max_pairs=sc["analysis.synchrony_pairs"],
-    )
-    parts.append(sync)
-    summary.update(sync_summary)
-    extras.update(sync_extras)
+    def reason_of(exc: Exception) -> str:
+        """Why an analysis failed, in one line."""
+        if isinstance(exc, ArpackNoConvergence):
+            return "ARPACK did not converge"
+        lines = str(exc).strip().splitlines()
+        text = lines[0].strip() if lines else ""
+        if len(text) > 200:
+            text = text[:199] + "…"
+        return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+    def guarded(name, run, *, columns, keys, label, advice):
+        """``run()`` -> (table or None, summary figures, extras), merged in; on an Exception
+        the failure is recorded and ``columns`` / ``keys`` are filled with NaN (None for
+        the keys that hold text or a table)."""
+        try:
+            table, figures, more = run()
+        except Exception as exc:  # noqa: BLE001 - any failure of an analysis, not Ctrl-C
+            reason = reason_of(exc)
+            summary["analysis_errors"].append({"analysis": name, "reason": reason})
+            warnings.warn(f"{label} failed ({reason}); the other results are written and its "
+                          f"columns and figures are left empty; {advice}",
+                          TrophoscapeWarning, stacklevel=3)
+            parts.append(pd.DataFrame(np.nan, index=index, columns=list(columns)))
+            summary.update({k: None if k in text_keys else np.nan for k in keys})
+            return
+        if table is not None:
+            parts.append(table)
+        summary.update(figures)
+        extras.update(more)
+
+    def persistence():
+        pers = persistence_table(traj, burn_in=burn_in,
+                                 extinction_abundance=sc["run.extinction_abundance"])
+        return (pers, regional_persistence(pers, traj, area_km2=area),
+                {"occupancy": occupancy_curve(traj)})
+
+    per_patch = ["persists", "occupancy", "mean", "cv", "last_extinction", "extinctions",
+                 "recolonisations", "time_to_extinction", "margin"]
+    regional = ["regional_persistence", "area_persistence", "regional_extinction_time",
+                "regional_survival"]
+    if reps > 1:
+        per_patch += ["persistence_share", "persistence_low", "persistence_high"]
+        regional += ["regional_survival_low", "regional_survival_high"]
+    report = "please report it with the scenario"
+    guarded("persistence", persistence,
+            columns=[f"{s}_{c}" for s in SPECIES for c in per_patch],
+            keys=[f"{s}_{k}" for s in SPECIES for k in regional],
+            label="the persistence analysis", advice=report)
+
+    def synchrony():
+        return synchrony_analysis(
+            traj, burn_in=burn_in, source=net.source, target=net.target,
+            weights={s: study.arc_weights(s) for s in SPECIES},
+            centroids=study.landscape.centroids, seed=sc["run.seed"],
+            max_pairs=sc["analysis.synchrony_pairs"],
+        )
+
+    guarded("synchrony", synchrony,
+            columns=[f"{s}_{c}" for s in SPECIES for c in ("sync_local", "sync_region",
+                                                           "sync_all", "phase_locking",
+                                                           "sync_group")],
+            keys=[f"{s}_{k}" for s in SPECIES for k in ("synchrony", "kuramoto_mean",
+                                                        "community_synchrony",
+                                                        "sync_half_distance_km")],
+            label="the synchrony analysis", advice=report)
 
     if sc["analysis.stability"]:
-        stab = stability_analysis(study.system)
-        eq = pd.DataFrame({f"{s}_equilibrium": stab.pop(f"{s}_equilibrium") for s in SPECIES},
-                          index=parts[0].index)
-        parts.append(eq)
-        summary["stability"] = stab.pop("stability")
-        summary["stability_details"] = stab
+        def stability():
+            stab = stability_analysis(study.system)
+            eq = pd.DataFrame({f"{s}_equilibrium": stab.pop(f"{s}_equilibrium")
+                               for s in SPECIES}, index=index)
+            return eq, {"stability": stab.pop("stability"), "stability_details": stab}, {}
+
+        guarded("stability", stability, columns=[f"{s}_equilibrium" for s in SPECIES],
+                keys=["stability", "stability_details"], label="the stability analysis",
+                advice="set [analysis] stability = false to skip it")
     if sc["analysis.capacity"]:
         kernel = net.kernel if net.kernel in ("exponential", "gaussian", "step") else "exponential"
-        for s in SPECIES:
-            cap, cap_summary = capacity_analysis(net, area, scale_km=study.dispersal[s]["scale_km"],
-                                                 kernel=kernel)
-            parts.append(cap.set_axis(parts[0].index).add_prefix(f"{s}_"))
-            summary.update({f"{s}_{k}": v for k, v in cap_summary.items()})
+
+        def capacity():
+            tables, figures = [], {}
+            for s in SPECIES:
+                cap, cap_summary = capacity_analysis(
+                    net, area, scale_km=study.dispersal[s]["scale_km"], kernel=kernel)
+                tables.append(cap.set_axis(index).add_prefix(f"{s}_"))
+                figures.update({f"{s}_{k}": v for k, v in cap_summary.items()})
+            return pd.concat(tables, axis=1), figures, {}
+
+        guarded("capacity", capacity,
+                columns=[f"{s}_{c}" for s in SPECIES for c in capacity_columns(net)],
+                keys=[f"{s}_{k}" for s in SPECIES for k in ("metapopulation_capacity",
+                                                            "capacity_drop_method")],
+                label="metapopulation capacity",
+                advice="set [analysis] capacity = false to skip it")
 
     table = pd.concat(parts, axis=1)
     ordered = ["area_km2", "links"] + [f"{s}_{c}" for s in SPECIES for c in CONTRACT_COLUMNS]

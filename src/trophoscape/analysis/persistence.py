@@ -24,6 +24,11 @@ Per patch and species ``S`` (columns of the output table):
     with replicates only: share of replicates in which the patch keeps ``S`` at the end,
     with its Wilson score interval (Wilson 1927).
 
+A species is *present* in a patch at a census when its abundance is at least the
+quasi-extinction abundance (any positive abundance when that is 0): a population below the
+threshold that is growing from zero by immigration, or held there by a trickle of
+immigrants, is not counted as present until it reaches the threshold.
+
 Trajectories may carry a ``replicate`` dimension (last); per-patch figures are then
 averaged over replicates.
 """
@@ -36,7 +41,8 @@ import pandas as pd
 from ..system import SPECIES
 from ._blocks import blocks
 
-__all__ = ["persistence_table", "regional_persistence", "occupancy_curve", "wilson_interval"]
+__all__ = ["persistence_table", "regional_persistence", "occupancy_curve", "present",
+           "wilson_interval"]
 
 
 def wilson_interval(successes, trials, *, confidence: float = 0.95):
@@ -79,6 +85,11 @@ def _floating(values) -> np.ndarray:
     """The values as they are when floating point (float32 storage is not copied)."""
     values = np.asarray(values)
     return values if np.issubdtype(values.dtype, np.floating) else values.astype(float)
+
+
+def present(x, extinction_abundance: float):
+    """Presence: abundance at or above the quasi-extinction abundance (above 0 if that is 0)."""
+    return x >= extinction_abundance if extinction_abundance > 0 else x > 0
 
 
 def _spell_statistics(present: np.ndarray, time: np.ndarray):
@@ -159,15 +170,15 @@ def _species_block(x, time, first, extinction_abundance) -> dict:
 
     ``x`` may be float32 (as a study stores it): sums and moments are taken in float64.
     """
-    present = x > 0
+    here = present(x, extinction_abundance)
     xa = x[first:]
     mean = xa.mean(axis=0, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
         cv = np.where(mean > 0, xa.std(axis=0, dtype=np.float64) / mean, np.nan)
         margin = (xa.min(axis=0).astype(np.float64) / extinction_abundance
                   if extinction_abundance > 0 else np.full(mean.shape, np.nan))
-    n_lost, n_gained, spell, last = _spell_statistics(present, time)
-    return {"kept": present[-1].sum(axis=1), "occupancy": present[first:].mean(axis=(0, 2)),
+    n_lost, n_gained, spell, last = _spell_statistics(here, time)
+    return {"kept": here[-1].sum(axis=1), "occupancy": here[first:].mean(axis=(0, 2)),
             "mean": mean, "cv": cv, "margin": margin, "lost": n_lost, "gained": n_gained,
             "spell": spell, "last": last}
 
@@ -185,8 +196,10 @@ def _nanmax_rows(a: np.ndarray) -> np.ndarray:
     return np.where(ok.any(axis=1), np.where(ok, a, -np.inf).max(axis=1), np.nan)
 
 
-def occupancy_curve(traj, *, species=SPECIES):
+def occupancy_curve(traj, *, species=SPECIES, extinction_abundance: float = 1.0):
     """Share of patches occupied at each census, per species (mean over replicates).
+
+    Occupied: abundance at or above ``extinction_abundance`` (:func:`present`).
 
     Returns
     -------
@@ -194,12 +207,14 @@ def occupancy_curve(traj, *, species=SPECIES):
     """
     data = getattr(traj, "data", traj)
     time = np.asarray(data["time"].values, dtype=float)
-    return pd.DataFrame({s: (_cube(data, s) > 0).mean(axis=(1, 2)) for s in species},
+    return pd.DataFrame({s: present(_cube(data, s), extinction_abundance).mean(axis=(1, 2))
+                         for s in species},
                         index=pd.Index(time, name="time"))
 
 
 def regional_persistence(table: pd.DataFrame, traj=None, *, species=SPECIES,
-                         area_km2=None, confidence: float = 0.95) -> dict:
+                         area_km2=None, confidence: float = 0.95,
+                         extinction_abundance: float = 1.0) -> dict:
     """Network-level persistence figures.
 
     ``S_regional_persistence``
@@ -225,7 +240,7 @@ def regional_persistence(table: pd.DataFrame, traj=None, *, species=SPECIES,
         if data is not None:
             x = _cube(data, s)
             time = np.asarray(data["time"].values, dtype=float)
-            anywhere = (x > 0).any(axis=1)                     # (time, replicate)
+            anywhere = present(x, extinction_abundance).any(axis=1)  # (time, replicate)
             gone = ~anywhere
             first = np.where(gone.any(axis=0), time[np.argmax(gone, axis=0)], np.nan)
             out[f"{s}_regional_extinction_time"] = (float(np.nanmin(first))

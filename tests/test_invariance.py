@@ -1,0 +1,208 @@
+"""Results that must not depend on numerical settings: error control, census interval.
+
+The per-patch error control and the quasi-extinction rule of :mod:`trophoscape.simulate`
+are checked against runs of scipy's own DOP853 (``scipy.integrate.solve_ivp``, a reference
+library) at tight tolerances, and against runs of the same patch alone.
+"""
+
+import numpy as np
+import pytest
+import scipy.integrate as si
+import scipy.sparse as sp
+
+from conftest import make_model, make_system
+from trophoscape.noise import stack_state, stack_system
+from trophoscape.simulate import simulate
+
+# Rosenzweig-MacArthur with the defaults of conftest (r = 1, a = 1, h = 0.2, e = 0.4,
+# m = 0.5): N* = m / (a (e - m h)) = 5/3 and the Hopf threshold K_H = 2 N* + 1/(a h) = 8.33
+# (Rosenzweig 1971, Science 171:385; from memory): K = 30 cycles deeply, K = 5 settles.
+CYCLING_K = 30.0
+
+
+def _mixed_system(quiet: int):
+    """Patch 0 cycles; ``quiet`` more patches sit at a steady state (prey at K, no predator)."""
+    n = quiet + 1
+    model = make_model(n=n, capacity=CYCLING_K)
+    y0 = np.concatenate([np.full(n, CYCLING_K), np.zeros(n)])
+    y0[0], y0[n] = 4.0, 1.0
+    return make_system(model), y0
+
+
+def _reference(duration, times):
+    """The cycling patch alone by scipy's DOP853 at tight tolerances."""
+    system, y0 = _mixed_system(0)
+    sol = si.solve_ivp(system.rhs_function(), (0.0, duration), y0, method="DOP853",
+                       rtol=1e-12, atol=1e-12, t_eval=times)
+    assert sol.success
+    return sol.y
+
+
+def _relative_error(run, ref):
+    """Largest deviation over the run, relative to the largest abundance, both species."""
+    return max(np.max(np.abs(run[s] - ref[s])) / np.max(np.abs(ref[s])) for s in range(2))
+
+
+@pytest.mark.parametrize("method", ["RK45", "DOP853", "RK23"])
+def test_one_cycling_patch_among_2000_quiet_ones_keeps_its_accuracy(method):
+    # A patch's accuracy must not depend on how many quiet patches share the system: with
+    # scipy's RMS norm, 2,000 quiet patches let the cycling one drift by about 16 %.
+    duration = 60.0
+    lone_system, lone_y0 = _mixed_system(0)
+    lone = simulate(lone_system, lone_y0, duration=duration, census_interval=0.5,
+                    extinction_abundance=0.0, method=method)
+    times = lone.time
+    ref = _reference(duration, times)
+    big_system, big_y0 = _mixed_system(2000)
+    big = simulate(big_system, big_y0, duration=duration, census_interval=0.5,
+                   extinction_abundance=0.0, method=method)
+    lone_xy = [lone[s].values[:, 0] for s in ("prey", "predator")]
+    big_xy = [big[s].values[:, 0] for s in ("prey", "predator")]
+    assert np.ptp(ref[0][times > 20]) > 5.0  # it does cycle
+    assert _relative_error(lone_xy, ref) < 0.01
+    assert _relative_error(big_xy, ref) < 0.01
+    # consistency test: the quiet patches add nothing to the error control at all
+    assert _relative_error(big_xy, lone_xy) < 1e-9
+
+
+def test_stock_rms_norm_would_dilute_the_error():
+    # The failure the max norm prevents, shown with scipy's own RK45 (RMS norm): the test
+    # above could fail. (Measured with scipy 1.17: 1.3e-5 alone, 1.5 % among 2,000.)
+    duration = 60.0
+    big_system, big_y0 = _mixed_system(2000)
+    times = np.arange(0.0, duration + 0.25, 0.5)
+    sol = si.solve_ivp(big_system.rhs_function(), (0.0, duration), big_y0, method="RK45",
+                       rtol=1e-6, atol=1e-8, t_eval=times)
+    n = 2001
+    ref = _reference(duration, times)
+    assert _relative_error([sol.y[0], sol.y[n]], ref) > 0.01
+
+
+def test_a_stack_of_256_replicates_keeps_each_copys_accuracy():
+    # 256 copies of (1 cycling + 7 quiet patches) as one block-diagonal system: each copy is
+    # integrated as accurately as the 8-patch system alone (max norm over the stack).
+    duration = 40.0
+    system, y0 = _mixed_system(7)
+    lone = simulate(system, y0, duration=duration, census_interval=0.5,
+                    extinction_abundance=0.0)
+    stacked = simulate(stack_system(system, 256), stack_state(y0, 256), duration=duration,
+                       census_interval=0.5, extinction_abundance=0.0)
+    ref = _reference(duration, lone.time)
+    n = 8
+    for r in (0, 255):
+        copy = [stacked[s].values[:, r * n] for s in ("prey", "predator")]
+        assert _relative_error(copy, ref) < 0.01
+        # consistency test: identical copies take the lone system's steps exactly
+        np.testing.assert_allclose(copy[0], lone["prey"].values[:, 0], rtol=1e-12)
+    assert stacked.stats.steps == lone.stats.steps
+
+
+# ------------------------------------------------------------ the quasi-extinction rule
+def _source_and_sink():
+    """Patch 0 a source at its steady state; patch 1 a good empty patch 5 km away.
+
+    The source sends the sink a trickle of predators (a fraction of an individual per time
+    unit); the sink has prey at capacity, where the predator grows (e f(K) > m).
+    """
+    model = make_model(n=2, capacity=5.0)  # below K_H: a stable coexistence point
+    n_star = 0.5 / (1.0 * (0.4 - 0.5 * 0.2))
+    p_star = 1.0 * (1 - n_star / 5.0) * (1 + 1.0 * 0.2 * n_star)  # (r/a)(1 - N*/K)(1 + a h N*)
+    area = np.array([40.0, 40.0])
+    trickle = 0.002  # per capita, per time unit, source to sink only
+    predator = sp.csr_array(np.array([[0.0, 0.0], [trickle, 0.0]]))
+    system = make_system(model, area=area, predator_movement=predator)
+    y0 = np.array([n_star * 40.0, 5.0 * 40.0, p_star * 40.0, 0.0])
+    return system, y0
+
+
+@pytest.mark.parametrize("census", [0.1, 0.25, 0.5, 1.0, 2.0])
+def test_trickle_fed_sink_fills_at_every_census_interval(census):
+    # Before, a census zeroed the sink's few immigrants unless more than one individual
+    # arrived within one census interval, so it filled only at long census intervals.
+    system, y0 = _source_and_sink()
+    duration = 60.0
+    run = simulate(system, y0, duration=duration, census_interval=census,
+                   extinction_abundance=1.0)
+    # reference: scipy's DOP853 without any rule (the sink never falls through the threshold)
+    sol = si.solve_ivp(system.rhs_function(), (0.0, duration), y0, method="DOP853",
+                       rtol=1e-10, atol=1e-12)
+    sink_ref = sol.y[3, -1]
+    assert sink_ref > 10.0  # the sink fills
+    assert run["predator"].values[-1, 1] == pytest.approx(sink_ref, rel=0.05)
+    assert sum(run.stats.removals) == 0
+
+
+def test_a_population_falling_through_the_threshold_is_removed_where_it_crosses():
+    # Pure decay x' = -mu x from x0 crosses the threshold at t* = ln(x0 / theta) / mu
+    # (common practice): the population must be removed then, whatever the census.
+    model = make_model(n=1, growth="exponential", growth_rate=0.0)
+    system = make_system(model)
+    mu, x0, theta = 0.5, 50.0, 1.0
+    y0 = np.array([0.0, x0])
+    model.params["mortality"][:] = mu
+    t_star = np.log(x0 / theta) / mu
+    for census in (0.1, 0.7, 3.0):
+        run = simulate(system, y0, duration=15.0, census_interval=census,
+                       extinction_abundance=theta)
+        p = run["predator"].values[:, 0]
+        t = run.time
+        np.testing.assert_allclose(p[t < t_star - 1e-6], x0 * np.exp(-mu * t[t < t_star - 1e-6]),
+                                   rtol=1e-5)
+        assert np.all(p[t > t_star + 1e-6] == 0.0)
+        assert run.stats.removals == (0, 1)
+        assert run.stats.removed_individuals[1] == pytest.approx(theta, rel=1e-6)
+
+
+# ------------------------------------------------------------------ the demo, end to end
+@pytest.fixture(scope="module")
+def demo_scenario():
+    from pathlib import Path
+
+    from trophoscape.scenario import read_scenario
+
+    return read_scenario(Path(__file__).parents[1] / "data" / "demo.toml")
+
+
+def _demo_run(scenario, **changes):
+    from trophoscape.study import build_study, run_study
+
+    return run_study(build_study(scenario.with_values(**changes)))
+
+
+PERSISTENCE_COLUMNS = ("persists", "occupancy", "extinctions", "recolonisations",
+                       "last_extinction", "time_to_extinction")
+SYNCHRONY_COLUMNS = ("sync_local", "sync_region", "sync_all", "phase_locking")
+
+
+def test_demo_persistence_does_not_depend_on_the_census_interval(demo_scenario):
+    # Regression guard: before, the predator's regional persistence on the demo was 0.540,
+    # 0.627 and 0.987 at census intervals 0.1, 0.5 and 2 (consistency test across settings).
+    runs = {c: _demo_run(demo_scenario, run__census_interval=c) for c in (0.1, 0.5, 2.0)}
+    persistence = [r.summary["predator_regional_persistence"] for r in runs.values()]
+    occupancy = [r.patches["predator_occupancy"].mean() for r in runs.values()]
+    assert np.ptp(persistence) <= 0.02
+    assert np.ptp(occupancy) <= 0.02
+    # the integration itself is the same run: the census only records it
+    removed = {r.summary["quasi_extinction"]["predator"]["removals"] for r in runs.values()}
+    assert len(removed) == 1
+    assert len({r.trajectory.stats.nfev for r in runs.values()}) == 1
+    for r in runs.values():  # the rule did act: the demo loses and regains local populations
+        assert r.summary["quasi_extinction"]["prey"]["removals"] > 0
+
+
+def test_demo_results_converge_as_tolerances_tighten(demo_scenario):
+    # Ten-fold tighter rtol and atol change no persistence column and no synchrony value by
+    # more than 1e-3 (consistency test across tolerances).
+    loose = _demo_run(demo_scenario)
+    tight = _demo_run(demo_scenario, run__rtol=demo_scenario["run.rtol"] / 10,
+                      run__atol=demo_scenario["run.atol"] / 10)
+    for s in ("prey", "predator"):
+        for c in PERSISTENCE_COLUMNS + SYNCHRONY_COLUMNS:
+            a = loose.patches[f"{s}_{c}"].to_numpy(dtype=float)
+            b = tight.patches[f"{s}_{c}"].to_numpy(dtype=float)
+            np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
+            ok = ~np.isnan(a)
+            assert np.max(np.abs(a[ok] - b[ok]), initial=0.0) <= 1e-3, f"{s}_{c}"
+        for key in ("regional_persistence", "area_persistence", "synchrony", "kuramoto_mean",
+                    "community_synchrony"):
+            assert abs(loose.summary[f"{s}_{key}"] - tight.summary[f"{s}_{key}"]) <= 1e-3
