@@ -116,8 +116,8 @@ survival_per_km = 0.97
 [run]
 duration = 400
 burn_in = 100                   # analyses use times from here on
-census_interval = 0.5           # output step and quasi-extinction check
-extinction_abundance = 1.0      # below this a local population is set to zero
+census_interval = 0.5           # when the state is recorded; the run does not depend on it
+extinction_abundance = 1.0      # a local population falling through this is removed
 seed = 1
 '''
 
