@@ -2,9 +2,13 @@
 
 import numpy as np
 import pytest
+import scipy.linalg
+import scipy.sparse.linalg
 
+from trophoscape.analysis import capacity
 from trophoscape.analysis.capacity import (
     capacity_analysis,
+    capacity_columns,
     landscape_matrix,
     metapopulation_capacity,
     patch_contributions,
@@ -54,8 +58,10 @@ def test_small_landscape_matches_numpy_on_the_dense_matrix():
     np.testing.assert_allclose(x, np.abs(vectors[:, -1]), atol=1e-4)
 
 
-def test_sparse_path_matches_numpy(rng):
-    # as above, on a network large enough for ARPACK (scipy.sparse.linalg.eigsh)
+def test_sparse_path_matches_numpy(rng, monkeypatch):
+    # as above, on a network above the dense limit (lowered here), so ARPACK
+    # (scipy.sparse.linalg.eigsh) answers
+    monkeypatch.setattr(capacity, "DENSE_LIMIT", 100)
     n = 150
     net = random_network(rng, n, 0.05)
     area = rng.uniform(0.5, 3.0, n)
@@ -99,8 +105,9 @@ def test_one_way_row_links_both_ways():
     assert m[0, 1] == pytest.approx(2.0 * np.exp(-2.0))
 
 
-@pytest.mark.parametrize("n", [20, 120])  # dense and ARPACK paths
-def test_more_area_or_shorter_distances_never_lower_capacity(rng, n):
+@pytest.mark.parametrize("n", [20, 120])  # dense and (limit lowered) ARPACK paths
+def test_more_area_or_shorter_distances_never_lower_capacity(rng, n, monkeypatch):
+    monkeypatch.setattr(capacity, "DENSE_LIMIT", 64)
     # Perron–Frobenius: the spectral radius of a non-negative matrix does not decrease
     # when an entry increases (Perron 1907; Frobenius 1912; from memory)
     for _ in range(5):
@@ -155,8 +162,11 @@ def exact_drops_numpy(m):
     return out
 
 
-@pytest.mark.parametrize("shape", [(5, 6), (9, 10)])  # batched dense and ARPACK loop
-def test_exact_drop_matches_numpy_and_the_estimate_bounds_it(rng, shape):
+# batched dense, one eigendecomposition, and (dense limit lowered) one ARPACK solve per patch
+@pytest.mark.parametrize("shape, dense_limit", [((5, 6), 2000), ((9, 10), 2000), ((9, 10), 64)])
+def test_exact_drop_matches_numpy_and_the_estimate_bounds_it(rng, shape, dense_limit,
+                                                             monkeypatch):
+    monkeypatch.setattr(capacity, "DENSE_LIMIT", dense_limit)
     land = grid_landscape(*shape, spacing_km=2.0, size_km=1.0)
     net = build_network(land, max_distance_km=4.0)
     area = land.area_km2 * rng.uniform(0.8, 1.25, land.n_patches)
@@ -218,3 +228,160 @@ def test_bad_shapes():
         landscape_matrix(net, [1.0], scale_km=1.0)
     with pytest.raises(ValueError, match="kernel"):
         landscape_matrix(net, [1.0, 1.0], scale_km=1.0, kernel="cauchy")
+
+
+# ------------------------------------------------------------------ uniform chains and fallbacks
+def uniform_chain(n, gap_km=1.0):
+    """n patches in a row, each linked to its neighbours, all gaps equal (a links table)."""
+    i = np.arange(n - 1)
+    return make_network(n, i, i + 1, np.full(n - 1, gap_km))
+
+
+def chain_reference(n, area, gap_km, scale_km):
+    """λ_M and the exact drops of a uniform chain of identical patches, in closed form.
+
+    M = c T with c = A² exp(-d/L) and T the adjacency matrix of a path of n nodes, whose
+    eigenvalues are 2 cos(kπ/(n+1)), k = 1..n (the tridiagonal Toeplitz matrix; Gregory &
+    Karney 1969, A Collection of Matrices for Testing Computational Algorithms, from memory).
+    Losing patch k leaves two chains of k and n-1-k patches; λ is the longer one's.
+    """
+    c = area ** 2 * np.exp(-gap_km / scale_km)
+    lam = 2 * c * np.cos(np.pi / (n + 1))
+    longer = np.maximum(np.arange(n), n - 1 - np.arange(n))
+    return lam, lam - 2 * c * np.cos(np.pi / (longer + 1))
+
+
+def test_400_patch_chain_of_identical_patches():
+    # the case of the ArpackNoConvergence report: 400 identical squares in a row, linked
+    # to their neighbours. Check: Hanski & Ovaskainen (2000) λ_M against the closed form of
+    # the chain (above) and scipy.linalg.eigh of the matrix written out here; the drops
+    # against the closed form.
+    n, area, gap, scale = 400, 1.0, 1.0, 2.0
+    net = uniform_chain(n, gap)
+    i = np.arange(n - 1)
+    ref_matrix = dense_reference(n, i, i + 1, np.full(n - 1, gap), np.full(n, area), scale)
+    values, vectors = scipy.linalg.eigh(ref_matrix)
+    lam_ref, drop_ref = chain_reference(n, area, gap, scale)
+    assert values[-1] == pytest.approx(lam_ref, rel=1e-12)  # the two references agree
+    table, summary = capacity_analysis(net, np.full(n, area), scale_km=scale)
+    assert summary["metapopulation_capacity"] == pytest.approx(lam_ref, rel=1e-12)
+    assert summary["capacity_drop_method"] == "exact"
+    np.testing.assert_allclose(table["capacity_share"], vectors[:, -1] ** 2, atol=1e-10)
+    np.testing.assert_allclose(table["capacity_drop"], drop_ref, rtol=1e-8, atol=1e-13 * lam_ref)
+    # the end patches matter least, the middle ones most (the chain breaks in two)
+    assert table["capacity_drop"].iloc[0] == table["capacity_drop"].min()
+    assert table["capacity_drop"].iloc[n // 2 - 1] == pytest.approx(drop_ref.max(), rel=1e-8)
+
+
+def test_chain_landscape_matches_the_dense_definition():
+    # the same chain as a user builds it: trophoscape.testing squares, kernel links to the
+    # neighbours only (gap 1 km; the next patch is 3 km away). Reference: Hanski &
+    # Ovaskainen (2000) M_ij = exp(-d_ij/L) A_i A_j over the network's pairs, written out,
+    # and scipy.linalg.eigh; drops of a few patches against eigh without the patch.
+    land = chain_landscape(400, spacing_km=2.0, size_km=1.0)
+    net = build_network(land, max_distance_km=1.5)
+    lo = np.minimum(net.source, net.target)
+    hi = np.maximum(net.source, net.target)
+    assert sorted(set(zip(lo.tolist(), hi.tolist()))) == [(k, k + 1) for k in range(399)]
+    first = net.source < net.target
+    ref = dense_reference(400, lo[first], hi[first], net.distance_km[first], land.area_km2,
+                          scale=5.0)
+    values, vectors = scipy.linalg.eigh(ref)
+    lam, share, drop, exact = patch_contributions(net, land.area_km2, scale_km=5.0)
+    assert exact and lam == pytest.approx(values[-1], rel=1e-12)
+    np.testing.assert_allclose(share, vectors[:, -1] ** 2, atol=1e-10)
+    for k in (0, 57, 199, 200, 399):
+        keep = np.arange(400) != k
+        without = scipy.linalg.eigh(ref[np.ix_(keep, keep)], eigvals_only=True)[-1]
+        assert drop[k] == pytest.approx(values[-1] - without, rel=1e-7, abs=1e-13 * lam)
+
+
+def test_one_patch():
+    net = make_network(1, [], [], [])
+    table, summary = capacity_analysis(net, [2.0], scale_km=1.0)
+    assert summary["metapopulation_capacity"] == 0.0
+    assert table.shape == (1, 2) and table.iloc[0].tolist() == [0.0, 0.0]
+
+
+def test_identical_patches_all_linked():
+    # M = c (J - I) for n identical patches at equal distances: λ_M = (n - 1) c, every
+    # share 1/n, and losing any patch leaves (n - 2) c (eigenvalues of J - I: n - 1 and -1)
+    n, c = 90, 1.5 ** 2 * np.exp(-2.0)
+    lo, hi = np.triu_indices(n, 1)
+    net = make_network(n, lo, hi, np.full(lo.size, 2.0))
+    lam, share, drop, exact = patch_contributions(net, np.full(n, 1.5), scale_km=1.0)
+    assert exact and lam == pytest.approx((n - 1) * c, rel=1e-12)
+    np.testing.assert_allclose(share, 1.0 / n, rtol=1e-9)
+    np.testing.assert_allclose(drop, c, rtol=1e-9)
+
+
+def test_isolated_patches_and_an_unlinked_group_beside_a_chain():
+    # patches with no links (and a linked pair far smaller than the chain) add nothing to
+    # λ_M and lose nothing (Perron–Frobenius: the spectrum of a block-diagonal matrix is
+    # the union of its blocks'); the chain's part is its closed form
+    n = 60
+    i = np.arange(n - 1)
+    net = make_network(n + 5, np.r_[i, n + 3], np.r_[i + 1, n + 4], np.r_[np.ones(n - 1), 1.0])
+    area = np.r_[np.ones(n), np.full(5, 0.5)]
+    table, summary = capacity_analysis(net, area, scale_km=2.0)
+    lam_ref, drop_ref = chain_reference(n, 1.0, 1.0, 2.0)
+    assert summary["metapopulation_capacity"] == pytest.approx(lam_ref, rel=1e-12)
+    assert np.all(table["capacity_share"].iloc[n:] == 0)
+    assert np.all(table["capacity_drop"].iloc[n:] == 0)
+    np.testing.assert_allclose(table["capacity_drop"].iloc[:n], drop_ref, rtol=1e-8)
+
+
+def failing_arpack(monkeypatch, *, shift_invert_fails=False):
+    """Make scipy's eigsh raise ArpackNoConvergence in regular mode (and in shift-invert)."""
+    real = scipy.sparse.linalg.eigsh
+
+    def eigsh(matrix, *args, **kwargs):
+        if kwargs.get("sigma") is None or shift_invert_fails:
+            raise scipy.sparse.linalg.ArpackNoConvergence("no convergence (forced)",
+                                                          np.zeros(0), np.zeros((0, 0)))
+        return real(matrix, *args, **kwargs)
+
+    monkeypatch.setattr(scipy.sparse.linalg, "eigsh", eigsh)
+
+
+@pytest.mark.parametrize("shift_invert_fails", [False, True])  # shift-invert, then LOBPCG
+def test_fallbacks_when_arpack_does_not_converge(monkeypatch, shift_invert_fails):
+    # the sparse path (forced on the 400-patch chain by lowering the dense limit) with
+    # ARPACK failing: the fallback answers, checked against the closed form of the chain
+    monkeypatch.setattr(capacity, "DENSE_LIMIT", 50)
+    failing_arpack(monkeypatch, shift_invert_fails=shift_invert_fails)
+    lam, x = metapopulation_capacity(uniform_chain(400), np.ones(400), scale_km=2.0)
+    lam_ref, _ = chain_reference(400, 1.0, 1.0, 2.0)
+    assert lam == pytest.approx(lam_ref, rel=1e-10)
+    k = np.arange(1, 401)  # the leading eigenvector of the path: sin(kπ/(n+1)), normalised
+    ref = np.sin(k * np.pi / 401)
+    np.testing.assert_allclose(x, ref / np.linalg.norm(ref), atol=1e-5)
+
+
+def test_drops_fall_back_per_patch(monkeypatch):
+    # a component above the dense limit gets one sparse solve per patch; with ARPACK's
+    # regular mode failing every time, shift-invert answers (closed form as above)
+    monkeypatch.setattr(capacity, "DENSE_LIMIT", 50)
+    failing_arpack(monkeypatch)
+    lam, _, drop, exact = patch_contributions(uniform_chain(120), np.ones(120), scale_km=2.0)
+    lam_ref, drop_ref = chain_reference(120, 1.0, 1.0, 2.0)
+    assert exact and lam == pytest.approx(lam_ref, rel=1e-10)
+    np.testing.assert_allclose(drop, drop_ref, rtol=1e-6, atol=1e-12)
+
+
+def test_every_solver_failing_is_a_clear_error(monkeypatch):
+    monkeypatch.setattr(capacity, "DENSE_LIMIT", 50)
+    failing_arpack(monkeypatch, shift_invert_fails=True)
+    monkeypatch.setattr(scipy.sparse.linalg, "lobpcg",
+                        lambda a, x, **kw: (np.zeros(x.shape[1]), np.zeros_like(x)))
+    with pytest.raises(RuntimeError, match="no eigen-solver converged .* 400 x 400 .*LOBPCG"):
+        metapopulation_capacity(uniform_chain(400), np.ones(400), scale_km=2.0)
+
+
+def test_capacity_columns_name_what_the_analysis_gives():
+    # consistency test: the names a failed analysis leaves in the table are those a
+    # successful one writes
+    net = uniform_chain(30)
+    for limit in (0, 100):
+        table, _ = capacity_analysis(net, np.ones(30), scale_km=2.0, exact_limit=limit)
+        assert capacity_columns(net, exact_limit=limit) == list(table.columns)

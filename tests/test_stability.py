@@ -3,10 +3,12 @@
 import numpy as np
 import pytest
 import scipy.linalg
+import scipy.optimize
 import scipy.sparse
 import scipy.sparse.linalg
 from conftest import make_model, make_system
 
+from trophoscape.analysis import stability
 from trophoscape.analysis.stability import (
     _density_equations,
     classify,
@@ -216,3 +218,131 @@ def test_classify(values, label):
     # the leading eigenvalue decides (linearisation; Strogatz 1994, Nonlinear Dynamics and
     # Chaos §6.3, from memory)
     assert classify(values) == label
+
+
+# ------------------------------------------------------------------ uniform chains and fallbacks
+def chain_system(n, capacity, rate=0.1):
+    """n identical patches of equal area in a row, each linked to its neighbours (a links
+    table): the end patches have one neighbour, so the uniform state is not an equilibrium."""
+    i = np.arange(n - 1)
+    nan = np.full(2 * (n - 1), np.nan)
+    net = Network(ids=[str(k) for k in range(n)], source=np.r_[i, i + 1], target=np.r_[i + 1, i],
+                  distance_km=np.ones(2 * (n - 1)), weight=nan, survival=nan,
+                  origin=np.full(2 * (n - 1), "table"), kernel="exponential",
+                  max_distance_km=2.0)
+    op = movement_operator(net, emigration_rate=rate, scale_km=2.0, survival_per_km=0.97)
+    return make_system(rm_model(n, capacity), area=np.ones(n), prey_movement=op,
+                       predator_movement=op)
+
+
+def dense_leading(system, state):
+    """All eigenvalues of the dense Jacobian (scipy.linalg.eigvals, LAPACK), leading first."""
+    values = scipy.linalg.eigvals(system.jacobian_function()(0, state).toarray())
+    return values[np.lexsort((-values.imag, -values.real))]
+
+
+def test_400_patch_chain_runs_and_matches_dense():
+    # the chain of the ArpackNoConvergence report: Newton–Krylov and ARPACK chosen
+    # automatically (800 states); reference: LAPACK on the dense Jacobian at the root
+    system = chain_system(400, 0.9 * K_HOPF)
+    result = stability_analysis(system)
+    assert result["equilibrium_found"] and result["equilibrium_method"] == "krylov"
+    assert result["eigenvalue_method"] == "sparse"
+    eq = coexistence_equilibrium(system)
+    ref = dense_leading(system, eq.state)[0]
+    assert result["leading_eigenvalue_real"] == pytest.approx(ref.real, rel=1e-8)
+    assert result["leading_eigenvalue_imag"] == pytest.approx(abs(ref.imag), rel=1e-8)
+    # below the Hopf threshold of every patch the coexistence state attracts (Rosenzweig 1971)
+    assert result["stability"] == "damped oscillation"
+
+
+def failing_eigs(monkeypatch):
+    """Make scipy's eigs raise ArpackNoConvergence in ARPACK's regular mode."""
+    real = scipy.sparse.linalg.eigs
+
+    def eigs(matrix, *args, **kwargs):
+        if kwargs.get("sigma") is None:
+            raise scipy.sparse.linalg.ArpackNoConvergence("no convergence (forced)",
+                                                          np.zeros(0), np.zeros((0, 0)))
+        return real(matrix, *args, **kwargs)
+
+    monkeypatch.setattr(scipy.sparse.linalg, "eigs", eigs)
+
+
+@pytest.fixture
+def small_sparse(monkeypatch):
+    """The sparse solvers on a 60-patch chain (120 states): the dense limit lowered to 100."""
+    monkeypatch.setattr(stability, "DENSE_LIMIT", 100)
+    return chain_system(60, 0.9 * K_HOPF)
+
+
+def test_dense_solve_takes_over_when_arpack_fails(monkeypatch, small_sparse):
+    # sparse by default; ARPACK forced to fail, LAPACK answers
+    system = small_sparse
+    assert stability_analysis(system)["eigenvalue_method"] == "sparse"
+    eq = coexistence_equilibrium(system)
+    ref = dense_leading(system, eq.state)
+    failing_eigs(monkeypatch)
+    result = stability_analysis(system)
+    assert result["eigenvalue_method"] == "dense"
+    assert result["leading_eigenvalue_real"] == pytest.approx(ref[0].real, rel=1e-12)
+
+
+def test_shift_invert_takes_over_above_the_dense_fallback(monkeypatch, small_sparse):
+    # above DENSE_FALLBACK_LIMIT (lowered here) with ARPACK's regular mode failing:
+    # shift-invert to the right of the spectrum finds the leading pair (LAPACK reference)
+    system = small_sparse
+    eq = coexistence_equilibrium(system)
+    ref = dense_leading(system, eq.state)
+    failing_eigs(monkeypatch)
+    monkeypatch.setattr(stability, "DENSE_FALLBACK_LIMIT", 110)
+    values = leading_eigenvalues(system, eq.state, k=4)
+    np.testing.assert_allclose(values[:2], ref[:2], rtol=1e-8)
+    assert stability_analysis(system)["eigenvalue_method"] == "shift-invert"
+
+
+def test_every_eigen_solver_failing_is_a_clear_error(monkeypatch, small_sparse):
+    system = small_sparse
+    eq = coexistence_equilibrium(system)
+
+    def eigs(*args, **kwargs):
+        raise scipy.sparse.linalg.ArpackNoConvergence("forced", np.zeros(0), np.zeros((0, 0)))
+
+    monkeypatch.setattr(scipy.sparse.linalg, "eigs", eigs)
+    monkeypatch.setattr(stability, "DENSE_FALLBACK_LIMIT", 110)
+    with pytest.raises(RuntimeError, match="no eigen-solver converged .* 120 x 120 Jacobian"):
+        leading_eigenvalues(system, eq.state, k=4)
+
+
+def test_root_finder_error_hands_over_to_the_other_method(monkeypatch, small_sparse):
+    # Newton–Krylov raises on non-finite trial values ("Function returned non-finite
+    # results"); MINPACK's hybrid method then finds the same root
+    system = small_sparse
+    expected = coexistence_equilibrium(system)
+    assert expected.method == "krylov"
+    real = scipy.optimize.root
+
+    def root(fun, x0, method=None, **kwargs):
+        if method == "krylov":
+            raise ValueError("Function returned non-finite results")
+        return real(fun, x0, method=method, **kwargs)
+
+    monkeypatch.setattr(scipy.optimize, "root", root)
+    eq = coexistence_equilibrium(system)
+    assert eq.found and eq.method == "hybr"
+    assert "krylov stopped: Function returned non-finite results" in eq.message
+    np.testing.assert_allclose(eq.state, expected.state, rtol=1e-8)
+
+
+def test_every_root_finder_raising_is_reported_not_raised(monkeypatch, small_sparse):
+    system = small_sparse
+
+    def root(*args, **kwargs):
+        raise np.linalg.LinAlgError("singular matrix")
+
+    monkeypatch.setattr(scipy.optimize, "root", root)
+    result = stability_analysis(system)
+    assert not result["equilibrium_found"]
+    assert "krylov stopped: singular matrix" in result["message"]
+    assert "hybr stopped: singular matrix" in result["message"]
+    assert np.isnan(result["leading_eigenvalue_real"])

@@ -95,7 +95,8 @@ def write_figures_and_report(folder, result, gdf, links, summary) -> None:
         for spec in specs:
             for s in SPECIES:
                 col = spec.column.format(s=s)
-                if col not in gdf.columns:
+                # absent, or all empty because its analysis failed (see analysis_errors)
+                if col not in gdf.columns or not gdf[col].notna().any():
                     continue
                 path = maps / f"{col}.png"
                 frame = gdf
@@ -304,7 +305,7 @@ def _headline_rows(summary):
                            (f"{s}_metapopulation_capacity", f"{s}: metapopulation capacity λ_M")):
             if key in summary:
                 rows.append((label, _fmt(summary[key])))
-    if "stability" in summary:
+    if summary.get("stability") is not None:
         rows.append(("coexistence state", summary["stability"]))
     solver = summary["solver"]
     rows.append(("solver", f"{solver['method']}, {solver['nfev']} right-hand-side evaluations"
@@ -317,6 +318,7 @@ STYLE = """
 body { font-family: sans-serif; max-width: 1120px; margin: 2em auto; color: #222;
        line-height: 1.4; }
 .caution { border-left: 4px solid #b35806; background: #fdf3e7; padding: .6em 1em; }
+.failed { border-left: 4px solid #b2182b; background: #fbe9e9; padding: .6em 1em; }
 table { border-collapse: collapse; } th, td { text-align: left; padding: .2em .8em; }
 th { font-weight: normal; color: #555; }
 .wide { overflow-x: auto; margin: .5em 0; }
@@ -349,6 +351,30 @@ def footer_text(prov) -> str:
             f"{prov['scenario_sha256'][:12]}…; seed {prov['seed']}.")
 
 
+#: The words the report uses for each analysis named in ``analysis_errors``.
+ANALYSIS_WORDS = {
+    "persistence": "persistence",
+    "synchrony": "synchrony",
+    "stability": "stability of the coexistence state",
+    "capacity": "metapopulation capacity",
+}
+
+
+def analysis_errors_html(summary) -> str:
+    """A box listing the analyses that failed (``summary["analysis_errors"]``); "" if none."""
+    errors = summary.get("analysis_errors") or []
+    if not errors:
+        return ""
+    esc = html.escape
+    items = "".join(
+        f"<li><strong>{esc(ANALYSIS_WORDS.get(e['analysis'], e['analysis']))}</strong>: "
+        f"{esc(e['reason'])}</li>" for e in errors)
+    return (f'<div class="failed"><p><strong>{len(errors)} analysis(es) failed.</strong> '
+            "The other results below are complete; the figures and columns of the failed "
+            "ones are left empty (– here, blank in patches.csv, null in summary.json) and "
+            f"their maps are left out.</p><ul>{items}</ul></div>")
+
+
 def _html(result, summary, sections) -> str:
     sc = result.study.scenario
     esc = html.escape
@@ -357,7 +383,8 @@ def _html(result, summary, sections) -> str:
     body = [f"<h1>{esc(sc.name)}</h1>",
             f"<p>{esc(_scenario_words(result))}</p>",
             f'<p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>',
-            "<h2>Headline results</h2>", f"<table>{table}</table>"]
+            "<h2>Headline results</h2>", analysis_errors_html(summary),
+            f"<table>{table}</table>"]
     for name, figures in sections.items():
         body.append(f"<h2>{esc(name)}</h2>")
         body.append(_figures_html(figures))

@@ -503,8 +503,9 @@ def analyse(study: Study, traj: Trajectory):
     def persistence():
         pers = persistence_table(traj, burn_in=burn_in,
                                  extinction_abundance=sc["run.extinction_abundance"])
-        return (pers, regional_persistence(pers, traj, area_km2=area),
-                {"occupancy": occupancy_curve(traj)})
+        level = sc["run.extinction_abundance"]
+        return (pers, regional_persistence(pers, traj, area_km2=area, extinction_abundance=level),
+                {"occupancy": occupancy_curve(traj, extinction_abundance=level)})
 
     per_patch = ["persists", "occupancy", "mean", "cv", "last_extinction", "extinctions",
                  "recolonisations", "time_to_extinction", "margin"]

@@ -32,7 +32,6 @@ and ``CoupledSystem.movement``); a test checks that both agree on positive state
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -42,7 +41,6 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from ..dynamics import interior_equilibrium
-from ..errors import TrophoscapeWarning
 from ..system import CoupledSystem, pack
 
 __all__ = [
@@ -53,6 +51,7 @@ __all__ = [
     "stability_analysis",
     "STABILITY_LABELS",
     "DENSE_LIMIT",
+    "DENSE_FALLBACK_LIMIT",
 ]
 
 #: Largest state size (2 n) handled with dense linear algebra (root finding and eigenvalues).
@@ -60,6 +59,19 @@ __all__ = [
 #: took 1 s and a dense eigenvalue solve 0.9 s, against 0.03 s for Newton–Krylov and 0.2 s
 #: for ARPACK; at 2 n = 2000 the dense root finder took 20 s. Both grow as (2 n)³.
 DENSE_LIMIT = 400
+
+#: Largest state size (2 n) for which a dense eigenvalue solve (LAPACK, about 4 s at 2,400)
+#: takes over when ARPACK does not converge. Above it, ARPACK is retried with a relaxed
+#: tolerance, then in shift-invert mode.
+DENSE_FALLBACK_LIMIT = 3000
+
+# Largest state size for which MINPACK's dense hybrid method takes over when Newton–Krylov
+# stops with an error (about 10 s at 1,600; see DENSE_LIMIT), and the other way round.
+_HYBR_FALLBACK_LIMIT = 4 * DENSE_LIMIT
+
+# Errors a root finder or eigen-solver raises when the numbers go wrong (non-finite trial
+# steps, a zero Newton step, a singular factor), as opposed to errors in our own code.
+_NUMERICAL_ERRORS = (ValueError, ArithmeticError, np.linalg.LinAlgError, RuntimeError)
 
 #: Every label :func:`classify` and :func:`stability_analysis` can return.
 STABILITY_LABELS = (
@@ -208,7 +220,9 @@ def coexistence_equilibrium(system: CoupledSystem, *, guess=None, tol: float = 1
         "auto" takes "hybr" (MINPACK's Powell hybrid method with the dense analytic
         Jacobian) for ``2 n <= DENSE_LIMIT`` and "krylov" (Newton–Krylov, LGMRES inner
         solver, preconditioned with an incomplete LU (``scipy.sparse.linalg.spilu``) of the
-        sparse analytic Jacobian at the guess) above it.
+        sparse analytic Jacobian at the guess) above it. With "auto", when one of them
+        stops with an error (Newton–Krylov does on non-finite trial values), the other takes
+        over: "krylov" always, "hybr" up to ``2 n = 4 DENSE_LIMIT``; the message says so.
     guess_duration : float, optional
         Length of the guessing simulation (default about 50 / min(growth rate, mortality)).
 
@@ -219,7 +233,8 @@ def coexistence_equilibrium(system: CoupledSystem, *, guess=None, tol: float = 1
         (identical patches with balanced dispersal), it is returned with method
         "closed form" after its residual has been checked. A root with a negative
         component is returned as found, ``interior`` False and the message saying so: no
-        interior equilibrium lies near the guess.
+        interior equilibrium lies near the guess. When every root finder stops with an
+        error, the guess is returned, not converged, with their messages.
 
     Notes
     -----
@@ -252,21 +267,28 @@ def coexistence_equilibrium(system: CoupledSystem, *, guess=None, tol: float = 1
         u0 = guess / area
 
     if method == "auto":
-        method = "hybr" if m <= DENSE_LIMIT else "krylov"
-    with np.errstate(all="ignore"):  # trial steps may overflow; the residual below decides
-        if method == "hybr":
-            sol = scipy.optimize.root(fun, u0, method="hybr", jac=lambda u: jac(u).toarray(),
-                                      options={"xtol": tol})
-        else:
-            options = {"fatol": tolerance(u0), "maxiter": 200}
-            preconditioner = _ilu_preconditioner(jac(u0))
-            if preconditioner is not None:
-                options["jac_options"] = {"inner_M": preconditioner}
-            sol = scipy.optimize.root(fun, u0, method="krylov", options=options)
+        first = "hybr" if m <= DENSE_LIMIT else "krylov"
+        # when one stops with an error, the other one takes over where it is affordable
+        other = "krylov" if first == "hybr" else "hybr"
+        methods = [first] + ([other] if other == "krylov" or m <= _HYBR_FALLBACK_LIMIT else [])
+    else:
+        methods = [method]
+    stopped = []
+    sol = None
+    for method in methods:
+        try:
+            sol = _root(method, fun, jac, u0, tol, tolerance(u0))
+            break
+        except _NUMERICAL_ERRORS as exc:
+            stopped.append(f"{method} stopped: {_first_line(exc)}")
+    if sol is None:  # every root finder raised: report the guess, not converged
+        res = _residual(fun, u0) if np.all(np.isfinite(u0)) else np.inf
+        return Equilibrium(u0 * area, res, False, method,
+                           f"no equilibrium found: {'; '.join(stopped)}")
     u = np.asarray(sol.x, dtype=float)
     res = _residual(fun, u) if np.all(np.isfinite(u)) else np.inf
     converged = bool(np.isfinite(res) and res <= tolerance(u))
-    message = str(sol.message)
+    message = "; ".join(stopped + [str(sol.message)])
     if not converged:
         message = f"no equilibrium to tolerance (residual {res:.3g}): {message}"
     negative = np.flatnonzero(u <= 0)
@@ -280,11 +302,30 @@ def coexistence_equilibrium(system: CoupledSystem, *, guess=None, tol: float = 1
     return Equilibrium(u * area, res, converged, method, message)
 
 
+def _first_line(exc) -> str:
+    """An exception in one line: its first line, else its class name."""
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__
+
+
+def _root(method: str, fun, jac, u0, tol: float, fatol: float):
+    """One ``scipy.optimize.root`` call of :func:`coexistence_equilibrium`."""
+    with np.errstate(all="ignore"):  # trial steps may overflow; the residual decides
+        if method == "hybr":
+            return scipy.optimize.root(fun, u0, method="hybr", jac=lambda u: jac(u).toarray(),
+                                       options={"xtol": tol})
+        options = {"fatol": fatol, "maxiter": 200}
+        preconditioner = _ilu_preconditioner(jac(u0))
+        if preconditioner is not None:
+            options["jac_options"] = {"inner_M": preconditioner}
+        return scipy.optimize.root(fun, u0, method="krylov", options=options)
+
+
 def _ilu_preconditioner(jacobian):
     """``LinearOperator`` applying an incomplete-LU inverse of ``jacobian``; None if singular."""
     try:
         ilu = spla.spilu(sp.csc_matrix(jacobian), drop_tol=1e-6, fill_factor=20)
-    except RuntimeError:  # exactly singular factor: run unpreconditioned
+    except (RuntimeError, ValueError):  # a singular or non-finite factor: run unpreconditioned
         return None
     return spla.LinearOperator(jacobian.shape, matvec=ilu.solve, dtype=float)
 
@@ -298,6 +339,7 @@ def _sort_leading(values, k):
 
 
 def _leading(system: CoupledSystem, state, k: int, method: str):
+    """The ``k`` leading eigenvalues and the solver that found them."""
     jacobian = system.jacobian_function()(0.0, np.asarray(state, dtype=float))
     m = jacobian.shape[0]
     k = int(min(k, m))
@@ -306,26 +348,56 @@ def _leading(system: CoupledSystem, state, k: int, method: str):
     if method not in ("dense", "sparse"):
         raise ValueError(f"method must be 'auto', 'dense' or 'sparse', got {method!r}")
     if method == "sparse" and k < m - 1:
-        # ARPACK needs k < m - 1; a fixed random start keeps runs reproducible and, unlike
-        # a constant vector, is not confined to the synchronous modes of a symmetric network
-        v0 = np.random.default_rng(0).standard_normal(m)
-        matrix = sp.csr_array(jacobian)
-        for ncv in (max(4 * k + 1, 40), max(8 * k + 1, 80)):
-            try:
-                # tol 1e-6 (relative): ample for the sign and period of the leading
-                # eigenvalue, and 16x faster than machine precision on 10,000 patches
-                values = spla.eigs(matrix, k=k, which="LR", v0=v0, ncv=min(ncv, m), tol=1e-6,
-                                   maxiter=50 * m, return_eigenvectors=False)
-                return _sort_leading(values, k), "sparse"
-            except spla.ArpackNoConvergence:
-                continue
-        if m > 4 * DENSE_LIMIT:
-            raise RuntimeError(f"ARPACK did not converge on the leading {k} eigenvalues of the "
-                               f"{m} x {m} Jacobian, and it is too large for a dense solve")
-        warnings.warn(f"ARPACK did not converge on the {m} x {m} Jacobian; used a dense "
-                      "eigenvalue solve instead", TrophoscapeWarning, stacklevel=3)
+        values, how = _leading_sparse(sp.csr_array(jacobian), k, relaxed=m > DENSE_FALLBACK_LIMIT)
+        if values is not None:
+            return values, how
+        if m > DENSE_FALLBACK_LIMIT:
+            raise RuntimeError(f"no eigen-solver converged on the leading {k} eigenvalues of "
+                               f"the {m} x {m} Jacobian (ARPACK, with a relaxed tolerance, "
+                               "shift-invert), and it is too large for a dense solve")
+        # below DENSE_FALLBACK_LIMIT LAPACK takes over: every eigenvalue, always converges
     values = scipy.linalg.eigvals(jacobian.toarray(), check_finite=False)
     return _sort_leading(values, k), "dense"
+
+
+def _leading_sparse(matrix, k: int, *, relaxed: bool):
+    """ARPACK on the sparse Jacobian: ``(values, how)``, or ``(None, None)`` if nothing converged.
+
+    Regular mode, then a larger Krylov space; with ``relaxed``, then a relaxed tolerance and
+    then shift-invert at a shift to the right of the spectrum (see :func:`leading_eigenvalues`).
+    """
+    m = matrix.shape[0]
+    # a fixed random start keeps runs reproducible and, unlike a constant vector, is not
+    # confined to the synchronous modes of a symmetric network
+    v0 = np.random.default_rng(0).standard_normal(m)
+    for ncv in (max(4 * k + 1, 40), max(8 * k + 1, 80)):
+        try:
+            # tol 1e-6 (relative): ample for the sign and period of the leading
+            # eigenvalue, and 16x faster than machine precision on 10,000 patches
+            values = spla.eigs(matrix, k=k, which="LR", v0=v0, ncv=min(ncv, m), tol=1e-6,
+                               maxiter=50 * m, return_eigenvectors=False)
+            return _sort_leading(values, k), "sparse"
+        except spla.ArpackError:  # ArpackNoConvergence, or a breakdown
+            continue
+    if not relaxed:
+        return None, None
+    try:
+        values = spla.eigs(matrix, k=k, which="LR", v0=v0, ncv=min(max(16 * k + 1, 160), m),
+                           tol=1e-4, maxiter=200 * m, return_eigenvectors=False)
+        return _sort_leading(values, k), "sparse, relaxed tolerance"
+    except spla.ArpackError:
+        pass
+    # Gershgorin: every eigenvalue has real part at most max_i (J_ii + Σ_j≠i |J_ij|)
+    diagonal = matrix.diagonal()
+    right = float(np.max(diagonal + np.abs(matrix).sum(axis=1) - np.abs(diagonal)))
+    sigma = right + 1e-3 * max(1.0, abs(right))
+    want = min(max(3 * k, 12), m - 2)
+    try:
+        values = spla.eigs(sp.csc_array(matrix), k=want, sigma=sigma, which="LM", v0=v0,
+                           tol=1e-8, return_eigenvectors=False)
+        return _sort_leading(values, k), "shift-invert"
+    except (spla.ArpackError, RuntimeError):  # RuntimeError: a singular LU factor
+        return None, None
 
 
 def leading_eigenvalues(system: CoupledSystem, state, *, k: int = 6,
@@ -348,15 +420,25 @@ def leading_eigenvalues(system: CoupledSystem, state, *, k: int = 6,
     ndarray of complex, shape (k,)
         Sorted by real part, largest first (a conjugate pair: positive imaginary part first).
 
+    Raises
+    ------
+    RuntimeError
+        Above ``2 n = DENSE_FALLBACK_LIMIT``, when no solver of the fallback chain converges.
+
     Notes
     -----
     "sparse" calls ``scipy.sparse.linalg.eigs(J, which="LR")`` in ARPACK's regular mode,
     which needs only products with the sparse Jacobian (O(patches + links) each). We do not
-    use shift-invert: it needs a shift near the leading eigenvalues, which is what we are
-    looking for, and a sparse LU whose fill-in on planar patch graphs grows quickly (see
+    use shift-invert first: it needs a shift near the leading eigenvalues, which is what we
+    are looking for, and a sparse LU whose fill-in on planar patch graphs grows quickly (see
     :func:`trophoscape.simulate.choose_method`). If ARPACK does not converge, it is tried
-    once more with a larger Krylov space; then, for ``2 n <= 4 DENSE_LIMIT``, a dense solve is
-    used with a ``TrophoscapeWarning``, and above that a ``RuntimeError`` is raised.
+    once more with a larger Krylov space; then, for ``2 n <= DENSE_FALLBACK_LIMIT``, the dense
+    solve gives the answer. Above that, ARPACK is tried with tolerance 1e-4, then in
+    shift-invert mode at a real shift ``σ`` to the right of every eigenvalue (Gershgorin's
+    bound on the real parts), returning the eigenvalues nearest ``σ``: the rightmost ones
+    unless an eigenvalue with a large imaginary part lies further right than a nearer
+    one, so a "shift-invert" answer is a best effort; :func:`stability_analysis` records
+    which solver answered (``eigenvalue_method``).
     """
     return _leading(system, state, k, method)[0]
 
@@ -422,7 +504,9 @@ def stability_analysis(system: CoupledSystem, *, guess=None, k: int = 6, tol: fl
         ``leading_eigenvalue_real``, ``leading_eigenvalue_imag`` (float, per time unit;
         the imaginary part non-negative), ``stability`` (one of ``STABILITY_LABELS``),
         ``oscillation_period`` (``2π / |Im λ|`` where the leading eigenvalue is complex,
-        else NaN), ``message`` (str), and per patch ``prey_equilibrium``,
+        else NaN), ``message`` (str), ``eigenvalue_method`` ("dense", "sparse",
+        "sparse, relaxed tolerance" or "shift-invert"; None without eigenvalues; see
+        :func:`leading_eigenvalues`), and per patch ``prey_equilibrium``,
         ``predator_equilibrium`` (ndarray, shape (n,), densities per km²).
         Without an interior equilibrium, ``stability`` is "no interior equilibrium" and
         the eigenvalue figures are NaN; the densities are those of the root found.
@@ -439,12 +523,13 @@ def stability_analysis(system: CoupledSystem, *, guess=None, k: int = 6, tol: fl
         "stability": "no interior equilibrium",
         "oscillation_period": np.nan,
         "message": eq.message,
+        "eigenvalue_method": None,
         "prey_equilibrium": eq.state[:n] / area,
         "predator_equilibrium": eq.state[n:] / area,
     }
     if not eq.found:
         return out
-    values = leading_eigenvalues(system, eq.state, k=k, method=eigen_method)
+    values, out["eigenvalue_method"] = _leading(system, eq.state, k, eigen_method)
     label = classify(values)
     lead = values[0]
     out["leading_eigenvalue_real"] = float(lead.real)
