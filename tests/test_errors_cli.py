@@ -128,6 +128,7 @@ class Case:
     wrong_text: str | None = None
     extra_lines: str | None = None
     accepted: str | None = None  # bad input that src/ currently accepts (exit 0)
+    argv: tuple | None = None  # the whole command line, when not `COMMAND s.toml --out out`
 
 
 _DROP = object()
@@ -150,6 +151,12 @@ def _scale_attribute(feats):
 
 
 LINKS = {"kernel": "none", "links": "l.csv"}
+# exponential prey at r = 2000 per year, no predator: the run fails (exit 1)
+EXPLOSIVE = scenario(prey={"growth": "exponential", "growth_rate": 2000.0},
+                     predator={"initial_density": 0.0})
+CANDIDATE = json.dumps({"type": "FeatureCollection", "features": [
+    {"type": "Feature", "properties": {"corridor_id": "K1", "cost": 1.0},
+     "geometry": {"type": "LineString", "coordinates": [list(middle(0)), list(middle(2))]}}]})
 CORRIDORS = {"corridors": "c.geojson"}
 POLYGON_OPTIONS = "expected a Polygon or MultiPolygon: fix the feature or remove it"
 QUALITY_RULE = "give a number of at least 0 (named by patches.quality_field)"
@@ -368,11 +375,80 @@ CASES = [
          "persists through burn-in",
          {"s.toml": scenario(predator={"initial_density": 0.0})
           + '[[shock]]\nkind = "patch_loss"\npatches = ["A1"]\n'}, command="spread"),
+    # ---------------------------------------------------------------- the output folder
+    # Checked before any run: the scenario of these cases would fail to run (exit 1), so
+    # exit 2 with the --out message shows the check came first.
+    Case("out-empty",
+         "error: field '--out': an empty name is not a folder; give the output folder a "
+         "name, e.g. --out results",
+         {"s.toml": EXPLOSIVE}, argv=("run", "s.toml", "--out", "")),
+    Case("out-input-folder",
+         "error: .: field '--out': is the folder of the input p.geojson; an output folder is "
+         "replaced as a whole, so give a new folder for the outputs, e.g. --out results",
+         {"s.toml": EXPLOSIVE}, argv=("run", "s.toml", "--out", ".")),
+    Case("out-holds-inputs",
+         "error: ..: field '--out': holds the input out-holds-inputs/p.geojson; an output "
+         "folder is replaced as a whole, so give a new folder for the outputs, e.g. --out "
+         "../results",
+         {"s.toml": EXPLOSIVE}, argv=("run", "s.toml", "--out", "..")),
+    Case("out-existing-file",
+         "error: taken.txt: field '--out': is an existing file, not a folder; give the name "
+         "of a new folder for the outputs, e.g. --out results",
+         {"s.toml": EXPLOSIVE, "taken.txt": "my notes\n"},
+         argv=("run", "s.toml", "--out", "taken.txt")),
+    Case("out-not-trophoscape",
+         "error: mine: field '--out': is a folder trophoscape did not write (it holds "
+         "notes.txt); give a new or empty folder, or add --force to replace it and "
+         "everything in it",
+         {"s.toml": EXPLOSIVE, "mine/notes.txt": "my notes\n"},
+         argv=("run", "s.toml", "--out", "mine", "--no-maps")),
+    Case("demo-out-existing-file",
+         "error: taken.txt: field '--out': is an existing file, not a folder; give the name "
+         "of a new folder for the outputs, e.g. --out results",
+         {"taken.txt": "my notes\n"}, argv=("demo", "--out", "taken.txt")),
+    Case("sweep-out-existing-file",
+         "error: taken.txt: field '--out': is an existing file, not a folder; give the name "
+         "of a new folder for the outputs, e.g. --out results",
+         {"taken.txt": "my notes\n"},
+         argv=("sweep", "s.toml", "--vary", "prey.growth_rate=0.5,1", "--out", "taken.txt")),
+    Case("sweep-out-input-folder",
+         "error: .: field '--out': is the folder of the input p.geojson; an output folder is "
+         "replaced as a whole, so give a new folder for the outputs, e.g. --out results",
+         argv=("sweep", "s.toml", "--vary", "prey.growth_rate=0.5,1", "--out", ".")),
+    Case("sweep-out-table-folder",
+         "error: tables: field '--out': is the folder of the input points.csv; an output "
+         "folder is replaced as a whole, so give a new folder for the outputs, e.g. --out "
+         "tables/results",
+         {"tables/points.csv": "prey.growth_rate\n0.5\n1.0\n"},
+         argv=("sweep", "s.toml", "--table", "tables/points.csv", "--out", "tables")),
+    Case("corridors-out-existing-file",
+         "error: taken.txt: field '--out': is an existing file, not a folder; give the name "
+         "of a new folder for the outputs, e.g. --out results",
+         {"taken.txt": "my notes\n"},
+         argv=("corridors", "s.toml", "--candidates", "c.geojson", "--budget", "1", "--out",
+               "taken.txt")),
+    Case("corridors-out-candidates-folder",
+         "error: options: field '--out': is the folder of the input c.geojson; an output "
+         "folder is replaced as a whole, so give a new folder for the outputs, e.g. --out "
+         "options/results",
+         {"options/c.geojson": CANDIDATE},
+         argv=("corridors", "s.toml", "--candidates", "options/c.geojson", "--budget", "1",
+               "--out", "options")),
+    Case("spread-out-input-folder",
+         "error: .: field '--out': is the folder of the input p.geojson; an output folder is "
+         "replaced as a whole, so give a new folder for the outputs, e.g. --out results",
+         {"s.toml": scenario() + '[[shock]]\nkind = "patch_loss"\npatches = ["A1"]\n'},
+         argv=("spread", "s.toml", "--out", ".")),
+    Case("compare-out-input-folder",
+         "error: other: field '--out': is the folder of the input b.toml; an output folder is "
+         "replaced as a whole, so give a new folder for the outputs, e.g. --out "
+         "other/results",
+         {"other/b.toml": scenario(patches={"path": "../p.geojson"})},
+         argv=("compare", "s.toml", "other/b.toml", "--out", "other")),
     # ---------------------------------------------------------------- a failed run: exit 1
     Case("explosive-growth",  # exponential prey at r = 2000 per year, no predator
          "error: the run failed: ",
-         {"s.toml": scenario(prey={"growth": "exponential", "growth_rate": 2000.0},
-                             predator={"initial_density": 0.0})}, code=1, prefix=True),
+         {"s.toml": EXPLOSIVE}, code=1, prefix=True),
 ]
 
 
@@ -396,10 +472,13 @@ def outcomes(tmp_path_factory) -> dict[str, Outcome]:
         folder.mkdir()
         files = {"s.toml": scenario(), "p.geojson": collection(features()), **case.files}
         for name, text in files.items():
+            (folder / name).parent.mkdir(parents=True, exist_ok=True)
             (folder / name).write_text(text, encoding="utf-8")
         args = [case.command, "s.toml"]
         if case.command in ("run", "spread"):
             args += ["--out", "out", "--no-maps"]
+        if case.argv is not None:
+            args = list(case.argv)
         done = run_cli(folder, *args)
         return Outcome(folder, done.returncode, done.stderr)
 
@@ -461,7 +540,7 @@ def test_messages_name_the_file_and_feature(outcomes):
             continue
         line = outcomes[case.id].stderr.splitlines()[-1]
         named = [n for n in ("s.toml", "p.geojson", "p.gpkg", "c.geojson", "l.csv",
-                             "missing.geojson", "nolinks.csv") if n in line]
+                             "missing.geojson", "nolinks.csv", "field '--out'") if n in line]
         if case.wrong_text is None:
             assert named, line
         feature = re.search(r": feature ('[^']+'|\d+): ", case.expected)

@@ -1,19 +1,24 @@
 """The command line: a thin shell over ``load_study -> run_study -> write_run``.
 
 Exit codes: 0 success; 2 bad input (one-line message naming file, feature and field);
-1 a failure of the run itself.
+1 a failure of the run itself; 130 after Ctrl-C and 143 after SIGTERM (both remove what was
+half-written).
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
+import os
+import signal
 import sys
+import threading
 import warnings
 from pathlib import Path
 
 from importlib import import_module
 
-from .errors import InputError, RunError, TrophoscapeError
+from .errors import InputError, RunError, Terminated, TrophoscapeError
 
 __all__ = ["main", "demo_scenario_path"]
 
@@ -74,8 +79,20 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+def out_options(p, help="output folder") -> None:
+    """``--out`` and ``--force``, the same for every command that writes a folder.
+
+    ``--out`` stays text here (an empty name must not become ".");
+    :func:`main` turns it into a path through :func:`trophoscape.outputs.out_argument`.
+    """
+    p.add_argument("--out", required=True, metavar="OUT", help=help)
+    p.add_argument("--force", action="store_true",
+                   help="replace OUT even when it is a folder trophoscape did not write "
+                        "(never a folder holding an input, nor the current folder)")
+
+
 def _output_options(p):
-    p.add_argument("--out", type=Path, required=True, help="output folder")
+    out_options(p)
     p.add_argument("--geojson", action="store_true", help="also write patches.geojson")
     p.add_argument("--no-maps", action="store_true", help="skip the PNG maps and the report")
     p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
@@ -110,11 +127,44 @@ def _print_summary(result, out) -> None:
           f"predator in {s['predator_regional_persistence']:.0%}")
 
 
+@contextlib.contextmanager
+def _sigterm_as_interrupt():
+    """While the command runs, SIGTERM raises :class:`Terminated` (a KeyboardInterrupt), so
+    the same clean-up runs as after Ctrl-C; the previous handler is restored afterwards."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    owner = os.getpid()
+
+    def handler(signum, frame):
+        if os.getpid() != owner:  # a forked worker process: end as SIGTERM would
+            signal.signal(signum, signal.SIG_DFL)
+            os.kill(os.getpid(), signum)
+            return
+        signal.signal(signum, signal.SIG_IGN)  # one clean-up; a second SIGTERM waits for it
+        raise Terminated()
+
+    previous = signal.signal(signal.SIGTERM, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
 def main(argv=None) -> int:
     """Entry point of the ``trophoscape`` command; returns the exit code."""
     args = _parser().parse_args(argv)
     warnings.showwarning = _show_warning
+    with _sigterm_as_interrupt():
+        return _main(args)
+
+
+def _main(args) -> int:
     try:
+        if getattr(args, "out", None) is not None:
+            from .outputs import out_argument
+
+            args.out = out_argument(args.out)
         return _dispatch(args)
     except InputError as exc:
         print(f"error: {exc}", file=sys.stderr)
@@ -128,7 +178,10 @@ def main(argv=None) -> int:
     except BrokenPipeError:  # output piped into `head` and the like
         sys.stderr.close()
         return 0
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
+        if isinstance(exc, Terminated):
+            print("terminated; no output was written", file=sys.stderr)
+            return Terminated.exit_code
         print("interrupted; no output was written", file=sys.stderr)
         return 130
 
@@ -136,7 +189,7 @@ def main(argv=None) -> int:
 def _dispatch(args) -> int:
     if getattr(args, "handler", None) is not None:
         return int(args.handler(args) or 0)
-    from .outputs import staged_folder, write_run_files
+    from .outputs import input_files, staged_folder, write_run_files
     from .study import load_study, run_study
 
     if args.command == "check":
@@ -146,8 +199,10 @@ def _dispatch(args) -> int:
     study = load_study(scenario)
     if not args.quiet:
         _print_check(study)
-    # the output folder is staged before the run, which writes timeseries.nc into it as it goes
-    with staged_folder(args.out) as stage:
+    # the output folder is checked and staged before the run, which writes timeseries.nc
+    # into it as it goes
+    with staged_folder(args.out, force=args.force, inputs=input_files(study.scenario),
+                       command=args.command) as stage:
         result = run_study(study, progress=not args.quiet, series_to=stage / "timeseries.nc")
         write_run_files(result, stage, maps=not args.no_maps, geojson=args.geojson)
     if not args.quiet:

@@ -7,7 +7,7 @@ links table); the command line prints its one-line message and exits with code 2
 
 from __future__ import annotations
 
-__all__ = ["TrophoscapeError", "InputError", "RunError", "TrophoscapeWarning",
+__all__ = ["TrophoscapeError", "InputError", "RunError", "TrophoscapeWarning", "Terminated",
            "allowed_range"]
 
 
@@ -53,6 +53,13 @@ class InputError(TrophoscapeError, ValueError):
 
 class RunError(TrophoscapeError, RuntimeError):
     """The computation failed (for example the ODE solver gave up)."""
+
+
+class Terminated(KeyboardInterrupt):
+    """The process was asked to stop (SIGTERM). Raised like Ctrl-C, so that everything
+    half-written is removed on the way out; the command line then exits with 143."""
+
+    exit_code = 143
 
 
 class TrophoscapeWarning(UserWarning):

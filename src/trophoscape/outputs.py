@@ -2,7 +2,19 @@
 
 Everything is written into a staging folder beside the target and moved into place only
 when every file is complete, so a failed run leaves no half-written output and an existing
-folder keeps its old files until the new ones are whole.
+folder keeps its old files until the new ones are whole. Then the old folder is replaced as
+a whole: it is renamed aside, the staging folder renamed into place, and the old one deleted,
+so no file of an earlier run survives beside the new ones.
+
+An output folder can never destroy the user's files (:func:`check_out`): it is never the
+folder of an input or a folder holding one, never the current folder, the home folder or
+the root, and an existing folder is replaced only when it is empty or recognisably an
+output folder of trophoscape (its marker file ``.trophoscape-output``, written into every
+output folder, lists the names trophoscape put there), unless the user asks with ``--force``.
+
+Staging folders are named ``.NAME.partial-PID-XXXXXXXX`` (the writing process's id) and are
+removed on any error, Ctrl-C or SIGTERM; one left by a killed process (SIGKILL, power loss) is
+removed by the next command writing to ``NAME`` once that process is gone.
 """
 
 from __future__ import annotations
@@ -13,8 +25,12 @@ import hashlib
 import json
 import math
 import os
+import re
+import secrets
 import shutil
+import signal
 import tempfile
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -23,7 +39,28 @@ from .errors import InputError
 from .system import SPECIES
 
 __all__ = ["staged_folder", "write_run", "write_run_files", "provenance", "file_sha256",
-           "SeriesWriter", "SERIES_BLOCK_ROWS"]
+           "SeriesWriter", "SERIES_BLOCK_ROWS", "MARKER_NAME", "out_argument", "check_out",
+           "input_files", "working_folder", "allow_names"]
+
+#: The marker file of an output folder: JSON with ``written_by``, ``version``, ``command``,
+#: ``created`` and ``files`` (the names trophoscape may keep in the folder).
+MARKER_NAME = ".trophoscape-output"
+#: Files an operating system drops into any folder; never counted as the user's.
+_SYSTEM_FILES = frozenset({".DS_Store", "Thumbs.db", "desktop.ini"})
+#: Names in output folders of versions before the marker (recognised by their provenance).
+_EARLIER_NAMES = frozenset({
+    "patches.gpkg", "patches.csv", "patches.geojson", "timeseries.nc", "summary.json",
+    "report.html", "maps", "spread.csv", "spread.json", "origins.csv", "corridors.csv",
+    "critical.csv", "chosen.csv", "corridors.json", "corridors.gpkg", "evaluations.csv",
+    "corridors.html", "corridors.partial.csv", "comparison.csv", "comparison.json", "runs",
+    "ledger.sqlite", "ledger.sqlite-wal", "ledger.sqlite-shm", "sweep.csv", "plots"})
+_EARLIER_PATTERN = re.compile(r"differences_.+\.csv")
+#: Staging (``partial``) and set-aside (``old``) folders beside an output folder.
+_SIBLING = re.compile(r"\.(?P<name>.+)\.(?P<kind>partial|old)-(?P<pid>[0-9]+)-[a-z0-9_]+")
+#: Path keys of a scenario that name input files.
+_INPUT_KEYS = ("patches.path", "dispersal.corridors", "dispersal.links")
+#: Staging folders open in this process: a folder written inside one is written directly.
+_ACTIVE: list[Path] = []
 
 
 def file_sha256(path) -> str:
@@ -63,35 +100,382 @@ def _usual_mode(path, mode: int) -> None:
     os.chmod(path, mode & ~umask)
 
 
-@contextlib.contextmanager
-def staged_folder(out):
-    """Yield a fresh staging folder; on success move its files into ``out``.
+# ------------------------------------------------------------------ where outputs may go
 
-    On an exception the staging folder is removed and ``out`` is left as it was.
+
+def input_files(scenario, variants=()) -> list[Path]:
+    """The files a scenario reads: the patch file, corridors, links, the scenario file.
+
+    ``variants`` are mappings of scenario keys to values (a sweep's points): a path key
+    among them names another input, resolved against the scenario's folder.
+    """
+    files = [Path(scenario.resolve(scenario[key])) for key in _INPUT_KEYS if scenario[key]]
+    for variant in variants:
+        for key in _INPUT_KEYS:
+            value = dict(variant).get(key)
+            if isinstance(value, str) and value:
+                files.append(Path(scenario.resolve(value)))
+    if scenario.path is not None:
+        files.append(Path(scenario.path))
+    return files
+
+
+def _out_error(out, message: str) -> InputError:
+    return InputError(message, file=out, field="--out")
+
+
+def _cannot_create(out, reason: str) -> InputError:
+    return _out_error(out, f"cannot create the output folder here ({reason}); give --out a "
+                           "folder that can be created and written to")
+
+
+def out_argument(text) -> Path:
+    """The ``--out`` value as a path, refusing an empty name and an existing file."""
+    if not str(text).strip():
+        raise InputError("an empty name is not a folder; give the output folder a name, "
+                         "e.g. --out results", field="--out")
+    path = Path(text)
+    if path.exists() and not path.is_dir():
+        raise _out_error(path, "is an existing file, not a folder; give the name of a new "
+                               "folder for the outputs, e.g. --out results")
+    return path
+
+
+def _names(folder: Path) -> list[str]:
+    return sorted(n for n in os.listdir(folder) if n not in _SYSTEM_FILES)
+
+
+def _read_marker(folder: Path) -> dict | None:
+    try:
+        info = json.loads((folder / MARKER_NAME).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(info, dict) or info.get("written_by") != "trophoscape":
+        return None
+    return info
+
+
+def _says_trophoscape(path: Path) -> bool:
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    if not isinstance(data, dict):
+        return False
+    if path.name == "comparison.json":
+        return {"reference", "scenarios", "caution"} <= set(data)
+    prov = data.get("provenance")
+    return isinstance(prov, dict) and prov.get("package") == "trophoscape"
+
+
+def _ownership(folder: Path) -> tuple[str, list[str]]:
+    """``("empty" | "ours" | "mixed" | "foreign", names trophoscape did not write)``.
+
+    "ours": the marker lists every name in the folder, or (a folder of an earlier version,
+    without the marker) the folder holds only names trophoscape writes and a JSON file with
+    trophoscape's provenance or a sweep ledger; "mixed": marked, with other files too.
+    """
+    names = _names(folder)
+    if not names:
+        return "empty", []
+    marker = _read_marker(folder)
+    if marker is not None:
+        allowed = set(marker.get("files") or ()) | {MARKER_NAME}
+        extra = [n for n in names if n not in allowed]
+        return ("mixed" if extra else "ours"), extra
+    known = all(n in _EARLIER_NAMES or _EARLIER_PATTERN.fullmatch(n) for n in names)
+    evidence = (any(_says_trophoscape(folder / n) for n in
+                    ("summary.json", "spread.json", "corridors.json", "comparison.json"))
+                or (folder / "ledger.sqlite").is_file())
+    if known and evidence:
+        return "ours", []
+    return "foreign", names
+
+
+def _some(names: list[str]) -> str:
+    shown = ", ".join(names[:3])
+    return shown + (f" and {len(names) - 3} more" if len(names) > 3 else "")
+
+
+def _suggestion(out: Path) -> str:
+    return str(out / "results")
+
+
+def _is_within(inner: Path, outer: Path) -> bool:
+    return inner == outer or outer in inner.parents
+
+
+def check_out(out, *, inputs=(), force: bool = False) -> Path:
+    """Check that ``out`` may become an output folder; return its resolved path.
+
+    Raises
+    ------
+    InputError
+        Naming ``--out``: an empty name; an existing file; a folder that is or holds an
+        input file, the current folder, the home folder or the root; a parent that cannot
+        be written to; an existing folder trophoscape did not write (without ``force``).
+    """
+    out = out_argument(out)
+    real = out.resolve()
+    if real == Path(real.anchor):
+        raise _out_error(out, "is the root of the file system; give a new folder for the "
+                              "outputs, e.g. --out results")
+    with contextlib.suppress(RuntimeError, KeyError, OSError):
+        home = Path.home().resolve()
+        if _is_within(home, real):
+            what = "is your home folder" if home == real else "holds your home folder"
+            raise _out_error(out, f"{what}; give a new folder for the outputs, e.g. --out "
+                                  f"{_suggestion(out)}")
+    for item in inputs:
+        if item is None:
+            continue
+        item = Path(item).resolve()
+        if item != real and _is_within(item, real):
+            what = (f"is the folder of the input {item.name}" if item.parent == real else
+                    f"holds the input {item.relative_to(real)}")
+            raise _out_error(out, f"{what}; an output folder is replaced as a whole, so give "
+                                  f"a new folder for the outputs, e.g. --out "
+                                  f"{_suggestion(out)}")
+    with contextlib.suppress(OSError):
+        cwd = Path.cwd().resolve()
+        if _is_within(cwd, real):
+            what = "is the current folder" if cwd == real else "holds the current folder"
+            raise _out_error(out, f"{what}; an output folder is replaced as a whole, so give "
+                                  f"a new folder for the outputs, e.g. --out "
+                                  f"{_suggestion(out)}")
+    if real.is_dir() and os.path.ismount(real):
+        raise _out_error(out, f"is a mount point, which cannot be replaced; give a new folder "
+                              f"inside it, e.g. --out {_suggestion(out)}")
+    # the staging folder is made beside the output: its parent must be a writable folder
+    probe = real.parent
+    while not os.path.lexists(probe) and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise _cannot_create(out, "file exists")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise _cannot_create(out, "permission denied")
+    if real.is_dir() and not force:
+        try:
+            state, extra = _ownership(real)
+        except OSError as exc:
+            raise _cannot_create(out, (exc.strerror or str(exc)).lower()) from None
+        if state == "foreign":
+            raise _out_error(out, f"is a folder trophoscape did not write (it holds "
+                                  f"{_some(extra)}); give a new or empty folder, or add "
+                                  "--force to replace it and everything in it")
+        if state == "mixed":
+            raise _out_error(out, f"holds {_some(extra)}, which trophoscape did not write; "
+                                  "move that elsewhere or give another folder, or add --force "
+                                  "to replace the folder and everything in it")
+    _clean_stale(real)
+    return real
+
+
+# ------------------------------------------------------------------ staging and swapping
+
+
+def _alive(pid: int) -> bool:
+    """Whether process ``pid`` may still be running (when unsure: yes)."""
+    if pid == os.getpid():
+        return True
+    if os.name != "posix":  # os.kill would end the process there; never guess
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # PermissionError: someone else's live process
+        return True
+    return True
+
+
+def _clean_stale(real: Path) -> None:
+    """Remove staging folders beside ``real`` left by processes that are gone; put back an
+    old folder set aside by such a process when its replacement never arrived."""
+    try:
+        siblings = list(os.scandir(real.parent))
+    except OSError:
+        return
+    for entry in siblings:
+        m = _SIBLING.fullmatch(entry.name)
+        if m is None or m["name"] != real.name or _alive(int(m["pid"])):
+            continue
+        with contextlib.suppress(OSError):
+            if not entry.is_dir(follow_symlinks=False):
+                continue
+            if m["kind"] == "old" and not os.path.lexists(real):
+                os.rename(entry.path, real)
+            else:
+                shutil.rmtree(entry.path, ignore_errors=True)
+
+
+@contextlib.contextmanager
+def _signals_held():
+    """Hold Ctrl-C and SIGTERM back for the few renames that put a folder in place."""
+    if (hasattr(signal, "pthread_sigmask")
+            and threading.current_thread() is threading.main_thread()):
+        before = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT, signal.SIGTERM})
+        try:
+            yield
+        finally:
+            signal.pthread_sigmask(signal.SIG_SETMASK, before)
+    else:
+        yield
+
+
+def _write_marker(folder: Path, command: str | None, names) -> None:
+    from . import __version__
+
+    info = {"written_by": "trophoscape", "version": __version__, "command": command,
+            "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+            "files": sorted(set(names) - {MARKER_NAME})}
+    path = folder / MARKER_NAME
+    path.write_text(json.dumps(info, indent=2) + "\n", encoding="utf-8")
+
+
+def allow_names(folder, names) -> None:
+    """Add ``names`` to those the marker of output folder ``folder`` allows (a command that
+    keeps a working file in an existing output folder, such as ``corridors`` its log)."""
+    folder = Path(folder)
+    info = _read_marker(folder)
+    if info is None:  # a folder of an earlier version: what it holds now is trophoscape's
+        info = {"files": _names(folder)}
+    _write_marker(folder, info.get("command"), [*(info.get("files") or ()), *names])
+
+
+def _set_aside(real: Path) -> Path:
+    aside = real.parent / f".{real.name}.old-{os.getpid()}-{secrets.token_hex(4)}"
+    os.rename(real, aside)
+    return aside
+
+
+def _link_or_copy(src, dst):
+    try:
+        os.link(src, dst)
+    except OSError:
+        shutil.copy2(src, dst)
+    return dst
+
+
+def _carry(real: Path, staging: Path, keep) -> None:
+    """Hard links (or copies) of the entries ``keep`` of the current folder in the new one."""
+    for name in keep:
+        src, dst = real / name, staging / name
+        if not os.path.lexists(src) or os.path.lexists(dst):
+            continue
+        if src.is_dir():
+            shutil.copytree(src, dst, copy_function=_link_or_copy)
+        else:
+            _link_or_copy(src, dst)
+
+
+def _replace(staging: Path, real: Path, out, force: bool) -> None:
+    """Put ``staging`` in the place of ``real``: the old folder renamed aside, the new one
+    renamed in, the old one deleted."""
+    aside = None
+    with _signals_held():
+        if os.path.lexists(real):
+            state, extra = _ownership(real)
+            if state in ("foreign", "mixed") and not force:  # the user added files meanwhile
+                raise _out_error(out, f"holds {_some(extra)}, which trophoscape did not "
+                                      "write; move that elsewhere or give another folder, or "
+                                      "add --force to replace the folder and everything in it")
+            aside = _set_aside(real)
+        try:
+            os.rename(staging, real)
+        except BaseException:
+            if aside is not None:
+                os.rename(aside, real)
+            raise
+    if aside is not None:
+        shutil.rmtree(aside, ignore_errors=True)
+
+
+def _inside_stage(path: Path) -> bool:
+    absolute = Path(os.path.abspath(path))
+    return any(_is_within(absolute, stage) for stage in _ACTIVE)
+
+
+@contextlib.contextmanager
+def staged_folder(out, *, force: bool = False, inputs=(), command: str | None = None,
+                  keep=(), allow=()):
+    """Yield a fresh staging folder; on success it replaces ``out`` as a whole.
+
+    ``out`` is checked first (:func:`check_out`, with ``inputs`` and ``force``). On an
+    exception (Ctrl-C and SIGTERM included) the staging folder is removed and ``out`` is
+    left as it was. On success the marker is written into the staging folder, the entries
+    ``keep`` of the current ``out`` are carried into it (hard links; a sweep's ledger), and
+    it takes the place of ``out``. ``allow`` are names the folder may come to hold later.
+
+    A folder written inside a staging folder that is open (a command's run folder within
+    its own output) is written directly, without a staging folder of its own.
     """
     out = Path(out)
+    if _inside_stage(out):
+        out.mkdir(parents=True, exist_ok=True)
+        yield out
+        return
+    real = check_out(out, inputs=inputs, force=force)
     try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+        real.parent.mkdir(parents=True, exist_ok=True)
+        staging = Path(tempfile.mkdtemp(prefix=f".{real.name}.partial-{os.getpid()}-",
+                                        dir=real.parent))
     except OSError as exc:  # a file in the way, no permission, a read-only disk
-        raise InputError(f"cannot create the output folder here ({exc.strerror.lower()}); give "
-                         "--out a folder that can be created and written to",
-                         file=out, field="--out") from None
-    _usual_mode(staging, 0o777)
+        raise _cannot_create(out, (exc.strerror or str(exc)).lower()) from None
+    _ACTIVE.append(staging)
     try:
+        _usual_mode(staging, 0o777)
         yield staging
+        _ACTIVE.remove(staging)
+        _carry(real, staging, keep)
+        _write_marker(staging, command, [*os.listdir(staging), *allow])
+        try:
+            _replace(staging, real, out, force)
+        except OSError as exc:  # the old folder is busy, or its parent became read-only
+            reason = (exc.strerror or str(exc)).lower()
+            raise _out_error(out, f"cannot replace the folder ({reason}); close what uses "
+                                  "it, or give --out a new folder") from None
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
         raise
-    if not out.exists():
-        os.rename(staging, out)
-        return
-    for src in sorted(staging.rglob("*")):
-        if src.is_file():
-            dst = out / src.relative_to(staging)
-            dst.parent.mkdir(parents=True, exist_ok=True)
-            os.replace(src, dst)
-    shutil.rmtree(staging, ignore_errors=True)
+    finally:
+        if staging in _ACTIVE:
+            _ACTIVE.remove(staging)
+
+
+def working_folder(out, *, command: str, names, inputs=(), force: bool = False,
+                   reuse: bool = False) -> Path:
+    """An output folder a resumable command fills as it goes (a sweep and its ledger).
+
+    After :func:`check_out`, the folder is kept as it is when ``reuse`` is set and it is
+    trophoscape's; otherwise an existing folder is replaced as a whole by a new one holding
+    only the marker (allowing ``names``). Returns the resolved path.
+    """
+    real = check_out(out, inputs=inputs, force=force)
+    try:
+        if reuse and real.is_dir() and _ownership(real)[0] in ("ours", "mixed"):
+            allow_names(real, names)
+            return real
+        aside = None
+        with _signals_held():  # the new folder exists before the old one is deleted
+            if os.path.lexists(real):
+                aside = _set_aside(real)
+            made = False
+            try:
+                real.mkdir(parents=True)
+                made = True
+                _write_marker(real, command, names)
+            except BaseException:
+                if made:
+                    shutil.rmtree(real, ignore_errors=True)
+                if aside is not None:
+                    os.rename(aside, real)
+                raise
+        if aside is not None:
+            shutil.rmtree(aside, ignore_errors=True)
+    except OSError as exc:
+        raise _cannot_create(out, (exc.strerror or str(exc)).lower()) from None
+    return real
 
 
 def _json_ready(obj):
@@ -285,22 +669,26 @@ def write_timeseries(path, result):
         writer.write(0, [data[s].values for s in SPECIES])
 
 
-def write_run(result, out, *, maps: bool = True, geojson: bool = False) -> Path:
+def write_run(result, out, *, maps: bool = True, geojson: bool = False,
+              force: bool = False) -> Path:
     """Write the whole output folder of a run, atomically.
 
     Parameters
     ----------
     result : RunResult
     out : path
-        The output folder (created if needed; files already there are replaced one by one
-        only once every new file is complete).
+        The output folder (created if needed; an earlier output folder there is replaced as
+        a whole once every new file is complete; see :func:`check_out` for what is refused).
     maps : bool
         Draw PNG maps and the HTML report.
     geojson : bool
         Also write ``patches.geojson`` (WGS 84, as RFC 7946 wants).
+    force : bool
+        Replace an existing folder even when trophoscape did not write it.
     """
     out = Path(out)
-    with staged_folder(out) as stage:
+    with staged_folder(out, force=force, inputs=input_files(result.study.scenario),
+                       command="write_run") as stage:
         write_run_files(result, stage, maps=maps, geojson=geojson)
     return out
 

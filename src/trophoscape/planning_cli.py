@@ -3,11 +3,13 @@
 ``trophoscape corridors SCENARIO.toml --candidates FILE --budget X --out DIR`` ranks candidate
 corridors and picks a set within the budget; ``trophoscape compare A.toml B.toml ... --out DIR``
 runs several scenarios and sets their results side by side. Both are thin shells over
-:mod:`trophoscape.analysis.planning`; the output folder is written through
+:mod:`trophoscape.analysis.planning`; the output folder is checked before any run
+(:func:`trophoscape.outputs.check_out`) and written through
 :func:`trophoscape.outputs.staged_folder`, so it appears whole or not at all. While the
 corridor runs go on, each finished run is appended to ``corridors.partial.csv`` in the
-output folder: an interrupted ranking keeps what it had, and running the same command again
-reads those rows back instead of running them again.
+output folder (created with its marker before the runs; an earlier output folder there is
+kept until the new one is whole): an interrupted ranking keeps what it had, and running the
+same command again reads those rows back instead of running them again.
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ from __future__ import annotations
 import argparse
 import html
 import math
+import os
 import re
 import shutil
 import time
@@ -46,6 +49,8 @@ def add_parser(subparsers) -> None:
     """Register the ``corridors`` and ``compare`` commands."""
     from .analysis.planning import DEFAULT_WEIGHTS, EXHAUSTIVE_LIMIT, OBJECTIVES
 
+    from .cli import out_options
+
     fmt = argparse.RawDescriptionHelpFormatter
     names = ", ".join(OBJECTIVES)
     default = ",".join(f"{k}={v:g}" for k, v in DEFAULT_WEIGHTS.items())
@@ -65,7 +70,7 @@ def add_parser(subparsers) -> None:
     p.add_argument("--layer", default=None, help="layer of the candidates file")
     p.add_argument("--budget", type=float, required=True,
                    help="total cost the chosen set may reach (same unit as 'cost')")
-    p.add_argument("--out", type=Path, required=True, help="output folder")
+    out_options(p)
     p.add_argument("--weights", default=None,
                    help=f"objective weights NAME=W,...; names: {names} (default {default})")
     p.add_argument("--remove-links", default="all", metavar="all|none|FILE",
@@ -92,7 +97,7 @@ def add_parser(subparsers) -> None:
                     "patches shared by id, and each scenario's own output folder.",
         epilog=EPILOG_COMPARE, formatter_class=fmt)
     c.add_argument("scenarios", type=Path, nargs="+", help="scenario files (TOML), two or more")
-    c.add_argument("--out", type=Path, required=True, help="output folder")
+    out_options(c)
     c.add_argument("--columns", default="predator_occupancy,prey_occupancy",
                    help="per-patch columns to difference (default "
                         "predator_occupancy,prey_occupancy)")
@@ -162,6 +167,7 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
 def run_corridors(args) -> int:
     """The ``corridors`` command; returns the exit code."""
     from .analysis.planning import parse_weights, read_candidates
+    from .outputs import MARKER_NAME, input_files, working_folder
     from .study import load_study
 
     if not math.isfinite(args.budget) or args.budget < 0:
@@ -182,22 +188,33 @@ def run_corridors(args) -> int:
     study = load_study(args.scenario)
     candidates = read_candidates(args.candidates, study.landscape, layer=args.layer,
                                  snap_km=study.scenario["dispersal.corridor_snap_km"])
+    inputs = [*input_files(study.scenario), args.candidates]
     if args.remove_links == "all":
         links = "all"
     elif args.remove_links == "none":
         links = None
     else:
         links = read_link_list(args.remove_links, study)
-    # everything is validated: only now does the output folder appear (for the partial log)
-    args.out.mkdir(parents=True, exist_ok=True)
+        inputs.append(args.remove_links)
+    # everything is validated: only now does the output folder appear (for the partial log);
+    # an earlier output folder there stays until the new one is whole
+    force = getattr(args, "force", False)
+    real = working_folder(args.out, command="corridors", names=[PARTIAL], inputs=inputs,
+                          force=force, reuse=True)
     started = time.perf_counter()
-    plan = plan_corridors(study, candidates, budget=args.budget, weights=weights,
-                          links=links, patches=args.remove_patches == "all",
-                          screen=args.screen, exhaustive_limit=args.exhaustive_limit,
-                          workers=args.workers, progress=not args.quiet,
-                          log=args.out / PARTIAL)
-    plan["timing"]["total_seconds"] = time.perf_counter() - started
-    write_corridors(plan, args.out, maps=not args.no_maps)
+    try:
+        plan = plan_corridors(study, candidates, budget=args.budget, weights=weights,
+                              links=links, patches=args.remove_patches == "all",
+                              screen=args.screen, exhaustive_limit=args.exhaustive_limit,
+                              workers=args.workers, progress=not args.quiet,
+                              log=args.out / PARTIAL)
+        plan["timing"]["total_seconds"] = time.perf_counter() - started
+        write_corridors(plan, args.out, maps=not args.no_maps, force=force, inputs=inputs)
+    except BaseException:
+        # a folder made for the log that got no row is not an output: remove it
+        if real.is_dir() and os.listdir(real) == [MARKER_NAME]:
+            shutil.rmtree(real, ignore_errors=True)
+        raise
     if not args.quiet:
         _print_plan(plan, args.out)
     return 0
@@ -271,7 +288,8 @@ def _set_json(result, ids):
     return out
 
 
-def write_corridors(plan, out, *, maps: bool = True, baseline=None) -> Path:
+def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool = False,
+                    inputs=None) -> Path:
     """Write the ``corridors`` output folder (atomically; the partial log is then removed).
 
     Files: ``corridors.csv``, ``critical.csv``, ``chosen.csv``, ``corridors.json``,
@@ -286,16 +304,23 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None) -> Path:
     baseline : RunResult, optional
         The run of the network as it is, for ``report.html``; run here when not given (the
         planner's own baseline run skips the stability and capacity analyses).
+    force : bool
+        Replace ``out`` even when it is a folder trophoscape did not write.
+    inputs : list of path, optional
+        The input files, which ``out`` must not hold (default: the scenario's and the
+        candidates file).
     """
     import geopandas
 
     from .analysis.planning import DEFAULT_WEIGHTS, OBJECTIVES
-    from .outputs import file_sha256, provenance, staged_folder, write_json
+    from .outputs import file_sha256, input_files, provenance, staged_folder, write_json
 
     out = Path(out)
     planner = plan["planner"]
     study = planner.study
     cand = planner.candidates
+    if inputs is None:
+        inputs = [*input_files(study.scenario), cand.path]
     table = plan["table"]
     ordered = ["source", "target", "length_km", "cost", *[f"gain_{k}" for k in OBJECTIVES],
                "score", "score_per_cost", "rank", "chosen", "in_greedy_set"]
@@ -349,7 +374,8 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None) -> Path:
             frame[c] = table.loc[frame["corridor_id"], c].to_numpy()
     land = study.landscape
     links_frame = study.network.links_frame(land)
-    with staged_folder(out) as stage:
+    with staged_folder(out, force=force, inputs=inputs, command="corridors",
+                       allow=(PARTIAL,)) as stage:
         table.to_csv(stage / "corridors.csv", index=True)
         critical.to_csv(stage / "critical.csv", index=False)
         chosen.to_csv(stage / "chosen.csv", index=False)
@@ -531,6 +557,7 @@ def _slug(text: str) -> str:
 
 def run_compare(args) -> int:
     """The ``compare`` command; returns the exit code."""
+    from .outputs import check_out, input_files
     from .study import load_study, run_study
 
     if len(args.scenarios) < 2:
@@ -539,20 +566,23 @@ def run_compare(args) -> int:
                          field="scenarios")
     columns = [c.strip() for c in args.columns.split(",") if c.strip()]
     studies = [load_study(p) for p in args.scenarios]
+    inputs = [f for study in studies for f in input_files(study.scenario)]
+    force = getattr(args, "force", False)
+    check_out(args.out, inputs=inputs, force=force)  # before the runs
     results = []
     for k, study in enumerate(studies):
         if not args.quiet:
             print(f"running {k + 1}/{len(studies)}: {study.scenario.name}")
         results.append(run_study(study, progress=not args.quiet))
     write_comparison(results, args.out, columns=columns, maps=not args.no_maps,
-                     runs=not args.no_runs)
+                     runs=not args.no_runs, force=force)
     if not args.quiet:
         print(f"wrote {args.out}")
     return 0
 
 
 def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occupancy"),
-                     maps: bool = True, runs: bool = True) -> Path:
+                     maps: bool = True, runs: bool = True, force: bool = False) -> Path:
     """Write the ``compare`` output folder (atomically).
 
     Files: ``comparison.csv`` (one row per scenario), ``differences_<B>_minus_<A>.csv`` per
@@ -560,9 +590,10 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
     (diverging colours centred on 0), ``report.html`` (the scenarios in plain words, the
     headline results side by side, the difference maps; with ``maps``), and ``runs/<name>/``
     (each scenario's own output folder, with its maps and report) unless ``runs`` is False.
+    ``force`` replaces ``out`` even when it is a folder trophoscape did not write.
     """
     from .analysis.planning import compare_results, patch_differences
-    from .outputs import staged_folder, write_run, write_json
+    from .outputs import input_files, staged_folder, write_json, write_run
 
     table = compare_results(results)
     slugs = []
@@ -573,7 +604,8 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
         slugs.append(s)
     diffs = [patch_differences(results[0], r, columns) for r in results[1:]]
     drawn = []
-    with staged_folder(out) as stage:
+    inputs = [f for r in results for f in input_files(r.study.scenario)]
+    with staged_folder(out, force=force, inputs=inputs, command="compare") as stage:
         table.to_csv(stage / "comparison.csv", index=True)
         write_json(stage / "comparison.json", {
             "reference": table.index[0], "scenarios": list(table.index),

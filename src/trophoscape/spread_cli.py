@@ -39,8 +39,10 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
                     "state after burn-in; write arrival times of collapse, distances, the "
                     "front speed and maps. With --origins, shock each origin in turn.",
         epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    from .cli import out_options
+
     p.add_argument("scenario", type=Path, help="scenario file (TOML) with [[shock]] tables")
-    p.add_argument("--out", type=Path, required=True, help="output folder")
+    out_options(p)
     p.add_argument("--origins", metavar="N|all", default=None,
                    help="also scan origins: a spatially stratified sample of N patches, or "
                         "'all'; the scenario's shocks are aimed at each in turn")
@@ -71,10 +73,13 @@ def _origin_count(text):
 def run_command(args) -> int:
     """Handler of ``trophoscape spread``; returns the exit code."""
     from .analysis.spread import origin_scan, run_spread, stratified_origins
+    from .outputs import check_out, input_files
     from .study import load_study
 
     count = _origin_count(args.origins)
     study = load_study(args.scenario)
+    force = getattr(args, "force", False)
+    check_out(args.out, inputs=input_files(study.scenario), force=force)  # before the runs
     result = run_spread(study, progress=not args.quiet)
     scan = None
     if count is not None:
@@ -83,7 +88,7 @@ def run_command(args) -> int:
                                       seed=study.scenario["run.seed"]))
         scan = origin_scan(study, origins, workers=args.workers, progress=not args.quiet)
     write_spread(study, result, args.out, scan=scan, maps=not args.no_maps,
-                 geojson=args.geojson)
+                 geojson=args.geojson, force=force)
     if not args.quiet:
         s = result.summary
         speed = s["front_speed_km_per_time"]
@@ -94,7 +99,8 @@ def run_command(args) -> int:
     return 0
 
 
-def write_spread(study, result, out, *, scan=None, maps=True, geojson=False) -> Path:
+def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
+                 force=False) -> Path:
     """Write the spread outputs (and the shocked run's folder) into ``out``, atomically.
 
     Parameters
@@ -104,8 +110,10 @@ def write_spread(study, result, out, *, scan=None, maps=True, geojson=False) -> 
     out : path
     scan : pandas.DataFrame, optional
         From :func:`trophoscape.analysis.spread.origin_scan`.
+    force : bool
+        Replace ``out`` even when it is a folder trophoscape did not write.
     """
-    from .outputs import provenance, staged_folder, write_json, write_run
+    from .outputs import input_files, provenance, staged_folder, write_json, write_run
     from .study import RunResult, analyse
 
     out = Path(out)
@@ -119,7 +127,8 @@ def write_spread(study, result, out, *, scan=None, maps=True, geojson=False) -> 
     spread_summary["time_unit"] = study.scenario["time_unit"]
     spread_summary["shocks"] = [dict(t) for t in study.scenario["shock"]]
     spread_summary["provenance"] = provenance(study)
-    with staged_folder(out) as stage:
+    with staged_folder(out, force=force, inputs=input_files(study.scenario),
+                       command="spread") as stage:
         write_run(run, stage, maps=maps, geojson=geojson)
         result.table[SPREAD_COLUMNS].to_csv(stage / "spread.csv", index=True)
         write_json(stage / "spread.json", spread_summary)

@@ -13,6 +13,13 @@ and never records a run twice. The table ``sweep.csv`` is regenerated from the l
 sweep ends; ``runs/<run_id>.json`` holds each run's results; ``plots/`` shows each key result
 against each varied value.
 
+The output folder is checked before anything runs (:func:`trophoscape.outputs.check_out`)
+and made with its marker when the sweep starts, because the ledger lives there from the
+first run on (an earlier output folder there is replaced then; a sweep's own folder is kept
+with ``resume``). The table and plots are written through
+:func:`trophoscape.outputs.staged_folder`, which carries the ledger and ``runs/`` over (hard
+links) and replaces the folder as a whole, so they appear whole or not at all.
+
 Replicates of a point get seeds from ``numpy.random.SeedSequence(seed).spawn(replicates)``,
 where ``seed`` is the point's ``run.seed``; so replicate r has the same seed at every point
 (common random numbers across points, common practice in simulation experiments) and adding
@@ -45,6 +52,11 @@ __all__ = ["sweep", "parse_vary", "read_sweep_table", "plan_sweep", "run_point",
 
 LEDGER_NAME = "ledger.sqlite"
 TABLE_NAME = "sweep.csv"
+#: What a sweep keeps from one session to the next: the ledger (with SQLite's WAL files)
+#: and the per-run records.
+WORKING_NAMES = (LEDGER_NAME, f"{LEDGER_NAME}-wal", f"{LEDGER_NAME}-shm", "runs")
+#: Every name a sweep's folder may hold.
+SWEEP_NAMES = (*WORKING_NAMES, TABLE_NAME, "plots")
 #: Network-level results drawn against every varied value.
 KEY_RESULTS = ("prey_regional_persistence", "predator_regional_persistence",
                "prey_synchrony", "predator_synchrony")
@@ -673,6 +685,20 @@ def _write_plots(frame, keys: Sequence[str], out: Path) -> list[Path]:
 
 
 # ------------------------------------------------------------------------------ the sweep
+def _table_files(spec, table) -> list[Path]:
+    """The sweep tables among the sweep's inputs (as :func:`_as_points` finds them)."""
+    files = [] if table is None else [Path(table)]
+    if isinstance(spec, (str, os.PathLike)):
+        spec = [spec]
+    if spec is None or isinstance(spec, Mapping):
+        return files
+    for s in spec:
+        if isinstance(s, os.PathLike) or (isinstance(s, str) and s.endswith(".csv")
+                                          and "=" not in s):
+            files.append(Path(s))
+    return files
+
+
 def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
 
@@ -680,7 +706,8 @@ def _now() -> str:
 def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 1,
           workers: int | None = None, scheduler: str | None = None,
           dask_local: int | None = None, resume: bool = False, table=None,
-          plots: bool = True, progress: bool = False, retries: int = 2):
+          plots: bool = True, progress: bool = False, retries: int = 2,
+          force: bool = False):
     """Run a parameter sweep of a scenario, recording every run as it finishes.
 
     Parameters
@@ -693,7 +720,9 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
         ``{"prey.growth_rate": [0.5, 1.0]}``, or explicit points
         ``[{"prey.growth_rate": 0.5}, ...]``. Groups combine as a Cartesian product.
     out : path
-        Output folder: ``ledger.sqlite``, ``sweep.csv``, ``runs/``, ``plots/``.
+        Output folder: ``ledger.sqlite``, ``sweep.csv``, ``runs/``, ``plots/``. It may not
+        be or hold an input, and an existing folder trophoscape did not write needs
+        ``force`` (:func:`trophoscape.outputs.check_out`).
     replicates : int
         Runs per point, seeds from ``SeedSequence(run.seed).spawn(replicates)``.
     workers : int, optional
@@ -713,6 +742,9 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
         A progress bar on stderr.
     retries : int
         Re-runs of a run whose worker was lost.
+    force : bool
+        Replace ``out`` even when it is a folder trophoscape did not write, or an earlier
+        sweep's folder without ``resume``.
 
     Returns
     -------
@@ -722,22 +754,29 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
     Raises
     ------
     InputError
-        For a bad scenario, key, value or table, or an existing ledger without ``resume``.
+        For a bad scenario, key, value or table, a bad ``out`` (see
+        :func:`trophoscape.outputs.check_out`), or an existing ledger without ``resume``.
     RunError
         When every run failed (the table and ledger are still written).
     KeyboardInterrupt
         After Ctrl-C; the ledger keeps every run finished so far.
     """
+    from .outputs import check_out, input_files, staged_folder, working_folder
     from .parallel import run_tasks
 
     keys, runs, scenario = plan_sweep(scenario_path, variants_or_vary_specs,
                                       replicates=replicates, table=table)
+    inputs = [*input_files(scenario, [r.values for r in runs]),
+              *_table_files(variants_or_vary_specs, table)]
+    check_out(out, inputs=inputs, force=force)
     out = Path(out)
     ledger_path = out / LEDGER_NAME
-    if ledger_path.exists() and not resume:
+    if ledger_path.exists() and not resume and not force:
         raise InputError("a sweep ledger is already here; add --resume to continue that "
                          "sweep, or give another --out folder", file=ledger_path)
-    out.mkdir(parents=True, exist_ok=True)
+    # the ledger lives in the output folder from the first run on
+    working_folder(out, command="sweep", names=SWEEP_NAMES, inputs=inputs, force=force,
+                   reuse=resume and ledger_path.exists())
     (out / "runs").mkdir(exist_ok=True)
     for stale in (out / "runs").glob(".*.tmp"):
         stale.unlink(missing_ok=True)  # left by a process killed while renaming
@@ -786,10 +825,13 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
         ledger.close()
     import pandas as pd
 
-    # The table as written (what a reader of sweep.csv gets: NaN for missing values).
-    frame = pd.read_csv(_write_table(frame, out))
-    if plots:
-        _write_plots(frame, keys, out)
+    # The table and plots, staged; the ledger and runs/ are carried into the new folder.
+    with staged_folder(out, force=force, inputs=inputs, command="sweep", keep=WORKING_NAMES,
+                       allow=SWEEP_NAMES) as stage:
+        # the table as written (what a reader of sweep.csv gets: NaN for missing values)
+        frame = pd.read_csv(_write_table(frame, stage))
+        if plots:
+            _write_plots(frame, keys, stage)
     planned = {r.run_id for r in runs}
     mine = frame[frame["run_id"].isin(planned)]
     if len(mine) and (mine["status"] != "ok").all():

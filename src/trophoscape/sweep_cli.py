@@ -20,8 +20,9 @@ EPILOG = """examples:
 VALUES is START:STOP:COUNT (COUNT evenly spaced numbers, both ends included) or a comma
 list of numbers or words. Several --vary give every combination of their values.
 Exit codes: 0 when at least one run succeeded (failed runs are listed in sweep.csv with
-their error), 1 when every run failed, 2 for bad input, 130 after Ctrl-C (finished runs
-are kept; continue with --resume)."""
+their error), 1 when every run failed, 2 for bad input, 130 after Ctrl-C and 143 after
+SIGTERM (finished runs are kept; continue with --resume). OUT is made when the sweep starts
+and holds the ledger from then on; sweep.csv and plots/ appear whole when it ends."""
 
 
 def _positive_int(text: str) -> int:
@@ -36,6 +37,8 @@ def _positive_int(text: str) -> int:
 
 def add_parser(subparsers) -> argparse.ArgumentParser:
     """Register ``sweep`` with the command line's subparsers."""
+    from .cli import out_options
+
     p = subparsers.add_parser(
         "sweep", help="run a scenario over a grid or table of parameter values",
         description="Run a scenario for every combination of the varied values (and every "
@@ -49,7 +52,7 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
                    help="sweep table: one column per scenario key, one row per point")
     p.add_argument("--replicates", type=_positive_int, default=1, metavar="R",
                    help="runs per point (default 1)")
-    p.add_argument("--out", type=Path, required=True, help="output folder of the sweep")
+    out_options(p, help="output folder of the sweep")
     where = p.add_mutually_exclusive_group()
     where.add_argument("--workers", type=_positive_int, metavar="N",
                        help="local processes (default: all cores)")
@@ -67,7 +70,7 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 
 def handle(args) -> int:
     """Run the sweep; return the exit code (InputError / RunError go up to ``cli.main``)."""
-    from .errors import InputError
+    from .errors import InputError, Terminated
     from .sweep import LEDGER_NAME, TABLE_NAME, sweep
 
     if not args.vary and args.table is None:
@@ -77,11 +80,15 @@ def handle(args) -> int:
         frame = sweep(args.scenario, args.vary, out=args.out, replicates=args.replicates,
                       workers=args.workers, scheduler=args.scheduler,
                       dask_local=args.dask_local, resume=args.resume, table=args.table,
-                      plots=not args.no_plots, progress=not args.quiet)
-    except KeyboardInterrupt:
-        print(f"interrupted; the finished runs are kept in {args.out / LEDGER_NAME}; run the "
+                      plots=not args.no_plots, progress=not args.quiet,
+                      force=getattr(args, "force", False))
+    except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (errors.Terminated)
+        if not (args.out / LEDGER_NAME).exists():  # stopped before the first run began
+            raise
+        stopped = "terminated" if isinstance(exc, Terminated) else "interrupted"
+        print(f"{stopped}; the finished runs are kept in {args.out / LEDGER_NAME}; run the "
               "same command with --resume to finish the sweep", file=sys.stderr)
-        return 130
+        return getattr(exc, "exit_code", 130)
     failed = frame[frame["status"] != "ok"]
     if not args.quiet:
         print(f"wrote {args.out / TABLE_NAME}: {len(frame)} run(s), {len(frame) - len(failed)} "
