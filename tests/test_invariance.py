@@ -153,6 +153,41 @@ def test_a_population_falling_through_the_threshold_is_removed_where_it_crosses(
         assert run.stats.removed_individuals[1] == pytest.approx(theta, rel=1e-6)
 
 
+def test_a_removal_matches_scipys_terminal_event_and_restart():
+    # Reference: scipy's solve_ivp with a terminal event where patch 0's predators fall to
+    # the threshold, restarted from that state with patch 0 emptied (scipy's documented event
+    # location). Patch 0 sends predators to patch 1 and receives some back, so the removal's
+    # timing shows in both patches afterwards: what patch 1 received, and the immigrants
+    # gathering again in patch 0 (below the threshold, so never removed again).
+    model = make_model(n=2, growth="exponential", growth_rate=0.0)
+    model.params["mortality"][:] = [0.6, 0.05]
+    movement = sp.csr_array(np.array([[-0.3, 0.02], [0.3, -0.02]]))
+    system = make_system(model, predator_movement=movement)
+    y0 = np.array([0.0, 0.0, 40.0, 10.0])
+    theta, duration = 1.0, 12.0
+    rhs = system.rhs_function()
+
+    def falls(t, y):
+        return y[2] - theta
+    falls.terminal, falls.direction = True, -1
+    first = si.solve_ivp(rhs, (0.0, duration), y0, method="DOP853", rtol=1e-12, atol=1e-12,
+                         events=falls, dense_output=True)
+    t_cross = first.t_events[0][0]
+    y_cross = first.y_events[0][0].copy()
+    y_cross[2] = 0.0
+    second = si.solve_ivp(rhs, (t_cross, duration), y_cross, method="DOP853", rtol=1e-12,
+                          atol=1e-12)
+    times = np.arange(0.0, duration + 1e-9, 0.5)
+    run = simulate(system, y0, duration=duration, census_interval=0.5,
+                   extinction_abundance=theta)
+    assert run.stats.removals == (0, 1)
+    got = run["predator"].values
+    after = times > t_cross
+    np.testing.assert_allclose(got[~after, 0], first.sol(times[~after])[2], rtol=1e-5)
+    np.testing.assert_allclose(got[-1], second.y[2:, -1], rtol=1e-4)
+    assert 0.0 < got[-1, 0] < theta  # immigrants gathering again, left alone
+
+
 # ------------------------------------------------------------------ the demo, end to end
 @pytest.fixture(scope="module")
 def demo_scenario():
