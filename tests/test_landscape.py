@@ -57,7 +57,8 @@ def square(x, y, side=1.0):
 
 @pytest.mark.parametrize("ellps", ["GRS80", "WGS84"])
 def test_geod_reproduces_vincenty_flinders_peak_to_buninyong(ellps):
-    # Vincenty (1975), Survey Review 23:88, worked example (from memory): Flinders Peak
+    # A check of the reference library alone (pyproj), not of trophoscape: the geodesic
+    # tests below rely on it. Vincenty (1975), Survey Review 23:88, worked example (from memory): Flinders Peak
     # -37°57'03.72030" 144°25'29.52440" to Buninyong -37°39'10.15610" 143°55'35.38390",
     # 54 972.271 m on GRS80 (WGS 84 differs in the 9th digit of the flattening).
     def deg(d, m, s):

@@ -73,6 +73,8 @@ def test_dispersal_conserves_total_with_full_survival(rng):
     # with survival 1 the columns of M sum to zero: the regional total is constant (SCENARIO.md)
     n = 15
     system, m = dispersal_only(rng, n)
+    # consistency test of the test's own operator (built by random_operator above), not of
+    # trophoscape: its columns must sum to zero for the check below to mean anything
     np.testing.assert_allclose(np.asarray(m.sum(axis=0)).ravel(), 0.0, atol=1e-14)
     x0 = np.concatenate([rng.uniform(0, 100, n), rng.uniform(0, 10, n)])
     traj = simulate(system, x0, duration=20.0, census_interval=1.0, method="RK45",
