@@ -398,8 +398,8 @@ CASES = [
          argv=("run", "s.toml", "--out", "taken.txt")),
     Case("out-not-trophoscape",
          "error: mine: field '--out': is a folder trophoscape did not write (it holds "
-         "notes.txt); give a new or empty folder, or add --force to replace it and "
-         "everything in it",
+         "notes.txt); give a new or empty folder, or add --force to write there anyway (the "
+         "folder is then kept, renamed to mine.replaced-YYYYmmdd-HHMMSS)",
          {"s.toml": EXPLOSIVE, "mine/notes.txt": "my notes\n"},
          argv=("run", "s.toml", "--out", "mine", "--no-maps")),
     Case("demo-out-existing-file",

@@ -293,8 +293,10 @@ def test_existing_ledger_needs_resume(tmp_path, scenario, monkeypatch, capsys):
     sweep(scenario, ["prey.growth_rate=0.8,1.2"], out=out, workers=1, plots=False)
     with pytest.raises(InputError) as info:
         sweep(scenario, ["prey.growth_rate=0.8,1.2"], out=out, workers=1)
-    assert str(info.value) == (f"{out / LEDGER_NAME}: a sweep ledger is already here; add "
-                               "--resume to continue that sweep, or give another --out folder")
+    message = ("a sweep ledger is already here; add --resume to continue that sweep, add "
+               "--force to start a new sweep in its place (its finished runs are then deleted), "
+               "or give another --out folder")
+    assert str(info.value) == f"{out / LEDGER_NAME}: field '--out': {message}"
     # resuming a finished sweep runs nothing and writes the same table
     before = read_table(out)
     stamps = pd.read_csv(out / TABLE_NAME)["finished"].tolist()
@@ -311,9 +313,7 @@ def test_existing_ledger_needs_resume(tmp_path, scenario, monkeypatch, capsys):
     code = run_cli(["sweep", scenario, "--vary", "prey.growth_rate=0.8,1.2", "--out", out],
                    monkeypatch)
     assert code == 2
-    assert capsys.readouterr().err == (
-        f"error: {out / LEDGER_NAME}: a sweep ledger is already here; add --resume to "
-        "continue that sweep, or give another --out folder\n")
+    assert capsys.readouterr().err == f"error: {out / LEDGER_NAME}: field '--out': {message}\n"
     assert run_cli(["sweep", scenario, "--out", tmp_path / "none"], monkeypatch) == 2
     assert capsys.readouterr().err == ("error: field '--vary': nothing to vary: give --vary "
                                        "KEY=VALUES or --table FILE.csv\n")

@@ -2,7 +2,8 @@
 
 Exit codes: 0 success; 2 bad input (one-line message naming file, feature and field);
 1 a failure of the run itself; 130 after Ctrl-C and 143 after SIGTERM (both remove what was
-half-written).
+half-written; a signal that comes while the output folder is being put in place waits for
+that, and the message then says the output was written).
 """
 
 from __future__ import annotations
@@ -87,8 +88,9 @@ def out_options(p, help="output folder") -> None:
     """
     p.add_argument("--out", required=True, metavar="OUT", help=help)
     p.add_argument("--force", action="store_true",
-                   help="replace OUT even when it is a folder trophoscape did not write "
-                        "(never a folder holding an input, nor the current folder)")
+                   help="write to OUT even when it holds files trophoscape did not write: "
+                        "that folder is kept, renamed to OUT.replaced-YYYYmmdd-HHMMSS (never "
+                        "an input's folder, the current folder, home, or the root)")
 
 
 def _output_options(p):
@@ -141,7 +143,9 @@ def _sigterm_as_interrupt():
             signal.signal(signum, signal.SIG_DFL)
             os.kill(os.getpid(), signum)
             return
-        signal.signal(signum, signal.SIG_IGN)  # one clean-up; a second SIGTERM waits for it
+        # one clean-up: a further SIGTERM during it is ignored (not queued), until
+        # _sigterm_as_interrupt puts the previous handler back when the command returns
+        signal.signal(signum, signal.SIG_IGN)
         raise Terminated()
 
     previous = signal.signal(signal.SIGTERM, handler)
@@ -159,7 +163,20 @@ def main(argv=None) -> int:
         return _main(args)
 
 
+def _written_count() -> int:
+    """Output folders put in place so far (none when outputs was never imported)."""
+    outputs = sys.modules.get("trophoscape.outputs")
+    return 0 if outputs is None else outputs.written_count()
+
+
+def _written_since(mark: int) -> list[str]:
+    """Output folders put in place since :func:`_written_count` gave ``mark``."""
+    outputs = sys.modules.get("trophoscape.outputs")
+    return [] if outputs is None else outputs.written_since(mark)
+
+
 def _main(args) -> int:
+    mark = _written_count()
     try:
         if getattr(args, "out", None) is not None:
             from .outputs import out_argument
@@ -179,11 +196,14 @@ def _main(args) -> int:
         sys.stderr.close()
         return 0
     except KeyboardInterrupt as exc:
-        if isinstance(exc, Terminated):
-            print("terminated; no output was written", file=sys.stderr)
-            return Terminated.exit_code
-        print("interrupted; no output was written", file=sys.stderr)
-        return 130
+        word, code = (("terminated", Terminated.exit_code) if isinstance(exc, Terminated)
+                      else ("interrupted", 130))
+        written = _written_since(mark)
+        if written:  # the signal came after the output folder was put in place
+            print(f"{word}; the output was written to {written[-1]}", file=sys.stderr)
+        else:
+            print(f"{word}; no output was written", file=sys.stderr)
+        return code
 
 
 def _dispatch(args) -> int:

@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import html
 import math
-import os
 import re
 import shutil
 import time
@@ -167,7 +166,7 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
 def run_corridors(args) -> int:
     """The ``corridors`` command; returns the exit code."""
     from .analysis.planning import parse_weights, read_candidates
-    from .outputs import MARKER_NAME, input_files, working_folder
+    from .outputs import input_files, working_folder
     from .study import load_study
 
     if not math.isfinite(args.budget) or args.budget < 0:
@@ -189,40 +188,41 @@ def run_corridors(args) -> int:
     candidates = read_candidates(args.candidates, study.landscape, layer=args.layer,
                                  snap_km=study.scenario["dispersal.corridor_snap_km"])
     inputs = [*input_files(study.scenario), args.candidates]
+    links_file = None
     if args.remove_links == "all":
         links = "all"
     elif args.remove_links == "none":
         links = None
     else:
         links = read_link_list(args.remove_links, study)
-        inputs.append(args.remove_links)
+        links_file = Path(args.remove_links)
+        inputs.append(links_file)
     # everything is validated: only now does the output folder appear (for the partial log);
-    # an earlier output folder there stays until the new one is whole
-    force = getattr(args, "force", False)
-    real = working_folder(args.out, command="corridors", names=[PARTIAL], inputs=inputs,
-                          force=force, reuse=True)
-    started = time.perf_counter()
-    try:
+    # an earlier output folder there stays until the new one is whole, and a folder made
+    # here that got no row is removed again if the command fails
+    with working_folder(args.out, command="corridors", allow=[PARTIAL], inputs=inputs,
+                        force=args.force, reuse=True):
+        started = time.perf_counter()
         plan = plan_corridors(study, candidates, budget=args.budget, weights=weights,
                               links=links, patches=args.remove_patches == "all",
                               screen=args.screen, exhaustive_limit=args.exhaustive_limit,
                               workers=args.workers, progress=not args.quiet,
-                              log=args.out / PARTIAL)
+                              log=args.out / PARTIAL, links_file=links_file)
         plan["timing"]["total_seconds"] = time.perf_counter() - started
-        write_corridors(plan, args.out, maps=not args.no_maps, force=force, inputs=inputs)
-    except BaseException:
-        # a folder made for the log that got no row is not an output: remove it
-        if real.is_dir() and os.listdir(real) == [MARKER_NAME]:
-            shutil.rmtree(real, ignore_errors=True)
-        raise
+        write_corridors(plan, args.out, maps=not args.no_maps, force=args.force,
+                        inputs=inputs, checked=True)
     if not args.quiet:
         _print_plan(plan, args.out)
     return 0
 
 
 def plan_corridors(study, candidates, *, budget, weights=None, links="all", patches=True,
-                   screen=None, exhaustive_limit=12, workers=None, progress=False, log=None):
+                   screen=None, exhaustive_limit=12, workers=None, progress=False, log=None,
+                   links_file=None):
     """Every step of the ``corridors`` command, without writing files.
+
+    ``links_file``: the file ``links`` was read from (:func:`read_link_list`), an input the
+    output folder must not hold (kept in the plan as ``links_file``).
 
     Returns
     -------
@@ -277,7 +277,8 @@ def plan_corridors(study, candidates, *, budget, weights=None, links="all", patc
     timing["run_seconds"] = planner.run_seconds
     return {"planner": planner, "table": table, "critical": critical, "greedy": greedy,
             "exhaustive": exhaustive, "best": best, "gap": gap,
-            "screened": pool, "budget": float(budget), "timing": timing}
+            "screened": pool, "budget": float(budget), "timing": timing,
+            "links_file": None if links_file is None else Path(links_file)}
 
 
 def _set_json(result, ids):
@@ -289,7 +290,7 @@ def _set_json(result, ids):
 
 
 def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool = False,
-                    inputs=None) -> Path:
+                    inputs=None, checked: bool = False) -> Path:
     """Write the ``corridors`` output folder (atomically; the partial log is then removed).
 
     Files: ``corridors.csv``, ``critical.csv``, ``chosen.csv``, ``corridors.json``,
@@ -305,10 +306,14 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
         The run of the network as it is, for ``report.html``; run here when not given (the
         planner's own baseline run skips the stability and capacity analyses).
     force : bool
-        Replace ``out`` even when it is a folder trophoscape did not write.
+        Write to ``out`` even when it is a folder trophoscape did not write (that folder is
+        kept, renamed to ``NAME.replaced-YYYYmmdd-HHMMSS``).
     inputs : list of path, optional
-        The input files, which ``out`` must not hold (default: the scenario's and the
-        candidates file).
+        The input files, which ``out`` must not hold (default: the scenario's, the
+        candidates file and the ``--remove-links`` file of the plan).
+    checked : bool
+        ``out`` went through :func:`trophoscape.outputs.check_out` already (before the
+        runs); a folder that changed since is dealt with when the new one is put in place.
     """
     import geopandas
 
@@ -320,7 +325,7 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
     study = planner.study
     cand = planner.candidates
     if inputs is None:
-        inputs = [*input_files(study.scenario), cand.path]
+        inputs = [*input_files(study.scenario), cand.path, plan.get("links_file")]
     table = plan["table"]
     ordered = ["source", "target", "length_km", "cost", *[f"gain_{k}" for k in OBJECTIVES],
                "score", "score_per_cost", "rank", "chosen", "in_greedy_set"]
@@ -375,7 +380,7 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
     land = study.landscape
     links_frame = study.network.links_frame(land)
     with staged_folder(out, force=force, inputs=inputs, command="corridors",
-                       allow=(PARTIAL,)) as stage:
+                       allow=(PARTIAL,), checked=checked) as stage:
         table.to_csv(stage / "corridors.csv", index=True)
         critical.to_csv(stage / "critical.csv", index=False)
         chosen.to_csv(stage / "chosen.csv", index=False)
@@ -567,22 +572,22 @@ def run_compare(args) -> int:
     columns = [c.strip() for c in args.columns.split(",") if c.strip()]
     studies = [load_study(p) for p in args.scenarios]
     inputs = [f for study in studies for f in input_files(study.scenario)]
-    force = getattr(args, "force", False)
-    check_out(args.out, inputs=inputs, force=force)  # before the runs
+    check_out(args.out, inputs=inputs, force=args.force)  # before the runs
     results = []
     for k, study in enumerate(studies):
         if not args.quiet:
             print(f"running {k + 1}/{len(studies)}: {study.scenario.name}")
         results.append(run_study(study, progress=not args.quiet))
     write_comparison(results, args.out, columns=columns, maps=not args.no_maps,
-                     runs=not args.no_runs, force=force)
+                     runs=not args.no_runs, force=args.force, checked=True)
     if not args.quiet:
         print(f"wrote {args.out}")
     return 0
 
 
 def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occupancy"),
-                     maps: bool = True, runs: bool = True, force: bool = False) -> Path:
+                     maps: bool = True, runs: bool = True, force: bool = False,
+                     checked: bool = False) -> Path:
     """Write the ``compare`` output folder (atomically).
 
     Files: ``comparison.csv`` (one row per scenario), ``differences_<B>_minus_<A>.csv`` per
@@ -590,7 +595,9 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
     (diverging colours centred on 0), ``report.html`` (the scenarios in plain words, the
     headline results side by side, the difference maps; with ``maps``), and ``runs/<name>/``
     (each scenario's own output folder, with its maps and report) unless ``runs`` is False.
-    ``force`` replaces ``out`` even when it is a folder trophoscape did not write.
+    ``force`` writes to ``out`` even when it is a folder trophoscape did not write (that
+    folder is kept, renamed to ``NAME.replaced-YYYYmmdd-HHMMSS``); ``checked``: ``out`` went
+    through :func:`trophoscape.outputs.check_out` already, before the runs.
     """
     from .analysis.planning import compare_results, patch_differences
     from .outputs import input_files, staged_folder, write_json, write_run
@@ -605,7 +612,8 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
     diffs = [patch_differences(results[0], r, columns) for r in results[1:]]
     drawn = []
     inputs = [f for r in results for f in input_files(r.study.scenario)]
-    with staged_folder(out, force=force, inputs=inputs, command="compare") as stage:
+    with staged_folder(out, force=force, inputs=inputs, command="compare",
+                       checked=checked) as stage:
         table.to_csv(stage / "comparison.csv", index=True)
         write_json(stage / "comparison.json", {
             "reference": table.index[0], "scenarios": list(table.index),

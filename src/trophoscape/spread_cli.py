@@ -78,8 +78,7 @@ def run_command(args) -> int:
 
     count = _origin_count(args.origins)
     study = load_study(args.scenario)
-    force = getattr(args, "force", False)
-    check_out(args.out, inputs=input_files(study.scenario), force=force)  # before the runs
+    check_out(args.out, inputs=input_files(study.scenario), force=args.force)  # before the runs
     result = run_spread(study, progress=not args.quiet)
     scan = None
     if count is not None:
@@ -88,7 +87,7 @@ def run_command(args) -> int:
                                       seed=study.scenario["run.seed"]))
         scan = origin_scan(study, origins, workers=args.workers, progress=not args.quiet)
     write_spread(study, result, args.out, scan=scan, maps=not args.no_maps,
-                 geojson=args.geojson, force=force)
+                 geojson=args.geojson, force=args.force, checked=True)
     if not args.quiet:
         s = result.summary
         speed = s["front_speed_km_per_time"]
@@ -100,7 +99,7 @@ def run_command(args) -> int:
 
 
 def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
-                 force=False) -> Path:
+                 force=False, checked=False) -> Path:
     """Write the spread outputs (and the shocked run's folder) into ``out``, atomically.
 
     Parameters
@@ -111,7 +110,11 @@ def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
     scan : pandas.DataFrame, optional
         From :func:`trophoscape.analysis.spread.origin_scan`.
     force : bool
-        Replace ``out`` even when it is a folder trophoscape did not write.
+        Write to ``out`` even when it is a folder trophoscape did not write (that folder is
+        kept, renamed to ``NAME.replaced-YYYYmmdd-HHMMSS``).
+    checked : bool
+        ``out`` went through :func:`trophoscape.outputs.check_out` already (before the
+        runs); a folder that changed since is dealt with when the new one is put in place.
     """
     from .outputs import input_files, provenance, staged_folder, write_json, write_run
     from .study import RunResult, analyse
@@ -128,7 +131,7 @@ def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
     spread_summary["shocks"] = [dict(t) for t in study.scenario["shock"]]
     spread_summary["provenance"] = provenance(study)
     with staged_folder(out, force=force, inputs=input_files(study.scenario),
-                       command="spread") as stage:
+                       command="spread", checked=checked) as stage:
         write_run(run, stage, maps=maps, geojson=geojson)
         result.table[SPREAD_COLUMNS].to_csv(stage / "spread.csv", index=True)
         write_json(stage / "spread.json", spread_summary)

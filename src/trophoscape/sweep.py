@@ -55,8 +55,11 @@ TABLE_NAME = "sweep.csv"
 #: What a sweep keeps from one session to the next: the ledger (with SQLite's WAL files)
 #: and the per-run records.
 WORKING_NAMES = (LEDGER_NAME, f"{LEDGER_NAME}-wal", f"{LEDGER_NAME}-shm", "runs")
-#: Every name a sweep's folder may hold.
-SWEEP_NAMES = (*WORKING_NAMES, TABLE_NAME, "plots")
+#: Every path a sweep's folder may come to hold, as patterns of the folder's marker
+#: (``*``: any part of one name; a folder ends in "/"): the ledger, the per-run records (and
+#: the temporary file of one being written), the table and the plots.
+SWEEP_NAMES = (LEDGER_NAME, f"{LEDGER_NAME}-wal", f"{LEDGER_NAME}-shm", "runs/",
+               "runs/*.json", "runs/.*.tmp", TABLE_NAME, "plots/", "plots/*.png")
 #: Network-level results drawn against every varied value.
 KEY_RESULTS = ("prey_regional_persistence", "predator_regional_persistence",
                "prey_synchrony", "predator_synchrony")
@@ -703,6 +706,52 @@ def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
 
 
+def _run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks, **options):
+    """Run the runs not yet recorded as ok in the ledger, recording each as it finishes;
+    return the sweep table from the ledger."""
+    ledger = Ledger(ledger_path)
+    try:
+        meta = ledger.meta()
+        started = {"format": LEDGER_FORMAT, "scenario_sha256": scenario.sha256,
+                   "keys": json.dumps(keys)}
+        if meta:
+            if meta.get("scenario_sha256") != scenario.sha256:
+                raise InputError("the scenario file changed since this sweep began; restore "
+                                 "it, or start the new sweep in another --out folder",
+                                 file=ledger_path, field="--resume")
+            if meta.get("keys") != started["keys"]:
+                raise InputError(f"this sweep varies {json.loads(meta['keys'])}, not {keys}; "
+                                 "vary the same keys, or use another --out folder",
+                                 file=ledger_path, field="--resume")
+        else:
+            ledger.set_meta(**started, created=_now())
+        done = ledger.ok_ids()
+        todo = [r for r in runs if r.run_id not in done]
+
+        def on_result(run: SweepRun, ok: bool, value) -> None:
+            results = value["results"] if ok else None
+            seconds = value["seconds"] if ok else None
+            error = None if ok else str(value)
+            finished = _now()
+            record = {"run_id": run.run_id, "variant": run.values, "replicate": run.replicate,
+                      "seed": run.seed, "status": "ok" if ok else "failed", "error": error,
+                      "results": results, "seconds": seconds, "finished": finished}
+            _atomic_write(out / "runs" / f"{run.run_id}.json",
+                          json.dumps(record, indent=2, default=str) + "\n")
+            ledger.record(run, ok=ok, results=results, error=error, seconds=seconds,
+                          finished=finished)
+
+        if todo:
+            # Imported before the pool starts: forked local workers then start warm instead
+            # of each importing scipy, geopandas and the analyses again.
+            from . import study  # noqa: F401
+
+            run_tasks(run_point, todo, on_result=on_result, desc="sweep", **options)
+        return sweep_frame(ledger, keys, runs)
+    finally:
+        ledger.close()
+
+
 def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 1,
           workers: int | None = None, scheduler: str | None = None,
           dask_local: int | None = None, resume: bool = False, table=None,
@@ -743,8 +792,9 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
     retries : int
         Re-runs of a run whose worker was lost.
     force : bool
-        Replace ``out`` even when it is a folder trophoscape did not write, or an earlier
-        sweep's folder without ``resume``.
+        Write to ``out`` even when it is a folder trophoscape did not write (that folder is
+        kept, renamed to ``NAME.replaced-YYYYmmdd-HHMMSS``), or replace an earlier sweep's
+        folder without ``resume``.
 
     Returns
     -------
@@ -768,66 +818,29 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
                                       replicates=replicates, table=table)
     inputs = [*input_files(scenario, [r.values for r in runs]),
               *_table_files(variants_or_vary_specs, table)]
+    # checked once, before anything runs; the folders below take this check as done
     check_out(out, inputs=inputs, force=force)
     out = Path(out)
     ledger_path = out / LEDGER_NAME
     if ledger_path.exists() and not resume and not force:
         raise InputError("a sweep ledger is already here; add --resume to continue that "
-                         "sweep, or give another --out folder", file=ledger_path)
+                         "sweep, add --force to start a new sweep in its place (its finished "
+                         "runs are then deleted), or give another --out folder",
+                         file=ledger_path, field="--out")
     # the ledger lives in the output folder from the first run on
-    working_folder(out, command="sweep", names=SWEEP_NAMES, inputs=inputs, force=force,
-                   reuse=resume and ledger_path.exists())
-    (out / "runs").mkdir(exist_ok=True)
-    for stale in (out / "runs").glob(".*.tmp"):
-        stale.unlink(missing_ok=True)  # left by a process killed while renaming
-    ledger = Ledger(ledger_path)
-    try:
-        meta = ledger.meta()
-        started = {"format": LEDGER_FORMAT, "scenario_sha256": scenario.sha256,
-                   "keys": json.dumps(keys)}
-        if meta:
-            if meta.get("scenario_sha256") != scenario.sha256:
-                raise InputError("the scenario file changed since this sweep began; restore "
-                                 "it, or start the new sweep in another --out folder",
-                                 file=ledger_path, field="--resume")
-            if meta.get("keys") != started["keys"]:
-                raise InputError(f"this sweep varies {json.loads(meta['keys'])}, not {keys}; "
-                                 "vary the same keys, or use another --out folder",
-                                 file=ledger_path, field="--resume")
-        else:
-            ledger.set_meta(**started, created=_now())
-        done = ledger.ok_ids()
-        todo = [r for r in runs if r.run_id not in done]
-
-        def on_result(run: SweepRun, ok: bool, value) -> None:
-            results = value["results"] if ok else None
-            seconds = value["seconds"] if ok else None
-            error = None if ok else str(value)
-            finished = _now()
-            record = {"run_id": run.run_id, "variant": run.values, "replicate": run.replicate,
-                      "seed": run.seed, "status": "ok" if ok else "failed", "error": error,
-                      "results": results, "seconds": seconds, "finished": finished}
-            _atomic_write(out / "runs" / f"{run.run_id}.json",
-                          json.dumps(record, indent=2, default=str) + "\n")
-            ledger.record(run, ok=ok, results=results, error=error, seconds=seconds,
-                          finished=finished)
-
-        if todo:
-            # Imported before the pool starts: forked local workers then start warm instead
-            # of each importing scipy, geopandas and the analyses again.
-            from . import study  # noqa: F401
-
-            run_tasks(run_point, todo, on_result=on_result, workers=workers,
-                      scheduler=scheduler, dask_local=dask_local, retries=retries,
-                      progress=progress, desc="sweep")
-        frame = sweep_frame(ledger, keys, runs)
-    finally:
-        ledger.close()
+    with working_folder(out, command="sweep", allow=SWEEP_NAMES, force=force,
+                        reuse=resume and ledger_path.exists(), checked=True):
+        (out / "runs").mkdir(exist_ok=True)
+        for stale in (out / "runs").glob(".*.tmp"):
+            stale.unlink(missing_ok=True)  # left by a process killed while renaming
+        frame = _run_ledger(ledger_path, out, scenario, keys, runs, workers=workers,
+                            scheduler=scheduler, dask_local=dask_local, retries=retries,
+                            progress=progress, run_tasks=run_tasks)
     import pandas as pd
 
     # The table and plots, staged; the ledger and runs/ are carried into the new folder.
-    with staged_folder(out, force=force, inputs=inputs, command="sweep", keep=WORKING_NAMES,
-                       allow=SWEEP_NAMES) as stage:
+    with staged_folder(out, force=force, command="sweep", keep=WORKING_NAMES,
+                       allow=SWEEP_NAMES, checked=True) as stage:
         # the table as written (what a reader of sweep.csv gets: NaN for missing values)
         frame = pd.read_csv(_write_table(frame, stage))
         if plots:

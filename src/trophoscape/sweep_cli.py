@@ -71,20 +71,22 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 def handle(args) -> int:
     """Run the sweep; return the exit code (InputError / RunError go up to ``cli.main``)."""
     from .errors import InputError, Terminated
+    from .outputs import written_count, written_since
     from .sweep import LEDGER_NAME, TABLE_NAME, sweep
 
     if not args.vary and args.table is None:
         raise InputError("nothing to vary: give --vary KEY=VALUES or --table FILE.csv",
                          field="--vary")
+    mark = written_count()
     try:
         frame = sweep(args.scenario, args.vary, out=args.out, replicates=args.replicates,
                       workers=args.workers, scheduler=args.scheduler,
                       dask_local=args.dask_local, resume=args.resume, table=args.table,
                       plots=not args.no_plots, progress=not args.quiet,
-                      force=getattr(args, "force", False))
+                      force=args.force)
     except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (errors.Terminated)
-        if not (args.out / LEDGER_NAME).exists():  # stopped before the first run began
-            raise
+        if not (args.out / LEDGER_NAME).exists() or written_since(mark):
+            raise  # stopped before the first run began, or after the table was in place
         stopped = "terminated" if isinstance(exc, Terminated) else "interrupted"
         print(f"{stopped}; the finished runs are kept in {args.out / LEDGER_NAME}; run the "
               "same command with --resume to finish the sweep", file=sys.stderr)
