@@ -98,6 +98,20 @@ def test_report_renders_in_headless_chromium(which, request, tmp_path):
     assert (pixels[..., :3].mean(axis=2) < 0.5).mean() > 0.01
 
 
+def test_headline_counts_the_removed_local_populations():
+    # consistency test: the row repeats summary.json's quasi_extinction counts
+    from trophoscape.report import _headline_rows
+
+    summary = {"solver": {"method": "RK45", "nfev": 10},
+               "quasi_extinction": {"prey": {"removals": 1535, "individuals_removed": 1535.0},
+                                    "predator": {"removals": 66, "individuals_removed": 66.0}}}
+    rows = dict(_headline_rows(summary))
+    assert rows["local populations removed on falling through the quasi-extinction abundance"] == (
+        "prey 1,535, predator 66")
+    assert not any(k.startswith("local populations") for k in dict(_headline_rows(
+        {"solver": summary["solver"]})))
+
+
 def test_headline_says_when_the_local_equations_ran_compiled():
     from trophoscape.report import _headline_rows
 

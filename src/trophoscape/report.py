@@ -307,6 +307,11 @@ def _headline_rows(summary):
                 rows.append((label, _fmt(summary[key])))
     if summary.get("stability") is not None:
         rows.append(("coexistence state", summary["stability"]))
+    removed = summary.get("quasi_extinction")
+    if removed:
+        rows.append(("local populations removed on falling through the quasi-extinction abundance",
+                     ", ".join(f"{s} {removed[s]['removals']:,}" for s in SPECIES
+                               if s in removed)))
     solver = summary["solver"]
     rows.append(("solver", f"{solver['method']}, {solver['nfev']} right-hand-side evaluations"
                  + (", local equations compiled" if solver.get("local_kernel") == "compiled"
