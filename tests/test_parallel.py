@@ -1,6 +1,8 @@
 """The task runner: every task once, failures recorded as data."""
 
 import math
+import signal
+import time
 
 import pytest
 
@@ -27,3 +29,55 @@ def test_every_task_once_and_failures_recorded(workers):
 def test_workers_must_be_positive():
     with pytest.raises(InputError, match="--workers"):
         run_tasks(math.sqrt, [1.0, 4.0], workers=0, progress=False, on_result=print)
+
+
+# ------------------------------------------------------------------------ a killed parent
+def _alive(proc) -> bool:
+    """Whether ``proc`` (a psutil.Process) still runs: gone and zombie both count as ended."""
+    import psutil
+
+    try:
+        return proc.is_running() and proc.status() != psutil.STATUS_ZOMBIE
+    except psutil.NoSuchProcess:
+        return False
+
+
+def test_pool_workers_end_when_the_sweep_is_killed(tmp_path):
+    """SIGKILL leaves the parent no chance to stop its pool; the workers must notice alone,
+    and let go of the caller's stdout and stderr, which they share."""
+    psutil = pytest.importorskip("psutil")
+    from test_sweep import _cli_process, write_scenario
+
+    # long enough that the two workers are still busy when the kill lands
+    scenario = write_scenario(tmp_path / "scenario", duration=600.0)
+    proc = _cli_process(["sweep", scenario, "--vary", "prey.growth_rate=0.6:1.4:20",
+                         "--vary", "dispersal.max_distance_km=3,6", "--out", tmp_path / "out",
+                         "--no-plots", "--quiet", "--workers", "2"])
+    workers = []
+    try:
+        parent = psutil.Process(proc.pid)
+        end = time.monotonic() + 60
+        while time.monotonic() < end:
+            assert proc.poll() is None, f"the sweep ended early: {proc.stderr.read()}"
+            workers = [p for p in parent.children(recursive=True) if _alive(p)]
+            if len(workers) >= 2 and all(p.cpu_times().user > 0.2 for p in workers):
+                break  # both exist and are working on runs
+            time.sleep(0.05)
+        else:
+            pytest.fail(f"no two busy workers in time (found {len(workers)})")
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=10)
+        end = time.monotonic() + 5
+        while time.monotonic() < end and any(_alive(p) for p in workers):
+            time.sleep(0.05)
+        left = [p.pid for p in workers if _alive(p)]
+        assert not left, f"worker processes {left} outlived their killed parent"
+        # with the workers gone, nothing holds the pipes: the caller reads to the end
+        proc.communicate(timeout=5)
+    finally:
+        for p in workers:
+            if _alive(p):
+                p.kill()
+        if proc.poll() is None:
+            proc.kill()
+        proc.communicate()

@@ -15,6 +15,9 @@ What happens when things go wrong:
 - A lost Dask worker is handled by Dask itself: the scheduler moves its tasks to other
   workers, up to its ``distributed.scheduler.allowed-failures`` setting (set to ``retries``
   for a LocalCluster we start); a task that keeps killing workers is recorded as failed.
+- A parent that dies without stopping its pool (SIGKILL) takes the local workers with it:
+  each ends within a second, instead of waiting for work for ever while holding memory and
+  the caller's stdout and stderr (``_exit_with_parent``).
 - Ctrl-C (KeyboardInterrupt) cancels what has not started, stops the local workers or
   cancels the Dask futures, and is raised again, so the caller exits with what it recorded.
 
@@ -24,8 +27,12 @@ when a scheduler is asked for.
 
 from __future__ import annotations
 
+import multiprocessing
 import os
 import signal
+import sys
+import threading
+import time
 from collections import deque
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
@@ -60,6 +67,56 @@ def _ignore_sigint():
     # Ctrl-C in a terminal reaches every process of the group; the main process alone
     # decides what to do, so workers do not each print a traceback.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+#: How often (seconds) a local worker checks that the process that started it is still there.
+PARENT_POLL_SECONDS = 0.5
+
+#: ``prctl`` option asking the kernel for a signal when the parent goes (linux/prctl.h).
+_PR_SET_PDEATHSIG = 1
+
+
+def _exit_with_parent(parent_pid: int | None) -> None:
+    """Make this worker process end when the process that started it ends, however it ends.
+
+    A parent killed with SIGKILL cannot stop its pool, and idle workers would otherwise wait
+    for work for ever, holding memory and the caller's stdout and stderr. On Linux the kernel
+    sends SIGTERM when the parent goes (``PR_SET_PDEATHSIG``; strictly, when the parent's
+    thread that started the worker ends, and ``run_tasks`` stops its pool before returning
+    from that thread). Everywhere, a daemon thread also checks the parent's pid twice a
+    second and ends the process when it has changed (the worker was handed to another).
+    ``parent_pid`` is the pid the worker's parent had when it started the pool, or None when
+    not known (a forkserver parent), and then the parent at this moment is watched.
+    """
+    # A worker has nothing to clean up: SIGTERM (from the kernel, or from _stop_pool) ends
+    # it at once, also in the middle of compiled code, whatever handler it inherited.
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(_PR_SET_PDEATHSIG, int(signal.SIGTERM), 0, 0, 0)
+        except (OSError, AttributeError):  # no prctl: the thread below still watches
+            pass
+    if parent_pid is None:
+        parent_pid = os.getppid()
+    elif os.getppid() != parent_pid:  # the parent went before the kernel was asked
+        os._exit(1)
+
+    def watch():
+        while True:
+            time.sleep(PARENT_POLL_SECONDS)
+            if os.getppid() != parent_pid:
+                os._exit(1)
+
+    threading.Thread(target=watch, name="trophoscape-parent-watch", daemon=True).start()
+
+
+def _init_worker(parent_pid: int | None) -> None:
+    """The initializer of every local worker process."""
+    _ignore_sigint()
+    _exit_with_parent(parent_pid)
 
 
 def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
@@ -137,11 +194,16 @@ def _run_pool(fn, tasks, on_result, workers, retries, bar):
     queue = deque(range(len(tasks)))
     suspects: deque = deque()
     attempts = [0] * len(tasks)
+    # The default start method, named here so the workers know whose child they are: this
+    # process, except under "forkserver", where the server starts them.
+    context = multiprocessing.get_context()
+    parent_pid = None if context.get_start_method() == "forkserver" else os.getpid()
     while queue or suspects:
         isolated = bool(suspects)
         source = suspects if isolated else queue
         pool = ProcessPoolExecutor(max_workers=1 if isolated else workers,
-                                   initializer=_ignore_sigint)
+                                   mp_context=context, initializer=_init_worker,
+                                   initargs=(parent_pid,))
         try:
             lost = _drain(pool, fn, tasks, source, 1 if isolated else
                           IN_FLIGHT_PER_WORKER * workers, on_result, bar)
