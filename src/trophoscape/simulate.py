@@ -20,6 +20,7 @@ Error control per patch
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass
 
 import numpy as np
@@ -135,13 +136,12 @@ def _components(dense, index):
     scipy's Runge–Kutta interpolants are linear in per-component arrays, so a copy holding
     only those rows evaluates in O(len(index)); other interpolants are evaluated whole.
     """
-    import copy
-
-    sub = copy.copy(dense)
     if isinstance(dense, si._ivp.rk.RkDenseOutput):
+        sub = copy.copy(dense)
         sub.Q, sub.y_old = dense.Q[index], dense.y_old[index]
         return sub
     if isinstance(dense, si._ivp.rk.Dop853DenseOutput):
+        sub = copy.copy(dense)
         sub.F, sub.y_old = dense.F[:, index], dense.y_old[index]
         return sub
     return lambda t: dense(t)[index]
@@ -488,8 +488,14 @@ def simulate(
             totals[key] += int(getattr(s, key, 0) or 0)
 
     def restart(old, t0, y_start, first_step):
+        """A fresh solver from ``(t0, y_start)``; the old one's counts kept, its arrays freed."""
+        nonlocal restarts, above
+        harvest(old)
         new = start(t0, y_start, first_step)
         _release(old)
+        restarts += 1
+        # which components can fall through the threshold from here
+        above = new.y >= level
         return new
 
     def step_wanted(s):
@@ -514,17 +520,15 @@ def simulate(
         base = None
     solver = start(times[0], system.to_internal(y) if internal else y, None)
     # components at or above the threshold at the last step's end: those can fall through it
+    # (kept by restart from then on)
     above = solver.y >= level
     status, message = 0, "The solver successfully reached the end of the integration interval."
     try:
         while k < times.size:
             if solver.status == "finished" and solver.t < times[k]:
                 if next_event < len(pending) and solver.t >= float(pending[next_event].time):
-                    harvest(solver)
                     h = step_wanted(solver)
                     solver = restart(solver, solver.t, solver.y.copy(), 0.5 * h if h else None)
-                    above = solver.y >= level
-                    restarts += 1
                     continue
                 raise RunError(  # pragma: no cover
                     'the solver stopped before the end of the run; try method = "BDF" or '
@@ -583,7 +587,6 @@ def simulate(
                     sink(sunk, k, record)
                     sunk = k
                 if noisy and k < times.size and falling is None:
-                    harvest(solver)
                     system = run.interval(base)
                     rhs = system.rhs_function(internal=internal)
                     if method in IMPLICIT:
@@ -592,18 +595,12 @@ def simulate(
                     # the last step was cut to end at the census: keep the one wanted
                     h = max(h or 0.0, h_wanted or 0.0) or None
                     solver = restart(solver, times[k - 1], y_k.copy(), h)
-                    above = solver.y >= level
-                    restarts += 1
                     break
             if falling is not None:
-                harvest(solver)
-                y_end = remove(y_end, falling)
-                above &= ~falling
                 # half the step reached: the full one was often rejected right after a
                 # population was zeroed (benchmarks/README.md)
                 h = step_wanted(solver)
-                solver = restart(solver, t_end, y_end, 0.5 * h if h else None)
-                restarts += 1
+                solver = restart(solver, t_end, remove(y_end, falling), 0.5 * h if h else None)
         harvest(solver)
         if sink is not None and sunk < k:  # the last rows, fewer than sink_rows
             sink(sunk, k, record)
