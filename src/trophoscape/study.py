@@ -347,12 +347,11 @@ def _sum_stats(all_stats):
                           for k in ("removals", "removed_individuals")})
 
 
-def quasi_extinction_summary(stats, replicates: int = 1) -> dict:
+def quasi_extinction_summary(stats) -> dict:
     """What the quasi-extinction rule removed, per species: ``removals`` (local populations
     that fell through the threshold) and ``individuals_removed``, summed over replicates."""
     return {s: {"removals": int(stats.removals[i]),
-                "individuals_removed": float(stats.removed_individuals[i]),
-                "replicates": int(replicates)}
+                "individuals_removed": float(stats.removed_individuals[i])}
             for i, s in enumerate(SPECIES)}
 
 
@@ -421,7 +420,7 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
     table, summary, extras = analyse(study, traj)
     summary["replicates"] = len(seeds)
     summary["seeds"] = seeds
-    summary["quasi_extinction"] = quasi_extinction_summary(traj.stats, len(seeds))
+    summary["quasi_extinction"] = quasi_extinction_summary(traj.stats)
     if noise is not None:
         summary["noise"] = {k.split(".", 1)[1]: sc[k] for k in sc.values
                             if k.startswith("noise.")}
@@ -447,6 +446,8 @@ def analyse(study: Study, traj: Trajectory):
     """
     from scipy.sparse.linalg import ArpackNoConvergence
 
+    from .analysis import persistence as persistence_module
+    from .analysis import synchrony as synchrony_module
     from .analysis.capacity import capacity_columns
 
     sc = study.scenario
@@ -500,20 +501,16 @@ def analyse(study: Study, traj: Trajectory):
         summary.update(figures)
         extras.update(more)
 
+    level = sc["run.extinction_abundance"]
+
     def persistence():
-        pers = persistence_table(traj, burn_in=burn_in,
-                                 extinction_abundance=sc["run.extinction_abundance"])
-        level = sc["run.extinction_abundance"]
+        pers = persistence_table(traj, burn_in=burn_in, extinction_abundance=level)
         return (pers, regional_persistence(pers, traj, area_km2=area, extinction_abundance=level),
                 {"occupancy": occupancy_curve(traj, extinction_abundance=level)})
 
-    per_patch = ["persists", "occupancy", "mean", "cv", "last_extinction", "extinctions",
-                 "recolonisations", "time_to_extinction", "margin"]
-    regional = ["regional_persistence", "area_persistence", "regional_extinction_time",
-                "regional_survival"]
-    if reps > 1:
-        per_patch += ["persistence_share", "persistence_low", "persistence_high"]
-        regional += ["regional_survival_low", "regional_survival_high"]
+    kinds = (1, "replicates") if reps > 1 else (1,)
+    per_patch = [c for kind in kinds for c in persistence_module.PATCH_COLUMNS[kind]]
+    regional = [k for kind in kinds for k in persistence_module.REGIONAL_KEYS[kind]]
     report = "please report it with the scenario"
     guarded("persistence", persistence,
             columns=[f"{s}_{c}" for s in SPECIES for c in per_patch],
@@ -529,12 +526,8 @@ def analyse(study: Study, traj: Trajectory):
         )
 
     guarded("synchrony", synchrony,
-            columns=[f"{s}_{c}" for s in SPECIES for c in ("sync_local", "sync_region",
-                                                           "sync_all", "phase_locking",
-                                                           "sync_group")],
-            keys=[f"{s}_{k}" for s in SPECIES for k in ("synchrony", "kuramoto_mean",
-                                                        "community_synchrony",
-                                                        "sync_half_distance_km")],
+            columns=[f"{s}_{c}" for s in SPECIES for c in synchrony_module.PATCH_COLUMNS],
+            keys=[f"{s}_{k}" for s in SPECIES for k in synchrony_module.SUMMARY_KEYS],
             label="the synchrony analysis", advice=report)
 
     if sc["analysis.stability"]:

@@ -42,7 +42,17 @@ from ..system import SPECIES
 from ._blocks import blocks
 
 __all__ = ["persistence_table", "regional_persistence", "occupancy_curve", "present",
-           "wilson_interval"]
+           "wilson_interval", "PATCH_COLUMNS", "REGIONAL_KEYS"]
+
+#: What the functions below give per species ``S``: columns ``S_<name>`` of
+#: :func:`persistence_table` and keys ``S_<name>`` of :func:`regional_persistence`, then
+#: those added with replicates (a failed analysis leaves them empty).
+PATCH_COLUMNS = {1: ("persists", "occupancy", "mean", "cv", "last_extinction", "extinctions",
+                     "recolonisations", "time_to_extinction", "margin"),
+                 "replicates": ("persistence_share", "persistence_low", "persistence_high")}
+REGIONAL_KEYS = {1: ("regional_persistence", "area_persistence", "regional_extinction_time",
+                     "regional_survival"),
+                 "replicates": ("regional_survival_low", "regional_survival_high")}
 
 
 def wilson_interval(successes, trials, *, confidence: float = 0.95):

@@ -63,7 +63,14 @@ __all__ = [
     "synchrony_by_distance",
     "synchrony_groups",
     "synchrony_analysis",
+    "PATCH_COLUMNS",
+    "SUMMARY_KEYS",
 ]
+
+#: What :func:`synchrony_analysis` adds per species ``S``: columns ``S_<name>`` of the patch
+#: table and keys ``S_<name>`` of the summary (a failed analysis leaves them empty).
+PATCH_COLUMNS = ("sync_local", "sync_region", "sync_all", "phase_locking", "sync_group")
+SUMMARY_KEYS = ("synchrony", "kuramoto_mean", "community_synchrony", "sync_half_distance_km")
 
 _LINK_BLOCK = 1 << 20  # elements per block of link products (bounded memory)
 _PHASE_BLOCK = 1 << 21  # elements per block of patch columns (Hilbert, detrend, sums)
