@@ -241,3 +241,6 @@ def test_demo_results_converge_as_tolerances_tighten(demo_scenario):
         for key in ("regional_persistence", "area_persistence", "synchrony", "kuramoto_mean",
                     "community_synchrony"):
             assert abs(loose.summary[f"{s}_{key}"] - tight.summary[f"{s}_{key}"]) <= 1e-3
+        # the same local populations removed
+        assert (loose.summary["quasi_extinction"][s]["removals"]
+                == tight.summary["quasi_extinction"][s]["removals"])

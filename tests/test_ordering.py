@@ -81,6 +81,10 @@ def test_simulate_same_with_any_internal_order(rng, order):
     b = simulate(ordered, y0, **opts)
     for s in ("prey", "predator"):
         np.testing.assert_allclose(b[s].values, a[s].values, rtol=1e-7, atol=1e-6)
+    # the quasi-extinction rule removes the same populations whatever the numbering
+    assert a.stats.removals == b.stats.removals
+    np.testing.assert_allclose(b.stats.removed_individuals, a.stats.removed_individuals,
+                               rtol=1e-9)
 
 
 def test_rcm_and_hilbert_improve_locality(rng):

@@ -788,6 +788,17 @@ def test_a_signal_during_the_swap_waits_for_it(tmp_path, monkeypatch, capsys, mo
     assert (signal.getsignal(signal.SIGTERM), signal.getsignal(signal.SIGINT)) == handlers
 
 
+def _run_again_refused(tmp_path, monkeypatch, capsys):
+    """Run into ``out`` once more, expecting exit 2 with one line and the results kept in
+    one ``out.new-*`` folder: ``(that line, the kept folder)``."""
+    code, err = main_here(tmp_path, monkeypatch, capsys, "run", "s.toml", "--out", "out",
+                          "--no-maps", "--quiet")
+    assert code == 2 and len(err) == 1, err
+    kept = sorted(tmp_path.glob("out.new-*"))
+    assert len(kept) == 1
+    return err[0], kept[0]
+
+
 def test_a_failed_swap_puts_the_old_folder_back_and_keeps_the_results(tmp_path, monkeypatch,
                                                                       capsys):
     old = _two_runs(tmp_path, monkeypatch, capsys)
@@ -800,17 +811,13 @@ def test_a_failed_swap_puts_the_old_folder_back_and_keeps_the_results(tmp_path, 
         return rename(src, dst, *args, **kwargs)
 
     monkeypatch.setattr(os, "rename", busy)
-    code, err = main_here(tmp_path, monkeypatch, capsys, "run", "s.toml", "--out", "out",
-                          "--no-maps", "--quiet")
-    assert code == 2 and len(err) == 1, err
-    kept = sorted(tmp_path.glob("out.new-*"))
-    assert len(kept) == 1
-    assert err[0] == (
+    err, kept = _run_again_refused(tmp_path, monkeypatch, capsys)
+    assert err == (
         f"error: out: field '--out': cannot be replaced (device or resource busy), so the "
-        f"folder was left as it was and the new results were kept in {kept[0].name}; move "
+        f"folder was left as it was and the new results were kept in {kept.name}; move "
         "them into place yourself, or deal with that and run again (or add --force)")
     assert snapshot(tmp_path / "out") == old
-    assert _scenario_name(kept[0]) == "second" and marker(kept[0])["command"] == "run"
+    assert _scenario_name(kept) == "second" and marker(kept)["command"] == "run"
     assert leftovers(tmp_path) == []
 
 
@@ -824,19 +831,15 @@ def test_a_file_appearing_during_the_run_keeps_the_results(tmp_path, monkeypatch
         (tmp_path / "out" / ".~lock.patches.csv#").write_text("user,host\n", encoding="utf-8")
 
     monkeypatch.setattr(outputs, "write_run_files", and_a_lock_file)
-    code, err = main_here(tmp_path, monkeypatch, capsys, "run", "s.toml", "--out", "out",
-                          "--no-maps", "--quiet")
-    assert code == 2 and len(err) == 1, err
-    kept = sorted(tmp_path.glob("out.new-*"))
-    assert len(kept) == 1
-    assert err[0] == (
+    err, kept = _run_again_refused(tmp_path, monkeypatch, capsys)
+    assert err == (
         "error: out: field '--out': holds .~lock.patches.csv#, which trophoscape did not write "
         "and which appeared during the run, so the folder was left as it was and the new "
-        f"results were kept in {kept[0].name}; move them into place yourself, or deal with "
+        f"results were kept in {kept.name}; move them into place yourself, or deal with "
         "that and run again (or add --force)")
     now = snapshot(tmp_path / "out")
     assert now.pop(".~lock.patches.csv#") == b"user,host\n" and now == old
-    assert _scenario_name(kept[0]) == "second"
+    assert _scenario_name(kept) == "second"
     assert leftovers(tmp_path) == []
 
 

@@ -211,18 +211,22 @@ def test_overlapping_habitat_losses_multiply_and_end_exactly():
     np.testing.assert_array_equal(capacity(7.0), base)
 
 
+def _twice_on_one_patch(shock, y0, duration, **model_values):
+    """One isolated patch run tightly with the same shock given twice, census every 1."""
+    model = make_model(1, **model_values)
+    ctx = ShockContext(network=None, dispersal={}, survival_per_km=1.0, model=model)
+    return simulate(make_system(model), y0, duration=duration, census_interval=1.0,
+                    extinction_abundance=0.0, rtol=1e-10, atol=1e-12,
+                    events=shock_events([shock, shock], ctx))
+
+
 def test_two_halvings_of_capacity_run_as_one_quartering():
     # one isolated logistic patch at K = 50, two halvings from t = 1 to t = 4: logistic growth
     # towards K / 4, then back towards K (closed form between events). An additive shift
     # would have made K zero here and the run fail.
-    model = make_model(1, growth="logistic", attack_rate=0.0)
-    system = make_system(model)
-    ctx = ShockContext(network=None, dispersal={}, survival_per_km=1.0, model=model)
-    shocks = [HabitatLoss(at=1.0, patches=np.array([0]), factor=0.5, duration=3.0)
-              for _ in range(2)]
-    traj = simulate(system, pack([50.0], [0.0]), duration=8.0, census_interval=1.0,
-                    extinction_abundance=0.0, rtol=1e-10, atol=1e-12,
-                    events=shock_events(shocks, ctx))
+    traj = _twice_on_one_patch(HabitatLoss(at=1.0, patches=np.array([0]), factor=0.5,
+                                           duration=3.0),
+                               pack([50.0], [0.0]), 8.0, growth="logistic", attack_rate=0.0)
     n = traj["prey"].values[:, 0]
     n4 = logistic(50.0, 12.5, 3.0)
     np.testing.assert_allclose(n[4], n4, rtol=1e-7)
@@ -251,14 +255,9 @@ def test_identical_zero_pulses_act_as_one():
 def test_two_zero_pulses_on_a_lone_predator_pause_its_decay():
     # no prey: p' = -m p, and m = 0 during the pulses, so p(t) = p0 exp(-m (t - 3))
     # (elementary)
-    model = make_model(1, mortality=0.5)
-    system = make_system(model)
-    ctx = ShockContext(network=None, dispersal={}, survival_per_km=1.0, model=model)
-    shocks = [MortalityPulse(at=1.0, patches=np.array([0]), factor=0.0, duration=3.0)
-              for _ in range(2)]
-    traj = simulate(system, pack([0.0], [100.0]), duration=6.0, census_interval=1.0,
-                    extinction_abundance=0.0, rtol=1e-10, atol=1e-12,
-                    events=shock_events(shocks, ctx))
+    traj = _twice_on_one_patch(MortalityPulse(at=1.0, patches=np.array([0]), factor=0.0,
+                                              duration=3.0),
+                               pack([0.0], [100.0]), 6.0, mortality=0.5)
     expected = 100.0 * np.exp(-0.5 * (traj.time - np.clip(traj.time - 1.0, 0.0, 3.0)))
     np.testing.assert_allclose(traj["predator"].values[:, 0], expected, rtol=1e-7)
 
