@@ -106,7 +106,7 @@ def test_headline_counts_the_removed_local_populations():
                "quasi_extinction": {"prey": {"removals": 1535, "individuals_removed": 1535.0},
                                     "predator": {"removals": 66, "individuals_removed": 66.0}}}
     rows = dict(_headline_rows(summary))
-    assert rows["local populations removed on falling through the quasi-extinction abundance"] == (
+    assert rows["local populations removed (quasi-extinction rule)"] == (
         "prey 1,535, predator 66")
     assert not any(k.startswith("local populations") for k in dict(_headline_rows(
         {"solver": summary["solver"]})))

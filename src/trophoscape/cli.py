@@ -217,12 +217,13 @@ def _dispatch(args) -> int:
         return 0
     scenario = demo_scenario_path() if args.command == "demo" else args.scenario
     study = load_study(scenario)
-    if not args.quiet:
-        _print_check(study)
     # the output folder is checked and staged before the run, which writes timeseries.nc
-    # into it as it goes
+    # into it as it goes (and before the network is printed, so a refused --out is the
+    # only thing said)
     with staged_folder(args.out, force=args.force, inputs=input_files(study.scenario),
                        command=args.command) as stage:
+        if not args.quiet:
+            _print_check(study)
         result = run_study(study, progress=not args.quiet, series_to=stage / "timeseries.nc")
         write_run_files(result, stage, maps=not args.no_maps, geojson=args.geojson)
     if not args.quiet:

@@ -309,7 +309,7 @@ def _headline_rows(summary):
         rows.append(("coexistence state", summary["stability"]))
     removed = summary.get("quasi_extinction")
     if removed:
-        rows.append(("local populations removed on falling through the quasi-extinction abundance",
+        rows.append(("local populations removed (quasi-extinction rule)",
                      ", ".join(f"{s} {removed[s]['removals']:,}" for s in SPECIES
                                if s in removed)))
     solver = summary["solver"]
