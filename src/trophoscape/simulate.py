@@ -20,7 +20,6 @@ Error control per patch
 
 from __future__ import annotations
 
-import copy
 from dataclasses import dataclass
 
 import numpy as np
@@ -130,25 +129,11 @@ def _initial_step(fun, t0, y0, t_bound, order, rtol, atol) -> float:
     return min(100 * h0, h1, interval)
 
 
-def _components(dense, index):
-    """The dense output of one step restricted to some components: ``t -> y(t)[index]``.
-
-    scipy's Runge–Kutta interpolants are linear in per-component arrays, so a copy holding
-    only those rows evaluates in O(len(index)); other interpolants are evaluated whole.
-    """
-    if isinstance(dense, si._ivp.rk.RkDenseOutput):
-        sub = copy.copy(dense)
-        sub.Q, sub.y_old = dense.Q[index], dense.y_old[index]
-        return sub
-    if isinstance(dense, si._ivp.rk.Dop853DenseOutput):
-        sub = copy.copy(dense)
-        sub.F, sub.y_old = dense.F[:, index], dense.y_old[index]
-        return sub
-    return lambda t: dense(t)[index]
-
-
 def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> float:
     """The earliest time in ``(t_old, t_new]`` at which a component falls to ``level``.
+
+    For solvers whose interpolant is not per component (BDF, Radau, LSODA); the Runge–Kutta
+    methods use :func:`_crossing_positions`, which also finds dips between step ends.
 
     Parameters
     ----------
@@ -165,10 +150,8 @@ def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> fl
         variant of regula falsi (Dowell & Jarratt 1971, BIT 11:168; from memory) to
         ``1e-12`` of the step, so the state there always has a component to remove.
     """
-    y = _components(dense, index)
-
     def gap(t):
-        return float(np.min(y(t))) - level
+        return float(np.min(dense(t)[index])) - level
 
     a, b = float(t_old), float(t_new)
     fa, fb = gap(a), gap(b)
@@ -195,6 +178,65 @@ def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> fl
                 fb *= 0.5
             side = 1
     return b
+
+
+def _dense_at(dense, index, x):
+    """Components ``index`` of one step's dense output, each at its own point ``x``.
+
+    ``x`` (shape ``(len(index),)``) is the position in the step, 0 at its start and 1 at its
+    end. scipy's Runge–Kutta interpolants are polynomials with per-component coefficients,
+    evaluated here for those rows only; None for other interpolants.
+    """
+    if isinstance(dense, si._ivp.rk.RkDenseOutput):
+        powers = np.cumprod(np.tile(x, (dense.order + 1, 1)), axis=0)
+        return dense.h * np.einsum("ik,ki->i", dense.Q[index], powers) + dense.y_old[index]
+    if isinstance(dense, si._ivp.rk.Dop853DenseOutput):
+        y = np.zeros(np.shape(index))
+        for i, f in enumerate(reversed(dense.F)):
+            y += f[index]
+            y *= x if i % 2 == 0 else 1.0 - x
+        return y + dense.y_old[index]
+    return None
+
+
+#: Populations within this share above the threshold at either end of a step are looked at
+#: between its ends (a dip deeper than this within one error-controlled step is implausible).
+_NEAR = 0.25
+#: Points per step at which populations near the threshold are looked at between step ends.
+_LOOKS = 16
+
+
+def _below_within(dense, index, level):
+    """Which of ``index`` fall below ``level`` somewhere in the step, on its interpolant.
+
+    Looked at on ``_LOOKS + 1`` evenly spaced points: a population that dips through the
+    threshold and back within one step is removed like one that ends the step below it, so
+    the rule does not depend on where the solver happened to put its step ends.
+    """
+    grid = np.linspace(0.0, 1.0, _LOOKS + 1)
+    values = np.stack([_dense_at(dense, index, np.full(index.size, g)) for g in grid])
+    return (values < level).any(axis=0)
+
+
+def _crossing_positions(dense, index, level):
+    """Where in the step each of ``index`` first falls to ``level``, and its abundance there.
+
+    The first of ``_LOOKS + 1`` evenly spaced points below the threshold brackets the
+    crossing with the point before it; bisection of the component's own interpolant narrows
+    it to 2**-42 of the step.
+    """
+    grid = np.linspace(0.0, 1.0, _LOOKS + 1)
+    values = np.stack([_dense_at(dense, index, np.full(index.size, g)) for g in grid])
+    first = np.argmax(values < level, axis=0)
+    first = np.where((values < level).any(axis=0), first, _LOOKS)
+    lo = grid[np.maximum(first - 1, 0)]
+    hi = grid[first]
+    for _ in range(38):
+        mid = 0.5 * (lo + hi)
+        below = _dense_at(dense, index, mid) < level
+        hi = np.where(below, mid, hi)
+        lo = np.where(below, lo, mid)
+    return hi, _dense_at(dense, index, hi)
 
 
 @dataclass(frozen=True)
@@ -535,7 +577,7 @@ def simulate(
                     "looser rtol/atol")
             if noisy:  # the step wanted, before a census cuts it short
                 h_wanted = getattr(solver, "h_abs", None)
-            t_old = solver.t
+            t_old, y_prev = solver.t, solver.y
             with np.errstate(over="ignore", invalid="ignore"):  # reported below instead
                 outcome = solver.step()
             steps += 1
@@ -561,14 +603,31 @@ def simulate(
             if rule:
                 now = solver.y >= level
                 crossed = above & ~now
+                per_component = isinstance(solver, si._ivp.rk.RungeKutta)
+                if per_component:
+                    # those near the threshold at either end may have dipped through it
+                    near = np.flatnonzero(above & now & (np.minimum(y_prev, solver.y)
+                                                         < (1.0 + _NEAR) * level))
+                    if near.size:
+                        dense = solver.dense_output()
+                        crossed[near[_below_within(dense, near, level)]] = True
                 if crossed.any():
                     # removed where it crosses: the step is cut back to the first crossing
-                    dense = solver.dense_output()
-                    t_end = first_crossing(dense, np.flatnonzero(crossed), level, t_old,
-                                           solver.t)
+                    dense = dense or solver.dense_output()
+                    index = np.flatnonzero(crossed)
+                    first = None
+                    if per_component:
+                        where, _ = _crossing_positions(dense, index, level)
+                        first = index[where == where.min()]
+                        t_end = t_old + float(where.min()) * (solver.t - t_old)
+                    else:
+                        t_end = first_crossing(dense, index, level, t_old, solver.t)
                     y_end = dense(t_end) if t_end < solver.t else solver.y.copy()
                     falling = above & (y_end < level)
+                    if first is not None:  # at its crossing, whatever the rounding
+                        falling[first] = True
                     now = y_end >= level
+                    now[falling] = False
                 above = now
             while k < times.size and times[k] <= t_end and (falling is None or times[k] < t_end):
                 if times[k] == solver.t:
