@@ -398,7 +398,7 @@ def simulate(
         :class:`trophoscape.noise.NoiseModel`. With noise the solver stops at every census
         and restarts with the step size it had reached. Without it (None) nothing changes.
         With demographic noise the run is event-based instead (whole individuals,
-        :func:`trophoscape.noise.simulate_events`); ``method``, ``rtol`` and ``atol`` do not
+        :func:`trophoscape.events.simulate_events`); ``method``, ``rtol`` and ``atol`` do not
         apply.
     dtype : numpy dtype
         Storage type of the recorded census states. The state is always integrated in
@@ -425,8 +425,8 @@ def simulate(
         When the solver fails; the message gives the time reached and what to try.
     """
     if noise is not None and getattr(noise, "demographic", False):
-        # whole individuals and random events: no ODE (trophoscape.noise.simulate_events)
-        from .noise import simulate_events
+        # whole individuals and random events: no ODE (trophoscape.events.simulate_events)
+        from .events import simulate_events
 
         traj = simulate_events(system, y0, duration=duration, census_interval=census_interval,
                                noise=noise, extinction_abundance=extinction_abundance, ids=ids,
