@@ -207,10 +207,16 @@ CASES = [
          "under [patches], naming the patch file (GeoJSON, GeoPackage or Shapefile) relative "
          "to the scenario",
          {"s.toml": scenario(patches={"path": None})}),
-    Case("noise-autocorrelation-one",
-         "error: s.toml: field 'noise.autocorrelation': 1.0 is out of range; give a number "
-         "of at least 0 and below 1 (1 would never change)",
-         {"s.toml": scenario(noise={"environmental_sd": 0.2, "autocorrelation": 1.0})}),
+    Case("noise-autocorrelation-retired",
+         "error: s.toml: field 'noise.autocorrelation': this key is retired: it correlated "
+         "successive census intervals, so the noise changed with the census interval; give "
+         "noise.correlation_time in time units instead (a value a at census interval c "
+         "becomes -c / ln(a)), and note that noise.environmental_sd is now per sqrt(time "
+         "unit) (README, \"Changes to the contract\")",
+         {"s.toml": scenario(noise={"environmental_sd": 0.2, "autocorrelation": 0.5})}),
+    Case("noise-step-zero",
+         "error: s.toml: field 'noise.noise_step': 0 is out of range",
+         {"s.toml": scenario(noise={"environmental_sd": 0.2, "noise_step": 0})}, prefix=True),
     Case("bad-field-ref",
          "error: s.toml: field 'prey.growth_rate': {'name': 'r'} is not a per-patch value; "
          "write { field = \"ATTRIBUTE\" } with a column of the patch file, or give one number",

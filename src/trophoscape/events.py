@@ -36,12 +36,12 @@ propensity) and at most one of them fires per leap. When the leap would be short
 ``10 / a0`` (``a0`` the total propensity) the run takes up to 100 exact steps of the
 direct method instead (Gillespie 1977, J. Phys. Chem. 81:2340). A leap that would make a
 count negative is rejected and retried with half the step (the 2005 paper's rule). The
-leap is cut at every census and shock time; by the memorylessness of the exponential
+leap is cut at every census, noise step and shock time; by the memorylessness of the exponential
 law this leaves the critical events exact.
 
 The initial state and a state after a shock that scales it are made whole by stochastic
 rounding (``floor(y) + Bernoulli(y - floor(y))``, mean-preserving). Census times stay:
-the state is recorded there, and the environmental multipliers are redrawn there. The
+the state is recorded there; environmental noise changes the rates at its own steps. The
 quasi-extinction rule ``extinction_abundance`` is kept as in ODE runs: at each census,
 local populations below it are set to 0; with the default of 1 individual it never acts,
 since counts are whole and a population below 1 is already 0. Stacked replicates run one
@@ -84,13 +84,18 @@ def local_propensities(model: LocalModel, n, p) -> dict:
     q = model.params
     births, deaths = _growth_split(model.growth, n, q)
     eaten = model.functional_response.value(n, p, q) * p
+    # environmental noise adds to per-capita rates (trophoscape.noise), so a removal rate
+    # can turn negative: its negative part is then a birth rate, and the expected change
+    # is still the ODE's right-hand side
+    harvest = q["prey_harvest"] * n if "prey_harvest" in q else np.zeros_like(n)
+    death = q["mortality"] * p
     return {
-        "prey_birth": births,
+        "prey_birth": births + np.maximum(-harvest, 0.0),
         "prey_death": deaths,
         "prey_eaten": eaten,
-        "prey_harvest": q["prey_harvest"] * n if "prey_harvest" in q else np.zeros_like(n),
-        "predator_birth": q["conversion"] * eaten,
-        "predator_death": q["mortality"] * p,
+        "prey_harvest": np.maximum(harvest, 0.0),
+        "predator_birth": q["conversion"] * eaten + np.maximum(-death, 0.0),
+        "predator_death": np.maximum(death, 0.0),
     }
 
 
@@ -403,7 +408,7 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
 
     Parameters are those of :func:`trophoscape.simulate.simulate` (solver settings do not
     apply). ``noise`` is a :class:`NoiseModel` with ``demographic=True``; its environmental
-    settings, if any, redraw the rates at every census as in ODE runs. A system stacked for
+    settings, if any, redraw the rates at every noise step as in ODE runs. A system stacked for
     ``R > 1`` replicates (:func:`stack_system`) is run copy by copy, replicate ``r`` with its
     own seed, and the results are laid out as the stacked run's would be.
 
@@ -458,8 +463,19 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
         next_event = 0
         current = run.interval(base)
         channels = event_channels(current)
+        environmental = getattr(noise, "environmental", False)
+        noise_step = float(noise.step) if environmental else np.inf
+        next_noise = 1  # the next noise step starts at next_noise * noise_step
         t, k = float(times[0]), 1
         while k < times.size:
+            if environmental and t >= next_noise * noise_step:
+                while next_noise * noise_step <= t:
+                    next_noise += 1
+                new = run.interval(base)  # redrawn rates: new propensities, same channels
+                if new is not current:
+                    current = new
+                    channels = event_channels(
+                        current, like=channels if _same_structure(channels, current) else None)
             if next_event < len(pending) and float(pending[next_event].time) <= t:
                 while next_event < len(pending) and float(pending[next_event].time) <= t:
                     base, y = pending[next_event].apply(base, x.astype(float))
@@ -469,7 +485,7 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
                     next_event += 1
                 current = run.interval(base, redraw=False)
                 channels = event_channels(current)  # a shock may rewire: build anew
-            stop = float(times[k])
+            stop = min(float(times[k]), next_noise * noise_step)
             if next_event < len(pending):
                 stop = min(stop, float(pending[next_event].time))
             x = advance_events(x, t, stop, channels, rng, stats=stats)
@@ -481,13 +497,6 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
                 x = _census(x.astype(float), extinction_abundance)[0].astype(np.int64)
                 record[k] = x
                 k += 1
-                if k < times.size:
-                    new = run.interval(base)
-                    if new is not current:  # redrawn rates: new propensities, same channels
-                        current = new
-                        channels = event_channels(
-                            current, like=channels if _same_structure(channels, current)
-                            else None)
         counts = dict(nfev=stats.evaluations, steps=stats.leaps + stats.exact_steps,
                       restarts=stats.rejected)
     stats_out = SolverStats(method="tau-leap", njev=0, nlu=0, status=0,

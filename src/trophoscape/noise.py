@@ -1,28 +1,53 @@
-"""Environmental and demographic noise.
+"""Environmental noise, and replicates stacked into one system.
 
-With environmental noise alone a run stays a deterministic ODE between census steps
-(:mod:`trophoscape.simulate`) whose rates are redrawn at each census, so the same scipy
-solvers serve deterministic and noisy runs. With demographic noise the run is event-based
-(whole individuals, tau-leaping with exact steps for small counts; see below).
+With environmental noise alone a run stays a deterministic ODE between noise steps
+(:mod:`trophoscape.simulate`): the noise is held over each step of its own clock (``step``,
+in time units from ``t = 0``, never the census interval), so the same scipy solvers serve
+deterministic and noisy runs. Demographic noise (whole individuals, random events) is in
+:mod:`trophoscape.events`.
 
 Environmental noise
-    For every census interval ``k`` each patch gets a multiplier of its prey growth rate
-    (and, optionally, of its predator mortality), held fixed over that interval::
+    A continuous-time process added to the per-capita rates of each patch: the prey's
+    per-capita growth gets ``+ ξ_i(t)`` and, optionally, the predator's per-capita mortality
+    an independent ``+ η_i(t)``::
 
-        r_ik = r_i exp(sd z_ik - sd² / 2),    z_ik ~ N(0, 1)
+        dN_i/dt = (the model's terms) + ξ_i(t) N_i,    dP_i/dt = (...) - η_i(t) P_i
 
-    The ``- sd²/2`` makes the multiplier's mean exactly 1, since ``E[exp(sd Z)] =
-    exp(sd²/2)`` for a standard normal ``Z`` (the lognormal mean; common practice). ``z`` is
-    correlated in space and optionally in time:
+    (environmental stochasticity as a random per-capita growth rate; Lande, Engen &
+    Sæther 2003, *Stochastic Population Dynamics in Ecology and Conservation*, ch. 1;
+    from memory). ``ξ`` is a stationary Gaussian process with mean 0 and, in time, the
+    Ornstein–Uhlenbeck covariance ``cov(ξ(t), ξ(t + s)) = σ²/(2τ) exp(-|s|/τ)``: ``σ``
+    (``environmental_sd``) is its intensity per √(time unit) — the integral of ``ξ`` over a
+    window ``T`` much longer than ``τ`` has sd ``σ √T``, so over such a window the noise
+    multiplies abundance by ``exp(X)``, sd(X) = ``σ √T`` — and ``τ`` (``correlation_time``)
+    its correlation time. ``τ = 0`` is the white-noise limit (the derivative of a Wiener
+    process with intensity ``σ``), read as the limit of smooth noise (Stratonovich; Wong &
+    Zakai 1965, Ann. Math. Stat. 36:1560, from memory), so the noise does not move the long-run
+    growth rate of log abundance.
 
-    * space: ``corr(z_i, z_j) = s + (1 - s) k(d_ij)`` with ``d_ij`` the distance between the
-      patch centroids, ``k`` the kernel ``exp(-d/L)`` ("exponential") or
-      ``exp(-d²/(2 L²))`` ("gaussian") and ``s`` the *shared share*: the part of the variance
-      from one regional value common to every patch (the Moran effect; Moran 1953).
-      ``correlation_km = "regional"`` means ``s = 1``: every patch gets the same multiplier.
-    * time: AR(1), ``z_k = a z_{k-1} + sqrt(1 - a²) e_k`` (reddened noise; Ripa &
-      Lundberg 1996, Proc. R. Soc. B 263:1751, from memory), started from the stationary
-      law, so ``z_k`` has unit variance at every step and lag-1 autocorrelation ``a``.
+    On the noise clock (steps ``[t_k, t_k + Δ)``, ``t_k = k Δ``) each step holds the
+    step's *average* ``(1/Δ) ∫ ξ dt``, drawn exactly with the process value at the step's
+    end from their joint Gaussian law given the value at its start (Gillespie 1996, Phys.
+    Rev. E 54:2084, "Exact numerical simulation of the Ornstein-Uhlenbeck process and its
+    integral"), in units of the stationary sd, ``a = exp(-Δ/τ)``::
+
+        z_{k+1} = a z_k + sqrt(1 - a²) e₁
+        J_k     = τ (1 - a) z_k + β e₁ + γ e₂          (J_k = ∫ z dt over the step)
+        β = τ (1 - a)² / sqrt(1 - a²),   β² + γ² = τ² (2Δ/τ - 3 + 4a - a²)
+
+    and ``ξ̄_k = σ / sqrt(2τ) · J_k / Δ`` (white noise: ``ξ̄_k = σ e₁ / √Δ``). So the
+    noise's integral over every step is exact whatever ``Δ``, ``τ`` or the census interval;
+    holding it within the step is the only approximation, of second order in ``λΔ`` for a
+    population relaxing at rate ``λ`` (for ``x' = -λ x + ξ`` with white ``ξ`` the stationary
+    variance is ``1 - (λΔ)²/12`` of the exact one; common practice, worked out for this
+    scheme). ``z`` starts from its stationary law.
+
+    In space, ``e₁`` and ``e₂`` are standard-normal fields with ``corr(e_i, e_j) = s + (1 - s)
+    k(d_ij)``: ``d_ij`` the distance between the patch centroids, ``k`` the kernel ``exp(-d/L)``
+    ("exponential") or ``exp(-d²/(2 L²))`` ("gaussian") and ``s`` the *shared share*, the part
+    of the variance from one regional value common to every patch (the Moran effect; Moran
+    1953, Aust. J. Zool. 1:291). ``correlation_km = "regional"`` means ``s = 1``: every patch
+    gets the same noise.
 
     Sampling is low rank: the kernel part is ``Φ w`` with ``w ~ N(0, I_D)`` and ``Φ`` the
     random Fourier features of the stationary kernel (Rahimi & Recht 2007, "Random features
@@ -31,9 +56,12 @@ Environmental noise
     ``1/L`` for the Gaussian kernel; for ``exp(-d/L)`` in 2-D a bivariate Student t with
     1 degree of freedom and scale ``1/L`` (the Fourier transform of ``exp(-|x|/L)`` in two
     dimensions is proportional to ``(1 + L²|ω|²)^(-3/2)``). Each row of ``Φ`` is scaled to
-    unit length so that every patch's marginal variance is exactly 1 (the mean-preserving
-    correction needs it exactly); correlations carry the Monte Carlo error of ``D``
-    features, an sd of about ``sqrt(1/(2D))`` (0.03 at the default rank ``D = 500``).
+    unit length so that every patch's marginal variance is exactly 1; correlations carry
+    the Monte Carlo error of ``D`` features. For two patches whose kernel correlation is
+    ``k = k(d)`` (and ``k₂ = k(2d)``, the kernel at twice their distance) the sampled
+    correlation has sd about ``sqrt(v / D)`` with ``v = 1 - 7k²/4 + k₂/2 + k² k₂/4`` (the
+    delta method on the row-normalised features, worked out here): ``sqrt(1/D)`` = 0.045 for
+    distant pairs at the default rank ``D = 500``, falling to 0 as the patches meet.
     ``Φ`` is drawn once per replicate; each step then costs O(patches × D), never
     O(patches²), and memory is patches × D per replicate. With fewer patches than features
     the field is drawn as ``L z`` instead, ``L Lᵀ = Φ Φᵀ`` (:func:`covariance_root`): the
@@ -45,8 +73,8 @@ Demographic noise
 Replicates
     A :class:`NoiseModel` holds one seed per replicate; replicate ``r`` draws every number
     from two generators of its own, ``SeedSequence(seeds[r]).spawn(2)``: the first for the
-    environment (its Fourier features first, then one field per census interval), the second
-    for demographic counts. So the same seeds give the same numbers bit for bit, and the
+    environment (its Fourier features first, then two fields per noise step and noisy
+    rate), the second for demographic counts. So the same seeds give the same numbers bit for bit, and the
     environmental values of
     replicate ``r`` do not depend on how many replicates run or whether they are integrated
     stacked (one block-diagonal system) or one by one.
@@ -62,14 +90,17 @@ import scipy.sparse as sp
 
 from .dynamics import LocalModel
 
-__all__ = ["KERNELS", "DEFAULT_RANK", "NoiseModel", "NoiseRun", "spectral_frequencies",
-           "fourier_features", "kernel_correlation", "lognormal_multiplier",
-           "stack_system"]
+__all__ = ["KERNELS", "DEFAULT_RANK", "DEFAULT_STEP_SHARE", "NoiseModel", "NoiseRun",
+           "spectral_frequencies", "fourier_features", "kernel_correlation", "ou_step",
+           "auto_step", "stack_system"]
 
 #: Spatial correlation kernels of environmental noise.
 KERNELS = ("exponential", "gaussian")
-#: Random Fourier features per replicate: correlation error sd about sqrt(1/(2 D)) = 0.03.
+#: Random Fourier features per replicate: correlation error sd sqrt(1/D) = 0.045 for
+#: distant pairs (module notes).
 DEFAULT_RANK = 500
+#: ``noise_step = "auto"``: this share of the fastest local time scale (see :func:`auto_step`).
+DEFAULT_STEP_SHARE = 0.1
 
 
 # ------------------------------------------------------------------------- spatial field
@@ -139,9 +170,43 @@ def covariance_root(features: np.ndarray) -> np.ndarray:
         return vectors * np.sqrt(np.clip(values, 0.0, None))[:, None, :]
 
 
-def lognormal_multiplier(z, sd: float) -> np.ndarray:
-    """``exp(sd z - sd²/2)``: mean 1 when ``z`` is standard normal."""
-    return np.exp(sd * np.asarray(z) - 0.5 * sd * sd)
+def ou_step(tau: float, dt: float):
+    """Coefficients of one exact step of a unit-variance Ornstein–Uhlenbeck process.
+
+    For ``z`` with ``cov(z(t), z(t + s)) = exp(-|s|/τ)`` and a step ``Δ``: the value at the
+    step's end and the step's integral ``J = ∫ z dt`` given the value ``z₀`` at its start are
+    ``z₁ = a z₀ + c e₁`` and ``J = m z₀ + β e₁ + γ e₂`` with ``e₁, e₂`` independent standard
+    normals (Gillespie 1996, Phys. Rev. E 54:2084).
+
+    Returns
+    -------
+    tuple of float
+        ``(a, c, m, beta, gamma)``.
+    """
+    x = dt / tau
+    a = float(np.exp(-x))
+    one_minus_a = float(-np.expm1(-x))
+    c = float(np.sqrt(one_minus_a * (1.0 + a)))
+    if x < 1e-3:  # series: 2x - 3 + 4e^-x - e^-2x = 2x³/3 - x⁴/2 + 7x⁵/30 - ...
+        var_j = tau * tau * x ** 3 * (2.0 / 3.0 - x / 2.0 + 7.0 * x * x / 30.0)
+    else:
+        var_j = tau * tau * (2.0 * x + 4.0 * float(np.expm1(-x)) - float(np.expm1(-2.0 * x)))
+    beta = tau * one_minus_a ** 2 / c
+    gamma = float(np.sqrt(max(var_j - beta * beta, 0.0)))
+    return a, c, tau * one_minus_a, beta, gamma
+
+
+def auto_step(params, correlation_time: float = 0.0, share: float = DEFAULT_STEP_SHARE) -> float:
+    """The default noise step: ``share`` of the fastest local time scale.
+
+    That time scale is ``1 / max(prey growth rate, predator mortality rate)`` over the
+    patches (the rates a patch relaxes or cycles at are of that order). The correlation
+    time does not enter: the step's noise integral is exact for any ``τ`` (module notes).
+    """
+    rates = [float(np.max(np.abs(np.asarray(params.get(k, 0.0), dtype=float))))
+             for k in ("growth_rate", "mortality")]
+    fastest = max(rates)
+    return share / fastest if fastest > 0 else 0.1
 
 
 # ----------------------------------------------------------------------------- the model
@@ -155,19 +220,23 @@ class NoiseModel:
         Patch centroids in km (any metric CRS); distances between them set correlations.
     seeds : sequence of int, length n_replicates
     environmental_sd : float
-        sd of the log multiplier of prey growth rate per census interval (0: none).
+        ``σ``: intensity of the noise in the prey's per-capita growth rate, per √(time
+        unit) (0: none; module notes).
     mortality_sd : float
-        The same for predator mortality (an independent field with the same correlation).
+        The same for the predator's per-capita mortality (an independent field with the
+        same correlation).
     correlation_km : float or None
         Length ``L`` of the kernel; None when the noise is wholly regional.
     kernel : {"exponential", "gaussian"}
     shared_share : float in [0, 1]
         Share of the variance from one value common to all patches (1 with
         ``correlation_km=None``).
-    autocorrelation : float in [0, 1)
-        AR(1) coefficient between successive census intervals.
+    correlation_time : float
+        ``τ`` in time units; 0 is white noise.
+    step : float
+        ``Δ``, the noise step in time units: the noise is held over ``[kΔ, (k+1)Δ)``.
     demographic : bool
-        Census-step demographic fluctuations (see the module notes).
+        Births, deaths and moves as random events (:mod:`trophoscape.events`).
     prey_movement, predator_movement : sparse array (n_patches, n_patches), optional
         One replicate's movement operators; needed for demographic noise in dispersal.
     rank : int
@@ -181,7 +250,8 @@ class NoiseModel:
     correlation_km: float | None = 10.0
     kernel: str = "exponential"
     shared_share: float = 0.0
-    autocorrelation: float = 0.0
+    correlation_time: float = 0.0
+    step: float = 0.05
     demographic: bool = False
     prey_movement: object = field(default=None, repr=False)
     predator_movement: object = field(default=None, repr=False)
@@ -192,6 +262,9 @@ class NoiseModel:
         object.__setattr__(self, "centroids_km", np.asarray(self.centroids_km, dtype=float))
         if self.correlation_km is None:
             object.__setattr__(self, "shared_share", 1.0)
+        if not (self.step > 0 and np.isfinite(self.step)):
+            raise ValueError(f"the noise step must be a positive number of time units, not "
+                             f"{self.step!r}")
 
     @property
     def n_patches(self) -> int:
@@ -220,7 +293,8 @@ class NoiseModel:
 
 
 class NoiseRun:
-    """The noise of one run of :func:`trophoscape.simulate.simulate`: call in census order.
+    """The noise of one run of :func:`trophoscape.simulate.simulate`: one call of
+    :meth:`interval` per noise step, in order.
 
     The system it perturbs holds ``n_replicates`` copies of the network one after another
     (``stack_system``; one copy when there is one replicate), patch ``i`` of replicate ``r``
@@ -248,8 +322,10 @@ class NoiseRun:
             if n < model.rank:
                 # fewer patches than features: the same Gaussian law from n normals
                 self.features = covariance_root(self.features)   # (R, n, n)
-        self.multipliers = {}
+        self.rates = {}
         self.shape = (reps, n)
+        tau = float(model.correlation_time)
+        self._ou = ou_step(tau, float(model.step)) if tau > 0 else None
 
     # -- environmental
     def _innovation(self) -> np.ndarray:
@@ -273,34 +349,48 @@ class NoiseRun:
             out += np.sqrt(s) * shared[:, None]
         return out
 
-    def _advance(self, name: str) -> np.ndarray:
-        a = self.model.autocorrelation
-        e = self._innovation()
+    def _advance(self, name: str, sd: float) -> np.ndarray:
+        """The next step's average of the noise ``name`` (per time unit), shape (R n,)."""
+        dt = float(self.model.step)
+        e1 = self._innovation()
+        if self._ou is None:  # white noise: the step's integral is σ √Δ e₁
+            return (sd / np.sqrt(dt) * e1).reshape(-1)
+        tau = float(self.model.correlation_time)
+        a, c, m, beta, gamma = self._ou
+        e2 = self._innovation()
         z = self.z.get(name)
-        z = e if z is None else a * z + np.sqrt(1.0 - a * a) * e
-        self.z[name] = z
-        return z.reshape(-1)
+        if z is None:
+            z = self._innovation()  # the stationary law at t = 0
+        integral = m * z + beta * e1 + gamma * e2
+        self.z[name] = a * z + c * e1
+        return (sd / np.sqrt(2.0 * tau) * integral / dt).reshape(-1)
 
     def interval(self, system, *, redraw: bool = True):
-        """The system for the next census interval: ``system`` with noisy rates.
+        """The system for the next noise step: ``system`` with the noise added to its rates.
 
         ``system`` is the run's system without noise (shocks may change it); the unperturbed
-        rates are always read from it. ``redraw=False`` applies the multipliers of the
-        current interval again (to a system a shock changed within the interval).
+        rates are always read from it. ``redraw=False`` applies the noise of the current
+        step again (to a system a shock changed within the step).
         """
         m = self.model
         if not m.environmental:
             return system
-        if redraw or not self.multipliers:
+        if redraw or not self.rates:
+            # fixed order of draws: growth first, then mortality
             if m.environmental_sd > 0:
-                self.multipliers["growth_rate"] = lognormal_multiplier(
-                    self._advance("growth"), m.environmental_sd)
+                self.rates["growth"] = self._advance("growth", m.environmental_sd)
             if m.mortality_sd > 0:
-                self.multipliers["mortality"] = lognormal_multiplier(
-                    self._advance("mortality"), m.mortality_sd)
+                self.rates["mortality"] = self._advance("mortality", m.mortality_sd)
         params = dict(system.model.params)
-        for name, factor in self.multipliers.items():
-            params[name] = np.asarray(params[name]) * factor
+        size = self.shape[0] * self.shape[1]
+        if "growth" in self.rates:
+            # a per-capita gain ξ is a negative per-capita removal of the prey
+            harvest = np.broadcast_to(np.asarray(params.get("prey_harvest", 0.0), dtype=float),
+                                      (size,))
+            params["prey_harvest"] = harvest - self.rates["growth"]
+        if "mortality" in self.rates:
+            params["mortality"] = (np.broadcast_to(np.asarray(params["mortality"], dtype=float),
+                                                   (size,)) + self.rates["mortality"])
         model = system.model
         new = LocalModel(growth=model.growth, response=model.response, params=params)
         return system.with_model(new)

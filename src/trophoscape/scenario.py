@@ -114,13 +114,6 @@ def _number_or(word, **bounds):
 _nonneg = _number(0)
 
 
-def _below_one(v):
-    """A coefficient in [0, 1): 1 would be noise that never changes."""
-    msg = _nonneg(v)
-    if msg is None and v >= 1:
-        return (f"{v!r} is out of range; give a number of at least 0 and below 1 "
-                "(1 would never change)")
-    return msg
 _pos = _number(0, lo_open=True)
 
 SCHEMA: dict[str, dict[str, Key]] = {
@@ -185,18 +178,25 @@ SCHEMA: dict[str, dict[str, Key]] = {
     },
     "noise": {
         "environmental_sd": Key(0.0, _nonneg,
-                                doc="sd of the log multiplier of prey growth rate per census "
-                                    "interval (0: no environmental noise)"),
+                                doc="intensity of the noise in the prey's per-capita growth "
+                                    "rate, per sqrt(time unit): over a time T it multiplies "
+                                    "prey abundance by exp(X), sd(X) = environmental_sd "
+                                    "sqrt(T) (0: no environmental noise)"),
         "predator_mortality_sd": Key(0.0, _nonneg,
-                                     doc="the same for predator mortality (independent field)"),
+                                     doc="the same for the predator's per-capita mortality "
+                                         "(an independent field)"),
         "correlation_km": Key(10.0, _number_or("regional", lo=0, lo_open=True),
                               doc='spatial correlation length, or "regional" (one shared value)'),
         "kernel": Key("exponential", _choice("exponential", "gaussian"),
                       doc="how correlation decays with the distance between patch centroids"),
         "shared_share": Key(0.0, _number(0, 1),
                             doc="share of the variance common to every patch (Moran effect)"),
-        "autocorrelation": Key(0.0, _below_one,
-                               doc="AR(1) coefficient between successive census intervals"),
+        "correlation_time": Key(0.0, _nonneg,
+                                doc="time units over which the noise keeps its value "
+                                    "(Ornstein-Uhlenbeck correlation time; 0: white noise)"),
+        "noise_step": Key("auto", _number_or("auto", lo=0, lo_open=True),
+                          doc='time units the noise is held over; "auto": a tenth of '
+                              "1 / max(prey growth rate, predator mortality rate)"),
         "demographic": Key(False, _flag,
                            doc="births, deaths, predation and moves as random events "
                                "(tau-leaping with exact steps for small counts)"),
@@ -216,6 +216,16 @@ SCHEMA: dict[str, dict[str, Key]] = {
 
 #: Sections of the contract that this version reads but cannot act on yet.
 NOT_YET: dict[str, str] = {}
+
+#: Keys that meant something else in earlier versions: refused with what to write instead.
+RETIRED: dict[tuple[str, str], str] = {
+    ("noise", "autocorrelation"): (
+        "this key is retired: it correlated successive census intervals, so the noise "
+        "changed with the census interval; give noise.correlation_time in time units "
+        "instead (a value a at census interval c becomes -c / ln(a)), and note that "
+        "noise.environmental_sd is now per sqrt(time unit) (README, \"Changes to the "
+        "contract\")"),
+}
 
 
 @dataclass(frozen=True)
@@ -352,6 +362,8 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
             raise InputError(f"{content!r} is not a section; write [{name}] on a line of its "
                              "own with its keys below it", file=file, field=name)
         for key in content:
+            if (name, key) in RETIRED:
+                raise InputError(RETIRED[name, key], file=file, field=f"{name}.{key}")
             if key not in SCHEMA[name]:
                 hint = _suggest(key, SCHEMA[name]) or (
                     f"; [{name}] takes {', '.join(SCHEMA[name])}")

@@ -392,11 +392,12 @@ def simulate(
         A census at the same time records the state before the event. Events at or after
         ``duration`` are ignored; events at time 0 act before the first step.
     noise : optional
-        Stochasticity applied at census steps: an object with ``start()`` returning a
-        stateful run with ``interval(system, redraw=True) -> system`` (the system to
-        integrate over the next census interval, with noisy rates); see
-        :class:`trophoscape.noise.NoiseModel`. With noise the solver stops at every census
-        and restarts with the step size it had reached. Without it (None) nothing changes.
+        Environmental noise held over the steps of its own clock: an object with a ``step``
+        (time units) and ``start()`` returning a stateful run with ``interval(system,
+        redraw=True) -> system`` (the system to integrate over the next noise step, with
+        noisy rates); see :class:`trophoscape.noise.NoiseModel`. The solver stops at every
+        noise step (``k * step`` from time 0) and restarts with the step size it had
+        reached; census times do not stop it. Without noise (None) nothing changes.
         With demographic noise the run is event-based instead (whole individuals,
         :func:`trophoscape.events.simulate_events`); ``method``, ``rtol`` and ``atol`` do not
         apply.
@@ -450,6 +451,8 @@ def simulate(
 
     noisy = noise is not None
     if noisy:
+        noise_step = float(noise.step)
+        next_noise = 1  # the next noise step starts at next_noise * noise_step
         run = noise.start()
         base = system  # the system without noise; events change it, noise perturbs it
         system = run.interval(base)
@@ -476,8 +479,8 @@ def simulate(
 
     def bound():
         b = float(pending[next_event].time) if next_event < len(pending) else times[-1]
-        # with noise the rates change at every census: never step across one
-        return min(b, float(times[k])) if noisy and k < times.size else b
+        # with noise the rates change at every noise step: never step across one
+        return min(b, next_noise * noise_step) if noisy else b
 
     def remove(y_now, falling):
         """Quasi-extinction of the components ``falling`` (bool): zeroed, counted."""
@@ -502,7 +505,7 @@ def simulate(
             else:
                 system, y_start = pending[next_event].apply(system, y_start)
             next_event += 1
-        if noisy:  # the same noisy rates on the changed system, up to the next census
+        if noisy:  # the same noisy rates on the changed system, up to the next noise step
             system = run.interval(base, redraw=False)
         rhs = system.rhs_function(internal=internal)
         if method in IMPLICIT:
@@ -565,9 +568,23 @@ def simulate(
     # (kept by restart from then on)
     above = solver.y >= level
     status, message = 0, "The solver successfully reached the end of the integration interval."
+    h_wanted = None
     try:
         while k < times.size:
             if solver.status == "finished" and solver.t < times[k]:
+                if noisy and solver.t >= next_noise * noise_step:
+                    # a new noise step: new rates from here
+                    while next_noise * noise_step <= solver.t:
+                        next_noise += 1
+                    system = run.interval(base)
+                    rhs = system.rhs_function(internal=internal)
+                    if method in IMPLICIT:
+                        options["jac"] = system.jacobian_function()
+                    h = step_wanted(solver)
+                    # the last step was cut to end at the noise step: keep the one wanted
+                    h = max(h or 0.0, h_wanted or 0.0) or None
+                    solver = restart(solver, solver.t, solver.y.copy(), h)
+                    continue
                 if next_event < len(pending) and solver.t >= float(pending[next_event].time):
                     h = step_wanted(solver)
                     solver = restart(solver, solver.t, solver.y.copy(), 0.5 * h if h else None)
@@ -575,7 +592,7 @@ def simulate(
                 raise RunError(  # pragma: no cover
                     'the solver stopped before the end of the run; try method = "BDF" or '
                     "looser rtol/atol")
-            if noisy:  # the step wanted, before a census cuts it short
+            if noisy:  # the step wanted, before a noise step cuts it short
                 h_wanted = getattr(solver, "h_abs", None)
             t_old, y_prev = solver.t, solver.y
             with np.errstate(over="ignore", invalid="ignore"):  # reported below instead
@@ -645,16 +662,6 @@ def simulate(
                 if sink is not None and k - sunk == sink_rows:
                     sink(sunk, k, record)
                     sunk = k
-                if noisy and k < times.size and falling is None:
-                    system = run.interval(base)
-                    rhs = system.rhs_function(internal=internal)
-                    if method in IMPLICIT:
-                        options["jac"] = system.jacobian_function()
-                    h = step_wanted(solver)
-                    # the last step was cut to end at the census: keep the one wanted
-                    h = max(h or 0.0, h_wanted or 0.0) or None
-                    solver = restart(solver, times[k - 1], y_k.copy(), h)
-                    break
             if falling is not None:
                 # half the step reached: the full one was often rejected right after a
                 # population was zeroed (benchmarks/README.md)

@@ -227,17 +227,21 @@ def run_seeds(scenario: Scenario) -> list[int]:
 def noise_model(study: Study, seeds) -> "NoiseModel | None":
     """The study's ``[noise]`` settings as a :class:`~trophoscape.noise.NoiseModel`, or None
     when the scenario has no noise."""
-    from .noise import NoiseModel
+    from .noise import NoiseModel, auto_step
 
     sc = study.scenario
     corr = sc["noise.correlation_km"]
+    step = sc["noise.noise_step"]
+    if step == "auto":
+        step = auto_step(study.system.model.params)
     model = NoiseModel(
         centroids_km=study.landscape.centroids / 1000.0, seeds=tuple(seeds),
         environmental_sd=sc["noise.environmental_sd"],
         mortality_sd=sc["noise.predator_mortality_sd"],
         correlation_km=None if corr == "regional" else float(corr),
         kernel=sc["noise.kernel"], shared_share=sc["noise.shared_share"],
-        autocorrelation=sc["noise.autocorrelation"], demographic=sc["noise.demographic"],
+        correlation_time=sc["noise.correlation_time"], step=float(step),
+        demographic=sc["noise.demographic"],
         prey_movement=study.system.prey_movement,
         predator_movement=study.system.predator_movement, rank=sc["noise.rank"])
     return model if model.active else None
@@ -424,6 +428,7 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
     if noise is not None:
         summary["noise"] = {k.split(".", 1)[1]: sc[k] for k in sc.values
                             if k.startswith("noise.")}
+        summary["noise"]["noise_step_used"] = float(noise.step)
     return RunResult(study=study, trajectory=traj, patches=table, summary=summary,
                      extras=extras, series_file=None if writer is None else writer.path)
 
