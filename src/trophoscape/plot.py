@@ -10,10 +10,17 @@ never sees half a PNG.
 Colours are chosen to stay readable for colour-blind readers: viridis / cividis for sequential
 values, PuOr (centred on zero) for differences, and the Okabe & Ito (2008) palette for classes and
 for the two species.
+
+Text from the user (patch ids, column and class names, scenario names, the time unit, sweep
+keys and values, titles given by callers) is drawn exactly as written: it goes through
+:func:`_literal`, which escapes every ``$`` so that matplotlib's mathtext never parses it,
+and every public function draws with ``text.usetex`` off, so a ``matplotlibrc`` that turns
+TeX on cannot send it to LaTeX either.
 """
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import tempfile
@@ -37,10 +44,37 @@ LINK_COLOUR = "#9a9a9a"
 MAX_PANELS = 6
 
 
+def _literal(text) -> str:
+    """``text`` as a matplotlib string that is drawn exactly as written.
+
+    matplotlib parses a string with an even number of unescaped ``$`` as mathtext (so a patch
+    id "Site $A$" would lose its dollars and turn italic, and "$x^$" raise a ParseException
+    while drawing). Escaping every ``$`` as ``\\$`` leaves no unescaped dollar; outside
+    mathtext matplotlib draws a backslash as it is and turns each ``\\$`` back into ``$``
+    (matplotlib, "Writing mathematical expressions", and ``Text._preprocess_math``), so the
+    drawn text is ``text`` itself, backslashes included. Works the same for titles, labels,
+    tick labels and legend entries, which a per-Text ``parse_math=False`` would not all reach.
+    """
+    return str(text).replace("$", r"\$")
+
+
+def _plain_text(draw):
+    """Run a drawing function with ``text.usetex`` off (whatever the user's matplotlibrc
+    says), so every label is drawn by matplotlib and user text is never sent to TeX."""
+    @functools.wraps(draw)
+    def wrapper(*args, **kwargs):
+        import matplotlib
+
+        with matplotlib.rc_context({"text.usetex": False}):
+            return draw(*args, **kwargs)
+    return wrapper
+
+
 # --------------------------------------------------------------------------------------------
 # patch map
 
 
+@_plain_text
 def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap=None,
               diverging=False, categorical=False, bool_labels=("present", "absent"),
               isolines=None) -> Path:
@@ -109,14 +143,15 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
                                    (False, bool_labels[1], OKABE_ITO[1])):
             chosen = (present == flag) & ~missing
             colours[chosen] = _rgba(colour)
-            handles.append(Patch(facecolor=colour, edgecolor="0.3", label=word))
+            handles.append(Patch(facecolor=colour, edgecolor="0.3", label=_literal(word)))
     elif kind == "class":
         classes = sorted({str(v) for v in values[~missing]})
         palette = _class_palette(len(classes))
         lookup = {c: palette[i] for i, c in enumerate(classes)}
         for i in np.flatnonzero(~missing):
             colours[i] = lookup[str(values.iloc[i])]
-        handles += [Patch(facecolor=lookup[c], edgecolor="0.3", label=c) for c in classes]
+        handles += [Patch(facecolor=lookup[c], edgecolor="0.3", label=_literal(c))
+                    for c in classes]
     else:
         import matplotlib
 
@@ -155,7 +190,7 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
 
         bar = fig.colorbar(ScalarMappable(norm=colourbar[1], cmap=colourbar[0]), ax=ax,
                            shrink=0.8, pad=0.02)
-        bar.set_label(label or column)
+        bar.set_label(_literal(label or column))
         _colourbar_ticks(bar, constant, "every patch with a value" if missing.any()
                          else "every patch")
         if contours is not None:
@@ -163,11 +198,12 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
     if handles:
         # Beside the map when there is no colourbar, else in a row under it; constrained
         # layout makes room for "outside" figure legends.
-        fig.legend(handles=handles, title=label if kind in ("bool", "class") else None,
+        fig.legend(handles=handles,
+                   title=_literal(label) if label and kind in ("bool", "class") else None,
                    loc="outside right upper" if colourbar is None else "outside lower center",
                    ncol=1 if colourbar is None else min(len(handles), 4),
                    frameon=False, fontsize=8, title_fontsize=8)
-    ax.set_title(title or column, fontsize=11)
+    ax.set_title(_literal(title or column), fontsize=11)
     return _save(fig, path)
 
 
@@ -206,7 +242,8 @@ def _label_extremes(ax, geoms, numbers, ids):
             continue
         name = f"{ids[i]} and {ties} more" if ties else ids[i]
         x, y = shapely.get_coordinates(shapely.point_on_surface(geoms[i]))[0] / 1e3
-        ax.annotate(f"{name} ({word}: {numbers[i] + 0.0:.3g})", (x, y), xytext=(6, 6),
+        ax.annotate(_literal(f"{name} ({word}: {numbers[i] + 0.0:.3g})"), (x, y),
+                    xytext=(6, 6),
                     textcoords="offset points", fontsize=7, zorder=7,
                     bbox={"boxstyle": "round,pad=0.2", "fc": "white", "ec": "0.5",
                           "alpha": 0.85},
@@ -344,7 +381,7 @@ def _frame_map(ax, geoms, crs):
     ax.set_ylabel("northing (km)", fontsize=9)
     ax.tick_params(labelsize=8)
     code = crs.to_epsg() if crs is not None else None
-    ax.text(0.99, 0.01, f"EPSG:{code}" if code else crs.name, transform=ax.transAxes,
+    ax.text(0.99, 0.01, f"EPSG:{code}" if code else _literal(crs.name), transform=ax.transAxes,
             ha="right", va="bottom", fontsize=7, color="0.4")
     _scale_bar(ax)
     _north_arrow(ax)
@@ -386,6 +423,7 @@ def _north_arrow(ax):
 # time series
 
 
+@_plain_text
 def timeseries_panels(dataset, patch_ids, *, path, time_unit="year", burn_in=None) -> Path:
     """Prey and predator abundance over time, one small panel per patch.
 
@@ -447,7 +485,7 @@ def timeseries_panels(dataset, patch_ids, *, path, time_unit="year", burn_in=Non
             ax.axvspan(time[0], burn_in, color="0.92", zorder=0, linewidth=0)
         ax.plot(time, prey, linewidth=1.1, **PREY_STYLE)
         ax.plot(time, predator, linewidth=1.1, **PREDATOR_STYLE)
-        ax.set_title(f"patch {pid}", fontsize=9)
+        ax.set_title(_literal(f"patch {pid}"), fontsize=9)
         ax.tick_params(labelsize=8)
         ax.grid(True, which="major", color="0.9", linewidth=0.5)
     for ax in axes[n:]:
@@ -465,11 +503,12 @@ def timeseries_panels(dataset, patch_ids, *, path, time_unit="year", burn_in=Non
         handles.append(Patch(facecolor="0.92", label="burn-in (not analysed)"))
     fig.legend(handles=handles, loc="outside upper center", ncol=len(handles), frameon=False,
                fontsize=9)
-    fig.supxlabel(f"time ({time_unit})", fontsize=9)
+    fig.supxlabel(_literal(f"time ({time_unit})"), fontsize=9)
     fig.supylabel("abundance (individuals)", fontsize=9)
     return _save(fig, path)
 
 
+@_plain_text
 def occupancy_curve(dataset, *, path, time_unit="year") -> Path:
     """Share of patches where each species is present (abundance > 0) over time.
 
@@ -503,10 +542,10 @@ def occupancy_curve(dataset, *, path, time_unit="year") -> Path:
             ax.fill_between(time, share.min("replicate").values, share.max("replicate").values,
                             color=style["color"], alpha=0.18, linewidth=0)
             share = share.mean("replicate")
-        ax.plot(time, share.values, linewidth=1.4, label=name, **style)
+        ax.plot(time, share.values, linewidth=1.4, label=_literal(name), **style)
     ax.set_ylim(-0.02, 1.02)
     ax.set_xlim(time[0], time[-1])
-    ax.set_xlabel(f"time ({time_unit})", fontsize=9)
+    ax.set_xlabel(_literal(f"time ({time_unit})"), fontsize=9)
     ax.set_ylabel("share of patches occupied", fontsize=9)
     ax.tick_params(labelsize=8)
     ax.grid(True, color="0.9", linewidth=0.5)
@@ -570,6 +609,7 @@ def _species_style(name, k):
                                       "linestyle": "-"})
 
 
+@_plain_text
 def synchrony_distance_plot(tables, *, path, title="Synchrony against distance") -> Path:
     """Correlation between patches against the distance between them, with bootstrap bands.
 
@@ -609,7 +649,7 @@ def synchrony_distance_plot(tables, *, path, title="Synchrony against distance")
             ax.fill_between(d, t["low"].to_numpy(float), t["high"].to_numpy(float),
                             color=style["color"], alpha=0.2, linewidth=0, zorder=2)
         ax.plot(d, t["correlation"].to_numpy(float), marker="o", markersize=3.5,
-                linewidth=1.4, label=name, zorder=3, **style)
+                linewidth=1.4, label=_literal(name), zorder=3, **style)
         values = t[["correlation", "low", "high"]].to_numpy(float)
         values = values[np.isfinite(values)]
         if values.size:
@@ -634,7 +674,7 @@ def synchrony_distance_plot(tables, *, path, title="Synchrony against distance")
     else:
         _no_data(ax, "no pair of patches with fluctuating abundances to correlate\n"
                      "(every series after burn-in is constant or extinct)")
-    ax.set_title(title, fontsize=10)
+    ax.set_title(_literal(title), fontsize=10)
     return _save(fig, path)
 
 
@@ -644,6 +684,7 @@ def _no_data(ax, text):
             color="0.35")
 
 
+@_plain_text
 def kuramoto_plot(series, *, path, time_unit="year", title="Phase synchrony") -> Path:
     """Kuramoto order parameter R(t) of each species over time, with its mean.
 
@@ -678,15 +719,15 @@ def kuramoto_plot(series, *, path, time_unit="year", title="Phase synchrony") ->
             continue
         colour = _species_style(name, k)["color"]
         mean = float(np.nanmean(values))
-        ax.plot(time, values, color=colour, linewidth=1.1, linestyle="-", label=name,
+        ax.plot(time, values, color=colour, linewidth=1.1, linestyle="-", label=_literal(name),
                 zorder=3)
         ax.axhline(mean, color=colour, linewidth=1.2, linestyle=(0, (5, 3)), zorder=4,
-                   label=f"{name} mean {mean:.2f}")
+                   label=_literal(f"{name} mean {mean:.2f}"))
         lo, hi = min(lo, time.min()), max(hi, time.max())
     ax.set_ylim(0.0, 1.02)
     if np.isfinite(lo) and hi > lo:
         ax.set_xlim(lo, hi)
-    ax.set_xlabel(f"time ({time_unit})", fontsize=9)
+    ax.set_xlabel(_literal(f"time ({time_unit})"), fontsize=9)
     ax.set_ylabel("order parameter R (0 = no phase\nagreement, 1 = all in phase)", fontsize=9)
     ax.tick_params(labelsize=8)
     ax.grid(True, color="0.9", linewidth=0.5)
@@ -698,7 +739,7 @@ def kuramoto_plot(series, *, path, time_unit="year", title="Phase synchrony") ->
     else:
         _no_data(ax, "no phases to compare\n(every series after burn-in is constant or "
                      "extinct)")
-    ax.set_title(title, fontsize=10)
+    ax.set_title(_literal(title), fontsize=10)
     return _save(fig, path)
 
 
@@ -709,6 +750,7 @@ __all__ += ["synchrony_distance_plot", "kuramoto_plot"]
 # sweeps
 
 
+@_plain_text
 def sweep_plot(table, result, key, *, path, group_by=(), max_groups=len(OKABE_ITO)) -> Path:
     """One network-level result of a sweep against one varied value, and save it as a PNG.
 
@@ -766,20 +808,21 @@ def sweep_plot(table, result, key, *, path, group_by=(), max_groups=len(OKABE_IT
         mean = part.groupby("_x")[result].mean().sort_index()
         if not isinstance(label, tuple):
             label = (label,)
-        text = ", ".join(f"{g} = {v}" for g, v in zip(groups, label)) or None
+        text = _literal(", ".join(f"{g} = {v}" for g, v in zip(groups, label))) or None
         ax.plot(mean.index, mean.to_numpy(), marker="o", markersize=4.5, linewidth=1.4,
                 color=colour, label=text, zorder=3)
     if ticks is not None:
-        ax.set_xticks(range(len(ticks)), ticks, rotation=30 if len(ticks) > 4 else 0)
+        ax.set_xticks(range(len(ticks)), [_literal(t) for t in ticks],
+                      rotation=30 if len(ticks) > 4 else 0)
     ax.ticklabel_format(axis="y", useOffset=False)  # an offset hides values near 1
-    ax.set_xlabel(key, fontsize=9)
-    ax.set_ylabel(result.replace("_", " "), fontsize=9)
+    ax.set_xlabel(_literal(key), fontsize=9)
+    ax.set_ylabel(_literal(result.replace("_", " ")), fontsize=9)
     ax.tick_params(labelsize=8)
     ax.grid(True, color="0.9", linewidth=0.5)
     if groups:
         ax.legend(frameon=False, fontsize=8, loc="best")
-    ax.set_title(f"{result.replace('_', ' ')} against {key}\n(dots: runs; line: mean of "
-                 "the replicates)", fontsize=10)
+    ax.set_title(_literal(f"{result.replace('_', ' ')} against {key}\n(dots: runs; line: "
+                          "mean of the replicates)"), fontsize=10)
     return _save(fig, path)
 
 
@@ -790,6 +833,7 @@ __all__ += ["sweep_plot"]
 # corridor planning
 
 
+@_plain_text
 def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, title=None,
                  label=None, cmap="viridis") -> Path:
     """Candidate corridors coloured by a value (e.g. gain per cost) over the patches.
@@ -869,13 +913,13 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
     if norm is not None:
         bar = fig.colorbar(ScalarMappable(norm=norm, cmap=colourmap), ax=ax, shrink=0.8,
                            pad=0.02)
-        bar.set_label(label or column)
+        bar.set_label(_literal(label or column))
         _colourbar_ticks(bar, constant, "every candidate" if finite.all()
                          else "every candidate with a value")
     if handles:
         fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 4),
                    frameon=False, fontsize=8)
-    ax.set_title(title or column, fontsize=11)
+    ax.set_title(_literal(title or column), fontsize=11)
     return _save(fig, path)
 
 
@@ -888,6 +932,7 @@ __all__ += ["corridor_map"]
 __all__ += ["arrival_distance_plot"]
 
 
+@_plain_text
 def arrival_distance_plot(distance_km, arrival_time, *, path, speed=None, interval=None,
                           shock_time=None, time_unit="year",
                           title="Arrival of collapse against distance") -> Path:
@@ -934,16 +979,16 @@ def arrival_distance_plot(distance_km, arrival_time, *, path, speed=None, interv
             ax.fill_between(grid, np.minimum(lo, hi), np.maximum(lo, hi), color=OKABE_ITO[1],
                             alpha=0.2, linewidth=0, zorder=1)
         ax.plot(grid, d0 + speed * (grid - t0), color=OKABE_ITO[1], linewidth=1.5,
-                label=f"front speed {speed:.3g} km/{time_unit}", zorder=4)
+                label=_literal(f"front speed {speed:.3g} km/{time_unit}"), zorder=4)
     never = int((~np.isfinite(t)).sum())
     if never:
         ax.plot([], [], " ", label=f"never reached: {never}")
-    ax.set_xlabel(f"arrival time ({time_unit})", fontsize=9)
+    ax.set_xlabel(_literal(f"arrival time ({time_unit})"), fontsize=9)
     ax.set_ylabel("distance from the nearest shocked patch (km)", fontsize=9)
     ax.tick_params(labelsize=8)
     ax.grid(True, color="0.9", linewidth=0.5)
     ax.legend(frameon=False, fontsize=8, loc="best")
-    ax.set_title(title, fontsize=10)
+    ax.set_title(_literal(title), fontsize=10)
     return _save(fig, path)
 
 
@@ -983,6 +1028,7 @@ def regional_extinction_probability(dataset, species="predator", *, confidence=0
                         index=pd.Index(time, name="time"))
 
 
+@_plain_text
 def regional_extinction_plot(dataset, *, path, species="predator", time_unit="year",
                              confidence=0.95) -> Path:
     """The probability that ``species`` is regionally extinct by time t, with its band.
@@ -1020,13 +1066,13 @@ def regional_extinction_plot(dataset, *, path, species="predator", time_unit="ye
             label="share of replicates")
     ax.set_ylim(-0.02, 1.02)
     ax.set_xlim(t[0], t[-1])
-    ax.set_xlabel(f"time ({time_unit})", fontsize=9)
-    ax.set_ylabel(f"probability the {species} is\ngone from every patch", fontsize=9)
+    ax.set_xlabel(_literal(f"time ({time_unit})"), fontsize=9)
+    ax.set_ylabel(_literal(f"probability the {species} is\ngone from every patch"), fontsize=9)
     ax.tick_params(labelsize=8)
     ax.grid(True, color="0.9", linewidth=0.5)
     ax.legend(frameon=False, fontsize=8, loc="upper left")
-    ax.set_title(f"Regional extinction of the {species} by time t "
-                 f"({int(curve['replicates'].iloc[0])} replicates)", fontsize=10)
+    ax.set_title(_literal(f"Regional extinction of the {species} by time t "
+                          f"({int(curve['replicates'].iloc[0])} replicates)"), fontsize=10)
     return _save(fig, path)
 
 

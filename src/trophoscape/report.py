@@ -3,6 +3,12 @@
 The report opens with the scenario in plain words and the caution, then the headline
 figures, then one section per analysis; every figure carries one sentence on how to read it.
 Figures whose columns a run did not produce are left out.
+
+Every piece of text that can come from the user (the scenario name, the time unit, patch,
+corridor and scenario ids, file names, column names, error messages) is escaped with
+:func:`html.escape` (``&``, ``<``, ``>`` and both quotes, so it is safe in text and in
+double-quoted attribute values alike) where it enters the page; only :class:`Html` pieces
+built here are inserted as they are. The page holds no script.
 """
 
 from __future__ import annotations
@@ -12,6 +18,7 @@ import html
 import math
 from dataclasses import dataclass
 from pathlib import Path
+from urllib.parse import quote
 
 import numpy as np
 
@@ -196,20 +203,21 @@ def table_html(frame, columns=None, *, n=None, labels=None, caption=None) -> Htm
     """
     columns = list(frame.columns if columns is None else columns)
     labels = labels or {}
-    head = "".join(f'<th title="{html.escape(c)}">'
-                   f"{html.escape(labels.get(c, c.replace('_', ' ')))}</th>" for c in columns)
+    head = "".join(f'<th title="{html.escape(str(c))}">'
+                   f"{html.escape(str(labels.get(c, str(c).replace('_', ' '))))}</th>"
+                   for c in columns)
     rows = frame if n is None else frame.head(n)
     body = "".join("<tr>" + "".join(f"<td>{_cell(row[c])}</td>" for c in columns) + "</tr>"
                    for _, row in rows.iterrows())
-    cap = f"<caption>{html.escape(caption)}</caption>" if caption else ""
+    cap = f"<caption>{html.escape(str(caption))}</caption>" if caption else ""
     return Html(f'<div class="wide"><table class="data">{cap}<thead><tr>{head}</tr></thead>'
                 f"<tbody>{body}</tbody></table></div>")
 
 
 def _figures_html(figures) -> str:
     esc = html.escape
-    return "\n".join(f"<figure>{_img(p)}<figcaption><strong>{esc(t)}.</strong> {esc(r)}"
-                     "</figcaption></figure>" for t, p, r in figures)
+    return "\n".join(f"<figure>{_img(p)}<figcaption><strong>{esc(str(t))}.</strong> "
+                     f"{esc(str(r))}</figcaption></figure>" for t, p, r in figures)
 
 
 def figures_html(figures) -> Html:
@@ -236,8 +244,8 @@ def add_section(report: Path, name: str, figures=(), *, intro: str = "", blocks=
 def section_html(name: str, figures=(), *, intro: str = "", blocks=(),
                  anchor: str | None = None) -> Html:
     """The HTML of one section, as :func:`add_section` inserts it."""
-    ident = f' id="{html.escape(anchor)}"' if anchor else ""
-    parts = [f"<h2{ident}>{html.escape(name)}</h2>"]
+    ident = f' id="{html.escape(str(anchor))}"' if anchor else ""
+    parts = [f"<h2{ident}>{html.escape(str(name))}</h2>"]
     if intro:
         parts.append(_block(intro))
     parts += [_block(b) for b in blocks]
@@ -342,10 +350,10 @@ def page_html(title: str, body: str, footer: str) -> str:
     esc = html.escape
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8">
-<title>{esc(title)} — trophoscape report</title>
+<title>{esc(str(title))} — trophoscape report</title>
 <style>{STYLE}</style></head><body>
 {body}
-<p><small>{esc(footer)}</small></p>
+<p><small>{esc(str(footer))}</small></p>
 </body></html>
 """
 
@@ -372,8 +380,8 @@ def analysis_errors_html(summary) -> str:
         return ""
     esc = html.escape
     items = "".join(
-        f"<li><strong>{esc(ANALYSIS_WORDS.get(e['analysis'], e['analysis']))}</strong>: "
-        f"{esc(e['reason'])}</li>" for e in errors)
+        f"<li><strong>{esc(str(ANALYSIS_WORDS.get(e['analysis'], e['analysis'])))}</strong>: "
+        f"{esc(str(e['reason']))}</li>" for e in errors)
     return (f'<div class="failed"><p><strong>{len(errors)} analysis(es) failed.</strong> '
             "The other results below are complete; the figures and columns of the failed "
             "ones are left empty (– here, blank in patches.csv, null in summary.json) and "
@@ -383,9 +391,9 @@ def analysis_errors_html(summary) -> str:
 def _html(result, summary, sections) -> str:
     sc = result.study.scenario
     esc = html.escape
-    table = "\n".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>"
+    table = "\n".join(f"<tr><th>{esc(str(k))}</th><td>{esc(str(v))}</td></tr>"
                       for k, v in _headline_rows(summary))
-    body = [f"<h1>{esc(sc.name)}</h1>",
+    body = [f"<h1>{esc(str(sc.name))}</h1>",
             f"<p>{esc(_scenario_words(result))}</p>",
             f'<p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>',
             "<h2>Headline results</h2>", analysis_errors_html(summary),
@@ -420,13 +428,16 @@ def write_comparison_report(folder, results, table, maps, *, names=None, runs=No
     ref = names[0]
     body = [f"<h1>Comparison of {len(results)} scenarios</h1>",
             f"<p>Each scenario was run as it is. Differences are the other scenario minus the "
-            f"reference, <strong>{esc(ref)}</strong>, patch by patch for the patches both share "
-            "by id.</p><ul>"]
+            f"reference, <strong>{esc(str(ref))}</strong>, patch by patch for the patches both "
+            "share by id.</p><ul>"]
     for k, (name, r) in enumerate(zip(names, results)):
         link = ""
         if runs is not None and (folder / runs[k] / "report.html").is_file():
-            link = f' (<a href="{esc(runs[k])}/report.html">its own report</a>)'
-        body.append(f"<li><strong>{esc(name)}</strong>{link}: {esc(_scenario_words(r))}</li>")
+            # a relative URL: percent-encoded as a path, then escaped for the attribute
+            href = esc(quote(f"{runs[k]}/report.html"))
+            link = f' (<a href="{href}">its own report</a>)'
+        body.append(f"<li><strong>{esc(str(name))}</strong>{link}: "
+                    f"{esc(_scenario_words(r))}</li>")
     body.append("</ul>")
     body.append(f'<p class="caution"><strong>Caution.</strong> {esc(CAUTION)}</p>')
     rows: dict = {}
@@ -434,9 +445,10 @@ def write_comparison_report(folder, results, table, maps, *, names=None, runs=No
         for label, _ in _headline_rows(r.summary):
             rows.setdefault(label, None)
     cells = [dict(_headline_rows(r.summary)) for r in results]
-    head = "".join(f"<th>{esc(n)}</th>" for n in names)
-    lines = "".join(f"<tr><th>{esc(label)}</th>"
-                    + "".join(f"<td>{esc(c.get(label, '–'))}</td>" for c in cells) + "</tr>"
+    head = "".join(f"<th>{esc(str(n))}</th>" for n in names)
+    lines = "".join(f"<tr><th>{esc(str(label))}</th>"
+                    + "".join(f"<td>{esc(str(c.get(label, '–')))}</td>" for c in cells)
+                    + "</tr>"
                     for label in rows)
     body += ["<h2>Headline results side by side</h2>",
              "<p>One column per scenario; comparison.csv holds every network-level figure.</p>",
@@ -456,6 +468,7 @@ def write_comparison_report(folder, results, table, maps, *, names=None, runs=No
     created = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
     footer = f"Run {created} with trophoscape {__version__}; {len(results)} scenarios."
     path = folder / "report.html"
-    path.write_text(page_html(f"Comparison: {', '.join(names)}", "\n".join(body), footer),
+    path.write_text(page_html(f"Comparison: {', '.join(map(str, names))}", "\n".join(body),
+                              footer),
                     encoding="utf-8")
     return path
