@@ -152,6 +152,9 @@ def _scale_attribute(feats):
 
 LINKS = {"kernel": "none", "links": "l.csv"}
 # exponential prey at r = 2000 per year, no predator: the run fails (exit 1)
+#: Markers in a case's files: a named pipe or a folder instead of a file.
+FIFO, FOLDER = "<named pipe>", "<folder>"
+
 EXPLOSIVE = scenario(prey={"growth": "exponential", "growth_rate": 2000.0},
                      predator={"initial_density": 0.0})
 CANDIDATE = json.dumps({"type": "FeatureCollection", "features": [
@@ -451,6 +454,85 @@ CASES = [
          "other/results",
          {"other/b.toml": scenario(patches={"path": "../p.geojson"})},
          argv=("compare", "s.toml", "other/b.toml", "--out", "other")),
+    # ------------------------------------------- shapes and sizes that cannot work (issue 17)
+    Case("shock-not-a-table",
+         "error: s.toml: field 'shock': is not a list of shock tables; write each shock as a "
+         "[[shock]] table (double brackets) with its keys below it",
+         {"s.toml": "shock = 5\n" + scenario()}),
+    Case("toml-nested-deep",
+         "error: s.toml: not valid for trophoscape: values are nested too deeply (arrays or "
+         "tables inside one another hundreds of levels deep); a scenario needs at most a few "
+         "levels",
+         {"s.toml": scenario() + "x = " + "[" * 50_000 + "]" * 50_000 + "\n"}),
+    Case("scenario-too-large",
+         "error: s.toml: is 2,097,331 bytes, more than the 1,048,576 a scenario file may have; "
+         "check that this is the right file",
+         {"s.toml": scenario() + "#" + "x" * (2 << 20) + "\n"}),
+    Case("scenario-is-a-named-pipe",
+         "error: s.toml: is not a regular file (a named pipe, device or socket); give the path "
+         "of a scenario file saved on disk",
+         {"s.toml": FIFO}, command="check"),
+    Case("scenario-is-a-folder",
+         "error: s.toml: is a folder, not a scenario file; give the path of the file itself",
+         {"s.toml": FOLDER}),
+    Case("patch-file-is-a-named-pipe",
+         "error: p.geojson: is not a regular file (a named pipe, device or socket); give the "
+         "path of a file saved on disk",
+         {"p.geojson": FIFO}, command="check"),
+    Case("census-rows-beyond-memory",
+         "error: s.toml: field 'run.census_interval': the run would record 2,000,000,001 census "
+         "rows × 4 patches × 2 species × 1 replicate(s), about 192 GB of memory, more than "
+         "this machine's ",
+         {"s.toml": scenario(run={"census_interval": 1e-9})}, prefix=True),
+    Case("census-rows-beyond-memory-check",
+         "error: s.toml: field 'run.census_interval': the run would record 2,000,000,001 census "
+         "rows",
+         {"s.toml": scenario(run={"census_interval": 1e-9})}, command="check", prefix=True),
+    Case("replicates-beyond-memory",
+         "error: s.toml: field 'run.replicates': the run would record 6 census rows × 4 "
+         "patches × 2 species × 1,000,000,000 replicate(s), about 704 GB of memory",
+         {"s.toml": scenario(run={"replicates": 1_000_000_000},
+                             noise={"environmental_sd": 0.1})}, prefix=True),
+    Case("noise-steps-beyond-limit",
+         "error: s.toml: field 'noise.noise_step': the run would take 2,000,000,000 noise steps "
+         "of 1e-09 time units (at most 10,000,000; each restarts the solver); give a longer "
+         "noise_step",
+         {"s.toml": scenario(noise={"environmental_sd": 0.1, "noise_step": 1e-9})}),
+    Case("growth-rate-1e300",
+         "error: s.toml: field 'prey.growth_rate': 1e+300 is beyond the largest value "
+         "trophoscape computes with (1e+12); give a number from 0 to 1e+12",
+         {"s.toml": scenario(prey={"growth_rate": 1e300})}),
+    Case("attack-rate-1e308",
+         "error: s.toml: field 'predation.attack_rate': 1e+308 is beyond the largest value "
+         "trophoscape computes with (1e+12); give a number from 0 to 1e+12",
+         {"s.toml": scenario(predation={"attack_rate": 1e308})}),
+    Case("per-patch-value-1e308",
+         "error: p.geojson: feature 'A3': field 'r': value 1e+308 for prey.growth_rate is not a "
+         "finite number within the range trophoscape computes with; give a number from 0 to "
+         "1e+12 in every feature",
+         {"s.toml": scenario(prey={"growth_rate": {"field": "r"}}),
+          "p.geojson": patches_with(lambda fs: [f["properties"].__setitem__(
+              "r", 1e308 if f["properties"]["pid"] == "A3" else 1.0) for f in fs])}),
+    Case("sweep-count-too-large",
+         "error: field '--vary prey.growth_rate=0:1:100000000': COUNT 100,000,000 is more "
+         "points than a sweep may have (at most 1,000,000 runs); give a smaller COUNT",
+         argv=("sweep", "s.toml", "--vary", "prey.growth_rate=0:1:100000000", "--out", "sw")),
+    Case("sweep-product-too-large",
+         "error: field '--vary': the sweep would have 1,000 × 1,001 = 1,001,000 points, more "
+         "than the 1,000,000 runs a sweep may have; vary fewer values",
+         argv=("sweep", "s.toml", "--vary", "prey.growth_rate=0:1:1000", "--vary",
+               "predator.mortality_rate=0:1:1001", "--out", "sw")),
+    Case("sweep-point-missing-patch-file",
+         "error: missing.geojson: field 'patches.path': the patch file of the point "
+         "patches.path='missing.geojson' does not exist; check the path (it is relative to the "
+         "scenario's folder)",
+         argv=("sweep", "s.toml", "--vary", "patches.path=p.geojson,missing.geojson", "--out",
+               "sw")),
+    Case("sweep-point-beyond-memory",
+         "error: s.toml: field 'run.census_interval': the point run.census_interval=1e-09: the "
+         "run would record 2,000,000,001 census rows",
+         argv=("sweep", "s.toml", "--vary", "run.census_interval=0.5,1e-9", "--out", "sw"),
+         prefix=True),
     # ---------------------------------------------------------------- a failed run: exit 1
     Case("explosive-growth",  # exponential prey at r = 2000 per year, no predator
          "error: the run failed: ",
@@ -479,7 +561,12 @@ def outcomes(tmp_path_factory) -> dict[str, Outcome]:
         files = {"s.toml": scenario(), "p.geojson": collection(features()), **case.files}
         for name, text in files.items():
             (folder / name).parent.mkdir(parents=True, exist_ok=True)
-            (folder / name).write_text(text, encoding="utf-8")
+            if text == FIFO:
+                os.mkfifo(folder / name)
+            elif text == FOLDER:
+                (folder / name).mkdir()
+            else:
+                (folder / name).write_text(text, encoding="utf-8")
         args = [case.command, "s.toml"]
         if case.command in ("run", "spread"):
             args += ["--out", "out", "--no-maps"]
@@ -511,6 +598,11 @@ def test_exit_code_no_traceback_no_output(case, outcomes):
     assert "Traceback" not in got.stderr
     # outputs are whole or absent: no folder, no staging folder beside it (SCENARIO.md)
     assert not (got.folder / "out").exists()
+    if case.argv is not None and "--out" in case.argv:  # the case's own --out, if it made none
+        out = case.argv[case.argv.index("--out") + 1]
+        made_by_case = any(name == out or name.startswith(out + "/") for name in case.files)
+        if out.strip(". /") and not made_by_case:
+            assert not (got.folder / out).exists()
     assert not list(got.folder.glob(".out.partial-*"))
     assert not list(got.folder.glob(".*partial*"))
     # exactly one line says what went wrong
@@ -546,7 +638,8 @@ def test_messages_name_the_file_and_feature(outcomes):
             continue
         line = outcomes[case.id].stderr.splitlines()[-1]
         named = [n for n in ("s.toml", "p.geojson", "p.gpkg", "c.geojson", "l.csv",
-                             "missing.geojson", "nolinks.csv", "field '--out'") if n in line]
+                             "missing.geojson", "nolinks.csv", "field '--out'",
+                             "field '--vary") if n in line]  # or the argument at fault
         if case.wrong_text is None:
             assert named, line
         feature = re.search(r": feature ('[^']+'|\d+): ", case.expected)

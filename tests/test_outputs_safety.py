@@ -14,6 +14,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import random
 import re
 import shutil
 import signal
@@ -680,6 +681,75 @@ def test_a_stopped_run_leaves_nothing(tmp_path, signum, code, word):
     assert snapshot(tmp_path) == before
 
 
+def _wait_until_it_catches_sigint(proc, timeout=30.0) -> None:
+    """Until the interpreter has installed its SIGINT handler (Linux: the SigCgt mask in
+    /proc/PID/status, proc(5)); before that no program can handle the signal."""
+    end = time.monotonic() + timeout
+    bit = 1 << (signal.SIGINT - 1)
+    while time.monotonic() < end and proc.poll() is None:
+        try:
+            status = Path(f"/proc/{proc.pid}/status").read_text()
+        except OSError:
+            return
+        caught = re.search(r"^SigCgt:\s*([0-9a-f]+)", status, re.M)
+        if caught is None or int(caught.group(1), 16) & bit:
+            return
+        time.sleep(0.005)
+
+
+def test_ctrl_c_at_random_moments_always_stops_the_run(tmp_path):
+    # 20 runs of a few seconds, each sent SIGINT at a random moment from when its
+    # interpreter catches the signal (its own start-up comes first: no program can handle
+    # a signal before that) to about the time a whole run takes, maps drawn in a quarter of
+    # them. Every run that was still going when the signal came must end with exit 130, one
+    # line, no traceback, and either no output at all or the whole output when the signal
+    # came after it was put in place; a signal after the command ended (during the
+    # interpreter's shutdown) is ignored: exit 0, the whole output, nothing on stderr.
+    rng = random.Random(20261202)
+    text = scenario(run={"duration": 100.0, "burn_in": 1.0, "census_interval": 0.5})
+    write_valley(tmp_path, text=text)
+    before = snapshot(tmp_path)
+    start = time.monotonic()
+    done = _run_process(tmp_path, "run", "s.toml", "--out", "whole", "--quiet")
+    done.communicate(timeout=120)
+    whole = time.monotonic() - start
+    assert done.returncode == 0
+    shutil.rmtree(tmp_path / "whole")
+    tries = 0
+    outcomes = []
+    while tries < 20:
+        assert len(outcomes) < 40, outcomes  # most runs must still be going at the signal
+        maps = () if len(outcomes) % 4 == 0 else ("--no-maps",)
+        proc = _run_process(tmp_path, "run", "s.toml", "--out", "out", "--quiet", *maps)
+        _wait_until_it_catches_sigint(proc)
+        time.sleep(rng.uniform(0.0, 0.9 * whole))
+        if proc.poll() is not None:  # finished before the signal: not a try
+            proc.communicate()
+            outcomes.append("finished")
+            shutil.rmtree(tmp_path / "out", ignore_errors=True)
+            continue
+        proc.send_signal(signal.SIGINT)
+        _, err = proc.communicate(timeout=60)
+        outcomes.append(proc.returncode)
+        if proc.returncode == 0:  # the command had ended: the signal came during shutdown
+            assert err == "" and (tmp_path / "out" / "summary.json").is_file(), err
+            shutil.rmtree(tmp_path / "out")
+            assert snapshot(tmp_path) == before
+            continue
+        tries += 1
+        assert proc.returncode == 130, err
+        assert "Traceback" not in err and "Exception ignored" not in err, err
+        lines = err.splitlines()
+        assert len(lines) == 1, err
+        if lines[0] == "interrupted; no output was written":
+            assert not (tmp_path / "out").exists()
+        else:
+            assert lines[0] == "interrupted; the output was written to out", err
+            assert (tmp_path / "out" / "summary.json").is_file()
+            shutil.rmtree(tmp_path / "out")
+        assert snapshot(tmp_path) == before, outcomes  # no staging folder, nothing else
+
+
 def test_stale_staging_folders_are_removed_only_when_surely_abandoned(tmp_path):
     write_valley(tmp_path)
     gone, alive = dead_pid(), os.getpid()
@@ -1046,3 +1116,42 @@ def test_write_run_checks_its_folder(tmp_path):
     assert "is the folder of the input p.geojson" in str(info.value)
     out = trophoscape.write_run(result, tmp_path / "api", maps=False)
     assert marker(out)["command"] == "write_run"
+
+
+def test_a_full_disk_is_one_line_with_exit_1_and_leaves_nothing(tmp_path, monkeypatch, capsys):
+    # a failure of the machine, not of the input (ENOSPC while the outputs are written,
+    # as pyogrio raises it): exit 1, one line naming the file, the staging folder removed
+    import errno
+
+    write_valley(tmp_path)
+    before = snapshot(tmp_path)
+
+    def full(result, stage, **kw):
+        raise OSError(errno.ENOSPC, "No space left on device", str(stage / "patches.gpkg"))
+
+    monkeypatch.setattr(outputs, "write_run_files", full)
+    code, err = main_here(tmp_path, monkeypatch, capsys, "run", "s.toml", "--out", "out",
+                          "--quiet")
+    assert code == 1
+    assert len(err) == 1 and err[0].startswith("error: could not read or write "), err
+    assert err[0].endswith("patches.gpkg: No space left on device; free space or fix the "
+                           "folder, then run again"), err
+    assert snapshot(tmp_path) == before
+
+
+def test_a_damaged_ledger_with_resume_is_one_line(tmp_path):
+    # a sweep folder whose ledger.sqlite was overwritten with other bytes: --resume names
+    # the ledger and exits 2 instead of an sqlite3 traceback
+    write_valley(tmp_path)
+    args = ("sweep", "s.toml", "--vary", "prey.growth_rate=1,2", "--out", "sw", "--workers", "1")
+    assert run_cli(tmp_path, *args).returncode == 0
+    ledger = tmp_path / "sw" / "ledger.sqlite"
+    ledger.write_bytes(b"not a database " * 100)
+    for extra in (tmp_path / "sw").glob("ledger.sqlite-*"):
+        extra.unlink()
+    done = run_cli(tmp_path, *args, "--resume")
+    assert done.returncode == 2, done.stderr
+    assert done.stderr.splitlines() == [
+        f"error: {Path('sw') / 'ledger.sqlite'}: field '--resume': the sweep's ledger cannot "
+        "be read (file is not a database); it is damaged or not a trophoscape ledger; start "
+        "the sweep again in another --out folder"]

@@ -47,3 +47,26 @@ def test_init_command_then_check(tmp_path):
                            capture_output=True, text=True, env=env)
     assert check.returncode == 0, check.stderr
     assert "patches    150" in check.stdout
+
+
+def test_names_with_quotes_and_backslashes_read_back(tmp_path):
+    # a file name and column names holding a quote, a backslash and a newline: the template
+    # writes them as TOML basic strings with escapes (TOML v1.0.0, "String"), so the
+    # scenario reads back naming the same file and columns
+    import geopandas as gpd
+    from shapely.geometry import box
+
+    name = 'my "best" site\\s.geojson'
+    frame = gpd.GeoDataFrame({'site "id"': ["a", "b"], "quality\\x\nnew": [1.0, 0.5]},
+                             geometry=[box(0, 0, 1000, 1000), box(3000, 0, 4000, 1000)],
+                             crs="EPSG:32632")
+    frame.to_file(tmp_path / name, driver="GeoJSON", engine="pyogrio")
+    target = write_template(tmp_path)
+    sc = read_scenario(target)
+    assert sc["patches.id_field"] == 'site "id"'
+    assert sc["patches.quality_field"] == "quality\\x\nnew"
+    assert sc.resolve(sc["patches.path"]) == tmp_path / name
+    assert sc["name"] == 'my "best" site\\s'
+    # the attribute comments stay comments: every line is blank, a comment or TOML
+    for line in target.read_text(encoding="utf-8").splitlines():
+        assert not line.startswith("new"), line

@@ -19,7 +19,8 @@ from pathlib import Path
 
 from importlib import import_module
 
-from .errors import InputError, RunError, Terminated, TrophoscapeError
+from .errors import (InputError, RunError, Terminated, TrophoscapeError, clear_stop, note_stop,
+                     raise_if_stopped)
 
 __all__ = ["main", "demo_scenario_path"]
 
@@ -130,13 +131,24 @@ def _print_summary(result, out) -> None:
 
 
 @contextlib.contextmanager
-def _sigterm_as_interrupt():
+def _sigterm_as_interrupt(state: dict | None = None, *, last: bool = False):
     """While the command runs, SIGTERM raises :class:`Terminated` (a KeyboardInterrupt), so
-    the same clean-up runs as after Ctrl-C; the previous handler is restored afterwards."""
+    the same clean-up runs as after Ctrl-C; the previous handlers are restored afterwards.
+
+    Both signals are also recorded (:func:`~trophoscape.errors.note_stop`): Python drops a
+    KeyboardInterrupt raised inside a weakref callback or a ``__del__`` (it prints "Exception
+    ignored" and goes on), so the command checks the record before it puts an output in
+    place and when it ends, and such reports are kept off stderr. Once ``state["done"]`` is
+    set the command is over and a signal is only recorded. With ``last`` (the process ends
+    after this command) both signals stay ignored afterwards, through the interpreter's
+    shutdown, instead of the previous handlers coming back.
+    """
+    state = {} if state is None else state
     if threading.current_thread() is not threading.main_thread():
         yield
         return
     owner = os.getpid()
+    clear_stop()
 
     def handler(signum, frame):
         if os.getpid() != owner:  # a forked worker process: end as SIGTERM would
@@ -146,21 +158,65 @@ def _sigterm_as_interrupt():
         # one clean-up: a further SIGTERM during it is ignored (not queued), until
         # _sigterm_as_interrupt puts the previous handler back when the command returns
         signal.signal(signum, signal.SIG_IGN)
-        raise Terminated()
+        note_stop(Terminated)
+        if not state.get("done"):
+            raise Terminated()
+
+    def on_interrupt(signum, frame):
+        if os.getpid() != owner:
+            raise KeyboardInterrupt
+        note_stop(KeyboardInterrupt)
+        if not state.get("done"):
+            raise KeyboardInterrupt
+
+    def unraisable(info):
+        if issubclass(info.exc_type, KeyboardInterrupt):
+            note_stop(info.exc_type)  # recorded; raised again at the next check
+            return
+        previous_hook(info)
 
     previous = signal.signal(signal.SIGTERM, handler)
+    # only where Ctrl-C has its usual meaning (not in a shell's background job that ignores it)
+    previous_int = signal.getsignal(signal.SIGINT)
+    if previous_int is signal.default_int_handler:
+        signal.signal(signal.SIGINT, on_interrupt)
+    previous_hook = sys.unraisablehook
+    sys.unraisablehook = unraisable
     try:
         yield
     finally:
-        signal.signal(signal.SIGTERM, previous)
+        if last:
+            signal.signal(signal.SIGTERM, signal.SIG_IGN)
+            signal.signal(signal.SIGINT, signal.SIG_IGN)
+        else:
+            signal.signal(signal.SIGTERM, previous)
+            if previous_int is signal.default_int_handler:
+                signal.signal(signal.SIGINT, previous_int)
+        sys.unraisablehook = previous_hook
 
 
-def main(argv=None) -> int:
-    """Entry point of the ``trophoscape`` command; returns the exit code."""
-    args = _parser().parse_args(argv)
-    warnings.showwarning = _show_warning
-    with _sigterm_as_interrupt():
-        return _main(args)
+def main(argv=None, *, last: bool = False) -> int:
+    """Run the ``trophoscape`` command with ``argv`` (default: the process's arguments) and
+    return its exit code. ``last``: the process ends right after (see :func:`entry`)."""
+    state = {"done": False}
+    mark = _written_count()
+    with _sigterm_as_interrupt(state, last=last):
+        try:
+            args = _parser().parse_args(argv)
+            warnings.showwarning = _show_warning
+            code = _main(args)
+            state["done"] = True
+            return code
+        except KeyboardInterrupt as exc:  # one that came between the command's own checks
+            state["done"] = True
+            return _stopped(exc, _written_since(mark))
+
+
+def entry() -> None:
+    """The ``trophoscape`` program: :func:`main`, then exit with its code. Signals after the
+    command ended are ignored while the interpreter shuts down (a Ctrl-C there would
+    otherwise end the process by SIGINT after a finished, successful command)."""
+    sys.exit(main(last=True))
 
 
 def _written_count() -> int:
@@ -182,7 +238,9 @@ def _main(args) -> int:
             from .outputs import out_argument
 
             args.out = out_argument(args.out)
-        return _dispatch(args)
+        code = _dispatch(args)
+        raise_if_stopped()  # a Ctrl-C that Python swallowed still ends the command as one
+        return code
     except InputError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
@@ -195,15 +253,28 @@ def _main(args) -> int:
     except BrokenPipeError:  # output piped into `head` and the like
         sys.stderr.close()
         return 0
+    except OSError as exc:  # the machine, not the input: a full disk, a lost mount
+        where = f" {exc.filename}" if exc.filename else ""
+        print(f"error: could not read or write{where}: {exc.strerror or exc}; free space or fix "
+              "the folder, then run again", file=sys.stderr)
+        return 1
+    except MemoryError:
+        print("error: this machine ran out of memory; run fewer patches, replicates or "
+              "census rows (a longer run.census_interval)", file=sys.stderr)
+        return 1
     except KeyboardInterrupt as exc:
-        word, code = (("terminated", Terminated.exit_code) if isinstance(exc, Terminated)
-                      else ("interrupted", 130))
-        written = _written_since(mark)
-        if written:  # the signal came after the output folder was put in place
-            print(f"{word}; the output was written to {written[-1]}", file=sys.stderr)
-        else:
-            print(f"{word}; no output was written", file=sys.stderr)
-        return code
+        return _stopped(exc, _written_since(mark))
+
+
+def _stopped(exc: KeyboardInterrupt, written: list) -> int:
+    """The one line and the exit code after Ctrl-C (130) or SIGTERM (143)."""
+    word, code = (("terminated", Terminated.exit_code) if isinstance(exc, Terminated)
+                  else ("interrupted", 130))
+    if written:  # the signal came after the output folder was put in place
+        print(f"{word}; the output was written to {written[-1]}", file=sys.stderr)
+    else:
+        print(f"{word}; no output was written", file=sys.stderr)
+    return code
 
 
 def _dispatch(args) -> int:

@@ -8,7 +8,7 @@ links table); the command line prints its one-line message and exits with code 2
 from __future__ import annotations
 
 __all__ = ["TrophoscapeError", "InputError", "RunError", "TrophoscapeWarning", "Terminated",
-           "allowed_range"]
+           "allowed_range", "note_stop", "raise_if_stopped", "clear_stop"]
 
 
 class TrophoscapeError(Exception):
@@ -60,6 +60,27 @@ class Terminated(KeyboardInterrupt):
     half-written is removed on the way out; the command line then exits with 143."""
 
     exit_code = 143
+
+
+#: The stop signals received during the current command (KeyboardInterrupt or Terminated).
+_STOPS: list = []
+
+
+def note_stop(kind: type) -> None:
+    """Record that the process was asked to stop: a KeyboardInterrupt raised where Python
+    ignores exceptions (a weakref callback, a ``__del__``) is otherwise lost."""
+    _STOPS.append(kind)
+
+
+def raise_if_stopped() -> None:
+    """Raise the recorded stop, if any: called before an output is put in place and when
+    a command ends, so that a swallowed Ctrl-C still stops it."""
+    if _STOPS:
+        raise _STOPS[-1]()
+
+
+def clear_stop() -> None:
+    _STOPS.clear()
 
 
 class TrophoscapeWarning(UserWarning):

@@ -8,12 +8,30 @@ that reads vector files; :mod:`trophoscape.network` calls :func:`read_corridors`
 
 Every problem with a file raises :class:`~trophoscape.errors.InputError` naming the file, the
 feature (its id where the file has an id field, else its 0-based position) and the field.
+
+Three rules on what a patch file may hold:
+
+* **Coordinates must fit the file's CRS.** Numbers that look like longitude/latitude degrees
+  (every |x| <= 180, |y| <= 90) in a projected CRS whose area of use contains them read as
+  degrees are refused, and so is a feature that lies more than :data:`AREA_OF_USE_MARGIN_DEG`
+  outside the CRS's area of use (EPSG's bounds, from pyproj) or that cannot be converted to
+  longitude/latitude at all.
+* **Patches have at least** :data:`MIN_PATCH_AREA_KM2` (1 m²).
+* **The user's attributes are never overwritten.** A column of the file named like a column
+  trophoscape computes (:func:`computed_columns`: ``patch_id``, ``area_km2``, ``links``,
+  ``geometry`` and the per-species result columns of ``patches.gpkg``) is kept under its
+  name plus ``_input`` (``area_km2_input``) with a warning, and scenario keys naming it still
+  read the file's values. A column holding exactly what trophoscape computes (a file that
+  trophoscape wrote, read back in; the id column named ``patch_id``) is replaced silently:
+  nothing is lost.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import json
+import operator
 import re
 import warnings
 from collections.abc import Mapping
@@ -38,7 +56,23 @@ __all__ = [
     "read_candidates",
     "metric_crs",
     "equal_area_crs",
+    "computed_columns",
+    "MIN_PATCH_AREA_KM2",
+    "AREA_OF_USE_MARGIN_DEG",
 ]
+
+#: The smallest patch accepted, in km² (1 m²). Smaller than any habitat patch a model of
+#: populations per km² can mean, yet about 10,000 times the area a 1 km² patch gets when its
+#: degrees are read as metres (1e-10 km²), and far above what a polygon around a pole or a
+#: sliver of a few millimetres leaves: such patches are refused rather than simulated.
+MIN_PATCH_AREA_KM2 = 1e-6
+#: How far (degrees of longitude or latitude) a feature may lie outside the area of use of
+#: its CRS (EPSG's bounds, ``pyproj.CRS.area_of_use``). Data are routinely kept in a
+#: neighbouring UTM zone (all of Norway, 4.5° E to 31° E, is mapped in UTM zone 33N, made for
+#: 12° E to 18° E), so only features further away than this are refused.
+AREA_OF_USE_MARGIN_DEG = 15.0
+#: Whole numbers beyond 2^53 lose digits in a float64 (IEEE 754 double precision).
+_EXACT_FLOAT_INT = 2.0 ** 53
 
 _POLYGON, _MULTIPOLYGON = 3, 6  # shapely.get_type_id codes
 _LINESTRING, _MULTILINESTRING = 1, 5
@@ -65,6 +99,12 @@ class Landscape:
         Ids of the patches whose invalid geometry was repaired with ``shapely.make_valid``.
     id_field : str or None
         The attribute the ids came from; None when ids are the feature order "0", "1", ...
+    renamed : mapping of str to str
+        Columns of the file whose names trophoscape computes (see :func:`computed_columns`),
+        each mapped to the column of ``frame`` that holds its values: ``area_km2`` ->
+        ``area_km2_input``, or its own name where trophoscape's column holds the same values
+        (an earlier output read back in, the id column ``patch_id``). :meth:`values` reads a
+        field by its name in the file.
 
     Examples
     --------
@@ -78,6 +118,7 @@ class Landscape:
     path: Path | None = None
     repaired: tuple[str, ...] = ()
     id_field: str | None = None
+    renamed: Mapping[str, str] = dataclasses.field(default_factory=dict)
 
     @cached_property
     def ids(self) -> np.ndarray:
@@ -123,7 +164,8 @@ class Landscape:
         Parameters
         ----------
         field : str
-            Name of the attribute in the patch file.
+            Name of the attribute in the patch file (also when its column was renamed in
+            :attr:`frame` because trophoscape computes a column of that name).
         key : str, optional
             The scenario key that named the attribute; error messages mention it.
 
@@ -137,7 +179,12 @@ class Landscape:
             Naming the file, the first bad feature and the field.
         """
         refs = self.ids if self.has_id_field else None
-        return _attribute_values(self.frame, field, key=key, path=self.path, refs=refs)
+        back = {kept: name for name, kept in self.renamed.items()}
+        computed = (self.frame.geometry.name, "patch_id", "area_km2")
+        have = [back.get(c, c) for c in self.frame.columns if c not in computed or c in back]
+        column = self.renamed.get(field, None if field in computed else field)
+        return _attribute_values(self.frame, field, key=key, path=self.path, refs=refs,
+                                 column=column, have=have)
 
 
 def read_patches(path, *, id_field=None, crs="auto", fields=None, layer=None) -> Landscape:
@@ -168,14 +215,18 @@ def read_patches(path, *, id_field=None, crs="auto", fields=None, layer=None) ->
     Raises
     ------
     InputError
-        Unreadable or empty file, null / empty / non-polygon geometry, zero-area patch,
-        lon/lat out of range, missing / null / duplicate ids, bad numeric fields, a CRS that
-        is not projected.
+        Unreadable or empty file, null / empty / non-polygon geometry, a patch of zero area
+        or below :data:`MIN_PATCH_AREA_KM2`, lon/lat out of range, coordinates that cannot
+        be in the file's CRS (degrees in a projected CRS, far outside its area of use),
+        missing / null / duplicate ids, numeric ids too large to keep exactly (beyond 2^53),
+        bad numeric fields, a CRS that is not projected.
 
     Warns
     -----
     TrophoscapeWarning
-        For each invalid geometry repaired with ``shapely.make_valid``.
+        For each invalid geometry repaired with ``shapely.make_valid``; once for the
+        columns of the file named like a column trophoscape computes, which are kept under
+        another name (see :func:`computed_columns` and the module's docstring).
 
     Notes
     -----
@@ -185,7 +236,7 @@ def read_patches(path, *, id_field=None, crs="auto", fields=None, layer=None) ->
     (Snyder 1987, USGS Professional Paper 1395), whatever the CRS used for distances.
     """
     path = Path(path)
-    frame = _read_vector(path, layer=layer)
+    frame = _read_vector(path, layer=layer, geometry_attribute=True)
     return landscape_from_frame(frame, id_field=id_field, crs=crs, fields=fields, path=path)
 
 
@@ -218,11 +269,11 @@ def landscape_from_frame(gdf, *, id_field=None, crs="auto", fields=None, path=No
                  refs=refs)
     source, assumed = (frame.crs, False) if frame.crs is not None else (
         pyproj.CRS.from_epsg(4326), True)
-    if source.is_geographic:
-        _check_lonlat(geoms, path=path, refs=refs, assumed=assumed)
+    _check_coordinates(geoms, source, path=path, refs=refs, assumed=assumed)
+    have = [c for c in frame.columns if c != frame.geometry.name]
     wanted = fields.items() if isinstance(fields, Mapping) else ((f, None) for f in fields or ())
     for name, key in wanted:
-        _attribute_values(frame, name, key=key, path=path, refs=refs)
+        _attribute_values(frame, name, key=key, path=path, refs=refs, have=have)
 
     invalid = ~shapely.is_valid(geoms)
     if invalid.any():
@@ -240,18 +291,116 @@ def landscape_from_frame(gdf, *, id_field=None, crs="auto", fields=None, path=No
         i = int(np.flatnonzero(flat)[0])
         raise InputError("polygon has zero area; redraw the patch with a positive area or "
                          "remove the feature", file=path, feature=_ref(refs, i), field="geometry")
+    tiny = area_km2 < MIN_PATCH_AREA_KM2
+    if tiny.any():
+        i = int(np.flatnonzero(tiny)[0])
+        raise InputError(
+            f"patch area is {area_km2[i]:.3g} km², below the minimum of "
+            f"{MIN_PATCH_AREA_KM2:g} km² (1 m²); check that its coordinates are in the units "
+            f"of the file's CRS {_crs_text(source)} and that the outline is drawn as meant (a "
+            "polygon around a pole or across the antimeridian must be split), or remove the "
+            "feature", file=path, feature=_ref(refs, i), field="geometry")
     for i in np.flatnonzero(invalid):
         where = f"{path}: " if path is not None else ""
         warnings.warn(f"{where}{_feature_text(_ref(refs, i))}: geometry was invalid and has "
                       "been repaired (shapely make_valid); check its outline in a GIS if its "
                       "area looks wrong", TrophoscapeWarning, stacklevel=3)
 
-    attributes = frame.drop(columns=[frame.geometry.name, "patch_id", "area_km2"],
-                            errors="ignore")
-    out = pd.concat([pd.DataFrame({"patch_id": ids, "area_km2": area_km2}), attributes], axis=1)
+    computed = {"patch_id": ids, "area_km2": area_km2}
+    attributes, renamed = _keep_user_columns(frame, computed, id_field=id_field, path=path)
+    out = pd.concat([pd.DataFrame(computed), attributes], axis=1)
     out = geopandas.GeoDataFrame(out, geometry=series.to_crs(target).values, crs=target)
     return Landscape(frame=out, path=path, repaired=tuple(ids[invalid].tolist()),
-                     id_field=id_field)
+                     id_field=id_field, renamed=renamed)
+
+
+def computed_columns() -> frozenset[str]:
+    """The column names trophoscape writes beside the user's attributes.
+
+    ``patch_id``, ``area_km2`` and ``geometry`` of :attr:`Landscape.frame`; ``links`` and
+    every per-species result column of ``patches.csv`` / ``patches.gpkg`` (persistence,
+    synchrony, equilibrium, metapopulation capacity), whatever analyses a run makes. A
+    column of a patch file with one of these names is kept under another name (see
+    :func:`landscape_from_frame`).
+
+    Returns
+    -------
+    frozenset of str
+    """
+    from .analysis import persistence, synchrony  # here: they import this module's package
+    from .system import SPECIES
+
+    per_species = (*persistence.PATCH_COLUMNS[1], *persistence.PATCH_COLUMNS["replicates"],
+                   *synchrony.PATCH_COLUMNS, "equilibrium",
+                   "capacity_share", "capacity_drop", "capacity_drop_approx")
+    return frozenset({"patch_id", "area_km2", "geometry", "links"}
+                     | {f"{s}_{c}" for s in SPECIES for c in per_species})
+
+
+def _keep_user_columns(frame, computed: dict, *, id_field, path):
+    """The attributes of ``frame`` with every clash with a computed column renamed.
+
+    A column named like a computed one (:func:`computed_columns`) is kept as NAME_input
+    (NAME_input2, ... if that is taken too) with one warning for the file; it is dropped
+    silently when nothing is lost: the id column itself, or every value present equal to
+    what trophoscape computes (``computed``: the columns computed now, by name).
+
+    Returns
+    -------
+    (pandas.DataFrame, dict)
+        The attributes without the geometry, and the file's clashing names mapped to the
+        column holding their values.
+    """
+    geometry = frame.geometry.name
+    attributes = frame.drop(columns=[geometry])
+    reserved = computed_columns()
+    clashes = [c for c in attributes.columns if c in reserved]
+    renamed, moved = {}, {}
+    taken = set(attributes.columns) | reserved
+    for name in clashes:
+        if name == id_field == "patch_id" or (
+                name in computed and _same_values(attributes[name], computed[name])):
+            renamed[name] = name
+            continue
+        new, k = f"{name}_input", 1
+        while new in taken:
+            k += 1
+            new = f"{name}_input{k}"
+        taken.add(new)
+        renamed[name] = moved[name] = new
+    attributes = attributes.drop(columns=[c for c, new in renamed.items() if c == new])
+    attributes = attributes.rename(columns=moved)
+    if moved:
+        where = f"{path}: " if path is not None else ""
+        names = list(moved)
+        if len(names) == 1:
+            what = f"field {names[0]!r}: the file's column has the name of a column"
+        else:
+            listed = ", ".join(repr(c) for c in names[:3])
+            more = f" and {len(names) - 3} more" if len(names) > 3 else ""
+            what = f"fields {listed}{more}: the file's columns have names of columns"
+        example = next(iter(moved.items()))
+        hint = ("; set [patches] id_field = \"patch_id\" to take the ids from it"
+                if "patch_id" in moved and id_field is None else "")
+        warnings.warn(f"{where}{what} trophoscape computes; the file's values are kept as "
+                      f"{example[1]!r}{' (and so on)' if len(names) > 1 else ''} in the patch "
+                      f"table and outputs, and scenario keys naming {example[0]!r} still read "
+                      f"them; rename the column in the file to silence this{hint}",
+                      TrophoscapeWarning, stacklevel=3)
+    return attributes, renamed
+
+
+def _same_values(column: pd.Series, computed: np.ndarray) -> bool:
+    """True when every value present in ``column`` equals ``computed`` (numbers to 1e-6,
+    relative: an area written by trophoscape and read back agrees far closer)."""
+    column = column.reset_index(drop=True)
+    present = column.notna().to_numpy()
+    if computed.dtype.kind in "US":
+        return bool(np.all(column.astype(str).to_numpy()[present] == computed[present]))
+    if not pd.api.types.is_numeric_dtype(column) or pd.api.types.is_bool_dtype(column):
+        return False
+    values = column.to_numpy(dtype=np.float64, na_value=np.nan)[present]
+    return bool(np.allclose(values, computed[present], rtol=1e-6, atol=0.0))
 
 
 def metric_crs(source, *, lon_span: float, lon_c: float, lat_c: float) -> pyproj.CRS:
@@ -327,8 +476,7 @@ def read_corridors(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
                  path=path, refs=refs)
     source, assumed = (frame.crs, False) if frame.crs is not None else (
         pyproj.CRS.from_epsg(4326), True)
-    if source.is_geographic:
-        _check_lonlat(geoms, path=path, refs=refs, assumed=assumed)
+    _check_coordinates(geoms, source, path=path, refs=refs, assumed=assumed)
     multi = shapely.get_type_id(geoms) == _MULTILINESTRING
     if multi.any():
         geoms = geoms.copy()
@@ -409,8 +557,7 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
                  "a LineString, MultiLineString or (thin) Polygon", path=path, refs=refs)
     source, assumed = (frame.crs, False) if frame.crs is not None else (
         pyproj.CRS.from_epsg(4326), True)
-    if source.is_geographic:
-        _check_lonlat(geoms, path=path, refs=refs, assumed=assumed)
+    _check_coordinates(geoms, source, path=path, refs=refs, assumed=assumed)
     if "cost" not in frame.columns:
         have = ", ".join(repr(c) for c in frame.columns if c != frame.geometry.name)
         raise InputError(f"the file has no 'cost' attribute (it has: {have or 'none'}); "
@@ -565,7 +712,34 @@ def read_links_table(path) -> pd.DataFrame:
 # ---------------------------------------------------------------- helpers
 
 
-def _read_vector(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
+def _read_vector(path: Path, *, layer=None, geometry_attribute=False) -> geopandas.GeoDataFrame:
+    """The file as a GeoDataFrame. With ``geometry_attribute``, an attribute of the file
+    named like the geometry column ("geometry"), which the reader would drop, is kept as a
+    column of that name and the geometry column gets another name."""
+    frame = _read_vector_file(path, layer=layer)
+    if geometry_attribute:
+        import pyogrio
+
+        name = frame.geometry.name
+        try:
+            order = list(pyogrio.read_info(path, layer=layer)["fields"])
+            values = (pyogrio.read_dataframe(path, layer=layer, read_geometry=False,
+                                             columns=[name])[name] if name in order else None)
+        except Exception:  # noqa: BLE001 - the file was read once already: keep that
+            values = None
+        if values is not None and len(values) == len(frame):
+            other = "_".join(("", name, "of_file"))
+            while other in frame.columns:
+                other = "_" + other
+            frame = frame.rename_geometry(other)
+            frame[name] = values.to_numpy()
+            # the file's order of attributes (messages list them in it), geometry last
+            first = [c for c in order if c in frame.columns]
+            frame = frame[first + [c for c in frame.columns if c not in first]]
+    return frame
+
+
+def _read_vector_file(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
     if not path.exists():
         raise InputError(f"no such file; check the path, which should name {_VECTOR_FORMATS}",
                          file=path)
@@ -634,13 +808,27 @@ def _ids(frame, id_field, *, path, what: str) -> np.ndarray:
         raise InputError(f"no such attribute for {what} ids; the file has: {have or 'none'}; "
                          "name one of them in [patches] id_field, or leave id_field out to "
                          "number the features", file=path, field=id_field)
-    column = frame[id_field]
+    column = frame[id_field].reset_index(drop=True)
     missing = column.isna().to_numpy()
     if pd.api.types.is_float_dtype(column) and not missing.any():
-        values = column.to_numpy()
+        values = column.to_numpy(dtype=np.float64)
+        # beyond 2^53 a float64 no longer holds every whole number: two ids of the file may
+        # have become one number, and the digits shown are not the file's
+        huge = ~(np.abs(values) <= _EXACT_FLOAT_INT)
+        if huge.any():
+            i = int(np.flatnonzero(huge)[0])
+            problem = (f"id {float(values[i])!r} is not a finite number"
+                       if not np.isfinite(values[i]) else
+                       f"id {float(values[i])!r} is a number beyond 2^53 = 9007199254740992, "
+                       "too large to be read exactly (such numbers lose digits, so different "
+                       "ids can become equal)")
+            raise InputError(f"{problem}; store the {what} ids as text (in quotes in a "
+                             "GeoJSON file)", file=path, feature=i, field=id_field)
         # integer ids read as float (GDAL does this when a column has gaps): "7", not "7.0"
-        if np.all(values == np.round(values)):
-            column = pd.Series(values.astype(np.int64))
+        whole = values == np.round(values)
+        text = np.where(whole, np.where(whole, values, 0.0).astype(np.int64).astype(str),
+                        values.astype(str))
+        column = pd.Series(text, dtype=object)
     ids = column.astype(str).str.strip().to_numpy(dtype=object)
     missing = missing | (ids == "")
     if missing.any():
@@ -702,6 +890,120 @@ def _check_lonlat(geoms: np.ndarray, *, path, refs, assumed: bool):
                      feature=_ref(refs, i), field="geometry")
 
 
+def _check_coordinates(geoms: np.ndarray, source: pyproj.CRS, *, path, refs, assumed: bool):
+    """Coordinates that cannot be in ``source`` raise, naming the first such feature.
+
+    Geographic: longitude -180..180, latitude -90..90. Projected: numbers that look like
+    degrees (|x| <= 180 and |y| <= 90 throughout) lying inside the CRS's area of use when read
+    as longitude/latitude; coordinates that do not convert to longitude/latitude. Both: a
+    feature centre more than :data:`AREA_OF_USE_MARGIN_DEG` outside the area of use.
+    """
+    if not (source.is_geographic or source.is_projected):
+        raise InputError(f"the file's CRS {_crs_text(source)} is neither geographic nor "
+                         "projected, so its coordinates cannot be placed on the Earth; store "
+                         "the file in a projected CRS in metres or in longitude/latitude",
+                         file=path, field="geometry")
+    if source.is_geographic:
+        _check_lonlat(geoms, path=path, refs=refs, assumed=assumed)
+    if assumed:
+        return
+    bounds = shapely.bounds(geoms)
+    x = (bounds[:, 0] + bounds[:, 2]) / 2
+    y = (bounds[:, 1] + bounds[:, 3]) / 2
+    area = _area_of_use(source)
+
+    def where(i):
+        x0, y0, x1, y1 = bounds[i]
+        return f"coordinates x {x0:.6g} to {x1:.6g}, y {y0:.6g} to {y1:.6g}"
+
+    if source.is_projected and area is not None:
+        degrees = (np.abs(bounds[:, [0, 2]]) <= 180).all(axis=1) & (
+            np.abs(bounds[:, [1, 3]]) <= 90).all(axis=1)
+        degrees &= (_outside_lon(x, area) == 0) & (_outside_lat(y, area) == 0)
+        if degrees.any():
+            i = int(np.flatnonzero(degrees)[0])
+            unit = source.axis_info[0].unit_name if source.axis_info else "metre"
+            raise InputError(
+                f"{where(i)} look like longitude/latitude degrees, but the file's CRS "
+                f"{_crs_text(source)} is projected (unit: {unit}); store the file with the CRS "
+                "of its coordinates (EPSG:4326 for longitude/latitude)",
+                file=path, feature=_ref(refs, i), field="geometry")
+    if source.is_projected:
+        try:
+            to_lonlat = pyproj.Transformer.from_crs(source, 4326, always_xy=True)
+            with np.errstate(all="ignore"):
+                lon, lat = to_lonlat.transform(x, y, errcheck=False)
+        except pyproj.exceptions.ProjError as exc:
+            raise InputError(f"the file's CRS {_crs_text(source)} cannot be converted to "
+                             f"longitude/latitude ({_first_line(exc)}); store the file in a "
+                             "CRS with an EPSG code", file=path, field="geometry") from None
+        lon, lat = np.asarray(lon, dtype=float), np.asarray(lat, dtype=float)
+        lost = ~(np.isfinite(lon) & np.isfinite(lat) & (np.abs(lat) <= 90))
+        if lost.any():
+            i = int(np.flatnonzero(lost)[0])
+            raise InputError(f"{where(i)} are no place on the Earth in the file's CRS "
+                             f"{_crs_text(source)}; store the file with the CRS of its "
+                             "coordinates", file=path, feature=_ref(refs, i), field="geometry")
+    else:
+        lon, lat = x, y
+    if area is None:
+        return
+    far = ((_outside_lon(lon, area) > AREA_OF_USE_MARGIN_DEG)
+           | (_outside_lat(lat, area) > AREA_OF_USE_MARGIN_DEG))
+    if far.any():
+        i = int(np.flatnonzero(far)[0])
+        raise InputError(
+            f"{where(i)} lie at {_lonlat_text(lon[i], lat[i])}, more than "
+            f"{AREA_OF_USE_MARGIN_DEG:g}° outside the area the file's CRS {_crs_text(source)} "
+            f"is made for ({_lonlat_text(area.west, area.south)} to "
+            f"{_lonlat_text(area.east, area.north)}); store the file with the CRS of its "
+            "coordinates", file=path, feature=_ref(refs, i), field="geometry")
+
+
+def _area_of_use(crs: pyproj.CRS):
+    """The CRS's area of use (degrees), also for a CRS read without one (a .prj file) that
+    pyproj matches to an EPSG code; None when there is none."""
+    if crs.area_of_use is not None:
+        return crs.area_of_use
+    try:
+        match = crs.to_authority(min_confidence=70)
+        return pyproj.CRS.from_authority(*match).area_of_use if match else None
+    except pyproj.exceptions.CRSError:
+        return None
+
+
+def _outside_lon(lon: np.ndarray, area) -> np.ndarray:
+    """Degrees of longitude from ``lon`` to the area's west..east band (0 inside); the band
+    may cross the antimeridian (west > east)."""
+    width = (area.east - area.west) % 360.0
+    if width == 0.0 and area.east != area.west:  # -180 to 180: the whole globe
+        return np.zeros(np.shape(lon))
+    d = (np.asarray(lon, dtype=float) - area.west) % 360.0
+    return np.where(d <= width, 0.0, np.minimum(d - width, 360.0 - d))
+
+
+def _outside_lat(lat: np.ndarray, area) -> np.ndarray:
+    lat = np.asarray(lat, dtype=float)
+    return np.maximum(np.maximum(area.south - lat, lat - area.north), 0.0)
+
+
+def _lonlat_text(lon: float, lat: float) -> str:
+    """12.5°E 46.3°N."""
+    return (f"{abs(lon):.4g}°{'W' if lon < 0 else 'E'} {abs(lat):.4g}°{'S' if lat < 0 else 'N'}")
+
+
+def _crs_text(crs: pyproj.CRS) -> str:
+    """EPSG:32632 (WGS 84 / UTM zone 32N), or the CRS's name when it has no code."""
+    # pyproj's to_authority: the code of the CRS, or of an equivalent one in its database
+    try:
+        code = crs.to_authority(min_confidence=90)
+    except pyproj.exceptions.CRSError:
+        code = None
+    if code:
+        return f"{code[0]}:{code[1]} ({crs.name})"
+    return repr(crs.name) if crs.name and crs.name != "unknown" else "(one without a name)"
+
+
 def _lonlat_extent(geoms: np.ndarray, source: pyproj.CRS) -> tuple[float, float, float, float]:
     """(lon_min, lon_max, lat_min, lat_max) of the data; lon_max passes 180 across the dateline."""
     if source.is_geographic:
@@ -743,15 +1045,25 @@ def _polygonal_part(geoms: np.ndarray) -> np.ndarray:
     return out
 
 
-def _attribute_values(frame, field: str, *, key, path, refs) -> np.ndarray:
+_SAME = object()
+
+
+def _attribute_values(frame, field: str, *, key, path, refs, column=_SAME,
+                      have=None) -> np.ndarray:
+    """The file's attribute ``field`` as numbers >= 0, read from ``frame[column]`` (the
+    column holding it, ``field`` itself unless renamed; None: the file has no such
+    attribute); ``have`` lists the file's attributes for the message."""
     named = f" (named by {key})" if key else ""
-    if field not in frame.columns or field == frame.geometry.name:
-        have = ", ".join(repr(c) for c in frame.columns
-                         if c not in (frame.geometry.name, "patch_id", "area_km2"))
-        raise InputError(f"no such attribute{named}; the file has: {have or 'none'}; add "
+    column = field if column is _SAME else column
+    if column is None or column not in frame.columns or column == frame.geometry.name:
+        if have is None:
+            have = [c for c in frame.columns
+                    if c not in (frame.geometry.name, "patch_id", "area_km2")]
+        listed = ", ".join(repr(c) for c in have)
+        raise InputError(f"no such attribute{named}; the file has: {listed or 'none'}; add "
                          "the column to the patch file or name one of these", file=path,
                          field=field)
-    return _numbers(frame[field], path=path, refs=refs, field=field, lo=0.0, named=named)
+    return _numbers(frame[column], path=path, refs=refs, field=field, lo=0.0, named=named)
 
 
 def _numbers(column: pd.Series, *, path, refs, field: str, lo: float, hi: float | None = None,
@@ -766,6 +1078,8 @@ def _numbers(column: pd.Series, *, path, refs, field: str, lo: float, hi: float 
     column = column.reset_index(drop=True)
     if pd.api.types.is_bool_dtype(column):
         fail(0, f"value {column.iloc[0]!r} is true/false")
+    if column.dtype == object:
+        column = _single_values(column, fail)
     absent = column.isna().to_numpy()
     numeric = pd.to_numeric(column, errors="coerce")
     text = np.flatnonzero(numeric.isna().to_numpy() & ~absent)
@@ -783,6 +1097,31 @@ def _numbers(column: pd.Series, *, path, refs, field: str, lo: float, hi: float 
         i = int(np.flatnonzero(bad)[0])
         fail(i, f"value {float(values[i])!r} is out of range")
     return values
+
+
+def _single_values(column: pd.Series, fail) -> pd.Series:
+    """Lists of one value replaced by that value; the first list of another length fails.
+
+    GDAL reads a GeoJSON property that holds a list in some features as a list in every
+    feature (a number ``1.5`` becomes ``[1.5]``), so only the lists of other lengths are
+    the file's lists.
+    """
+    # builtins mapped over the cells (type, len, itemgetter): no Python-level loop body
+    is_list = column.map(type).isin([list, tuple, np.ndarray]).to_numpy()
+    if not is_list.any():
+        return column
+    lists = column[is_list]
+    sizes = lists.map(len).to_numpy(dtype=np.int64)
+    wrong = np.flatnonzero(sizes != 1)
+    if wrong.size:
+        i = int(lists.index[wrong[0]])
+        shown = np.asarray(column.iloc[i], dtype=object).tolist()
+        size = int(sizes[wrong[0]])
+        fail(i, f"value {shown!r} is " + (f"a list of {size} values" if size else
+                                          "an empty list"))
+    column = column.copy()
+    column[is_list] = lists.map(operator.itemgetter(0))
+    return column
 
 
 def _readonly(array: np.ndarray) -> np.ndarray:

@@ -47,7 +47,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError, Terminated
+from .errors import InputError, Terminated, raise_if_stopped
 from .system import SPECIES
 
 __all__ = ["staged_folder", "write_run", "write_run_files", "provenance", "file_sha256",
@@ -853,6 +853,7 @@ def staged_folder(out, *, force: bool = False, inputs=(), command: str | None = 
     discard = True
     try:
         yield staging
+        raise_if_stopped()  # a Ctrl-C swallowed where Python ignores exceptions
         _ACTIVE.remove(staging)
         _carry(real, staging, keep)
         (staging / STAGING_NAME).unlink()

@@ -11,6 +11,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 import math
+import os
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -42,6 +43,12 @@ class Key:
 
 
 # ----------------------------------------------------------------------- value checks
+#: The largest magnitude of a scenario number or per-patch value: far beyond any rate,
+#: density or time in use, and far enough from float64's 1.8e308 that products of a few
+#: of them in the equations stay finite.
+LARGEST = 1e12
+#: A scenario is a short text: larger files are refused before they are read.
+MAX_SCENARIO_BYTES = 1 << 20
 def _number(lo=None, hi=None, *, lo_open=False, integer=False):
     wanted = allowed_range(lo, hi, lo_open, integer=integer)
 
@@ -61,6 +68,10 @@ def _number(lo=None, hi=None, *, lo_open=False, integer=False):
             return f"{v!r} is not a finite number; give {wanted}"
         if lo is not None and (v <= lo if lo_open else v < lo) or hi is not None and v > hi:
             return f"{v!r} is out of range; give {wanted}"
+        if not integer and abs(v) > LARGEST:
+            capped = allowed_range(-LARGEST if lo is None else lo, LARGEST, lo_open)
+            return (f"{v!r} is beyond the largest value trophoscape computes with "
+                    f"({LARGEST:g}); give {capped}")
         return None
 
     check.bounds = (lo, hi, lo_open)
@@ -306,6 +317,32 @@ def _suggest(word, options):
     return f"; did you mean {close[0]!r}?" if close else ""
 
 
+def check_regular_file(path, *, what: str, limit: int | None = None) -> None:
+    """Refuse, before opening it, a path that is not a regular file (a named pipe or a
+    device would block or never end) or is larger than ``limit`` bytes.
+
+    A missing file is left to the reader, whose message says so.
+    """
+    import stat
+
+    try:
+        info = os.stat(path)
+    except FileNotFoundError:
+        return
+    except OSError as exc:
+        raise InputError(f"cannot read the {what} ({exc.strerror or exc}); check that it is a "
+                         "readable file", file=path) from None
+    if stat.S_ISDIR(info.st_mode):
+        raise InputError(f"is a folder, not a {what}; give the path of the file itself",
+                         file=path)
+    if not stat.S_ISREG(info.st_mode):
+        raise InputError(f"is not a regular file (a named pipe, device or socket); give the "
+                         f"path of a {what} saved on disk", file=path)
+    if limit is not None and info.st_size > limit:
+        raise InputError(f"is {info.st_size:,} bytes, more than the {limit:,} a {what} may "
+                         "have; check that this is the right file", file=path)
+
+
 def read_scenario(path) -> Scenario:
     """Read and validate a scenario file.
 
@@ -317,6 +354,7 @@ def read_scenario(path) -> Scenario:
     """
     path = Path(path)
     try:
+        check_regular_file(path, what="scenario file", limit=MAX_SCENARIO_BYTES)
         raw_bytes = path.read_bytes()
         text = raw_bytes.decode("utf-8")
     except FileNotFoundError:
@@ -330,6 +368,10 @@ def read_scenario(path) -> Scenario:
                          "it is a readable file", file=path) from None
     try:
         raw = tomllib.loads(text)
+    except RecursionError:
+        raise InputError("not valid for trophoscape: values are nested too deeply (arrays "
+                         "or tables inside one another hundreds of levels deep); a scenario "
+                         "needs at most a few levels", file=path) from None
     except tomllib.TOMLDecodeError as exc:
         detail = str(exc)
         if detail.endswith("(at end of document)"):
@@ -463,7 +505,7 @@ def _parse_shocks(tables, values, file) -> tuple:
     """Validate the ``[[shock]]`` array of tables; ids are checked later, against the patches."""
     from .shocks import SHOCK_KINDS
 
-    if isinstance(tables, Mapping):
+    if isinstance(tables, Mapping) or not isinstance(tables, (list, tuple)):
         raise InputError("is not a list of shock tables; write each shock as a [[shock]] "
                          "table (double brackets) with its keys below it",
                          file=file, field="shock")

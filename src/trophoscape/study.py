@@ -8,6 +8,8 @@ same numbers as the CLI.
 
 from __future__ import annotations
 
+import math
+import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -23,7 +25,7 @@ from .dynamics import PARAMETER_KEYS, LocalModel, interior_equilibrium
 from .errors import InputError, TrophoscapeWarning, allowed_range
 from .landscape import Landscape, read_patches
 from .network import Network, arc_weights, build_network, movement_operator
-from .scenario import FieldRef, Scenario, bounds_of, read_scenario
+from .scenario import LARGEST, FieldRef, Scenario, bounds_of, read_scenario
 from .simulate import Trajectory, simulate
 from .system import SPECIES, CoupledSystem, pack
 
@@ -79,6 +81,15 @@ def _per_patch(scenario: Scenario, landscape: Landscape, key: str) -> np.ndarray
         return np.full(n, float(value))
     values = landscape.values(value.field, key=key)
     lo, hi, lo_open = bounds_of(key)
+    huge = ~(np.abs(values) <= LARGEST)  # NaN and infinities too
+    if huge.any():
+        i = int(np.argmax(huge))
+        capped = allowed_range(-LARGEST if lo is None else lo, LARGEST if hi is None else hi,
+                               lo_open)
+        raise InputError(f"value {float(values[i])!r} for {key} is not a finite number within "
+                         f"the range trophoscape computes with; give {capped} in every "
+                         "feature", file=landscape.path, feature=_feature(landscape, i),
+                         field=value.field)
     bad = np.zeros(n, dtype=bool)
     if lo is not None:
         bad |= (values <= lo) if lo_open else (values < lo)
@@ -123,6 +134,9 @@ def _build_study(scenario: Scenario) -> Study:
         For anything wrong in the scenario, the patch file, the corridors or the links table.
     """
     sc = scenario
+    for key in ("patches.path", "dispersal.corridors", "dispersal.links"):
+        if sc[key]:
+            check_not_a_stream(sc.resolve(sc[key]))
     landscape = read_patches(
         sc.resolve(sc["patches.path"]), id_field=sc["patches.id_field"], crs=sc["patches.crs"],
         fields=sc.fields_used(), layer=sc["patches.layer"],
@@ -175,8 +189,86 @@ def _build_study(scenario: Scenario) -> Study:
     from .shocks import build_shocks
 
     shocks = build_shocks(sc["shock"], ids=landscape.ids, network=network, file=sc.path)
+    check_run_size(sc, n, model.params)
     return Study(scenario=sc, landscape=landscape, network=network, model=model,
                  system=system, initial_state=initial, dispersal=dispersal, shocks=shocks)
+
+
+def check_not_a_stream(path) -> None:
+    """Refuse an input path that is a named pipe, a device or a socket: reading one would
+    block or never end. Files and folders (some GIS formats are folders) pass."""
+    import stat
+
+    try:
+        mode = os.stat(path).st_mode
+    except OSError:
+        return  # missing or unreadable: the reader's own message says so
+    if not (stat.S_ISREG(mode) or stat.S_ISDIR(mode)):
+        raise InputError("is not a regular file (a named pipe, device or socket); give the "
+                         "path of a file saved on disk", file=path)
+
+
+def physical_memory() -> int:
+    """Bytes of memory of this machine (8 GiB where the system does not say)."""
+    try:
+        return int(os.sysconf("SC_PHYS_PAGES")) * int(os.sysconf("SC_PAGE_SIZE"))
+    except (AttributeError, ValueError, OSError):  # pragma: no cover - not on Linux
+        return 8 << 30
+
+
+#: Most noise steps a run may take (each restarts the solver).
+MAX_NOISE_STEPS = 10_000_000
+#: Bytes of working memory per stored census value: the float32 series itself, and the
+#: float64 copies the analyses make of one species and replicate at a time.
+_BYTES_PER_VALUE = 12
+
+
+def run_size(sc: Scenario, n_patches: int) -> dict:
+    """What a run of the scenario will hold: census rows, replicates, stored values and the
+    memory they need (an estimate, in bytes)."""
+    rows = math.floor(sc["run.duration"] / sc["run.census_interval"] + 1e-9) + 2
+    reps = int(sc["run.replicates"])
+    values = 2.0 * rows * n_patches * reps
+    features = 0.0
+    if sc["noise.correlation_km"] != "regional" and (sc["noise.environmental_sd"] > 0
+                                                     or sc["noise.predator_mortality_sd"] > 0):
+        features = 8.0 * reps * n_patches * min(n_patches, sc["noise.rank"])
+    return {"rows": rows, "replicates": reps, "values": values,
+            "bytes": values * _BYTES_PER_VALUE + features}
+
+
+def _size_words(b: float) -> str:
+    for unit, scale in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6)):
+        if b >= scale:
+            return f"{b / scale:.3g} {unit}"
+    return f"{b:.0f} bytes"
+
+
+def check_run_size(sc: Scenario, n_patches: int, params=None) -> None:
+    """Refuse up front a run that cannot fit in this machine's memory, or would take more
+    than :data:`MAX_NOISE_STEPS` noise steps, with the estimate in the message."""
+    size = run_size(sc, n_patches)
+    memory = physical_memory()
+    if size["bytes"] > memory:
+        field = "run.replicates" if size["replicates"] > size["rows"] else "run.census_interval"
+        raise InputError(
+            f"the run would record {size['rows']:,} census rows × {n_patches:,} patches × 2 "
+            f"species × {size['replicates']:,} replicate(s), about "
+            f"{_size_words(size['bytes'])} of memory, more than this machine's "
+            f"{_size_words(memory)}; lengthen run.census_interval, shorten run.duration or "
+            "run fewer replicates", file=sc.path, field=field)
+    if params is not None and (sc["noise.environmental_sd"] > 0
+                               or sc["noise.predator_mortality_sd"] > 0):
+        from .noise import auto_step
+
+        step = sc["noise.noise_step"]
+        step = auto_step(params) if step == "auto" else float(step)
+        count = sc["run.duration"] / step
+        if count > MAX_NOISE_STEPS:
+            raise InputError(
+                f"the run would take {count:,.0f} noise steps of {step:g} time units (at most "
+                f"{MAX_NOISE_STEPS:,}; each restarts the solver); give a longer noise_step",
+                file=sc.path, field="noise.noise_step")
 
 
 def _initial_state(sc: Scenario, landscape: Landscape, model: LocalModel) -> np.ndarray:

@@ -126,6 +126,11 @@ def _tidy(x: float) -> float:
     return float(f"{x:.12g}")
 
 
+#: Most runs (points × replicates) a sweep may plan: a ledger row, a JSON file and a table
+#: row each; more is a typing slip (a COUNT with extra zeros), not a study.
+MAX_SWEEP_RUNS = 1_000_000
+
+
 def parse_vary(arg: str) -> tuple[str, list]:
     """Parse one ``KEY=SPEC`` argument of ``--vary``.
 
@@ -175,6 +180,9 @@ def parse_vary(arg: str) -> tuple[str, list]:
             count = int(parts[2])
         except ValueError:
             count = 0
+        if count > MAX_SWEEP_RUNS:
+            raise InputError(f"COUNT {count:,} is more points than a sweep may have (at most "
+                             f"{MAX_SWEEP_RUNS:,} runs); give a smaller COUNT", field=field)
         if count < 1 or not math.isfinite(start) or not math.isfinite(stop):
             raise InputError(f"COUNT {parts[2]!r} of the range is not a whole number of at "
                              "least 1; give e.g. 0.5:1.5:11" if count < 1 else
@@ -387,6 +395,12 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
             keys.append(k)
     if not groups:
         return [], [{}], origins
+    total = math.prod(len(rows) for _, rows in groups)
+    if total > MAX_SWEEP_RUNS:
+        sizes = " × ".join(f"{len(rows):,}" for _, rows in groups)
+        raise InputError(f"the sweep would have {sizes} = {total:,} points, more than the "
+                         f"{MAX_SWEEP_RUNS:,} runs a sweep may have; vary fewer values",
+                         field="--vary")
     points = [dict(itertools.chain.from_iterable(p.items() for p in combo))
               for combo in itertools.product(*(rows for _, rows in groups))]
     return keys, points, origins
@@ -437,7 +451,13 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
                          "number of replicates per point, e.g. --replicates 10",
                          field="--replicates")
     keys, points, origins = _as_points(variants_or_vary_specs, table=table)
+    if len(points) * replicates > MAX_SWEEP_RUNS:
+        raise InputError(f"{len(points):,} points × {replicates:,} replicates = "
+                         f"{len(points) * replicates:,} runs, more than the "
+                         f"{MAX_SWEEP_RUNS:,} a sweep may have; run fewer replicates or "
+                         "points", field="--replicates")
     runs = []
+    checked_files: dict = {}
     base_dir = str(Path(scenario.base_dir).resolve())
     path = None if scenario.path is None else str(Path(scenario.path).resolve())
     seen_points: dict[tuple, dict] = {}
@@ -456,11 +476,48 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
                              f"{_describe(point)} are the same scenario; give each once",
                              field="--vary")
         seen_points[canonical] = point
+        _check_point_inputs(sc, point, checked_files)
         for r, seed in enumerate(replicate_seeds(sc["run.seed"], replicates)):
             runs.append(SweepRun(run_id=run_id_of(dict(canonical), r), point=p, replicate=r,
                                  seed=seed, variant=canonical, scenario_text=scenario.text,
                                  scenario_path=path, base_dir=base_dir))
     return keys, runs, scenario
+
+
+def _check_point_inputs(sc, point: dict, checked: dict) -> None:
+    """Before any run starts: the files a point names exist, and its run fits in memory
+    (the patch count read from the file's header, once per file)."""
+    from .study import check_not_a_stream, check_run_size
+
+    for key, what in (("patches.path", "patch file"), ("dispersal.links", "links table"),
+                      ("dispersal.corridors", "corridor file")):
+        if not sc[key]:
+            continue
+        path = sc.resolve(sc[key])
+        if path not in checked:
+            if not Path(path).exists():
+                where = f" of the point {_describe(point)}" if key in point else ""
+                raise InputError(f"the {what}{where} does not exist; check the path (it is "
+                                 "relative to the scenario's folder)", file=path, field=key)
+            check_not_a_stream(path)
+            checked[path] = _feature_count(path) if key == "patches.path" else None
+    n = checked.get(sc.resolve(sc["patches.path"]))
+    if n:
+        try:
+            check_run_size(sc, n)
+        except InputError as exc:
+            raise InputError(f"the point {_describe(point)}: {exc.message}", file=exc.file,
+                             field=exc.field) from None
+
+
+def _feature_count(path) -> int | None:
+    """Features in a GIS file from its header, without reading them (None if unknown)."""
+    try:
+        import pyogrio
+
+        return int(pyogrio.read_info(path)["features"]) or None
+    except Exception:  # noqa: BLE001 - the run's own reader reports unreadable files
+        return None
 
 
 def _canonical(validated, given):
@@ -709,9 +766,15 @@ def _now() -> str:
 def _run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks, **options):
     """Run the runs not yet recorded as ok in the ledger, recording each as it finishes;
     return the sweep table from the ledger."""
-    ledger = Ledger(ledger_path)
     try:
+        ledger = Ledger(ledger_path)
         meta = ledger.meta()
+    except sqlite3.DatabaseError as exc:
+        raise InputError(f"the sweep's ledger cannot be read ({exc}); it is damaged or not a "
+                         "trophoscape ledger; start the sweep again in another --out folder",
+                         file=ledger_path,
+                         field="--resume") from None
+    try:
         started = {"format": LEDGER_FORMAT, "scenario_sha256": scenario.sha256,
                    "keys": json.dumps(keys)}
         if meta:

@@ -41,17 +41,36 @@ def guess_id_field(table: pd.DataFrame) -> str | None:
     return next((c for c in ranked if usable(c)), None)
 
 
+def toml_string(text) -> str:
+    """``text`` as a TOML basic string: quotes, backslashes and control characters escaped
+    (TOML v1.0.0, "String"), so any column or file name reads back as itself."""
+    out = []
+    for ch in str(text):
+        if ch in ('"', "\\"):
+            out.append("\\" + ch)
+        elif ord(ch) < 0x20 or ord(ch) == 0x7F:
+            out.append(f"\\u{ord(ch):04X}")
+        else:
+            out.append(ch)
+    return '"' + "".join(out) + '"'
+
+
+def _plain(text) -> str:
+    """Text for a comment line: on one line, control characters escaped."""
+    return toml_string(text)[1:-1]
+
+
 def _describe(table: pd.DataFrame) -> list[str]:
     lines = []
     for col in table.columns:
         values = table[col]
         if pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values):
-            lines.append(f"#   {col}: numbers, {values.min():g} to {values.max():g}"
+            lines.append(f"#   {_plain(col)}: numbers, {values.min():g} to {values.max():g}"
                          + (f" ({int(values.isna().sum())} missing)" if values.isna().any()
                             else ""))
         else:
-            sample = ", ".join(map(str, pd.unique(values.astype(str))[:3]))
-            lines.append(f"#   {col}: text, e.g. {sample}")
+            sample = ", ".join(map(_plain, pd.unique(values.astype(str))[:3]))
+            lines.append(f"#   {_plain(col)}: text, e.g. {sample}")
     return lines
 
 
@@ -61,14 +80,15 @@ def scenario_template(patch_file: Path, table: pd.DataFrame, *, relative_to: Pat
     quality = next((c for c in table.columns if "quality" in c.lower()
                     and pd.api.types.is_numeric_dtype(table[c])), None)
     rel = os.path.relpath(patch_file, relative_to)
-    id_line = (f'id_field = "{id_field}"            # unique in the file (guessed)' if id_field
+    id_line = (f'id_field = {toml_string(id_field)}            # unique in the file (guessed)'
+               if id_field
                else '# id_field = "..."               # no unique column found: patches are '
                     'numbered 0, 1, ...')
-    q_line = (f'quality_field = "{quality}"       # multiplies the prey carrying capacity'
+    q_line = (f'quality_field = {toml_string(quality)}       # multiplies the prey carrying capacity'
               if quality else '# quality_field = "..."          # optional multiplier of '
                               'carrying capacity (>= 0)')
     attributes = "\n".join(_describe(table)) or "#   (none)"
-    return f'''# trophoscape scenario for {patch_file.name}
+    return f'''# trophoscape scenario for {_plain(patch_file.name)}
 # Every key below shows its default; change what your study needs. Times are in time_unit,
 # distances in km, densities per km², abundances in individuals. Any number in [prey],
 # [predator] or [predation] may instead be taken per patch: key = {{ field = "ATTRIBUTE" }}.
@@ -76,11 +96,11 @@ def scenario_template(patch_file: Path, table: pd.DataFrame, *, relative_to: Pat
 # Attributes found in the patch file ({len(table)} patches):
 {attributes}
 
-name = "{patch_file.stem}"
+name = {toml_string(patch_file.stem)}
 time_unit = "year"
 
 [patches]
-path = "{rel}"
+path = {toml_string(rel)}
 {id_line}
 {q_line}
 crs = "auto"                    # local UTM zone, or Lambert equal-area for wide extents
