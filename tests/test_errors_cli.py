@@ -513,6 +513,18 @@ CASES = [
          {"s.toml": scenario(prey={"growth_rate": {"field": "r"}}),
           "p.geojson": patches_with(lambda fs: [f["properties"].__setitem__(
               "r", 1e308 if f["properties"]["pid"] == "A3" else 1.0) for f in fs])}),
+    Case("per-patch-value-1e400",
+         "error: p.geojson: feature 0: field 'r': the number is beyond the range of 64-bit "
+         "floating point (about ±1.8e308; inf as read); give a finite number",
+         {"s.toml": scenario(prey={"growth_rate": {"field": "r"}}),
+          "p.geojson": collection(features()).replace('"quality": 1.0',
+                                                      '"r": 1e400, "quality": 1.0')}),
+    Case("geojson-nested-deep",
+         "error: p.geojson: not a GeoJSON FeatureCollection: arrays or objects are nested "
+         "thousands of levels deep; export the file again",
+         {"p.geojson": '{"type": "FeatureCollection", "features": [{"type": "Feature", '
+                       '"properties": {"x": ' + "[" * 100_000 + "]" * 100_000
+                       + '}, "geometry": null}]}'}),
     Case("sweep-count-too-large",
          "error: field '--vary prey.growth_rate=0:1:100000000': COUNT 100,000,000 is more "
          "points than a sweep may have (at most 1,000,000 runs); give a smaller COUNT",

@@ -615,3 +615,12 @@ def test_lists_of_one_value_are_that_value():
     frame["r"] = pd.Series([np.array([1.5]), np.array([2.0]), [1.0], (0.5,)], dtype=object)
     np.testing.assert_array_equal(
         landscape_from_frame(frame, id_field="pid").values("r"), [1.5, 2.0, 1.0, 0.5])
+
+
+def test_the_whole_corpus_has_at_least_100_cases():
+    # the bad-input corpus of the command line: this file's cases and test_errors_cli.py's
+    from test_errors_cli import CASES as CLI_CASES
+
+    ids = [c.id for c in CLI_CASES] + [c.id for c in CASES]
+    assert len(set(ids)) == len(ids)
+    assert len(ids) >= 100, len(ids)

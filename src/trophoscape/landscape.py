@@ -31,6 +31,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import json
+import math
 import operator
 import re
 import warnings
@@ -750,17 +751,46 @@ def _read_vector_file(path: Path, *, layer=None) -> geopandas.GeoDataFrame:
                                     category=UserWarning)
             return geopandas.read_file(path, engine="pyogrio", layer=layer)
     except Exception as exc:  # pyogrio/GDAL raise several unrelated types for unreadable data
-        if path.suffix.lower() in (".geojson", ".json"):
+        if (path.suffix.lower() in (".geojson", ".json") and path.is_file()
+                and path.stat().st_size <= MAX_JSON_DIAGNOSIS_BYTES):
+            # GDAL's message names a character position: Python's reader can say more
             try:
-                json.loads(path.read_text(encoding="utf-8"))
+                data = json.loads(path.read_text(encoding="utf-8"))
             except json.JSONDecodeError as bad:
                 raise InputError(f"not valid JSON ({bad.msg} at line {bad.lineno}, column "
                                  f"{bad.colno}); expected a GeoJSON FeatureCollection",
                                  file=path) from exc
-            except (OSError, UnicodeDecodeError):
-                pass
+            except RecursionError:
+                raise InputError("not a GeoJSON FeatureCollection: arrays or objects are "
+                                 "nested thousands of levels deep; export the file again",
+                                 file=path) from None
+            except (OSError, UnicodeDecodeError, MemoryError):
+                data = None
+            _non_finite_property(data, path)
         raise InputError(f"cannot be read as {_VECTOR_FORMATS}: {_first_line(exc)}; check "
                          "that it opens in a GIS, or export it again", file=path) from exc
+
+
+#: A GeoJSON file GDAL cannot read is read again by Python's JSON reader, to name what is
+#: wrong, only up to this size (it is held in memory whole).
+MAX_JSON_DIAGNOSIS_BYTES = 64 << 20
+
+
+def _non_finite_property(data, path: Path) -> None:
+    """Name the first feature and property holding a number beyond float64 (such as
+    1e400, which GDAL refuses and Python reads as infinity)."""
+    features = data.get("features") if isinstance(data, dict) else None
+    if not isinstance(features, list):
+        return
+    for i, feature in enumerate(features):  # the error path only: the file is already bad
+        props = feature.get("properties") if isinstance(feature, dict) else None
+        if not isinstance(props, dict):
+            continue
+        for key, value in props.items():
+            if isinstance(value, float) and not math.isfinite(value):
+                raise InputError(f"the number is beyond the range of 64-bit floating point "
+                                 f"(about ±1.8e308; {value!r} as read); give a finite number",
+                                 file=path, feature=i, field=str(key))
 
 
 def _first_line(exc: BaseException) -> str:
