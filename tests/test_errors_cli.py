@@ -502,6 +502,12 @@ CASES = [
          "error: s.toml: field 'prey.growth_rate': 1e+300 is beyond the largest value "
          "trophoscape computes with (1e+12); give a number from 0 to 1e+12",
          {"s.toml": scenario(prey={"growth_rate": 1e300})}),
+    Case("growth-rate-too-fast-for-the-solver",
+         "error: s.toml: field 'prey.growth_rate': a rate of 1e+12 per time unit over "
+         "run.duration 2 spans 2e+12 of its time scales: the solver (RK45) would need at "
+         "least about that many steps (at most 1e+08); check the rate's time unit, or use "
+         "run.method = \"BDF\" for such fast rates",
+         {"s.toml": scenario(prey={"growth_rate": 1e12})}),
     Case("attack-rate-1e308",
          "error: s.toml: field 'predation.attack_rate': 1e+308 is beyond the largest value "
          "trophoscape computes with (1e+12); give a number from 0 to 1e+12",

@@ -436,6 +436,7 @@ def test_ctrl_c_leaves_a_consistent_ledger_and_exit_130(tmp_path, long_scenario,
     _, err = proc.communicate(timeout=60)
     assert proc.returncode == 130, err
     assert "--resume" in err and "Traceback" not in err
+    assert len(err.splitlines()) == 1, err  # one line, however the stop travelled
     conn = sqlite3.connect(out / LEDGER_NAME)
     assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
     n, ok = conn.execute("SELECT COUNT(*), SUM(status = 'ok') FROM runs").fetchone()

@@ -189,7 +189,8 @@ def _build_study(scenario: Scenario) -> Study:
     from .shocks import build_shocks
 
     shocks = build_shocks(sc["shock"], ids=landscape.ids, network=network, file=sc.path)
-    check_run_size(sc, n, model.params)
+    check_run_size(sc, n, model.params, emigration={s: d["emigration_rate"]
+                                                    for s, d in dispersal.items()})
     return Study(scenario=sc, landscape=landscape, network=network, model=model,
                  system=system, initial_state=initial, dispersal=dispersal, shocks=shocks)
 
@@ -218,6 +219,9 @@ def physical_memory() -> int:
 
 #: Most noise steps a run may take (each restarts the solver).
 MAX_NOISE_STEPS = 10_000_000
+#: Most time scales of the fastest per-capita rate a run with an explicit solver may span:
+#: such a solver needs at least about that many steps (its stability limit).
+MAX_TIME_SCALES = 1e8
 #: Bytes of working memory per stored census value: the float32 series itself, and the
 #: float64 copies the analyses make of one species and replicate at a time.
 _BYTES_PER_VALUE = 12
@@ -244,9 +248,11 @@ def _size_words(b: float) -> str:
     return f"{b:.0f} bytes"
 
 
-def check_run_size(sc: Scenario, n_patches: int, params=None) -> None:
-    """Refuse up front a run that cannot fit in this machine's memory, or would take more
-    than :data:`MAX_NOISE_STEPS` noise steps, with the estimate in the message."""
+def check_run_size(sc: Scenario, n_patches: int, params=None, emigration=None) -> None:
+    """Refuse up front a run that cannot fit in this machine's memory, would take more than
+    :data:`MAX_NOISE_STEPS` noise steps, or (with an explicit solver) whose fastest
+    per-capita rate spans more than :data:`MAX_TIME_SCALES` of its time scales; the
+    estimate is in the message."""
     size = run_size(sc, n_patches)
     memory = physical_memory()
     if size["bytes"] > memory:
@@ -269,6 +275,23 @@ def check_run_size(sc: Scenario, n_patches: int, params=None) -> None:
                 f"the run would take {count:,.0f} noise steps of {step:g} time units (at most "
                 f"{MAX_NOISE_STEPS:,}; each restarts the solver); give a longer noise_step",
                 file=sc.path, field="noise.noise_step")
+    from .simulate import IMPLICIT, choose_method
+
+    if params is not None and choose_method(sc["run.method"]) not in IMPLICIT + ("LSODA",):
+        rates = {"prey.growth_rate": params.get("growth_rate", 0.0),
+                 "predator.mortality_rate": params.get("mortality", 0.0)}
+        for s, rate in (emigration or {}).items():
+            rates[f"{s}.emigration_rate"] = rate
+        fastest = {k: float(np.max(np.abs(v), initial=0.0)) for k, v in rates.items()}
+        key = max(fastest, key=fastest.get)
+        scales = fastest[key] * sc["run.duration"]
+        if scales > MAX_TIME_SCALES:
+            raise InputError(
+                f"a rate of {fastest[key]:g} per time unit over run.duration "
+                f"{sc['run.duration']:g} spans {scales:.3g} of its time scales: the solver "
+                f"({choose_method(sc['run.method'])}) would need at least about that many "
+                f"steps (at most {MAX_TIME_SCALES:.0e}); check the rate's time unit, or "
+                'use run.method = "BDF" for such fast rates', file=sc.path, field=key)
 
 
 def _initial_state(sc: Scenario, landscape: Landscape, model: LocalModel) -> np.ndarray:

@@ -70,7 +70,7 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 
 def handle(args) -> int:
     """Run the sweep; return the exit code (InputError / RunError go up to ``cli.main``)."""
-    from .errors import InputError, Terminated
+    from .errors import InputError, Terminated, clear_stop
     from .outputs import written_count, written_since
     from .sweep import LEDGER_NAME, TABLE_NAME, sweep
 
@@ -87,6 +87,7 @@ def handle(args) -> int:
     except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (errors.Terminated)
         if not (args.out / LEDGER_NAME).exists() or written_since(mark):
             raise  # stopped before the first run began, or after the table was in place
+        clear_stop()  # handled here: the command ends with this line and code
         stopped = "terminated" if isinstance(exc, Terminated) else "interrupted"
         print(f"{stopped}; the finished runs are kept in {args.out / LEDGER_NAME}; run the "
               "same command with --resume to finish the sweep", file=sys.stderr)
