@@ -133,10 +133,11 @@ def test_demo_timeseries(demo, demo_inputs):
             assert ds[s].dtype == np.float32
             chunks = ds[s].encoding["chunksizes"]
             assert chunks is not None and all(1 <= c <= d for c, d in zip(chunks, ds[s].shape))
-        # coordinate patch = the ids of the input file, in the file's order
-        assert [str(p) for p in ds["patch"].values] == ids
-        time = ds["time"].values
-        assert "units" in ds["time"].attrs
+        # patch_id = the ids of the input file, in the file's order (CF timeseries_id)
+        assert [str(p) for p in ds["patch_id"].values] == ids
+        assert ds["patch_id"].attrs["cf_role"] == "timeseries_id"
+        time = ds["model_time"].values
+        assert "units" in ds["model_time"].attrs
     steps = round(run["duration"] / run["census_interval"])
     np.testing.assert_allclose(time, np.arange(steps + 1) * run["census_interval"])
 
@@ -260,7 +261,7 @@ def test_demo_persistence_columns_agree_with_the_timeseries(demo, demo_inputs):
     level = scenario["run"]["extinction_abundance"]
     csv = read_csv(out / "patches.csv")
     with xr.open_dataset(out / "timeseries.nc", engine="h5netcdf") as ds:
-        after = ds["time"].values >= burn_in
+        after = ds["model_time"].values >= burn_in
         for s in SPECIES:
             x = ds[s].values.astype(np.float64)
             assert np.array_equal(as_bool(csv[f"{s}_persists"]), x[-1] >= level), s
