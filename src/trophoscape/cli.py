@@ -215,8 +215,23 @@ def main(argv=None, *, last: bool = False) -> int:
 def entry() -> None:
     """The ``trophoscape`` program: :func:`main`, then exit with its code. Signals after the
     command ended are ignored while the interpreter shuts down (a Ctrl-C there would
-    otherwise end the process by SIGINT after a finished, successful command)."""
-    sys.exit(main(last=True))
+    otherwise end the process by SIGINT after a finished, successful command).
+
+    After Ctrl-C or SIGTERM the process ends at once with the command's code (130 or 143),
+    everything it wrote already closed and removed: a KeyboardInterrupt that struck inside a
+    library's own start-up code (run by the interpreter's string-execution API during an
+    import) leaves a flag in the interpreter that would make it end by SIGINT at shutdown,
+    after the one-line message, whatever the code.
+    """
+    code = main(last=True)
+    if code in (130, Terminated.exit_code):
+        for stream in (sys.stdout, sys.stderr):
+            try:
+                stream.flush()
+            except (OSError, ValueError):
+                pass
+        os._exit(code)
+    sys.exit(code)
 
 
 def _written_count() -> int:
