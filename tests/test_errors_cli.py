@@ -568,23 +568,29 @@ class Outcome:
     stderr: str
 
 
-@pytest.fixture(scope="module")
-def outcomes(tmp_path_factory) -> dict[str, Outcome]:
-    """Every case run once through the CLI (in parallel: each call is ~1 s of start-up)."""
-    root = tmp_path_factory.mktemp("bad-inputs")
+def write_case_files(folder: Path, files: dict) -> None:
+    """The valid inputs with a case's files over them: text, bytes, FIFO or FOLDER."""
+    files = {"s.toml": scenario(), "p.geojson": collection(features()), **files}
+    for name, data in files.items():
+        (folder / name).parent.mkdir(parents=True, exist_ok=True)
+        if data == FIFO:
+            os.mkfifo(folder / name)
+        elif data == FOLDER:
+            (folder / name).mkdir()
+        elif isinstance(data, bytes):
+            (folder / name).write_bytes(data)
+        else:
+            (folder / name).write_text(data, encoding="utf-8")
+
+
+def run_corpus(cases, root: Path) -> dict[str, Outcome]:
+    """Every case run once through the CLI, each in its own folder under ``root`` (in
+    parallel: each call is ~1 s of start-up)."""
 
     def one(case: Case) -> Outcome:
         folder = root / case.id
         folder.mkdir()
-        files = {"s.toml": scenario(), "p.geojson": collection(features()), **case.files}
-        for name, text in files.items():
-            (folder / name).parent.mkdir(parents=True, exist_ok=True)
-            if text == FIFO:
-                os.mkfifo(folder / name)
-            elif text == FOLDER:
-                (folder / name).mkdir()
-            else:
-                (folder / name).write_text(text, encoding="utf-8")
+        write_case_files(folder, case.files)
         args = [case.command, "s.toml"]
         if case.command in ("run", "spread"):
             args += ["--out", "out", "--no-maps"]
@@ -594,7 +600,12 @@ def outcomes(tmp_path_factory) -> dict[str, Outcome]:
         return Outcome(folder, done.returncode, done.stderr)
 
     with ThreadPoolExecutor(max_workers=max(2, os.cpu_count() or 2)) as pool:
-        return dict(zip((c.id for c in CASES), pool.map(one, CASES)))
+        return dict(zip((c.id for c in cases), pool.map(one, cases)))
+
+
+@pytest.fixture(scope="module")
+def outcomes(tmp_path_factory) -> dict[str, Outcome]:
+    return run_corpus(CASES, tmp_path_factory.mktemp("bad-inputs"))
 
 
 def _param(case: Case, reason: str | None):

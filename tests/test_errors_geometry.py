@@ -16,10 +16,8 @@ from __future__ import annotations
 
 import copy
 import json
-import os
 import tempfile
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -30,7 +28,7 @@ import pyproj
 import pytest
 import shapely
 from test_errors_cli import (LAT0, LON0, SIDE_LON, STEP_LON, Case, collection,
-                             features, run_cli, scenario, square)
+                             features, run_corpus, scenario, square)
 
 from trophoscape.errors import InputError, TrophoscapeWarning
 from trophoscape.landscape import (AREA_OF_USE_MARGIN_DEG, MIN_PATCH_AREA_KM2,
@@ -280,38 +278,10 @@ CASES = [
 # ------------------------------------------------------------------ running the cases
 
 
-@dataclass
-class Outcome:
-    folder: Path
-    returncode: int
-    stderr: str
-
-
 @pytest.fixture(scope="module")
-def outcomes(tmp_path_factory) -> dict[str, Outcome]:
-    """Every case run once through the CLI, as in test_errors_cli (its ``outcomes``)."""
-    root = tmp_path_factory.mktemp("bad-geometry")
-
-    def one(case: Case) -> Outcome:
-        folder = root / case.id
-        folder.mkdir()
-        files = {"s.toml": scenario(), "p.geojson": collection(features()), **case.files}
-        for name, data in files.items():
-            (folder / name).parent.mkdir(parents=True, exist_ok=True)
-            if isinstance(data, bytes):
-                (folder / name).write_bytes(data)
-            else:
-                (folder / name).write_text(data, encoding="utf-8")
-        args = [case.command, "s.toml"]
-        if case.command in ("run", "spread"):
-            args += ["--out", "out", "--no-maps"]
-        if case.argv is not None:
-            args = list(case.argv)
-        done = run_cli(folder, *args)
-        return Outcome(folder, done.returncode, done.stderr)
-
-    with ThreadPoolExecutor(max_workers=max(2, os.cpu_count() or 2)) as pool:
-        return dict(zip((c.id for c in CASES), pool.map(one, CASES)))
+def outcomes(tmp_path_factory) -> dict:
+    """Every case run once through the CLI, as test_errors_cli runs its corpus."""
+    return run_corpus(CASES, tmp_path_factory.mktemp("bad-geometry"))
 
 
 def test_cases_are_many_and_named_once():

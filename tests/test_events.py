@@ -159,6 +159,18 @@ def test_variance_excess_follows_the_leap_map_and_vanishes_as_the_tolerance_tigh
     assert excess[0] > excess[-1] > -Z * se  # and so does the excess, to 0
 
 
+def _birth_death(b, d, x0, t_end, patches, seed, census, **kw):
+    """A linear birth-death process (prey born at rate b, harvested at rate d per capita,
+    no predator) in ``patches`` unlinked patches from ``x0`` each, through the whole model."""
+    params = make_model(patches, growth="exponential", growth_rate=b, attack_rate=0.0).params
+    params = {**params, "prey_harvest": np.full(patches, d)}
+    system = make_system(LocalModel(growth="exponential", response="holling2", params=params))
+    noise = NoiseModel(centroids_km=np.c_[np.arange(patches, dtype=float), np.zeros(patches)],
+                       seeds=[seed], demographic=True)
+    return simulate(system, np.r_[np.full(patches, float(x0)), np.zeros(patches)],
+                    duration=t_end, census_interval=census, noise=noise, **kw)
+
+
 def test_linear_birth_death_mean_and_variance_with_leaps(monkeypatch):
     # one patch, prey born at rate b and harvested at rate d per capita, no predator: a
     # linear birth-death process with mean x0 e^{(b-d)t} and variance
@@ -167,14 +179,8 @@ def test_linear_birth_death_mean_and_variance_with_leaps(monkeypatch):
     # 5,000: every step leaps. A first-order leap would bias the mean by about
     # -(b-d)² τ t/2 (about 3 standard errors here); the midpoint leap removes it.
     b, d, x0, t_end, patches = 0.5, 0.8, 5_000.0, 2.0, 4_000
-    params = make_model(patches, growth="exponential", growth_rate=b, attack_rate=0.0).params
-    params = {**params, "prey_harvest": np.full(patches, d)}
-    system = make_system(LocalModel(growth="exponential", response="holling2", params=params))
-    noise = NoiseModel(centroids_km=np.c_[np.arange(patches, dtype=float), np.zeros(patches)],
-                       seeds=[5], demographic=True)
     seen = _spy(monkeypatch)
-    traj = simulate(system, np.r_[np.full(patches, x0), np.zeros(patches)], duration=t_end,
-                    census_interval=1.0, noise=noise)
+    traj = _birth_death(b, d, x0, t_end, patches, 5, 1.0)
     leaps, exact = _totals(seen)
     assert exact == 0 and leaps > 100
     got = traj.data["prey"].values[-1].astype(float)
@@ -192,14 +198,8 @@ def test_extinction_by_time_t_of_a_subcritical_birth_death_process(monkeypatch):
     # whole model: populations leap down to the critical size, and the last individuals
     # go by critical events (at most one per leap) and exact steps.
     b, d, x0, t_end, patches = 0.5, 1.5, 200.0, 5.0, 1_000
-    params = make_model(patches, growth="exponential", growth_rate=b, attack_rate=0.0).params
-    params = {**params, "prey_harvest": np.full(patches, d)}
-    system = make_system(LocalModel(growth="exponential", response="holling2", params=params))
-    noise = NoiseModel(centroids_km=np.c_[np.arange(patches, dtype=float), np.zeros(patches)],
-                       seeds=[8], demographic=True)
     seen = _spy(monkeypatch)
-    traj = simulate(system, np.r_[np.full(patches, x0), np.zeros(patches)], duration=t_end,
-                    census_interval=0.5, noise=noise)
+    traj = _birth_death(b, d, x0, t_end, patches, 8, 0.5)
     leaps, exact = _totals(seen)
     assert leaps > 0.5 * (leaps + exact)  # most steps leap
     got = traj.data["prey"].values
@@ -559,14 +559,7 @@ def test_event_runs_remove_populations_where_they_fall_not_at_census(census):
     # dip below 5 and recover between two censuses (at census 2: about half of them).
     b = d = 1.0
     x0, level, t_end, patches = 8, 5.0, 2.0, 2_000
-    params = make_model(patches, growth="exponential", growth_rate=b, attack_rate=0.0).params
-    params = {**params, "prey_harvest": np.full(patches, d)}
-    system = make_system(LocalModel(growth="exponential", response="holling2", params=params))
-    noise = NoiseModel(centroids_km=np.c_[np.arange(patches, dtype=float), np.zeros(patches)],
-                       seeds=[21], demographic=True)
-    traj = simulate(system, np.r_[np.full(patches, float(x0)), np.zeros(patches)],
-                    duration=t_end, census_interval=census, extinction_abundance=level,
-                    noise=noise)
+    traj = _birth_death(b, d, x0, t_end, patches, 21, census, extinction_abundance=level)
     share = float(np.mean(traj.data["prey"].values[-1] == 0))
     exact = float(np.mean(_ssa_absorbed_below(x0, b, d, level, t_end, 20_000,
                                               np.random.default_rng(4))))
