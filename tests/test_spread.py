@@ -445,3 +445,26 @@ def test_spread_command_with_the_followed_species_absent_exits_2(tmp_path, sprea
                                "the predator) is absent")
     assert captured.out == ""
     assert not out.exists() and not list(tmp_path.glob(".*partial*"))
+
+
+def test_spread_honours_the_noise_section(tmp_path):
+    # [noise] reaches the spread runs: the baseline differs from the deterministic one, the
+    # same seed gives the same numbers (consistency test), and the shocked run equals the
+    # baseline up to the shock (common random numbers: they differ by the shock alone)
+    path = source_sink_file(tmp_path)
+    noisy = {"environmental_sd": 0.2, "correlation_km": "regional", "correlation_time": 1.0}
+    plain = sp.run_spread(ts.build_study(chain_scenario(path, PREDATOR_REMOVAL)))
+    one = sp.run_spread(ts.build_study(chain_scenario(path, PREDATOR_REMOVAL, noise=noisy)))
+    two = sp.run_spread(ts.build_study(chain_scenario(path, PREDATOR_REMOVAL, noise=noisy)))
+    base, plain_base = one.baseline["predator"].values, plain.baseline["predator"].values
+    assert base.shape == plain_base.shape
+    assert np.max(np.abs(base - plain_base)) > 0.05 * np.max(plain_base)
+    np.testing.assert_array_equal(base, two.baseline["predator"].values)
+    times = np.asarray(one.baseline.time, dtype=float)
+    shocked = one.shocked["predator"].sel(time=times).values
+    before = times < 80.0
+    np.testing.assert_allclose(shocked[before], base[before], rtol=1e-9, atol=1e-9)
+    assert not np.allclose(shocked[~before], base[~before])
+    other = sp.run_spread(ts.build_study(chain_scenario(path, PREDATOR_REMOVAL, noise=noisy,
+                                                        run={"seed": 2})))
+    assert not np.array_equal(base, other.baseline["predator"].values)

@@ -46,6 +46,7 @@ import pandas as pd
 import pyproj
 import shapely
 
+from .columns import computed_columns
 from .errors import InputError, TrophoscapeWarning, allowed_range
 
 __all__ = [
@@ -313,29 +314,6 @@ def landscape_from_frame(gdf, *, id_field=None, crs="auto", fields=None, path=No
     out = geopandas.GeoDataFrame(out, geometry=series.to_crs(target).values, crs=target)
     return Landscape(frame=out, path=path, repaired=tuple(ids[invalid].tolist()),
                      id_field=id_field, renamed=renamed)
-
-
-def computed_columns() -> frozenset[str]:
-    """The column names trophoscape writes beside the user's attributes.
-
-    ``patch_id``, ``area_km2`` and ``geometry`` of :attr:`Landscape.frame`; ``links`` and
-    every per-species result column of ``patches.csv`` / ``patches.gpkg`` (persistence,
-    synchrony, equilibrium, metapopulation capacity), whatever analyses a run makes. A
-    column of a patch file with one of these names is kept under another name (see
-    :func:`landscape_from_frame`).
-
-    Returns
-    -------
-    frozenset of str
-    """
-    from .analysis import persistence, synchrony  # here: they import this module's package
-    from .system import SPECIES
-
-    per_species = (*persistence.PATCH_COLUMNS[1], *persistence.PATCH_COLUMNS["replicates"],
-                   *synchrony.PATCH_COLUMNS, "equilibrium",
-                   "capacity_share", "capacity_drop", "capacity_drop_approx")
-    return frozenset({"patch_id", "area_km2", "geometry", "links"}
-                     | {f"{s}_{c}" for s in SPECIES for c in per_species})
 
 
 def _keep_user_columns(frame, computed: dict, *, id_field, path):

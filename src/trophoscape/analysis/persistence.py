@@ -38,6 +38,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from ..columns import PERSISTENCE_COLUMNS
 from ..system import SPECIES
 from ._blocks import blocks
 
@@ -47,9 +48,7 @@ __all__ = ["persistence_table", "regional_persistence", "occupancy_curve", "pres
 #: What the functions below give per species ``S``: columns ``S_<name>`` of
 #: :func:`persistence_table` and keys ``S_<name>`` of :func:`regional_persistence`, then
 #: those added with replicates (a failed analysis leaves them empty).
-PATCH_COLUMNS = {1: ("persists", "occupancy", "mean", "cv", "last_extinction", "extinctions",
-                     "recolonisations", "time_to_extinction", "margin"),
-                 "replicates": ("persistence_share", "persistence_low", "persistence_high")}
+PATCH_COLUMNS = PERSISTENCE_COLUMNS  # names in trophoscape.columns
 REGIONAL_KEYS = {1: ("regional_persistence", "area_persistence", "regional_extinction_time",
                      "regional_survival"),
                  "replicates": ("regional_survival_low", "regional_survival_high")}

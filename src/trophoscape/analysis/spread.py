@@ -434,7 +434,20 @@ class SpreadResult:
     extras: dict = field(default_factory=dict, repr=False)
 
 
-def _simulate(study, y0, duration, *, events=(), progress=False, offset=0.0):
+def _noise(study, part: int):
+    """The scenario's ``[noise]`` for one part of a spread analysis (None without noise):
+    0 for the burn-in, 1 for the runs after it. Both parts draw from streams spawned from
+    the run's seed (``SeedSequence(seed).spawn(2)``), so the baseline and the shocked run
+    share one noise path (common random numbers: they differ by the shocks alone), and the
+    noise after burn-in starts from the process's stationary law."""
+    from ..study import noise_model, run_seeds
+
+    seed = run_seeds(study.scenario)[0]
+    child = np.random.SeedSequence(seed).spawn(2)[part]
+    return noise_model(study, [int(child.generate_state(1, dtype=np.uint64)[0] >> 1)])
+
+
+def _simulate(study, y0, duration, *, events=(), progress=False, offset=0.0, part=1):
     from ..simulate import Trajectory, simulate
 
     sc = study.scenario
@@ -442,7 +455,8 @@ def _simulate(study, y0, duration, *, events=(), progress=False, offset=0.0):
                     census_interval=sc["run.census_interval"],
                     extinction_abundance=sc["run.extinction_abundance"],
                     method=sc["run.method"], rtol=sc["run.rtol"], atol=sc["run.atol"],
-                    ids=study.ids, time_unit=sc["time_unit"], progress=progress, events=events)
+                    ids=study.ids, time_unit=sc["time_unit"], progress=progress, events=events,
+                    noise=_noise(study, part))
     if offset:
         data = traj.data.assign_coords(time=traj.data["time"] + offset)
         data["time"].attrs.update(traj.data["time"].attrs)
@@ -455,7 +469,7 @@ def _burn_in(study, *, progress=False):
     burn_in = study.scenario["run.burn_in"]
     if burn_in <= 0:
         return None, np.asarray(study.initial_state, dtype=float)
-    traj = _simulate(study, study.initial_state, burn_in, progress=progress)
+    traj = _simulate(study, study.initial_state, burn_in, progress=progress, part=0)
     last = np.concatenate([traj.data[s].values[-1] for s in ("prey", "predator")])
     return traj, last
 

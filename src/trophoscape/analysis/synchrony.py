@@ -44,6 +44,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from ..columns import SYNCHRONY_COLUMNS
 from ..errors import InputError
 from ..system import SPECIES
 from ._blocks import blocks
@@ -69,7 +70,7 @@ __all__ = [
 
 #: What :func:`synchrony_analysis` adds per species ``S``: columns ``S_<name>`` of the patch
 #: table and keys ``S_<name>`` of the summary (a failed analysis leaves them empty).
-PATCH_COLUMNS = ("sync_local", "sync_region", "sync_all", "phase_locking", "sync_group")
+PATCH_COLUMNS = SYNCHRONY_COLUMNS  # names in trophoscape.columns
 SUMMARY_KEYS = ("synchrony", "kuramoto_mean", "community_synchrony", "sync_half_distance_km")
 
 _LINK_BLOCK = 1 << 20  # elements per block of link products (bounded memory)
