@@ -131,21 +131,21 @@ def write_figures_and_report(folder, result, gdf, links, summary) -> None:
          "of every figure above."),
     ])
     extras = getattr(result, "extras", {}) or {}
-    if extras.get("by_distance") and hasattr(plot, "synchrony_distance_plot"):
+    if extras.get("by_distance"):
         path = plot.synchrony_distance_plot(extras["by_distance"],
                                             path=maps / "synchrony_distance.png")
         sections.setdefault("Synchrony", []).append(
             ("Synchrony against distance", path,
              "Correlation between pairs of patches by the distance between them, with a "
              "bootstrap band; the faster it falls, the more local the fluctuations."))
-    if extras.get("kuramoto") and hasattr(plot, "kuramoto_plot"):
+    if extras.get("kuramoto"):
         path = plot.kuramoto_plot(extras["kuramoto"], path=maps / "phase_order.png",
                                   time_unit=sc["time_unit"])
         sections.setdefault("Synchrony", []).append(
             ("Phase order over time", path,
              "The Kuramoto order parameter: 1 when every patch cycles in step, near 0 when "
              "their cycles are spread out."))
-    if "replicate" in data.dims and hasattr(plot, "regional_extinction_plot"):
+    if "replicate" in data.dims:
         path = plot.regional_extinction_plot(data, path=maps / "predator_regional_extinction.png",
                                              time_unit=sc["time_unit"])
         sections.setdefault("Persistence", []).append(

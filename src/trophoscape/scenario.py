@@ -225,9 +225,6 @@ SCHEMA: dict[str, dict[str, Key]] = {
     },
 }
 
-#: Sections of the contract that this version reads but cannot act on yet.
-NOT_YET: dict[str, str] = {}
-
 #: Keys that meant something else in earlier versions: refused with what to write instead.
 RETIRED: dict[tuple[str, str], str] = {
     ("noise", "autocorrelation"): (
@@ -392,10 +389,6 @@ def parse_scenario(raw: dict, *, path=None, base_dir=None, text: str = "") -> Sc
     for name, content in raw.items():
         if name in SCHEMA[""] or name == "shock":
             continue
-        if name in NOT_YET:
-            raise InputError(
-                f"the [{name}] section ({NOT_YET[name]}) is not supported by this version "
-                "of trophoscape; remove it to run without it", file=file, field=name)
         if name not in SCHEMA:
             hint = _suggest(name, sections + list(SCHEMA[""])) or (
                 f"; the sections are {', '.join(sections)}")
