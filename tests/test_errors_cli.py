@@ -477,7 +477,7 @@ CASES = [
          {"s.toml": FOLDER}),
     Case("patch-file-is-a-named-pipe",
          "error: p.geojson: is not a regular file (a named pipe, device or socket); give the "
-         "path of a file saved on disk",
+         "path of a patch file saved on disk",
          {"p.geojson": FIFO}, command="check"),
     Case("census-rows-beyond-memory",
          "error: s.toml: field 'run.census_interval': the run would record 2,000,000,001 census "

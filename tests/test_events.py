@@ -568,3 +568,28 @@ def test_event_runs_remove_populations_where_they_fall_not_at_census(census):
     # every removal took exactly 4 individuals (the count just below the threshold)
     removals, held = traj.stats.removals[0], traj.stats.removed_individuals[0]
     assert removals == int(round(share * patches)) and held == 4.0 * removals
+
+
+@pytest.mark.parametrize("factor, removed", [(0.0, 0), (0.1, 1)])
+def test_both_engines_count_a_shock_through_the_threshold_alike(factor, removed):
+    # consistency test of the two engines' quasi-extinction rule: a shock that leaves 1 of 10
+    # predators (threshold 2) removes that population by the rule; one that empties the patch
+    # outright removed it itself, so the rule removes nothing (counts per species)
+    from trophoscape.shocks import StateScale
+
+    system = make_system(make_model(1, growth="logistic", capacity=50.0))
+    shock = StateScale(time=0.5, species="predator", index=np.array([0]), factor=factor)
+    y0 = np.array([40.0, 10.0])
+    ode = simulate(system, y0, duration=1.0, census_interval=0.5, extinction_abundance=2.0,
+                   events=[shock])
+    noise = NoiseModel(centroids_km=[[0.0, 0.0]], seeds=[1], demographic=True)
+    whole = simulate(system, y0, duration=1.0, census_interval=0.5, extinction_abundance=2.0,
+                     events=[shock], noise=noise)
+    for run in (ode, whole):
+        assert run.stats.removals[1] >= removed
+        assert run.data["predator"].values[-1, 0] == 0.0
+    assert ode.stats.removals[1] == removed  # deterministic: nothing else falls through
+    # the event run may also lose the last predators by chance before the shock; after it,
+    # both engines agree that an emptied patch is not a removal by the rule
+    if factor == 0.0:
+        assert whole.stats.removed_individuals[1] == ode.stats.removed_individuals[1] == 0.0

@@ -131,7 +131,7 @@ def _print_summary(result, out) -> None:
 
 
 @contextlib.contextmanager
-def _sigterm_as_interrupt(state: dict | None = None, *, last: bool = False):
+def _sigterm_as_interrupt(state: dict, *, last: bool = False):
     """While the command runs, SIGTERM raises :class:`Terminated` (a KeyboardInterrupt), so
     the same clean-up runs as after Ctrl-C; the previous handlers are restored afterwards.
 
@@ -143,7 +143,6 @@ def _sigterm_as_interrupt(state: dict | None = None, *, last: bool = False):
     after this command) both signals stay ignored afterwards, through the interpreter's
     shutdown, instead of the previous handlers coming back.
     """
-    state = {} if state is None else state
     if threading.current_thread() is not threading.main_thread():
         yield
         return
@@ -207,7 +206,7 @@ def main(argv=None, *, last: bool = False) -> int:
             code = _main(args)
             state["done"] = True
             return code
-        except KeyboardInterrupt as exc:  # one that came between the command's own checks
+        except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (errors.Terminated)
             state["done"] = True
             return _stopped(exc, _written_since(mark))
 
@@ -247,7 +246,8 @@ def _written_since(mark: int) -> list[str]:
 
 
 def _main(args) -> int:
-    mark = _written_count()
+    """Run the parsed command; input and machine errors become one line and an exit code
+    (a Ctrl-C or SIGTERM goes up to :func:`main`, which reports it)."""
     try:
         if getattr(args, "out", None) is not None:
             from .outputs import out_argument
@@ -277,8 +277,6 @@ def _main(args) -> int:
         print("error: this machine ran out of memory; run fewer patches, replicates or "
               "census rows (a longer run.census_interval)", file=sys.stderr)
         return 1
-    except KeyboardInterrupt as exc:
-        return _stopped(exc, _written_since(mark))
 
 
 def _stopped(exc: KeyboardInterrupt, written: list) -> int:

@@ -815,11 +815,9 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
             if environmental and t >= next_noise * noise_step:
                 while next_noise * noise_step <= t:
                     next_noise += 1
-                new = run.interval(base)  # redrawn rates: new propensities, same channels
-                if new is not current:
-                    current = new
-                    channels = event_channels(
-                        current, like=channels if _same_structure(channels, current) else None)
+                current = run.interval(base)  # redrawn rates: new propensities, same channels
+                channels = event_channels(
+                    current, like=channels if _same_structure(channels, current) else None)
             if next_event < len(pending) and float(pending[next_event].time) <= t:
                 while next_event < len(pending) and float(pending[next_event].time) <= t:
                     base, y = pending[next_event].apply(base, x.astype(float))

@@ -288,14 +288,13 @@ def landscape_from_frame(gdf, *, id_field=None, crs="auto", fields=None, path=No
         target = metric_crs(source, lon_span=lon_hi - lon_lo, lon_c=lon_c, lat_c=lat_c)
     series = geopandas.GeoSeries(geoms, crs=source)
     area_km2 = series.to_crs(equal_area_crs(lon_c, lat_c)).area.to_numpy() / 1e6
-    flat = ~(area_km2 > 0)  # also catches a repair that left no polygonal part (NaN/0)
-    if flat.any():
-        i = int(np.flatnonzero(flat)[0])
-        raise InputError("polygon has zero area; redraw the patch with a positive area or "
-                         "remove the feature", file=path, feature=_ref(refs, i), field="geometry")
-    tiny = area_km2 < MIN_PATCH_AREA_KM2
+    tiny = ~(area_km2 >= MIN_PATCH_AREA_KM2)  # NaN too: a repair left no polygonal part
     if tiny.any():
         i = int(np.flatnonzero(tiny)[0])
+        if not area_km2[i] > 0:
+            raise InputError("polygon has zero area; redraw the patch with a positive area or "
+                             "remove the feature", file=path, feature=_ref(refs, i),
+                             field="geometry")
         raise InputError(
             f"patch area is {area_km2[i]:.3g} km², below the minimum of "
             f"{MIN_PATCH_AREA_KM2:g} km² (1 m²); check that its coordinates are in the units "

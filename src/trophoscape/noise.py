@@ -196,7 +196,7 @@ def ou_step(tau: float, dt: float):
     return a, c, tau * one_minus_a, beta, gamma
 
 
-def auto_step(params, correlation_time: float = 0.0, share: float = DEFAULT_STEP_SHARE) -> float:
+def auto_step(params, share: float = DEFAULT_STEP_SHARE) -> float:
     """The default noise step: ``share`` of the fastest local time scale.
 
     That time scale is ``1 / max(prey growth rate, predator mortality rate)`` over the

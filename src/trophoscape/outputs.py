@@ -48,6 +48,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, Terminated, raise_if_stopped
+from .scenario import INPUT_FILES
 from .system import SPECIES
 
 __all__ = ["staged_folder", "write_run", "write_run_files", "provenance", "file_sha256",
@@ -92,7 +93,6 @@ LEDGER_META_KEYS = frozenset({"format", "scenario_sha256", "keys"})
 #: Staging (``partial``) and set-aside (``old``) folders beside an output folder.
 _SIBLING = re.compile(r"\.(?P<name>.+)\.(?P<kind>partial|old)-(?P<pid>[0-9]+)-[0-9a-f]{8}")
 #: Path keys of a scenario that name input files.
-_INPUT_KEYS = ("patches.path", "dispersal.corridors", "dispersal.links")
 #: Staging folders open in this process: a folder written inside one is written directly.
 _ACTIVE: list[Path] = []
 #: Output folders this process has put in place (as the user named them), in order.
@@ -172,9 +172,9 @@ def input_files(scenario, variants=()) -> list[Path]:
     ``variants`` are mappings of scenario keys to values (a sweep's points): a path key
     among them names another input, resolved against the scenario's folder.
     """
-    files = [Path(scenario.resolve(scenario[key])) for key in _INPUT_KEYS if scenario[key]]
+    files = [Path(scenario.resolve(scenario[key])) for key in INPUT_FILES if scenario[key]]
     for variant in variants:
-        for key in _INPUT_KEYS:
+        for key in INPUT_FILES:
             value = dict(variant).get(key)
             if isinstance(value, str) and value:
                 files.append(Path(scenario.resolve(value)))

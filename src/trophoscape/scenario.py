@@ -47,6 +47,9 @@ class Key:
 #: density or time in use, and far enough from float64's 1.8e308 that products of a few
 #: of them in the equations stay finite.
 LARGEST = 1e12
+#: The scenario keys that name input files, and what each file is (for messages).
+INPUT_FILES = {"patches.path": "patch file", "dispersal.corridors": "corridor file",
+               "dispersal.links": "links table"}
 #: A scenario is a short text: larger files are refused before they are read.
 MAX_SCENARIO_BYTES = 1 << 20
 def _number(lo=None, hi=None, *, lo_open=False, integer=False):
@@ -314,9 +317,11 @@ def _suggest(word, options):
     return f"; did you mean {close[0]!r}?" if close else ""
 
 
-def check_regular_file(path, *, what: str, limit: int | None = None) -> None:
+def check_regular_file(path, *, what: str, limit: int | None = None,
+                       folders: bool = False) -> None:
     """Refuse, before opening it, a path that is not a regular file (a named pipe or a
-    device would block or never end) or is larger than ``limit`` bytes.
+    device would block or never end), or is larger than ``limit`` bytes. ``folders``: a
+    folder is accepted too (some GIS formats are folders).
 
     A missing file is left to the reader, whose message says so.
     """
@@ -330,6 +335,8 @@ def check_regular_file(path, *, what: str, limit: int | None = None) -> None:
         raise InputError(f"cannot read the {what} ({exc.strerror or exc}); check that it is a "
                          "readable file", file=path) from None
     if stat.S_ISDIR(info.st_mode):
+        if folders:
+            return
         raise InputError(f"is a folder, not a {what}; give the path of the file itself",
                          file=path)
     if not stat.S_ISREG(info.st_mode):

@@ -512,7 +512,8 @@ def simulate(
             options["jac"] = system.jacobian_function()
         y_start = np.asarray(y_start, dtype=float)
         if rule:  # a shock that takes a population through the threshold removes it
-            y_start = remove(y_start, above & (y_start < level))
+            # (one it empties outright removed it itself: no individuals for the rule)
+            y_start = remove(y_start, above & (y_start < level) & (y_start > 0))
         # a rewired system may number its patches differently: back into its own order
         return system.to_internal(y_start) if internal else y_start
 
@@ -569,6 +570,8 @@ def simulate(
     above = solver.y >= level
     status, message = 0, "The solver successfully reached the end of the integration interval."
     h_wanted = None
+    # Runge-Kutta solvers interpolate each component on its own: dips can be looked for
+    per_component = isinstance(solver, si._ivp.rk.RungeKutta)
     try:
         while k < times.size:
             if solver.status == "finished" and solver.t < times[k]:
@@ -620,7 +623,6 @@ def simulate(
             if rule:
                 now = solver.y >= level
                 crossed = above & ~now
-                per_component = isinstance(solver, si._ivp.rk.RungeKutta)
                 if per_component:
                     # those near the threshold at either end may have dipped through it
                     near = np.flatnonzero(above & now & (np.minimum(y_prev, solver.y)

@@ -25,7 +25,8 @@ from .dynamics import PARAMETER_KEYS, LocalModel, interior_equilibrium
 from .errors import InputError, TrophoscapeWarning, allowed_range
 from .landscape import Landscape, read_patches
 from .network import Network, arc_weights, build_network, movement_operator
-from .scenario import LARGEST, FieldRef, Scenario, bounds_of, read_scenario
+from .scenario import (INPUT_FILES, LARGEST, FieldRef, Scenario, bounds_of,
+                       check_regular_file, read_scenario)
 from .simulate import Trajectory, simulate
 from .system import SPECIES, CoupledSystem, pack
 
@@ -134,9 +135,9 @@ def _build_study(scenario: Scenario) -> Study:
         For anything wrong in the scenario, the patch file, the corridors or the links table.
     """
     sc = scenario
-    for key in ("patches.path", "dispersal.corridors", "dispersal.links"):
+    for key, what in INPUT_FILES.items():
         if sc[key]:
-            check_not_a_stream(sc.resolve(sc[key]))
+            check_regular_file(sc.resolve(sc[key]), what=what, folders=True)
     landscape = read_patches(
         sc.resolve(sc["patches.path"]), id_field=sc["patches.id_field"], crs=sc["patches.crs"],
         fields=sc.fields_used(), layer=sc["patches.layer"],
@@ -193,20 +194,6 @@ def _build_study(scenario: Scenario) -> Study:
                                                     for s, d in dispersal.items()})
     return Study(scenario=sc, landscape=landscape, network=network, model=model,
                  system=system, initial_state=initial, dispersal=dispersal, shocks=shocks)
-
-
-def check_not_a_stream(path) -> None:
-    """Refuse an input path that is a named pipe, a device or a socket: reading one would
-    block or never end. Files and folders (some GIS formats are folders) pass."""
-    import stat
-
-    try:
-        mode = os.stat(path).st_mode
-    except OSError:
-        return  # missing or unreadable: the reader's own message says so
-    if not (stat.S_ISREG(mode) or stat.S_ISDIR(mode)):
-        raise InputError("is not a regular file (a named pipe, device or socket); give the "
-                         "path of a file saved on disk", file=path)
 
 
 def physical_memory() -> int:

@@ -487,10 +487,10 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
 def _check_point_inputs(sc, point: dict, checked: dict) -> None:
     """Before any run starts: the files a point names exist, and its run fits in memory
     (the patch count read from the file's header, once per file)."""
-    from .study import check_not_a_stream, check_run_size
+    from .scenario import INPUT_FILES, check_regular_file
+    from .study import check_run_size
 
-    for key, what in (("patches.path", "patch file"), ("dispersal.links", "links table"),
-                      ("dispersal.corridors", "corridor file")):
+    for key, what in INPUT_FILES.items():
         if not sc[key]:
             continue
         path = sc.resolve(sc[key])
@@ -499,8 +499,9 @@ def _check_point_inputs(sc, point: dict, checked: dict) -> None:
                 where = f" of the point {_describe(point)}" if key in point else ""
                 raise InputError(f"the {what}{where} does not exist; check the path (it is "
                                  "relative to the scenario's folder)", file=path, field=key)
-            check_not_a_stream(path)
-            checked[path] = _feature_count(path) if key == "patches.path" else None
+            check_regular_file(path, what=what, folders=True)
+            checked[path] = (_feature_count(path, sc["patches.layer"]) if key == "patches.path"
+                             else None)
     n = checked.get(sc.resolve(sc["patches.path"]))
     if n:
         try:
@@ -510,12 +511,13 @@ def _check_point_inputs(sc, point: dict, checked: dict) -> None:
                              field=exc.field) from None
 
 
-def _feature_count(path) -> int | None:
-    """Features in a GIS file from its header, without reading them (None if unknown)."""
+def _feature_count(path, layer=None) -> int | None:
+    """Features in a GIS file's layer from its header, without reading them (None if
+    unknown)."""
     try:
         import pyogrio
 
-        return int(pyogrio.read_info(path)["features"]) or None
+        return int(pyogrio.read_info(path, layer=layer)["features"]) or None
     except Exception:  # noqa: BLE001 - the run's own reader reports unreadable files
         return None
 
