@@ -16,9 +16,9 @@ dispersal of both species along boundary-distance links). Three cases:
 * ``exact``: the ``small`` case for ``EXACT_DURATION`` time units with exact steps only
   (``exact_factor=inf``): the cost of one exact step of the direct method.
 
-The run is :func:`trophoscape.events.advance_events` from one census (every 1 time unit) to
+The run is :func:`trophoscape.integrate.events.advance_events` from one census (every 1 time unit) to
 the next, from the whole-number start state of ``common.assemble``, as
-:func:`trophoscape.events.simulate_events` drives it (without recording the census). Run it
+:func:`trophoscape.integrate.events.simulate_events` drives it (without recording the census). Run it
 against an older checkout with ``PYTHONPATH=/path/to/old/src`` to compare: only the names
 that existed before are used, and counters that did not exist are shown as "-".
 """
@@ -41,8 +41,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from common import assemble, versions  # noqa: E402
 from synthetic import synthetic_landscape  # noqa: E402
 
-import trophoscape.events as ev  # noqa: E402
-from trophoscape.system import CoupledSystem  # noqa: E402
+import trophoscape.integrate.events as ev  # noqa: E402
+from trophoscape.model.system import CoupledSystem
 
 N_PATCHES = 1_000
 DURATION = 100.0
@@ -96,7 +96,7 @@ def main():
     args = parser.parse_args()
     cases = tuple(CASES) if args.case == "all" else (args.case,)
     print(versions())
-    print(f"trophoscape.events from {ev.__file__}")
+    print(f"trophoscape.integrate.events from {ev.__file__}")
     print(f"{N_PATCHES:,} patches, census every {CENSUS:g}")
     for case in cases:
         r = run(case)

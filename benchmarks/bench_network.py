@@ -22,7 +22,7 @@ import shapely  # noqa: E402
 
 from common import MAX_DISTANCE_KM, table, versions  # noqa: E402
 from synthetic import synthetic_landscape  # noqa: E402
-from trophoscape.network import build_network  # noqa: E402
+from trophoscape.model.network import build_network
 
 
 def timed(fn, repeats=2):

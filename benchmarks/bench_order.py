@@ -29,8 +29,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_rhs import point_system  # noqa: E402
 from common import peak_mb, table, versions  # noqa: E402
 
-from trophoscape.simulate import simulate  # noqa: E402
-from trophoscape.system import CoupledSystem, spatial_order  # noqa: E402
+from trophoscape.integrate.ode import simulate
+from trophoscape.model.system import CoupledSystem, spatial_order
 
 N = 1_000_000
 DURATION = 5.0

@@ -17,9 +17,9 @@ from pathlib import Path  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from trophoscape.analysis.spread import origin_scan  # noqa: E402
-from trophoscape.parallel import default_workers  # noqa: E402
-from trophoscape.study import load_study  # noqa: E402
+from trophoscape.workflows.spread import origin_scan
+from trophoscape.workflows.tasks import default_workers
+from trophoscape.workflows.study import load_study
 
 DATA = Path(__file__).resolve().parents[1] / "data"
 SHOCK = '''

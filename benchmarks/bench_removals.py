@@ -25,7 +25,7 @@ from bench_run import SCENARIO  # noqa: E402
 from common import write_study_inputs  # noqa: E402
 
 import trophoscape as ts  # noqa: E402
-from trophoscape.simulate import simulate  # noqa: E402
+from trophoscape.integrate.ode import simulate
 
 
 def main(n: int, duration: float) -> None:

@@ -6,7 +6,7 @@ replicates, duration shortened to ``DEMO_DURATION`` years (census every 0.5 year
 Case 2: a 4 × 5 grid of 20 patches (``benchmarks/common.py`` model), the same noise,
 256 replicates, duration ``GRID_DURATION``.
 
-Each case times :func:`trophoscape.study.simulate_replicates` only (no analyses) as CPU
+Each case times :func:`trophoscape.workflows.study.simulate_replicates` only (no analyses) as CPU
 seconds of this process, stacked and one by one, and reports the ratio. It also times the
 per-interval cost of the noise itself: drawing the field and rebuilding the system's
 parameters (``NoiseRun.interval``: a new ``LocalModel`` swapped into the ``CoupledSystem``
@@ -31,10 +31,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from common import per_call, table, versions  # noqa: E402
 
-from trophoscape.noise import stack_system  # noqa: E402
-from trophoscape.scenario import parse_scenario, read_scenario  # noqa: E402
-from trophoscape.study import (build_study, noise_model, run_seeds,  # noqa: E402
-                               simulate_replicates)
+from trophoscape.integrate.replicates import stack_system
+from trophoscape.scenario import parse_scenario, read_scenario
+from trophoscape.workflows.study import build_study, noise_model, run_seeds, simulate_replicates
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_DURATION = 50.0

@@ -48,10 +48,9 @@ from scipy.spatial import cKDTree  # noqa: E402
 from common import (DISPERSAL, LOCAL, SURVIVAL_PER_KM, assemble, per_call,  # noqa: E402
                     table, versions)
 from synthetic import synthetic_landscape  # noqa: E402
-from trophoscape.dynamics import LocalModel  # noqa: E402
-from trophoscape.network import Network, movement_operator  # noqa: E402
-from trophoscape.system import (CoupledSystem, compiled_available, locality,  # noqa: E402
-                                spatial_order)
+from trophoscape.model.dynamics import LocalModel
+from trophoscape.model.network import Network, movement_operator
+from trophoscape.model.system import CoupledSystem, compiled_available, locality, spatial_order
 
 
 def bandwidth(n_bytes=512 * 2**20, repeats=5):

@@ -5,7 +5,7 @@ separate process first, so that neither the generation time nor its memory count
 then goes through the public API exactly as the command line does: ``load_study`` (scenario,
 patches, network, system), ``run_study`` (simulate, persistence, synchrony) and
 ``write_run_files(maps=False)`` (``timeseries.nc`` written during the run, as the
-command line does). Stage times come from wrapping the functions ``trophoscape.study``
+command line does). Stage times come from wrapping the functions ``trophoscape.workflows.study``
 calls (``read_patches``, ``build_network``, ``simulate``, ``persistence_table``,
 ``synchrony_table``); "system assembly" is what ``build_study`` spends besides reading the
 patches and building the network, "analyses" is what ``run_study`` spends besides simulating.
@@ -41,7 +41,7 @@ import scipy.integrate._ivp.rk as rk  # noqa: E402
 
 from common import now, table, timed_study, versions, write_study_inputs  # noqa: E402
 
-import trophoscape.simulate as simulate_module  # noqa: E402
+import trophoscape.integrate.ode as simulate_module  # noqa: E402
 
 N_PATCHES = 10_000
 

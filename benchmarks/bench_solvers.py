@@ -35,8 +35,8 @@ import scipy.sparse.linalg as sla  # noqa: E402
 import common  # noqa: E402
 from common import assemble, table, versions  # noqa: E402
 from synthetic import synthetic_landscape  # noqa: E402
-import trophoscape.simulate as simulate_module  # noqa: E402
-from trophoscape.system import CoupledSystem  # noqa: E402
+import trophoscape.integrate.ode as simulate_module  # noqa: E402
+from trophoscape.model.system import CoupledSystem
 
 N = 1_000
 DURATION = 100.0

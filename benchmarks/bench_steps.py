@@ -29,7 +29,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from common import assemble, table, versions  # noqa: E402
 from synthetic import synthetic_landscape  # noqa: E402
 
-from trophoscape.simulate import simulate  # noqa: E402
+from trophoscape.integrate.ode import simulate
 
 WARM = 10.0
 RTOL, ATOL = 1e-6, 1e-8

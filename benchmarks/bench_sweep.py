@@ -4,10 +4,10 @@ The scenario is a 6 × 6 grid of 1 km² patches 2 km apart (``trophoscape.testin
 to a GeoPackage in a temporary folder, with the benchmark model of ``common.py`` (logistic
 prey, K = 300 per km², Holling II) and 200 years at a census every 0.5. The sweep varies
 ``prey.growth_rate`` over 16 values and ``dispersal.max_distance_km`` over 4 (64 runs), and
-goes through the public API, :func:`trophoscape.sweep.sweep`, as the command line does
+goes through the public API, :func:`trophoscape.report.sweep.sweep`, as the command line does
 (ledger, per-run JSON, ``sweep.csv``; plots off, as they are the same work for every
 executor). Times are wall-clock seconds of the whole call: starting the pool or cluster,
-running, recording, writing the table. ``trophoscape.study`` is imported before any timing,
+running, recording, writing the table. ``trophoscape.workflows.study`` is imported before any timing,
 so the one-worker run does not pay the imports; forked local workers inherit them, while
 Dask workers (started with ``spawn``) import them again, which is part of the Dask overhead.
 
@@ -32,10 +32,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import pandas as pd  # noqa: E402
 
 from common import LOCAL, table, versions  # noqa: E402
-import trophoscape.study  # noqa: E402,F401  (imports paid before timing)
-from trophoscape.parallel import default_workers  # noqa: E402
-from trophoscape.sweep import TIME_COLUMNS, sweep  # noqa: E402
-from trophoscape.testing import grid_landscape  # noqa: E402
+import trophoscape.workflows.study  # noqa: E402,F401  (imports paid before timing)
+from trophoscape.workflows.tasks import default_workers
+from trophoscape.report.sweep import sweep
+from trophoscape.workflows.sweep import TIME_COLUMNS
+from trophoscape.testing import grid_landscape
 
 SCENARIO = f"""
 name = "sweep benchmark"

@@ -18,7 +18,7 @@ import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
 from scipy.spatial import cKDTree  # noqa: E402
 
-from trophoscape.analysis import synchrony as sy  # noqa: E402
+from trophoscape.analysis import synchrony as sy
 
 N, T = 10_000, 2_000
 

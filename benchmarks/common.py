@@ -1,7 +1,7 @@
 """Shared pieces of the benchmarks: the model settings and the assembly of a coupled system.
 
-``assemble`` builds the coupled system the way :func:`trophoscape.study.build_study` does
-(per-patch parameter arrays, a :class:`~trophoscape.dynamics.LocalModel` with logistic prey and
+``assemble`` builds the coupled system the way :func:`trophoscape.workflows.study.build_study` does
+(per-patch parameter arrays, a :class:`~trophoscape.model.dynamics.LocalModel` with logistic prey and
 Holling type II predation, one movement operator per species), without a scenario file.
 """
 
@@ -22,9 +22,9 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from trophoscape.dynamics import LocalModel  # noqa: E402
-from trophoscape.network import build_network, movement_operator  # noqa: E402
-from trophoscape.system import CoupledSystem, pack  # noqa: E402
+from trophoscape.model.dynamics import LocalModel
+from trophoscape.model.network import build_network, movement_operator
+from trophoscape.model.system import CoupledSystem, pack
 
 #: Local model (per km², per year): prey growth r, capacity K = 300 × quality, Holling II.
 LOCAL = dict(growth_rate=1.0, capacity_density=300.0, attack_rate=0.05, handling_time=0.1,
@@ -58,9 +58,9 @@ def assemble(landscape, *, distance="boundary", max_distance_km=None, network=No
 
     Returns
     -------
-    network : trophoscape.network.Network
-    model : trophoscape.dynamics.LocalModel
-    system : trophoscape.system.CoupledSystem
+    network : trophoscape.model.network.Network
+    model : trophoscape.model.dynamics.LocalModel
+    system : trophoscape.model.system.CoupledSystem
     y0 : ndarray, shape (2 n_patches,)
         Prey 150 and predator 10 per km², each times a random factor 0.8-1.2 (seed 1), so
         that patches start out of step.
@@ -178,9 +178,11 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
         ``series_blocks``), ``load``, ``run``, ``write``, ``total`` (the same pairs),
         ``study``, ``result``, ``base_mb`` (peak RSS before the run) and ``peak_mb``.
     """
-    import trophoscape.study as study_module
-    import trophoscape.system as system_module
-    from trophoscape.outputs import SeriesWriter, staged_folder, write_run_files
+    import trophoscape.workflows.study as study_module
+    import trophoscape.model.system as system_module
+    from trophoscape.io.series import SeriesWriter
+    from trophoscape.io.folder import staged_folder
+    from trophoscape.report.run import write_run_files
 
     stages: dict[str, np.ndarray] = {}
     originals = {name: getattr(study_module, name) for name in STUDY_STAGES}

@@ -25,7 +25,7 @@ import geopandas  # noqa: E402
 import numpy as np  # noqa: E402
 import shapely  # noqa: E402
 
-from trophoscape.landscape import Landscape, landscape_from_frame  # noqa: E402
+from trophoscape.model.landscape import Landscape, landscape_from_frame
 
 __all__ = ["synthetic_frame", "synthetic_landscape", "write_patches"]
 

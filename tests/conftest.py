@@ -2,8 +2,8 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from trophoscape.dynamics import LocalModel
-from trophoscape.system import CoupledSystem
+from trophoscape.model.dynamics import LocalModel
+from trophoscape.model.system import CoupledSystem
 
 DEFAULTS = dict(growth_rate=1.0, capacity=50.0, allee_density=5.0, attack_rate=1.0,
                 handling_time=0.2, interference=0.0, conversion=0.4, mortality=0.5)

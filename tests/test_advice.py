@@ -3,7 +3,7 @@
 import shapely
 
 import trophoscape as ts
-from trophoscape.advice import practical_warnings, typical_gap_km
+from trophoscape.analysis.advice import practical_warnings, typical_gap_km
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
 
@@ -52,7 +52,7 @@ def test_no_warnings_for_a_reasonable_setup(tmp_path):
 
 def test_large_networks_hear_about_the_compiled_kernel_only_without_numba(tmp_path,
                                                                          monkeypatch):
-    import trophoscape.system as system_module
+    import trophoscape.model.system as system_module
 
     study, _ = study_of(tmp_path, dispersal={"max_distance_km": 100.0})
     monkeypatch.setattr(system_module, "COMPILED_MIN_PATCHES", 6)

@@ -6,14 +6,9 @@ import scipy.linalg
 import scipy.sparse.linalg
 
 from trophoscape.analysis import capacity
-from trophoscape.analysis.capacity import (
-    capacity_analysis,
-    capacity_columns,
-    landscape_matrix,
-    metapopulation_capacity,
-    patch_contributions,
-)
-from trophoscape.network import Network, build_network
+from trophoscape.analysis.capacity import (capacity_analysis, capacity_columns, landscape_matrix,
+                                           metapopulation_capacity, patch_contributions)
+from trophoscape.model.network import Network, build_network
 from trophoscape.testing import chain_landscape, grid_landscape
 
 

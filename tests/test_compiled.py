@@ -9,16 +9,16 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from trophoscape import system as system_module
-from trophoscape.dynamics import GROWTH_FORMS, RESPONSES, LocalModel
-from trophoscape.network import build_network, movement_operator
-from trophoscape.simulate import simulate
-from trophoscape.system import COMPILED_MIN_PATCHES, CoupledSystem
+from trophoscape.model import system as system_module
+from trophoscape.model.dynamics import GROWTH_FORMS, RESPONSES, LocalModel
+from trophoscape.model.network import build_network, movement_operator
+from trophoscape.integrate.ode import simulate
+from trophoscape.model.system import COMPILED_MIN_PATCHES, CoupledSystem
 from trophoscape.testing import grid_landscape
 
 from conftest import DEFAULTS, make_model
 
-compiled = pytest.importorskip("trophoscape._compiled", reason="numba is not installed")
+compiled = pytest.importorskip("trophoscape.model.compiled", reason="numba is not installed")
 
 
 def grid_operators(n_side=12):
@@ -139,7 +139,7 @@ def test_auto_kernel_by_size_and_availability(rng, monkeypatch):
     assert make("numpy").local_kernel == "numpy"
     # with_model (noise, shocks) and stacking replicates keep the choice
     assert make().with_model(make_model(n=n, growth_rate=2.0)).local_kernel == "compiled"
-    from trophoscape.noise import stack_system
+    from trophoscape.integrate.replicates import stack_system
 
     assert stack_system(make("numpy"), 3).local_kernel == "numpy"
     assert stack_system(make("compiled"), 3).kernel == "compiled"
@@ -181,8 +181,8 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
     import subprocess
     import sys
 
-    code = ("import numpy as np; from trophoscape import _compiled as c; "
-            "from trophoscape.dynamics import LocalModel; "
+    code = ("import numpy as np; from trophoscape.model import compiled as c; "
+            "from trophoscape.model.dynamics import LocalModel; "
             "q = {k: np.ones(3) for k in c.PARAMETER_ROWS[:-1]}; "
             "f = c.local_terms_function(LocalModel('logistic', 'holling2', q), np.ones(3)); "
             "y = np.arange(6.0); x = np.empty(6); dy = f(y, x); "

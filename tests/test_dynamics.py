@@ -5,8 +5,8 @@ import pytest
 import scipy.integrate as si
 import scipy.optimize as so
 
-from trophoscape.dynamics import RESPONSES, interior_equilibrium
-from trophoscape.simulate import simulate
+from trophoscape.model.dynamics import RESPONSES, interior_equilibrium
+from trophoscape.integrate.ode import simulate
 
 from conftest import make_model, make_system
 

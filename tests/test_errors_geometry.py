@@ -31,8 +31,8 @@ from test_errors_cli import (LAT0, LON0, SIDE_LON, STEP_LON, Case, collection,
                              features, run_corpus, scenario, square)
 
 from trophoscape.errors import InputError, TrophoscapeWarning
-from trophoscape.landscape import (AREA_OF_USE_MARGIN_DEG, MIN_PATCH_AREA_KM2,
-                                   computed_columns, landscape_from_frame, read_patches)
+from trophoscape.model.landscape import (AREA_OF_USE_MARGIN_DEG, MIN_PATCH_AREA_KM2,
+                                         computed_columns, landscape_from_frame, read_patches)
 
 GEOD = pyproj.Geod(ellps="WGS84")
 
@@ -516,7 +516,7 @@ def test_computed_columns_cover_a_runs_patch_table(tmp_path):
     # consistency test: every column of a run's patch table (single run and replicates,
     # capacity on) is one computed_columns() knows, so none can replace a user's column
     import trophoscape as ts
-    from trophoscape.outputs import patches_frame
+    from trophoscape.io.tables import patches_frame
     from trophoscape.scenario import parse_scenario
 
     frame = tiny_frame(crs=4326)

@@ -11,12 +11,13 @@ import pytest
 import scipy.sparse as sp
 import scipy.stats as st
 
-import trophoscape.events as events
+import trophoscape.integrate.events as events
 from conftest import make_model, make_system
-from trophoscape.dynamics import LocalModel
-from trophoscape.events import Channels, EventStats, advance_events, event_channels
-from trophoscape.noise import NoiseModel, stack_state, stack_system
-from trophoscape.simulate import simulate
+from trophoscape.model.dynamics import LocalModel
+from trophoscape.integrate.events import Channels, EventStats, advance_events, event_channels
+from trophoscape.integrate.noise import NoiseModel
+from trophoscape.integrate.replicates import stack_state, stack_system
+from trophoscape.integrate.ode import simulate
 
 #: Standard errors allowed in a statistical check (two-sided, about 0.3 % by chance each).
 Z = 3.0
@@ -575,7 +576,7 @@ def test_both_engines_count_a_shock_through_the_threshold_alike(factor, removed)
     # consistency test of the two engines' quasi-extinction rule: a shock that leaves 1 of 10
     # predators (threshold 2) removes that population by the rule; one that empties the patch
     # outright removed it itself, so the rule removes nothing (counts per species)
-    from trophoscape.shocks import StateScale
+    from trophoscape.model.shocks import StateScale
 
     system = make_system(make_model(1, growth="logistic", capacity=50.0))
     shock = StateScale(time=0.5, species="predator", index=np.array([0]), factor=factor)

@@ -13,9 +13,9 @@ import scipy.sparse.linalg
 from conftest import grid_study, write_grid_file
 
 import trophoscape as ts
-import trophoscape.study
+import trophoscape.workflows.study
 from trophoscape.analysis.stability import STABILITY_LABELS
-from trophoscape.cli import main as cli_main
+from trophoscape.cli.program import main as cli_main
 from trophoscape.errors import TrophoscapeWarning
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import chain_landscape, grid_landscape
@@ -74,7 +74,7 @@ def fail_with(monkeypatch, function, exc):
     def broken(*args, **kwargs):
         raise exc
 
-    monkeypatch.setattr(trophoscape.study, function, broken)
+    monkeypatch.setattr(trophoscape.workflows.study, function, broken)
 
 
 def test_nothing_failed_is_an_empty_list(baseline, tmp_path):

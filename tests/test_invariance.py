@@ -1,6 +1,6 @@
 """Results that must not depend on numerical settings: error control, census interval.
 
-The per-patch error control and the quasi-extinction rule of :mod:`trophoscape.simulate`
+The per-patch error control and the quasi-extinction rule of :mod:`trophoscape.integrate.ode`
 are checked against runs of scipy's own DOP853 (``scipy.integrate.solve_ivp``, a reference
 library) at tight tolerances, and against runs of the same patch alone.
 """
@@ -11,8 +11,8 @@ import scipy.integrate as si
 import scipy.sparse as sp
 
 from conftest import make_model, make_system
-from trophoscape.noise import stack_state, stack_system
-from trophoscape.simulate import simulate
+from trophoscape.integrate.replicates import stack_state, stack_system
+from trophoscape.integrate.ode import simulate
 
 # Rosenzweig-MacArthur with the defaults of conftest (r = 1, a = 1, h = 0.2, e = 0.4,
 # m = 0.5): N* = m / (a (e - m h)) = 5/3 and the Hopf threshold K_H = 2 N* + 1/(a h) = 8.33
@@ -199,7 +199,7 @@ def demo_scenario():
 
 
 def _demo_run(scenario, **changes):
-    from trophoscape.study import build_study, run_study
+    from trophoscape.workflows.study import build_study, run_study
 
     return run_study(build_study(scenario.with_values(**changes)))
 

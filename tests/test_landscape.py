@@ -19,8 +19,8 @@ from pyproj.aoi import AreaOfInterest
 from pyproj.database import query_utm_crs_info
 
 from trophoscape.errors import InputError, TrophoscapeWarning
-from trophoscape.landscape import Landscape, landscape_from_frame, read_patches
-from trophoscape.network import build_network
+from trophoscape.model.landscape import Landscape, landscape_from_frame, read_patches
+from trophoscape.model.network import build_network
 
 GEOD = Geod(ellps="WGS84")
 

@@ -26,7 +26,7 @@ import pytest
 import shapely
 
 import trophoscape as ts
-from trophoscape.cli import main as cli_main
+from trophoscape.cli.program import main as cli_main
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
 
@@ -180,7 +180,7 @@ def test_run_report_escapes_name_and_time_unit(run_outputs):
 def test_time_unit_is_drawn_as_written(tmp_path, monkeypatch, unit):
     import xarray as xr
 
-    from trophoscape.plot import occupancy_curve
+    from trophoscape.report.figures import occupancy_curve
 
     x = np.array([[5.0, 0.0], [3.0, 1.0], [0.0, 2.0]])  # (time, patch)
     data = xr.Dataset({"prey": (("time", "patch"), x), "predator": (("time", "patch"), x)},
@@ -193,7 +193,7 @@ def test_time_unit_is_drawn_as_written(tmp_path, monkeypatch, unit):
 
 
 def test_classes_legend_title_and_extremes_are_drawn_as_written(tmp_path, monkeypatch):
-    from trophoscape.plot import patch_map
+    from trophoscape.report.figures import patch_map
 
     land = grid_landscape(2, 2, spacing_km=1.5, size_km=1.0)
     frame = land.frame[["geometry"]].copy()
@@ -209,7 +209,7 @@ def test_classes_legend_title_and_extremes_are_drawn_as_written(tmp_path, monkey
 
 
 def test_sweep_values_and_keys_are_drawn_as_written(tmp_path, monkeypatch):
-    from trophoscape.plot import sweep_plot
+    from trophoscape.report.figures import sweep_plot
 
     files = ["a$x^2$.gpkg", "b$.gpkg", "<c>&amp;.gpkg"]
     table = pd.DataFrame({"patches.path": files * 2,
@@ -225,7 +225,7 @@ def test_sweep_values_and_keys_are_drawn_as_written(tmp_path, monkeypatch):
 
 
 def test_spread_and_corridor_charts_draw_user_text_as_written(tmp_path, monkeypatch):
-    from trophoscape.plot import arrival_distance_plot, corridor_map
+    from trophoscape.report.figures import arrival_distance_plot, corridor_map
 
     drawn = spy_on_renderer(monkeypatch)
     arrival_distance_plot([0.0, 1.0, 2.0, 3.0], [1.0, 2.0, 3.5, 4.0], path=tmp_path / "a.png",
@@ -247,7 +247,7 @@ def test_usetex_in_the_users_settings_does_not_reach_user_text(tmp_path, monkeyp
     # and "&" are markup); the figures are drawn by matplotlib itself whatever it says
     import matplotlib
 
-    from trophoscape.plot import arrival_distance_plot
+    from trophoscape.report.figures import arrival_distance_plot
 
     drawn = spy_on_renderer(monkeypatch)
     with matplotlib.rc_context({"text.usetex": True}):
@@ -291,7 +291,7 @@ def test_corridor_ids_are_escaped_in_the_pages_and_drawn_as_written(tmp_path, mo
 
 def test_scenario_names_are_escaped_in_the_comparison_and_drawn_as_written(tmp_path,
                                                                          monkeypatch):
-    from trophoscape.planning_cli import write_comparison
+    from trophoscape.report.corridors import write_comparison
 
     _, path = hostile_patches(tmp_path)
     names = [NAME, "B $y$ & <i>"]

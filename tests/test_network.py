@@ -14,9 +14,9 @@ import shapely
 from pyproj import Geod
 
 from trophoscape.errors import InputError
-from trophoscape.landscape import landscape_from_frame, read_patches
-from trophoscape.network import (Network, arc_weights, build_network, kernel_weight,
-                                 movement_operator)
+from trophoscape.model.landscape import landscape_from_frame, read_patches
+from trophoscape.model.network import (Network, arc_weights, build_network, kernel_weight,
+                                       movement_operator)
 from trophoscape.testing import chain_landscape, grid_landscape
 
 UTM = "EPSG:32633"

@@ -9,11 +9,11 @@ import xarray as xr
 
 from conftest import grid_study, make_model, make_system, write_grid_file
 from trophoscape.errors import InputError
-from trophoscape.noise import (NoiseModel, auto_step, covariance_root, fourier_features,
-                               kernel_correlation, spectral_frequencies, stack_state,
-                               stack_system, unstack_series)
+from trophoscape.integrate.noise import (NoiseModel, auto_step, covariance_root, fourier_features,
+                                         kernel_correlation, spectral_frequencies)
+from trophoscape.integrate.replicates import stack_state, stack_system, unstack_series
 from trophoscape.scenario import parse_scenario
-from trophoscape.simulate import simulate
+from trophoscape.integrate.ode import simulate
 
 
 def _innovations(model, steps):
@@ -82,7 +82,7 @@ def test_rank_error_of_the_feature_correlation_at_several_distances(kernel):
     # one feature set of rank D errs on the correlation of two patches by about sqrt(v / D),
     # v = 1 - 7k²/4 + k(2d)/2 + k² k(2d)/4 with k = k(d) (the delta method on the
     # row-normalised random Fourier features of Rahimi & Recht 2007, worked out in
-    # trophoscape.noise): sqrt(1/D) for distant pairs, 0 as they meet. The rms error over
+    # trophoscape.integrate.noise): sqrt(1/D) for distant pairs, 0 as they meet. The rms error over
     # independent feature sets must match it at every distance.
     rank, sets, length = 200, 2000, 1.0
     rng = np.random.default_rng(17)
@@ -310,7 +310,7 @@ def _study(path, **sections):
 
 def test_replicates_seeds_outputs_and_figure(grid_file, tmp_path):
     import trophoscape as ts
-    from trophoscape.sweep import replicate_seeds
+    from trophoscape.integrate.noise import replicate_seeds
 
     study = _study(grid_file, run={"replicates": 4, "seed": 42},
                    noise={"environmental_sd": 0.5, "correlation_km": 3.0, "demographic": True},
@@ -343,7 +343,7 @@ def test_replicates_seeds_outputs_and_figure(grid_file, tmp_path):
 
 
 def test_regional_extinction_probability_with_wilson_band():
-    from trophoscape.plot import regional_extinction_probability
+    from trophoscape.report.figures import regional_extinction_probability
 
     # 3 of 5 replicates lose the predator everywhere, at census 1, 2 and 2
     x = np.ones((4, 2, 5))

@@ -5,10 +5,10 @@ import pytest
 import scipy.sparse as sp
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
-from trophoscape.network import build_network, movement_operator
-from trophoscape.simulate import simulate
-from trophoscape.system import (ORDER_MIN_PATCHES, CoupledSystem, group_rows, locality,
-                                spatial_order)
+from trophoscape.model.network import build_network, movement_operator
+from trophoscape.integrate.ode import simulate
+from trophoscape.model.system import (ORDER_MIN_PATCHES, CoupledSystem, group_rows, locality,
+                                      spatial_order)
 from trophoscape.testing import grid_landscape
 
 from conftest import make_model
@@ -156,8 +156,8 @@ def test_auto_keeps_user_order_on_small_networks(rng):
 def test_simulate_in_internal_order_with_events_and_noise(rng):
     # a reordered system is integrated in its internal order; shocks index patches and
     # noise fields are drawn in the user's order, so both must land on the same patches
-    from trophoscape.noise import NoiseModel
-    from trophoscape.shocks import ParameterShift, StateScale
+    from trophoscape.integrate.noise import NoiseModel
+    from trophoscape.model.shocks import ParameterShift, StateScale
 
     plain, ordered, centroids, n = scattered_system(rng)
     y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])

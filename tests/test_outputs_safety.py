@@ -29,7 +29,9 @@ import geopandas
 import pytest
 
 import trophoscape
-from trophoscape import cli, outputs
+from trophoscape.cli import program as cli
+from trophoscape.io import folder as outputs
+from trophoscape.report import run as run_folder
 from trophoscape.errors import InputError
 
 from test_errors_cli import (CANDIDATE, EXPLOSIVE, collection, features, middle, run_cli,
@@ -358,7 +360,7 @@ def _earlier_run_folder(folder: Path) -> None:
 
 
 def _earlier_sweep_folder(folder: Path) -> None:
-    from trophoscape.sweep import Ledger
+    from trophoscape.workflows.sweep import Ledger
 
     folder.mkdir(parents=True)
     ledger = Ledger(folder / "ledger.sqlite")
@@ -452,8 +454,9 @@ def test_an_output_folder_of_an_earlier_version_is_replaced_whole(tmp_path):
 
 
 def test_ledger_recognition_matches_the_sweep_ledger(tmp_path):
-    # consistency test: the ledger outputs.py recognises is the one sweep.py writes
-    from trophoscape.sweep import Ledger, sweep
+    # consistency test: the ledger io.folder recognises is the one workflows.sweep writes
+    from trophoscape.report.sweep import sweep
+    from trophoscape.workflows.sweep import Ledger
 
     write_valley(tmp_path)
     sweep(tmp_path / "s.toml", ["prey.growth_rate=0.5"], out=tmp_path / "sw", workers=1,
@@ -894,13 +897,13 @@ def test_a_failed_swap_puts_the_old_folder_back_and_keeps_the_results(tmp_path, 
 def test_a_file_appearing_during_the_run_keeps_the_results(tmp_path, monkeypatch, capsys):
     # an office suite's lock file appears in the old folder while the run goes on
     old = _two_runs(tmp_path, monkeypatch, capsys)
-    write = outputs.write_run_files
+    write = run_folder.write_run_files
 
     def and_a_lock_file(result, stage, **options):
         write(result, stage, **options)
         (tmp_path / "out" / ".~lock.patches.csv#").write_text("user,host\n", encoding="utf-8")
 
-    monkeypatch.setattr(outputs, "write_run_files", and_a_lock_file)
+    monkeypatch.setattr(run_folder, "write_run_files", and_a_lock_file)
     err, kept = _run_again_refused(tmp_path, monkeypatch, capsys)
     assert err == (
         "error: out: field '--out': holds .~lock.patches.csv#, which trophoscape did not write "
@@ -1041,7 +1044,7 @@ def test_a_terminated_sweep_keeps_its_ledger_and_resumes(tmp_path):
 
 
 def test_a_sweep_checks_its_out_once(tmp_path, monkeypatch):
-    from trophoscape.sweep import sweep
+    from trophoscape.report.sweep import sweep
 
     write_valley(tmp_path)
     calls = []
@@ -1067,7 +1070,7 @@ def _corridor_valley(folder: Path) -> None:
 
 def test_a_failed_corridors_command_leaves_the_users_empty_folder_alone(tmp_path, monkeypatch,
                                                                        capsys):
-    from trophoscape import planning_cli
+    from trophoscape.cli import corridors as planning_cli
 
     _corridor_valley(tmp_path)
     (tmp_path / "plan").mkdir()
@@ -1087,8 +1090,9 @@ def test_a_failed_corridors_command_leaves_the_users_empty_folder_alone(tmp_path
 
 
 def test_write_corridors_refuses_the_folder_of_the_links_file(tmp_path):
-    from trophoscape.analysis.planning import read_candidates
-    from trophoscape.planning_cli import plan_corridors, read_link_list, write_corridors
+    from trophoscape.workflows.planning import read_candidates
+    from trophoscape.workflows.planning import plan_corridors, read_link_list
+    from trophoscape.report.corridors import write_corridors
 
     _corridor_valley(tmp_path)
     (tmp_path / "lk").mkdir()
@@ -1129,7 +1133,7 @@ def test_a_full_disk_is_one_line_with_exit_1_and_leaves_nothing(tmp_path, monkey
     def full(result, stage, **kw):
         raise OSError(errno.ENOSPC, "No space left on device", str(stage / "patches.gpkg"))
 
-    monkeypatch.setattr(outputs, "write_run_files", full)
+    monkeypatch.setattr(run_folder, "write_run_files", full)
     code, err = main_here(tmp_path, monkeypatch, capsys, "run", "s.toml", "--out", "out",
                           "--quiet")
     assert code == 1

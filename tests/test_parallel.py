@@ -7,7 +7,7 @@ import time
 import pytest
 
 from trophoscape.errors import InputError
-from trophoscape.parallel import run_tasks
+from trophoscape.workflows.tasks import run_tasks
 
 
 def _square_or_fail(x):

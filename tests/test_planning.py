@@ -25,12 +25,12 @@ import scipy.linalg
 import shapely
 
 import trophoscape as ts
-import trophoscape.cli as cli
-from trophoscape.analysis import planning as pl
+import trophoscape.cli.program as cli
+from trophoscape.workflows import planning as pl
 from trophoscape.analysis.capacity import landscape_matrix, metapopulation_capacity
 from trophoscape.errors import InputError
-from trophoscape.report import CAUTION
-from trophoscape.network import build_network, movement_operator, with_links, without
+from trophoscape.report.html import CAUTION
+from trophoscape.model.network import build_network, movement_operator, with_links, without
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
 
@@ -117,9 +117,6 @@ def area_share(study, patch_id):
 
 
 def run_cli(monkeypatch, *args):
-    # the lead adds "planning_cli" to cli.COMMAND_MODULES; until then register it here
-    monkeypatch.setattr(cli, "COMMAND_MODULES", tuple(dict.fromkeys(
-        (*cli.COMMAND_MODULES, "planning_cli"))))
     return cli.main([str(a) for a in args])
 
 

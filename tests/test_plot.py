@@ -14,8 +14,8 @@ gpd = pytest.importorskip("geopandas")
 xr = pytest.importorskip("xarray")
 from shapely.geometry import LineString, box  # noqa: E402
 
-from trophoscape import plot  # noqa: E402
-from trophoscape.errors import InputError  # noqa: E402
+from trophoscape.report import figures as plot
+from trophoscape.errors import InputError
 
 SRC = Path(__file__).resolve().parents[1] / "src"
 
@@ -156,7 +156,7 @@ def test_import_does_not_load_matplotlib():
     # Optional heavy packages stay unloaded until used (geopandas tests/test_api.py does the
     # same check for its optional dependencies; common practice).
     env = dict(os.environ, PYTHONPATH=str(SRC))
-    code = "import trophoscape.plot, sys; print('matplotlib' in sys.modules)"
+    code = "import trophoscape.report.figures, sys; print('matplotlib' in sys.modules)"
     result = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
                             text=True, check=True)
     assert result.stdout.strip() == "False"
@@ -166,7 +166,7 @@ def test_does_not_touch_pyplot_backend(tmp_path, patches):
     # Drawing on a bare Figure leaves pyplot unimported (so a notebook keeps its backend).
     env = dict(os.environ, PYTHONPATH=str(SRC))
     code = ("import sys, geopandas as gpd; from shapely.geometry import box;"
-            "from trophoscape.plot import patch_map;"
+            "from trophoscape.report.figures import patch_map;"
             "g = gpd.GeoDataFrame({'v': [1.0, 2.0]}, geometry=[box(0, 0, 1e3, 1e3),"
             " box(2e3, 0, 3e3, 1e3)], crs='EPSG:32632');"
             f"patch_map(g, 'v', path={str(tmp_path / 'm.png')!r});"
@@ -185,7 +185,7 @@ def test_isolines_are_drawn(tmp_path):
     land = grid_landscape(5, 6, spacing_km=1.5, size_km=1.0)
     frame = land.frame[["patch_id", "geometry"]].copy()
     frame["arrival_time"] = np.hypot(*(land.centroids - land.centroids[0]).T) / 1000.0
-    from trophoscape.plot import patch_map
+    from trophoscape.report.figures import patch_map
 
     plain = patch_map(frame, "arrival_time", path=tmp_path / "plain.png")
     lines = patch_map(frame, "arrival_time", path=tmp_path / "lines.png", isolines=4)
@@ -198,7 +198,7 @@ def _drawn_texts(monkeypatch):
     """Collect every text a map draws (monkeypatched around the saving step)."""
     import matplotlib.text
 
-    import trophoscape.plot as plot
+    import trophoscape.report.figures as plot
 
     texts, save = [], plot._save
 
@@ -213,7 +213,7 @@ def _drawn_texts(monkeypatch):
 def test_constant_map_says_so_and_labels_no_extremes(tmp_path, monkeypatch):
     # values equal up to rounding: one tick "(every patch)", no offset such as "1e-9+9.97e-1",
     # and no "highest"/"lowest" labels that would single out a rounding error
-    from trophoscape.plot import patch_map
+    from trophoscape.report.figures import patch_map
     from trophoscape.testing import grid_landscape
 
     land = grid_landscape(2, 3, spacing_km=1.5, size_km=1.0)
@@ -240,7 +240,7 @@ def test_empty_synchrony_charts_say_why(tmp_path, monkeypatch):
     import pandas as pd
     import xarray as xr
 
-    from trophoscape.plot import kuramoto_plot, synchrony_distance_plot
+    from trophoscape.report.figures import kuramoto_plot, synchrony_distance_plot
 
     texts = _drawn_texts(monkeypatch)
     empty = pd.DataFrame({"distance_km": [0.5], "correlation": [np.nan], "low": [np.nan],

@@ -10,8 +10,8 @@ import pytest
 import shapely
 
 import trophoscape as ts
-from trophoscape.cli import main as cli_main
-from trophoscape.report import CAUTION
+from trophoscape.cli.program import main as cli_main
+from trophoscape.report.html import CAUTION
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
 
@@ -100,7 +100,7 @@ def test_report_renders_in_headless_chromium(which, request, tmp_path):
 
 def test_headline_counts_the_removed_local_populations():
     # consistency test: the row repeats summary.json's quasi_extinction counts
-    from trophoscape.report import _headline_rows
+    from trophoscape.report.html import _headline_rows
 
     summary = {"solver": {"method": "RK45", "nfev": 10},
                "quasi_extinction": {"prey": {"removals": 1535, "individuals_removed": 1535.0},
@@ -113,7 +113,7 @@ def test_headline_counts_the_removed_local_populations():
 
 
 def test_headline_says_when_the_local_equations_ran_compiled():
-    from trophoscape.report import _headline_rows
+    from trophoscape.report.html import _headline_rows
 
     base = {"solver": {"method": "RK45", "nfev": 30125, "local_kernel": "numpy"}}
     rows = dict(_headline_rows(base))

@@ -14,8 +14,8 @@ import xarray as xr
 
 import trophoscape as ts
 from trophoscape.errors import RunError
-from trophoscape.outputs import SERIES_BLOCK_ROWS
-from trophoscape.system import SPECIES
+from trophoscape.io.series import SERIES_BLOCK_ROWS
+from trophoscape.model.system import SPECIES
 
 from conftest import grid_study, write_grid_file
 
@@ -60,16 +60,16 @@ def assert_same_file(got, want):
 def test_streamed_file_equals_xarrays_and_arrives_in_blocks(grid_file, tmp_path, monkeypatch):
     study = study_of(grid_file)
     seen = []
-    from trophoscape import outputs
+    from trophoscape.io import series
 
-    original = outputs.SeriesWriter.write
+    original = series.SeriesWriter.write
 
     def spy(self, start, blocks):
         # the file is being filled while the run goes: rows so far, before the run ends
         seen.append((start, np.shape(blocks[0])[0], self._tmp.exists(), self.path.exists()))
         return original(self, start, blocks)
 
-    monkeypatch.setattr(outputs.SeriesWriter, "write", spy)
+    monkeypatch.setattr(series.SeriesWriter, "write", spy)
     target = tmp_path / "series.nc"
     result = ts.run_study(study, series_to=target)
     n_times = result.trajectory.data.sizes["time"]

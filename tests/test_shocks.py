@@ -7,13 +7,13 @@ import scipy.sparse as sp
 import trophoscape as ts
 from conftest import make_model, make_system
 from trophoscape.errors import InputError
-from trophoscape.network import build_network, movement_operator
+from trophoscape.model.network import build_network, movement_operator
 from trophoscape.scenario import parse_scenario
-from trophoscape.shocks import (SHOCK_KINDS, Harvest, HabitatLoss, LinkCut, MortalityPulse,
-                                PatchLoss, PredatorRemoval, PreyCrash, ShockContext,
-                                build_shocks, shock_events)
-from trophoscape.simulate import simulate
-from trophoscape.system import SPECIES, CoupledSystem, pack
+from trophoscape.model.shocks import (SHOCK_KINDS, Harvest, HabitatLoss, LinkCut, MortalityPulse,
+                                      PatchLoss, PredatorRemoval, PreyCrash, ShockContext,
+                                      build_shocks, shock_events)
+from trophoscape.integrate.ode import simulate
+from trophoscape.model.system import SPECIES, CoupledSystem, pack
 from trophoscape.testing import chain_landscape, grid_landscape
 
 

@@ -11,13 +11,13 @@ import shapely
 from scipy.optimize import minimize_scalar
 
 import trophoscape as ts
-import trophoscape.cli as cli
-from trophoscape.analysis import spread as sp
-from trophoscape.dynamics import LocalModel
-from trophoscape.network import build_network, movement_operator
+import trophoscape.cli.program as cli
+from trophoscape.workflows import spread as sp
+from trophoscape.model.dynamics import LocalModel
+from trophoscape.model.network import build_network, movement_operator
 from trophoscape.scenario import parse_scenario
-from trophoscape.simulate import simulate
-from trophoscape.system import CoupledSystem, pack
+from trophoscape.integrate.ode import simulate
+from trophoscape.model.system import CoupledSystem, pack
 from trophoscape.testing import chain_landscape, grid_landscape
 
 
@@ -206,7 +206,7 @@ NO_PREDATORS = {"initial_density": 0.0}
      "predator"),
 ])
 def test_the_shocks_decide_the_species_followed_by_default(tmp_path, tables, species):
-    from trophoscape.shocks import build_shocks
+    from trophoscape.model.shocks import build_shocks
 
     tables = [dict(t, at=80.0, **({} if "links" in t else {"patches": ["0"]})) for t in tables]
     sc = chain_scenario(tmp_path / "chain.gpkg", tables)
@@ -295,12 +295,12 @@ def test_a_followed_species_absent_after_burn_in_is_an_input_error(tmp_path, mon
     with pytest.raises(ts.InputError, match=r"shock\[0\], a patch_loss, acts on both species"):
         sp.run_spread(ts.build_study(default))
     # the origin scan checks once, before any origin is run
-    import trophoscape.parallel
+    import trophoscape.workflows.tasks
 
     def no_tasks(*args, **kwargs):
         raise AssertionError("origins were dispatched")
 
-    monkeypatch.setattr(trophoscape.parallel, "run_tasks", no_tasks)
+    monkeypatch.setattr(trophoscape.workflows.tasks, "run_tasks", no_tasks)
     with pytest.raises(ts.InputError) as scan_info:
         sp.origin_scan(ts.build_study(named), [0, 1], workers=1, progress=False)
     assert str(scan_info.value) == str(err)
@@ -365,9 +365,6 @@ def test_stratified_origins_take_one_from_each_run_of_the_curve():
 # ------------------------------------------------------------------------------ command
 @pytest.fixture
 def spread_command(monkeypatch):
-    # cli.py registers command modules through COMMAND_MODULES (the lead adds "spread_cli")
-    if "spread_cli" not in cli.COMMAND_MODULES:
-        monkeypatch.setattr(cli, "COMMAND_MODULES", cli.COMMAND_MODULES + ("spread_cli",))
     return cli.main
 
 

@@ -9,17 +9,12 @@ import scipy.sparse.linalg
 from conftest import make_model, make_system
 
 from trophoscape.analysis import stability
-from trophoscape.analysis.stability import (
-    _density_equations,
-    classify,
-    coexistence_equilibrium,
-    leading_eigenvalues,
-    stability_analysis,
-)
-from trophoscape.dynamics import LocalModel
-from trophoscape.network import Network, build_network, movement_operator
-from trophoscape.simulate import simulate
-from trophoscape.system import CoupledSystem, pack
+from trophoscape.analysis.stability import (_density_equations, classify, coexistence_equilibrium,
+                                            leading_eigenvalues, stability_analysis)
+from trophoscape.model.dynamics import LocalModel
+from trophoscape.model.network import Network, build_network, movement_operator
+from trophoscape.integrate.ode import simulate
+from trophoscape.model.system import CoupledSystem, pack
 from trophoscape.testing import grid_landscape
 
 # Rosenzweig–MacArthur parameters (logistic prey, Holling type II)

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 import trophoscape as ts
-from trophoscape.dynamics import interior_equilibrium
+from trophoscape.model.dynamics import interior_equilibrium
 from trophoscape.errors import InputError
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
@@ -34,7 +34,7 @@ def scenario(path, **sections):
 
 def test_import_is_light():
     # `import trophoscape` must not pull in matplotlib, geopandas or numba (STYLE.md habit 8)
-    code = ("import sys, trophoscape, trophoscape.system; "
+    code = ("import sys, trophoscape, trophoscape.model.system; "
             "print(sorted(m for m in ('matplotlib', 'geopandas', 'numba') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)

@@ -26,18 +26,18 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from trophoscape import cli
+from trophoscape.cli import program as cli
 from trophoscape.errors import InputError, RunError
-from trophoscape.parallel import run_tasks
-from trophoscape.sweep import (LEDGER_NAME, TABLE_NAME, TIME_COLUMNS, Ledger, parse_vary,
-                               plan_sweep, read_sweep_table, replicate_seeds, sweep)
+from trophoscape.workflows.tasks import run_tasks
+from trophoscape.report.sweep import sweep
+from trophoscape.workflows.sweep import (LEDGER_NAME, TABLE_NAME, TIME_COLUMNS, Ledger, parse_vary,
+                                         plan_sweep, read_sweep_table)
+from trophoscape.integrate.noise import replicate_seeds
 from trophoscape.testing import grid_landscape
 
 SRC = Path(__file__).resolve().parents[1] / "src"
-# Runs the command line with the sweep command registered, whether or not cli.py lists it yet.
-RUNNER = ("import sys, trophoscape.cli as c; "
-          "c.COMMAND_MODULES = tuple(dict.fromkeys((*c.COMMAND_MODULES, 'sweep_cli'))); "
-          "sys.exit(c.main(sys.argv[1:]))")
+# Runs the command line in a subprocess.
+RUNNER = "import sys, trophoscape.cli.program as c; sys.exit(c.main(sys.argv[1:]))"
 
 SCENARIO = """
 name = "sweep test"
@@ -103,8 +103,6 @@ def ledger_count(path: Path) -> int:
 
 
 def run_cli(argv, monkeypatch):
-    if "sweep_cli" not in cli.COMMAND_MODULES:
-        monkeypatch.setattr(cli, "COMMAND_MODULES", (*cli.COMMAND_MODULES, "sweep_cli"))
     return cli.main([str(a) for a in argv])
 
 

@@ -392,7 +392,7 @@ def test_no_dense_patch_by_patch_matrix(rng):
 def test_synchrony_plots(tmp_path):
     from matplotlib.image import imread
 
-    from trophoscape import plot
+    from trophoscape.report import figures as plot
 
     ds, xy, d, _ = exponential_field(4, n=60, t=200)
     i, j = np.nonzero(np.triu(d < 2.0, 1))

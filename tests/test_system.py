@@ -7,8 +7,8 @@ import pytest
 import scipy.linalg as sl
 import scipy.sparse as sp
 
-from trophoscape.dynamics import GROWTH_FORMS, RESPONSES
-from trophoscape.simulate import simulate
+from trophoscape.model.dynamics import GROWTH_FORMS, RESPONSES
+from trophoscape.integrate.ode import simulate
 
 from conftest import make_model, make_system
 
@@ -175,7 +175,7 @@ def test_finished_solvers_are_freed_at_once(rng, monkeypatch):
 
     import scipy.integrate as si
 
-    import trophoscape.simulate as simulate_module
+    import trophoscape.integrate.ode as simulate_module
 
     alive = []
 
@@ -193,7 +193,7 @@ def test_finished_solvers_are_freed_at_once(rng, monkeypatch):
     y0 = np.concatenate([np.full(n, 80.0), np.full(n, 4.0)])
     gc.disable()
     try:
-        from trophoscape.shocks import StateScale
+        from trophoscape.model.shocks import StateScale
 
         events = [StateScale(t, "prey", np.array([0]), 1.0) for t in np.arange(0.5, 20, 0.5)]
         traj = simulate(system, y0, duration=20, census_interval=0.5, method="RK45",

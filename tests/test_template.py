@@ -9,7 +9,7 @@ import pytest
 
 from trophoscape.errors import InputError
 from trophoscape.scenario import SCHEMA, read_scenario
-from trophoscape.template import guess_id_field, write_template
+from trophoscape.workflows.template import guess_id_field, write_template
 
 DEMO = Path(__file__).resolve().parents[1] / "data" / "demo_patches.geojson"
 

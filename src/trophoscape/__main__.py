@@ -2,7 +2,7 @@ import os
 import sys
 
 try:
-    from .cli import entry
+    from .cli.program import entry
 except KeyboardInterrupt:  # Ctrl-C while the command line itself is being loaded
     sys.stderr.write("interrupted; no output was written\n")
     sys.stderr.flush()

@@ -1,7 +1,7 @@
 """Names of the per-patch columns trophoscape computes, in one place with no imports.
 
 The analyses (:mod:`trophoscape.analysis`) write these columns; the patch reader
-(:mod:`trophoscape.landscape`) keeps a user's column of the same name under another name.
+(:mod:`trophoscape.model.landscape`) keeps a user's column of the same name under another name.
 Both read the names from here, so the reader does not import the analyses (a lower layer
 never imports a higher one).
 """
@@ -11,7 +11,7 @@ from __future__ import annotations
 __all__ = ["PERSISTENCE_COLUMNS", "SYNCHRONY_COLUMNS", "CAPACITY_COLUMNS",
            "STABILITY_COLUMNS", "SPECIES_NAMES", "computed_columns"]
 
-#: The two species, in the state's order (as :data:`trophoscape.system.SPECIES`).
+#: The two species, in the state's order (as :data:`trophoscape.model.system.SPECIES`).
 SPECIES_NAMES = ("prey", "predator")
 #: Per species ``S``: columns ``S_<name>`` of a single run (key 1) and of replicates.
 PERSISTENCE_COLUMNS = {1: ("persists", "occupancy", "mean", "cv", "last_extinction",

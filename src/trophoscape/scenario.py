@@ -19,8 +19,8 @@ from types import MappingProxyType
 from collections.abc import Mapping
 from typing import Any, Callable
 
-from .dynamics import GROWTH_FORMS, RESPONSES
-from .errors import InputError, allowed_range
+from .model.dynamics import GROWTH_FORMS, RESPONSES
+from .errors import InputError, RunError, allowed_range
 
 __all__ = ["Scenario", "FieldRef", "SCHEMA", "read_scenario", "parse_scenario"]
 
@@ -503,7 +503,7 @@ SHOCK_KEYS: dict[str, Key] = {
 
 def _parse_shocks(tables, values, file) -> tuple:
     """Validate the ``[[shock]]`` array of tables; ids are checked later, against the patches."""
-    from .shocks import SHOCK_KINDS
+    from .model.shocks import SHOCK_KINDS
 
     if isinstance(tables, Mapping) or not isinstance(tables, (list, tuple)):
         raise InputError("is not a list of shock tables; write each shock as a [[shock]] "
@@ -572,3 +572,33 @@ def bounds_of(full_key: str):
     """``(lo, hi, lo_open)`` of a numeric key, for checking per-patch values."""
     section, _, key = full_key.rpartition(".")
     return getattr(SCHEMA[section][key].check, "bounds", (None, None, False))
+
+
+def input_files(scenario, variants=()) -> list[Path]:
+    """The files a scenario reads: the patch file, corridors, links, the scenario file.
+
+    ``variants`` are mappings of scenario keys to values (a sweep's points): a path key
+    among them names another input, resolved against the scenario's folder.
+    """
+    files = [Path(scenario.resolve(scenario[key])) for key in INPUT_FILES if scenario[key]]
+    for variant in variants:
+        for key in INPUT_FILES:
+            value = dict(variant).get(key)
+            if isinstance(value, str) and value:
+                files.append(Path(scenario.resolve(value)))
+    if scenario.path is not None:
+        files.append(Path(scenario.path))
+    return files
+
+
+def demo_scenario_path() -> Path:
+    """The bundled demo scenario (installed with the package, or the source tree's data/)."""
+    from importlib.resources import files
+
+    installed = Path(str(files("trophoscape"))) / "_demo_data" / "demo.toml"
+    if installed.is_file():
+        return installed
+    source = Path(__file__).resolve().parents[2] / "data" / "demo.toml"
+    if source.is_file():
+        return source
+    raise RunError("the demo data are missing from this installation; reinstall trophoscape")

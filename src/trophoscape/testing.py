@@ -11,7 +11,7 @@ import geopandas
 import numpy as np
 import shapely
 
-from .landscape import Landscape, landscape_from_frame
+from .model.landscape import Landscape, landscape_from_frame
 
 __all__ = ["grid_landscape", "chain_landscape"]
 

@@ -35,7 +35,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.sparse.csgraph import connected_components
 
-from ..network import KERNELS, Network, kernel_weight, per_patch_array
+from ..model.network import KERNELS, Network, kernel_weight, per_patch_array
 
 __all__ = [
     "landscape_matrix",

@@ -39,7 +39,7 @@ import numpy as np
 import pandas as pd
 
 from ..columns import PERSISTENCE_COLUMNS
-from ..system import SPECIES
+from ..model.system import SPECIES
 from ._blocks import blocks
 
 __all__ = ["persistence_table", "regional_persistence", "occupancy_curve", "present",

@@ -3,7 +3,7 @@
 Three steps, each usable on its own:
 
 1. :func:`coexistence_equilibrium` finds the interior equilibrium of the coupled ODE of
-   :mod:`trophoscape.system` (prey and predator present in every patch).
+   :mod:`trophoscape.model.system` (prey and predator present in every patch).
 2. :func:`leading_eigenvalues` computes the eigenvalues of the Jacobian there with the
    largest real parts.
 3. :func:`classify` names what they mean for the dynamics near the equilibrium.
@@ -40,8 +40,8 @@ import scipy.optimize
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from ..dynamics import interior_equilibrium
-from ..system import CoupledSystem, pack
+from ..model.dynamics import interior_equilibrium
+from ..model.system import CoupledSystem, pack
 
 __all__ = [
     "Equilibrium",
@@ -92,7 +92,7 @@ class Equilibrium:
     Attributes
     ----------
     state : ndarray, shape (2 n,)
-        Abundances laid out as in :mod:`trophoscape.system` (prey, then predator).
+        Abundances laid out as in :mod:`trophoscape.model.system` (prey, then predator).
     residual_norm : float
         Largest ``|dy/dt| / A`` at ``state``: the residual in density per time unit
         (individuals km⁻² per time unit), so that it does not grow with patch size.
@@ -176,7 +176,7 @@ def _fill_missing(u, system: CoupledSystem):
 
 def _simulated_guess(system: CoupledSystem, duration):
     """End state (densities) of a short run from half capacity; for models without a closed form."""
-    from ..simulate import simulate
+    from ..integrate.ode import simulate
 
     n = system.n_patches
     q = system.model.params
@@ -209,8 +209,8 @@ def coexistence_equilibrium(system: CoupledSystem, *, guess=None, tol: float = 1
     system : CoupledSystem
     guess : ndarray, shape (2 n,), optional
         Starting abundances (prey then predator), e.g. the end state of a
-        :func:`trophoscape.simulate.simulate` run. Default: the closed-form local
-        equilibrium of every patch (:func:`trophoscape.dynamics.interior_equilibrium`),
+        :func:`trophoscape.integrate.ode.simulate` run. Default: the closed-form local
+        equilibrium of every patch (:func:`trophoscape.model.dynamics.interior_equilibrium`),
         prey at capacity and a few predators where a patch has none; for models without a
         closed form, the end state of a short simulation (``guess_duration``).
     tol : float
@@ -431,7 +431,7 @@ def leading_eigenvalues(system: CoupledSystem, state, *, k: int = 6,
     which needs only products with the sparse Jacobian (O(patches + links) each). We do not
     use shift-invert first: it needs a shift near the leading eigenvalues, which is what we
     are looking for, and a sparse LU whose fill-in on planar patch graphs grows quickly (see
-    :func:`trophoscape.simulate.choose_method`). If ARPACK does not converge, it is tried
+    :func:`trophoscape.integrate.ode.choose_method`). If ARPACK does not converge, it is tried
     once more with a larger Krylov space; then, for ``2 n <= DENSE_FALLBACK_LIMIT``, the dense
     solve gives the answer. Above that, ARPACK is tried with tolerance 1e-4, then in
     shift-invert mode at a real shift ``σ`` to the right of every eigenvalue (Gershgorin's

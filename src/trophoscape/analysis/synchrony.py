@@ -46,7 +46,7 @@ import xarray as xr
 
 from ..columns import SYNCHRONY_COLUMNS
 from ..errors import InputError
-from ..system import SPECIES
+from ..model.system import SPECIES
 from ._blocks import blocks
 
 __all__ = [

@@ -21,7 +21,7 @@ import shapely
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from .errors import InputError, allowed_range
+from ..errors import InputError, allowed_range
 from .landscape import Landscape, read_corridors, read_links_table
 
 __all__ = [
@@ -288,14 +288,14 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
         Edge-to-edge distance (0 for touching patches) or distance between centroids; used
         for kernel links and links-table rows.
     corridors : str or path, optional
-        Lines joining two patches; see :func:`trophoscape.landscape.read_corridors`. Each end
+        Lines joining two patches; see :func:`trophoscape.model.landscape.read_corridors`. Each end
         must lie within ``corridor_snap_km`` of a patch, the two ends at different patches.
         A corridor links both ways; its distance is its length; its weight is the kernel of
         its length (1 when ``kernel="none"``); its survival the ``survival`` attribute or,
         where empty, ``survival_per_km`` to the power of its length.
     links_table : str or path, optional
         CSV of ``source,target,weight[,survival][,directed]``; see
-        :func:`trophoscape.landscape.read_links_table`. Ids must be patch ids.
+        :func:`trophoscape.model.landscape.read_links_table`. Ids must be patch ids.
     corridor_snap_km : float
         How far a corridor end may be from its patch.
     base_dir : str or path, optional

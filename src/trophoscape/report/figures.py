@@ -22,13 +22,12 @@ from __future__ import annotations
 
 import functools
 import math
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
-from trophoscape.errors import InputError
+from ..errors import InputError
+from ..io.folder import write_atomic
 
 __all__ = ["patch_map", "timeseries_panels", "occupancy_curve"]
 
@@ -582,15 +581,8 @@ def _save(fig, path: Path) -> Path:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
     FigureCanvasAgg(fig)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}-", suffix=".png", dir=path.parent)
     try:
-        with os.fdopen(fd, "wb") as handle:
-            fig.savefig(handle, format="png", dpi=DPI)
-        os.chmod(tmp, 0o644)  # mkstemp makes the file private; a figure is for sharing
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+        write_atomic(path, lambda handle: fig.savefig(handle, format="png", dpi=DPI))
     finally:
         fig.clear()  # a bare Figure is not registered with pyplot; clearing frees it
     return path
@@ -1014,7 +1006,7 @@ def regional_extinction_probability(dataset, species="predator", *, confidence=0
     """
     import pandas as pd
 
-    from .analysis.persistence import wilson_interval
+    from ..analysis.persistence import wilson_interval
 
     x = dataset[species].transpose("time", "patch", "replicate").values
     gone = ~(x > 0).any(axis=1)                                   # (time, replicate)

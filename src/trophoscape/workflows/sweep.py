@@ -13,11 +13,11 @@ and never records a run twice. The table ``sweep.csv`` is regenerated from the l
 sweep ends; ``runs/<run_id>.json`` holds each run's results; ``plots/`` shows each key result
 against each varied value.
 
-The output folder is checked before anything runs (:func:`trophoscape.outputs.check_out`)
+The output folder is checked before anything runs (:func:`trophoscape.io.folder.check_out`)
 and made with its marker when the sweep starts, because the ledger lives there from the
 first run on (an earlier output folder there is replaced then; a sweep's own folder is kept
 with ``resume``). The table and plots are written through
-:func:`trophoscape.outputs.staged_folder`, which carries the ledger and ``runs/`` over (hard
+:func:`trophoscape.io.folder.staged_folder`, which carries the ledger and ``runs/`` over (hard
 links) and replaces the folder as a whole, so they appear whole or not at all.
 
 Replicates of a point get seeds from ``numpy.random.SeedSequence(seed).spawn(replicates)``,
@@ -37,17 +37,18 @@ import json
 import math
 import os
 import sqlite3
-import tempfile
 import time
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
-from .errors import InputError, RunError
+from ..errors import InputError
+from ..io.folder import write_atomic
+from ..integrate.noise import replicate_seeds
 
-__all__ = ["sweep", "parse_vary", "read_sweep_table", "plan_sweep", "run_point", "Ledger",
-           "SweepRun", "flatten_summary", "run_id_of", "replicate_seeds", "KEY_RESULTS",
+__all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "run_point", "Ledger",
+           "SweepRun", "flatten_summary", "run_id_of", "KEY_RESULTS",
            "LEDGER_NAME", "TABLE_NAME"]
 
 LEDGER_NAME = "ledger.sqlite"
@@ -70,7 +71,7 @@ LEDGER_FORMAT = "1"
 
 # ------------------------------------------------------------------------------ the plan
 def _all_keys() -> list[str]:
-    from .scenario import SCHEMA
+    from ..scenario import SCHEMA
 
     return [f"{s}.{k}" if s else k for s, keys in SCHEMA.items() for k in keys]
 
@@ -88,7 +89,7 @@ def _check_key(key: str, *, field: str, file=None, feature=None) -> None:
 
 def _kind(key: str) -> str:
     """"text", "flag" or "number": how a key's values are written (from its schema check)."""
-    from .scenario import SCHEMA
+    from ..scenario import SCHEMA
 
     section, _, name = key.rpartition(".")
     check = SCHEMA[section][name].check
@@ -295,15 +296,6 @@ def run_id_of(variant: Mapping, replicate: int) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
 
-def replicate_seeds(seed: int, replicates: int) -> list[int]:
-    """Seeds of the replicates: ``SeedSequence(seed).spawn(replicates)``, 63-bit integers.
-
-    63 bits so that a seed fits a TOML integer and an SQLite INTEGER (both signed 64-bit).
-    """
-    import numpy as np
-
-    children = np.random.SeedSequence(int(seed)).spawn(int(replicates))
-    return [int(c.generate_state(1, dtype=np.uint64)[0] >> np.uint64(1)) for c in children]
 
 
 def _apply(raw: dict, variant: Mapping) -> dict:
@@ -321,7 +313,7 @@ def _apply(raw: dict, variant: Mapping) -> dict:
 
 
 def _scenario_for(text: str, path, base_dir, variant: Mapping):
-    from .scenario import parse_scenario
+    from ..scenario import parse_scenario
 
     raw = tomllib.loads(text)
     return parse_scenario(_apply(raw, variant), path=None if path is None else Path(path),
@@ -443,7 +435,7 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
     scenario : Scenario
         The base scenario.
     """
-    from .scenario import read_scenario
+    from ..scenario import read_scenario
 
     scenario = read_scenario(scenario_path)
     if isinstance(replicates, bool) or not isinstance(replicates, int) or replicates < 1:
@@ -487,7 +479,7 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
 def _check_point_inputs(sc, point: dict, checked: dict) -> None:
     """Before any run starts: the files a point names exist, and its run fits in memory
     (the patch count read from the file's header, once per file)."""
-    from .scenario import INPUT_FILES, check_regular_file
+    from ..scenario import INPUT_FILES, check_regular_file
     from .study import check_run_size
 
     for key, what in INPUT_FILES.items():
@@ -523,7 +515,7 @@ def _feature_count(path, layer=None) -> int | None:
 
 
 def _canonical(validated, given):
-    from .scenario import FieldRef
+    from ..scenario import FieldRef
 
     if isinstance(validated, FieldRef):
         return given
@@ -678,18 +670,6 @@ class Ledger:
 
 
 # ------------------------------------------------------------------------------ outputs
-def _atomic_write(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}-", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
 def sweep_frame(ledger: Ledger, keys: Sequence[str], runs: Sequence[SweepRun] = ()):
     """The sweep table from the ledger: runs of the plan in plan order, then any others.
 
@@ -721,51 +701,17 @@ def sweep_frame(ledger: Ledger, keys: Sequence[str], runs: Sequence[SweepRun] = 
     return pd.DataFrame.from_records(records, columns=columns)
 
 
-def _write_table(frame, out: Path) -> Path:
-    path = out / TABLE_NAME
-    _atomic_write(path, frame.to_csv(index=False))
-    return path
 
 
-def _write_plots(frame, keys: Sequence[str], out: Path) -> list[Path]:
-    from .plot import sweep_plot
-
-    ok = frame[frame["status"] == "ok"]
-    if ok.empty or not keys:
-        return []
-    folder = out / "plots"
-    folder.mkdir(exist_ok=True)
-    written = []
-    for result in KEY_RESULTS:
-        if result not in ok.columns or ok[result].isna().all():
-            continue
-        for key in keys:
-            others = [k for k in keys if k != key]
-            written.append(sweep_plot(ok, result, key, group_by=others,
-                                      path=folder / f"{result}_vs_{key}.png"))
-    return written
 
 
-# ------------------------------------------------------------------------------ the sweep
-def _table_files(spec, table) -> list[Path]:
-    """The sweep tables among the sweep's inputs (as :func:`_as_points` finds them)."""
-    files = [] if table is None else [Path(table)]
-    if isinstance(spec, (str, os.PathLike)):
-        spec = [spec]
-    if spec is None or isinstance(spec, Mapping):
-        return files
-    for s in spec:
-        if isinstance(s, os.PathLike) or (isinstance(s, str) and s.endswith(".csv")
-                                          and "=" not in s):
-            files.append(Path(s))
-    return files
 
 
 def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
 
 
-def _run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks, **options):
+def run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks, **options):
     """Run the runs not yet recorded as ok in the ledger, recording each as it finishes;
     return the sweep table from the ledger."""
     try:
@@ -801,7 +747,7 @@ def _run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks
             record = {"run_id": run.run_id, "variant": run.values, "replicate": run.replicate,
                       "seed": run.seed, "status": "ok" if ok else "failed", "error": error,
                       "results": results, "seconds": seconds, "finished": finished}
-            _atomic_write(out / "runs" / f"{run.run_id}.json",
+            write_atomic(out / "runs" / f"{run.run_id}.json",
                           json.dumps(record, indent=2, default=str) + "\n")
             ledger.record(run, ok=ok, results=results, error=error, seconds=seconds,
                           finished=finished)
@@ -817,103 +763,3 @@ def _run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks
         ledger.close()
 
 
-def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 1,
-          workers: int | None = None, scheduler: str | None = None,
-          dask_local: int | None = None, resume: bool = False, table=None,
-          plots: bool = True, progress: bool = False, retries: int = 2,
-          force: bool = False):
-    """Run a parameter sweep of a scenario, recording every run as it finishes.
-
-    Parameters
-    ----------
-    scenario_path : path
-        The scenario file (TOML).
-    variants_or_vary_specs : list of str, dict, list of dict, or None
-        ``["prey.growth_rate=0.5:1.5:11", "dispersal.max_distance_km=5,10,20"]`` (the
-        ``--vary`` syntax; a ``.csv`` path among them is read as a sweep table), or
-        ``{"prey.growth_rate": [0.5, 1.0]}``, or explicit points
-        ``[{"prey.growth_rate": 0.5}, ...]``. Groups combine as a Cartesian product.
-    out : path
-        Output folder: ``ledger.sqlite``, ``sweep.csv``, ``runs/``, ``plots/``. It may not
-        be or hold an input, and an existing folder trophoscape did not write needs
-        ``force`` (:func:`trophoscape.outputs.check_out`).
-    replicates : int
-        Runs per point, seeds from ``SeedSequence(run.seed).spawn(replicates)``.
-    workers : int, optional
-        Local processes (default all cores).
-    scheduler : str, optional
-        Address of a running Dask scheduler.
-    dask_local : int, optional
-        Start a Dask LocalCluster with this many workers on loopback.
-    resume : bool
-        Continue the sweep recorded in ``out``: skip the runs already ok. Without it an
-        existing ledger in ``out`` is an error.
-    table : path, optional
-        A sweep table (CSV, one column per key, one row per point).
-    plots : bool
-        Draw ``plots/<result>_vs_<key>.png``.
-    progress : bool
-        A progress bar on stderr.
-    retries : int
-        Re-runs of a run whose worker was lost.
-    force : bool
-        Write to ``out`` even when it is a folder trophoscape did not write (that folder is
-        kept, renamed to ``NAME.replaced-YYYYmmdd-HHMMSS``), or replace an earlier sweep's
-        folder without ``resume``.
-
-    Returns
-    -------
-    pandas.DataFrame
-        The sweep table, as written to ``sweep.csv`` (one row per run).
-
-    Raises
-    ------
-    InputError
-        For a bad scenario, key, value or table, a bad ``out`` (see
-        :func:`trophoscape.outputs.check_out`), or an existing ledger without ``resume``.
-    RunError
-        When every run failed (the table and ledger are still written).
-    KeyboardInterrupt
-        After Ctrl-C; the ledger keeps every run finished so far.
-    """
-    from .outputs import check_out, input_files, staged_folder, working_folder
-    from .parallel import run_tasks
-
-    keys, runs, scenario = plan_sweep(scenario_path, variants_or_vary_specs,
-                                      replicates=replicates, table=table)
-    inputs = [*input_files(scenario, [r.values for r in runs]),
-              *_table_files(variants_or_vary_specs, table)]
-    # checked once, before anything runs; the folders below take this check as done
-    check_out(out, inputs=inputs, force=force)
-    out = Path(out)
-    ledger_path = out / LEDGER_NAME
-    if ledger_path.exists() and not resume and not force:
-        raise InputError("a sweep ledger is already here; add --resume to continue that "
-                         "sweep, add --force to start a new sweep in its place (its finished "
-                         "runs are then deleted), or give another --out folder",
-                         file=ledger_path, field="--out")
-    # the ledger lives in the output folder from the first run on
-    with working_folder(out, command="sweep", allow=SWEEP_NAMES, force=force,
-                        reuse=resume and ledger_path.exists(), checked=True):
-        (out / "runs").mkdir(exist_ok=True)
-        for stale in (out / "runs").glob(".*.tmp"):
-            stale.unlink(missing_ok=True)  # left by a process killed while renaming
-        frame = _run_ledger(ledger_path, out, scenario, keys, runs, workers=workers,
-                            scheduler=scheduler, dask_local=dask_local, retries=retries,
-                            progress=progress, run_tasks=run_tasks)
-    import pandas as pd
-
-    # The table and plots, staged; the ledger and runs/ are carried into the new folder.
-    with staged_folder(out, force=force, command="sweep", keep=WORKING_NAMES,
-                       allow=SWEEP_NAMES, checked=True) as stage:
-        # the table as written (what a reader of sweep.csv gets: NaN for missing values)
-        frame = pd.read_csv(_write_table(frame, stage))
-        if plots:
-            _write_plots(frame, keys, stage)
-    planned = {r.run_id for r in runs}
-    mine = frame[frame["run_id"].isin(planned)]
-    if len(mine) and (mine["status"] != "ok").all():
-        first = mine["error"].iloc[0]
-        raise RunError(f"every run of the sweep failed; the first error: {first} (see "
-                       f"{out / TABLE_NAME}); fix that and run the sweep again")
-    return frame

@@ -20,17 +20,16 @@ Error control per patch
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 
 import numpy as np
 import scipy.integrate as si
 import xarray as xr
 
-from .errors import RunError
-from .system import SPECIES, CoupledSystem
+from ..errors import RunError
+from ..model.system import SPECIES, CoupledSystem
+from .trajectory import SolverStats, Trajectory, census_times
 
-__all__ = ["METHODS", "SolverStats", "Trajectory", "census_times", "simulate", "choose_method",
-           "first_crossing"]
+__all__ = ["METHODS", "simulate", "choose_method", "first_crossing"]
 
 class _MaxNormRK:
     """Error control by the largest scaled error over all components (a max norm).
@@ -239,70 +238,10 @@ def _crossing_positions(dense, index, level):
     return hi, _dense_at(dense, index, hi)
 
 
-@dataclass(frozen=True)
-class SolverStats:
-    """What the solver did: as on scipy's ``OdeResult``, plus restarts and removals.
-
-    ``restarts`` counts the times the solver was started afresh inside the run (after a
-    quasi-extinction, a shock, or a census with noisy rates). ``removals`` and
-    ``removed_individuals`` count, per species (prey, predator), the local populations the
-    quasi-extinction rule removed and the individuals they held.
-    """
-
-    method: str
-    nfev: int
-    njev: int
-    nlu: int
-    steps: int
-    restarts: int
-    status: int
-    message: str
-    removals: tuple = (0, 0)
-    removed_individuals: tuple = (0.0, 0.0)
-
-    @property
-    def success(self) -> bool:
-        return self.status == 0
-
-    def as_dict(self) -> dict:
-        return {k: getattr(self, k) for k in self.__dataclass_fields__}
 
 
-@dataclass(frozen=True, eq=False)
-class Trajectory:
-    """Abundances over time, backed by an xarray Dataset.
-
-    Attributes
-    ----------
-    data : xarray.Dataset
-        Variables ``prey`` and ``predator`` (individuals), dims ``("time", "patch")`` (and
-        ``replicate`` last when there are several); coordinate ``patch`` holds the ids.
-    stats : SolverStats
-        Solver statistics.
-    """
-
-    data: xr.Dataset
-    stats: SolverStats
-
-    @property
-    def time(self) -> np.ndarray:
-        return self.data["time"].values
-
-    @property
-    def ids(self) -> np.ndarray:
-        return self.data["patch"].values
-
-    def __getitem__(self, species: str) -> xr.DataArray:
-        return self.data[species]
 
 
-def census_times(duration: float, census_interval: float) -> np.ndarray:
-    """Census times ``0, Δ, 2Δ, ...`` up to and including ``duration``."""
-    k = int(np.floor(duration / census_interval + 1e-9))
-    times = np.arange(k + 1) * census_interval
-    if duration - times[-1] > 1e-9 * max(1.0, duration):
-        times = np.append(times, duration)
-    return times
 
 
 def choose_method(method: str) -> str:
@@ -368,7 +307,7 @@ def simulate(
     ----------
     system : CoupledSystem
     y0 : ndarray, shape (2 n_patches,)
-        Initial abundances, laid out as in :mod:`trophoscape.system`.
+        Initial abundances, laid out as in :mod:`trophoscape.model.system`.
     duration, census_interval : float
         In the scenario's time unit. The census interval only says when the state is
         recorded.
@@ -386,7 +325,7 @@ def simulate(
     progress : bool
         Show a progress bar (it appears only on runs longer than two seconds).
     events : sequence, optional
-        Shocks and other sudden changes (:mod:`trophoscape.shocks`): objects with a
+        Shocks and other sudden changes (:mod:`trophoscape.model.shocks`): objects with a
         ``time`` and ``apply(system, y) -> (system, y)``. Integration stops at each event
         time, the event is applied, and integration restarts with the system it returns.
         A census at the same time records the state before the event. Events at or after
@@ -395,23 +334,23 @@ def simulate(
         Environmental noise held over the steps of its own clock: an object with a ``step``
         (time units) and ``start()`` returning a stateful run with ``interval(system,
         redraw=True) -> system`` (the system to integrate over the next noise step, with
-        noisy rates); see :class:`trophoscape.noise.NoiseModel`. The solver stops at every
+        noisy rates); see :class:`trophoscape.integrate.noise.NoiseModel`. The solver stops at every
         noise step (``k * step`` from time 0) and restarts with the step size it had
         reached; census times do not stop it. Without noise (None) nothing changes.
         With demographic noise the run is event-based instead (whole individuals,
-        :func:`trophoscape.events.simulate_events`); ``method``, ``rtol`` and ``atol`` do not
+        :func:`trophoscape.integrate.events.simulate_events`); ``method``, ``rtol`` and ``atol`` do not
         apply.
     dtype : numpy dtype
         Storage type of the recorded census states. The state is always integrated in
         float64; ``numpy.float32`` halves the memory of the time series (as written to
-        ``timeseries.nc``), which is what :func:`trophoscape.study.run_study` uses. Each
+        ``timeseries.nc``), which is what :func:`trophoscape.workflows.study.run_study` uses. Each
         species' series is one contiguous ``(time, patch)`` block, so it is written to a
         file without another copy.
     sink : callable, optional
         ``sink(start, stop, record)``, called as the run goes each time ``sink_rows`` more
         census rows are recorded (and once for the last rows), with ``record`` the
         ``(species, time, patch)`` array in the user's patch order, rows ``start:stop`` new
-        (:class:`trophoscape.outputs.SeriesWriter` writes them to NetCDF). Event-based
+        (:class:`trophoscape.io.series.SeriesWriter` writes them to NetCDF). Event-based
         (demographic) runs do not call it.
     sink_rows : int
         Census rows per call of ``sink``.
@@ -426,7 +365,7 @@ def simulate(
         When the solver fails; the message gives the time reached and what to try.
     """
     if noise is not None and getattr(noise, "demographic", False):
-        # whole individuals and random events: no ODE (trophoscape.events.simulate_events)
+        # whole individuals and random events: no ODE (trophoscape.integrate.events.simulate_events)
         from .events import simulate_events
 
         traj = simulate_events(system, y0, duration=duration, census_interval=census_interval,

@@ -74,7 +74,7 @@ def acts_on(shock) -> str | None:
 
     Parameters
     ----------
-    shock : trophoscape.shocks.Shock
+    shock : trophoscape.model.shocks.Shock
     """
     species = getattr(shock, "species", None)
     return species if species is not None else _KIND_SPECIES.get(shock.kind)
@@ -86,7 +86,7 @@ def followed_species(shocks) -> str:
 
     Parameters
     ----------
-    shocks : sequence of trophoscape.shocks.Shock
+    shocks : sequence of trophoscape.model.shocks.Shock
     """
     shocks = list(shocks)
     return "prey" if shocks and all(acts_on(s) == "prey" for s in shocks) else "predator"
@@ -260,7 +260,7 @@ def network_distance_km(network, origins) -> np.ndarray:
 
     Parameters
     ----------
-    network : trophoscape.network.Network
+    network : trophoscape.model.network.Network
     origins : ndarray of bool, shape (n_patches,), or of int positions
 
     Returns
@@ -440,7 +440,7 @@ def _noise(study, part: int):
     the run's seed (``SeedSequence(seed).spawn(2)``), so the baseline and the shocked run
     share one noise path (common random numbers: they differ by the shocks alone), and the
     noise after burn-in starts from the process's stationary law."""
-    from ..study import noise_model, run_seeds
+    from .study import noise_model, run_seeds
 
     seed = run_seeds(study.scenario)[0]
     child = np.random.SeedSequence(seed).spawn(2)[part]
@@ -448,7 +448,8 @@ def _noise(study, part: int):
 
 
 def _simulate(study, y0, duration, *, events=(), progress=False, offset=0.0, part=1):
-    from ..simulate import Trajectory, simulate
+    from ..integrate.trajectory import Trajectory
+    from ..integrate.ode import simulate
 
     sc = study.scenario
     traj = simulate(study.system, y0, duration=duration,
@@ -514,7 +515,7 @@ def _require_species(study, rule, baseline, shock_time, *, by_default: bool) -> 
 
 def _join(first, second):
     """One trajectory from a burn-in run and its continuation (which repeats its last time)."""
-    from ..simulate import SolverStats, Trajectory
+    from ..integrate.trajectory import SolverStats, Trajectory
 
     if first is None:
         return second
@@ -535,7 +536,7 @@ def run_spread(study, *, rule: CollapseRule | None = None, progress: bool = Fals
 
     Parameters
     ----------
-    study : trophoscape.study.Study
+    study : trophoscape.workflows.study.Study
         With at least one shock, every shock at or after ``run.burn_in``.
     rule : CollapseRule, optional
         Default: the scenario's ``[spread]`` section. A species of ``"auto"`` is resolved
@@ -548,7 +549,7 @@ def run_spread(study, *, rule: CollapseRule | None = None, progress: bool = Fals
         No shock, a shock before the end of burn-in, or the followed species absent from
         every patch of the baseline at the shock time.
     """
-    from ..shocks import ShockContext, shock_events, shocked_patches
+    from ..model.shocks import ShockContext, shock_events, shocked_patches
 
     sc = study.scenario
     given = rule or CollapseRule.from_scenario(sc)
@@ -616,7 +617,7 @@ def _prepare(key, payload):
     if key in _SCAN_CACHE:
         return _SCAN_CACHE[key]
     from ..scenario import parse_scenario
-    from ..study import build_study
+    from .study import build_study
 
     raw, path, base_dir, text = payload
     study = build_study(parse_scenario(raw, path=path, base_dir=base_dir, text=text))
@@ -645,7 +646,7 @@ def _retarget(tables, origin_id):
 
 def _scan_one(task):
     """One origin of a scan (a module-level function, so a process pool can run it)."""
-    from ..shocks import ShockContext, build_shocks, shock_events
+    from ..model.shocks import ShockContext, build_shocks, shock_events
 
     key, payload, origin, rule, tables = task
     study, y_burn, baseline = _prepare(key, payload)
@@ -694,7 +695,7 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
         study's shocks, as in :func:`run_spread`.
     workers : int, optional
         Local processes (default all cores; 1 runs here); see
-        :func:`trophoscape.parallel.run_tasks`.
+        :func:`trophoscape.workflows.tasks.run_tasks`.
 
     Raises
     ------
@@ -710,7 +711,7 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
         ``origin_collapses`` (bool), ``front_speed_km_per_time``, ``status`` ("ok" or the
         error text of a failed run).
     """
-    from ..parallel import run_tasks
+    from .tasks import run_tasks
 
     sc = study.scenario
     given = rule or CollapseRule.from_scenario(sc)

@@ -1,4 +1,4 @@
-"""The ``trophoscape sweep`` command: a thin shell over :func:`trophoscape.sweep.sweep`."""
+"""The ``trophoscape sweep`` command: a thin shell over :func:`trophoscape.workflows.sweep.sweep`."""
 
 from __future__ import annotations
 
@@ -37,7 +37,7 @@ def _positive_int(text: str) -> int:
 
 def add_parser(subparsers) -> argparse.ArgumentParser:
     """Register ``sweep`` with the command line's subparsers."""
-    from .cli import out_options
+    from .program import out_options
 
     p = subparsers.add_parser(
         "sweep", help="run a scenario over a grid or table of parameter values",
@@ -69,10 +69,11 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 
 
 def handle(args) -> int:
-    """Run the sweep; return the exit code (InputError / RunError go up to ``cli.main``)."""
-    from .errors import InputError, Terminated, clear_stop
-    from .outputs import written_count, written_since
-    from .sweep import LEDGER_NAME, TABLE_NAME, sweep
+    """Run the sweep; return the exit code (InputError / RunError go up to ``cli.program.main``)."""
+    from ..errors import InputError, Terminated, clear_stop
+    from ..io.folder import written_count, written_since
+    from ..report.sweep import sweep
+    from ..workflows.sweep import LEDGER_NAME, TABLE_NAME
 
     if not args.vary and args.table is None:
         raise InputError("nothing to vary: give --vary KEY=VALUES or --table FILE.csv",

@@ -38,7 +38,7 @@ from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Callable, Iterable
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = ["run_tasks", "default_workers"]
 

@@ -3,16 +3,15 @@
 from __future__ import annotations
 
 import os
-import tempfile
 from pathlib import Path
 
 import pandas as pd
 
-from .errors import InputError
-from .landscape import read_attributes
+from ..errors import InputError
+from ..io.folder import write_atomic
+from ..model.landscape import read_attributes
 
-__all__ = ["guess_id_field", "scenario_template", "write_template", "find_patch_file",
-           "add_parser"]
+__all__ = ["guess_id_field", "scenario_template", "write_template", "find_patch_file"]
 
 PATCH_SUFFIXES = (".geojson", ".json", ".gpkg", ".shp")
 
@@ -157,31 +156,8 @@ def write_template(folder, *, patches=None, name="scenario.toml", force=False) -
     if target.exists() and not force:
         raise InputError("already exists; use --force to replace it", file=target)
     text = scenario_template(patch_file.resolve(), table, relative_to=folder.resolve())
-    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", dir=folder)
-    with os.fdopen(fd, "w", encoding="utf-8") as fh:
-        fh.write(text)
-    os.replace(tmp, target)
-    return target
+    return write_atomic(target, text)
 
 
-def _handler(args) -> int:
-    target = write_template(args.folder, patches=args.patches, name=args.name,
-                            force=args.force)
-    print(f"wrote {target}; check it with: trophoscape check {target}")
-    return 0
 
 
-def add_parser(sub) -> None:
-    import argparse
-
-    p = sub.add_parser("init", help="write a commented scenario for your own patch file",
-                       description="Write a commented scenario template next to a patch "
-                                   "file, with the id field guessed and the attributes listed.",
-                       epilog="example:\n  trophoscape init my-valley/\n"
-                              "  trophoscape check my-valley/scenario.toml",
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("folder", type=Path, help="folder holding the patch file")
-    p.add_argument("--patches", type=Path, help="the patch file, if the folder has several")
-    p.add_argument("--name", default="scenario.toml", help="file name of the scenario")
-    p.add_argument("--force", action="store_true", help="replace an existing scenario")
-    p.set_defaults(handler=_handler)

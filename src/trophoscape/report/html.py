@@ -22,7 +22,7 @@ from urllib.parse import quote
 
 import numpy as np
 
-from .system import SPECIES
+from ..model.system import SPECIES
 
 __all__ = ["write_figures_and_report", "write_report", "write_comparison_report",
            "add_section", "Html", "table_html", "CAUTION"]
@@ -91,7 +91,7 @@ def _pick_panel_patches(result, k=6):
 
 def write_figures_and_report(folder, result, gdf, links, summary) -> None:
     """Draw the maps and charts into ``folder/maps`` and write ``folder/report.html``."""
-    from . import plot
+    from . import figures as plot
 
     folder = Path(folder)
     maps = folder / "maps"
@@ -160,9 +160,9 @@ def write_report(folder, result) -> Path:
 
     For commands whose folder is about something else but whose report opens with the
     network as it is (``corridors``): the same figures and page as :func:`write_figures_and_report`
-    called by :func:`trophoscape.outputs.write_run`.
+    called by :func:`trophoscape.report.run.write_run`.
     """
-    from .outputs import patches_frame, provenance
+    from ..io.tables import patches_frame, provenance
 
     folder = Path(folder)
     gdf = patches_frame(result)
@@ -413,13 +413,13 @@ def write_comparison_report(folder, results, table, maps, *, names=None, runs=No
     results : sequence of RunResult
         The first is the reference.
     table : pandas.DataFrame
-        :func:`trophoscape.analysis.planning.compare_results` of ``results``.
+        :func:`trophoscape.workflows.planning.compare_results` of ``results``.
     maps : sequence of (column, other name, png path)
         Difference maps, other − reference.
     runs : sequence of str, optional
         Each scenario's own folder, relative to ``folder`` (linked when it has a report).
     """
-    from . import __version__
+    from .. import __version__
     import datetime as _dt
 
     folder = Path(folder)

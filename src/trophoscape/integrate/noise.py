@@ -1,10 +1,10 @@
 """Environmental noise, and replicates stacked into one system.
 
 With environmental noise alone a run stays a deterministic ODE between noise steps
-(:mod:`trophoscape.simulate`): the noise is held over each step of its own clock (``step``,
+(:mod:`trophoscape.integrate.ode`): the noise is held over each step of its own clock (``step``,
 in time units from ``t = 0``, never the census interval), so the same scipy solvers serve
 deterministic and noisy runs. Demographic noise (whole individuals, random events) is in
-:mod:`trophoscape.events`.
+:mod:`trophoscape.integrate.events`.
 
 Environmental noise
     A continuous-time process added to the per-capita rates of each patch: the prey's
@@ -68,7 +68,7 @@ Environmental noise
     same law from ``patches`` normals per step (O(patches²) per step, below O(patches × D)).
 
 Demographic noise
-    Event-based runs (whole individuals): see :mod:`trophoscape.events`.
+    Event-based runs (whole individuals): see :mod:`trophoscape.integrate.events`.
 
 Replicates
     A :class:`NoiseModel` holds one seed per replicate; replicate ``r`` draws every number
@@ -86,13 +86,12 @@ import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.sparse as sp
 
-from .dynamics import LocalModel
+from ..model.dynamics import LocalModel
 
 __all__ = ["KERNELS", "DEFAULT_RANK", "DEFAULT_STEP_SHARE", "NoiseModel", "NoiseRun",
            "spectral_frequencies", "fourier_features", "kernel_correlation", "ou_step",
-           "auto_step", "stack_system"]
+           "auto_step", "replicate_seeds"]
 
 #: Spatial correlation kernels of environmental noise.
 KERNELS = ("exponential", "gaussian")
@@ -236,7 +235,7 @@ class NoiseModel:
     step : float
         ``Δ``, the noise step in time units: the noise is held over ``[kΔ, (k+1)Δ)``.
     demographic : bool
-        Births, deaths and moves as random events (:mod:`trophoscape.events`).
+        Births, deaths and moves as random events (:mod:`trophoscape.integrate.events`).
     prey_movement, predator_movement : sparse array (n_patches, n_patches), optional
         One replicate's movement operators; needed for demographic noise in dispersal.
     rank : int
@@ -293,7 +292,7 @@ class NoiseModel:
 
 
 class NoiseRun:
-    """The noise of one run of :func:`trophoscape.simulate.simulate`: one call of
+    """The noise of one run of :func:`trophoscape.integrate.ode.simulate`: one call of
     :meth:`interval` per noise step, in order.
 
     The system it perturbs holds ``n_replicates`` copies of the network one after another
@@ -396,43 +395,20 @@ class NoiseRun:
         return system.with_model(new)
 
 
-# --------------------------------------------------------------------------- stacking
-def stack_system(system, replicates: int):
-    """``replicates`` copies of a system as one block-diagonal system.
 
-    Patch ``i`` of copy ``r`` sits at position ``r * n + i`` (so the state is
-    ``[N(copy 0), N(copy 1), ..., P(copy 0), P(copy 1), ...]``). Built through
-    :class:`~trophoscape.system.CoupledSystem`'s constructor: parameters and areas tiled,
-    movement operators ``scipy.sparse.block_diag``.
+
+
+
+
+
+
+
+def replicate_seeds(seed: int, replicates: int) -> list[int]:
+    """Seeds of the replicates: ``SeedSequence(seed).spawn(replicates)``, 63-bit integers.
+
+    63 bits so that a seed fits a TOML integer and an SQLite INTEGER (both signed 64-bit).
     """
-    from .system import CoupledSystem
+    import numpy as np
 
-    if replicates == 1:
-        return system
-    model = system.model
-    params = {k: np.tile(np.asarray(v), replicates) for k, v in model.params.items()}
-    tiled = LocalModel(growth=model.growth, response=model.response, params=params)
-    return CoupledSystem(
-        model=tiled, area_km2=np.tile(system.area_km2, replicates),
-        prey_movement=sp.csr_array(sp.block_diag([system.prey_movement] * replicates,
-                                                 format="csr")),
-        predator_movement=sp.csr_array(sp.block_diag([system.predator_movement] * replicates,
-                                                     format="csr")),
-        kernel=system.kernel)
-
-
-def unstack_series(series: np.ndarray, replicates: int) -> np.ndarray:
-    """Series of a stacked system, ``(..., R n)`` over its patches, as ``(..., n, R)``.
-
-    A view where numpy can make one (the inverse of the layout of :func:`stack_system`).
-    """
-    return series.reshape(*series.shape[:-1], replicates, -1).swapaxes(-1, -2)
-
-
-def stack_state(y: np.ndarray, replicates: int) -> np.ndarray:
-    """A state of one copy, shape (2 n,), repeated for the stacked system, shape (2 R n,)."""
-    n = y.size // 2
-    return np.concatenate([np.tile(y[:n], replicates), np.tile(y[n:], replicates)])
-
-
-__all__ += ["stack_state"]
+    children = np.random.SeedSequence(int(seed)).spawn(int(replicates))
+    return [int(c.generate_state(1, dtype=np.uint64)[0] >> np.uint64(1)) for c in children]

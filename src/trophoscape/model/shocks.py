@@ -3,13 +3,13 @@
 A shock (predator removal, prey crash, habitat loss, patch loss, mortality pulse, harvest,
 link cut) is a small frozen object holding *resolved* patch positions. It turns into one or
 more :class:`events <StateScale>`; each event has a ``time`` and an
-``apply(system, y) -> (system, y)`` method, which :func:`trophoscape.simulate.simulate`
+``apply(system, y) -> (system, y)`` method, which :func:`trophoscape.integrate.ode.simulate`
 calls at that time before integrating on with the returned system. Events only rebuild what
-they change (:meth:`~trophoscape.system.CoupledSystem.with_model` for a new
-:class:`~trophoscape.dynamics.LocalModel`, ``dataclasses.replace`` of the system for new
+they change (:meth:`~trophoscape.model.system.CoupledSystem.with_model` for a new
+:class:`~trophoscape.model.dynamics.LocalModel`, ``dataclasses.replace`` of the system for new
 movement operators), so applying one is cheap.
 
-Shock kinds are a table, ``SHOCK_KINDS``, like the growth forms of :mod:`trophoscape.dynamics`.
+Shock kinds are a table, ``SHOCK_KINDS``, like the growth forms of :mod:`trophoscape.model.dynamics`.
 Each kind lists the scenario keys it takes (``takes``) and those it needs (``needs``);
 :mod:`trophoscape.scenario` reads that table to validate ``[[shock]]`` tables, and
 :func:`build_shocks` resolves their patch ids against the landscape.
@@ -44,7 +44,7 @@ import numpy as np
 import pandas as pd
 
 from .dynamics import LocalModel
-from .errors import InputError
+from ..errors import InputError
 from .system import SPECIES
 
 __all__ = [
@@ -74,11 +74,11 @@ class ShockContext:
 
     Parameters
     ----------
-    network : trophoscape.network.Network
+    network : trophoscape.model.network.Network
         The network the system's movement operators were built from.
     dispersal : dict
         Per species (``"prey"``, ``"predator"``): ``{"emigration_rate": ndarray (n,),
-        "scale_km": ndarray (n,)}``, as on :class:`trophoscape.study.Study`.
+        "scale_km": ndarray (n,)}``, as on :class:`trophoscape.workflows.study.Study`.
     survival_per_km : float
         Share of dispersers surviving each km (arcs without a fixed survival).
     model : LocalModel
@@ -342,7 +342,7 @@ class Harvest(_ParameterShock):
     """A constant per-capita removal ``rate`` of one species from ``at`` on.
 
     For the predator it adds to the mortality rate; for the prey it is the ``prey_harvest``
-    term of :meth:`trophoscape.dynamics.LocalModel.rates` (``- q n``). With ``duration`` it
+    term of :meth:`trophoscape.model.dynamics.LocalModel.rates` (``- q n``). With ``duration`` it
     stops after that time.
     """
 

@@ -13,22 +13,28 @@ import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
-from .analysis.capacity import capacity_analysis
-from .analysis.persistence import occupancy_curve, persistence_table, regional_persistence
-from .analysis.stability import stability_analysis
-from .analysis.synchrony import synchrony_analysis
-from .dynamics import PARAMETER_KEYS, LocalModel, interior_equilibrium
-from .errors import InputError, TrophoscapeWarning, allowed_range
-from .landscape import Landscape, read_patches
-from .network import Network, arc_weights, build_network, movement_operator
-from .scenario import (INPUT_FILES, LARGEST, FieldRef, Scenario, bounds_of,
-                       check_regular_file, read_scenario)
-from .simulate import Trajectory, simulate
-from .system import SPECIES, CoupledSystem, pack
+from ..analysis.capacity import capacity_analysis
+from ..analysis.persistence import (occupancy_curve, persistence_table,
+                                              regional_persistence)
+from ..analysis.stability import stability_analysis
+from ..analysis.synchrony import synchrony_analysis
+from ..model.dynamics import PARAMETER_KEYS, LocalModel, interior_equilibrium
+from ..errors import InputError, TrophoscapeWarning, allowed_range
+from ..model.landscape import Landscape, read_patches
+from ..model.network import Network, arc_weights, build_network, movement_operator
+from ..scenario import (INPUT_FILES, LARGEST, FieldRef, Scenario, bounds_of,
+                                  check_regular_file, read_scenario)
+from ..integrate.trajectory import Trajectory
+from ..integrate.ode import simulate
+from ..model.system import SPECIES, CoupledSystem, pack
+
+if TYPE_CHECKING:
+    from ..integrate.noise import NoiseModel
 
 __all__ = ["Study", "RunResult", "load_study", "build_study", "run_study", "analyse",
            "run_seeds", "noise_model", "simulate_replicates"]
@@ -45,7 +51,7 @@ class Study:
     system: CoupledSystem
     initial_state: np.ndarray
     dispersal: dict = field(repr=False)  # per species: emigration_rate, scale_km arrays
-    shocks: tuple = ()  # trophoscape.shocks objects from the [[shock]] tables
+    shocks: tuple = ()  # trophoscape.model.shocks objects from the [[shock]] tables
 
     @property
     def ids(self) -> np.ndarray:
@@ -187,7 +193,7 @@ def _build_study(scenario: Scenario) -> Study:
                            prey_movement=operators["prey"],
                            predator_movement=operators["predator"])
     initial = _initial_state(sc, landscape, model)
-    from .shocks import build_shocks
+    from ..model.shocks import build_shocks
 
     shocks = build_shocks(sc["shock"], ids=landscape.ids, network=network, file=sc.path)
     check_run_size(sc, n, model.params, emigration={s: d["emigration_rate"]
@@ -252,7 +258,7 @@ def check_run_size(sc: Scenario, n_patches: int, params=None, emigration=None) -
             "run fewer replicates", file=sc.path, field=field)
     if params is not None and (sc["noise.environmental_sd"] > 0
                                or sc["noise.predator_mortality_sd"] > 0):
-        from .noise import auto_step
+        from ..integrate.noise import auto_step
 
         step = sc["noise.noise_step"]
         step = auto_step(params) if step == "auto" else float(step)
@@ -262,7 +268,7 @@ def check_run_size(sc: Scenario, n_patches: int, params=None, emigration=None) -
                 f"the run would take {count:,.0f} noise steps of {step:g} time units (at most "
                 f"{MAX_NOISE_STEPS:,}; each restarts the solver); give a longer noise_step",
                 file=sc.path, field="noise.noise_step")
-    from .simulate import IMPLICIT, choose_method
+    from ..integrate.ode import IMPLICIT, choose_method
 
     if params is not None and choose_method(sc["run.method"]) not in IMPLICIT + ("LSODA",):
         rates = {"prey.growth_rate": params.get("growth_rate", 0.0),
@@ -314,22 +320,22 @@ def run_seeds(scenario: Scenario) -> list[int]:
     """The seed of every replicate.
 
     One replicate uses ``run.seed`` itself; ``R > 1`` replicates use
-    ``SeedSequence(run.seed).spawn(R)`` (:func:`trophoscape.sweep.replicate_seeds`), so
+    ``SeedSequence(run.seed).spawn(R)`` (:func:`trophoscape.integrate.noise.replicate_seeds`), so
     replicate ``r`` draws the same environmental noise as a single run whose ``run.seed`` is
     that replicate's seed (as a sweep runs it).
     """
     reps = scenario["run.replicates"]
     if reps == 1:
         return [int(scenario["run.seed"])]
-    from .sweep import replicate_seeds
+    from ..integrate.noise import replicate_seeds
 
     return replicate_seeds(scenario["run.seed"], reps)
 
 
 def noise_model(study: Study, seeds) -> "NoiseModel | None":
-    """The study's ``[noise]`` settings as a :class:`~trophoscape.noise.NoiseModel`, or None
+    """The study's ``[noise]`` settings as a :class:`~trophoscape.integrate.noise.NoiseModel`, or None
     when the scenario has no noise."""
-    from .noise import NoiseModel, auto_step
+    from ..integrate.noise import NoiseModel, auto_step
 
     sc = study.scenario
     corr = sc["noise.correlation_km"]
@@ -353,7 +359,7 @@ def _stacked_events(events, n: int, reps: int):
     """Events of one copy, for the stacked system of ``reps`` copies; None if one cannot be."""
     import dataclasses
 
-    from .shocks import ParameterShift, StateScale
+    from ..model.shocks import ParameterShift, StateScale
 
     offsets = (np.arange(reps) * n)[:, None]
     out = []
@@ -383,7 +389,7 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
     stacked : bool or None
         Integrate all replicates as one block-diagonal system (solver overhead paid once) or
         one by one. None: stacked unless a shock rewires the network.
-    writer : trophoscape.outputs.SeriesWriter, optional
+    writer : trophoscape.io.series.SeriesWriter, optional
         Stacked, the census rows are written to it as the run goes; one by one, the caller
         writes them at the end (``writer.finish(trajectory)``).
 
@@ -395,7 +401,7 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
     its own step size. The noise of each replicate is the same either way; the integration
     errors differ at the level of the tolerances.
     """
-    from .noise import stack_state, stack_system, unstack_series
+    from ..integrate.replicates import stack_state, stack_system, unstack_series
 
     sc = study.scenario
     reps = len(seeds)
@@ -441,7 +447,7 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
 
 
 def _sum_stats(all_stats):
-    from .simulate import SolverStats
+    from ..integrate.trajectory import SolverStats
 
     first = all_stats[0]
     worst = max(all_stats, key=lambda st: abs(st.status))
@@ -476,8 +482,8 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
     :func:`simulate_replicates`).
 
     ``series_to``: a path for ``timeseries.nc``, written as the run goes, in blocks of
-    ``outputs.SERIES_BLOCK_ROWS`` census rows (under a temporary name, renamed when the last
-    row is in, deleted if the run fails). :func:`trophoscape.outputs.write_run` then takes
+    ``SERIES_BLOCK_ROWS`` census rows (under a temporary name, renamed when the last row is
+    in, deleted if the run fails). :func:`trophoscape.report.run.write_run` then takes
     that file instead of writing the series again. Replicates run one by one and event-based
     (demographic) runs write theirs when the integration ends.
 
@@ -491,15 +497,15 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
     sc = study.scenario
     events = ()
     if study.shocks:
-        from .shocks import ShockContext, shock_events
+        from ..model.shocks import ShockContext, shock_events
 
         events = shock_events(study.shocks, ShockContext.from_study(study))
     seeds = run_seeds(sc)
     noise = noise_model(study, seeds)
     writer = None
     if series_to is not None:
-        from .outputs import SeriesWriter
-        from .simulate import census_times
+        from ..integrate.trajectory import census_times
+        from ..io.series import SeriesWriter
 
         writer = SeriesWriter(series_to, study=study,
                               times=census_times(sc["run.duration"], sc["run.census_interval"]),
@@ -553,9 +559,9 @@ def analyse(study: Study, traj: Trajectory):
     """
     from scipy.sparse.linalg import ArpackNoConvergence
 
-    from .analysis import persistence as persistence_module
-    from .analysis import synchrony as synchrony_module
-    from .analysis.capacity import capacity_columns
+    from ..analysis import persistence as persistence_module
+    from ..analysis import synchrony as synchrony_module
+    from ..analysis.capacity import capacity_columns
 
     sc = study.scenario
     burn_in = sc["run.burn_in"]

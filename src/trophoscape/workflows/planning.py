@@ -26,7 +26,7 @@ regional persistence (the share of habitat area where the predator is still pres
 the end of the run), plus a tenth of the relative gain in its metapopulation capacity to
 break ties.
 
-Runs go to :func:`trophoscape.parallel.run_tasks`. A task is small and picklable: the
+Runs go to :func:`trophoscape.workflows.tasks.run_tasks`. A task is small and picklable: the
 scenario (its values, not the built study, which holds read-only views and a mapping
 proxy that do not pickle), the candidate arrays and the variant; each worker process
 builds the baseline study once and keeps it for the tasks that follow.
@@ -48,9 +48,10 @@ import pandas as pd
 import shapely
 
 from ..errors import InputError, RunError
-from ..network import KERNELS, Network, movement_operator, snap_line_ends, with_links, without
-from ..system import SPECIES, CoupledSystem
-from .capacity import metapopulation_capacity
+from ..model.network import (KERNELS, Network, movement_operator, snap_line_ends,
+                                       with_links, without)
+from ..model.system import SPECIES, CoupledSystem
+from ..analysis.capacity import metapopulation_capacity
 
 __all__ = [
     "OBJECTIVES",
@@ -150,7 +151,7 @@ def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None) -> Can
     Parameters
     ----------
     path : str or path
-        See :func:`trophoscape.landscape.read_candidates` (LineStrings or thin Polygons,
+        See :func:`trophoscape.model.landscape.read_candidates` (LineStrings or thin Polygons,
         ``cost`` required, ``corridor_id``, ``quality``, ``survival`` optional).
     landscape : Landscape
     snap_km : float
@@ -164,18 +165,18 @@ def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None) -> Can
     Raises
     ------
     InputError
-        Everything :func:`trophoscape.landscape.read_candidates` raises, and a candidate
+        Everything :func:`trophoscape.model.landscape.read_candidates` raises, and a candidate
         that does not join two different patches.
     """
-    from ..landscape import read_candidates as read_file
+    from ..model.landscape import read_candidates as read_file
 
     frame = read_file(path, crs=landscape.crs, layer=layer)
     return snap_candidates(frame, landscape, snap_km=snap_km, path=path)
 
 
 def snap_candidates(frame, landscape, *, snap_km: float = 0.1, path=None) -> Candidates:
-    """Snap candidate lines (a frame as :func:`trophoscape.landscape.read_candidates` returns)
-    to patches, with the rules corridors follow in :func:`trophoscape.network.build_network`.
+    """Snap candidate lines (a frame as :func:`trophoscape.model.landscape.read_candidates` returns)
+    to patches, with the rules corridors follow in :func:`trophoscape.model.network.build_network`.
 
     Each end must lie within ``snap_km`` of a patch (an end on overlapping patches goes to
     the first in patch order), and the two ends at different patches.
@@ -409,7 +410,7 @@ class StudySource:
 
     def build(self):
         from ..scenario import parse_scenario
-        from ..study import build_study
+        from .study import build_study
 
         sc = parse_scenario(self.raw, path=self.path, base_dir=self.base_dir, text=self.text)
         return build_study(_quick(sc))
@@ -433,7 +434,7 @@ class _Task:
 
 def _evaluate(task: _Task) -> dict:
     """One run of a variant (module level: the process pool pickles it by name)."""
-    from ..study import run_study
+    from .study import run_study
 
     study = _STUDIES.get(task.source.key)
     if study is None:
@@ -558,7 +559,7 @@ class Planner:
 
     def evaluate(self, variants, *, desc: str = "runs") -> None:
         """Run every variant not run yet (in parallel), recording each as it finishes."""
-        from ..parallel import run_tasks
+        from .tasks import run_tasks
 
         todo = [v for v in dict.fromkeys(variants) if v not in self.results]
         if not todo:
@@ -930,3 +931,122 @@ def patch_differences(reference, other, columns=("predator_occupancy", "prey_occ
         out[f"{c}_other"] = vb
         out[f"{c}_difference"] = vb - va
     return out
+
+
+def read_link_list(path, study) -> list[tuple[int, int]]:
+    """Links to test, from a CSV with columns ``source`` and ``target`` (patch ids).
+
+    Returns
+    -------
+    list of (int, int)
+        Patch positions; every pair must be linked in the scenario's network.
+
+    Raises
+    ------
+    InputError
+        Missing file or columns, an unknown patch id, a pair that is not linked.
+    """
+    path = Path(path)
+    expected = "a CSV with columns source,target (patch ids of linked patches)"
+    if not path.is_file():
+        raise InputError(f"no such file; check the path, or give 'all' or 'none'; expected "
+                         f"{expected}", file=path)
+    try:
+        table = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True)
+    except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise InputError(f"cannot be read ({type(exc).__name__}); expected {expected}",
+                         file=path) from None
+    table.columns = [str(c).strip() for c in table.columns]
+    for column in ("source", "target"):
+        if column not in table.columns:
+            raise InputError(f"the table has no {column!r} column; add it: expected {expected}",
+                             file=path, field=column)
+    position = pd.Index(study.ids)
+    ends = []
+    for column in ("source", "target"):
+        found = position.get_indexer(table[column].str.strip().to_numpy())
+        if (found < 0).any():
+            r = int(np.flatnonzero(found < 0)[0])
+            raise InputError(f"no patch has id {table[column].iloc[r]!r}; use an id of the "
+                             "patch file",
+                             file=path, feature=r, field=column)
+        ends.append(found)
+
+    linked = {tuple(p) for p in _linked_pairs(study.network).tolist()}
+    pairs = []
+    for r, (a, b) in enumerate(zip(*ends)):
+        pair = (min(a, b), max(a, b))
+        if pair not in linked:
+            raise InputError(f"patches {table['source'].iloc[r]!r} and "
+                             f"{table['target'].iloc[r]!r} are not linked; list only links of "
+                             "the network (layer 'links' of a run's patches.gpkg)", file=path,
+                             feature=r, field="target")
+        pairs.append(pair)
+    return pairs
+
+
+def plan_corridors(study, candidates, *, budget, weights=None, links="all", patches=True,
+                   screen=None, exhaustive_limit=12, workers=None, progress=False, log=None,
+                   links_file=None):
+    """Every step of the ``corridors`` command, without writing files.
+
+    ``links_file``: the file ``links`` was read from (:func:`read_link_list`), an input the
+    output folder must not hold (kept in the plan as ``links_file``).
+
+    Returns
+    -------
+    dict
+        ``planner`` (the :class:`~trophoscape.workflows.planning.Planner`), ``table``
+        (ranked candidates), ``critical`` (remove-one table), ``greedy``, ``exhaustive``
+        (or None), ``best`` (the set reported as chosen), ``gap``, ``screened`` (positions
+        simulated, or None), ``budget``, ``timing``.
+    """
+
+    timing = {}
+    t = time.perf_counter()
+    planner = Planner(study, candidates, weights=weights, workers=workers, progress=progress,
+                      log=log)
+    timing["baseline_seconds"] = time.perf_counter() - t
+    pool = None
+    capacity_gain = None
+    if screen is not None and screen < candidates.n:
+        t = time.perf_counter()
+        pool = planner.screen(screen)
+        capacity_gain = planner.capacity_gains()
+        timing["screen_seconds"] = time.perf_counter() - t
+    t = time.perf_counter()
+    table = planner.add_one(pool)
+    timing["add_one_seconds"] = time.perf_counter() - t
+    if capacity_gain is not None:
+        table["screen_capacity_gain"] = capacity_gain
+    t = time.perf_counter()
+    greedy = planner.greedy(budget, pool)
+    timing["greedy_seconds"] = time.perf_counter() - t
+    simulated = candidates.n if pool is None else len(pool)
+    exhaustive = None
+    if 0 < simulated <= exhaustive_limit:
+        t = time.perf_counter()
+        exhaustive = planner.exhaustive(budget, pool, limit=exhaustive_limit)
+        timing["exhaustive_seconds"] = time.perf_counter() - t
+    best = exhaustive if exhaustive is not None else greedy
+    gap = None
+    if exhaustive is not None:
+        absolute = exhaustive["score"] - greedy["score"]
+        gap = {"absolute": absolute,
+               "relative": absolute / exhaustive["score"] if exhaustive["score"] > 0 else 0.0,
+               "same_set": sorted(greedy["chosen"]) == sorted(exhaustive["chosen"])}
+    ids = candidates.ids
+    table = rank_candidates(table, [ids[c] for c in best["chosen"]])
+    table["in_greedy_set"] = table.index.isin([str(ids[c]) for c in greedy["chosen"]])
+    t = time.perf_counter()
+    critical = planner.remove_one(links=links, patches=patches)
+    timing["remove_one_seconds"] = time.perf_counter() - t
+    timing["runs"] = planner.runs
+    timing["run_seconds"] = planner.run_seconds
+    return {"planner": planner, "table": table, "critical": critical, "greedy": greedy,
+            "exhaustive": exhaustive, "best": best, "gap": gap,
+            "screened": pool, "budget": float(budget), "timing": timing,
+            "links_file": None if links_file is None else Path(links_file)}
+
+
+PARTIAL = "corridors.partial.csv"

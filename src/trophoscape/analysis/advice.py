@@ -10,9 +10,9 @@ from __future__ import annotations
 import numpy as np
 import shapely
 
-from . import system as system_module
-from .dynamics import interior_equilibrium
-from .system import SPECIES
+from ..model import system as system_module
+from ..model.dynamics import interior_equilibrium
+from ..model.system import SPECIES
 
 __all__ = ["practical_warnings", "typical_gap_km"]
 

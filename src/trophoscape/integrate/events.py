@@ -2,7 +2,7 @@
 
 With ``demographic = True`` a run is no longer an ODE: abundances are whole individuals
 and change by random events (:func:`simulate_events`, which
-:func:`trophoscape.simulate.simulate` calls in this mode). Event channels, per patch
+:func:`trophoscape.integrate.ode.simulate` calls in this mode). Event channels, per patch
 unless said otherwise (propensities in individuals per time, from densities
 ``n = N/A``, ``p = P/A`` and scaled back by the area ``A``):
 
@@ -105,7 +105,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from .dynamics import LocalModel
+from ..model.dynamics import LocalModel
 
 __all__ = ["local_propensities"]
 
@@ -129,7 +129,7 @@ def _local_rates(model: LocalModel, q, n, p) -> tuple:
     parameters ``q`` shaped like ``n`` (or scalars)."""
     births, deaths = _growth_split(model.growth, n, q)
     eaten = model.functional_response.value(n, p, q) * p
-    # environmental noise adds to per-capita rates (trophoscape.noise), so a removal rate
+    # environmental noise adds to per-capita rates (trophoscape.integrate.noise), so a removal rate
     # can turn negative: its negative part is then a birth rate, and the expected change
     # is still the ODE's right-hand side
     harvest = q["prey_harvest"] * n if "prey_harvest" in q else np.zeros_like(n)
@@ -658,7 +658,7 @@ def event_channels(system, like=None) -> Channels:
     Returns
     -------
     Channels
-        ``S = 2 n`` species in the state layout of :mod:`trophoscape.system`; ``K = 8 n +
+        ``S = 2 n`` species in the state layout of :mod:`trophoscape.model.system`; ``K = 8 n +
         arcs(prey) + arcs(predator)`` channels: six local blocks of ``n`` (in the order of
         ``_LOCAL_ORDER``), then prey arcs, prey losses in transit, predator arcs and losses.
     """
@@ -731,7 +731,7 @@ def whole(y, rng) -> np.ndarray:
 
 def _replicate_system(system, r: int, n: int):
     """Copy ``r`` of a stacked system (:func:`stack_system`)."""
-    from .system import CoupledSystem
+    from ..model.system import CoupledSystem
 
     sl = slice(r * n, (r + 1) * n)
     model = system.model
@@ -748,7 +748,7 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
                     events=(), progress: bool = False):
     """An event-based run (demographic noise): whole individuals, tau-leaps and exact steps.
 
-    Parameters are those of :func:`trophoscape.simulate.simulate` (solver settings do not
+    Parameters are those of :func:`trophoscape.integrate.ode.simulate` (solver settings do not
     apply). ``noise`` is a :class:`NoiseModel` with ``demographic=True``; its environmental
     settings, if any, redraw the rates at every noise step as in ODE runs. A system stacked for
     ``R > 1`` replicates (:func:`stack_system`) is run copy by copy, replicate ``r`` with its
@@ -763,9 +763,9 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
     """
     import xarray as xr
 
-    from .errors import RunError
-    from .simulate import SolverStats, Trajectory, census_times
-    from .system import SPECIES
+    from ..errors import RunError
+    from .trajectory import SolverStats, Trajectory, census_times
+    from ..model.system import SPECIES
 
     reps = noise.n_replicates
     total = system.n_patches

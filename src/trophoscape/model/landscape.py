@@ -3,7 +3,7 @@
 A patch file (GeoJSON, GeoPackage or Shapefile) becomes a :class:`Landscape`: a validated
 GeoDataFrame in a metric CRS with one row per patch in the user's feature order, a string id
 per patch and its area in km² from an equal-area projection. This module is the only place
-that reads vector files; :mod:`trophoscape.network` calls :func:`read_corridors` and
+that reads vector files; :mod:`trophoscape.model.network` calls :func:`read_corridors` and
 :func:`read_links_table` from here.
 
 Every problem with a file raises :class:`~trophoscape.errors.InputError` naming the file, the
@@ -46,8 +46,8 @@ import pandas as pd
 import pyproj
 import shapely
 
-from .columns import computed_columns
-from .errors import InputError, TrophoscapeWarning, allowed_range
+from ..columns import computed_columns
+from ..errors import InputError, TrophoscapeWarning, allowed_range
 
 __all__ = [
     "Landscape",

@@ -1,18 +1,18 @@
 """Optional compiled kernel for the local terms of the right-hand side (numba).
 
-numpy evaluates the local terms of :func:`trophoscape.system._rhs` in about 16 passes over the
+numpy evaluates the local terms of :func:`trophoscape.model.system._rhs` in about 16 passes over the
 patches, each reading and writing whole arrays; this kernel does all of them in one pass
 (clip, densities, growth, predation, scaling back by the area), reading each parameter once.
 The sparse product stays scipy's (a compiled product was slower, benchmarks/README.md).
 
 It is used only where it pays (see ``system.COMPILED_MIN_PATCHES``) and only when numba is
 installed (``pip install "trophoscape[fast]"``); the numpy path is the reference and the
-fallback. The formulas below repeat those of :mod:`trophoscape.dynamics` operation for
+fallback. The formulas below repeat those of :mod:`trophoscape.model.dynamics` operation for
 operation, in the same order, so the two paths give the same numbers bit for bit
 (``tests/test_compiled.py`` checks every growth form and response). A growth form or
 response without a code here is simply evaluated by numpy.
 
-This module imports numba at import time; :mod:`trophoscape.system` imports it only when a
+This module imports numba at import time; :mod:`trophoscape.model.system` imports it only when a
 system takes the compiled path (``system._compiled_module``), never at ``import trophoscape``.
 """
 
@@ -92,7 +92,7 @@ def local_terms_function(model, area):
 
     Parameters
     ----------
-    model : trophoscape.dynamics.LocalModel
+    model : trophoscape.model.dynamics.LocalModel
         Parameters per patch (arrays of shape (n,) or scalars), in the order of ``area``.
     area : ndarray, shape (n,)
         Patch areas, km².

@@ -19,35 +19,24 @@ from pathlib import Path
 
 from importlib import import_module
 
-from .errors import (InputError, RunError, Terminated, TrophoscapeError, clear_stop, note_stop,
-                     raise_if_stopped)
+from ..errors import (InputError, RunError, Terminated, TrophoscapeError, clear_stop,
+                                note_stop, raise_if_stopped)
 
-__all__ = ["main", "demo_scenario_path"]
+__all__ = ["main", "entry"]
 
 #: Modules that add a command: each has ``add_parser(subparsers)``, which registers its
 #: parser with ``set_defaults(handler=fn)``; ``fn(args)`` returns the exit code.
-COMMAND_MODULES: tuple[str, ...] = ("template", "spread_cli", "planning_cli", "sweep_cli")
+COMMAND_MODULES: tuple[str, ...] = ("init", "spread", "corridors", "sweep")
 
 EPILOG_RUN = "example:\n  trophoscape run valley.toml --out results/valley-a"
 EPILOG_CHECK = "example:\n  trophoscape check valley.toml"
 EPILOG_DEMO = "example:\n  trophoscape demo --out demo-out"
 
 
-def demo_scenario_path() -> Path:
-    """The bundled demo scenario (installed with the package, or the source tree's data/)."""
-    from importlib.resources import files
-
-    installed = Path(str(files("trophoscape"))) / "_demo_data" / "demo.toml"
-    if installed.is_file():
-        return installed
-    source = Path(__file__).resolve().parents[2] / "data" / "demo.toml"
-    if source.is_file():
-        return source
-    raise RunError("the demo data are missing from this installation; reinstall trophoscape")
 
 
 def _parser() -> argparse.ArgumentParser:
-    from . import __version__
+    from .. import __version__
 
     p = argparse.ArgumentParser(
         prog="trophoscape",
@@ -77,7 +66,7 @@ def _parser() -> argparse.ArgumentParser:
                           epilog=EPILOG_DEMO, formatter_class=fmt)
     _output_options(demo)
     for module in COMMAND_MODULES:
-        import_module(f"trophoscape.{module}").add_parser(sub)
+        import_module(f"trophoscape.cli.{module}").add_parser(sub)
     return p
 
 
@@ -85,7 +74,7 @@ def out_options(p, help="output folder") -> None:
     """``--out`` and ``--force``, the same for every command that writes a folder.
 
     ``--out`` stays text here (an empty name must not become ".");
-    :func:`main` turns it into a path through :func:`trophoscape.outputs.out_argument`.
+    :func:`main` turns it into a path through :func:`trophoscape.io.folder.out_argument`.
     """
     p.add_argument("--out", required=True, metavar="OUT", help=help)
     p.add_argument("--force", action="store_true",
@@ -117,7 +106,7 @@ def _print_check(study) -> None:
           f"{len(net['isolated'])} isolated patch(es))")
     if land.repaired:
         print(f"repaired   {len(land.repaired)} geometry(ies): {', '.join(land.repaired[:10])}")
-    from .advice import practical_warnings
+    from ..analysis.advice import practical_warnings
 
     for advice in practical_warnings(study):
         print(f"note       {advice}")
@@ -235,13 +224,13 @@ def entry() -> None:
 
 def _written_count() -> int:
     """Output folders put in place so far (none when outputs was never imported)."""
-    outputs = sys.modules.get("trophoscape.outputs")
+    outputs = sys.modules.get("trophoscape.io.folder")
     return 0 if outputs is None else outputs.written_count()
 
 
 def _written_since(mark: int) -> list[str]:
     """Output folders put in place since :func:`_written_count` gave ``mark``."""
-    outputs = sys.modules.get("trophoscape.outputs")
+    outputs = sys.modules.get("trophoscape.io.folder")
     return [] if outputs is None else outputs.written_since(mark)
 
 
@@ -250,7 +239,7 @@ def _main(args) -> int:
     (a Ctrl-C or SIGTERM goes up to :func:`main`, which reports it)."""
     try:
         if getattr(args, "out", None) is not None:
-            from .outputs import out_argument
+            from ..io.folder import out_argument
 
             args.out = out_argument(args.out)
         code = _dispatch(args)
@@ -293,23 +282,18 @@ def _stopped(exc: KeyboardInterrupt, written: list) -> int:
 def _dispatch(args) -> int:
     if getattr(args, "handler", None) is not None:
         return int(args.handler(args) or 0)
-    from .outputs import input_files, staged_folder, write_run_files
-    from .study import load_study, run_study
+    from ..report.run import run_to_folder
+    from ..scenario import demo_scenario_path
+    from ..workflows.study import load_study
 
     if args.command == "check":
         _print_check(load_study(args.scenario))
         return 0
     scenario = demo_scenario_path() if args.command == "demo" else args.scenario
     study = load_study(scenario)
-    # the output folder is checked and staged before the run, which writes timeseries.nc
-    # into it as it goes (and before the network is printed, so a refused --out is the
-    # only thing said)
-    with staged_folder(args.out, force=args.force, inputs=input_files(study.scenario),
-                       command=args.command) as stage:
-        if not args.quiet:
-            _print_check(study)
-        result = run_study(study, progress=not args.quiet, series_to=stage / "timeseries.nc")
-        write_run_files(result, stage, maps=not args.no_maps, geojson=args.geojson)
+    result = run_to_folder(study, args.out, maps=not args.no_maps, geojson=args.geojson,
+                           force=args.force, progress=not args.quiet, command=args.command,
+                           on_accepted=None if args.quiet else _print_check)
     if not args.quiet:
         _print_summary(result, args.out)
     return 0

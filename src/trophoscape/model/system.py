@@ -198,7 +198,7 @@ def _int32(a):
 def _compiled_module():
     """The compiled-kernel module, or None when numba is not installed (or fails to load)."""
     try:
-        from . import _compiled
+        from . import compiled as _compiled
     except ImportError:
         return None
     return _compiled
@@ -213,7 +213,7 @@ def _numpy_local_terms(model, area):
     """``local(y, x) -> dy``: ``x = max(y, 0)`` in place, and a new array of the local terms,
     by numpy.
 
-    The reference evaluation; :func:`trophoscape._compiled.local_terms_function` is the same
+    The reference evaluation; :func:`trophoscape.model.compiled.local_terms_function` is the same
     in one compiled pass.
     """
     n = area.size
@@ -247,7 +247,7 @@ def _rhs(n, area, model, movement, compiled=False):
     """``rhs(t, y)`` for a state in the order of ``area`` / ``model`` / ``movement``.
 
     ``compiled=True`` evaluates the local terms with the compiled kernel
-    (:mod:`trophoscape._compiled`, same numbers bit for bit).
+    (:mod:`trophoscape.model.compiled`, same numbers bit for bit).
 
     Buffers for the clipped state and the densities are allocated once; each call still
     returns a fresh array, because scipy's Runge–Kutta solvers keep the returned derivative
@@ -280,7 +280,7 @@ class CoupledSystem:
     area_km2 : ndarray, shape (n_patches,)
         Patch areas.
     prey_movement, predator_movement : sparse array, shape (n_patches, n_patches)
-        Movement operators (``dx/dt = M x``) from :func:`trophoscape.network.movement_operator`.
+        Movement operators (``dx/dt = M x``) from :func:`trophoscape.model.network.movement_operator`.
     order : {"auto", "none", "rcm"} or ndarray of int, shape (n_patches,)
         Internal patch numbering. "auto" (default): on networks of at least
         ``ORDER_MIN_PATCHES`` patches, reverse Cuthill–McKee on the links
@@ -302,7 +302,7 @@ class CoupledSystem:
     ``rhs`` evaluates the local terms on ``max(y, 0)``: deep predator–prey cycles push
     abundances towards zero, where a Runge–Kutta stage may step slightly below it; clipping
     keeps such a stage from feeding back negative growth. The census step then clears what
-    is left (:mod:`trophoscape.simulate`).
+    is left (:mod:`trophoscape.integrate.ode`).
     """
 
     model: LocalModel

@@ -1,0 +1,102 @@
+"""The ``trophoscape spread`` command: where a shock's collapse goes first, and how fast.
+
+Registered by ``cli.program`` through ``COMMAND_MODULES`` (``add_parser``). Writes, atomically
+(:func:`trophoscape.io.folder.staged_folder`):
+
+* the usual run folder of the *shocked* run (burn-in included), with the spread columns added
+  to ``patches.gpkg`` / ``patches.csv`` and the spread figures under ``"spread"`` in
+  ``summary.json``;
+* ``spread.csv`` (per patch: ``patch_id``, ``arrival_time``, ``order``,
+  ``network_distance_km``, ``distance_km``, ``recovered_at``, then ``shocked`` and
+  ``baseline_collapse``) and ``spread.json`` (network-level figures and provenance);
+* ``maps/spread_arrival.png`` and ``maps/spread_arrival_distance.png``;
+* with ``--origins``: ``origins.csv`` and ``maps/origin_vulnerability.png``.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+from ..report.spread import write_spread
+
+__all__ = ["add_parser", "run_command"]
+
+EPILOG = ("examples:\n  trophoscape spread valley.toml --out results/spread\n"
+          "  trophoscape spread valley.toml --out results/scan --origins 50")
+
+
+
+def add_parser(subparsers) -> argparse.ArgumentParser:
+    """Register ``spread`` on the CLI's subparsers."""
+    p = subparsers.add_parser(
+        "spread", help="follow the collapse a shock sets off, patch by patch",
+        description="Run the scenario's [[shock]] tables against a baseline from the same "
+                    "state after burn-in; write arrival times of collapse, distances, the "
+                    "front speed and maps. With --origins, shock each origin in turn.",
+        epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    from .program import out_options
+
+    p.add_argument("scenario", type=Path, help="scenario file (TOML) with [[shock]] tables")
+    out_options(p)
+    p.add_argument("--origins", metavar="N|all", default=None,
+                   help="also scan origins: a spatially stratified sample of N patches, or "
+                        "'all'; the scenario's shocks are aimed at each in turn")
+    p.add_argument("--workers", type=int, default=None,
+                   help="processes for the origin scan (default: all cores)")
+    p.add_argument("--geojson", action="store_true", help="also write patches.geojson")
+    p.add_argument("--no-maps", action="store_true", help="skip the PNG maps and the report")
+    p.add_argument("--quiet", action="store_true", help="no progress bar or summary")
+    p.set_defaults(handler=run_command)
+    return p
+
+
+def _origin_count(text):
+    if text is None:
+        return None
+    if text == "all":
+        return "all"
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise InputError(f"{text!r} is not a whole number of at least 1 or 'all'; give e.g. "
+                         "--origins 50, or --origins all", field="--origins")
+    return n
+
+
+def run_command(args) -> int:
+    """Handler of ``trophoscape spread``; returns the exit code."""
+    from ..workflows.spread import origin_scan, run_spread, stratified_origins
+    from ..io.folder import check_out
+    from ..scenario import input_files
+    from ..workflows.study import load_study
+
+    count = _origin_count(args.origins)
+    study = load_study(args.scenario)
+    check_out(args.out, inputs=input_files(study.scenario), force=args.force)  # before the runs
+    result = run_spread(study, progress=not args.quiet)
+    scan = None
+    if count is not None:
+        origins = (None if count == "all" else
+                   stratified_origins(study.landscape.centroids, count,
+                                      seed=study.scenario["run.seed"]))
+        scan = origin_scan(study, origins, workers=args.workers, progress=not args.quiet)
+    write_spread(study, result, args.out, scan=scan, maps=not args.no_maps,
+                 geojson=args.geojson, force=args.force, checked=True)
+    if not args.quiet:
+        s = result.summary
+        speed = s["front_speed_km_per_time"]
+        print(f"wrote {args.out}")
+        print(f"  {s['species']} collapse reached {s['reached_share']:.0%} of patches"
+              + (f"; front speed {speed:.3g} km per {study.scenario['time_unit']}"
+                 if np.isfinite(speed) else ""))
+    return 0
+
+
+
+

@@ -1,0 +1,1 @@
+"""Integration in time: the ODE solver, event-based (demographic) runs, environmental noise."""

@@ -1,0 +1,1 @@
+"""Files: the staged output folder, tables, the NetCDF time series."""

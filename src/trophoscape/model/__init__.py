@@ -1,0 +1,1 @@
+"""The model: patches, the dispersal network, local dynamics, the coupled system, shocks."""

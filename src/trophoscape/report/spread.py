@@ -1,0 +1,110 @@
+"""The folder of ``spread``: the shocked run's folder with the spread columns, ``spread.csv``,
+``spread.json``, the spread maps and, with an origin scan, ``origins.csv``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+__all__ = ["write_spread", "SPREAD_COLUMNS"]
+
+def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
+                 force=False, checked=False) -> Path:
+    """Write the spread outputs (and the shocked run's folder) into ``out``, atomically.
+
+    Parameters
+    ----------
+    study : Study
+    result : trophoscape.workflows.spread.SpreadResult
+    out : path
+    scan : pandas.DataFrame, optional
+        From :func:`trophoscape.workflows.spread.origin_scan`.
+    force : bool
+        Write to ``out`` even when it is a folder trophoscape did not write (that folder is
+        kept, renamed to ``NAME.replaced-YYYYmmdd-HHMMSS``).
+    checked : bool
+        ``out`` went through :func:`trophoscape.io.folder.check_out` already (before the
+        runs); a folder that changed since is dealt with when the new one is put in place.
+    """
+    from ..scenario import input_files
+    from ..io.tables import provenance, write_json
+    from ..io.folder import staged_folder
+    from .run import write_run
+    from ..workflows.study import RunResult, analyse
+
+    out = Path(out)
+    table, summary, extras = analyse(study, result.shocked)
+    table = table.join(result.table[SPREAD_COLUMNS])
+    summary["spread"] = result.summary
+    run = RunResult(study=study, trajectory=result.shocked, patches=table, summary=summary,
+                    extras=extras)
+    spread_summary = dict(result.summary)
+    spread_summary["scenario"] = study.scenario.name
+    spread_summary["time_unit"] = study.scenario["time_unit"]
+    spread_summary["shocks"] = [dict(t) for t in study.scenario["shock"]]
+    spread_summary["provenance"] = provenance(study)
+    with staged_folder(out, force=force, inputs=input_files(study.scenario),
+                       command="spread", checked=checked) as stage:
+        write_run(run, stage, maps=maps, geojson=geojson)
+        result.table[SPREAD_COLUMNS].to_csv(stage / "spread.csv", index=True)
+        write_json(stage / "spread.json", spread_summary)
+        if scan is not None:
+            scan.to_csv(stage / "origins.csv", index=True)
+        if maps:
+            _spread_maps(stage, study, result, scan)
+    return out
+
+
+def _spread_maps(stage: Path, study, result, scan) -> None:
+    from .figures import arrival_distance_plot, patch_map
+
+    folder = stage / "maps"
+    folder.mkdir(exist_ok=True)
+    land = study.landscape
+    links = study.network.links_frame(land)
+    frame = land.frame[["patch_id", "geometry"]].copy()
+    for col in ("arrival_time", "distance_km", "network_distance_km"):
+        frame[col] = result.table[col].to_numpy()
+    unit = study.scenario["time_unit"]
+    species = result.summary["species"]
+    patch_map(frame, "arrival_time", path=folder / "spread_arrival.png", links=links,
+              title=f"Arrival of {species} collapse", label=f"arrival time ({unit})",
+              cmap="viridis_r", isolines=6)
+    s = result.summary
+    arrival_distance_plot(result.table["distance_km"].to_numpy(),
+                          result.table["arrival_time"].to_numpy(),
+                          path=folder / "spread_arrival_distance.png",
+                          speed=s["front_speed_km_per_time"],
+                          interval=s["front_speed_interval_km_per_time"],
+                          shock_time=s["shock_time"], time_unit=unit)
+    if scan is not None:
+        frame["cascade_share"] = scan["cascade_share"].reindex(
+            land.ids.astype(str)).to_numpy(dtype=float)
+        patch_map(frame, "cascade_share", path=folder / "origin_vulnerability.png",
+                  links=links, title="Origins: share of other patches a collapse reaches",
+                  label="share of patches reached", cmap="magma_r")
+    report = stage / "report.html"
+    if report.exists():
+        from .html import add_section
+
+        speed = s["front_speed_km_per_time"]
+        figures = [
+            (f"Arrival of {species} collapse", folder / "spread_arrival.png",
+             "When collapse reached each patch after the shock; dashed lines are isochrones, "
+             "grey patches were never reached."),
+            ("Arrival time against distance", folder / "spread_arrival_distance.png",
+             "Each dot is a reached patch; the line is the robust (Theil–Sen) front speed."),
+        ]
+        if scan is not None:
+            figures.append(("Worst origins", folder / "origin_vulnerability.png",
+                            "Each patch coloured by the share of the other patches a collapse "
+                            "starting there reaches: the darkest are the origins to watch."))
+        intro = (f"Shock at {s['shock_time']:g} {unit}; collapse reached "
+                 f"{s['reached_share']:.0%} of the patches"
+                 + (f", at {speed:.3g} km per {unit}." if speed is not None
+                    and speed == speed else "."))
+        add_section(report, "Collapse spread", figures, intro=intro)
+
+
+SPREAD_COLUMNS = ["arrival_time", "order", "network_distance_km", "distance_km",
+                  "recovered_at", "shocked", "baseline_collapse"]
