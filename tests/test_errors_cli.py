@@ -674,3 +674,60 @@ def test_messages_name_the_file_and_feature(outcomes):
         feature = re.search(r": feature ('[^']+'|\d+): ", case.expected)
         if feature:
             assert feature.group(0) in line, line
+
+
+# ------------------------------------------------------------ parameters and options
+def test_a_library_error_names_the_parameter_and_the_command_line_its_option(tmp_path):
+    # the same refusal read from Python (parameters) and from the command line (options)
+    from trophoscape.errors import InputError
+    from trophoscape.io.folder import check_out
+
+    (tmp_path / "mine").mkdir()
+    (tmp_path / "mine" / "notes.txt").write_text("x", encoding="utf-8")
+    with pytest.raises(InputError) as info:
+        check_out(tmp_path / "mine")
+    text = str(info.value)
+    assert "parameter 'out'" in text and "add force=True to write there anyway" in text
+    assert "--" not in text
+    write_case_files(tmp_path, {})
+    got = run_cli(tmp_path, "run", "s.toml", "--out", "mine")
+    assert got.returncode == 2
+    assert "field '--out'" in got.stderr and "add --force to write there anyway" in got.stderr
+
+
+def test_every_option_in_the_flag_table_exists():
+    # consistency test: FLAGS maps parameters to options the parser really has
+    from trophoscape.cli.program import FLAGS, _parser
+
+    parser = _parser()
+    options = set()
+    for action in parser._subparsers._group_actions:
+        for sub in action.choices.values():
+            for a in sub._actions:
+                options.update(a.option_strings)
+    assert set(FLAGS.values()) <= options, set(FLAGS.values()) - options
+
+
+def test_no_library_message_names_a_command_line_option():
+    # consistency test: outside cli/, text that reaches users names parameters
+    # (errors.param), never options; docstrings and comments may mention options
+    import ast
+
+    import trophoscape
+
+    root = Path(trophoscape.__file__).parent
+    found = []
+    for path in root.rglob("*.py"):
+        if "cli" in path.relative_to(root).parts:
+            continue
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        docstrings = {id(n.body[0].value) for n in ast.walk(tree)
+                      if isinstance(n, (ast.Module, ast.FunctionDef, ast.ClassDef,
+                                        ast.AsyncFunctionDef))
+                      and n.body and isinstance(n.body[0], ast.Expr)
+                      and isinstance(n.body[0].value, ast.Constant)}
+        for node in ast.walk(tree):
+            if (isinstance(node, ast.Constant) and isinstance(node.value, str)
+                    and id(node) not in docstrings and re.search(r"--[a-z]", node.value)):
+                found.append(f"{path.relative_to(root)}:{node.lineno}: {node.value!r}")
+    assert found == [], found

@@ -37,6 +37,14 @@ from trophoscape.errors import InputError
 from test_errors_cli import (CANDIDATE, EXPLOSIVE, collection, features, middle, run_cli,
                              scenario)
 
+
+def shown(exc) -> str:
+    """An error as the command line prints it (options, where Python names parameters)."""
+    from trophoscape.cli.program import FLAGS
+    from trophoscape.errors import render_params
+
+    return exc.render(FLAGS) if hasattr(exc, "render") else render_params(exc, FLAGS)
+
 SRC = Path(__file__).resolve().parents[1] / "src"
 
 
@@ -428,7 +436,7 @@ def test_an_output_folder_of_an_earlier_version_needs_real_evidence(tmp_path, bu
     else:
         with pytest.raises(InputError) as info:
             outputs.check_out(folder)
-        assert str(info.value) == (
+        assert shown(info.value) == (
             f"{folder}: field '--out': is a folder trophoscape did not write (it holds "
             f"{extra}); give a new or empty folder, or add --force to write there anyway (the "
             "folder is then kept, renamed to old.replaced-YYYYmmdd-HHMMSS)")
@@ -591,7 +599,7 @@ def test_folders_that_are_never_replaced_even_with_force(tmp_path, monkeypatch):
     for folder, words in _never_replaced(tmp_path):
         with pytest.raises(InputError) as info:
             outputs.check_out(folder, force=True)
-        text = str(info.value)
+        text = shown(info.value)
         assert words in text and "field '--out'" in text and "\n" not in text, (folder, text)
 
 
@@ -1070,7 +1078,7 @@ def _corridor_valley(folder: Path) -> None:
 
 def test_a_failed_corridors_command_leaves_the_users_empty_folder_alone(tmp_path, monkeypatch,
                                                                        capsys):
-    from trophoscape.cli import corridors as planning_cli
+    from trophoscape.workflows import planning
 
     _corridor_valley(tmp_path)
     (tmp_path / "plan").mkdir()
@@ -1078,7 +1086,7 @@ def test_a_failed_corridors_command_leaves_the_users_empty_folder_alone(tmp_path
     def stopped(*args, **kwargs):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(planning_cli, "plan_corridors", stopped)
+    monkeypatch.setattr(planning, "plan_corridors", stopped)
     for out in ("plan", "new-plan"):
         code, err = main_here(tmp_path, monkeypatch, capsys, "corridors", "s.toml",
                               "--candidates", "c.geojson", "--budget", "1", "--out", out,
@@ -1117,7 +1125,7 @@ def test_write_run_checks_its_folder(tmp_path):
     result = trophoscape.run_study(trophoscape.load_study(scenario_file))
     with pytest.raises(InputError) as info:
         trophoscape.write_run(result, tmp_path, maps=False)
-    assert "is the folder of the input p.geojson" in str(info.value)
+    assert "is the folder of the input p.geojson" in shown(info.value)
     out = trophoscape.write_run(result, tmp_path / "api", maps=False)
     assert marker(out)["command"] == "write_run"
 

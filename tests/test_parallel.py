@@ -10,6 +10,14 @@ from trophoscape.errors import InputError
 from trophoscape.workflows.tasks import run_tasks
 
 
+def shown(exc) -> str:
+    """An error as the command line prints it (options, where Python names parameters)."""
+    from trophoscape.cli.program import FLAGS
+    from trophoscape.errors import render_params
+
+    return exc.render(FLAGS) if hasattr(exc, "render") else render_params(exc, FLAGS)
+
+
 def _square_or_fail(x):
     if x == 3:
         raise ValueError("three is not allowed")
@@ -27,8 +35,13 @@ def test_every_task_once_and_failures_recorded(workers):
 
 
 def test_workers_must_be_positive():
-    with pytest.raises(InputError, match="--workers"):
+    with pytest.raises(InputError) as info:
         run_tasks(math.sqrt, [1.0, 4.0], workers=0, progress=False, on_result=print)
+    # a Python caller reads the parameter, the command line its option
+    assert str(info.value).startswith("parameter 'workers': 0 is out of range")
+    assert "or leave workers out to use every core" in str(info.value)
+    assert shown(info.value).startswith("field '--workers': 0 is out of range")
+    assert "or leave --workers out to use every core" in shown(info.value)
 
 
 # ------------------------------------------------------------------------ a killed parent

@@ -34,6 +34,14 @@ from trophoscape.model.network import build_network, movement_operator, with_lin
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
 
+
+def shown(exc) -> str:
+    """An error as the command line prints it (options, where Python names parameters)."""
+    from trophoscape.cli.program import FLAGS
+    from trophoscape.errors import render_params
+
+    return exc.render(FLAGS) if hasattr(exc, "render") else render_params(exc, FLAGS)
+
 CRS = "EPSG:32633"
 X0, Y0 = 500_000.0, 5_000_000.0
 # Holling type II parameters of the test scenarios: N* = 0.4 / (0.05 (0.3 - 0.04)) = 30.8
@@ -259,7 +267,7 @@ def test_parse_weights():
         "predator_persistence": 1.0, "predator_capacity": 0.5}
     with pytest.raises(InputError) as err:
         pl.parse_weights("predator_persistance=1")
-    assert str(err.value).startswith("field '--weights': unknown objective "
+    assert shown(err.value).startswith("field '--weights': unknown objective "
                                      "'predator_persistance' (did you mean "
                                      "'predator_persistence'?)")
     with pytest.raises(InputError, match="weight 'x' of predator_capacity is not a number"):
@@ -545,7 +553,7 @@ def test_candidate_errors(row_study):
         path = _write(folder, frame, f"bad{k}.gpkg")
         with pytest.raises(InputError) as err:
             pl.read_candidates(path, land)
-        assert str(err.value) == f"{path}: {message}"
+        assert shown(err.value) == f"{path}: {message}"
 
 
 def test_thin_polygon_candidates_use_their_long_axis(row_study):
@@ -578,6 +586,30 @@ def test_cli_bad_candidates_exit_2_without_output(row_study, monkeypatch, capsys
     assert run_cli(monkeypatch, "corridors", scenario, "--candidates", bad, "--budget", -1,
                    "--out", out, "--quiet") == 2
     assert not out.exists()
+
+
+def test_the_python_call_writes_what_the_command_writes(complements, monkeypatch):
+    # consistency test: corridors_to_folder is the corridors command, from Python
+    folder = complements["folder"]
+    assert run_cli(monkeypatch, "corridors", complements["scenario"], "--candidates",
+                   complements["candidates"], "--budget", 2, "--out", folder / "cli",
+                   "--workers", 1, "--no-maps", "--quiet") == 0
+    plan = ts.corridors_to_folder(complements["scenario"], complements["candidates"],
+                                  folder / "py", budget=2, workers=1, maps=False)
+    for name in ("corridors.csv", "critical.csv"):
+        a = pd.read_csv(folder / "cli" / name)
+        b = pd.read_csv(folder / "py" / name)
+        pd.testing.assert_frame_equal(a, b)
+    assert sorted(p.name for p in (folder / "cli").iterdir()) == sorted(
+        p.name for p in (folder / "py").iterdir())
+    assert [str(i) for i in plan["table"].index] == list(
+        pd.read_csv(folder / "py" / "corridors.csv", dtype={"corridor_id": str})["corridor_id"])
+    # refused like the command, naming the parameter
+    with pytest.raises(InputError) as info:
+        ts.corridors_to_folder(complements["scenario"], complements["candidates"],
+                               folder / "bad", budget=-1)
+    assert str(info.value).startswith("parameter 'budget': -1 is out of range")
+    assert not (folder / "bad").exists()
 
 
 # ------------------------------------------------------------------ compare

@@ -35,6 +35,14 @@ from trophoscape.workflows.sweep import (LEDGER_NAME, TABLE_NAME, TIME_COLUMNS, 
 from trophoscape.integrate.noise import replicate_seeds
 from trophoscape.testing import grid_landscape
 
+
+def shown(exc) -> str:
+    """An error as the command line prints it (options, where Python names parameters)."""
+    from trophoscape.cli.program import FLAGS
+    from trophoscape.errors import render_params
+
+    return exc.render(FLAGS) if hasattr(exc, "render") else render_params(exc, FLAGS)
+
 SRC = Path(__file__).resolve().parents[1] / "src"
 # Runs the command line in a subprocess.
 RUNNER = "import sys, trophoscape.cli.program as c; sys.exit(c.main(sys.argv[1:]))"
@@ -154,7 +162,7 @@ def test_lists_of_numbers_and_words():
 def test_vary_syntax_errors(arg, message):
     with pytest.raises(InputError) as info:
         parse_vary(arg)
-    assert str(info.value) == message
+    assert shown(info.value) == message
 
 
 @pytest.mark.parametrize("specs, message", [
@@ -171,7 +179,7 @@ def test_vary_syntax_errors(arg, message):
 def test_bad_values_name_the_vary_argument(scenario, specs, message):
     with pytest.raises(InputError) as info:
         plan_sweep(scenario, specs)
-    assert str(info.value) == message
+    assert shown(info.value) == message
 
 
 def test_a_combination_that_is_not_a_scenario(scenario, tmp_path):
@@ -179,7 +187,7 @@ def test_a_combination_that_is_not_a_scenario(scenario, tmp_path):
     # but not together
     with pytest.raises(InputError) as info:
         plan_sweep(scenario, ["run.duration=2,10", "run.burn_in=1,3"])
-    assert str(info.value) == (
+    assert shown(info.value) == (
         f"{scenario}: field '--vary': the point run.duration=2, run.burn_in=3 is not a valid "
         "scenario: run.burn_in: 3 is not below run.duration 2; shorten the burn-in or "
         "lengthen the run")
@@ -190,11 +198,11 @@ def test_a_combination_that_is_not_a_scenario(scenario, tmp_path):
     table.write_text("run.duration,run.burn_in\n10,6\n3,-1\n", encoding="utf-8")
     with pytest.raises(InputError) as info:
         plan_sweep(scenario, None, table=table)
-    assert str(info.value) == (f"{table}: feature 1: field 'run.burn_in': -1 is out of "
+    assert shown(info.value) == (f"{table}: feature 1: field 'run.burn_in': -1 is out of "
                                "range; give a number of at least 0")
     with pytest.raises(InputError) as info:
         plan_sweep(scenario, ["run.duration=4,4.0"])
-    assert str(info.value) == ("field '--vary run.duration=4,4.0': the value 4.0 is given "
+    assert shown(info.value) == ("field '--vary run.duration=4,4.0': the value 4.0 is given "
                                "twice; give each value once")
 
 
@@ -237,17 +245,17 @@ def test_sweep_table(tmp_path, scenario):
     bad.write_text("prey.growth_rat\n1\n", encoding="utf-8")
     with pytest.raises(InputError) as info:
         read_sweep_table(bad)
-    assert str(info.value) == (f"{bad}: field 'prey.growth_rat': unknown scenario key "
+    assert shown(info.value) == (f"{bad}: field 'prey.growth_rat': unknown scenario key "
                                "'prey.growth_rat'; did you mean 'prey.growth_rate'?")
     bad.write_text("prey.growth_rate,run.duration\n1,5\n2,\n", encoding="utf-8")
     with pytest.raises(InputError) as info:
         read_sweep_table(bad)
-    assert str(info.value) == (f"{bad}: feature 1: field 'run.duration': empty cell; every "
+    assert shown(info.value) == (f"{bad}: feature 1: field 'run.duration': empty cell; every "
                                "row needs a value for every column")
     bad.write_text("prey.growth_rate\n1\n1\n", encoding="utf-8")
     with pytest.raises(InputError) as info:
         read_sweep_table(bad)
-    assert str(info.value) == (f"{bad}: feature 1: field '--table': repeats row 0; give "
+    assert shown(info.value) == (f"{bad}: feature 1: field '--table': repeats row 0; give "
                                "each point once")
 
 
@@ -294,7 +302,7 @@ def test_existing_ledger_needs_resume(tmp_path, scenario, monkeypatch, capsys):
     message = ("a sweep ledger is already here; add --resume to continue that sweep, add "
                "--force to start a new sweep in its place (its finished runs are then deleted), "
                "or give another --out folder")
-    assert str(info.value) == f"{out / LEDGER_NAME}: field '--out': {message}"
+    assert shown(info.value) == f"{out / LEDGER_NAME}: field '--out': {message}"
     # resuming a finished sweep runs nothing and writes the same table
     before = read_table(out)
     stamps = pd.read_csv(out / TABLE_NAME)["finished"].tolist()

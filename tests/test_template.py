@@ -25,7 +25,7 @@ def test_template_parses_and_keeps_the_defaults(tmp_path):
             continue
         for key, spec in keys.items():
             assert sc[f"{section}.{key}"] == spec.default, f"{section}.{key}"
-    with pytest.raises(InputError, match="already exists; use --force"):
+    with pytest.raises(InputError, match="already exists; use force=True"):
         write_template(tmp_path)
 
 

@@ -7,8 +7,10 @@ links table); the command line prints its one-line message and exits with code 2
 
 from __future__ import annotations
 
+import re
+
 __all__ = ["TrophoscapeError", "InputError", "RunError", "TrophoscapeWarning", "Terminated",
-           "allowed_range", "note_stop", "raise_if_stopped", "clear_stop"]
+           "allowed_range", "param", "render_params", "note_stop", "raise_if_stopped", "clear_stop"]
 
 
 class TrophoscapeError(Exception):
@@ -40,15 +42,70 @@ class InputError(TrophoscapeError, ValueError):
         self.file = None if file is None else str(file)
         self.feature = feature
         self.field = field
+        super().__init__(self.render())
+
+    def render(self, flags=None) -> str:
+        """The one-line message. Parameters named with :func:`param` read as Python
+        (``out``, ``resume=True``), or, given ``flags`` (parameter name -> command-line
+        option), as the command line's options (``--out``, ``--resume``)."""
         parts = []
         if self.file is not None:
             parts.append(self.file)
+        feature = self.feature
         if feature is not None:
             parts.append(f"feature {feature!r}" if isinstance(feature, str) else f"feature {feature}")
-        if field is not None:
-            parts.append(f"field {field!r}")
-        parts.append(message)
-        super().__init__(": ".join(parts))
+        if self.field is not None:
+            field = str(self.field)
+            if _PARAM.search(field):
+                shown = _PARAM.sub(lambda m: _shown(m, flags, bare=True), field)
+                parts.append(f"field {shown!r}" if flags is not None else f"parameter {shown!r}")
+            else:
+                parts.append(f"field {self.field!r}")
+        parts.append(render_params(self.message, flags))
+        return ": ".join(parts)
+
+    def __str__(self) -> str:
+        return self.render()
+
+    def __reduce__(self):  # across processes (a pool or Dask worker) with its parts whole
+        return (_input_error, (self.message, self.file, self.feature, self.field))
+
+
+def _input_error(message, file, feature, field) -> InputError:
+    return InputError(message, file=file, feature=feature, field=field)
+
+
+_OPEN, _CLOSE, _SET = "\ue000", "\ue001", "\ue002"
+_PARAM = re.compile(f"{_OPEN}([A-Za-z_][A-Za-z0-9_]*)(?:{_SET}([^{_CLOSE}]*))?{_CLOSE}")
+
+
+def param(name: str, value=None) -> str:
+    """A parameter of a public call, named in a message: ``out`` (or ``out='results'``) in
+    Python, ``--out`` (or ``--out results``) on the command line, which maps the names to
+    its options in one table (``trophoscape.cli.program.FLAGS``).
+
+    ``value`` True names a switch: ``resume=True`` in Python, ``--resume`` on the command
+    line. Any other value is an example: ``out='results'`` / ``--out results``.
+    """
+    if value is None:
+        return f"{_OPEN}{name}{_CLOSE}"
+    return f"{_OPEN}{name}{_SET}{'' if value is True else value}{_CLOSE}"
+
+
+def _shown(match, flags, bare=False) -> str:
+    name, value = match.group(1), match.group(2)
+    if flags is not None:
+        flag = flags.get(name, "--" + name.replace("_", "-"))
+        return flag if bare or not value else f"{flag} {value}"
+    if bare or value is None:
+        return name
+    return f"{name}=True" if value == "" else f"{name}={value!r}"
+
+
+def render_params(text: str, flags=None) -> str:
+    """``text`` with every :func:`param` reference written for Python (``flags`` None) or
+    for the command line (``flags``: parameter name -> option)."""
+    return _PARAM.sub(lambda m: _shown(m, flags), str(text))
 
 
 class RunError(TrophoscapeError, RuntimeError):

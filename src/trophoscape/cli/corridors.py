@@ -15,14 +15,10 @@ same command again reads those rows back instead of running them again.
 from __future__ import annotations
 
 import argparse
-import math
-import time
 from pathlib import Path
 
 
-from ..errors import InputError
-from ..report.corridors import write_comparison, write_corridors
-from ..workflows.planning import PARTIAL, plan_corridors, read_link_list
+from ..report.corridors import compare_to_folder, corridors_to_folder
 
 __all__ = ["add_parser", "run_corridors", "run_compare"]
 
@@ -105,68 +101,16 @@ def add_parser(subparsers) -> None:
 
 def run_corridors(args) -> int:
     """The ``corridors`` command; returns the exit code."""
-    from ..workflows.planning import parse_weights, read_candidates
-    from ..scenario import input_files
-    from ..io.folder import working_folder
-    from ..workflows.study import load_study
-
-    if not math.isfinite(args.budget) or args.budget < 0:
-        raise InputError(f"{args.budget!r} is out of range; give the total cost the chosen set "
-                         "may reach, a number of at least 0 in the unit of 'cost'",
-                         field="--budget")
-    if args.screen is not None and args.screen < 1:
-        raise InputError(f"{args.screen} is out of range; give how many candidates to "
-                         "simulate, a whole number of at least 1", field="--screen")
-    if args.exhaustive_limit < 0:
-        raise InputError(f"{args.exhaustive_limit} is out of range; give a whole number of at "
-                         "least 0 (0 turns the exhaustive search off)",
-                         field="--exhaustive-limit")
-    if args.workers is not None and args.workers < 1:
-        raise InputError(f"{args.workers} is out of range; give a whole number of at least 1, "
-                         "or leave --workers out to use every core", field="--workers")
-    weights = parse_weights(args.weights)
-    study = load_study(args.scenario)
-    candidates = read_candidates(args.candidates, study.landscape, layer=args.layer,
-                                 snap_km=study.scenario["dispersal.corridor_snap_km"])
-    inputs = [*input_files(study.scenario), args.candidates]
-    links_file = None
-    if args.remove_links == "all":
-        links = "all"
-    elif args.remove_links == "none":
-        links = None
-    else:
-        links = read_link_list(args.remove_links, study)
-        links_file = Path(args.remove_links)
-        inputs.append(links_file)
-    # everything is validated: only now does the output folder appear (for the partial log);
-    # an earlier output folder there stays until the new one is whole, and a folder made
-    # here that got no row is removed again if the command fails
-    with working_folder(args.out, command="corridors", allow=[PARTIAL], inputs=inputs,
-                        force=args.force, reuse=True):
-        started = time.perf_counter()
-        plan = plan_corridors(study, candidates, budget=args.budget, weights=weights,
-                              links=links, patches=args.remove_patches == "all",
-                              screen=args.screen, exhaustive_limit=args.exhaustive_limit,
-                              workers=args.workers, progress=not args.quiet,
-                              log=args.out / PARTIAL, links_file=links_file)
-        plan["timing"]["total_seconds"] = time.perf_counter() - started
-        write_corridors(plan, args.out, maps=not args.no_maps, force=args.force,
-                        inputs=inputs, checked=True)
+    links = {"all": "all", "none": None}.get(args.remove_links, args.remove_links)
+    plan = corridors_to_folder(args.scenario, args.candidates, args.out, budget=args.budget,
+                               weights=args.weights, layer=args.layer, links=links,
+                               patches=args.remove_patches == "all", screen=args.screen,
+                               exhaustive_limit=args.exhaustive_limit, workers=args.workers,
+                               maps=not args.no_maps, force=args.force,
+                               progress=not args.quiet)
     if not args.quiet:
         _print_plan(plan, args.out)
     return 0
-
-
-
-
-
-
-
-
-
-
-
-
 
 
 def _print_plan(plan, out) -> None:
@@ -192,27 +136,12 @@ def _print_plan(plan, out) -> None:
 
 def run_compare(args) -> int:
     """The ``compare`` command; returns the exit code."""
-    from ..io.folder import check_out
-    from ..scenario import input_files
-    from ..workflows.study import load_study, run_study
+    def announce(k, n, study):
+        print(f"running {k + 1}/{n}: {study.scenario.name}")
 
-    if len(args.scenarios) < 2:
-        raise InputError(f"needs at least two scenarios, got {len(args.scenarios)}; give two "
-                         "or more scenario files, the first being the reference",
-                         field="scenarios")
-    columns = [c.strip() for c in args.columns.split(",") if c.strip()]
-    studies = [load_study(p) for p in args.scenarios]
-    inputs = [f for study in studies for f in input_files(study.scenario)]
-    check_out(args.out, inputs=inputs, force=args.force)  # before the runs
-    results = []
-    for k, study in enumerate(studies):
-        if not args.quiet:
-            print(f"running {k + 1}/{len(studies)}: {study.scenario.name}")
-        results.append(run_study(study, progress=not args.quiet))
-    write_comparison(results, args.out, columns=columns, maps=not args.no_maps,
-                     runs=not args.no_runs, force=args.force, checked=True)
+    compare_to_folder(args.scenarios, args.out, columns=args.columns, maps=not args.no_maps,
+                      runs=not args.no_runs, force=args.force, progress=not args.quiet,
+                      on_run=None if args.quiet else announce)
     if not args.quiet:
         print(f"wrote {args.out}")
     return 0
-
-

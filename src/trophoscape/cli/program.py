@@ -20,9 +20,22 @@ from pathlib import Path
 from importlib import import_module
 
 from ..errors import (InputError, RunError, Terminated, TrophoscapeError, clear_stop,
-                                note_stop, raise_if_stopped)
+                      note_stop, raise_if_stopped, render_params)
 
 __all__ = ["main", "entry"]
+
+#: Parameters of the public calls behind the commands -> the options that set them. Library
+#: errors name parameters (:func:`trophoscape.errors.param`); the command line shows these.
+FLAGS = {
+    "out": "--out", "force": "--force", "resume": "--resume", "quiet": "--quiet",
+    "maps": "--no-maps", "plots": "--no-plots", "geojson": "--geojson",
+    "variants_or_vary_specs": "--vary", "table": "--table", "replicates": "--replicates",
+    "workers": "--workers", "scheduler": "--scheduler", "dask_local": "--dask-local",
+    "candidates": "--candidates", "layer": "--layer", "budget": "--budget",
+    "weights": "--weights", "screen": "--screen", "exhaustive_limit": "--exhaustive-limit",
+    "links": "--remove-links", "columns": "--columns",
+    "runs": "--no-runs", "origins": "--origins", "patches": "--patches", "name": "--name",
+}
 
 #: Modules that add a command: each has ``add_parser(subparsers)``, which registers its
 #: parser with ``set_defaults(handler=fn)``; ``fn(args)`` returns the exit code.
@@ -91,7 +104,7 @@ def _output_options(p):
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
-    print(f"warning: {message}", file=sys.stderr)
+    print(f"warning: {render_params(message, FLAGS)}", file=sys.stderr)
 
 
 def _print_check(study) -> None:
@@ -246,13 +259,13 @@ def _main(args) -> int:
         raise_if_stopped()  # a Ctrl-C that Python swallowed still ends the command as one
         return code
     except InputError as exc:
-        print(f"error: {exc}", file=sys.stderr)
+        print(f"error: {exc.render(FLAGS)}", file=sys.stderr)
         return 2
     except RunError as exc:
-        print(f"error: the run failed: {exc}", file=sys.stderr)
+        print(f"error: the run failed: {render_params(exc, FLAGS)}", file=sys.stderr)
         return 1
     except TrophoscapeError as exc:  # pragma: no cover - every error has a subclass
-        print(f"error: {exc}", file=sys.stderr)
+        print(f"error: {render_params(exc, FLAGS)}", file=sys.stderr)
         return 1
     except BrokenPipeError:  # output piped into `head` and the like
         sys.stderr.close()

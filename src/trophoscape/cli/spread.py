@@ -20,8 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
-from ..report.spread import write_spread
+from ..report.spread import spread_to_folder
 
 __all__ = ["add_parser", "run_command"]
 
@@ -55,48 +54,25 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 
 
 def _origin_count(text):
-    if text is None:
-        return None
-    if text == "all":
-        return "all"
+    """``--origins``: "all", a whole number (checked by the library), or None."""
+    if text is None or text == "all":
+        return text
     try:
-        n = int(text)
+        return int(text)
     except ValueError:
-        n = 0
-    if n < 1:
-        raise InputError(f"{text!r} is not a whole number of at least 1 or 'all'; give e.g. "
-                         "--origins 50, or --origins all", field="--origins")
-    return n
+        return text
 
 
 def run_command(args) -> int:
     """Handler of ``trophoscape spread``; returns the exit code."""
-    from ..workflows.spread import origin_scan, run_spread, stratified_origins
-    from ..io.folder import check_out
-    from ..scenario import input_files
-    from ..workflows.study import load_study
-
-    count = _origin_count(args.origins)
-    study = load_study(args.scenario)
-    check_out(args.out, inputs=input_files(study.scenario), force=args.force)  # before the runs
-    result = run_spread(study, progress=not args.quiet)
-    scan = None
-    if count is not None:
-        origins = (None if count == "all" else
-                   stratified_origins(study.landscape.centroids, count,
-                                      seed=study.scenario["run.seed"]))
-        scan = origin_scan(study, origins, workers=args.workers, progress=not args.quiet)
-    write_spread(study, result, args.out, scan=scan, maps=not args.no_maps,
-                 geojson=args.geojson, force=args.force, checked=True)
+    result = spread_to_folder(args.scenario, args.out, origins=_origin_count(args.origins),
+                              workers=args.workers, maps=not args.no_maps,
+                              geojson=args.geojson, force=args.force, progress=not args.quiet)
     if not args.quiet:
         s = result.summary
         speed = s["front_speed_km_per_time"]
         print(f"wrote {args.out}")
         print(f"  {s['species']} collapse reached {s['reached_share']:.0%} of patches"
-              + (f"; front speed {speed:.3g} km per {study.scenario['time_unit']}"
+              + (f"; front speed {speed:.3g} km per {result.shocked.data['time'].attrs['units']}"
                  if np.isfinite(speed) else ""))
     return 0
-
-
-
-

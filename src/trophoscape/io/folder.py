@@ -45,7 +45,7 @@ import threading
 from pathlib import Path
 
 
-from ..errors import InputError, Terminated, raise_if_stopped
+from ..errors import InputError, Terminated, param, raise_if_stopped
 
 __all__ = ["staged_folder", "working_folder", "check_out", "out_argument", "allow_names",
            "file_sha256", "written_count", "written_since", "MARKER_NAME", "STAGING_NAME"]
@@ -176,7 +176,7 @@ def _shown(path) -> str:
 
 
 def _out_error(out, message: str) -> InputError:
-    return InputError(message, file=_shown(out), field="--out")
+    return InputError(message, file=_shown(out), field=param("out"))
 
 
 def _reason(exc: OSError) -> str:
@@ -186,7 +186,7 @@ def _reason(exc: OSError) -> str:
 def _cannot_create(out, why) -> InputError:
     """``why``: the OSError, or its reason in words."""
     reason = _reason(why) if isinstance(why, OSError) else why
-    return _out_error(out, f"cannot create the output folder here ({reason}); give --out a "
+    return _out_error(out, f"cannot create the output folder here ({reason}); give {param('out')} a "
                            "folder that can be created and written to")
 
 
@@ -201,7 +201,7 @@ def _suggestion(out: Path) -> str:
 
 
 def _replaced_hint(real: Path) -> str:
-    return (f"add --force to write there anyway (the folder is then kept, renamed to "
+    return (f"add {param('force', True)} to write there anyway (the folder is then kept, renamed to "
             f"{_shown(real.name)}.replaced-YYYYmmdd-HHMMSS)")
 
 
@@ -219,11 +219,11 @@ def out_argument(text) -> Path:
     """The ``--out`` value as a path, refusing an empty name and an existing file."""
     if not str(text).strip():
         raise InputError("an empty name is not a folder; give the output folder a name, "
-                         "e.g. --out results", field="--out")
+                         f"e.g. {param('out', 'results')}", field=param("out"))
     path = Path(text)
     if path.exists() and not path.is_dir():
         raise _out_error(path, "is an existing file, not a folder; give the name of a new "
-                               "folder for the outputs, e.g. --out results")
+                               f"folder for the outputs, e.g. {param('out', 'results')}")
     return path
 
 
@@ -232,12 +232,12 @@ def _resolved(out: Path) -> Path:
         return Path(out).resolve()
     except RuntimeError:  # Python < 3.13 on a symbolic link loop
         raise _out_error(out, "is a symbolic link that leads back to itself (a loop); remove "
-                              "the loop, or give another folder, e.g. --out results") from None
+                              f"the loop, or give another folder, e.g. {param('out', 'results')}") from None
     except OSError as exc:
         if "loop" in _reason(exc):
             raise _out_error(out, "is a symbolic link that leads back to itself (a loop); "
-                                  "remove the loop, or give another folder, e.g. --out "
-                                  "results") from None
+                                  "remove the loop, or give another folder, e.g. "
+                                  f"{param('out', 'results')}") from None
         raise _cannot_create(out, exc) from None
 
 
@@ -448,12 +448,12 @@ def _check_place(out: Path, real: Path, inputs) -> None:
     root = Path(real.anchor)
     if real == root or (st is not None and os.path.samestat(st, os.stat(root))):
         raise _out_error(out, "is the root of the file system; give a new folder for the "
-                              "outputs, e.g. --out results")
+                              f"outputs, e.g. {param('out', 'results')}")
     parent = _stat(real.parent)
     if real.parent == root or (parent is not None and os.path.samestat(parent, os.stat(root))):
         raise _out_error(out, "is a folder directly under the root of the file system, which "
-                              "is never replaced; give a new folder inside it, e.g. --out "
-                              f"{_suggestion(out)}")
+                              "is never replaced; give a new folder inside it, e.g. "
+                              f"{param('out', _suggestion(out))}")
     if st is None:  # a new folder holds nothing yet
         return
     with contextlib.suppress(RuntimeError, KeyError, OSError):
@@ -461,15 +461,15 @@ def _check_place(out: Path, real: Path, inputs) -> None:
         found = _find(st, home)
         if found is not None:
             what = "is your home folder" if found[0] == 0 else "holds your home folder"
-            raise _out_error(out, f"{what}; give a new folder for the outputs, e.g. --out "
-                                  f"{_suggestion(out)}")
+            raise _out_error(out, f"{what}; give a new folder for the outputs, e.g. "
+                                  f"{param('out', _suggestion(out))}")
     for folder in _program_folders():
         found = _find(st, folder)
         if found is not None:
             what = "is" if found[0] == 0 else "holds"
             raise _out_error(out, f"{what} the Python installation or the trophoscape package "
                                   f"that is running ({_shown(folder)}); give a new folder for "
-                                  f"the outputs elsewhere, e.g. --out {_suggestion(out)}")
+                                  f"the outputs elsewhere, e.g. {param('out', _suggestion(out))}")
     for item in inputs:
         if item is None:
             continue
@@ -485,17 +485,17 @@ def _check_place(out: Path, real: Path, inputs) -> None:
             what = (f"is the folder of the input {_shown(searched.name)}" if k == 1 else
                     f"holds the input {_shown(Path(*searched.parts[-k:]).as_posix())}")
         raise _out_error(out, f"{what}; an output folder is replaced as a whole, so give a "
-                              f"new folder for the outputs, e.g. --out {example}")
+                              f"new folder for the outputs, e.g. {param('out', example)}")
     with contextlib.suppress(OSError):
         found = _find(st, Path.cwd())
         if found is not None:
             what = "is the current folder" if found[0] == 0 else "holds the current folder"
             raise _out_error(out, f"{what}; an output folder is replaced as a whole, so give "
-                                  f"a new folder for the outputs, e.g. --out "
-                                  f"{_suggestion(out)}")
+                                  f"a new folder for the outputs, e.g. "
+                                  f"{param('out', _suggestion(out))}")
     if real.is_dir() and os.path.ismount(real):
         raise _out_error(out, f"is a mount point, which cannot be replaced; give a new folder "
-                              f"inside it, e.g. --out {_suggestion(out)}")
+                              f"inside it, e.g. {param('out', _suggestion(out))}")
 
 
 def check_out(out, *, inputs=(), force: bool = False) -> Path:
@@ -602,7 +602,7 @@ def _clean_stale(real: Path) -> None:
 
 
 @contextlib.contextmanager
-def _signals_deferred():
+def signals_deferred():
     """Hold Ctrl-C and SIGTERM back for the few renames that put a folder in place.
 
     In the main thread, the Python handlers of SIGINT and SIGTERM are swapped for ones that
@@ -749,7 +749,7 @@ def _replace(staging: Path, real: Path, out, force: bool, *, final: bool = True,
     """
     aside, hidden, done = None, True, False
     try:
-        with _signals_deferred():
+        with signals_deferred():
             if os.path.lexists(real):
                 state, extra = _ownership(real)
                 if state in ("foreign", "mixed"):  # the user's files: never deleted
@@ -802,7 +802,7 @@ def _keep_results(out, real: Path, staging: Path, what: str) -> InputError:
     shown = _shown(Path(out).parent / kept.name)
     return _out_error(out, f"{what}, so the folder was left as it was and the new results "
                            f"were kept in {shown}; move them into place yourself, or deal with "
-                           "that and run again (or add --force)")
+                           f"that and run again (or add {param('force', True)})")
 
 
 @contextlib.contextmanager

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from ..model.system import SPECIES
-from .folder import usual_mode
+from .folder import signals_deferred, usual_mode
 
 __all__ = ["SeriesWriter", "write_timeseries", "SERIES_BLOCK_ROWS", "CF_CONVENTIONS",
            "TIME_ORIGIN", "TIME_CALENDAR"]
@@ -199,7 +199,10 @@ class SeriesWriter:
         self.rows_written = 0
         self._file = None
         try:
-            self._file = h5netcdf.File(self._tmp, "w")
+            # a Ctrl-C inside h5netcdf's constructor would leave a half-made File whose
+            # clean-up prints an error at exit: the signal waits until the file is open
+            with signals_deferred():
+                self._file = h5netcdf.File(self._tmp, "w")
             self._write_frame(study, np.asarray(times, dtype=np.float64), seeds)
             chunks = tuple(max(1, int(min(size, limit)))
                            for size, limit in zip(self.shape, _CHUNK_LIMITS))

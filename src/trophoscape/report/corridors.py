@@ -16,10 +16,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ..errors import InputError, param
 from ..workflows.planning import PARTIAL
 from .html import CAUTION
 
-__all__ = ["write_corridors", "write_comparison", "corridor_blocks"]
+__all__ = ["corridors_to_folder", "compare_to_folder", "write_corridors", "write_comparison",
+           "corridor_blocks"]
 
 def _set_json(result, ids):
     if result is None:
@@ -27,6 +29,77 @@ def _set_json(result, ids):
     out = {k: v for k, v in result.items() if k != "chosen"}
     out["chosen"] = [str(ids[c]) for c in result["chosen"]]
     return out
+
+
+def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, layer=None,
+                        links="all", patches=True, screen=None, exhaustive_limit=12,
+                        workers=None, maps: bool = True, force: bool = False,
+                        progress: bool = False) -> dict:
+    """Rank candidate corridors, choose a set within the budget and write the folder: what
+    ``trophoscape corridors`` does.
+
+    Parameters
+    ----------
+    scenario : path or Study
+        The scenario file (or a study built from it).
+    candidates : path
+        The candidate corridors (lines with ``cost``; see the README).
+    out : path
+        The output folder. While the runs go on it holds ``corridors.partial.csv``: running
+        the same call again reads those runs back instead of running them again.
+    budget, weights, screen, exhaustive_limit, workers :
+        As for :func:`trophoscape.workflows.planning.plan_corridors`.
+    layer : str, optional
+        The layer of a candidates file with several.
+    links : "all", None or path
+        Existing links to remove one at a time: every link, none, or those listed in a file
+        (:func:`trophoscape.workflows.planning.read_link_list`).
+    patches : bool
+        Remove each patch one at a time too.
+    maps, force, progress :
+        Draw maps and the report; replace a folder trophoscape did not write (kept, renamed
+        aside); a progress bar on stderr.
+
+    Returns
+    -------
+    dict
+        The plan (see :func:`~trophoscape.workflows.planning.plan_corridors`).
+    """
+    import time
+
+    from ..io.folder import working_folder
+    from ..scenario import input_files
+    from ..workflows.planning import (check_plan_options, plan_corridors, read_candidates,
+                                      read_link_list)
+    from ..workflows.study import Study, load_study
+
+    weights = check_plan_options(budget=budget, screen=screen,
+                                 exhaustive_limit=exhaustive_limit, workers=workers,
+                                 weights=weights)
+    study = scenario if isinstance(scenario, Study) else load_study(scenario)
+    candidates_file = Path(candidates)
+    candidates = read_candidates(candidates_file, study.landscape, layer=layer,
+                                 snap_km=study.scenario["dispersal.corridor_snap_km"])
+    inputs = [*input_files(study.scenario), candidates_file]
+    links_file = None
+    if links is not None and links != "all":
+        links_file = Path(links)
+        links = read_link_list(links_file, study)
+        inputs.append(links_file)
+    out = Path(out)
+    # everything is validated: only now does the output folder appear (for the partial log);
+    # an earlier output folder there stays until the new one is whole, and a folder made
+    # here that got no row is removed again if the call fails
+    with working_folder(out, command="corridors", allow=[PARTIAL], inputs=inputs,
+                        force=force, reuse=True):
+        started = time.perf_counter()
+        plan = plan_corridors(study, candidates, budget=budget, weights=weights, links=links,
+                              patches=patches, screen=screen,
+                              exhaustive_limit=exhaustive_limit, workers=workers,
+                              progress=progress, log=out / PARTIAL, links_file=links_file)
+        plan["timing"]["total_seconds"] = time.perf_counter() - started
+        write_corridors(plan, out, maps=maps, force=force, inputs=inputs, checked=True)
+    return plan
 
 
 def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool = False,
@@ -274,6 +347,42 @@ def _corridors_page(blocks, summary) -> str:
              'maps), is in <a href="report.html">report.html</a> when the maps were drawn.</p>')
     return page_html(f"Corridor planning: {Path(study_name).stem}", body,
                      footer_text(summary["provenance"]))
+
+
+def compare_to_folder(scenarios, out, *, columns=("predator_occupancy", "prey_occupancy"),
+                      maps: bool = True, runs: bool = True, force: bool = False,
+                      progress: bool = False, on_run=None) -> list:
+    """Run several scenarios and set their results side by side: what ``trophoscape
+    compare`` does.
+
+    ``scenarios``: two or more scenario files (or studies), the first being the reference.
+    ``columns``: per-patch columns to difference (a sequence, or ``"a,b"``). ``on_run`` is
+    called as ``on_run(k, n, study)`` before each run (the command line prints it). The
+    output folder is checked before the first run. Returns the list of
+    :class:`~trophoscape.workflows.study.RunResult`.
+    """
+    from ..io.folder import check_out
+    from ..scenario import input_files
+    from ..workflows.study import Study, load_study, run_study
+
+    scenarios = list(scenarios)
+    if len(scenarios) < 2:
+        raise InputError(f"needs at least two scenarios, got {len(scenarios)}; give two "
+                         "or more scenario files, the first being the reference",
+                         field=param("scenarios"))
+    if isinstance(columns, str):
+        columns = [c.strip() for c in columns.split(",") if c.strip()]
+    studies = [s if isinstance(s, Study) else load_study(s) for s in scenarios]
+    inputs = [f for study in studies for f in input_files(study.scenario)]
+    check_out(out, inputs=inputs, force=force)  # before the runs
+    results = []
+    for k, study in enumerate(studies):
+        if on_run is not None:
+            on_run(k, len(studies), study)
+        results.append(run_study(study, progress=progress))
+    write_comparison(results, out, columns=columns, maps=maps, runs=runs, force=force,
+                     checked=True)
+    return results
 
 
 def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occupancy"),

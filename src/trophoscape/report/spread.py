@@ -6,7 +6,46 @@ from __future__ import annotations
 
 from pathlib import Path
 
-__all__ = ["write_spread", "SPREAD_COLUMNS"]
+from ..errors import InputError, param
+
+__all__ = ["spread_to_folder", "write_spread", "SPREAD_COLUMNS"]
+
+def spread_to_folder(scenario, out, *, origins=None, workers=None, maps: bool = True,
+                     geojson: bool = False, force: bool = False, progress: bool = False):
+    """Follow a shock's collapse through the network and write the folder: what
+    ``trophoscape spread`` does.
+
+    ``origins``: None (no origin scan), ``"all"`` (every patch as an origin) or a number of
+    origins (at least 1) spread over the landscape
+    (:func:`~trophoscape.workflows.spread.stratified_origins`, seeded by ``run.seed``).
+    The output folder is checked before the runs. Returns the
+    :class:`~trophoscape.workflows.spread.SpreadResult`.
+    """
+    from ..io.folder import check_out
+    from ..scenario import input_files
+    from ..workflows.spread import origin_scan, run_spread, stratified_origins
+    from ..workflows.study import Study, load_study
+    from ..workflows.tasks import check_workers
+
+    if origins is not None and origins != "all" and (
+            isinstance(origins, bool) or not isinstance(origins, int) or origins < 1):
+        raise InputError(f"{origins!r} is not a whole number of at least 1 or 'all'; give "
+                         f"e.g. {param('origins', 50)}, or {param('origins', 'all')}",
+                         field=param("origins"))
+    check_workers(workers)
+    study = scenario if isinstance(scenario, Study) else load_study(scenario)
+    check_out(out, inputs=input_files(study.scenario), force=force)  # before the runs
+    result = run_spread(study, progress=progress)
+    scan = None
+    if origins is not None:
+        chosen = (None if origins == "all" else
+                  stratified_origins(study.landscape.centroids, origins,
+                                     seed=study.scenario["run.seed"]))
+        scan = origin_scan(study, chosen, workers=workers, progress=progress)
+    write_spread(study, result, out, scan=scan, maps=maps, geojson=geojson, force=force,
+                 checked=True)
+    return result
+
 
 def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
                  force=False, checked=False) -> Path:

@@ -8,7 +8,7 @@ import os
 from pathlib import Path
 from typing import Mapping, Sequence
 
-from ..errors import InputError, RunError
+from ..errors import InputError, RunError, param
 from ..io.folder import write_atomic
 from ..workflows.sweep import (KEY_RESULTS, LEDGER_NAME, SWEEP_NAMES, TABLE_NAME, WORKING_NAMES,
                                plan_sweep, run_ledger)
@@ -128,10 +128,10 @@ def sweep(scenario_path, variants_or_vary_specs=None, *, out, replicates: int = 
     out = Path(out)
     ledger_path = out / LEDGER_NAME
     if ledger_path.exists() and not resume and not force:
-        raise InputError("a sweep ledger is already here; add --resume to continue that "
-                         "sweep, add --force to start a new sweep in its place (its finished "
-                         "runs are then deleted), or give another --out folder",
-                         file=ledger_path, field="--out")
+        raise InputError(f"a sweep ledger is already here; add {param('resume', True)} to "
+                         f"continue that sweep, add {param('force', True)} to start a new "
+                         "sweep in its place (its finished runs are then deleted), or give "
+                         f"another {param('out')} folder", file=ledger_path, field=param("out"))
     # the ledger lives in the output folder from the first run on
     with working_folder(out, command="sweep", allow=SWEEP_NAMES, force=force,
                         reuse=resume and ledger_path.exists(), checked=True):

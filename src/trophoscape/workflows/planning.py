@@ -47,7 +47,7 @@ import numpy as np
 import pandas as pd
 import shapely
 
-from ..errors import InputError, RunError
+from ..errors import InputError, RunError, param
 from ..model.network import (KERNELS, Network, movement_operator, snap_line_ends,
                                        with_links, without)
 from ..model.system import SPECIES, CoupledSystem
@@ -237,18 +237,18 @@ def parse_weights(text) -> dict:
             close = difflib.get_close_matches(name, list(OBJECTIVES), n=1)
             hint = f" (did you mean {close[0]!r}?)" if close else ""
             raise InputError(f"unknown objective {name!r}{hint}; expected NAME=WEIGHT with NAME "
-                             f"one of {', '.join(OBJECTIVES)}", field="--weights")
+                             f"one of {', '.join(OBJECTIVES)}", field=param("weights"))
         try:
             number = float(value)
         except (TypeError, ValueError):
             number = math.nan
         if not math.isfinite(number):
             raise InputError(f"weight {value!r} of {name} is not a number; expected "
-                             "NAME=WEIGHT, e.g. predator_persistence=1", field="--weights")
+                             "NAME=WEIGHT, e.g. predator_persistence=1", field=param("weights"))
         weights[name] = number
     if not any(w != 0 for w in weights.values()):
         raise InputError("every weight is zero; give at least one objective a weight",
-                         field="--weights")
+                         field=param("weights"))
     return weights
 
 
@@ -748,7 +748,8 @@ class Planner:
         if pool.size > limit:
             raise InputError(f"{pool.size} candidates are too many for an exhaustive search "
                              f"(2^{pool.size} runs); at most {limit}: simulate fewer with "
-                             "--screen K, or rely on the greedy set", field="--exhaustive")
+                             f"{param('screen', 'K')}, or rely on the greedy set",
+                             field=param("exhaustive_limit"))
         masks = np.arange(1, 1 << pool.size, dtype=np.int64)
         bits = (masks[:, None] >> np.arange(pool.size)) & 1
         total = bits @ cost[pool] if pool.size else np.zeros(0)
@@ -924,7 +925,7 @@ def patch_differences(reference, other, columns=("predator_occupancy", "prey_occ
         if c not in a.columns or c not in b.columns:
             raise InputError(f"no per-patch column {c!r} in both runs; expected one of "
                              f"{', '.join(sorted(set(a.columns) & set(b.columns)))}",
-                             field="--columns")
+                             field=param("columns"))
         va = a.loc[shared, c].astype(float).to_numpy()
         vb = b.loc[shared, c].astype(float).to_numpy()
         out[f"{c}_reference"] = va
@@ -985,10 +986,38 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
     return pairs
 
 
+def check_plan_options(*, budget, screen=None, exhaustive_limit=12, workers=None,
+                       weights=None) -> dict:
+    """Refuse options a corridor plan cannot use, before anything runs; return the weights
+    (:func:`parse_weights`)."""
+    from .tasks import check_workers
+
+    if isinstance(budget, bool) or not isinstance(budget, (int, float)) \
+            or not math.isfinite(budget) or budget < 0:
+        raise InputError(f"{budget!r} is out of range; give the total cost the chosen set "
+                         "may reach, a number of at least 0 in the unit of 'cost'",
+                         field=param("budget"))
+    if screen is not None and (isinstance(screen, bool) or int(screen) != screen or screen < 1):
+        raise InputError(f"{screen} is out of range; give how many candidates to "
+                         "simulate, a whole number of at least 1", field=param("screen"))
+    if isinstance(exhaustive_limit, bool) or int(exhaustive_limit) != exhaustive_limit \
+            or exhaustive_limit < 0:
+        raise InputError(f"{exhaustive_limit} is out of range; give a whole number of at "
+                         "least 0 (0 turns the exhaustive search off)",
+                         field=param("exhaustive_limit"))
+    check_workers(workers)
+    return parse_weights(weights)
+
+
 def plan_corridors(study, candidates, *, budget, weights=None, links="all", patches=True,
                    screen=None, exhaustive_limit=12, workers=None, progress=False, log=None,
                    links_file=None):
     """Every step of the ``corridors`` command, without writing files.
+
+    ``budget`` (at least 0, in the unit of the candidates' cost), ``screen`` (at least 1, or
+    None for every candidate), ``exhaustive_limit`` (at least 0; 0 turns the exhaustive
+    search off), ``workers`` (at least 1, or None for every core) and ``weights`` (a mapping
+    or ``"NAME=WEIGHT,..."``) are checked here (:func:`check_plan_options`).
 
     ``links_file``: the file ``links`` was read from (:func:`read_link_list`), an input the
     output folder must not hold (kept in the plan as ``links_file``).
@@ -1001,7 +1030,8 @@ def plan_corridors(study, candidates, *, budget, weights=None, links="all", patc
         (or None), ``best`` (the set reported as chosen), ``gap``, ``screened`` (positions
         simulated, or None), ``budget``, ``timing``.
     """
-
+    weights = check_plan_options(budget=budget, screen=screen, exhaustive_limit=exhaustive_limit,
+                                 workers=workers, weights=weights)
     timing = {}
     t = time.perf_counter()
     planner = Planner(study, candidates, weights=weights, workers=workers, progress=progress,

@@ -43,13 +43,16 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
-from ..errors import InputError
+from ..errors import InputError, param
 from ..io.folder import write_atomic
 from ..integrate.noise import replicate_seeds
 
 __all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "run_point", "Ledger",
            "SweepRun", "flatten_summary", "run_id_of", "KEY_RESULTS",
            "LEDGER_NAME", "TABLE_NAME"]
+
+#: The sweep's parameter of varied values (``--vary`` on the command line), in messages.
+VARY = param("variants_or_vary_specs")
 
 LEDGER_NAME = "ledger.sqlite"
 TABLE_NAME = "sweep.csv"
@@ -157,7 +160,7 @@ def parse_vary(arg: str) -> tuple[str, list]:
     >>> parse_vary("dispersal.kernel=exponential,gaussian")
     ('dispersal.kernel', ['exponential', 'gaussian'])
     """
-    field = f"--vary {arg}"
+    field = f"{VARY} {arg}"
     key, eq, spec = arg.partition("=")
     key, spec = key.strip(), spec.strip()
     if not eq or not key:
@@ -226,19 +229,19 @@ def read_sweep_table(path) -> list[dict]:
             rows = list(csv.reader(fh))
     except FileNotFoundError:
         raise InputError("sweep table not found; check the path", file=path,
-                         field="--table") from None
+                         field=param("table")) from None
     except (OSError, UnicodeDecodeError, csv.Error) as exc:
         raise InputError(f"cannot read the sweep table ({exc}); save it as a CSV text file",
-                         file=path, field="--table") from None
+                         file=path, field=param("table")) from None
     rows = [r for r in rows if any(c.strip() for c in r)]
     if not rows:
         raise InputError("the sweep table is empty; give a header of scenario keys and one "
-                         "row per point", file=path, field="--table")
+                         "row per point", file=path, field=param("table"))
     header = [h.strip() for h in rows[0]]
     for h in header:
         if not h:
             raise InputError("empty column name in the header; head every column with a "
-                             "scenario key, e.g. prey.growth_rate", file=path, field="--table")
+                             "scenario key, e.g. prey.growth_rate", file=path, field=param("table"))
         _check_key(h, file=path, field=h)
     if len(set(header)) != len(header):
         dup = next(h for h in header if header.count(h) > 1)
@@ -246,12 +249,12 @@ def read_sweep_table(path) -> list[dict]:
                          field=dup)
     if len(rows) == 1:
         raise InputError("the sweep table has a header but no rows; add one row per point",
-                         file=path, field="--table")
+                         file=path, field=param("table"))
     points, seen = [], {}
     for i, row in enumerate(rows[1:]):
         if len(row) != len(header):
             raise InputError(f"has {len(row)} cells, the header {len(header)}; give every row "
-                             "one cell per column", file=path, feature=i, field="--table")
+                             "one cell per column", file=path, feature=i, field=param("table"))
         point = {}
         for h, cell in zip(header, row):
             if not cell.strip():
@@ -261,7 +264,7 @@ def read_sweep_table(path) -> list[dict]:
         marker = json.dumps(point, sort_keys=True)
         if marker in seen:
             raise InputError(f"repeats row {seen[marker]}; give each point once", file=path,
-                             feature=i, field="--table")
+                             feature=i, field=param("table"))
         seen[marker] = i
         points.append(point)
     return points
@@ -329,7 +332,7 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
 
     ``spec`` is a list of --vary strings (a ``.csv`` path among them is a sweep table), a
     dict of value lists, or a list of dicts (explicit points); groups combine as a Cartesian
-    product. ``origins[key]`` is ``("--vary", argument)`` or ``("--table", path, rows)``.
+    product. ``origins[key]`` is ``("vary", argument)`` or ``("table", path, rows)``.
     """
     groups: list[tuple[list[str], list[dict]]] = []
     origins: dict[str, tuple] = {}
@@ -338,7 +341,7 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
         rows = read_sweep_table(path)
         groups.append((list(rows[0]), rows))
         for k in rows[0]:
-            origins.setdefault(k, ("--table", Path(path), rows))
+            origins.setdefault(k, ("table", Path(path), rows))
 
     if table is not None:
         add_table(table)
@@ -348,13 +351,13 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
         spec = [spec]
     if isinstance(spec, Mapping):
         for key, values in spec.items():
-            _check_key(key, field=f"--vary {key}")
+            _check_key(key, field=f"{VARY} {key}")
             values = list(values) if isinstance(values, (list, tuple, range)) else [values]
             if not values:
                 raise InputError("no values; give KEY=VALUES, e.g. prey.growth_rate=0.5,1,1.5",
-                                 field=f"--vary {key}")
+                                 field=f"{VARY} {key}")
             groups.append(([key], [{key: v} for v in values]))
-            origins.setdefault(key, ("--vary", key))
+            origins.setdefault(key, ("vary", key))
     else:
         spec = list(spec)
         if spec and all(isinstance(s, Mapping) for s in spec):
@@ -362,28 +365,28 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
             for i, point in enumerate(spec):
                 if list(point) != keys:
                     raise InputError(f"point {i} has keys {list(point)}, point 0 has {keys}; "
-                                     "give every point the same keys", field="variants")
+                                     "give every point the same keys", field=VARY)
                 for k in keys:
-                    _check_key(k, field="variants")
-                    origins.setdefault(k, ("--vary", k))
+                    _check_key(k, field=VARY)
+                    origins.setdefault(k, ("vary", k))
             groups.append((keys, [dict(p) for p in spec]))
         else:
             for s in spec:
                 if isinstance(s, Mapping):
-                    raise InputError("give either --vary strings or a list of dicts, not both",
-                                     field="variants")
+                    raise InputError(f"give either {VARY} strings or a list of dicts, not both",
+                                     field=VARY)
                 if isinstance(s, os.PathLike) or (str(s).endswith(".csv") and "=" not in str(s)):
                     add_table(s)
                     continue
                 key, values = parse_vary(str(s))
                 groups.append(([key], [{key: v} for v in values]))
-                origins.setdefault(key, ("--vary", str(s)))
+                origins.setdefault(key, ("vary", str(s)))
     keys: list[str] = []
     for group_keys, _ in groups:
         for k in group_keys:
             if k in keys:
                 raise InputError(f"the key {k!r} is varied twice; give all its values in one "
-                                 "--vary", field=f"--vary {k}")
+                                 f"{VARY}", field=f"{VARY} {k}")
             keys.append(k)
     if not groups:
         return [], [{}], origins
@@ -392,7 +395,7 @@ def _as_points(spec, *, table=None) -> tuple[list[str], list[dict], dict]:
         sizes = " × ".join(f"{len(rows):,}" for _, rows in groups)
         raise InputError(f"the sweep would have {sizes} = {total:,} points, more than the "
                          f"{MAX_SWEEP_RUNS:,} runs a sweep may have; vary fewer values",
-                         field="--vary")
+                         field=VARY)
     points = [dict(itertools.chain.from_iterable(p.items() for p in combo))
               for combo in itertools.product(*(rows for _, rows in groups))]
     return keys, points, origins
@@ -410,13 +413,13 @@ def _value_error(scenario, exc: InputError, point: dict, origins: dict) -> Input
             _scenario_for(scenario.text, scenario.path, scenario.base_dir, {key: point[key]})
         except InputError as alone:
             origin = origins[key]
-            if origin[0] == "--vary":
-                return InputError(f"{key}: {alone.message}", field=f"--vary {origin[1]}")
+            if origin[0] == "vary":
+                return InputError(f"{key}: {alone.message}", field=f"{VARY} {origin[1]}")
             _, path, rows = origin
             row = next(i for i, r in enumerate(rows) if r.get(key) == point[key])
             return InputError(alone.message, file=path, feature=row, field=key)
     return InputError(f"the point {_describe(point)} is not a valid scenario: "
-                      f"{exc.field}: {exc.message}", file=scenario.path, field="--vary")
+                      f"{exc.field}: {exc.message}", file=scenario.path, field=VARY)
 
 
 def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 1,
@@ -440,14 +443,14 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
     scenario = read_scenario(scenario_path)
     if isinstance(replicates, bool) or not isinstance(replicates, int) or replicates < 1:
         raise InputError(f"{replicates!r} is not a whole number of at least 1; give the "
-                         "number of replicates per point, e.g. --replicates 10",
-                         field="--replicates")
+                         f"number of replicates per point, e.g. {param('replicates', 10)}",
+                         field=param("replicates"))
     keys, points, origins = _as_points(variants_or_vary_specs, table=table)
     if len(points) * replicates > MAX_SWEEP_RUNS:
         raise InputError(f"{len(points):,} points × {replicates:,} replicates = "
                          f"{len(points) * replicates:,} runs, more than the "
                          f"{MAX_SWEEP_RUNS:,} a sweep may have; run fewer replicates or "
-                         "points", field="--replicates")
+                         "points", field=param("replicates"))
     runs = []
     checked_files: dict = {}
     base_dir = str(Path(scenario.base_dir).resolve())
@@ -460,13 +463,13 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
             raise _value_error(scenario, exc, point, origins) from None
         except TypeError:
             raise InputError(f"the point {_describe(point)} holds a value a scenario cannot "
-                             "hold (numbers, words, true/false)", field="--vary") from None
+                             "hold (numbers, words, true/false)", field=VARY) from None
         # The validated value is the canonical one (5 and 5.0 are the same distance).
         canonical = tuple((k, _canonical(sc[k], point[k])) for k in keys)
         if canonical in seen_points:
             raise InputError(f"the points {_describe(seen_points[canonical])} and "
                              f"{_describe(point)} are the same scenario; give each once",
-                             field="--vary")
+                             field=VARY)
         seen_points[canonical] = point
         _check_point_inputs(sc, point, checked_files)
         for r, seed in enumerate(replicate_seeds(sc["run.seed"], replicates)):
@@ -719,21 +722,21 @@ def run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks,
         meta = ledger.meta()
     except sqlite3.DatabaseError as exc:
         raise InputError(f"the sweep's ledger cannot be read ({exc}); it is damaged or not a "
-                         "trophoscape ledger; start the sweep again in another --out folder",
+                         f"trophoscape ledger; start the sweep again in another {param('out')} folder",
                          file=ledger_path,
-                         field="--resume") from None
+                         field=param("resume")) from None
     try:
         started = {"format": LEDGER_FORMAT, "scenario_sha256": scenario.sha256,
                    "keys": json.dumps(keys)}
         if meta:
             if meta.get("scenario_sha256") != scenario.sha256:
                 raise InputError("the scenario file changed since this sweep began; restore "
-                                 "it, or start the new sweep in another --out folder",
-                                 file=ledger_path, field="--resume")
+                                 f"it, or start the new sweep in another {param('out')} folder",
+                                 file=ledger_path, field=param("resume"))
             if meta.get("keys") != started["keys"]:
                 raise InputError(f"this sweep varies {json.loads(meta['keys'])}, not {keys}; "
-                                 "vary the same keys, or use another --out folder",
-                                 file=ledger_path, field="--resume")
+                                 f"vary the same keys, or use another {param('out')} folder",
+                                 file=ledger_path, field=param("resume"))
         else:
             ledger.set_meta(**started, created=_now())
         done = ledger.ok_ids()

@@ -38,9 +38,9 @@ from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Callable, Iterable
 
-from ..errors import InputError
+from ..errors import InputError, param
 
-__all__ = ["run_tasks", "default_workers"]
+__all__ = ["run_tasks", "default_workers", "check_workers"]
 
 #: Tasks kept in flight per local worker: enough to keep a worker busy between results,
 #: few enough that a broken pool only has to re-run a handful.
@@ -119,6 +119,15 @@ def _init_worker(parent_pid: int | None) -> None:
     _exit_with_parent(parent_pid)
 
 
+def check_workers(workers) -> None:
+    """Refuse a number of local processes below 1 (None: every core)."""
+    if workers is not None and (isinstance(workers, bool) or int(workers) != workers
+                                or workers < 1):
+        raise InputError(f"{workers} is out of range; give a whole number of at least 1, "
+                         f"or leave {param('workers')} out to use every core",
+                         field=param("workers"))
+
+
 def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
               workers: int | None = None, scheduler: str | None = None,
               dask_local: int | None = None, retries: int = 2, progress: bool = True,
@@ -159,10 +168,8 @@ def run_tasks(fn: Callable[[Any], Any], tasks: Iterable, *, on_result: Callable,
         if scheduler is not None or dask_local is not None:
             _run_dask(fn, tasks, on_result, scheduler, dask_local, retries, bar)
             return
+        check_workers(workers)
         workers = default_workers() if workers is None else int(workers)
-        if workers < 1:
-            raise InputError(f"{workers} is out of range; give a whole number of at least 1, "
-                             "or leave --workers out to use every core", field="--workers")
         if workers == 1 or len(tasks) <= 1:
             for task in tasks:
                 on_result(task, *_call(fn, task))
@@ -264,7 +271,7 @@ def _run_dask(fn, tasks, on_result, scheduler, dask_local, retries, bar):
         from dask.distributed import Client, LocalCluster, as_completed
     except ImportError:
         raise InputError('needs Dask: pip install "trophoscape[dask]"',
-                         field="--scheduler" if scheduler else "--dask-local") from None
+                         field=param("scheduler" if scheduler else "dask_local")) from None
     cluster = None
     client = None
     futures = []
@@ -272,7 +279,7 @@ def _run_dask(fn, tasks, on_result, scheduler, dask_local, retries, bar):
         if scheduler is None:
             if int(dask_local) < 1:
                 raise InputError(f"{dask_local} is out of range; give the number of local Dask "
-                                 "workers, a whole number of at least 1", field="--dask-local")
+                                 "workers, a whole number of at least 1", field=param("dask_local"))
             # A task is moved off a lost worker this many times before it counts as failed.
             with dask.config.set({"distributed.scheduler.allowed-failures": int(retries)}):
                 cluster = LocalCluster(n_workers=int(dask_local), threads_per_worker=1,
@@ -285,7 +292,7 @@ def _run_dask(fn, tasks, on_result, scheduler, dask_local, retries, bar):
             except (OSError, TimeoutError, ValueError) as exc:
                 raise InputError(f"cannot reach a Dask scheduler at {scheduler!r} ({exc}); "
                                  "start one with `dask scheduler` and give its tcp:// address",
-                                 field="--scheduler") from None
+                                 field=param("scheduler")) from None
         # ``retries`` covers a task that raises on the worker outside ``_call`` (for example
         # when the task cannot be unpickled there); a lost worker is the scheduler's job.
         futures = client.map(_call, [fn] * len(tasks), tasks, retries=retries, pure=False)

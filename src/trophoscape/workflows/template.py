@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from ..errors import InputError
+from ..errors import InputError, param
 from ..io.folder import write_atomic
 from ..model.landscape import read_attributes
 
@@ -21,10 +21,10 @@ def find_patch_file(folder: Path) -> Path:
     found = sorted(p for p in Path(folder).iterdir() if p.suffix.lower() in PATCH_SUFFIXES)
     if not found:
         raise InputError("no patch file here; expected a .geojson, .gpkg or .shp file, or "
-                         "name one with --patches", file=folder)
+                         f"name one with {param('patches')}", file=folder)
     if len(found) > 1:
         names = ", ".join(p.name for p in found)
-        raise InputError(f"several patch files ({names}); choose one with --patches",
+        raise InputError(f"several patch files ({names}); choose one with {param('patches')}",
                          file=folder)
     return found[0]
 
@@ -154,7 +154,7 @@ def write_template(folder, *, patches=None, name="scenario.toml", force=False) -
                          "polygon", file=patch_file)
     target = folder / name
     if target.exists() and not force:
-        raise InputError("already exists; use --force to replace it", file=target)
+        raise InputError(f"already exists; use {param('force', True)} to replace it", file=target)
     text = scenario_template(patch_file.resolve(), table, relative_to=folder.resolve())
     return write_atomic(target, text)
 
