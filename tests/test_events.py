@@ -342,7 +342,8 @@ def test_order_rule_for_each_response_and_growth_form():
         ("logistic", "beddington_deangelis"): (two, 2.0),
     }
     for (growth, response), (prey, pred) in cases.items():
-        g = events._species_order(growth, 2, response)(x)
+        model = make_model(2, growth=growth, response=response)
+        g = events._species_order(model, 2)(x)
         assert np.allclose(g, np.r_[prey, np.full(2, pred)]), (growth, response)
     # and the model's channels use the rule of their own response
     system = make_system(make_model(2, response="holling3"))

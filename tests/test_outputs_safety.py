@@ -708,6 +708,35 @@ def _wait_until_the_command_runs(proc, timeout=60.0) -> None:
         time.sleep(0.005)
 
 
+def test_an_error_that_a_ctrl_c_caused_ends_as_the_stop(tmp_path, monkeypatch, capsys):
+    # Python wraps a KeyboardInterrupt raised while a class is created (a lazy import of a
+    # module defining a dataclass) in a RuntimeError; the recorded stop wins: exit 130, one
+    # line, no traceback (seen once in the random-moment test below)
+    from trophoscape import errors
+
+    write_valley(tmp_path)
+    before = snapshot(tmp_path)
+
+    def interrupted_import(*args, **kwargs):
+        errors.note_stop(KeyboardInterrupt)
+        raise RuntimeError("Error calling __set_name__ on 'Field' instance")
+
+    monkeypatch.setattr(run_folder, "run_to_folder", interrupted_import)
+    code, err = main_here(tmp_path, monkeypatch, capsys, "run", "s.toml", "--out", "out",
+                          "--quiet")
+    assert code == 130 and err == ["interrupted; no output was written"]
+    assert snapshot(tmp_path) == before
+
+
+def test_the_warning_printer_is_the_commands_only(tmp_path, monkeypatch, capsys):
+    import warnings
+
+    write_valley(tmp_path)
+    mine = warnings.showwarning
+    code, _ = main_here(tmp_path, monkeypatch, capsys, "check", "s.toml")
+    assert code == 0 and warnings.showwarning is mine
+
+
 def test_ctrl_c_at_random_moments_always_stops_the_run(tmp_path):
     # 20 runs of a few seconds, each sent SIGINT at a random moment from when the command
     # has begun its work (the interpreter's own start-up comes first: no program can handle

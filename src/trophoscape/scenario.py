@@ -81,12 +81,15 @@ def _number(lo=None, hi=None, *, lo_open=False, integer=False):
     return check
 
 
-def _choice(*options):
+def _choice(*options, table=None):
+    """A check that a value is one of ``options`` (or, with ``table``, one of its keys as
+    they are when the value is checked, so that forms registered later count)."""
     def check(v):
-        if v not in options:
-            close = (difflib.get_close_matches(v, [str(o) for o in options], n=1, cutoff=0.6)
+        allowed = tuple(table) if table is not None else options
+        if v not in allowed:
+            close = (difflib.get_close_matches(v, [str(o) for o in allowed], n=1, cutoff=0.6)
                      if isinstance(v, str) else [])
-            choices = ", ".join(repr(o) for o in options)
+            choices = ", ".join(repr(o) for o in allowed)
             if close:
                 return f"{v!r} is not one of {choices}; did you mean {close[0]!r}?"
             return f"{v!r} is not one of the choices; give one of {choices}"
@@ -143,7 +146,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "layer": Key(None, _text(optional=True), doc="layer of a GeoPackage"),
     },
     "prey": {
-        "growth": Key("logistic", _choice(*GROWTH_FORMS)),
+        "growth": Key("logistic", _choice(table=GROWTH_FORMS)),
         "growth_rate": Key(1.0, _nonneg, per_patch=True),
         "capacity_density": Key(50.0, _pos, per_patch=True),
         "allee_density": Key(5.0, _pos, per_patch=True),
@@ -159,7 +162,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "initial_density": Key(2.0, _number_or("equilibrium", lo=0), per_patch=True),
     },
     "predation": {
-        "response": Key("holling2", _choice(*RESPONSES)),
+        "response": Key("holling2", _choice(table=RESPONSES)),
         "attack_rate": Key(1.0, _nonneg, per_patch=True),
         "handling_time": Key(0.2, _nonneg, per_patch=True),
         "interference": Key(0.0, _nonneg, per_patch=True),

@@ -65,7 +65,7 @@ def practical_warnings(study) -> list[str]:
         out.append(f"{len(isolated)} patch(es) have no link ({_some(isolated)}): nothing moves "
                    f"in or out, so a local extinction there is permanent. {fix}")
     threshold = sc["run.extinction_abundance"]
-    if threshold > 0 and sc["prey.growth"] != "exponential":
+    if threshold > 0 and "capacity" in model.growth_form.needs:
         small = model.params["capacity"] * area < threshold
         if small.any():
             out.append(f"{int(small.sum())} patch(es) hold fewer than {threshold:g} prey even at "

@@ -204,8 +204,9 @@ def main(argv=None, *, last: bool = False) -> int:
     with _sigterm_as_interrupt(state, last=last):
         try:
             args = _parser().parse_args(argv)
-            warnings.showwarning = _show_warning
-            code = _main(args)
+            with warnings.catch_warnings():  # the printer is the command's, not the process's
+                warnings.showwarning = _show_warning
+                code = _main(args)
             state["done"] = True
             return code
         except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (errors.Terminated)
@@ -255,7 +256,13 @@ def _main(args) -> int:
             from ..io.folder import out_argument
 
             args.out = out_argument(args.out)
-        code = _dispatch(args)
+        try:
+            code = _dispatch(args)
+        except BaseException:
+            # an error raised because of a Ctrl-C is the stop (Python wraps a
+            # KeyboardInterrupt raised during a class's creation in a RuntimeError, for one)
+            raise_if_stopped()
+            raise
         raise_if_stopped()  # a Ctrl-C that Python swallowed still ends the command as one
         return code
     except InputError as exc:

@@ -111,23 +111,10 @@ __all__ = ["local_propensities"]
 
 
 # ------------------------------------------------------------------------- demographic
-def _growth_split(growth: str, n, q):
-    """Prey births and deaths (per km², per time) whose difference is the growth form."""
-    r = q["growth_rate"]
-    if growth == "exponential":
-        return r * n, np.zeros_like(n)
-    if growth == "logistic":
-        return r * n, r * n * n / q["capacity"]
-    if growth == "allee":
-        k, t = q["capacity"], q["allee_density"]
-        return r * n * (n / t + n / k), r * n * (1.0 + n * n / (t * k))
-    raise ValueError(f"no birth/death split for growth form {growth!r}")  # pragma: no cover
-
-
 def _local_rates(model: LocalModel, q, n, p) -> tuple:
     """The six local propensities (density per time) in the order of ``_LOCAL_ORDER``, from
     parameters ``q`` shaped like ``n`` (or scalars)."""
-    births, deaths = _growth_split(model.growth, n, q)
+    births, deaths = model.growth_form.split(n, q)
     eaten = model.functional_response.value(n, p, q) * p
     # environmental noise adds to per-capita rates (trophoscape.integrate.noise), so a removal rate
     # can turn negative: its negative part is then a birth rate, and the expected change
@@ -571,31 +558,25 @@ def advance_events(x, t, t_end, channels: Channels, rng, *, stats=None,
     return x
 
 
-def _species_order(growth: str, n_patches: int, response: str = "holling2"):
+def _species_order(model, n_patches: int):
     """``order(x) -> g``, shape (2 n,), of the Cao–Gillespie–Petzold (2006) rule.
 
     ``g_i`` is the order of the highest-order channel that reads species ``i``, raised
     where that channel needs several individuals of ``i``: second order with two of ``i``,
     ``2 + 1/(x-1)``; third order with two of ``i``, ``(3/2)(2 + 1/(x-1))``; third order with
     three, ``3 + 1/(x-1) + 2/(x-2)``; one individual of ``i`` in a channel of order ``k``:
-    ``k``. Prey: logistic deaths ``r N²/(K A)`` need two prey, the strong Allee form's deaths
-    three; predation ``f(n) p`` is second order with one prey and one predator, except
-    Holling type III, ``∝ N² P`` at low density: third order with two prey and one
-    predator. Predators: 2 (3 with Holling type III).
+    ``k``. Prey: the larger of the growth form's order (``GrowthForm.prey_order``: logistic
+    deaths ``r N²/(K A)`` need two prey, the strong Allee form's deaths three) and the
+    response's (``Response.prey_order``: predation ``f(n) p`` is second order with one prey
+    and one predator, Holling type III ``∝ N² P`` at low density third order with two prey).
+    Predators: ``Response.predator_order`` (2; 3 with Holling type III).
     """
-    cubic_response = response == "holling3"
-    pred = np.full(n_patches, 3.0 if cubic_response else 2.0)
+    growth, response = model.growth_form, model.functional_response
+    pred = np.full(n_patches, float(response.predator_order))
 
     def order(x):
         xp = np.maximum(np.asarray(x[:n_patches], dtype=float), 3.0)
-        if growth == "allee":
-            prey = 3.0 + 1.0 / (xp - 1.0) + 2.0 / (xp - 2.0)
-        elif growth == "logistic":
-            prey = 2.0 + 1.0 / (xp - 1.0)
-        else:  # exponential: births and harvest first order, predation second
-            prey = np.full(n_patches, 2.0)
-        if cubic_response:
-            prey = np.maximum(prey, 1.5 * (2.0 + 1.0 / (xp - 1.0)))
+        prey = np.maximum(growth.prey_order(xp), response.prey_order(xp))
         return np.concatenate([prey, pred])
 
     return order
@@ -701,7 +682,7 @@ def event_channels(system, like=None) -> Channels:
                             (reads[reads >= 0], by[reads >= 0])), shape=(2 * n, k))
 
     channels = Channels(rates=_model_rates(model, area, prey, pred), change=change,
-                        consumer=minus, order=_species_order(model.growth, n, model.response),
+                        consumer=minus, order=_species_order(model, n),
                         depends=depends)
     return _tag(channels, system, prey, pred)
 

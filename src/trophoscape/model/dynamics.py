@@ -11,9 +11,12 @@ The local equations, in prey density ``n`` and predator density ``p``::
 
 with ``g`` a growth form and ``f`` a functional response (predation per predator).
 
-Growth forms and responses are small objects with the same interface (``value`` and its
-partial derivatives), held in the tables ``GROWTH_FORMS`` and ``RESPONSES``; adding one is
-adding an entry (see DEVELOPERS.md).
+Growth forms and responses are small classes, each holding everything the tool needs of it:
+its equation and partial derivatives, the split into births and deaths that demographic noise
+draws from, the order of its events for the leap-size rule, the words the report uses, the
+checks of its parameters and what it gives the closed-form equilibrium. They are held in the
+tables ``GROWTH_FORMS`` and ``RESPONSES``; adding one is writing one class and registering
+it (:func:`register_growth_form`, :func:`register_response`; see DEVELOPERS.md).
 """
 
 from __future__ import annotations
@@ -26,6 +29,10 @@ import numpy as np
 __all__ = [
     "GROWTH_FORMS",
     "RESPONSES",
+    "GrowthForm",
+    "Response",
+    "register_growth_form",
+    "register_response",
     "LocalModel",
     "Exponential",
     "Logistic",
@@ -40,10 +47,25 @@ __all__ = [
 
 # --------------------------------------------------------------------------- growth forms
 class GrowthForm:
-    """Prey growth ``g(n)`` per unit area; ``params`` holds per-patch arrays."""
+    """Prey growth ``g(n)`` per unit area; ``q`` holds per-patch parameter arrays.
+
+    A subclass sets ``name`` (the scenario's ``prey.growth`` value), ``needs`` (parameters,
+    keys of ``PARAMETER_KEYS``) and writes ``value``, ``dn``, ``split`` and ``prey_order``;
+    the other attributes have defaults.
+    """
 
     name: ClassVar[str]
     needs: ClassVar[tuple[str, ...]]
+    #: How the report names the form ("Prey grow by the WORDS form"); default: ``name``.
+    words: ClassVar[str | None] = None
+    #: Parameters that must be above 0 in every patch (checked when a study is built).
+    positive: ClassVar[tuple[str, ...]] = ()
+    #: Parameters that must lie below the carrying capacity in every patch, and how a
+    #: message names each ("the Allee threshold").
+    below_capacity: ClassVar[dict[str, str]] = {}
+    #: Whether :func:`interior_equilibrium` may take ``p* = g(n*) / f(n*)`` as the
+    #: coexistence equilibrium (one interior equilibrium).
+    closed_form_equilibrium: ClassVar[bool] = False
 
     @staticmethod
     def value(n, q):  # pragma: no cover - interface
@@ -53,12 +75,26 @@ class GrowthForm:
     def dn(n, q):  # pragma: no cover - interface
         raise NotImplementedError
 
+    @staticmethod
+    def split(n, q):  # pragma: no cover - interface
+        """``(births, deaths)``, both >= 0, whose difference is ``value`` (demographic noise
+        draws the two as separate events)."""
+        raise NotImplementedError
+
+    @staticmethod
+    def prey_order(x):  # pragma: no cover - interface
+        """Order of the highest-order growth event in the prey count ``x`` (>= 3), as the
+        leap-size rule of Cao, Gillespie & Petzold (2006) takes it: 1 for a first-order
+        event, ``2 + 1/(x-1)`` for a second-order one needing two prey, and so on."""
+        raise NotImplementedError
+
 
 class Exponential(GrowthForm):
     """Exponential growth ``g(n) = r n`` (Malthus 1798; common practice)."""
 
     name = "exponential"
     needs = ("growth_rate",)
+    closed_form_equilibrium = True
 
     @staticmethod
     def value(n, q):
@@ -68,12 +104,22 @@ class Exponential(GrowthForm):
     def dn(n, q):
         return q["growth_rate"] * np.ones_like(n)
 
+    @staticmethod
+    def split(n, q):
+        return q["growth_rate"] * n, np.zeros_like(n)
+
+    @staticmethod
+    def prey_order(x):
+        return np.ones_like(x)  # births: first order
+
 
 class Logistic(GrowthForm):
     """Logistic growth ``g(n) = r n (1 - n/K)`` (Verhulst 1838, from memory)."""
 
     name = "logistic"
     needs = ("growth_rate", "capacity")
+    positive = ("capacity",)
+    closed_form_equilibrium = True
 
     @staticmethod
     def value(n, q):
@@ -82,6 +128,15 @@ class Logistic(GrowthForm):
     @staticmethod
     def dn(n, q):
         return q["growth_rate"] * (1.0 - 2.0 * n / q["capacity"])
+
+    @staticmethod
+    def split(n, q):
+        r = q["growth_rate"]
+        return r * n, r * n * n / q["capacity"]
+
+    @staticmethod
+    def prey_order(x):
+        return 2.0 + 1.0 / (x - 1.0)  # deaths r N²/(K A) need two prey
 
 
 class StrongAllee(GrowthForm):
@@ -94,6 +149,8 @@ class StrongAllee(GrowthForm):
 
     name = "allee"
     needs = ("growth_rate", "capacity", "allee_density")
+    positive = ("capacity",)
+    below_capacity = {"allee_density": "the Allee threshold"}
 
     @staticmethod
     def value(n, q):
@@ -105,6 +162,15 @@ class StrongAllee(GrowthForm):
         # d/dn of r (n - n²/K)(n/T - 1)
         return r * ((1.0 - 2.0 * n / k) * (n / t - 1.0) + (n - n * n / k) / t)
 
+    @staticmethod
+    def split(n, q):
+        r, k, t = q["growth_rate"], q["capacity"], q["allee_density"]
+        return r * n * (n / t + n / k), r * n * (1.0 + n * n / (t * k))
+
+    @staticmethod
+    def prey_order(x):
+        return 3.0 + 1.0 / (x - 1.0) + 2.0 / (x - 2.0)  # deaths need three prey
+
 
 GROWTH_FORMS: dict[str, type[GrowthForm]] = {
     cls.name: cls for cls in (Exponential, Logistic, StrongAllee)
@@ -113,10 +179,32 @@ GROWTH_FORMS: dict[str, type[GrowthForm]] = {
 
 # --------------------------------------------------------------------------- responses
 class Response:
-    """Predation per predator ``f(n, p)`` and its partial derivatives."""
+    """Predation per predator ``f(n, p)`` and its partial derivatives.
+
+    A subclass sets ``name`` (the scenario's ``predation.response`` value), ``needs`` and
+    ``words``, and writes ``value`` and ``dn`` (and ``dp`` when ``f`` depends on the predator
+    density); the other methods have defaults.
+    """
 
     name: ClassVar[str]
     needs: ClassVar[tuple[str, ...]]
+    #: How the report names the response ("predators eat them with a WORDS response").
+    words: ClassVar[str]
+    #: Order of a predation event in the predator count (the leap-size rule).
+    predator_order: ClassVar[float] = 2.0
+
+    @staticmethod
+    def prey_order(x):
+        """Order of a predation event in the prey count ``x`` (>= 3): 2 when one prey and
+        one predator meet."""
+        return np.full(np.shape(x), 2.0)
+
+    @staticmethod
+    def equilibrium_prey(q):
+        """Prey density where the predator's growth is zero with no predators
+        (``e f(n*, 0) = m``) in closed form, NaN where there is none; None when the
+        response has no closed form."""
+        return None
 
     @staticmethod
     def value(n, p, q):  # pragma: no cover - interface
@@ -136,6 +224,11 @@ class LotkaVolterra(Response):
 
     name = "lotka_volterra"
     needs = ("attack_rate",)
+    words = "linear (Lotka–Volterra, type I)"
+
+    @staticmethod
+    def equilibrium_prey(q):
+        return _prey_where_predators_break_even(q["mortality"], q["conversion"] * q["attack_rate"])
 
     @staticmethod
     def value(n, p, q):
@@ -154,11 +247,17 @@ class HollingII(Response):
 
     name = "holling2"
     needs = ("attack_rate", "handling_time")
+    words = "Holling type II"
 
     @staticmethod
     def value(n, p, q):
         a = q["attack_rate"]
         return a * n / (1.0 + a * q["handling_time"] * n)
+
+    @staticmethod
+    def equilibrium_prey(q):
+        a, m = q["attack_rate"], q["mortality"]
+        return _prey_where_predators_break_even(m, a * (q["conversion"] - m * q["handling_time"]))
 
     @staticmethod
     def dn(n, p, q):
@@ -172,6 +271,13 @@ class HollingIII(Response):
 
     name = "holling3"
     needs = ("attack_rate", "handling_time")
+    words = "Holling type III"
+    predator_order = 3.0
+
+    @staticmethod
+    def prey_order(x):
+        # ∝ N² P at low density: third order with two prey and one predator
+        return 1.5 * (2.0 + 1.0 / (x - 1.0))
 
     @staticmethod
     def value(n, p, q):
@@ -194,6 +300,13 @@ class BeddingtonDeAngelis(Response):
 
     name = "beddington_deangelis"
     needs = ("attack_rate", "handling_time", "interference")
+    words = "Beddington–DeAngelis"
+
+    @staticmethod
+    def equilibrium_prey(q):
+        if not np.all(q["interference"] == 0):
+            return None  # with interference n* depends on p*: no closed form here
+        return HollingII.equilibrium_prey(q)
 
     @staticmethod
     def value(n, p, q):
@@ -216,6 +329,42 @@ class BeddingtonDeAngelis(Response):
 RESPONSES: dict[str, type[Response]] = {
     cls.name: cls for cls in (LotkaVolterra, HollingII, HollingIII, BeddingtonDeAngelis)
 }
+
+
+def _prey_where_predators_break_even(m, denom):
+    """``n* = m / denom``, NaN where ``denom <= 0`` (the predator cannot grow at any prey
+    density)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(denom > 0, m / denom, np.nan)
+
+def _check_form(cls, base, required) -> None:
+    missing = [m for m in required if getattr(cls, m, None) is getattr(base, m, None)]
+    if missing:
+        raise TypeError(f"{cls.__name__} must define {', '.join(missing)}")
+    if not getattr(cls, "name", None) or not isinstance(getattr(cls, "needs", None), tuple):
+        raise TypeError(f"{cls.__name__} must set name and needs (a tuple of parameters)")
+    unknown = [p for p in cls.needs if p not in PARAMETER_KEYS]
+    if unknown:
+        raise ValueError(f"{cls.__name__} needs {unknown}, which no scenario key sets; add them "
+                         "to PARAMETER_KEYS (and the scenario's SCHEMA) first")
+
+
+def register_growth_form(cls: type[GrowthForm]) -> type[GrowthForm]:
+    """Add a growth form to ``GROWTH_FORMS``: every part of the tool then takes it as a
+    ``prey.growth`` value. Checks that the class writes what the tool needs."""
+    _check_form(cls, GrowthForm, ("value", "dn", "split", "prey_order"))
+    GROWTH_FORMS[cls.name] = cls
+    return cls
+
+
+def register_response(cls: type[Response]) -> type[Response]:
+    """Add a functional response to ``RESPONSES`` (a ``predation.response`` value)."""
+    _check_form(cls, Response, ("value", "dn"))
+    if not getattr(cls, "words", None):
+        raise TypeError(f"{cls.__name__} must set words (how the report names it)")
+    RESPONSES[cls.name] = cls
+    return cls
+
 
 #: Parameters of the local model and the scenario key each comes from.
 PARAMETER_KEYS = {
@@ -308,8 +457,11 @@ class LocalModel:
 def interior_equilibrium(model: LocalModel):
     """Closed-form coexistence equilibrium of the local model, in densities.
 
-    Available for logistic or exponential prey with a Lotka–Volterra or Holling type II
-    response (the Lotka–Volterra and Rosenzweig–MacArthur models):
+    Available when the response gives the prey density at which predators break even in
+    closed form (``Response.equilibrium_prey``: Lotka–Volterra, Holling type II,
+    Beddington–DeAngelis without interference) and the growth form allows
+    ``p* = g(n*) / f(n*)`` (``GrowthForm.closed_form_equilibrium``: logistic, exponential),
+    as in the Lotka–Volterra and Rosenzweig–MacArthur models:
 
     * Lotka–Volterra: ``n* = m / (e a)``, ``p* = g(n*) / (a n*)``.
     * Rosenzweig–MacArthur: ``n* = m / (a (e - m h))``,
@@ -328,19 +480,12 @@ def interior_equilibrium(model: LocalModel):
         For other model combinations (no closed form; use a root finder).
     """
     q = model.params
-    a, e, m = q["attack_rate"], q["conversion"], q["mortality"]
-    if model.response == "lotka_volterra":
-        denom = e * a
-    elif model.response == "holling2" or (
-        model.response == "beddington_deangelis" and np.all(q["interference"] == 0)
-    ):
-        denom = a * (e - m * q["handling_time"])
-    else:
+    n_star = model.functional_response.equilibrium_prey(q)
+    if n_star is None:
         raise NotImplementedError(f"no closed-form equilibrium for response {model.response!r}")
-    if model.growth not in ("logistic", "exponential"):
+    if not model.growth_form.closed_form_equilibrium:
         raise NotImplementedError(f"no closed-form equilibrium for growth {model.growth!r}")
     with np.errstate(divide="ignore", invalid="ignore"):
-        n_star = np.where(denom > 0, m / denom, np.nan)
         g = model.growth_form.value(n_star, q)
         f = model.functional_response.value(n_star, np.zeros_like(n_star), q)
         p_star = g / f

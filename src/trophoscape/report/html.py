@@ -275,22 +275,19 @@ def _fmt(value, kind="number"):
     return str(value)
 
 
-RESPONSE_WORDS = {"lotka_volterra": "linear (Lotka–Volterra, type I)",
-                  "holling2": "Holling type II", "holling3": "Holling type III",
-                  "beddington_deangelis": "Beddington–DeAngelis"}
-
-
 def _scenario_words(result) -> str:
     sc = result.study.scenario
+    model = result.study.system.model
+    growth, response = model.growth_form, model.functional_response
     land, net = result.study.landscape, result.study.network.summary()
     area = land.area_km2
     return (
         f"{net['patches']} habitat patches ({area.sum():.1f} km² in all, {area.min():.2g} to "
         f"{area.max():.2g} km² each) joined by {net['links']} links into "
         f"{net['components']} connected group(s), {len(net['isolated'])} patch(es) isolated. "
-        f"Prey grow by the {sc['prey.growth']} form at rate {_fmt(sc['prey.growth_rate'])} per "
+        f"Prey grow by the {growth.words or growth.name} form at rate {_fmt(sc['prey.growth_rate'])} per "
         f"{sc['time_unit']} up to {_fmt(sc['prey.capacity_density'])} per km² (times patch "
-        f"quality); predators eat them with a {RESPONSE_WORDS[sc['predation.response']]} "
+        f"quality); predators eat them with a {response.words} "
         f"response and die at rate {_fmt(sc['predator.mortality_rate'])} per "
         f"{sc['time_unit']}. Dispersal follows a {sc['dispersal.kernel']} kernel up to "
         f"{_fmt(sc['dispersal.max_distance_km'])} km. The run lasts "

@@ -23,7 +23,7 @@ from ..analysis.persistence import (occupancy_curve, persistence_table,
                                               regional_persistence)
 from ..analysis.stability import stability_analysis
 from ..analysis.synchrony import synchrony_analysis
-from ..model.dynamics import PARAMETER_KEYS, LocalModel, interior_equilibrium
+from ..model.dynamics import GROWTH_FORMS, PARAMETER_KEYS, LocalModel, interior_equilibrium
 from ..errors import InputError, TrophoscapeWarning, allowed_range
 from ..model.landscape import Landscape, read_patches
 from ..model.network import Network, arc_weights, build_network, movement_operator
@@ -162,25 +162,31 @@ def _build_study(scenario: Scenario) -> Study:
     quality = (landscape.values(sc["patches.quality_field"], key="patches.quality_field")
                if sc["patches.quality_field"] else np.ones(n))
     params["capacity"] = params["capacity"] * quality
-    growth = sc["prey.growth"]
-    if growth in ("logistic", "allee") and np.any(params["capacity"] <= 0):
-        i = int(np.argmax(params["capacity"] <= 0))
-        raise InputError(
-            "carrying capacity is zero (quality 0); give the patch a quality > 0 or remove it",
-            file=landscape.path, feature=_feature(landscape, i),
-            field=sc["patches.quality_field"] or "prey.capacity_density")
-    if growth == "allee" and np.any(params["allee_density"] >= params["capacity"]):
-        i = int(np.argmax(params["allee_density"] >= params["capacity"]))
-        qf = sc["patches.quality_field"]
-        made_of = (f"prey.capacity_density {sc['prey.capacity_density']:g} × {qf} "
-                   f"{quality[i]:g}" if qf else "prey.capacity_density")
-        raise InputError(
-            f"carrying capacity {params['capacity'][i]:g} per km² ({made_of}) is not above the "
-            f"Allee threshold prey.allee_density {params['allee_density'][i]:g}; raise the "
-            "quality or lower the threshold",
-            file=landscape.path, feature=_feature(landscape, i),
-            field=qf or "prey.capacity_density")
-    model = LocalModel(growth=growth, response=sc["predation.response"], params=params)
+    form = GROWTH_FORMS[sc["prey.growth"]]
+    for name in form.positive:
+        if np.any(params[name] <= 0):
+            i = int(np.argmax(params[name] <= 0))
+            if name == "capacity":
+                raise InputError(
+                    "carrying capacity is zero (quality 0); give the patch a quality > 0 or "
+                    "remove it", file=landscape.path, feature=_feature(landscape, i),
+                    field=sc["patches.quality_field"] or "prey.capacity_density")
+            raise InputError(f"is {params[name][i]:g} in this patch; give a value above 0",
+                             file=landscape.path, feature=_feature(landscape, i),
+                             field=PARAMETER_KEYS[name])
+    for name, words in form.below_capacity.items():
+        if np.any(params[name] >= params["capacity"]):
+            i = int(np.argmax(params[name] >= params["capacity"]))
+            qf = sc["patches.quality_field"]
+            made_of = (f"prey.capacity_density {sc['prey.capacity_density']:g} × {qf} "
+                       f"{quality[i]:g}" if qf else "prey.capacity_density")
+            raise InputError(
+                f"carrying capacity {params['capacity'][i]:g} per km² ({made_of}) is not above "
+                f"{words} {PARAMETER_KEYS[name]} {params[name][i]:g}; raise the quality or lower "
+                "the threshold",
+                file=landscape.path, feature=_feature(landscape, i),
+                field=qf or "prey.capacity_density")
+    model = LocalModel(growth=form.name, response=sc["predation.response"], params=params)
 
     dispersal, operators = {}, {}
     for s in SPECIES:
