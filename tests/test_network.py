@@ -140,6 +140,26 @@ def test_summary_and_networkx_components():
     assert graph.edges["A", "B"]["origin"] == "kernel"
 
 
+def test_pair_and_arc_codes():
+    # linked_pairs against networkx's edge list of the same graph (reference: networkx);
+    # the codes themselves are a consistency test of their definition
+    land = grid_landscape(3, 4, spacing_km=2.0, size_km=1.0)
+    net = build_network(land, kernel="exponential", max_distance_km=2.5)
+    graph = nx.Graph()
+    graph.add_nodes_from(range(net.n_patches))
+    graph.add_edges_from(zip(net.source.tolist(), net.target.tolist()))
+    edges = sorted(tuple(sorted(e)) for e in graph.edges)
+    assert [tuple(p) for p in net.linked_pairs().tolist()] == edges
+    np.testing.assert_array_equal(net.pair_codes(net.source, net.target),
+                                  net.pair_codes(net.target, net.source))
+    lo, hi = net.positions_of(net.pair_codes())
+    np.testing.assert_array_equal(lo, np.minimum(net.source, net.target))
+    np.testing.assert_array_equal(hi, np.maximum(net.source, net.target))
+    a, b = net.positions_of(net.arc_codes())
+    np.testing.assert_array_equal(a, net.source)
+    np.testing.assert_array_equal(b, net.target)
+
+
 def test_links_frame_lines_join_representative_points():
     land = grid_landscape(2, 2, spacing_km=2.0, size_km=1.0)
     net = build_network(land, kernel="step", max_distance_km=1.0)

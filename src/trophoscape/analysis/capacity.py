@@ -121,12 +121,12 @@ def landscape_matrix(network: Network, area_km2, *, scale_km,
     if lo.size == 0:
         return sp.csr_array((n, n))
     weight = kernel_weight(kernel, network.distance_km[off], _pair_scale(scale_km, n, lo, hi))
-    key = lo * n + hi
+    key = network.pair_codes(lo, hi)
     order = np.argsort(key, kind="stable")
     key, weight = key[order], weight[order]
     start = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
     weight = np.maximum.reduceat(weight, start)  # one entry per pair: its best route
-    i, j = key[start] // n, key[start] % n
+    i, j = network.positions_of(key[start])
     value = weight * area[i] * area[j]
     matrix = sp.coo_array((np.concatenate([value, value]),
                            (np.concatenate([i, j]), np.concatenate([j, i]))), shape=(n, n))

@@ -151,12 +151,33 @@ class Network:
         """Number of distinct unordered pairs of patches that are linked."""
         return int(self._pairs()[0].size)
 
+    def pair_codes(self, a=None, b=None) -> np.ndarray:
+        """One integer per unordered pair of positions ``{a, b}``, ``min * n + max`` (the
+        same for ``a -> b`` and ``b -> a``); without arguments, of every arc."""
+        a = self.source if a is None else np.asarray(a, dtype=np.int64)
+        b = self.target if b is None else np.asarray(b, dtype=np.int64)
+        return np.minimum(a, b) * max(self.n_patches, 1) + np.maximum(a, b)
+
+    def arc_codes(self, a=None, b=None) -> np.ndarray:
+        """One integer per ordered pair ``a -> b``, ``a * n + b``; without arguments, of
+        every arc."""
+        a = self.source if a is None else np.asarray(a, dtype=np.int64)
+        b = self.target if b is None else np.asarray(b, dtype=np.int64)
+        return a * max(self.n_patches, 1) + b
+
+    def positions_of(self, codes) -> tuple[np.ndarray, np.ndarray]:
+        """The two positions of pair or arc codes: ``(code // n, code % n)``."""
+        n = max(self.n_patches, 1)
+        codes = np.asarray(codes)
+        return codes // n, codes % n
+
+    def linked_pairs(self) -> np.ndarray:
+        """Distinct unordered linked pairs ``(lo, hi)``, shape (n_links, 2), sorted."""
+        return np.stack(self._pairs(), axis=1)
+
     def _pairs(self) -> tuple[np.ndarray, np.ndarray]:
         """Distinct unordered linked pairs (lo, hi), each shape (n_links,), sorted."""
-        n = max(self.n_patches, 1)
-        key = np.unique(np.minimum(self.source, self.target) * n
-                        + np.maximum(self.source, self.target))
-        return key // n, key % n
+        return self.positions_of(np.unique(self.pair_codes()))
 
     def links_per_patch(self) -> np.ndarray:
         """Number of distinct patches linked to each patch (either direction).
@@ -171,9 +192,8 @@ class Network:
 
     def is_symmetric(self) -> bool:
         """True when every arc i -> j has an arc j -> i (no one-way table rows)."""
-        n = max(self.n_patches, 1)
-        return np.array_equal(np.unique(self.source * n + self.target),
-                              np.unique(self.target * n + self.source))
+        return np.array_equal(np.unique(self.arc_codes()),
+                              np.unique(self.arc_codes(self.target, self.source)))
 
     def summary(self) -> dict:
         """Network-level figures.
@@ -672,17 +692,13 @@ def without(network: Network, *, patches=(), links=()) -> Network:
     -------
     Network
     """
-    n = max(network.n_patches, 1)
     keep = np.ones(network.n_arcs, dtype=bool)
     lost = np.asarray(list(patches), dtype=np.int64)
     if lost.size:
         keep &= ~(np.isin(network.source, lost) | np.isin(network.target, lost))
     pairs = np.asarray(list(links), dtype=np.int64).reshape(-1, 2)
     if pairs.size:
-        cut = np.minimum(pairs[:, 0], pairs[:, 1]) * n + np.maximum(pairs[:, 0], pairs[:, 1])
-        arc = np.minimum(network.source, network.target) * n + np.maximum(network.source,
-                                                                          network.target)
-        keep &= ~np.isin(arc, cut)
+        keep &= ~np.isin(network.pair_codes(), network.pair_codes(pairs[:, 0], pairs[:, 1]))
     return Network(
         ids=network.ids, source=network.source[keep], target=network.target[keep],
         distance_km=network.distance_km[keep], weight=network.weight[keep],

@@ -399,10 +399,7 @@ class LinkCut(Shock):
 
     def events(self, context):
         net = context.network
-        n = max(net.n_patches, 1)
-        a, b = self.pairs[:, 0], self.pairs[:, 1]
-        cut = np.concatenate([a * n + b, b * n + a])
-        removed = np.isin(net.source * n + net.target, cut)
+        removed = np.isin(net.pair_codes(), net.pair_codes(self.pairs[:, 0], self.pairs[:, 1]))
         return [Rewire(self.at, removed, context)]
 
 

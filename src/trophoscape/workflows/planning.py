@@ -646,7 +646,7 @@ class Planner:
         net = self.study.network
         ids = self.study.ids
         if isinstance(links, str) and links == "all":
-            pairs = _linked_pairs(net)
+            pairs = net.linked_pairs()
         elif links is None:
             pairs = np.empty((0, 2), dtype=np.int64)
         else:
@@ -821,14 +821,6 @@ def _per_cost(gain: float, cost: float) -> float:
     return math.inf if gain > _TOL else (-math.inf if gain < -_TOL else 0.0)
 
 
-def _linked_pairs(network: Network) -> np.ndarray:
-    """Distinct unordered linked pairs (lo, hi), shape (n_links, 2)."""
-    n = max(network.n_patches, 1)
-    key = np.unique(np.minimum(network.source, network.target) * n
-                    + np.maximum(network.source, network.target))
-    return np.stack([key // n, key % n], axis=1)
-
-
 def rank_candidates(table: pd.DataFrame, chosen_ids=()) -> pd.DataFrame:
     """Add ``rank`` (1 = largest score; ties by relative predator λ_M gain, then lower cost)
     and ``chosen`` to an :meth:`Planner.add_one` table."""
@@ -973,7 +965,7 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
                              file=path, feature=r, field=column)
         ends.append(found)
 
-    linked = {tuple(p) for p in _linked_pairs(study.network).tolist()}
+    linked = {tuple(p) for p in study.network.linked_pairs().tolist()}
     pairs = []
     for r, (a, b) in enumerate(zip(*ends)):
         pair = (min(a, b), max(a, b))

@@ -276,7 +276,7 @@ def network_distance_km(network, origins) -> np.ndarray:
     if src.size:
         # parallel routes: keep the shortest; touching patches (distance 0) still count as
         # linked, so lift zeros to a negligible length (csgraph ignores zero entries)
-        key = src * n + dst
+        key = network.arc_codes()
         order = np.lexsort((d, key))
         first = np.r_[True, key[order][1:] != key[order][:-1]]
         keep = order[first]
