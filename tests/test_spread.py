@@ -257,6 +257,20 @@ def test_a_predator_removal_follows_the_predator_by_default(tmp_path):
     assert named.summary["species"] == "predator"
 
 
+def test_spread_runs_take_the_run_settings_of_a_study(tmp_path):
+    # consistency test: the shocked and baseline runs record their census as a study does
+    # (float32, as timeseries.nc holds it; RunSettings.from_scenario is the one source)
+    from trophoscape.integrate.ode import STORAGE_DTYPE, RunSettings
+
+    study = ts.build_study(chain_scenario(source_sink_file(tmp_path), PREDATOR_REMOVAL))
+    result = sp.run_spread(study)
+    for traj in (result.shocked, result.baseline):
+        assert traj.data["prey"].dtype == STORAGE_DTYPE == np.float32
+    settings = RunSettings.from_scenario(study.scenario)
+    assert settings.census_interval == study.scenario["run.census_interval"]
+    assert settings.options(duration=3.0)["duration"] == 3.0
+
+
 def test_an_explicit_species_wins_over_the_shocks(tmp_path):
     path = source_sink_file(tmp_path)
     prey = sp.run_spread(ts.build_study(chain_scenario(path, PREY_CRASH)))

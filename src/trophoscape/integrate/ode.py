@@ -20,6 +20,9 @@ Error control per patch
 
 from __future__ import annotations
 
+import dataclasses
+from dataclasses import dataclass
+
 
 import numpy as np
 import scipy.integrate as si
@@ -29,7 +32,8 @@ from ..errors import RunError
 from ..model.system import SPECIES, CoupledSystem
 from .trajectory import SolverStats, Trajectory, census_times
 
-__all__ = ["METHODS", "simulate", "choose_method", "first_crossing"]
+__all__ = ["METHODS", "RunSettings", "STORAGE_DTYPE", "simulate", "choose_method",
+           "first_crossing"]
 
 class _MaxNormRK:
     """Error control by the largest scaled error over all components (a max norm).
@@ -280,6 +284,40 @@ def _release(solver) -> None:
     for name in ("fun", "jac", "fun_single", "fun_vectorized"):
         if name in vars(solver):
             setattr(solver, name, None)
+
+
+#: Storage type of a study's time series: the state is integrated in float64 and each census
+#: recorded in float32, as ``timeseries.nc`` holds it (7 significant digits, half the memory
+#: of a 100,000-patch run), so the analyses see exactly what the file holds.
+STORAGE_DTYPE = np.float32
+
+
+@dataclass(frozen=True)
+class RunSettings:
+    """The settings of :func:`simulate` a scenario's ``[run]`` section gives: one place where
+    a scenario becomes solver settings, for every workflow (a study, its replicates, the
+    spread runs)."""
+
+    duration: float
+    census_interval: float
+    extinction_abundance: float
+    method: str
+    rtol: float
+    atol: float
+    time_unit: str
+    dtype: type = STORAGE_DTYPE
+
+    @classmethod
+    def from_scenario(cls, scenario) -> "RunSettings":
+        sc = scenario
+        return cls(duration=sc["run.duration"], census_interval=sc["run.census_interval"],
+                   extinction_abundance=sc["run.extinction_abundance"],
+                   method=sc["run.method"], rtol=sc["run.rtol"], atol=sc["run.atol"],
+                   time_unit=sc["time_unit"])
+
+    def options(self, **changes) -> dict:
+        """Keyword arguments of :func:`simulate`, with ``changes`` (``duration``, say)."""
+        return {**dataclasses.asdict(self), **changes}
 
 
 def simulate(

@@ -448,16 +448,12 @@ def _noise(study, part: int):
 
 
 def _simulate(study, y0, duration, *, events=(), progress=False, offset=0.0, part=1):
+    from ..integrate.ode import RunSettings, simulate
     from ..integrate.trajectory import Trajectory
-    from ..integrate.ode import simulate
 
-    sc = study.scenario
-    traj = simulate(study.system, y0, duration=duration,
-                    census_interval=sc["run.census_interval"],
-                    extinction_abundance=sc["run.extinction_abundance"],
-                    method=sc["run.method"], rtol=sc["run.rtol"], atol=sc["run.atol"],
-                    ids=study.ids, time_unit=sc["time_unit"], progress=progress, events=events,
-                    noise=_noise(study, part))
+    settings = RunSettings.from_scenario(study.scenario)
+    traj = simulate(study.system, y0, ids=study.ids, progress=progress, events=events,
+                    noise=_noise(study, part), **settings.options(duration=duration))
     if offset:
         data = traj.data.assign_coords(time=traj.data["time"] + offset)
         data["time"].attrs.update(traj.data["time"].attrs)

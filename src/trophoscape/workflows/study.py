@@ -30,7 +30,7 @@ from ..model.network import Network, arc_weights, build_network, movement_operat
 from ..scenario import (INPUT_FILES, LARGEST, FieldRef, Scenario, bounds_of,
                                   check_regular_file, read_scenario)
 from ..integrate.trajectory import Trajectory
-from ..integrate.ode import simulate
+from ..integrate.ode import RunSettings, simulate
 from ..model.system import SPECIES, CoupledSystem, pack
 
 if TYPE_CHECKING:
@@ -412,10 +412,7 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
     sc = study.scenario
     reps = len(seeds)
     n = study.landscape.n_patches
-    common = dict(duration=sc["run.duration"], census_interval=sc["run.census_interval"],
-                  extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
-                  rtol=sc["run.rtol"], atol=sc["run.atol"], time_unit=sc["time_unit"],
-                  progress=progress, dtype=STORAGE_DTYPE)
+    common = RunSettings.from_scenario(sc).options(progress=progress)
     stacked_events = _stacked_events(events, n, reps)
     if stacked is None:
         # event-based (demographic) runs take one leap size per run: replicates one by one
@@ -473,12 +470,6 @@ def quasi_extinction_summary(stats) -> dict:
             for i, s in enumerate(SPECIES)}
 
 
-#: Storage type of a study's time series: the state is integrated in float64 and each census
-#: recorded in float32, as ``timeseries.nc`` holds it (7 significant digits, half the memory
-#: of a 100,000-patch run), so the analyses see exactly what the file holds.
-STORAGE_DTYPE = np.float32
-
-
 def run_study(study: Study, *, progress: bool = False, stacked=None,
               series_to=None) -> RunResult:
     """Integrate a study and run the analyses on the result.
@@ -519,12 +510,9 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
     try:
         if len(seeds) == 1:
             traj = simulate(
-                study.system, study.initial_state,
-                duration=sc["run.duration"], census_interval=sc["run.census_interval"],
-                extinction_abundance=sc["run.extinction_abundance"], method=sc["run.method"],
-                rtol=sc["run.rtol"], atol=sc["run.atol"], ids=study.ids,
-                time_unit=sc["time_unit"], progress=progress, events=events, noise=noise,
-                dtype=STORAGE_DTYPE, **({} if writer is None else writer.sink_options()),
+                study.system, study.initial_state, ids=study.ids, progress=progress,
+                events=events, noise=noise, **RunSettings.from_scenario(sc).options(),
+                **({} if writer is None else writer.sink_options()),
             )
         else:
             traj = simulate_replicates(study, seeds=seeds, noise=noise, events=events,
