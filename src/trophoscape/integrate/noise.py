@@ -87,11 +87,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..model.dynamics import LocalModel
+from ..model.dynamics import LocalModel, fastest_rates
 
 __all__ = ["KERNELS", "DEFAULT_RANK", "DEFAULT_STEP_SHARE", "NoiseModel", "NoiseRun",
            "spectral_frequencies", "fourier_features", "kernel_correlation", "ou_step",
-           "auto_step", "replicate_seeds"]
+           "auto_step", "resolve_step", "replicate_seeds"]
 
 #: Spatial correlation kernels of environmental noise.
 KERNELS = ("exponential", "gaussian")
@@ -202,10 +202,14 @@ def auto_step(params, share: float = DEFAULT_STEP_SHARE) -> float:
     patches (the rates a patch relaxes or cycles at are of that order). The correlation
     time does not enter: the step's noise integral is exact for any ``τ`` (module notes).
     """
-    rates = [float(np.max(np.abs(np.asarray(params.get(k, 0.0), dtype=float))))
-             for k in ("growth_rate", "mortality")]
-    fastest = max(rates)
+    fastest = max(fastest_rates(params).values())
     return share / fastest if fastest > 0 else 0.1
+
+
+def resolve_step(setting, params) -> float:
+    """The noise step a ``noise.noise_step`` setting gives: the number, or for ``"auto"``
+    :func:`auto_step` of the model's parameters."""
+    return auto_step(params) if setting == "auto" else float(setting)
 
 
 # ----------------------------------------------------------------------------- the model

@@ -506,14 +506,14 @@ def simulate(
             totals["nfev"] += 2
         return solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options)
 
-    def harvest(s):
+    def add_counts(s):
         for key in totals:
             totals[key] += int(getattr(s, key, 0) or 0)
 
     def restart(old, t0, y_start, first_step):
         """A fresh solver from ``(t0, y_start)``; the old one's counts kept, its arrays freed."""
         nonlocal restarts, above
-        harvest(old)
+        add_counts(old)
         new = start(t0, y_start, first_step)
         _release(old)
         restarts += 1
@@ -579,7 +579,7 @@ def simulate(
                 outcome = solver.step()
             steps += 1
             if solver.status == "failed":
-                harvest(solver)
+                add_counts(solver)
                 if np.abs(solver.y).max() > 1e12:
                     advice = ("abundances passed 1e12 individuals: check for explosive growth "
                               "(e.g. exponential prey with no predator)")
@@ -589,7 +589,7 @@ def simulate(
                 raise RunError(f"the ODE solver ({method}) failed at time {solver.t:.6g}: "
                                f"{str(outcome).rstrip('.')}; {advice}")
             if not np.all(np.isfinite(solver.y)):
-                harvest(solver)
+                add_counts(solver)
                 raise RunError(
                     f"the state became non-finite at time {solver.t:.6g} ({method}); "
                     "check for explosive growth (e.g. exponential prey with no predator)"
@@ -634,7 +634,7 @@ def simulate(
                 try:
                     store(k, y_k)
                 except RunError:
-                    harvest(solver)
+                    add_counts(solver)
                     raise
                 k += 1
                 bar.update(1)
@@ -646,7 +646,7 @@ def simulate(
                 # population was zeroed (benchmarks/README.md)
                 h = step_wanted(solver)
                 solver = restart(solver, t_end, remove(y_end, falling), 0.5 * h if h else None)
-        harvest(solver)
+        add_counts(solver)
         if sink is not None and sunk < k:  # the last rows, fewer than sink_rows
             sink(sunk, k, record)
     finally:

@@ -42,6 +42,7 @@ __all__ = [
     "HollingIII",
     "BeddingtonDeAngelis",
     "interior_equilibrium",
+    "fastest_rates",
 ]
 
 
@@ -364,6 +365,13 @@ def register_response(cls: type[Response]) -> type[Response]:
         raise TypeError(f"{cls.__name__} must set words (how the report names it)")
     RESPONSES[cls.name] = cls
     return cls
+
+
+def fastest_rates(params, names=("growth_rate", "mortality")) -> dict[str, float]:
+    """The largest magnitude over the patches of each named per-capita rate (0 when absent):
+    what sets the fastest local time scale."""
+    return {k: float(np.max(np.abs(np.asarray(params.get(k, 0.0), dtype=float)), initial=0.0))
+            for k in names}
 
 
 #: Parameters of the local model and the scenario key each comes from.

@@ -36,7 +36,7 @@ try:  # y += A @ x in place, the kernel behind scipy's CSR mat-vec (private, hen
 except ImportError:  # pragma: no cover - depends on the scipy version
     _csr_matvec = None
 
-__all__ = ["CoupledSystem", "pack", "unpack", "SPECIES", "spatial_order", "locality",
+__all__ = ["CoupledSystem", "pack", "SPECIES", "spatial_order", "locality",
            "group_rows", "ORDER_MIN_PATCHES", "ROW_GROUP", "COMPILED_MIN_PATCHES",
            "compiled_available"]
 
@@ -64,12 +64,6 @@ SPECIES = ("prey", "predator")
 def pack(prey, predator) -> np.ndarray:
     """Flat state ``y`` of shape ``(2 n,)`` from per-species arrays of shape ``(n,)``."""
     return np.concatenate([np.asarray(prey, float), np.asarray(predator, float)])
-
-
-def unpack(y):
-    """Per-species views ``(prey, predator)`` of a flat state (or ``(2 n, k)`` block)."""
-    n = y.shape[0] // 2
-    return y[:n], y[n:]
 
 
 def locality(matrix, order=None) -> float:

@@ -23,7 +23,8 @@ from ..analysis.persistence import (occupancy_curve, persistence_table,
                                               regional_persistence)
 from ..analysis.stability import stability_analysis
 from ..analysis.synchrony import synchrony_analysis
-from ..model.dynamics import GROWTH_FORMS, PARAMETER_KEYS, LocalModel, interior_equilibrium
+from ..model.dynamics import (GROWTH_FORMS, PARAMETER_KEYS, LocalModel, fastest_rates,
+                              interior_equilibrium)
 from ..errors import InputError, TrophoscapeWarning, allowed_range
 from ..model.landscape import Landscape, read_patches
 from ..model.network import Network, arc_weights, build_network, movement_operator
@@ -264,10 +265,9 @@ def check_run_size(sc: Scenario, n_patches: int, params=None, emigration=None) -
             "run fewer replicates", file=sc.path, field=field)
     if params is not None and (sc["noise.environmental_sd"] > 0
                                or sc["noise.predator_mortality_sd"] > 0):
-        from ..integrate.noise import auto_step
+        from ..integrate.noise import resolve_step
 
-        step = sc["noise.noise_step"]
-        step = auto_step(params) if step == "auto" else float(step)
+        step = resolve_step(sc["noise.noise_step"], params)
         count = sc["run.duration"] / step
         if count > MAX_NOISE_STEPS:
             raise InputError(
@@ -277,11 +277,9 @@ def check_run_size(sc: Scenario, n_patches: int, params=None, emigration=None) -
     from ..integrate.ode import IMPLICIT, choose_method
 
     if params is not None and choose_method(sc["run.method"]) not in IMPLICIT + ("LSODA",):
-        rates = {"prey.growth_rate": params.get("growth_rate", 0.0),
-                 "predator.mortality_rate": params.get("mortality", 0.0)}
-        for s, rate in (emigration or {}).items():
-            rates[f"{s}.emigration_rate"] = rate
-        fastest = {k: float(np.max(np.abs(v), initial=0.0)) for k, v in rates.items()}
+        fastest = {PARAMETER_KEYS[k]: v for k, v in fastest_rates(params).items()}
+        fastest.update({f"{s}.emigration_rate": v for s, v in fastest_rates(
+            emigration or {}, names=tuple(emigration or ())).items()})
         key = max(fastest, key=fastest.get)
         scales = fastest[key] * sc["run.duration"]
         if scales > MAX_TIME_SCALES:
@@ -341,20 +339,18 @@ def run_seeds(scenario: Scenario) -> list[int]:
 def noise_model(study: Study, seeds) -> "NoiseModel | None":
     """The study's ``[noise]`` settings as a :class:`~trophoscape.integrate.noise.NoiseModel`, or None
     when the scenario has no noise."""
-    from ..integrate.noise import NoiseModel, auto_step
+    from ..integrate.noise import NoiseModel, resolve_step
 
     sc = study.scenario
     corr = sc["noise.correlation_km"]
-    step = sc["noise.noise_step"]
-    if step == "auto":
-        step = auto_step(study.system.model.params)
+    step = resolve_step(sc["noise.noise_step"], study.system.model.params)
     model = NoiseModel(
         centroids_km=study.landscape.centroids / 1000.0, seeds=tuple(seeds),
         environmental_sd=sc["noise.environmental_sd"],
         mortality_sd=sc["noise.predator_mortality_sd"],
         correlation_km=None if corr == "regional" else float(corr),
         kernel=sc["noise.kernel"], shared_share=sc["noise.shared_share"],
-        correlation_time=sc["noise.correlation_time"], step=float(step),
+        correlation_time=sc["noise.correlation_time"], step=step,
         demographic=sc["noise.demographic"],
         prey_movement=study.system.prey_movement,
         predator_movement=study.system.predator_movement, rank=sc["noise.rank"])
