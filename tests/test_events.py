@@ -456,7 +456,7 @@ def test_demographic_noise_moves_individuals_along_links():
                          prey_movement=m)
     reps = 400
     model = NoiseModel(centroids_km=[[0.0, 0.0], [1.0, 0.0]], seeds=range(reps),
-                       demographic=True, prey_movement=m, predator_movement=sp.csr_array((2, 2)))
+                       demographic=True)
     y0 = np.array([50.0, 30.0, 0.0, 0.0])  # away from zero, where clipping would add mass
     traj = simulate(stack_system(system, reps), stack_state(y0, reps), duration=1.0,
                     census_interval=0.1, extinction_abundance=0.0, noise=model)

@@ -83,7 +83,7 @@ Replicates
 from __future__ import annotations
 
 import dataclasses
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -240,8 +240,6 @@ class NoiseModel:
         ``Δ``, the noise step in time units: the noise is held over ``[kΔ, (k+1)Δ)``.
     demographic : bool
         Births, deaths and moves as random events (:mod:`trophoscape.integrate.events`).
-    prey_movement, predator_movement : sparse array (n_patches, n_patches), optional
-        One replicate's movement operators; needed for demographic noise in dispersal.
     rank : int
         Random Fourier features per replicate.
     """
@@ -256,8 +254,6 @@ class NoiseModel:
     correlation_time: float = 0.0
     step: float = 0.05
     demographic: bool = False
-    prey_movement: object = field(default=None, repr=False)
-    predator_movement: object = field(default=None, repr=False)
     rank: int = DEFAULT_RANK
 
     def __post_init__(self):

@@ -440,11 +440,10 @@ def _noise(study, part: int):
     the run's seed (``SeedSequence(seed).spawn(2)``), so the baseline and the shocked run
     share one noise path (common random numbers: they differ by the shocks alone), and the
     noise after burn-in starts from the process's stationary law."""
+    from ..integrate.noise import replicate_seeds
     from .study import noise_model, run_seeds
 
-    seed = run_seeds(study.scenario)[0]
-    child = np.random.SeedSequence(seed).spawn(2)[part]
-    return noise_model(study, [int(child.generate_state(1, dtype=np.uint64)[0] >> 1)])
+    return noise_model(study, [replicate_seeds(run_seeds(study.scenario)[0], 2)[part]])
 
 
 def _simulate(study, y0, duration, *, events=(), progress=False, offset=0.0, part=1):

@@ -351,9 +351,7 @@ def noise_model(study: Study, seeds) -> "NoiseModel | None":
         correlation_km=None if corr == "regional" else float(corr),
         kernel=sc["noise.kernel"], shared_share=sc["noise.shared_share"],
         correlation_time=sc["noise.correlation_time"], step=step,
-        demographic=sc["noise.demographic"],
-        prey_movement=study.system.prey_movement,
-        predator_movement=study.system.predator_movement, rank=sc["noise.rank"])
+        demographic=sc["noise.demographic"], rank=sc["noise.rank"])
     return model if model.active else None
 
 
