@@ -317,6 +317,16 @@ def leap_size(x, calm, channels: Channels, *, epsilon: float = LEAP_EPSILON,
     return float(tau[changed].min())
 
 
+def _pick(a, cum, u) -> int:
+    """The channel of propensities ``a`` (running sums ``cum``) whose share of the total holds
+    ``u`` in [0, 1): the first running sum above ``u * total``; on rounding (a running sum a
+    few ulp off the total) the last channel with a positive propensity before it."""
+    j = min(int(np.searchsorted(cum, u * cum[-1], side="right")), a.size - 1)
+    while j > 0 and a[j] <= 0:
+        j -= 1
+    return j
+
+
 class _Direct:
     """Exact steps of the direct method (Gillespie 1977) with propensities kept up to date.
 
@@ -351,11 +361,7 @@ class _Direct:
         if j < inner.size and a[lo + j] > 0:
             return lo + j
         # rounding at a block's edge (running sums a few ulp off): search all of a
-        cum = np.cumsum(a)
-        j = min(int(np.searchsorted(cum, u * cum[-1], side="right")), a.size - 1)
-        while j > 0 and a[j] <= 0:
-            j -= 1
-        return j
+        return _pick(a, np.cumsum(a), u)
 
     def update(self, x, j, stats):
         """Recompute the propensities channel ``j``'s event changed (``x`` after it)."""
@@ -435,10 +441,7 @@ def _exact_burst(x, t, t_end, a, channels, rng, stats, burst, threshold=0.0):
             if t + wait >= t_end:
                 return x, t_end  # no event before t_end; the waiting time is memoryless
             t += wait
-            j = min(int(np.searchsorted(cum, rng.random() * cum[-1], side="right")),
-                    a.size - 1)
-            while j > 0 and a[j] <= 0:  # a product rounded up to the total
-                j -= 1
+            j = _pick(a, cum, rng.random())
             lo, hi = columns.indptr[j], columns.indptr[j + 1]
             x[columns.indices[lo:hi]] += columns.data[lo:hi]
             if threshold > 0:
@@ -539,9 +542,7 @@ def advance_events(x, t, t_end, channels: Channels, rng, *, stats=None,
             k = _poisson(rng, lam * tau)
             if fires:  # exactly one critical event, chosen by its propensity
                 pick = np.flatnonzero(small & (a > 0))
-                w = np.cumsum(a[pick])
-                j = pick[min(int(np.searchsorted(w, rng.random() * w[-1], side="right")),
-                             pick.size - 1)]
+                j = pick[_pick(a[pick], np.cumsum(a[pick]), rng.random())]
                 k[j] += 1
             new = x + change @ k
             if np.all(new >= 0):
