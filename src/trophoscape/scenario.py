@@ -290,14 +290,16 @@ class Scenario:
 
         Keys are given with ``__`` for the dot: ``with_values(run__duration=50)``.
         """
-        raw = _nested(dict(self.values))
+        raw = nested_tables(dict(self.values))
         for k, v in changes.items():
             section, _, key = k.rpartition("__")
             raw.setdefault(section, {})[key] = v
         return parse_scenario(raw, path=self.path, base_dir=self.base_dir, text=self.text)
 
 
-def _nested(flat: dict) -> dict:
+def nested_tables(flat: dict) -> dict:
+    """A scenario's flat ``section.key`` values as the nested tables ``parse_scenario``
+    reads (``[[shock]]`` tables included)."""
     out: dict = {}
     for k, v in flat.items():
         section, _, key = k.rpartition(".")
@@ -312,6 +314,21 @@ def _nested(flat: dict) -> dict:
             out.setdefault(section, {})[key] = v
         else:
             out[key] = v
+    return out
+
+
+def with_changes(raw: dict, changes) -> dict:
+    """Scenario tables (as ``parse_scenario`` reads them) with some ``section.key`` values
+    replaced (a copy)."""
+    out = {k: (dict(v) if isinstance(v, dict) else v) for k, v in raw.items()}
+    for key, value in dict(changes).items():
+        section, _, name = key.rpartition(".")
+        if section:
+            table = out.get(section)
+            out[section] = dict(table) if isinstance(table, dict) else {}
+            out[section][name] = value
+        else:
+            out[name] = value
     return out
 
 

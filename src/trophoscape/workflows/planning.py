@@ -52,6 +52,7 @@ from ..model.network import (KERNELS, Network, movement_operator, snap_line_ends
                                        with_links, without)
 from ..model.system import SPECIES, CoupledSystem
 from ..analysis.capacity import metapopulation_capacity
+from .tasks import ScenarioPayload, cached, forget, remember
 
 __all__ = [
     "OBJECTIVES",
@@ -378,67 +379,24 @@ def objectives_of(result) -> dict:
 # ------------------------------------------------------------------------------ workers
 
 
-def _plain(values) -> dict:
-    """A scenario's flat values as the nested dictionaries ``parse_scenario`` reads.
-
-    The scenario module's own flattening (the one ``Scenario.with_values`` uses), so every
-    section it knows, ``[[shock]]`` tables included, travels to the workers.
-    """
-    from ..scenario import _nested
-
-    return _nested(dict(values))
-
-
-@dataclass(frozen=True)
-class StudySource:
-    """What a worker needs to rebuild the baseline study: the scenario, as plain data."""
-
-    raw: dict
-    path: str | None
-    base_dir: str
-    text: str
-    key: str
-
-    @classmethod
-    def of(cls, study) -> "StudySource":
-        sc = study.scenario
-        raw = _plain(sc.values)
-        key = hashlib.sha256(json.dumps([raw, str(sc.base_dir), sc.sha256], sort_keys=True,
-                                        default=str).encode()).hexdigest()
-        return cls(raw=raw, path=None if sc.path is None else str(sc.path),
-                   base_dir=str(sc.base_dir), text=sc.text, key=key)
-
-    def build(self):
-        from ..scenario import parse_scenario
-        from .study import build_study
-
-        sc = parse_scenario(self.raw, path=self.path, base_dir=self.base_dir, text=self.text)
-        return build_study(_quick(sc))
-
-
 def _quick(scenario):
     """The scenario with the analyses no objective needs switched off (λ_M is ours)."""
     return scenario.with_values(analysis__stability=False, analysis__capacity=False)
 
 
-#: Per process: baseline studies by StudySource.key, built once per worker.
-_STUDIES: dict = {}
-
-
 @dataclass(frozen=True)
 class _Task:
-    source: StudySource
+    source: ScenarioPayload
     candidates: dict
     variant: Variant
 
 
 def _evaluate(task: _Task) -> dict:
     """One run of a variant (module level: the process pool pickles it by name)."""
-    from .study import run_study
+    from .study import build_study, run_study
 
-    study = _STUDIES.get(task.source.key)
-    if study is None:
-        study = _STUDIES[task.source.key] = task.source.build()
+    study = cached(("planning", task.source.key),
+                   lambda: build_study(_quick(task.source.scenario())))
     result = run_study(variant_study(study, task.candidates, task.variant))
     return objectives_of(result)
 
@@ -483,7 +441,7 @@ class Planner:
         self.weights = dict(DEFAULT_WEIGHTS if weights is None else weights)
         self.workers = workers
         self.progress = progress
-        self.source = StudySource.of(study)
+        self.source = ScenarioPayload.of(study.scenario)
         self._arrays = candidates.arrays()
         self.results: dict = {}
         self.failures: dict = {}
@@ -496,8 +454,8 @@ class Planner:
         # the main process works as a worker too (workers=1, or a single task), and forked
         # workers inherit this entry instead of rebuilding. Always replaced, never reused:
         # the key holds the scenario, not the patch file, which may have changed since.
-        _STUDIES.clear()
-        _STUDIES[self.source.key] = replace(study, scenario=_quick(study.scenario))
+        forget("planning")
+        remember(("planning", self.source.key), replace(study, scenario=_quick(study.scenario)))
         self.evaluate([Variant()], desc="baseline")
         if self.results.get(Variant()) is None:
             raise RunError(f"the baseline run failed ({self.failures.get(Variant())}); check "
@@ -836,7 +794,7 @@ def rank_candidates(table: pd.DataFrame, chosen_ids=()) -> pd.DataFrame:
     return t
 
 
-__all__ += ["rank_candidates", "StudySource"]
+__all__ += ["rank_candidates"]
 
 
 # ------------------------------------------------------------------------------ comparison

@@ -38,6 +38,7 @@ from scipy.sparse.csgraph import dijkstra
 from scipy.spatial import cKDTree
 
 from ..errors import InputError
+from .tasks import cached
 
 __all__ = [
     "CollapseRule",
@@ -598,26 +599,13 @@ def stratified_origins(centroids, n: int, *, seed: int = 1) -> np.ndarray:
 
 
 #: per-process cache of prepared scans: key -> (study, y_burn, baseline abundance, times)
-_SCAN_CACHE: dict = {}
-
-
-def _scenario_payload(sc):
-    from ..scenario import _nested
-
-    return (_nested(dict(sc.values)), None if sc.path is None else str(sc.path),
-            str(sc.base_dir), sc.text)
-
-
-def _prepare(key, payload):
-    if key in _SCAN_CACHE:
-        return _SCAN_CACHE[key]
-    from ..scenario import parse_scenario
+def _prepare(payload, scan: str):
+    """The scan's study, burn-in state and baseline, once per process and scan (the main
+    process puts them in before the workers fork; a scan of its own id, so a worker that
+    outlives it never reuses them for a patch file changed since)."""
     from .study import build_study
 
-    raw, path, base_dir, text = payload
-    study = build_study(parse_scenario(raw, path=path, base_dir=base_dir, text=text))
-    _SCAN_CACHE[key] = _scan_state(study)
-    return _SCAN_CACHE[key]
+    return cached(("scan", scan), lambda: _scan_state(build_study(payload.scenario())))
 
 
 def _scan_state(study):
@@ -643,8 +631,8 @@ def _scan_one(task):
     """One origin of a scan (a module-level function, so a process pool can run it)."""
     from ..model.shocks import ShockContext, build_shocks, shock_events
 
-    key, payload, origin, rule, tables = task
-    study, y_burn, baseline = _prepare(key, payload)
+    payload, scan, origin, rule, tables = task
+    study, y_burn, baseline = _prepare(payload, scan)
     sc = study.scenario
     burn_in = sc["run.burn_in"]
     origin_id = str(study.ids[origin])
@@ -706,7 +694,7 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
         ``origin_collapses`` (bool), ``front_speed_km_per_time``, ``status`` ("ok" or the
         error text of a failed run).
     """
-    from .tasks import run_tasks
+    from .tasks import ScenarioPayload, forget, remember, run_tasks
 
     sc = study.scenario
     given = rule or CollapseRule.from_scenario(sc)
@@ -724,9 +712,9 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
     state = _scan_state(study)
     _require_species(study, rule, state[2], min(float(t["at"]) for t in aimed),
                      by_default=given.species == AUTO)
-    key = uuid.uuid4().hex
-    _SCAN_CACHE[key] = state
-    payload = _scenario_payload(sc)
+    scan = uuid.uuid4().hex
+    remember(("scan", scan), state)
+    payload = ScenarioPayload.of(sc)
     rows = {}
 
     def on_result(task, ok, value):
@@ -735,11 +723,11 @@ def origin_scan(study, origins=None, *, rule: CollapseRule | None = None, worker
                         {"origin_id": str(study.ids[origin]), "status": value})
 
     try:
-        run_tasks(_scan_one, [(key, payload, int(o), rule, tables) for o in origins],
+        run_tasks(_scan_one, [(payload, scan, int(o), rule, tables) for o in origins],
                   on_result=on_result, workers=workers, progress=progress,
                   scheduler=scheduler, dask_local=dask_local, desc="origins")
     finally:
-        _SCAN_CACHE.pop(key, None)
+        forget(("scan", scan))
     columns = ["origin_id", "cascade_size", "cascade_share", "mean_arrival_delay",
                "first_arrival_delay", "origin_collapses", "front_speed_km_per_time", "status"]
     frame = pd.DataFrame([rows[int(o)] for o in origins], columns=columns)

@@ -46,6 +46,8 @@ from typing import Any, Mapping, Sequence
 from ..errors import InputError, param
 from ..io.folder import write_atomic
 from ..integrate.noise import replicate_seeds
+from ..scenario import with_changes
+from .tasks import ScenarioPayload
 
 __all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "run_point", "Ledger",
            "SweepRun", "flatten_summary", "run_id_of", "KEY_RESULTS",
@@ -275,7 +277,8 @@ class SweepRun:
     """One run of a sweep: what a worker needs, and nothing large.
 
     ``variant`` is a tuple of ``(key, value)`` pairs in the sweep's key order; the scenario
-    travels as its text and the folder its relative paths are resolved against.
+    travels as the tables of its file (:meth:`ScenarioPayload.from_text`), so a variant's
+    values are validated with the file's own defaults.
     """
 
     run_id: str
@@ -283,9 +286,7 @@ class SweepRun:
     replicate: int
     seed: int
     variant: tuple
-    scenario_text: str
-    scenario_path: str | None
-    base_dir: str
+    scenario: ScenarioPayload
 
     @property
     def values(self) -> dict:
@@ -299,27 +300,11 @@ def run_id_of(variant: Mapping, replicate: int) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
 
 
-
-
-def _apply(raw: dict, variant: Mapping) -> dict:
-    """The scenario's TOML tables with some ``section.key`` values replaced (a copy)."""
-    out = {k: (dict(v) if isinstance(v, dict) else v) for k, v in raw.items()}
-    for key, value in variant.items():
-        section, _, name = key.rpartition(".")
-        if section:
-            table = out.get(section)
-            out[section] = dict(table) if isinstance(table, dict) else {}
-            out[section][name] = value
-        else:
-            out[name] = value
-    return out
-
-
 def _scenario_for(text: str, path, base_dir, variant: Mapping):
     from ..scenario import parse_scenario
 
     raw = tomllib.loads(text)
-    return parse_scenario(_apply(raw, variant), path=None if path is None else Path(path),
+    return parse_scenario(with_changes(raw, variant), path=None if path is None else Path(path),
                           base_dir=Path(base_dir), text=text)
 
 
@@ -453,8 +438,7 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
                          "points", field=param("replicates"))
     runs = []
     checked_files: dict = {}
-    base_dir = str(Path(scenario.base_dir).resolve())
-    path = None if scenario.path is None else str(Path(scenario.path).resolve())
+    payload = ScenarioPayload.from_text(scenario)
     seen_points: dict[tuple, dict] = {}
     for p, point in enumerate(points):
         try:
@@ -474,8 +458,7 @@ def plan_sweep(scenario_path, variants_or_vary_specs=None, *, replicates: int = 
         _check_point_inputs(sc, point, checked_files)
         for r, seed in enumerate(replicate_seeds(sc["run.seed"], replicates)):
             runs.append(SweepRun(run_id=run_id_of(dict(canonical), r), point=p, replicate=r,
-                                 seed=seed, variant=canonical, scenario_text=scenario.text,
-                                 scenario_path=path, base_dir=base_dir))
+                                 seed=seed, variant=canonical, scenario=payload))
     return keys, runs, scenario
 
 
@@ -574,8 +557,7 @@ def run_point(task: SweepRun) -> dict:
     from .study import build_study, run_study
 
     t0 = time.perf_counter()
-    sc = _scenario_for(task.scenario_text, task.scenario_path, task.base_dir,
-                       {**task.values, "run.seed": task.seed})
+    sc = task.scenario.scenario({**task.values, "run.seed": task.seed})
     result = run_study(build_study(sc))
     return {"results": flatten_summary(result.summary),
             "seconds": round(time.perf_counter() - t0, 4)}
@@ -702,12 +684,6 @@ def sweep_frame(ledger: Ledger, keys: Sequence[str], runs: Sequence[SweepRun] = 
     columns = (["run_id", *keys, "seed", "replicate", *result_cols, "status", "error",
                 *TIME_COLUMNS])
     return pd.DataFrame.from_records(records, columns=columns)
-
-
-
-
-
-
 
 
 def _now() -> str:

@@ -27,20 +27,26 @@ when a scheduler is asked for.
 
 from __future__ import annotations
 
+import hashlib
+import json
 import multiprocessing
 import os
 import signal
 import sys
 import threading
 import time
+import tomllib
 from collections import deque
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass
+from pathlib import Path
 from typing import Any, Callable, Iterable
 
 from ..errors import InputError, param
 
-__all__ = ["run_tasks", "default_workers", "check_workers"]
+__all__ = ["run_tasks", "default_workers", "check_workers", "ScenarioPayload", "cached",
+           "remember", "forget"]
 
 #: Tasks kept in flight per local worker: enough to keep a worker busy between results,
 #: few enough that a broken pool only has to re-run a handful.
@@ -117,6 +123,74 @@ def _init_worker(parent_pid: int | None) -> None:
     """The initializer of every local worker process."""
     _ignore_sigint()
     _exit_with_parent(parent_pid)
+
+
+@dataclass(frozen=True, eq=False)
+class ScenarioPayload:
+    """A scenario as a worker gets it: plain data, nothing large, rebuilt on the worker.
+
+    ``raw`` is the nested tables ``parse_scenario`` reads: the scenario's validated values
+    (:meth:`of`, so a scenario changed in memory travels as it is) or its file's own tables
+    (:meth:`from_text`, so that values a variant changes are validated with the file's
+    defaults, as a sweep needs). ``key`` names it in a worker's cache (:func:`cached`).
+    """
+
+    raw: dict
+    path: str | None
+    base_dir: str
+    text: str
+    key: str
+
+    @classmethod
+    def of(cls, scenario) -> "ScenarioPayload":
+        """The payload of a scenario's validated values."""
+        from ..scenario import nested_tables
+
+        return cls._make(nested_tables(scenario.values), scenario)
+
+    @classmethod
+    def from_text(cls, scenario) -> "ScenarioPayload":
+        """The payload of the tables in a scenario's file text."""
+        return cls._make(tomllib.loads(scenario.text), scenario)
+
+    @classmethod
+    def _make(cls, raw, scenario):
+        key = hashlib.sha256(json.dumps([raw, str(scenario.base_dir), scenario.sha256],
+                                        sort_keys=True, default=str).encode()).hexdigest()
+        return cls(raw=raw, path=None if scenario.path is None else str(Path(scenario.path).resolve()),
+                   base_dir=str(Path(scenario.base_dir).resolve()), text=scenario.text, key=key)
+
+    def scenario(self, changes=None):
+        """The scenario, with ``changes`` (``{"section.key": value}``) over its tables."""
+        from ..scenario import parse_scenario, with_changes
+
+        raw = self.raw if not changes else with_changes(self.raw, changes)
+        return parse_scenario(raw, path=None if self.path is None else Path(self.path),
+                              base_dir=Path(self.base_dir), text=self.text)
+
+
+#: Per process: what :func:`cached` built (a worker builds a study once, not per task).
+_CACHE: dict = {}
+
+
+def cached(key, make):
+    """``make()``, built once per process and key. The main process may put a value in
+    before the workers start (:func:`remember`): forked workers then inherit it."""
+    if key not in _CACHE:
+        _CACHE[key] = make()
+    return _CACHE[key]
+
+
+def remember(key, value) -> None:
+    """Put ``value`` in this process's cache under ``key``."""
+    _CACHE[key] = value
+
+
+def forget(key) -> None:
+    """Drop ``key`` from this process's cache; a key ``(kind, ...)`` given as ``kind`` alone
+    drops every entry of that kind."""
+    for k in [k for k in _CACHE if k == key or (isinstance(k, tuple) and k[0] == key)]:
+        del _CACHE[k]
 
 
 def check_workers(workers) -> None:
