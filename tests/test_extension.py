@@ -102,17 +102,11 @@ def test_registered_forms_are_scenario_choices(toys, grid):
 
 
 def test_a_registered_form_needs_the_parts_the_tool_uses():
-    class Bare(GrowthForm):
+    class Bare(GrowthForm):  # exponential growth without its birth/death split
         name = "bare"
         needs = ("growth_rate",)
-
-        @staticmethod
-        def value(n, q):
-            return q["growth_rate"] * n
-
-        @staticmethod
-        def dn(n, q):
-            return q["growth_rate"] * np.ones_like(n)
+        value = staticmethod(dynamics.Exponential.value)
+        dn = staticmethod(dynamics.Exponential.dn)
 
     with pytest.raises(TypeError, match="split"):
         register_growth_form(Bare)

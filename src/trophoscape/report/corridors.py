@@ -243,20 +243,20 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
         (stage / "corridors.html").write_text(_corridors_page(blocks, summary),
                                               encoding="utf-8")
         if maps:
-            from .html import add_section, write_report
+            from .html import section_html, write_report
 
             if baseline is None:
                 from ..workflows.study import run_study
 
                 baseline = run_study(study)
-            report = write_report(stage, baseline)
-            add_section(report, "Corridor planning", blocks=blocks, anchor="corridors")
+            write_report(stage, baseline, extra_sections=[
+                section_html("Corridor planning", blocks=blocks, anchor="corridors")])
     (out / PARTIAL).unlink(missing_ok=True)
     return out
 
 
 def corridor_blocks(plan, summary, table, critical, figures) -> list:
-    """The Corridor planning section as report blocks (:func:`trophoscape.report.html.add_section`):
+    """The Corridor planning section as report blocks (:func:`trophoscape.report.html.section_html`):
     what was done, the chosen set and the greedy–exhaustive gap, the ranking table, the two
     maps with a sentence each on how to read them, the critical elements."""
     from ..workflows.planning import OBJECTIVES

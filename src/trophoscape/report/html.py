@@ -25,7 +25,7 @@ import numpy as np
 from ..model.system import SPECIES
 
 __all__ = ["write_figures_and_report", "write_report", "write_comparison_report",
-           "add_section", "Html", "table_html", "CAUTION"]
+           "section_html", "Html", "table_html", "CAUTION"]
 
 CAUTION = (
     "These results are model projections for comparing options, not predictions of real "
@@ -89,8 +89,11 @@ def _pick_panel_patches(result, k=6):
     return [order[round(i * step)] for i in range(k)]
 
 
-def write_figures_and_report(folder, result, gdf, links, summary) -> None:
-    """Draw the maps and charts into ``folder/maps`` and write ``folder/report.html``."""
+def write_figures_and_report(folder, result, gdf, links, summary, extra_sections=()) -> None:
+    """Draw the maps and charts into ``folder/maps`` and write ``folder/report.html``.
+
+    ``extra_sections``: HTML of sections a command adds after the run's own
+    (:func:`section_html`); the page is built with them and written once."""
     from . import figures as plot
 
     folder = Path(folder)
@@ -152,10 +155,11 @@ def write_figures_and_report(folder, result, gdf, links, summary) -> None:
             ("Probability that the predator is gone from every patch by time t", path,
              f"Share of the {data.sizes['replicate']} replicate runs in which the predator had "
              "vanished from the whole network by each time, with its 95% Wilson interval."))
-    (folder / "report.html").write_text(_html(result, summary, sections), encoding="utf-8")
+    (folder / "report.html").write_text(_html(result, summary, sections, extra_sections),
+                                        encoding="utf-8")
 
 
-def write_report(folder, result) -> Path:
+def write_report(folder, result, extra_sections=()) -> Path:
     """The maps and ``report.html`` of a run, without the run's data files.
 
     For commands whose folder is about something else but whose report opens with the
@@ -169,7 +173,7 @@ def write_report(folder, result) -> Path:
     links = result.study.network.links_frame(result.study.landscape)
     summary = dict(result.summary)
     summary["provenance"] = provenance(result.study)
-    write_figures_and_report(folder, result, gdf, links, summary)
+    write_figures_and_report(folder, result, gdf, links, summary, extra_sections)
     return folder / "report.html"
 
 
@@ -225,25 +229,13 @@ def figures_html(figures) -> Html:
     return Html(_figures_html(figures))
 
 
-def add_section(report: Path, name: str, figures=(), *, intro: str = "", blocks=(),
-                anchor: str | None = None) -> None:
-    """Insert a section into a written report, before its closing provenance line.
-
-    The section is a heading, an ``intro`` paragraph, then ``blocks`` in order (plain text
-    becomes a paragraph; :class:`Html` from :func:`table_html`, :func:`figures_html` is
-    inserted as it is), then ``figures`` (``(title, png path, how to read it)``). Used by
-    commands that add their own results to a run's report (``spread``, ``corridors``).
-    """
-    report = Path(report)
-    text = report.read_text(encoding="utf-8")
-    text = insert_section(text, section_html(name, figures, intro=intro, blocks=blocks,
-                                             anchor=anchor))
-    report.write_text(text, encoding="utf-8")
-
-
 def section_html(name: str, figures=(), *, intro: str = "", blocks=(),
                  anchor: str | None = None) -> Html:
-    """The HTML of one section, as :func:`add_section` inserts it."""
+    """The HTML of one section a command adds to a run's report (``extra_sections`` of
+    :func:`write_figures_and_report`): a heading, an ``intro`` paragraph, then ``blocks`` in
+    order (plain text becomes a paragraph; :class:`Html` from :func:`table_html`,
+    :func:`figures_html` goes in as it is), then ``figures`` (``(title, png path, how to
+    read it)``)."""
     ident = f' id="{html.escape(str(anchor))}"' if anchor else ""
     parts = [f"<h2{ident}>{html.escape(str(name))}</h2>"]
     if intro:
@@ -252,12 +244,6 @@ def section_html(name: str, figures=(), *, intro: str = "", blocks=(),
     if figures:
         parts.append(_figures_html(figures))
     return Html("\n".join(parts) + "\n")
-
-
-def insert_section(text: str, block: str) -> str:
-    marker = "<p><small>Run "
-    at = text.rfind(marker)
-    return text[:at] + block + text[at:] if at >= 0 else text + block
 
 
 def _img(path: Path) -> str:
@@ -342,8 +328,7 @@ figure img { max-width: 100%; } figcaption { font-size: .9em; color: #444; }
 
 
 def page_html(title: str, body: str, footer: str) -> str:
-    """A whole self-contained page: ``body`` is HTML; ``footer`` the provenance line's text
-    (it starts with "Run ", which :func:`add_section` inserts before)."""
+    """A whole self-contained page: ``body`` is HTML; ``footer`` the provenance line's text."""
     esc = html.escape
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8">
@@ -385,7 +370,7 @@ def analysis_errors_html(summary) -> str:
             f"their maps are left out.</p><ul>{items}</ul></div>")
 
 
-def _html(result, summary, sections) -> str:
+def _html(result, summary, sections, extra_sections=()) -> str:
     sc = result.study.scenario
     esc = html.escape
     table = "\n".join(f"<tr><th>{esc(str(k))}</th><td>{esc(str(v))}</td></tr>"
@@ -398,6 +383,7 @@ def _html(result, summary, sections) -> str:
     for name, figures in sections.items():
         body.append(f"<h2>{esc(name)}</h2>")
         body.append(_figures_html(figures))
+    body.extend(extra_sections)
     return page_html(sc.name, "\n".join(body), footer_text(summary["provenance"]))
 
 

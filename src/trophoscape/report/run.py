@@ -52,7 +52,7 @@ def run_to_folder(study, out, *, maps: bool = True, geojson: bool = False, force
 
 
 def write_run(result, out, *, maps: bool = True, geojson: bool = False,
-              force: bool = False) -> Path:
+              force: bool = False, sections=()) -> Path:
     """Write the whole output folder of a run, atomically.
 
     Parameters
@@ -67,15 +67,19 @@ def write_run(result, out, *, maps: bool = True, geojson: bool = False,
         Also write ``patches.geojson`` (WGS 84, as RFC 7946 wants).
     force : bool
         Replace an existing folder even when trophoscape did not write it.
+    sections : sequence of str
+        HTML of sections to add after the run's own in the report
+        (:func:`trophoscape.report.html.section_html`).
     """
     out = Path(out)
     with staged_folder(out, force=force, inputs=input_files(result.study.scenario),
                        command="write_run") as stage:
-        write_run_files(result, stage, maps=maps, geojson=geojson)
+        write_run_files(result, stage, maps=maps, geojson=geojson, sections=sections)
     return out
 
 
-def write_run_files(result, stage, *, maps: bool = True, geojson: bool = False) -> None:
+def write_run_files(result, stage, *, maps: bool = True, geojson: bool = False,
+                    sections=()) -> None:
     """The files of :func:`write_run`, written into ``stage``, a folder from
     :func:`staged_folder` (the command line opens it before the run, so that the run
     writes ``timeseries.nc`` there as it goes)."""
@@ -97,4 +101,4 @@ def write_run_files(result, stage, *, maps: bool = True, geojson: bool = False) 
     if maps:
         from .html import write_figures_and_report
 
-        write_figures_and_report(stage, result, gdf, links, summary)
+        write_figures_and_report(stage, result, gdf, links, summary, sections)

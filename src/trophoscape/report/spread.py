@@ -84,18 +84,20 @@ def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
     spread_summary["provenance"] = provenance(study)
     with staged_folder(out, force=force, inputs=input_files(study.scenario),
                        command="spread", checked=checked) as stage:
-        write_run(run, stage, maps=maps, geojson=geojson)
+        # the spread's maps first, so that the run's report is written once, with them
+        sections = [_spread_maps(stage, study, result, scan)] if maps else []
+        write_run(run, stage, maps=maps, geojson=geojson, sections=sections)
         result.table[SPREAD_COLUMNS].to_csv(stage / "spread.csv", index=True)
         write_json(stage / "spread.json", spread_summary)
         if scan is not None:
             scan.to_csv(stage / "origins.csv", index=True)
-        if maps:
-            _spread_maps(stage, study, result, scan)
     return out
 
 
-def _spread_maps(stage: Path, study, result, scan) -> None:
+def _spread_maps(stage: Path, study, result, scan) -> str:
+    """Draw the spread's maps into ``stage/maps``; return the report section showing them."""
     from .figures import arrival_distance_plot, patch_map
+    from .html import section_html
 
     folder = stage / "maps"
     folder.mkdir(exist_ok=True)
@@ -122,27 +124,23 @@ def _spread_maps(stage: Path, study, result, scan) -> None:
         patch_map(frame, "cascade_share", path=folder / "origin_vulnerability.png",
                   links=links, title="Origins: share of other patches a collapse reaches",
                   label="share of patches reached", cmap="magma_r")
-    report = stage / "report.html"
-    if report.exists():
-        from .html import add_section
-
-        speed = s["front_speed_km_per_time"]
-        figures = [
-            (f"Arrival of {species} collapse", folder / "spread_arrival.png",
-             "When collapse reached each patch after the shock; dashed lines are isochrones, "
-             "grey patches were never reached."),
-            ("Arrival time against distance", folder / "spread_arrival_distance.png",
-             "Each dot is a reached patch; the line is the robust (Theil–Sen) front speed."),
-        ]
-        if scan is not None:
-            figures.append(("Worst origins", folder / "origin_vulnerability.png",
-                            "Each patch coloured by the share of the other patches a collapse "
-                            "starting there reaches: the darkest are the origins to watch."))
-        intro = (f"Shock at {s['shock_time']:g} {unit}; collapse reached "
-                 f"{s['reached_share']:.0%} of the patches"
-                 + (f", at {speed:.3g} km per {unit}." if speed is not None
-                    and speed == speed else "."))
-        add_section(report, "Collapse spread", figures, intro=intro)
+    speed = s["front_speed_km_per_time"]
+    figures = [
+        (f"Arrival of {species} collapse", folder / "spread_arrival.png",
+         "When collapse reached each patch after the shock; dashed lines are isochrones, "
+         "grey patches were never reached."),
+        ("Arrival time against distance", folder / "spread_arrival_distance.png",
+         "Each dot is a reached patch; the line is the robust (Theil–Sen) front speed."),
+    ]
+    if scan is not None:
+        figures.append(("Worst origins", folder / "origin_vulnerability.png",
+                        "Each patch coloured by the share of the other patches a collapse "
+                        "starting there reaches: the darkest are the origins to watch."))
+    intro = (f"Shock at {s['shock_time']:g} {unit}; collapse reached "
+             f"{s['reached_share']:.0%} of the patches"
+             + (f", at {speed:.3g} km per {unit}." if speed is not None
+                and speed == speed else "."))
+    return section_html("Collapse spread", figures, intro=intro)
 
 
 SPREAD_COLUMNS = ["arrival_time", "order", "network_distance_km", "distance_km",
