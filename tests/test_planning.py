@@ -602,7 +602,7 @@ def test_the_python_call_writes_what_the_command_writes(complements, monkeypatch
         pd.testing.assert_frame_equal(a, b)
     assert sorted(p.name for p in (folder / "cli").iterdir()) == sorted(
         p.name for p in (folder / "py").iterdir())
-    assert [str(i) for i in plan["table"].index] == list(
+    assert [str(i) for i in plan.table.index] == list(
         pd.read_csv(folder / "py" / "corridors.csv", dtype={"corridor_id": str})["corridor_id"])
     # refused like the command, naming the parameter
     with pytest.raises(InputError) as info:

@@ -114,19 +114,19 @@ def run_corridors(args) -> int:
 
 
 def _print_plan(plan, out) -> None:
-    table = plan["table"]
-    best = plan["best"]
-    ids = plan["planner"].candidates.ids
+    table = plan.table
+    best = plan.best
+    ids = plan.planner.candidates.ids
     print(f"wrote {out}")
     top = table[table["rank"] > 0].sort_values("rank").head(3)
     print("  best candidates: " + ", ".join(f"{i} (score {s:.3g})"
                                             for i, s in zip(top.index, top["score"])))
-    print(f"  chosen within budget {plan['budget']:g}: "
+    print(f"  chosen within budget {plan.budget:g}: "
           f"{', '.join(str(ids[c]) for c in best['chosen']) or 'none'} "
           f"(cost {best['cost']:g}, score {best['score']:.3g})")
-    if plan["gap"] is not None and not plan["gap"]["same_set"]:
-        print(f"  greedy falls short of the best set by {plan['gap']['absolute']:.3g}")
-    print(f"  {plan['timing']['runs']} runs in {plan['timing']['total_seconds']:.1f} s")
+    if plan.gap is not None and not plan.gap["same_set"]:
+        print(f"  greedy falls short of the best set by {plan.gap['absolute']:.3g}")
+    print(f"  {plan.timing['runs']} runs in {plan.timing['total_seconds']:.1f} s")
 
 
 # ---------------------------------------------------------------------------- compare

@@ -97,7 +97,7 @@ def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, laye
                               patches=patches, screen=screen,
                               exhaustive_limit=exhaustive_limit, workers=workers,
                               progress=progress, log=out / PARTIAL, links_file=links_file)
-        plan["timing"]["total_seconds"] = time.perf_counter() - started
+        plan.timing["total_seconds"] = time.perf_counter() - started
         write_corridors(plan, out, maps=maps, force=force, inputs=inputs, checked=True)
     return plan
 
@@ -136,25 +136,25 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
     from ..io.tables import provenance, write_json
 
     out = Path(out)
-    planner = plan["planner"]
+    planner = plan.planner
     study = planner.study
     cand = planner.candidates
     if inputs is None:
-        inputs = [*input_files(study.scenario), cand.path, plan.get("links_file")]
-    table = plan["table"]
+        inputs = [*input_files(study.scenario), cand.path, plan.links_file]
+    table = plan.table
     ordered = ["source", "target", "length_km", "cost", *[f"gain_{k}" for k in OBJECTIVES],
                "score", "score_per_cost", "rank", "chosen", "in_greedy_set"]
     ordered += [c for c in table.columns if c not in ordered]
     table = table[ordered]
-    critical = plan["critical"]
+    critical = plan.critical
     ids = cand.ids
-    best = plan["best"]
+    best = plan.best
     steps = []
-    if plan["exhaustive"] is not None:
+    if plan.exhaustive is not None:
         for c in best["chosen"]:
             steps.append({"method": "exhaustive", "step": "", "corridor_id": str(ids[c]),
                           "cost": float(cand.cost[c]), "score_gain": "", "score_after": ""})
-    for k, s in enumerate(plan["greedy"]["steps"], start=1):
+    for k, s in enumerate(plan.greedy["steps"], start=1):
         steps.append({"method": "greedy", "step": k, "corridor_id": s["corridor_id"],
                       "cost": s["cost"], "score_gain": s["gain"], "score_after": s["score"]})
     chosen = pd.DataFrame(steps, columns=["method", "step", "corridor_id", "cost", "score_gain",
@@ -170,19 +170,19 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
         "default_weights": DEFAULT_WEIGHTS,
         "score": "sum of weight x gain; capacity gains enter as their relative change "
                  "(gain / baseline metapopulation capacity); an undefined gain counts as 0",
-        "budget": plan["budget"],
-        "chosen_by": "exhaustive" if plan["exhaustive"] is not None else "greedy",
+        "budget": plan.budget,
+        "chosen_by": "exhaustive" if plan.exhaustive is not None else "greedy",
         "chosen": [str(ids[c]) for c in best["chosen"]],
         "chosen_cost": best["cost"],
         "chosen_score": best["score"],
-        "greedy": _set_json(plan["greedy"], ids),
-        "exhaustive": _set_json(plan["exhaustive"], ids),
-        "greedy_gap": plan["gap"],
-        "screened": None if plan["screened"] is None else {
+        "greedy": _set_json(plan.greedy, ids),
+        "exhaustive": _set_json(plan.exhaustive, ids),
+        "greedy_gap": plan.gap,
+        "screened": None if plan.screened is None else {
             "method": "gain in metapopulation capacity (prey + predator, relative) per cost",
-            "simulated": [str(ids[c]) for c in plan["screened"]]},
+            "simulated": [str(ids[c]) for c in plan.screened]},
         "failed_runs": {planner._label(v): msg for v, msg in planner.failures.items()},
-        "timing": plan["timing"],
+        "timing": plan.timing,
         "candidates_file": None if cand.path is None else str(cand.path),
         "candidates_sha256": None if cand.path is None else file_sha256(cand.path),
         "caution": CAUTION,
@@ -266,13 +266,13 @@ def corridor_blocks(plan, summary, table, critical, figures) -> list:
     ranked = table.reset_index().sort_values("rank")
     ranked = ranked[ranked["rank"] > 0]
     blocks = [
-        f"{len(table)} candidate corridors, budget {plan['budget']:g}. Each candidate was added "
+        f"{len(table)} candidate corridors, budget {plan.budget:g}. Each candidate was added "
         "alone to the network and the run repeated; the gains are changes against the network "
         "as it is, positive when good for the species. The score weighs "
         f"them: {weights} (capacity as its relative change).",
         SYNCHRONY_NOTE,
     ]
-    greedy, exhaustive, gap = plan["greedy"], plan["exhaustive"], plan["gap"]
+    greedy, exhaustive, gap = plan.greedy, plan.exhaustive, plan.gap
 
     def names(key):
         return ", ".join(summary[key]["chosen"]) or "none"
@@ -291,13 +291,13 @@ def corridor_blocks(plan, summary, table, critical, figures) -> list:
     else:
         blocks.append("No exhaustive search (too many candidates); the greedy set is reported "
                       "as chosen and may fall short of the best set.")
-    if plan["screened"] is not None:
-        blocks.append(f"Two-stage screening: only the {len(plan['screened'])} candidates with the "
+    if plan.screened is not None:
+        blocks.append(f"Two-stage screening: only the {len(plan.screened)} candidates with the "
                       "largest gain in metapopulation capacity per cost were simulated.")
     chosen = ", ".join(summary["chosen"]) or "none"
     blocks.append(Html(f"<p><strong>Chosen set ({summary['chosen_by']}):</strong> "
                        f"{html.escape(chosen)}, cost {summary['chosen_cost']:g} of the budget "
-                       f"{plan['budget']:g}.</p>"))
+                       f"{plan.budget:g}.</p>"))
     gains = ["gain_predator_area_persistence", "gain_predator_capacity",
              "gain_predator_synchrony"]
     gains += [f"gain_{k}" for k in summary["weights"] if f"gain_{k}" not in gains

@@ -67,6 +67,10 @@ __all__ = [
     "objectives_of",
     "capacity_of",
     "Planner",
+    "CorridorPlan",
+    "plan_corridors",
+    "check_plan_options",
+    "read_link_list",
     "compare_results",
     "patch_differences",
 ]
@@ -936,6 +940,48 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
     return pairs
 
 
+@dataclass(frozen=True, eq=False)
+class CorridorPlan:
+    """What :func:`plan_corridors` found.
+
+    Attributes
+    ----------
+    planner : Planner
+        Its runs and their scores.
+    table : pandas.DataFrame
+        The candidates, ranked (as ``corridors.csv``).
+    critical : pandas.DataFrame
+        The remove-one table (as ``critical.csv``).
+    greedy, exhaustive : dict
+        The sets chosen by each search (``chosen`` positions, ``cost``, ``score``; the
+        greedy set's ``steps``); ``exhaustive`` is None when the search did not run.
+    best : dict
+        The set reported as chosen: the exhaustive one when it ran, else the greedy one.
+    gap : dict or None
+        How far the greedy set falls short of the exhaustive one (``absolute``,
+        ``relative``, ``same_set``).
+    screened : list or None
+        Positions of the candidates simulated after screening (None: every candidate).
+    budget : float
+    timing : dict
+        Seconds per stage, and the number of runs.
+    links_file : Path or None
+        The file the links to remove were read from (an input the output may not hold).
+    """
+
+    planner: "Planner"
+    table: pd.DataFrame
+    critical: pd.DataFrame
+    greedy: dict
+    exhaustive: dict | None
+    best: dict
+    gap: dict | None
+    screened: list | None
+    budget: float
+    timing: dict
+    links_file: Path | None = None
+
+
 def check_plan_options(*, budget, screen=None, exhaustive_limit=12, workers=None,
                        weights=None) -> dict:
     """Refuse options a corridor plan cannot use, before anything runs; return the weights
@@ -974,11 +1020,7 @@ def plan_corridors(study, candidates, *, budget, weights=None, links="all", patc
 
     Returns
     -------
-    dict
-        ``planner`` (the :class:`~trophoscape.workflows.planning.Planner`), ``table``
-        (ranked candidates), ``critical`` (remove-one table), ``greedy``, ``exhaustive``
-        (or None), ``best`` (the set reported as chosen), ``gap``, ``screened`` (positions
-        simulated, or None), ``budget``, ``timing``.
+    CorridorPlan
     """
     weights = check_plan_options(budget=budget, screen=screen, exhaustive_limit=exhaustive_limit,
                                  workers=workers, weights=weights)
@@ -1023,10 +1065,10 @@ def plan_corridors(study, candidates, *, budget, weights=None, links="all", patc
     timing["remove_one_seconds"] = time.perf_counter() - t
     timing["runs"] = planner.runs
     timing["run_seconds"] = planner.run_seconds
-    return {"planner": planner, "table": table, "critical": critical, "greedy": greedy,
-            "exhaustive": exhaustive, "best": best, "gap": gap,
-            "screened": pool, "budget": float(budget), "timing": timing,
-            "links_file": None if links_file is None else Path(links_file)}
+    return CorridorPlan(planner=planner, table=table, critical=critical, greedy=greedy,
+                        exhaustive=exhaustive, best=best, gap=gap, screened=pool,
+                        budget=float(budget), timing=timing,
+                        links_file=None if links_file is None else Path(links_file))
 
 
 PARTIAL = "corridors.partial.csv"
