@@ -109,3 +109,19 @@ def test_the_checks_see_imports_inside_functions(tmp_path):
                                                 set(_graph().nodes))
     source = cli_main.read_text(encoding="utf-8")
     assert "    from ..report.run import run_to_folder" in source  # inside _dispatch
+
+
+def test_every_public_name_exists():
+    # consistency test: the package's public API (its __all__, loaded lazily) and every
+    # module's __all__ name things that exist
+    import importlib
+    import pkgutil
+
+    for name in trophoscape.__all__:
+        assert getattr(trophoscape, name) is not None, name
+    for info in pkgutil.walk_packages(trophoscape.__path__, "trophoscape."):
+        if info.name.endswith("__main__"):
+            continue
+        module = importlib.import_module(info.name)
+        missing = [n for n in getattr(module, "__all__", ()) if not hasattr(module, n)]
+        assert missing == [], (info.name, missing)

@@ -455,23 +455,11 @@ def read_corridors(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     source, assumed = (frame.crs, False) if frame.crs is not None else (
         pyproj.CRS.from_epsg(4326), True)
     _check_coordinates(geoms, source, path=path, refs=refs, assumed=assumed)
-    multi = shapely.get_type_id(geoms) == _MULTILINESTRING
-    if multi.any():
-        geoms = geoms.copy()
-        geoms[multi] = shapely.line_merge(geoms[multi])
-        broken = shapely.get_type_id(geoms) != _LINESTRING
-        if broken.any():
-            i = int(np.flatnonzero(broken)[0])
-            raise InputError("the parts of this MultiLineString do not join into one line; "
-                             "merge them into one continuous line from patch to patch",
-                             file=path, feature=_ref(refs, i), field="geometry")
+    geoms = _merged_lines(geoms, path=path, refs=refs)
     lines = geopandas.GeoSeries(geoms, crs=source).to_crs(crs)
-    short = ~(lines.length.to_numpy() > 0)
-    if short.any():
-        i = int(np.flatnonzero(short)[0])
-        raise InputError("line has zero length; draw the corridor as a line from one patch "
-                         "to another, or remove the feature",
-                         file=path, feature=_ref(refs, i), field="geometry")
+    _refuse_first(~(lines.length.to_numpy() > 0),
+                  "line has zero length; draw the corridor as a line from one patch to "
+                  "another, or remove the feature", path=path, refs=refs)
     out = frame.drop(columns=[frame.geometry.name])
     if has_ids:
         out["corridor_id"] = ids
@@ -554,21 +542,10 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     lines = projected.copy()
     if area.any():
         lines[area] = _long_axis(projected[area])
-    multi = shapely.get_type_id(lines) == _MULTILINESTRING
-    if multi.any():
-        lines[multi] = shapely.line_merge(lines[multi])
-        broken = shapely.get_type_id(lines) != _LINESTRING
-        if broken.any():
-            i = int(np.flatnonzero(broken)[0])
-            raise InputError("the parts of this MultiLineString do not join into one line; "
-                             "merge them into one continuous line from patch to patch",
-                             file=path, feature=_ref(refs, i), field="geometry")
-    short = ~(shapely.length(lines) > 0)
-    if short.any():
-        i = int(np.flatnonzero(short)[0])
-        raise InputError("candidate has zero length; draw it as a line or a strip from one "
-                         "patch to another, or remove the feature", file=path,
-                         feature=_ref(refs, i), field="geometry")
+    lines = _merged_lines(lines, path=path, refs=refs)
+    _refuse_first(~(shapely.length(lines) > 0),
+                  "candidate has zero length; draw it as a line or a strip from one patch to "
+                  "another, or remove the feature", path=path, refs=refs)
     out = frame.drop(columns=[frame.geometry.name]).copy()
     out["corridor_id"] = ids
     out["cost"] = cost
@@ -877,6 +854,30 @@ def _check_types(geoms: np.ndarray, allowed: tuple[int, ...], expected: str, *, 
                      file=path, feature=_ref(refs, i), field="geometry")
 
 
+def _refuse_first(mask, message, *, path, refs, field="geometry") -> None:
+    """Raise the :class:`InputError` of the first feature where ``mask`` holds, if any;
+    ``message`` is the text, or a function of the feature's position giving it."""
+    hits = np.flatnonzero(mask)
+    if hits.size:
+        i = int(hits[0])
+        raise InputError(message(i) if callable(message) else message, file=path,
+                         feature=_ref(refs, i), field=field)
+
+
+def _merged_lines(geoms, *, path, refs):
+    """Lines with every MultiLineString merged into one LineString (a copy where any is);
+    refuses one whose parts do not join."""
+    multi = shapely.get_type_id(geoms) == _MULTILINESTRING
+    if not multi.any():
+        return geoms
+    geoms = geoms.copy()
+    geoms[multi] = shapely.line_merge(geoms[multi])
+    _refuse_first(shapely.get_type_id(geoms) != _LINESTRING,
+                  "the parts of this MultiLineString do not join into one line; merge them "
+                  "into one continuous line from patch to patch", path=path, refs=refs)
+    return geoms
+
+
 def _check_lonlat(geoms: np.ndarray, *, path, refs, assumed: bool):
     bounds = shapely.bounds(geoms)
     bad = ((bounds[:, 0] < -180) | (bounds[:, 2] > 180) | (bounds[:, 1] < -90)
@@ -927,14 +928,11 @@ def _check_coordinates(geoms: np.ndarray, source: pyproj.CRS, *, path, refs, ass
         degrees = (np.abs(bounds[:, [0, 2]]) <= 180).all(axis=1) & (
             np.abs(bounds[:, [1, 3]]) <= 90).all(axis=1)
         degrees &= (_outside_lon(x, area) == 0) & (_outside_lat(y, area) == 0)
-        if degrees.any():
-            i = int(np.flatnonzero(degrees)[0])
-            unit = source.axis_info[0].unit_name if source.axis_info else "metre"
-            raise InputError(
-                f"{where(i)} look like longitude/latitude degrees, but the file's CRS "
-                f"{_crs_text(source)} is projected (unit: {unit}); store the file with the CRS "
-                "of its coordinates (EPSG:4326 for longitude/latitude)",
-                file=path, feature=_ref(refs, i), field="geometry")
+        unit = source.axis_info[0].unit_name if source.axis_info else "metre"
+        _refuse_first(degrees, lambda i: (
+            f"{where(i)} look like longitude/latitude degrees, but the file's CRS "
+            f"{_crs_text(source)} is projected (unit: {unit}); store the file with the CRS "
+            "of its coordinates (EPSG:4326 for longitude/latitude)"), path=path, refs=refs)
     if source.is_projected:
         try:
             to_lonlat = pyproj.Transformer.from_crs(source, 4326, always_xy=True)
@@ -946,11 +944,9 @@ def _check_coordinates(geoms: np.ndarray, source: pyproj.CRS, *, path, refs, ass
                              "CRS with an EPSG code", file=path, field="geometry") from None
         lon, lat = np.asarray(lon, dtype=float), np.asarray(lat, dtype=float)
         lost = ~(np.isfinite(lon) & np.isfinite(lat) & (np.abs(lat) <= 90))
-        if lost.any():
-            i = int(np.flatnonzero(lost)[0])
-            raise InputError(f"{where(i)} are no place on the Earth in the file's CRS "
-                             f"{_crs_text(source)}; store the file with the CRS of its "
-                             "coordinates", file=path, feature=_ref(refs, i), field="geometry")
+        _refuse_first(lost, lambda i: (
+            f"{where(i)} are no place on the Earth in the file's CRS {_crs_text(source)}; "
+            "store the file with the CRS of its coordinates"), path=path, refs=refs)
     else:
         lon, lat = x, y
     if area is None:
