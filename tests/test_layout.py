@@ -66,7 +66,11 @@ def _imports(path: Path, name: str, modules: set[str]) -> set[str]:
 
 
 def _graph() -> nx.DiGraph:
-    files = [p for p in PACKAGE.rglob("*.py") if "__pycache__" not in p.parts]
+    # modules of the package: files in folders with an __init__.py (the installed demo data
+    # folder holds the scripts that made it, which are no part of the package)
+    files = [p for p in PACKAGE.rglob("*.py")
+             if all((folder / "__init__.py").is_file()
+                    for folder in [p.parent, *p.parent.parents][:len(p.relative_to(PACKAGE).parts)])]
     names = {_module_name(p): p for p in files}
     graph = nx.DiGraph()
     graph.add_nodes_from(names)
