@@ -119,6 +119,13 @@ def test_a_registered_form_needs_the_parts_the_tool_uses():
     with pytest.raises(ValueError, match="no_such_rate"):
         register_growth_form(Unknown)
 
+    class Taken(SplitLogistic):
+        name = "logistic"
+
+    with pytest.raises(ValueError, match="is taken"):
+        register_growth_form(Taken)
+    assert dynamics.GROWTH_FORMS["logistic"] is dynamics.Logistic
+
 
 def test_deterministic_runs_equal_the_built_in_forms(toys, grid):
     # consistency test: the restated forms give the built-in logistic / Holling II run

@@ -35,6 +35,7 @@ FLAGS = {
     "weights": "--weights", "screen": "--screen", "exhaustive_limit": "--exhaustive-limit",
     "links": "--remove-links", "columns": "--columns",
     "runs": "--no-runs", "origins": "--origins", "patches": "--patches", "name": "--name",
+    "scenarios": "scenarios",  # compare's positional argument
 }
 
 #: Modules that add a command: each has ``add_parser(subparsers)``, which registers its

@@ -54,13 +54,15 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 
 
 def _origin_count(text):
-    """``--origins``: "all", a whole number (checked by the library), or None."""
+    """``--origins``: "all", a whole number of at least 1, None, or else the text as given
+    (the library refuses it, quoting it)."""
     if text is None or text == "all":
         return text
     try:
-        return int(text)
+        n = int(text)
     except ValueError:
         return text
+    return n if n >= 1 else text
 
 
 def run_command(args) -> int:

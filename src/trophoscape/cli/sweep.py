@@ -1,4 +1,4 @@
-"""The ``trophoscape sweep`` command: a thin shell over :func:`trophoscape.workflows.sweep.sweep`."""
+"""The ``trophoscape sweep`` command: a thin shell over :func:`trophoscape.report.sweep.sweep`."""
 
 from __future__ import annotations
 

@@ -348,6 +348,13 @@ def _check_form(cls, base, required) -> None:
     if unknown:
         raise ValueError(f"{cls.__name__} needs {unknown}, which no scenario key sets; add them "
                          "to PARAMETER_KEYS (and the scenario's SCHEMA) first")
+    checked = [*getattr(cls, "positive", ()), *getattr(cls, "below_capacity", {})]
+    stray = [p for p in checked if p not in cls.needs]
+    if stray:
+        raise ValueError(f"{cls.__name__} checks {stray}, which are not among its needs")
+    if cls.name in GROWTH_FORMS or cls.name in RESPONSES:
+        raise ValueError(f"the name {cls.name!r} is taken; give the new form a name of its own "
+                         "(the compiled evaluation and saved scenarios read forms by name)")
 
 
 def register_growth_form(cls: type[GrowthForm]) -> type[GrowthForm]:

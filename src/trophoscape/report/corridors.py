@@ -34,7 +34,7 @@ def _set_json(result, ids):
 def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, layer=None,
                         links="all", patches=True, screen=None, exhaustive_limit=12,
                         workers=None, maps: bool = True, force: bool = False,
-                        progress: bool = False) -> dict:
+                        progress: bool = False):
     """Rank candidate corridors, choose a set within the budget and write the folder: what
     ``trophoscape corridors`` does.
 
@@ -62,7 +62,7 @@ def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, laye
 
     Returns
     -------
-    dict
+    CorridorPlan
         The plan (see :func:`~trophoscape.workflows.planning.plan_corridors`).
     """
     import time

@@ -598,7 +598,6 @@ def stratified_origins(centroids, n: int, *, seed: int = 1) -> np.ndarray:
     return np.sort(order[pick])
 
 
-#: per-process cache of prepared scans: key -> (study, y_burn, baseline abundance, times)
 def _prepare(payload, scan: str):
     """The scan's study, burn-in state and baseline, once per process and scan (the main
     process puts them in before the workers fork; a scan of its own id, so a worker that
