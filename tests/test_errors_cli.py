@@ -696,7 +696,8 @@ def test_a_library_error_names_the_parameter_and_the_command_line_its_option(tmp
 
 
 def test_every_option_in_the_flag_table_exists():
-    # consistency test: FLAGS maps parameters to options the parser really has
+    # consistency test: FLAGS maps parameters to options (or positional arguments) the
+    # parser really has
     from trophoscape.cli.program import FLAGS, _parser
 
     parser = _parser()
@@ -704,7 +705,7 @@ def test_every_option_in_the_flag_table_exists():
     for action in parser._subparsers._group_actions:
         for sub in action.choices.values():
             for a in sub._actions:
-                options.update(a.option_strings)
+                options.update(a.option_strings or [a.dest])
     assert set(FLAGS.values()) <= options, set(FLAGS.values()) - options
 
 
