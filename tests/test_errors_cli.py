@@ -709,6 +709,26 @@ def test_every_option_in_the_flag_table_exists():
     assert set(FLAGS.values()) <= options, set(FLAGS.values()) - options
 
 
+def test_every_parameter_a_message_names_has_its_option():
+    # consistency test: each errors.param("name") in the library has an entry in FLAGS, so the
+    # command line never shows a parameter under a made-up option
+    import ast
+
+    import trophoscape
+    from trophoscape.cli.program import FLAGS
+
+    root = Path(trophoscape.__file__).parent
+    named = set()
+    for path in root.rglob("*.py"):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if (isinstance(node, ast.Call) and isinstance(node.func, ast.Name)
+                    and node.func.id == "param" and node.args):
+                named |= {c.value for c in ast.walk(node.args[0])
+                          if isinstance(c, ast.Constant) and isinstance(c.value, str)}
+    assert len(named) > 10  # the scan sees the calls
+    assert named - set(FLAGS) == set(), named - set(FLAGS)
+
+
 def test_no_library_message_names_a_command_line_option():
     # consistency test: outside cli/, text that reaches users names parameters
     # (errors.param), never options; docstrings and comments may mention options

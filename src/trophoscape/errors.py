@@ -95,7 +95,7 @@ def param(name: str, value=None) -> str:
 def _shown(match, flags, bare=False) -> str:
     name, value = match.group(1), match.group(2)
     if flags is not None:
-        flag = flags.get(name, "--" + name.replace("_", "-"))
+        flag = flags.get(name, name)  # every parameter has its entry (tests/test_errors_cli.py)
         return flag if bare or not value else f"{flag} {value}"
     if bare or value is None:
         return name

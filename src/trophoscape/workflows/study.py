@@ -278,8 +278,9 @@ def check_run_size(sc: Scenario, n_patches: int, params=None, emigration=None) -
 
     if params is not None and choose_method(sc["run.method"]) not in IMPLICIT + ("LSODA",):
         fastest = {PARAMETER_KEYS[k]: v for k, v in fastest_rates(params).items()}
-        fastest.update({f"{s}.emigration_rate": v for s, v in fastest_rates(
-            emigration or {}, names=tuple(emigration or ())).items()})
+        if emigration:
+            fastest.update({f"{s}.emigration_rate": v for s, v in
+                            fastest_rates(emigration, names=tuple(emigration)).items()})
         key = max(fastest, key=fastest.get)
         scales = fastest[key] * sc["run.duration"]
         if scales > MAX_TIME_SCALES:
