@@ -65,6 +65,10 @@ def test_report_is_self_contained_and_cautious(report):
     assert "Report check" in text
     assert "http://" not in text and "https://" not in text  # nothing fetched from outside
     assert text.count("data:image/png;base64,") >= 8
+    # the scenario in plain words, with the article its kernel takes (common practice: English)
+    assert ("Dispersal follows an exponential kernel" in text
+            or "Dispersal follows a gaussian kernel" in text
+            or "Dispersal follows a step kernel" in text), text[:2000]
 
 
 def test_corridor_report_is_the_run_report_with_a_corridor_section(corridor_report):

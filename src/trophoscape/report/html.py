@@ -261,6 +261,10 @@ def _fmt(value, kind="number"):
     return str(value)
 
 
+def _article(word: str) -> str:
+    return "an" if str(word)[:1].lower() in "aeiou" else "a"
+
+
 def _scenario_words(result) -> str:
     sc = result.study.scenario
     model = result.study.system.model
@@ -275,7 +279,7 @@ def _scenario_words(result) -> str:
         f"{sc['time_unit']} up to {_fmt(sc['prey.capacity_density'])} per km² (times patch "
         f"quality); predators eat them with a {response.words} "
         f"response and die at rate {_fmt(sc['predator.mortality_rate'])} per "
-        f"{sc['time_unit']}. Dispersal follows a {sc['dispersal.kernel']} kernel up to "
+        f"{sc['time_unit']}. Dispersal follows {_article(sc['dispersal.kernel'])} {sc['dispersal.kernel']} kernel up to "
         f"{_fmt(sc['dispersal.max_distance_km'])} km. The run lasts "
         f"{_fmt(sc['run.duration'])} {sc['time_unit']}s; the first "
         f"{_fmt(sc['run.burn_in'])} are burn-in."
