@@ -368,10 +368,10 @@ def _earlier_run_folder(folder: Path) -> None:
 
 
 def _earlier_sweep_folder(folder: Path) -> None:
-    from trophoscape.workflows.sweep import Ledger
+    from trophoscape.workflows.sweep import open_ledger
 
     folder.mkdir(parents=True)
-    ledger = Ledger(folder / "ledger.sqlite")
+    ledger = open_ledger(folder / "ledger.sqlite")
     ledger.set_meta(format="1", scenario_sha256="0" * 64, keys="[]", created="then")
     ledger.close()
     (folder / "runs").mkdir()
@@ -463,22 +463,65 @@ def test_an_output_folder_of_an_earlier_version_is_replaced_whole(tmp_path):
 
 def test_ledger_recognition_matches_the_sweep_ledger(tmp_path):
     # consistency test: the ledger io.folder recognises is the one workflows.sweep writes
+    from trophoscape.io.ledger import Ledger
     from trophoscape.report.sweep import sweep
-    from trophoscape.workflows.sweep import Ledger
+    from trophoscape.workflows.sweep import SWEEP_COLUMNS
 
     write_valley(tmp_path)
     sweep(tmp_path / "s.toml", ["prey.growth_rate=0.5"], out=tmp_path / "sw", workers=1,
           plots=False)
     conn = sqlite3.connect(tmp_path / "sw" / "ledger.sqlite")
     try:
-        for table, columns in outputs.LEDGER_TABLES.items():
-            assert {r[1] for r in conn.execute(f"PRAGMA table_info({table})")} == set(columns)
+        found = {t: {r[1] for r in conn.execute(f"PRAGMA table_info({t})")}
+                 for t in outputs.LEDGER_TABLES}
         keys = {r[0] for r in conn.execute("SELECT key FROM meta")}
     finally:
         conn.close()
+    assert found["meta"] == set(outputs.LEDGER_TABLES["meta"])
+    assert found["runs"] == set(outputs.LEDGER_TABLES["runs"]) | set(SWEEP_COLUMNS)
     assert outputs.LEDGER_META_KEYS <= keys
     assert set(outputs.LEDGER_TABLES) == set(re.findall(r"CREATE TABLE IF NOT EXISTS (\w+)",
-                                                        Ledger.SCHEMA))
+                                                        Ledger.schema(SWEEP_COLUMNS)))
+
+
+def test_a_ledger_of_an_earlier_version_reads_as_before(tmp_path):
+    # consistency test: a ledger with the table an earlier version made (its CREATE
+    # statement kept here verbatim) is opened, recorded into and read by today's code
+    import json as _json
+
+    from trophoscape.workflows.sweep import open_ledger
+
+    path = tmp_path / "ledger.sqlite"
+    conn = sqlite3.connect(path)
+    conn.executescript("""
+    CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+    CREATE TABLE IF NOT EXISTS runs (
+        run_id    TEXT PRIMARY KEY,
+        point     INTEGER NOT NULL,
+        replicate INTEGER NOT NULL,
+        seed      INTEGER NOT NULL,
+        variant   TEXT NOT NULL,
+        status    TEXT NOT NULL CHECK (status IN ('ok', 'failed')),
+        error     TEXT,
+        results   TEXT,
+        seconds   REAL,
+        finished  TEXT NOT NULL
+    );""")
+    conn.execute("INSERT INTO runs VALUES ('a', 0, 0, 7, ?, 'ok', NULL, ?, 1.5, 'then')",
+                 (_json.dumps({"prey.growth_rate": 0.5}), _json.dumps({"x": 1.0})))
+    conn.commit()
+    conn.close()
+    ledger = open_ledger(path)
+    try:
+        ledger.record("b", ok=False, error="boom", point=1, replicate=0, seed=8,
+                      variant={"prey.growth_rate": 1.0})
+        rows = ledger.rows()
+        assert ledger.ok_ids() == {"a"}
+    finally:
+        ledger.close()
+    assert [r["run_id"] for r in rows] == ["a", "b"]
+    assert rows[0]["variant"] == {"prey.growth_rate": 0.5} and rows[0]["results"] == {"x": 1.0}
+    assert rows[1]["status"] == "failed" and rows[1]["results"] == {}
 
 
 # ------------------------------------------------------------------ inputs that are folders,

@@ -276,7 +276,7 @@ def test_parse_weights():
 
 def test_parallel_runs_match_and_partial_log_is_reused(one_sink, tmp_path):
     study, cand = one_sink["study"], one_sink["candidates"]
-    log = tmp_path / "corridors.partial.csv"
+    log = tmp_path / "corridors.partial.sqlite"
     first = pl.Planner(study, cand, workers=2, log=log)
     table2 = first.add_one()
     # tasks are pure: two processes give the numbers one process gives
@@ -284,7 +284,7 @@ def test_parallel_runs_match_and_partial_log_is_reused(one_sink, tmp_path):
     gains = [c for c in table1.columns if c.startswith("gain_")]
     np.testing.assert_allclose(table2[gains].to_numpy(float), table1[gains].to_numpy(float),
                                rtol=1e-12, atol=1e-15)
-    rows = pd.read_csv(log)
+    rows = pl.evaluations_frame(log)
     assert len(rows) == 4 and (rows["status"] == "ok").all()   # baseline + 3 candidates
     # an interrupted ranking restarted with the same log runs nothing again
     again = pl.Planner(study, cand, workers=1, log=log)
@@ -407,8 +407,13 @@ def test_report_states_gap_when_gains_do_not_add_up(complements, monkeypatch):
     lines = geopandas.read_file(out / "corridors.gpkg", layer="candidates")
     assert sorted(lines["corridor_id"]) == ["L", "R1", "R2"]
     assert (out / "maps" / "corridors_gain_per_cost.png").stat().st_size > 0
-    assert not (out / "corridors.partial.csv").exists()
-    assert len(pd.read_csv(out / "evaluations.csv")) == summary["timing"]["runs"]
+    assert not list(out.glob("corridors.partial.*"))
+    evaluations = pd.read_csv(out / "evaluations.csv")
+    assert len(evaluations) == summary["timing"]["runs"]
+    # the columns of evaluations.csv before the ledger (a CSV log) are still there, in order
+    assert list(evaluations.columns[:len(pl.OBJECTIVES) + 3]) == [
+        "fingerprint", "variant", *pl.OBJECTIVES, "status"]
+    assert (evaluations["status"] == "ok").all()
     critical = pd.read_csv(out / "critical.csv")
     assert set(critical["kind"]) == {"link", "patch"}
     # every link was tested: the pairs within 3 km edge to edge, found by brute force with

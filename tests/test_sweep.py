@@ -30,7 +30,8 @@ from trophoscape.cli import program as cli
 from trophoscape.errors import InputError, RunError
 from trophoscape.workflows.tasks import run_tasks
 from trophoscape.report.sweep import sweep
-from trophoscape.workflows.sweep import (LEDGER_NAME, TABLE_NAME, TIME_COLUMNS, Ledger, parse_vary,
+from trophoscape.io.ledger import Ledger
+from trophoscape.workflows.sweep import (LEDGER_NAME, TABLE_NAME, TIME_COLUMNS, parse_vary,
                                          plan_sweep, read_sweep_table)
 from trophoscape.integrate.noise import replicate_seeds
 from trophoscape.testing import grid_landscape
@@ -470,9 +471,9 @@ def test_dask_worker_killed_mid_sweep(tmp_path, long_scenario, reference, monkey
     calls: dict[str, int] = {}
     record = Ledger.record
 
-    def counting(self, run, **kw):
-        calls[run.run_id] = calls.get(run.run_id, 0) + 1
-        return record(self, run, **kw)
+    def counting(self, run_id, **kw):
+        calls[run_id] = calls.get(run_id, 0) + 1
+        return record(self, run_id, **kw)
 
     monkeypatch.setattr(Ledger, "record", counting)
     out = tmp_path / "out"

@@ -6,7 +6,7 @@ runs several scenarios and sets their results side by side. Both are thin shells
 :mod:`trophoscape.workflows.planning`; the output folder is checked before any run
 (:func:`trophoscape.io.folder.check_out`) and written through
 :func:`trophoscape.io.folder.staged_folder`, so it appears whole or not at all. While the
-corridor runs go on, each finished run is appended to ``corridors.partial.csv`` in the
+corridor runs go on, each finished run is recorded in ``corridors.partial.sqlite`` in the
 output folder (created with its marker before the runs; an earlier output folder there is
 kept until the new one is whole): an interrupted ranking keeps what it had, and running the
 same command again reads those rows back instead of running them again.

@@ -46,6 +46,7 @@ from pathlib import Path
 
 
 from ..errors import InputError, Terminated, param, raise_if_stopped
+from .ledger import LEDGER_COLUMNS
 
 __all__ = ["staged_folder", "working_folder", "check_out", "out_argument", "allow_names",
            "file_sha256", "written_count", "written_since", "MARKER_NAME", "STAGING_NAME"]
@@ -78,11 +79,10 @@ _EARLIER_PATHS = re.compile("(?:" + "|".join([
     r"runs/[0-9a-f]{16}\.json|runs/\.[0-9a-f]{16}\.json-[^/]+\.tmp|plots/|plots/[^/]+\.png",
 ]) + ")")
 _SWEEP_RECORD = re.compile(r"runs/(?P<id>[0-9a-f]{16})\.json")
-#: What a sweep's ledger holds (sweep.Ledger.SCHEMA and the keys sweep() sets in ``meta``;
-#: tests/test_outputs_safety.py checks the two agree).
-LEDGER_TABLES = {"meta": frozenset({"key", "value"}),
-                 "runs": frozenset({"run_id", "point", "replicate", "seed", "variant",
-                                    "status", "error", "results", "seconds", "finished"})}
+#: What a sweep's ledger holds: the tables and columns of every ledger
+#: (:mod:`trophoscape.io.ledger`) and the keys a sweep sets in ``meta``
+#: (tests/test_outputs_safety.py checks them against a sweep's ledger).
+LEDGER_TABLES = {"meta": frozenset({"key", "value"}), "runs": frozenset(LEDGER_COLUMNS)}
 LEDGER_META_KEYS = frozenset({"format", "scenario_sha256", "keys"})
 #: Staging (``partial``) and set-aside (``old``) folders beside an output folder.
 _SIBLING = re.compile(r"\.(?P<name>.+)\.(?P<kind>partial|old)-(?P<pid>[0-9]+)-[0-9a-f]{8}")

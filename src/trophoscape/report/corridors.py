@@ -1,23 +1,23 @@
 """The folders of ``corridors`` and ``compare``: tables, layers, maps and the report page.
 
 Written through :func:`trophoscape.io.folder.staged_folder`, so a folder appears whole or not
-at all. While the corridor runs go on, each finished run is appended to
-``corridors.partial.csv`` in the output folder: an interrupted ranking keeps what it had, and
-running the same command again reads those rows back instead of running them again.
+at all. While the corridor runs go on, each finished run is recorded in the ledger
+``corridors.partial.sqlite`` in the output folder (:mod:`trophoscape.io.ledger`, as a sweep's):
+an interrupted ranking keeps what it had, and running the same command again reads those runs
+back instead of running them again. ``evaluations.csv`` is written from the ledger.
 """
 
 from __future__ import annotations
 
 import html
 import re
-import shutil
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from ..errors import InputError, param
-from ..workflows.planning import PARTIAL
+from ..workflows.planning import PARTIAL, PARTIAL_FILES, evaluations_frame
 from .html import CAUTION
 
 __all__ = ["corridors_to_folder", "compare_to_folder", "write_corridors", "write_comparison",
@@ -45,7 +45,7 @@ def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, laye
     candidates : path
         The candidate corridors (lines with ``cost``; see the README).
     out : path
-        The output folder. While the runs go on it holds ``corridors.partial.csv``: running
+        The output folder. While the runs go on it holds ``corridors.partial.sqlite``: running
         the same call again reads those runs back instead of running them again.
     budget, weights, screen, exhaustive_limit, workers :
         As for :func:`trophoscape.workflows.planning.plan_corridors`.
@@ -90,7 +90,7 @@ def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, laye
     # everything is validated: only now does the output folder appear (for the partial log);
     # an earlier output folder there stays until the new one is whole, and a folder made
     # here that got no row is removed again if the call fails
-    with working_folder(out, command="corridors", allow=[PARTIAL], inputs=inputs,
+    with working_folder(out, command="corridors", allow=[PARTIAL_FILES], inputs=inputs,
                         force=force, reuse=True):
         started = time.perf_counter()
         plan = plan_corridors(study, candidates, budget=budget, weights=weights, links=links,
@@ -195,7 +195,7 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
     land = study.landscape
     links_frame = study.network.links_frame(land)
     with staged_folder(out, force=force, inputs=inputs, command="corridors",
-                       allow=(PARTIAL,), checked=checked) as stage:
+                       allow=(PARTIAL_FILES,), checked=checked) as stage:
         table.to_csv(stage / "corridors.csv", index=True)
         critical.to_csv(stage / "critical.csv", index=False)
         chosen.to_csv(stage / "chosen.csv", index=False)
@@ -220,7 +220,7 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
                             engine="pyogrio")
         log = out / PARTIAL
         if log.is_file():
-            shutil.copyfile(log, stage / "evaluations.csv")
+            evaluations_frame(log).to_csv(stage / "evaluations.csv", index=False)
         figures = {}
         if maps:
             from .figures import corridor_map, patch_map
@@ -251,7 +251,8 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
                 baseline = run_study(study)
             write_report(stage, baseline, extra_sections=[
                 section_html("Corridor planning", blocks=blocks, anchor="corridors")])
-    (out / PARTIAL).unlink(missing_ok=True)
+    for name in (PARTIAL, PARTIAL + "-wal", PARTIAL + "-shm"):
+        (out / name).unlink(missing_ok=True)
     return out
 
 

@@ -34,11 +34,10 @@ builds the baseline study once and keeps it for the tasks that follow.
 
 from __future__ import annotations
 
-import csv
 import hashlib
 import json
 import math
-import os
+import sqlite3
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -52,6 +51,7 @@ from ..model.network import (KERNELS, Network, movement_operator, snap_line_ends
                                        with_links, without)
 from ..model.system import SPECIES, CoupledSystem
 from ..analysis.capacity import metapopulation_capacity
+from ..io.ledger import Ledger
 from .tasks import ScenarioPayload, cached, forget, remember
 
 __all__ = [
@@ -73,6 +73,8 @@ __all__ = [
     "read_link_list",
     "compare_results",
     "patch_differences",
+    "open_evaluations",
+    "evaluations_frame",
 ]
 
 #: Objectives: name -> (what it is, +1 if higher is better, -1 if lower is better).
@@ -424,9 +426,9 @@ class Planner:
     progress : bool
         Show a progress bar.
     log : path, optional
-        CSV to which every finished run is appended at once (``variant``, every objective,
-        ``status``). Rows already there from an interrupted planning of the same scenario
-        and candidates are read back and not run again.
+        Ledger file (:func:`open_evaluations`) in which every finished run is recorded at
+        once. Runs already there from an interrupted planning of the same scenario and
+        candidates are read back and not run again.
 
     Attributes
     ----------
@@ -480,42 +482,50 @@ class Planner:
     def _label(self, variant: Variant) -> str:
         return variant.label(self.candidates.ids, self.study.ids)
 
+    def _ledger(self) -> Ledger:
+        return open_evaluations(self.log)
+
+    def _run_id(self, variant: Variant) -> str:
+        text = f"{self.fingerprint}\n{self._label(variant)}"
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
+
     def _read_log(self):
         if not self.log.is_file():
             return
         try:
-            table = pd.read_csv(self.log, dtype={"fingerprint": str, "variant": str})
-        except (pd.errors.EmptyDataError, pd.errors.ParserError):
+            ledger = self._ledger()
+        except sqlite3.DatabaseError:  # not a ledger (the caller's folder checks make it ours)
             return
-        if not {"fingerprint", "variant", "status"} <= set(table.columns):
-            return
+        try:
+            rows = ledger.rows()
+        finally:
+            ledger.close()
         cand = {str(c): k for k, c in enumerate(self.candidates.ids)}
         patch = {str(p): k for k, p in enumerate(self.study.ids)}
-        for row in table[table["fingerprint"] == self.fingerprint].itertuples(index=False):
-            if row.status != "ok":
+        for row in rows:
+            if row["fingerprint"] != self.fingerprint or row["status"] != "ok":
                 continue
             try:
-                spec = json.loads(row.variant)
+                spec = json.loads(row["variant"])
                 variant = Variant.of([cand[c] for c in spec["add"]],
                                      [(patch[a], patch[b]) for a, b in spec["cut"]],
                                      [patch[p] for p in spec["lost"]])
+                self.results[variant] = {k: float(row["results"][k]) for k in OBJECTIVES}
             except (KeyError, ValueError, TypeError):
                 continue
-            self.results[variant] = {k: float(getattr(row, k)) for k in OBJECTIVES}
 
-    def _append_log(self, variant, values, status):
+    def _append_log(self, variant, values, error=None):
         if self.log is None:
             return
-        new = not self.log.is_file() or self.log.stat().st_size == 0
-        with open(self.log, "a", newline="", encoding="utf-8") as fh:
-            writer = csv.writer(fh)
-            if new:
-                writer.writerow(["fingerprint", "variant", *OBJECTIVES, "status"])
-            writer.writerow([self.fingerprint, self._label(variant),
-                             *[("" if values is None else repr(values[k])) for k in OBJECTIVES],
-                             status])
-            fh.flush()
-            os.fsync(fh.fileno())
+        ledger = self._ledger()
+        try:
+            ledger.record(self._run_id(variant), ok=error is None, error=error,
+                          results=None if values is None else {k: float(values[k])
+                                                               for k in OBJECTIVES},
+                          fingerprint=self.fingerprint,
+                          variant=self._label(variant))
+        finally:
+            ledger.close()
 
     # -- running
 
@@ -531,11 +541,11 @@ class Planner:
         def done(task, ok, value):
             if ok:
                 self.results[task.variant] = value
-                self._append_log(task.variant, value, "ok")
+                self._append_log(task.variant, value)
             else:
                 self.results[task.variant] = None
                 self.failures[task.variant] = value
-                self._append_log(task.variant, None, f"failed: {value}")
+                self._append_log(task.variant, None, error=str(value))
 
         run_tasks(_evaluate, [_Task(self.source, self._arrays, v) for v in todo],
                   on_result=done, workers=self.workers, progress=self.progress, desc=desc)
@@ -1071,4 +1081,32 @@ def plan_corridors(study, candidates, *, budget, weights=None, links="all", patc
                         links_file=None if links_file is None else Path(links_file))
 
 
-PARTIAL = "corridors.partial.csv"
+#: The ledger of a ranking's runs while it goes on (:func:`open_evaluations`); the
+#: pattern also covers SQLite's journal files beside it.
+PARTIAL = "corridors.partial.sqlite"
+PARTIAL_FILES = PARTIAL + "*"
+#: The columns of a ranking's runs in its ledger: the fingerprint of the scenario and
+#: candidates (rows of another fingerprint are kept but not reused) and the variant's label.
+EVALUATION_COLUMNS = {"fingerprint": "TEXT NOT NULL", "variant": "TEXT NOT NULL"}
+
+
+def open_evaluations(path) -> Ledger:
+    """The ledger of a corridor ranking's runs (:class:`trophoscape.io.ledger.Ledger`)."""
+    return Ledger(path, EVALUATION_COLUMNS, allow_nan=True)
+
+
+def evaluations_frame(path) -> pd.DataFrame:
+    """Every run in a ranking's ledger, in the order run: ``fingerprint``, ``variant`` (ids
+    of the corridors added, links cut and patches lost, JSON), the objectives, ``status``
+    ("ok", or "failed: " and the reason), ``finished`` (UTC, ISO 8601)."""
+    ledger = open_evaluations(path)
+    try:
+        rows = ledger.rows()
+    finally:
+        ledger.close()
+    records = [{"fingerprint": r["fingerprint"], "variant": r["variant"],
+                **{k: r["results"].get(k, math.nan) for k in OBJECTIVES},
+                "status": "ok" if r["status"] == "ok" else f"failed: {r['error']}",
+                "finished": r["finished"]} for r in rows]
+    return pd.DataFrame.from_records(
+        records, columns=["fingerprint", "variant", *OBJECTIVES, "status", "finished"])

@@ -29,7 +29,6 @@ replicates later keeps the seeds of the earlier ones.
 from __future__ import annotations
 
 import csv
-import datetime as _dt
 import difflib
 import hashlib
 import itertools
@@ -45,11 +44,12 @@ from typing import Any, Mapping, Sequence
 
 from ..errors import InputError, param
 from ..io.folder import write_atomic
+from ..io.ledger import Ledger, now
 from ..integrate.noise import replicate_seeds
 from ..scenario import with_changes
 from .tasks import ScenarioPayload
 
-__all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "run_point", "Ledger",
+__all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "run_point", "open_ledger",
            "SweepRun", "flatten_summary", "run_id_of", "KEY_RESULTS",
            "LEDGER_NAME", "TABLE_NAME"]
 
@@ -564,94 +564,15 @@ def run_point(task: SweepRun) -> dict:
 
 
 # ------------------------------------------------------------------------------ the ledger
-class Ledger:
-    """The results ledger of a sweep: an SQLite file with one row per finished run.
+#: The columns of a sweep's runs in its ledger (:class:`trophoscape.io.ledger.Ledger`).
+SWEEP_COLUMNS = {"point": "INTEGER NOT NULL", "replicate": "INTEGER NOT NULL",
+                 "seed": "INTEGER NOT NULL", "variant": "TEXT NOT NULL"}
 
-    Table ``runs``: ``run_id`` (primary key), ``point``, ``replicate``, ``seed``, ``variant``
-    (JSON), ``status`` ("ok" or "failed"), ``error``, ``results`` (JSON), ``seconds``,
-    ``finished`` (UTC, ISO 8601). Table ``meta``: what the sweep was started with (format,
-    scenario hash, varied keys). Each record is one transaction in WAL mode, so a process
-    killed at any moment leaves every committed run whole and nothing half-written.
-    """
 
-    SCHEMA = """
-    CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
-    CREATE TABLE IF NOT EXISTS runs (
-        run_id    TEXT PRIMARY KEY,
-        point     INTEGER NOT NULL,
-        replicate INTEGER NOT NULL,
-        seed      INTEGER NOT NULL,
-        variant   TEXT NOT NULL,
-        status    TEXT NOT NULL CHECK (status IN ('ok', 'failed')),
-        error     TEXT,
-        results   TEXT,
-        seconds   REAL,
-        finished  TEXT NOT NULL
-    );
-    """
-
-    def __init__(self, path):
-        self.path = Path(path)
-        self.conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
-        self.conn.execute("PRAGMA journal_mode=WAL")
-        self.conn.execute("PRAGMA synchronous=FULL")
-        with self:
-            for statement in self.SCHEMA.split(";"):
-                if statement.strip():
-                    self.conn.execute(statement)
-
-    def __enter__(self):
-        self.conn.execute("BEGIN IMMEDIATE")
-        return self
-
-    def __exit__(self, kind, exc, tb):
-        self.conn.execute("COMMIT" if kind is None else "ROLLBACK")
-        return False
-
-    def close(self) -> None:
-        self.conn.close()
-
-    def meta(self) -> dict:
-        return dict(self.conn.execute("SELECT key, value FROM meta"))
-
-    def set_meta(self, **values) -> None:
-        with self:
-            self.conn.executemany("INSERT OR REPLACE INTO meta (key, value) VALUES (?, ?)",
-                                  [(k, str(v)) for k, v in values.items()])
-
-    def ok_ids(self) -> set[str]:
-        return {r[0] for r in self.conn.execute("SELECT run_id FROM runs WHERE status = 'ok'")}
-
-    def count(self) -> int:
-        return int(self.conn.execute("SELECT COUNT(*) FROM runs").fetchone()[0])
-
-    def record(self, run: SweepRun, *, ok: bool, results: dict | None, error: str | None,
-               seconds: float | None, finished: str) -> None:
-        """Write one finished run (replacing an earlier failed attempt of the same run)."""
-        with self:
-            self.conn.execute(
-                "INSERT INTO runs (run_id, point, replicate, seed, variant, status, error, "
-                "results, seconds, finished) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
-                "ON CONFLICT(run_id) DO UPDATE SET point=excluded.point, "
-                "replicate=excluded.replicate, seed=excluded.seed, variant=excluded.variant, "
-                "status=excluded.status, error=excluded.error, results=excluded.results, "
-                "seconds=excluded.seconds, finished=excluded.finished",
-                (run.run_id, run.point, run.replicate, run.seed,
-                 json.dumps(run.values, default=str), "ok" if ok else "failed", error,
-                 None if results is None else json.dumps(results, allow_nan=False),
-                 seconds, finished))
-
-    def rows(self) -> list[dict]:
-        cur = self.conn.execute("SELECT run_id, point, replicate, seed, variant, status, "
-                                "error, results, seconds, finished FROM runs")
-        names = [d[0] for d in cur.description]
-        out = []
-        for row in cur:
-            r = dict(zip(names, row))
-            r["variant"] = json.loads(r["variant"])
-            r["results"] = json.loads(r["results"]) if r["results"] else {}
-            out.append(r)
-        return out
+def open_ledger(path) -> Ledger:
+    """A sweep's ledger: one row per finished run, with its point, replicate, seed and the
+    values of the varied keys (``variant``, JSON)."""
+    return Ledger(path, SWEEP_COLUMNS, json_columns=("variant",))
 
 
 # ------------------------------------------------------------------------------ outputs
@@ -686,15 +607,11 @@ def sweep_frame(ledger: Ledger, keys: Sequence[str], runs: Sequence[SweepRun] = 
     return pd.DataFrame.from_records(records, columns=columns)
 
 
-def _now() -> str:
-    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="milliseconds")
-
-
 def run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks, **options):
     """Run the runs not yet recorded as ok in the ledger, recording each as it finishes;
     return the sweep table from the ledger."""
     try:
-        ledger = Ledger(ledger_path)
+        ledger = open_ledger(ledger_path)
         meta = ledger.meta()
     except sqlite3.DatabaseError as exc:
         raise InputError(f"the sweep's ledger cannot be read ({exc}); it is damaged or not a "
@@ -714,7 +631,7 @@ def run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks,
                                  f"vary the same keys, or use another {param('out')} folder",
                                  file=ledger_path, field=param("resume"))
         else:
-            ledger.set_meta(**started, created=_now())
+            ledger.set_meta(**started, created=now())
         done = ledger.ok_ids()
         todo = [r for r in runs if r.run_id not in done]
 
@@ -722,14 +639,15 @@ def run_ledger(ledger_path: Path, out: Path, scenario, keys, runs, *, run_tasks,
             results = value["results"] if ok else None
             seconds = value["seconds"] if ok else None
             error = None if ok else str(value)
-            finished = _now()
+            finished = now()
             record = {"run_id": run.run_id, "variant": run.values, "replicate": run.replicate,
                       "seed": run.seed, "status": "ok" if ok else "failed", "error": error,
                       "results": results, "seconds": seconds, "finished": finished}
             write_atomic(out / "runs" / f"{run.run_id}.json",
                           json.dumps(record, indent=2, default=str) + "\n")
-            ledger.record(run, ok=ok, results=results, error=error, seconds=seconds,
-                          finished=finished)
+            ledger.record(run.run_id, ok=ok, results=results, error=error, seconds=seconds,
+                          finished=finished, point=run.point, replicate=run.replicate,
+                          seed=run.seed, variant=run.values)
 
         if todo:
             # Imported before the pool starts: forked local workers then start warm instead
