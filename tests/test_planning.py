@@ -638,6 +638,9 @@ def test_compare_gives_the_expected_difference_for_a_shared_patch(tmp_path, monk
     table = pd.read_csv(out / "comparison.csv").set_index("scenario")
     assert list(table.index) == ["a", "b"]
     assert table.loc["a", "patches"] == 5 and table.loc["b", "patches"] == 6
+    # flattened by the rule sweep.csv follows (io.tables.flatten_summary): no provenance
+    assert {"quasi_extinction_predator_removals", "solver_nfev"} <= set(table.columns)
+    assert not any(c.startswith(("stability_details", "provenance")) for c in table.columns)
     diff = pd.read_csv(out / "differences_b_minus_a.csv", dtype={"patch_id": str}).set_index(
         "patch_id")
     # only shared ids; in A the sink cannot hold the predator (e f(K) − m < 0, see the module

@@ -280,6 +280,10 @@ def test_sweep_local_pool_table_runs_and_plots(tmp_path, scenario):
         assert point[results].iloc[0].equals(point[results].iloc[1])
     assert {"solver_nfev", "solver_method", "prey_regional_persistence",
             "predator_synchrony"} <= set(frame.columns)
+    # the columns come from io.tables.flatten_summary, the rule comparison.csv follows too
+    assert {"stability_leading_eigenvalue_real", "quasi_extinction_predator_removals",
+            "solver_removals"} <= set(frame.columns)
+    assert not any(c.startswith("stability_details") for c in frame.columns)
     # one JSON per run, the same numbers as the table
     files = sorted((out / "runs").glob("*.json"))
     assert [f.stem for f in files] == sorted(frame["run_id"])
@@ -535,3 +539,31 @@ def test_a_task_that_keeps_killing_workers_is_recorded_as_failed():
     assert sorted(seen) == [0, 1, 2, 3] and all(len(v) == 1 for v in seen.values())
     assert seen[1][0][0] is False and seen[1][0][1].startswith("WorkerLost: ")
     assert [seen[k][0] for k in (0, 2, 3)] == [(True, 0), (True, 2), (True, 3)]
+
+
+def test_flatten_summary_rule():
+    # consistency test of the one flattening rule (io.tables.flatten_summary) on a made-up
+    # summary: nesting at any depth, the "_details" prefix, a taken name, lists, non-finite
+    import numpy as np
+
+    from trophoscape.io.tables import flatten_summary
+
+    summary = {
+        "patches": np.int64(4), "stability": "damped", "growth": float("nan"),
+        "stability_details": {"period": 9.5, "found": True, "vector": np.arange(3)},
+        "solver": {"nfev": 10, "removals": [3, 1], "deep": {"x": float("inf")}},
+        "quasi_extinction": {"prey": {"removals": 2}},
+        "errors": [{"analysis": "stability", "reason": "no equilibrium"}],
+        "empty": [],
+        "model_details": {"rate": 2.0}, "model_rate": 1.0,
+    }
+    flat = flatten_summary(summary)
+    assert flat == {
+        "patches": 4, "stability": "damped", "growth": None,
+        "stability_period": 9.5, "stability_found": True,
+        "solver_nfev": 10, "solver_removals": "3;1", "solver_deep_x": None,
+        "quasi_extinction_prey_removals": 2,
+        "errors": '[{"analysis": "stability", "reason": "no equilibrium"}]',
+        "empty": "", "model_details_rate": 2.0, "model_rate": 1.0,
+    }
+    assert type(flat["patches"]) is int

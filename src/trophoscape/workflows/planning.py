@@ -52,6 +52,7 @@ from ..model.network import (KERNELS, Network, movement_operator, snap_line_ends
 from ..model.system import SPECIES, CoupledSystem
 from ..analysis.capacity import metapopulation_capacity
 from ..io.ledger import Ledger
+from ..io.tables import flatten_summary
 from .tasks import ScenarioPayload, cached, forget, remember
 
 __all__ = [
@@ -826,13 +827,14 @@ def compare_results(results) -> pd.DataFrame:
     pandas.DataFrame
         One row per run, in order, indexed by ``scenario`` (its name; repeated names get
         "(2)", "(3)"); a ``file`` column, then every numeric or text summary value
-        (nested ones flattened with "_": ``solver_nfev``), then ``mean_`` of every
+        (flattened by :func:`trophoscape.io.tables.flatten_summary`: ``solver_nfev``,
+        ``stability_leading_eigenvalue_real``; provenance left out), then ``mean_`` of every
         objective computed per patch (occupancy) and λ_M where the summary lacks it.
     """
     rows, names = [], []
     for r in results:
         row = {"file": None if r.study.scenario.path is None else str(r.study.scenario.path)}
-        for key, value in _flatten(r.summary).items():
+        for key, value in flatten_summary(r.summary).items():
             if key == "scenario" or key.startswith("provenance"):
                 continue
             row[key] = value
@@ -849,21 +851,6 @@ def compare_results(results) -> pd.DataFrame:
         names.append(name)
         rows.append(row)
     return pd.DataFrame(rows, index=pd.Index(names, name="scenario"))
-
-
-def _flatten(d: dict, prefix: str = "") -> dict:
-    out = {}
-    for k, v in d.items():
-        key = f"{prefix}{k}"
-        if isinstance(v, dict):
-            out.update(_flatten(v, f"{key}_"))
-        elif isinstance(v, (list, tuple)):
-            out[key] = ";".join(map(str, v))
-        elif isinstance(v, np.generic):
-            out[key] = v.item()
-        else:
-            out[key] = v
-    return out
 
 
 def patch_differences(reference, other, columns=("predator_occupancy", "prey_occupancy")

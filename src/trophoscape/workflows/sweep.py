@@ -45,12 +45,13 @@ from typing import Any, Mapping, Sequence
 from ..errors import InputError, param
 from ..io.folder import write_atomic
 from ..io.ledger import Ledger, now
+from ..io.tables import flatten_summary
 from ..integrate.noise import replicate_seeds
 from ..scenario import with_changes
 from .tasks import ScenarioPayload
 
 __all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "run_point", "open_ledger",
-           "SweepRun", "flatten_summary", "run_id_of", "KEY_RESULTS",
+           "SweepRun", "run_id_of", "KEY_RESULTS",
            "LEDGER_NAME", "TABLE_NAME"]
 
 #: The sweep's parameter of varied values (``--vary`` on the command line), in messages.
@@ -509,40 +510,6 @@ def _canonical(validated, given):
 
 
 # ------------------------------------------------------------------------------ the task
-def flatten_summary(summary: Mapping) -> dict:
-    """Every scalar of a run's summary (numbers, booleans, text) as one flat dict.
-
-    Nested tables are flattened with their key as prefix (``solver`` -> ``solver_nfev``;
-    ``stability_details`` -> ``stability_leading_eigenvalue_real``); lists are left out;
-    NaN and None become None.
-    """
-    import numpy as np
-
-    out: dict[str, Any] = {}
-
-    def put(name, value):
-        if isinstance(value, np.generic):
-            value = value.item()
-        if value is None or isinstance(value, (bool, str)):
-            out[name] = value
-        elif isinstance(value, (int, float)):
-            out[name] = value if math.isfinite(value) else None
-        # lists, arrays and other objects have no single cell
-
-    for key, value in summary.items():
-        if isinstance(value, Mapping):
-            prefix = key[:-len("_details")] if key.endswith("_details") else key
-            for sub, v in value.items():
-                name = f"{prefix}_{sub}"
-                if name in summary or name in out:
-                    name = f"{key}_{sub}"
-                if not isinstance(v, Mapping):
-                    put(name, v)
-        else:
-            put(key, value)
-    return out
-
-
 def run_point(task: SweepRun) -> dict:
     """Run one point of a sweep from scratch: scenario text -> study -> results.
 
@@ -552,7 +519,7 @@ def run_point(task: SweepRun) -> dict:
     Returns
     -------
     dict
-        ``results`` (see :func:`flatten_summary`) and ``seconds`` (wall time of the run).
+        ``results`` (see :func:`trophoscape.io.tables.flatten_summary`) and ``seconds`` (wall time of the run).
     """
     from .study import build_study, run_study
 
