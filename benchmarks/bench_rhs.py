@@ -10,7 +10,7 @@ check also checks the movement operator. At 100,000 patches only the vectorized 
 
 The vectorized RHS timed is the one ``simulate`` integrates with explicit methods: in the
 internal patch order that ``order="auto"`` picks (``rhs_function(internal=True)``), checked
-against the user-order RHS, with the local terms evaluated as ``kernel="auto"`` picks
+against the user-order RHS, with the local terms evaluated as ``local_terms="auto"`` picks
 (compiled with numba from 10,000 patches when numba is installed). At 10,000 patches and
 more the numpy and the compiled local terms are both timed, checked equal bit for bit, and
 both set against the bandwidth bound. Cost is given in ns per (patch + link) per call, with links =
@@ -238,7 +238,7 @@ def with_kernel(system, kernel):
     """The same system with its local terms evaluated by ``kernel``."""
     return CoupledSystem(model=system.model, area_km2=system.area_km2,
                          prey_movement=system.prey_movement,
-                         predator_movement=system.predator_movement, kernel=kernel)
+                         predator_movement=system.predator_movement, local_terms=kernel)
 
 
 def main():
@@ -268,7 +268,7 @@ def main():
             raise SystemExit("internal and user-order RHS differ")
         t_vec = per_call(inner, 0.0, yi)
         t_user = per_call(rhs, 0.0, y)
-        kernel_times = {system.local_kernel: t_vec}
+        kernel_times = {system.local_terms_used: t_vec}
         if n >= 10_000 and compiled_available():
             for kernel in ("numpy", "compiled"):
                 if kernel in kernel_times:
@@ -276,13 +276,13 @@ def main():
                 other = with_kernel(system, kernel)
                 fn = other.rhs_function(internal=True)
                 if not np.array_equal(fn(0.0, yi), inner(0.0, yi)):
-                    raise SystemExit(f"{kernel} local terms differ from {system.local_kernel}")
+                    raise SystemExit(f"{kernel} local terms differ from {system.local_terms_used}")
                 kernel_times[kernel] = per_call(fn, 0.0, yi)
             kernel_rows.append([f"{n:,}" + (" shuffled" if shuffle else ""),
                                 f"{kernel_times['numpy'] * 1e3:.3f}",
                                 f"{kernel_times['compiled'] * 1e3:.3f}",
                                 f"{kernel_times['numpy'] / kernel_times['compiled']:.2f}x",
-                                system.local_kernel])
+                                system.local_terms_used])
         ns_vec = t_vec / units * 1e9
         cost[(n, shuffle)] = ns_vec
         label = f"{n:,}" + (" shuffled" if shuffle else "")
@@ -299,7 +299,7 @@ def main():
             parts = rhs_bytes(system)
             total = sum(parts.values())
             for kernel, t_k in sorted(kernel_times.items()):
-                bound_rows.append([label, kernel + (" (auto)" if kernel == system.local_kernel
+                bound_rows.append([label, kernel + (" (auto)" if kernel == system.local_terms_used
                                                     else ""),
                                    f"{total / 1e6:.1f}", f"{t_k * 1e3:.2f}",
                                    f"{total / bw_copy * 1e3:.2f}", f"{t_k * bw_copy / total:.2f}",
@@ -361,7 +361,7 @@ def main():
           f"-> {'PASS' if ratio <= 1.3 else 'MISS'}; shuffled feature order: {ratio_s:.2f}x "
           f"-> {'PASS' if ratio_s <= 1.3 else 'MISS'}")
     print(f"target: RHS at 100k within 2x of the bandwidth bound (copy bandwidth, the "
-          f"stricter; local terms as kernel='auto' picks): {worst:.2f}x "
+          f"stricter; local terms as local_terms='auto' picks): {worst:.2f}x "
           f"-> {'PASS' if worst <= 2 else 'MISS'}")
     numpy_rows = [float(r[5]) for r in bound_rows if r[1].startswith("numpy")]
     if numpy_rows and not bound_rows[0][1].startswith("numpy (auto)"):

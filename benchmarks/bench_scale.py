@@ -62,7 +62,7 @@ def child(folder: Path, profile: str | None, kernel: str) -> dict:
             "peak_mb": timed["peak_mb"], "base_mb": timed["base_mb"], "links": result.summary["links"],
             "solver": {"method": stats.method, "steps": stats.steps, "nfev": stats.nfev,
                        "restarts": stats.restarts,
-                       "local_kernel": result.summary["solver"]["local_kernel"]},
+                       "local_terms": result.summary["solver"]["local_terms"]},
             "outputs_mb": sizes}
 
 

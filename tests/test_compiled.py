@@ -39,7 +39,7 @@ def varied_model(rng, n, growth, response, harvest=False):
 
 def pair(model, area, ops, order="none"):
     return [CoupledSystem(model=model, area_km2=area, prey_movement=ops[0],
-                          predator_movement=ops[1], order=order, kernel=k)
+                          predator_movement=ops[1], order=order, local_terms=k)
             for k in ("numpy", "compiled")]
 
 
@@ -61,7 +61,7 @@ def test_compiled_rhs_equals_numpy_bit_for_bit(rng, growth, response, harvest):
     y = state(rng, n)
     for order in ("none", "rcm"):
         ref, fast = pair(model, area, ops, order)
-        assert (ref.local_kernel, fast.local_kernel) == ("numpy", "compiled")
+        assert (ref.local_terms_used, fast.local_terms_used) == ("numpy", "compiled")
         np.testing.assert_array_equal(fast.rhs_function()(0.0, y), ref.rhs_function()(0.0, y))
         yi = ref.to_internal(y)
         np.testing.assert_array_equal(fast.rhs_function(internal=True)(0.0, yi),
@@ -114,7 +114,7 @@ def test_compiled_lotka_volterra_keeps_its_first_integral():
     model = make_model(n=n, growth="exponential", response="lotka_volterra", **values)
     zero = sp.csr_array((n, n))
     fast = CoupledSystem(model=model, area_km2=np.ones(n), prey_movement=zero,
-                         predator_movement=zero, kernel="compiled")
+                         predator_movement=zero, local_terms="compiled")
     y0 = np.array([10.0, 15.0, 30.0, 5.0, 8.0, 12.0])
     traj = simulate(fast, y0, duration=30.0, census_interval=0.05, method="DOP853",
                     rtol=1e-11, atol=1e-11, extinction_abundance=0.0)
@@ -129,24 +129,24 @@ def test_auto_kernel_by_size_and_availability(rng, monkeypatch):
     n = ops[0].shape[0]
     model = make_model(n=n)
 
-    def make(kernel="auto"):
+    def make(local_terms="auto"):
         return CoupledSystem(model=model, area_km2=np.ones(n), prey_movement=ops[0],
-                             predator_movement=ops[1], kernel=kernel)
+                             predator_movement=ops[1], local_terms=local_terms)
 
-    assert make().local_kernel == "numpy"  # small network: numpy
+    assert make().local_terms_used == "numpy"  # small network: numpy
     monkeypatch.setattr(system_module, "COMPILED_MIN_PATCHES", n)
-    assert make().local_kernel == "compiled"
-    assert make("numpy").local_kernel == "numpy"
+    assert make().local_terms_used == "compiled"
+    assert make("numpy").local_terms_used == "numpy"
     # with_model (noise, shocks) and stacking replicates keep the choice
-    assert make().with_model(make_model(n=n, growth_rate=2.0)).local_kernel == "compiled"
+    assert make().with_model(make_model(n=n, growth_rate=2.0)).local_terms_used == "compiled"
     from trophoscape.integrate.replicates import stack_system
 
-    assert stack_system(make("numpy"), 3).local_kernel == "numpy"
-    assert stack_system(make("compiled"), 3).kernel == "compiled"
+    assert stack_system(make("numpy"), 3).local_terms_used == "numpy"
+    assert stack_system(make("compiled"), 3).local_terms == "compiled"
     # a growth form the kernel does not know is evaluated by numpy
     monkeypatch.setattr(compiled, "GROWTH_CODES", {"exponential": 0})
-    assert make().local_kernel == "numpy"
-    assert make("compiled").local_kernel == "numpy"
+    assert make().local_terms_used == "numpy"
+    assert make("compiled").local_terms_used == "numpy"
     assert COMPILED_MIN_PATCHES >= 1_000
 
 
@@ -157,15 +157,15 @@ def test_without_numba_auto_falls_back_and_compiled_says_what_to_do(monkeypatch)
     monkeypatch.setattr(system_module, "COMPILED_MIN_PATCHES", 1)
     auto = CoupledSystem(model=make_model(n=n), area_km2=np.ones(n), prey_movement=ops[0],
                          predator_movement=ops[1])
-    assert auto.local_kernel == "numpy"
+    assert auto.local_terms_used == "numpy"
     assert np.all(np.isfinite(auto.rhs_function()(0.0, np.full(2 * n, 5.0))))
-    with pytest.raises(ValueError, match=r"kernel='compiled' needs numba, which is not "
+    with pytest.raises(ValueError, match=r"local_terms='compiled' needs numba, which is not "
                                          r"installed; install it with pip install"):
         CoupledSystem(model=make_model(n=n), area_km2=np.ones(n), prey_movement=ops[0],
-                      predator_movement=ops[1], kernel="compiled")
-    with pytest.raises(ValueError, match="kernel must be"):
+                      predator_movement=ops[1], local_terms="compiled")
+    with pytest.raises(ValueError, match="local_terms must be"):
         CoupledSystem(model=make_model(n=n), area_km2=np.ones(n), prey_movement=ops[0],
-                      predator_movement=ops[1], kernel="fortran")
+                      predator_movement=ops[1], local_terms="fortran")
 
 
 def test_every_growth_form_and_response_has_a_kernel_code():

@@ -119,9 +119,9 @@ def test_headline_counts_the_removed_local_populations():
 def test_headline_says_when_the_local_equations_ran_compiled():
     from trophoscape.report.html import _headline_rows
 
-    base = {"solver": {"method": "RK45", "nfev": 30125, "local_kernel": "numpy"}}
+    base = {"solver": {"method": "RK45", "nfev": 30125, "local_terms": "numpy"}}
     rows = dict(_headline_rows(base))
     assert rows["solver"] == "RK45, 30125 right-hand-side evaluations"
-    base["solver"]["local_kernel"] = "compiled"
+    base["solver"]["local_terms"] = "compiled"
     assert dict(_headline_rows(base))["solver"] == (
         "RK45, 30125 right-hand-side evaluations, local equations compiled")

@@ -722,7 +722,7 @@ def _replicate_system(system, r: int, n: int):
         model=LocalModel(growth=model.growth, response=model.response, params=params),
         area_km2=system.area_km2[sl], prey_movement=sp.csr_array(system.prey_movement[sl, sl]),
         predator_movement=sp.csr_array(system.predator_movement[sl, sl]), order="none",
-        kernel=system.kernel)
+        local_terms=system.local_terms)
 
 
 def simulate_events(system, y0, *, duration: float, census_interval: float, noise,

@@ -33,7 +33,7 @@ def stack_system(system, replicates: int):
                                                  format="csr")),
         predator_movement=sp.csr_array(sp.block_diag([system.predator_movement] * replicates,
                                                      format="csr")),
-        kernel=system.kernel)
+        local_terms=system.local_terms)
 
 
 def unstack_series(series: np.ndarray, replicates: int) -> np.ndarray:

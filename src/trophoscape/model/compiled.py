@@ -1,7 +1,7 @@
-"""Optional compiled kernel for the local terms of the right-hand side (numba).
+"""Optional compiled code for the local terms of the right-hand side (numba).
 
 numpy evaluates the local terms of :func:`trophoscape.model.system._rhs` in about 16 passes over the
-patches, each reading and writing whole arrays; this kernel does all of them in one pass
+patches, each reading and writing whole arrays; this code does all of them in one pass
 (clip, densities, growth, predation, scaling back by the area), reading each parameter once.
 The sparse product stays scipy's (a compiled product was slower, benchmarks/README.md).
 
@@ -21,10 +21,10 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-#: Growth forms and responses the kernel knows, by their names in ``dynamics``.
+#: Growth forms and responses the compiled code knows, by their names in ``dynamics``.
 GROWTH_CODES = {"exponential": 0, "logistic": 1, "allee": 2}
 RESPONSE_CODES = {"lotka_volterra": 0, "holling2": 1, "holling3": 2, "beddington_deangelis": 3}
-#: Rows of the parameter block the kernel reads (unused rows are never read).
+#: Rows of the parameter block the compiled code reads (unused rows are never read).
 PARAMETER_ROWS = ("growth_rate", "capacity", "allee_density", "attack_rate", "handling_time",
                   "interference", "conversion", "mortality", "prey_harvest")
 
@@ -82,7 +82,7 @@ def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no co
 
 
 def supports(model) -> bool:
-    """True when the kernel knows the model's growth form and response."""
+    """True when the compiled code knows the model's growth form and response."""
     return model.growth in GROWTH_CODES and model.response in RESPONSE_CODES
 
 
@@ -112,11 +112,11 @@ def local_terms_function(model, area):
     growth = GROWTH_CODES[model.growth]
     response = RESPONSE_CODES[model.response]
     harvest = "prey_harvest" in params
-    kernel = _local_terms
+    terms = _local_terms
 
     def local(y, x):
         dy = np.empty(2 * n)
-        kernel(growth, response, harvest, y, area, block, x, dy)
+        terms(growth, response, harvest, y, area, block, x, dy)
         return dy
 
     return local

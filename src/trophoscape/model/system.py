@@ -31,7 +31,7 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from .dynamics import LocalModel
 
-try:  # y += A @ x in place, the kernel behind scipy's CSR mat-vec (private, hence the guard)
+try:  # y += A @ x in place, the routine behind scipy's CSR mat-vec (private, hence the guard)
     from scipy.sparse._sparsetools import csr_matvec as _csr_matvec
 except ImportError:  # pragma: no cover - depends on the scipy version
     _csr_matvec = None
@@ -51,9 +51,9 @@ ORDER_MIN_PATCHES = 1_000
 #: 100,000 patches; 256 at 1,000,000 (benchmarks/README.md).
 ROW_GROUP = 1_024
 
-#: ``kernel="auto"`` evaluates the local terms with the compiled kernel (numba, optional) on
-#: networks of at least this many patches: below it, importing numba and loading the kernel
-#: (about 0.5 s) costs more than the kernel saves in a typical run (benchmarks/README.md,
+#: ``local_terms="auto"`` evaluates the local terms with compiled code (numba, optional) on
+#: networks of at least this many patches: below it, importing numba and loading the code
+#: (about 0.5 s) costs more than the compiled pass saves in a typical run (benchmarks/README.md,
 #: "Compiled local terms").
 COMPILED_MIN_PATCHES = 10_000
 
@@ -190,7 +190,7 @@ def _int32(a):
 
 @functools.cache
 def _compiled_module():
-    """The compiled-kernel module, or None when numba is not installed (or fails to load)."""
+    """The module of compiled local terms, or None when numba is not installed (or fails to load)."""
     try:
         from . import compiled as _compiled
     except ImportError:
@@ -199,7 +199,7 @@ def _compiled_module():
 
 
 def compiled_available() -> bool:
-    """True when the optional compiled kernel for the local terms can be used (numba)."""
+    """True when the optional compiled code for the local terms can be used (numba)."""
     return _compiled_module() is not None
 
 
@@ -240,7 +240,7 @@ def _local_terms(model, area, compiled: bool):
 def _rhs(n, area, model, movement, compiled=False):
     """``rhs(t, y)`` for a state in the order of ``area`` / ``model`` / ``movement``.
 
-    ``compiled=True`` evaluates the local terms with the compiled kernel
+    ``compiled=True`` evaluates the local terms with compiled code
     (:mod:`trophoscape.model.compiled`, same numbers bit for bit).
 
     Buffers for the clipped state and the densities are allocated once; each call still
@@ -283,13 +283,13 @@ class CoupledSystem:
         alone; "none": the user's order; an array: that order (``order[k]`` is the patch at
         internal position ``k``), e.g. ``spatial_order(centroids)``. Results do not depend on
         it beyond rounding (the sums of the sparse product are taken in another order).
-    kernel : {"auto", "numpy", "compiled"}
+    local_terms : {"auto", "numpy", "compiled"}
         How the local terms of ``rhs`` are evaluated. "numpy": elementwise numpy, the
         reference. "compiled": one compiled pass (numba, the optional extra
         ``trophoscape[fast]``) wherever it knows the model's growth form and response;
         without numba, a ValueError. "auto" (default): "compiled" on networks of at least
         ``COMPILED_MIN_PATCHES`` patches when numba is installed, else "numpy". Both give
-        the same numbers bit for bit; see :attr:`local_kernel` for the one in use.
+        the same numbers bit for bit; see :attr:`local_terms_used` for the one in use.
 
     Notes
     -----
@@ -304,7 +304,7 @@ class CoupledSystem:
     prey_movement: sp.sparray
     predator_movement: sp.sparray
     order: object = "auto"
-    kernel: str = "auto"
+    local_terms: str = "auto"
     movement: sp.csr_array = field(init=False, repr=False)
     permutation: np.ndarray = field(init=False, repr=False)
     _internal: dict = field(init=False, repr=False)
@@ -315,12 +315,12 @@ class CoupledSystem:
         for name in ("prey_movement", "predator_movement"):
             if getattr(self, name).shape != (n, n):
                 raise ValueError(f"{name} must have shape ({n}, {n})")
-        if self.kernel not in ("auto", "numpy", "compiled"):
-            raise ValueError(f"kernel must be 'auto', 'numpy' or 'compiled', got {self.kernel!r}")
-        if self.kernel == "compiled" and not compiled_available():
-            raise ValueError("kernel='compiled' needs numba, which is not installed; "
+        if self.local_terms not in ("auto", "numpy", "compiled"):
+            raise ValueError(f"local_terms must be 'auto', 'numpy' or 'compiled', got {self.local_terms!r}")
+        if self.local_terms == "compiled" and not compiled_available():
+            raise ValueError("local_terms='compiled' needs numba, which is not installed; "
                              "install it with pip install 'trophoscape[fast]', or use "
-                             "kernel='auto'")
+                             "local_terms='auto'")
         block = _int32(sp.csr_array(sp.block_diag([self.prey_movement, self.predator_movement],
                                                   format="csr")))
         object.__setattr__(self, "movement", block)
@@ -375,9 +375,9 @@ class CoupledSystem:
         return new
 
     @property
-    def local_kernel(self) -> str:
+    def local_terms_used(self) -> str:
         """The evaluation of the local terms that ``rhs`` uses: "numpy" or "compiled"."""
-        if self.kernel == "numpy" or (self.kernel == "auto"
+        if self.local_terms == "numpy" or (self.local_terms == "auto"
                                       and self.n_patches < COMPILED_MIN_PATCHES):
             return "numpy"
         module = _compiled_module()
@@ -423,7 +423,7 @@ class CoupledSystem:
         """
         n = self.n_patches
         area = self.area_km2
-        compiled = self.local_kernel == "compiled"
+        compiled = self.local_terms_used == "compiled"
         if not self.reordered:
             return _rhs(n, area, self.model, self.movement, compiled)
         perm = self.permutation

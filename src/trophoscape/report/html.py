@@ -309,7 +309,7 @@ def _headline_rows(summary):
                                if s in removed)))
     solver = summary["solver"]
     rows.append(("solver", f"{solver['method']}, {solver['nfev']} right-hand-side evaluations"
-                 + (", local equations compiled" if solver.get("local_kernel") == "compiled"
+                 + (", local equations compiled" if solver.get("local_terms") == "compiled"
                     else "")))
     return rows
 

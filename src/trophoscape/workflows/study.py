@@ -665,5 +665,7 @@ def analyse(study: Study, traj: Trajectory):
     ordered = ["area_km2", "links"] + [f"{s}_{c}" for s in SPECIES for c in CONTRACT_COLUMNS]
     ordered += sorted((c for c in table.columns if c not in ordered),
                       key=lambda c: (not c.startswith("prey_"), 0))
-    summary["solver"] = {**traj.stats.as_dict(), "local_kernel": study.system.local_kernel}
+    summary["solver"] = {**traj.stats.as_dict(), "local_terms": study.system.local_terms_used,
+                         # the earlier name, kept for scripts (README, "Changes to the contract")
+                         "local_kernel": study.system.local_terms_used}
     return table[ordered], summary, extras
