@@ -129,3 +129,41 @@ def test_every_public_name_exists():
         module = importlib.import_module(info.name)
         missing = [n for n in getattr(module, "__all__", ()) if not hasattr(module, n)]
         assert missing == [], (info.name, missing)
+
+
+#: Names a module exports for readers and extenders although no other file uses them yet: the
+#: model's vocabulary (growth forms, responses, shock kinds) and the types of public results.
+EXPORTED_FOR_USERS = {
+    "trophoscape.model.dynamics": {"StrongAllee", "LotkaVolterra", "HollingII", "HollingIII",
+                                   "BeddingtonDeAngelis"},
+    "trophoscape.model.shocks": {"Rewire"},
+    "trophoscape.analysis.stability": {"Equilibrium"},
+    "trophoscape.workflows.sweep": {"SweepRun"},
+}
+
+
+def test_module_exports_are_curated():
+    # consistency test: a name in a module's __all__ is used by another module, a test, a
+    # benchmark or the documentation, or is listed above; otherwise it is not exported
+    import re
+
+    repo = Path(__file__).resolve().parents[1]
+    texts = {p: p.read_text(encoding="utf-8") for p in [
+        *PACKAGE.rglob("*.py"), *(repo / "tests").glob("*.py"),
+        *(repo / "benchmarks").glob("*.py"), *repo.glob("*.md"), *(repo / "docs").glob("*.md")]}
+    unused = []
+    for path in sorted(PACKAGE.rglob("*.py")):
+        if path.name == "__init__.py":
+            continue
+        module = "trophoscape." + ".".join(path.relative_to(PACKAGE).with_suffix("").parts)
+        names = []
+        for node in ast.parse(texts[path]).body:
+            target = (node.targets[0] if isinstance(node, ast.Assign) else
+                      node.target if isinstance(node, ast.AugAssign) else None)
+            if isinstance(target, ast.Name) and target.id == "__all__":
+                names += ast.literal_eval(node.value)
+        for name in set(names) - EXPORTED_FOR_USERS.get(module, set()):
+            word = re.compile(rf"\b{re.escape(name)}\b")
+            if not any(word.search(text) for p, text in texts.items() if p != path):
+                unused.append(f"{module}.{name}")
+    assert unused == []

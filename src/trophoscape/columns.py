@@ -8,8 +8,7 @@ never imports a higher one).
 
 from __future__ import annotations
 
-__all__ = ["PERSISTENCE_COLUMNS", "SYNCHRONY_COLUMNS", "CAPACITY_COLUMNS",
-           "STABILITY_COLUMNS", "SPECIES_NAMES", "computed_columns"]
+__all__ = ["PERSISTENCE_COLUMNS", "SYNCHRONY_COLUMNS", "computed_columns"]
 
 #: The two species, in the state's order (as :data:`trophoscape.model.system.SPECIES`).
 SPECIES_NAMES = ("prey", "predator")

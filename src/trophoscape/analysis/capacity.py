@@ -43,7 +43,6 @@ __all__ = [
     "patch_contributions",
     "capacity_analysis",
     "capacity_columns",
-    "EXACT_DROP_LIMIT",
     "DENSE_LIMIT",
 ]
 

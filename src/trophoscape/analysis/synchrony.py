@@ -51,9 +51,6 @@ from ._blocks import blocks
 
 __all__ = [
     "standardized_log_series",
-    "link_correlations",
-    "mean_pairwise",
-    "mean_correlation_with_all",
     "analytic_phases",
     "kuramoto_order",
     "phase_locking",
@@ -140,24 +137,6 @@ def _pair_products(zt: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
     for sl in blocks(a.shape[0], t, _LINK_BLOCK):  # loop over blocks of pairs, not pairs
         out[sl] = np.einsum("it,it->i", zt[a[sl]], zt[b[sl]]) / max(t, 1)
     return out
-
-
-def link_correlations(z: np.ndarray, source: np.ndarray, target: np.ndarray) -> np.ndarray:
-    """Correlation along each link.
-
-    Parameters
-    ----------
-    z : ndarray, shape (n_times, n_patches)
-        Standardised series (from :func:`standardized_log_series`).
-    source, target : ndarray of int, shape (n_links,)
-
-    Returns
-    -------
-    ndarray, shape (n_links,)
-        NaN where either end has no valid series.
-    """
-    return _pair_products(np.ascontiguousarray(np.asarray(z).T),
-                          np.asarray(source, dtype=np.int64), np.asarray(target, dtype=np.int64))
 
 
 def mean_pairwise(z: np.ndarray, valid: np.ndarray) -> float:

@@ -20,7 +20,7 @@ from pathlib import Path
 
 from ..report.corridors import compare_to_folder, corridors_to_folder
 
-__all__ = ["add_parser", "run_corridors", "run_compare"]
+__all__ = ["add_parser"]
 
 
 EPILOG_CORRIDORS = """examples:

@@ -22,7 +22,7 @@ import numpy as np
 
 from ..report.spread import spread_to_folder
 
-__all__ = ["add_parser", "run_command"]
+__all__ = ["add_parser"]
 
 EPILOG = ("examples:\n  trophoscape spread valley.toml --out results/spread\n"
           "  trophoscape spread valley.toml --out results/scan --origins 50")

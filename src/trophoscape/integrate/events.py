@@ -107,7 +107,8 @@ import scipy.sparse as sp
 
 from ..model.dynamics import LocalModel
 
-__all__ = ["local_propensities"]
+__all__ = ["Channels", "EventStats", "advance_events", "event_channels", "leap_size",
+           "simulate_events", "whole"]
 
 
 # ------------------------------------------------------------------------- demographic
@@ -123,15 +124,6 @@ def _local_rates(model: LocalModel, q, n, p) -> tuple:
     death = q["mortality"] * p
     return (births + np.maximum(-harvest, 0.0), deaths, eaten, np.maximum(harvest, 0.0),
             q["conversion"] * eaten + np.maximum(-death, 0.0), np.maximum(death, 0.0))
-
-
-def local_propensities(model: LocalModel, n, p) -> dict:
-    """Per-patch event rates in density per time, each shaped like ``n``.
-
-    Keys: ``prey_birth``, ``prey_death``, ``prey_eaten``, ``prey_harvest``,
-    ``predator_birth``, ``predator_death``.
-    """
-    return dict(zip(_LOCAL_ORDER, _local_rates(model, model.params, n, p)))
 
 
 #: sign of each local channel's change: (species offset 0 = prey, 1 = predator, sign)
@@ -846,7 +838,3 @@ def simulate_events(system, y0, *, duration: float, census_interval: float, nois
     )
     return Trajectory(data=data, stats=stats_out)
 
-
-__all__ += ["Channels", "EventStats", "advance_events", "event_channels", "leap_size",
-            "simulate_events", "whole", "LEAP_EPSILON", "LEAP_RELAXATION", "LEAP_MIDPOINT",
-            "CRITICAL_COUNT", "EXACT_FACTOR", "EXACT_BURST"]

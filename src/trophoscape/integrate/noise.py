@@ -89,8 +89,8 @@ import numpy as np
 
 from ..model.dynamics import LocalModel, fastest_rates
 
-__all__ = ["KERNELS", "DEFAULT_RANK", "DEFAULT_STEP_SHARE", "NoiseModel", "NoiseRun",
-           "spectral_frequencies", "fourier_features", "kernel_correlation", "ou_step",
+__all__ = ["KERNELS", "NoiseModel", "NoiseRun",
+           "spectral_frequencies", "fourier_features", "kernel_correlation",
            "auto_step", "resolve_step", "replicate_seeds"]
 
 #: Spatial correlation kernels of environmental noise.

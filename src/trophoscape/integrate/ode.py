@@ -32,8 +32,7 @@ from ..errors import RunError
 from ..model.system import SPECIES, CoupledSystem
 from .trajectory import SolverStats, Trajectory, census_times
 
-__all__ = ["METHODS", "RunSettings", "STORAGE_DTYPE", "simulate", "choose_method",
-           "first_crossing"]
+__all__ = ["METHODS", "RunSettings", "STORAGE_DTYPE", "simulate", "choose_method"]
 
 class _MaxNormRK:
     """Error control by the largest scaled error over all components (a max norm).

@@ -48,8 +48,8 @@ from pathlib import Path
 from ..errors import InputError, Terminated, param, raise_if_stopped
 from .ledger import LEDGER_COLUMNS
 
-__all__ = ["staged_folder", "working_folder", "check_out", "out_argument", "allow_names",
-           "file_sha256", "written_count", "written_since", "MARKER_NAME", "STAGING_NAME"]
+__all__ = ["staged_folder", "working_folder", "check_out", "out_argument",
+           "file_sha256", "written_count", "written_since", "MARKER_NAME"]
 
 #: The marker of an output folder: JSON with ``written_by``, ``format`` (2), ``version``,
 #: ``command``, ``created``, ``files`` (every path trophoscape wrote, relative, POSIX, a

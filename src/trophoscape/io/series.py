@@ -16,8 +16,7 @@ import numpy as np
 from ..model.system import SPECIES
 from .folder import signals_deferred, usual_mode
 
-__all__ = ["SeriesWriter", "write_timeseries", "SERIES_BLOCK_ROWS", "CF_CONVENTIONS",
-           "TIME_ORIGIN", "TIME_CALENDAR"]
+__all__ = ["SeriesWriter", "write_timeseries", "SERIES_BLOCK_ROWS"]
 
 #: Time rows of a NetCDF chunk, and the census rows a run hands the writer at a time.
 SERIES_BLOCK_ROWS = 64

@@ -56,8 +56,6 @@ __all__ = [
     "read_corridors",
     "read_links_table",
     "read_candidates",
-    "metric_crs",
-    "equal_area_crs",
     "computed_columns",
     "MIN_PATCH_AREA_KM2",
     "AREA_OF_USE_MARGIN_DEG",

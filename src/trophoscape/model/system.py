@@ -37,7 +37,7 @@ except ImportError:  # pragma: no cover - depends on the scipy version
     _csr_matvec = None
 
 __all__ = ["CoupledSystem", "pack", "SPECIES", "spatial_order", "locality",
-           "group_rows", "ORDER_MIN_PATCHES", "ROW_GROUP", "COMPILED_MIN_PATCHES",
+           "group_rows", "ORDER_MIN_PATCHES", "COMPILED_MIN_PATCHES",
            "compiled_available"]
 
 #: ``order="auto"`` numbers the patches internally on networks of at least this many patches:

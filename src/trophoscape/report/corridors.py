@@ -20,8 +20,7 @@ from ..errors import InputError, param
 from ..workflows.planning import PARTIAL, PARTIAL_FILES, evaluations_frame
 from .html import CAUTION
 
-__all__ = ["corridors_to_folder", "compare_to_folder", "write_corridors", "write_comparison",
-           "corridor_blocks"]
+__all__ = ["corridors_to_folder", "compare_to_folder", "write_corridors", "write_comparison"]
 
 def _set_json(result, ids):
     if result is None:

@@ -8,7 +8,7 @@ from pathlib import Path
 
 from ..errors import InputError, param
 
-__all__ = ["spread_to_folder", "write_spread", "SPREAD_COLUMNS"]
+__all__ = ["spread_to_folder", "write_spread"]
 
 def spread_to_folder(scenario, out, *, origins=None, workers=None, maps: bool = True,
                      geojson: bool = False, force: bool = False, progress: bool = False):

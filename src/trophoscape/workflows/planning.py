@@ -62,11 +62,7 @@ __all__ = [
     "Candidates",
     "Variant",
     "read_candidates",
-    "snap_candidates",
     "parse_weights",
-    "variant_study",
-    "objectives_of",
-    "capacity_of",
     "Planner",
     "CorridorPlan",
     "plan_corridors",
@@ -74,7 +70,6 @@ __all__ = [
     "read_link_list",
     "compare_results",
     "patch_differences",
-    "open_evaluations",
     "evaluations_frame",
 ]
 

@@ -43,7 +43,6 @@ from .tasks import cached
 __all__ = [
     "CollapseRule",
     "AUTO",
-    "acts_on",
     "followed_species",
     "running_mean",
     "first_sustained",
@@ -52,7 +51,6 @@ __all__ = [
     "network_distance_km",
     "straight_distance_km",
     "front_speed",
-    "spread_table",
     "SpreadResult",
     "run_spread",
     "stratified_origins",

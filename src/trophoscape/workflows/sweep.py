@@ -50,8 +50,8 @@ from ..integrate.noise import replicate_seeds
 from ..scenario import with_changes
 from .tasks import ScenarioPayload
 
-__all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "run_point", "open_ledger",
-           "SweepRun", "run_id_of", "KEY_RESULTS",
+__all__ = ["parse_vary", "run_ledger", "read_sweep_table", "plan_sweep", "open_ledger",
+           "SweepRun", "KEY_RESULTS",
            "LEDGER_NAME", "TABLE_NAME"]
 
 #: The sweep's parameter of varied values (``--vary`` on the command line), in messages.

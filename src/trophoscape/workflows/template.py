@@ -11,7 +11,7 @@ from ..errors import InputError, param
 from ..io.folder import write_atomic
 from ..model.landscape import read_attributes
 
-__all__ = ["guess_id_field", "scenario_template", "write_template", "find_patch_file"]
+__all__ = ["guess_id_field", "write_template"]
 
 PATCH_SUFFIXES = (".geojson", ".json", ".gpkg", ".shp")
 
