@@ -325,10 +325,10 @@ def test_greedy_equals_exhaustive_when_gains_add_up(two_sinks):
     # with an additive score and equal costs the greedy choice is optimal (the top k by
     # gain; Nemhauser, Wolsey & Fisher 1978, "An analysis of approximations for maximizing
     # submodular set functions", from memory: greedy is exact for modular functions)
-    assert sorted(greedy["chosen"]) == exact["chosen"] == [0, 1]
-    assert greedy["score"] == pytest.approx(exact["score"], rel=1e-12)
+    assert sorted(greedy.chosen) == list(exact.chosen) == [0, 1]
+    assert greedy.score == pytest.approx(exact.score, rel=1e-12)
     # every subset within the budget was run: 3 singles and 3 pairs
-    assert exact["subsets"] == 6
+    assert exact.subsets == 6
 
 
 @pytest.fixture(scope="module")

@@ -122,10 +122,10 @@ def _print_plan(plan, out) -> None:
     print("  best candidates: " + ", ".join(f"{i} (score {s:.3g})"
                                             for i, s in zip(top.index, top["score"])))
     print(f"  chosen within budget {plan.budget:g}: "
-          f"{', '.join(str(ids[c]) for c in best['chosen']) or 'none'} "
-          f"(cost {best['cost']:g}, score {best['score']:.3g})")
-    if plan.gap is not None and not plan.gap["same_set"]:
-        print(f"  greedy falls short of the best set by {plan.gap['absolute']:.3g}")
+          f"{', '.join(str(ids[c]) for c in best.chosen) or 'none'} "
+          f"(cost {best.cost:g}, score {best.score:.3g})")
+    if plan.gap is not None and not plan.gap.same_set:
+        print(f"  greedy falls short of the best set by {plan.gap.absolute:.3g}")
     print(f"  {plan.timing['runs']} runs in {plan.timing['total_seconds']:.1f} s")
 
 

@@ -9,6 +9,7 @@ back instead of running them again. ``evaluations.csv`` is written from the ledg
 
 from __future__ import annotations
 
+import dataclasses
 import html
 import re
 from pathlib import Path
@@ -21,14 +22,6 @@ from ..workflows.planning import PARTIAL, PARTIAL_FILES, evaluations_frame
 from .html import CAUTION
 
 __all__ = ["corridors_to_folder", "compare_to_folder", "write_corridors", "write_comparison"]
-
-def _set_json(result, ids):
-    if result is None:
-        return None
-    out = {k: v for k, v in result.items() if k != "chosen"}
-    out["chosen"] = [str(ids[c]) for c in result["chosen"]]
-    return out
-
 
 def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, layer=None,
                         links="all", patches=True, screen=None, exhaustive_limit=12,
@@ -150,10 +143,10 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
     best = plan.best
     steps = []
     if plan.exhaustive is not None:
-        for c in best["chosen"]:
+        for c in best.chosen:
             steps.append({"method": "exhaustive", "step": "", "corridor_id": str(ids[c]),
                           "cost": float(cand.cost[c]), "score_gain": "", "score_after": ""})
-    for k, s in enumerate(plan.greedy["steps"], start=1):
+    for k, s in enumerate(plan.greedy.steps, start=1):
         steps.append({"method": "greedy", "step": k, "corridor_id": s["corridor_id"],
                       "cost": s["cost"], "score_gain": s["gain"], "score_after": s["score"]})
     chosen = pd.DataFrame(steps, columns=["method", "step", "corridor_id", "cost", "score_gain",
@@ -171,12 +164,12 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
                  "(gain / baseline metapopulation capacity); an undefined gain counts as 0",
         "budget": plan.budget,
         "chosen_by": "exhaustive" if plan.exhaustive is not None else "greedy",
-        "chosen": [str(ids[c]) for c in best["chosen"]],
-        "chosen_cost": best["cost"],
-        "chosen_score": best["score"],
-        "greedy": _set_json(plan.greedy, ids),
-        "exhaustive": _set_json(plan.exhaustive, ids),
-        "greedy_gap": plan.gap,
+        "chosen": [str(ids[c]) for c in best.chosen],
+        "chosen_cost": best.cost,
+        "chosen_score": best.score,
+        "greedy": plan.greedy.as_json(ids),
+        "exhaustive": None if plan.exhaustive is None else plan.exhaustive.as_json(ids),
+        "greedy_gap": None if plan.gap is None else dataclasses.asdict(plan.gap),
         "screened": None if plan.screened is None else {
             "method": "gain in metapopulation capacity (prey + predator, relative) per cost",
             "simulated": [str(ids[c]) for c in plan.screened]},
@@ -278,16 +271,16 @@ def corridor_blocks(plan, summary, table, critical, figures) -> list:
         return ", ".join(summary[key]["chosen"]) or "none"
 
     blocks.append(f"Greedy set (best score gained per cost, re-evaluated after each addition): "
-                  f"{names('greedy')}, cost {greedy['cost']:g}, score {greedy['score']:.4g}.")
+                  f"{names('greedy')}, cost {greedy.cost:g}, score {greedy.score:.4g}.")
     if exhaustive is not None:
-        if gap["same_set"] or gap["absolute"] <= 1e-9:
+        if gap.same_set or gap.absolute <= 1e-9:
             verdict = "Greedy found the best set."
         else:
-            verdict = (f"Greedy falls short of the best set by {gap['absolute']:.4g} in score "
-                       f"({gap['relative']:.1%} of the best).")
-        blocks.append(f"Best set by exhaustive search over the {exhaustive['subsets']} subsets "
-                      f"within budget: {names('exhaustive')}, cost {exhaustive['cost']:g}, "
-                      f"score {exhaustive['score']:.4g}. {verdict}")
+            verdict = (f"Greedy falls short of the best set by {gap.absolute:.4g} in score "
+                       f"({gap.relative:.1%} of the best).")
+        blocks.append(f"Best set by exhaustive search over the {exhaustive.subsets} subsets "
+                      f"within budget: {names('exhaustive')}, cost {exhaustive.cost:g}, "
+                      f"score {exhaustive.score:.4g}. {verdict}")
     else:
         blocks.append("No exhaustive search (too many candidates); the greedy set is reported "
                       "as chosen and may fall short of the best set.")

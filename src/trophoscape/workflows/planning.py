@@ -65,6 +65,8 @@ __all__ = [
     "parse_weights",
     "Planner",
     "CorridorPlan",
+    "CorridorSet",
+    "GreedyGap",
     "plan_corridors",
     "check_plan_options",
     "read_link_list",
@@ -659,10 +661,8 @@ class Planner:
 
         Returns
         -------
-        dict
-            ``chosen`` (candidate positions in the order added), ``cost``, ``score``,
-            ``steps`` (list of dicts: ``corridor_id``, ``gain`` in score, ``cost``,
-            ``score`` after the step).
+        CorridorSet
+            ``method="greedy"``: ``chosen`` in the order added, with its ``steps``.
         """
         cost = self.candidates.cost
         pool = list(range(self.candidates.n)) if pool is None else [int(c) for c in pool]
@@ -691,7 +691,7 @@ class Planner:
             current += gain
             steps.append({"corridor_id": str(self.candidates.ids[best]), "gain": gain,
                           "cost": float(cost[best]), "score": current})
-        return {"chosen": chosen, "cost": spent, "score": current, "steps": steps}
+        return CorridorSet("greedy", tuple(chosen), spent, current, steps=tuple(steps))
 
     def exhaustive(self, budget: float, pool=None, *, limit: int = EXHAUSTIVE_LIMIT) -> dict:
         """The exact best set within ``budget``: every affordable subset is run.
@@ -706,9 +706,9 @@ class Planner:
 
         Returns
         -------
-        dict
-            ``chosen`` (positions, sorted), ``cost``, ``score``, ``subsets`` (how many
-            were run). Ties go to the cheaper, then the smaller set.
+        CorridorSet
+            ``method="exhaustive"``: ``chosen`` sorted, with ``subsets`` (how many were
+            run). Ties go to the cheaper, then the smaller set.
         """
         cost = self.candidates.cost
         pool = np.asarray(list(range(self.candidates.n)) if pool is None else list(pool),
@@ -734,8 +734,8 @@ class Planner:
             if key[0] > best_key[0] + _TOL or (abs(key[0] - best_key[0]) <= _TOL
                                                and key[1:] > best_key[1:]):
                 best, best_key = v, key
-        return {"chosen": list(best.add), "cost": float(cost[list(best.add)].sum()),
-                "score": float(best_key[0]) if best.add else 0.0, "subsets": len(subsets)}
+        return CorridorSet("exhaustive", tuple(best.add), float(cost[list(best.add)].sum()),
+                           float(best_key[0]) if best.add else 0.0, subsets=len(subsets))
 
     # -- screening
 
@@ -932,6 +932,55 @@ def read_link_list(path, study) -> list[tuple[int, int]]:
     return pairs
 
 
+@dataclass(frozen=True)
+class CorridorSet:
+    """A set of corridors one search chose.
+
+    Attributes
+    ----------
+    method : {"greedy", "exhaustive"}
+    chosen : tuple of int
+        Candidate positions (the greedy set in the order added; the exhaustive one sorted).
+    cost, score : float
+        Total cost, and the score of the network with the set added.
+    steps : tuple of dict
+        Greedy only: per addition ``corridor_id``, ``gain``, ``cost`` and ``score`` after it.
+    subsets : int or None
+        Exhaustive only: how many subsets within the budget were run.
+    """
+
+    method: str
+    chosen: tuple
+    cost: float
+    score: float
+    steps: tuple = ()
+    subsets: int | None = None
+
+    def as_json(self, ids) -> dict:
+        """The set as ``corridors.json`` holds it, with candidate ids."""
+        extra = ({"steps": [dict(s) for s in self.steps]} if self.method == "greedy"
+                 else {"subsets": self.subsets})
+        return {"cost": self.cost, "score": self.score, **extra,
+                "chosen": [str(ids[c]) for c in self.chosen]}
+
+
+@dataclass(frozen=True)
+class GreedyGap:
+    """How far the greedy set falls short of the exhaustive one: ``absolute`` (in score),
+    ``relative`` (of the best score; 0 when it is not positive), ``same_set``."""
+
+    absolute: float
+    relative: float
+    same_set: bool
+
+    @classmethod
+    def between(cls, greedy: CorridorSet, exhaustive: CorridorSet) -> "GreedyGap":
+        absolute = exhaustive.score - greedy.score
+        return cls(absolute=absolute,
+                   relative=absolute / exhaustive.score if exhaustive.score > 0 else 0.0,
+                   same_set=sorted(greedy.chosen) == sorted(exhaustive.chosen))
+
+
 @dataclass(frozen=True, eq=False)
 class CorridorPlan:
     """What :func:`plan_corridors` found.
@@ -944,14 +993,12 @@ class CorridorPlan:
         The candidates, ranked (as ``corridors.csv``).
     critical : pandas.DataFrame
         The remove-one table (as ``critical.csv``).
-    greedy, exhaustive : dict
-        The sets chosen by each search (``chosen`` positions, ``cost``, ``score``; the
-        greedy set's ``steps``); ``exhaustive`` is None when the search did not run.
-    best : dict
+    greedy, exhaustive : CorridorSet
+        The sets chosen by each search; ``exhaustive`` is None when the search did not run.
+    best : CorridorSet
         The set reported as chosen: the exhaustive one when it ran, else the greedy one.
-    gap : dict or None
-        How far the greedy set falls short of the exhaustive one (``absolute``,
-        ``relative``, ``same_set``).
+    gap : GreedyGap or None
+        How far the greedy set falls short of the exhaustive one.
     screened : list or None
         Positions of the candidates simulated after screening (None: every candidate).
     budget : float
@@ -964,10 +1011,10 @@ class CorridorPlan:
     planner: "Planner"
     table: pd.DataFrame
     critical: pd.DataFrame
-    greedy: dict
-    exhaustive: dict | None
-    best: dict
-    gap: dict | None
+    greedy: CorridorSet
+    exhaustive: CorridorSet | None
+    best: CorridorSet
+    gap: GreedyGap | None
     screened: list | None
     budget: float
     timing: dict
@@ -1043,15 +1090,10 @@ def plan_corridors(study, candidates, *, budget, weights=None, links="all", patc
         exhaustive = planner.exhaustive(budget, pool, limit=exhaustive_limit)
         timing["exhaustive_seconds"] = time.perf_counter() - t
     best = exhaustive if exhaustive is not None else greedy
-    gap = None
-    if exhaustive is not None:
-        absolute = exhaustive["score"] - greedy["score"]
-        gap = {"absolute": absolute,
-               "relative": absolute / exhaustive["score"] if exhaustive["score"] > 0 else 0.0,
-               "same_set": sorted(greedy["chosen"]) == sorted(exhaustive["chosen"])}
+    gap = None if exhaustive is None else GreedyGap.between(greedy, exhaustive)
     ids = candidates.ids
-    table = rank_candidates(table, [ids[c] for c in best["chosen"]])
-    table["in_greedy_set"] = table.index.isin([str(ids[c]) for c in greedy["chosen"]])
+    table = rank_candidates(table, [ids[c] for c in best.chosen])
+    table["in_greedy_set"] = table.index.isin([str(ids[c]) for c in greedy.chosen])
     t = time.perf_counter()
     critical = planner.remove_one(links=links, patches=patches)
     timing["remove_one_seconds"] = time.perf_counter() - t
