@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 import scipy.integrate as si
 import scipy.sparse as sp
+from scipy.optimize import brentq
 
 from conftest import make_model, make_system
 from trophoscape.integrate.replicates import stack_state, stack_system
@@ -151,6 +152,38 @@ def test_a_population_falling_through_the_threshold_is_removed_where_it_crosses(
         assert np.all(p[t > t_star + 1e-6] == 0.0)
         assert run.stats.removals == (0, 1)
         assert run.stats.removed_individuals[1] == pytest.approx(theta, rel=1e-6)
+
+
+@pytest.mark.parametrize("method", ["RK45", "RK23", "DOP853"])
+@pytest.mark.parametrize("atol", [1e-8, 1.0])
+def test_a_population_that_rises_to_the_threshold_and_falls_back_is_removed(method, atol):
+    # Patch 0 (X = 1000 predators, no prey) sends predators to patch 1 at rate c and loses
+    # them at k; patch 1 loses them at mu. With a = k + c, patch 1 holds (common practice:
+    # the linear two-compartment solution)
+    #     x1(t) = c X / (mu - a) (exp(-a t) - exp(-mu t)),
+    # which starts at 0, peaks at 1.2 individuals at t = ln(mu/a) / (mu - a) and falls
+    # back through 1. Having reached the threshold it counts as present, so it is removed
+    # where it falls through, at the later root t2 of x1 = 1, whichever solver takes the
+    # steps, and even when a step spans the whole rise and fall (atol = 1 individual).
+    # Refilled from 0 after t2 it peaks lower and stays below the threshold.
+    a, mu, X = 0.5, 1.0, 1000.0
+    c = 2.4 / X  # c X / (mu - a) * 0.25 = 1.2 at the peak
+    model = make_model(n=2, growth="exponential", growth_rate=0.0)
+    model.params["mortality"][:] = [a - c, mu]
+    predator = sp.csr_array(np.array([[-c, 0.0], [c, 0.0]]))
+    system = make_system(model, predator_movement=predator)
+    y0 = np.array([0.0, 0.0, X, 0.0])
+
+    def x1(t):
+        return c * X / (mu - a) * (np.exp(-a * t) - np.exp(-mu * t))
+
+    t_peak = np.log(mu / a) / (mu - a)
+    t2 = float(brentq(lambda t: x1(t) - 1.0, t_peak, 20.0))
+    run = simulate(system, y0, duration=10.0, census_interval=2.5, extinction_abundance=1.0,
+                   method=method, rtol=1e-3 if atol == 1.0 else 1e-6, atol=atol)
+    assert run.stats.removals == (0, 1)
+    assert run.stats.removed_individuals[1] == pytest.approx(1.0, rel=1e-6)
+    assert x1(t_peak) == pytest.approx(1.2, rel=1e-12) and 1.0 < t2 < 10.0
 
 
 def test_a_removal_matches_scipys_terminal_event_and_restart():

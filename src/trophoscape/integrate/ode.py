@@ -201,36 +201,56 @@ def _dense_at(dense, index, x):
     return None
 
 
-#: Populations within this share above the threshold at either end of a step are looked at
-#: between its ends (a dip deeper than this within one error-controlled step is implausible).
+#: Populations within this share of the threshold at either end of a step are looked at
+#: between its ends (a dip, or a rise, larger than this within one error-controlled step is
+#: implausible).
 _NEAR = 0.25
 #: Points per step at which populations near the threshold are looked at between step ends.
 _LOOKS = 16
 
 
-def _below_within(dense, index, level):
-    """Which of ``index`` fall below ``level`` somewhere in the step, on its interpolant.
+def _falls_within(values, level, armed):
+    """For each column of ``values`` (a population on the step's grid, its start first):
+    the first grid point below ``level`` after the population was at or above it, at the
+    start (``armed``) or at an earlier point; ``-1`` where there is none."""
+    at_or_above = values >= level
+    at_or_above[0] |= armed
+    seen = np.maximum.accumulate(at_or_above, axis=0)
+    falls = (values[1:] < level) & seen[:-1]
+    return np.where(falls.any(axis=0), np.argmax(falls, axis=0) + 1, -1)
+
+
+def _grid_values(dense, index):
+    grid = np.linspace(0.0, 1.0, _LOOKS + 1)
+    return grid, np.stack([_dense_at(dense, index, np.full(index.size, g)) for g in grid])
+
+
+def _falls_through_within(dense, index, level, armed):
+    """Which of ``index`` fall through ``level`` somewhere in the step, on its interpolant.
 
     Looked at on ``_LOOKS + 1`` evenly spaced points: a population that dips through the
-    threshold and back within one step is removed like one that ends the step below it, so
-    the rule does not depend on where the solver happened to put its step ends.
+    threshold and back within one step is removed like one that ends the step below it, and
+    one below the threshold at both ends of a step that rose to it in between (and so
+    counted as present) and fell back is removed too, so the rule does not depend on where
+    the solver happened to put its step ends. ``armed``: at or above the threshold at the
+    step's start.
     """
-    grid = np.linspace(0.0, 1.0, _LOOKS + 1)
-    values = np.stack([_dense_at(dense, index, np.full(index.size, g)) for g in grid])
-    return (values < level).any(axis=0)
+    _, values = _grid_values(dense, index)
+    return _falls_within(values, level, armed) >= 0
 
 
-def _crossing_positions(dense, index, level):
-    """Where in the step each of ``index`` first falls to ``level``, and its abundance there.
+def _crossing_positions(dense, index, level, armed):
+    """Where in the step each of ``index`` first falls through ``level`` (after being at or
+    above it: at the step's start, ``armed``, or later in the step), and its abundance
+    there.
 
-    The first of ``_LOOKS + 1`` evenly spaced points below the threshold brackets the
-    crossing with the point before it; bisection of the component's own interpolant narrows
-    it to 2**-42 of the step.
+    The first of ``_LOOKS + 1`` evenly spaced points below the threshold after one at or
+    above it brackets the crossing with the point before it; bisection of the component's
+    own interpolant narrows it to 2**-42 of the step.
     """
-    grid = np.linspace(0.0, 1.0, _LOOKS + 1)
-    values = np.stack([_dense_at(dense, index, np.full(index.size, g)) for g in grid])
-    first = np.argmax(values < level, axis=0)
-    first = np.where((values < level).any(axis=0), first, _LOOKS)
+    grid, values = _grid_values(dense, index)
+    first = _falls_within(values, level, armed)
+    first = np.where(first >= 0, first, _LOOKS)
     lo = grid[np.maximum(first - 1, 0)]
     hi = grid[first]
     for _ in range(38):
@@ -600,19 +620,22 @@ def simulate(
                 now = solver.y >= level
                 crossed = above & ~now
                 if per_component:
-                    # those near the threshold at either end may have dipped through it
-                    near = np.flatnonzero(above & now & (np.minimum(y_prev, solver.y)
-                                                         < (1.0 + _NEAR) * level))
+                    # those near the threshold at either end may have dipped through it, or
+                    # risen to it and fallen back, between the step's ends
+                    near = np.flatnonzero(~crossed
+                                          & (np.minimum(y_prev, solver.y) < (1.0 + _NEAR) * level)
+                                          & (np.maximum(y_prev, solver.y) > (1.0 - _NEAR) * level))
                     if near.size:
                         dense = solver.dense_output()
-                        crossed[near[_below_within(dense, near, level)]] = True
+                        crossed[near[_falls_through_within(dense, near, level,
+                                                           above[near])]] = True
                 if crossed.any():
                     # removed where it crosses: the step is cut back to the first crossing
                     dense = dense or solver.dense_output()
                     index = np.flatnonzero(crossed)
                     first = None
                     if per_component:
-                        where, _ = _crossing_positions(dense, index, level)
+                        where, _ = _crossing_positions(dense, index, level, above[index])
                         first = index[where == where.min()]
                         t_end = t_old + float(where.min()) * (solver.t - t_old)
                     else:
