@@ -166,7 +166,8 @@ def test_links_frame_lines_join_representative_points():
     links = net.links_frame(land)
     assert len(links) == net.n_links == 4
     assert links.crs == land.crs
-    assert list(links.columns) == ["source", "target", "distance_km", "origin", "geometry"]
+    assert list(links.columns) == ["source", "target", "distance_km", "origin",
+                                   "effective_distance_km", "geometry"]
     inside = shapely.point_on_surface(land.frame.geometry.to_numpy())
     for row in links.itertuples():
         a, b = int(row.source), int(row.target)

@@ -88,7 +88,10 @@ def raw_scenario(patches, **sections):
            "predator": {"mortality_rate": 0.4, "conversion": 0.3, "initial_density": 10.0,
                         "kernel_scale_km": 5.0, "emigration_rate": 0.05},
            "predation": {"attack_rate": 0.05, "handling_time": 0.1},
-           "dispersal": {"max_distance_km": 3.0, "survival_per_km": 0.97},
+           # corridors as easy to cross as open ground: the landscapes here were built
+           # for corridors that act as their length (divided by their quality)
+           "dispersal": {"max_distance_km": 3.0, "survival_per_km": 0.97,
+                         "corridor_resistance": 1.0},
            "run": {"duration": 150.0, "burn_in": 75.0, "census_interval": 1.0},
            "analysis": {"stability": False, "capacity": False}}
     for k, v in sections.items():
@@ -199,7 +202,7 @@ def one_sink(tmp_path_factory):
                                  ("V", "A", "C", 1.5, 1.0)],    # the same, farther
                         centres)
     study = study_of(patches)
-    candidates = pl.read_candidates(cands, study.landscape)
+    candidates = pl.read_candidates(cands, study.landscape, corridor_resistance=1.0)
     planner = pl.Planner(study, candidates, workers=1)
     return {"folder": folder, "patches": patches, "candidates_path": cands, "study": study,
             "candidates": candidates, "planner": planner, "centres": centres}
@@ -232,7 +235,7 @@ def test_snapping_and_candidate_attributes(one_sink):
     # centre-to-centre lengths of the construction (common practice: planar distance in a
     # UTM zone); quality 5 makes R act as a line a fifth as long
     np.testing.assert_allclose(cand.length_km, [5.5, 1.5, 3.0], rtol=1e-12)
-    np.testing.assert_allclose(cand.distance_km, [1.1, 1.5, 3.0], rtol=1e-12)
+    np.testing.assert_allclose(cand.effective_km, [1.1, 1.5, 3.0], rtol=1e-12)
 
 
 def test_screening_by_capacity_keeps_the_reconnecting_candidate(one_sink):
@@ -308,8 +311,8 @@ def two_sinks(tmp_path_factory):
                                  ("M", "B", "C", 1.0, 1.0)], centres_of(specs))
     study = study_of(patches)
     # persistence alone: the score is then exactly additive over independent rescues
-    return pl.Planner(study, pl.read_candidates(cands, study.landscape), workers=1,
-                      weights={"predator_area_persistence": 1.0})
+    candidates = pl.read_candidates(cands, study.landscape, corridor_resistance=1.0)
+    return pl.Planner(study, candidates, workers=1, weights={"predator_area_persistence": 1.0})
 
 
 def test_greedy_equals_exhaustive_when_gains_add_up(two_sinks):
@@ -440,7 +443,7 @@ def test_remove_one_finds_the_critical_corridor(tmp_path):
     study = study_of(patches, dispersal={"corridors": str(corridors)})
     empty = pl.Candidates(ids=np.array([], dtype=str), source=np.array([], dtype=np.int64),
                           target=np.array([], dtype=np.int64), length_km=np.array([]),
-                          distance_km=np.array([]), survival=np.array([]), cost=np.array([]))
+                          effective_km=np.array([]), survival=np.array([]), cost=np.array([]))
     planner = pl.Planner(study, empty, workers=1)
     assert planner.baseline["predator_persistence"] == 1.0
     table = planner.remove_one()
@@ -568,7 +571,7 @@ def test_thin_polygon_candidates_use_their_long_axis(row_study):
     strip = shapely.box(X0 - 200, Y0 - 50, X0 + 3200, Y0 + 50)
     path = _write(folder, geopandas.GeoDataFrame({"cost": [4.0]}, geometry=[strip], crs=CRS),
                   "strip.gpkg")
-    cand = pl.read_candidates(path, study.landscape)
+    cand = pl.read_candidates(path, study.landscape, corridor_resistance=1.0)
     assert [study.ids[cand.source[0]], study.ids[cand.target[0]]] == ["A", "C"]
     assert cand.length_km[0] == pytest.approx(3.4, rel=1e-12)
     assert cand.frame["drawn_as"].tolist() == ["polygon"]
@@ -666,3 +669,36 @@ def test_compare_gives_the_expected_difference_for_a_shared_patch(tmp_path, monk
     assert "purple where it is higher in b, orange where it is lower" in text
     assert table.loc["b", "predator_area_persistence"] > table.loc["a",
                                                                    "predator_area_persistence"]
+
+
+# ------------------------------------------------------------------ corridor resistance
+
+
+def test_a_corridor_easy_to_cross_rescues_a_sink_a_straight_link_does_not(tmp_path):
+    # The sink S cannot hold the predator alone (module notes: K < N*). A corridor from D's
+    # edge to S's edge, 4 km long at resistance 0.05, acts as 0.2 km, well under the
+    # kernel scale of 1 km: the predator persists in S and λ_M rises. A straight link of
+    # the same 4 km (a kernel link, max_distance_km raised to reach it) acts as 4 km: its
+    # weight e^-4 against e^-0.5 for D's link to C sends S too few predators.
+    specs = [(i, x, s, 1.0) for i, x, s in ROW] + [("S", 10.0, 2.0, SINK_QUALITY)]
+    patches = write_patches(tmp_path, specs)
+    corridor = write_lines(tmp_path, [("K", "D", "S", 0.0, 1.0)], EDGES, name="k.gpkg",
+                           resistance=0.05)
+    predator = {"kernel_scale_km": 1.0}
+    with_corridor = study_of(patches, predator=predator,
+                             dispersal={"corridors": str(corridor)})
+    straight = study_of(patches, predator=predator, dispersal={"max_distance_km": 4.0})
+    links = straight.network.links_frame(straight.landscape).set_index(["source", "target"])
+    assert links.loc[("D", "S"), "effective_distance_km"] == pytest.approx(4.0, rel=1e-9)
+    frame = with_corridor.network.links_frame(with_corridor.landscape).set_index(
+        ["source", "target"])
+    assert frame.loc[("D", "S"), "effective_distance_km"] == pytest.approx(0.2, rel=1e-9)
+    assert frame.loc[("D", "S"), "distance_km"] == pytest.approx(4.0, rel=1e-9)
+    persists = {}
+    for name, study in (("corridor", with_corridor), ("straight", straight)):
+        result = ts.run_study(study)
+        row = result.patches.loc["S"]
+        persists[name] = bool(row["predator_persists"])
+    assert persists == {"corridor": True, "straight": False}
+    assert (pl.capacity_of(with_corridor)["predator_capacity"]
+            > pl.capacity_of(straight)["predator_capacity"])

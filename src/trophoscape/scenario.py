@@ -20,6 +20,7 @@ from collections.abc import Mapping
 from typing import Any, Callable
 
 from .model.dynamics import GROWTH_FORMS, RESPONSES
+from .model.network import CORRIDOR_RESISTANCE
 from .errors import InputError, RunError, allowed_range
 
 __all__ = ["Scenario", "FieldRef", "SCHEMA", "read_scenario", "parse_scenario"]
@@ -49,7 +50,7 @@ class Key:
 LARGEST = 1e12
 #: The scenario keys that name input files, and what each file is (for messages).
 INPUT_FILES = {"patches.path": "patch file", "dispersal.corridors": "corridor file",
-               "dispersal.links": "links table"}
+               "dispersal.links": "links table", "dispersal.resistance": "resistance raster"}
 #: A scenario is a short text: larger files are refused before they are read.
 MAX_SCENARIO_BYTES = 1 << 20
 def _number(lo=None, hi=None, *, lo_open=False, integer=False):
@@ -131,6 +132,26 @@ def _number_or(word, **bounds):
 _nonneg = _number(0)
 
 
+def _optional(inner):
+    """``inner``, or nothing (the key left out)."""
+    def check(v):
+        return None if v is None else inner(v)
+
+    return check
+
+
+def _number_list(v):
+    """A non-empty list of numbers (TOML array), or nothing."""
+    if v is None:
+        return None
+    if (not isinstance(v, list) or not v
+            or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in v)):
+        return f"{v!r} is not a list of numbers; give e.g. [3, 4] (square brackets)"
+    if any(not math.isfinite(float(x)) for x in v):
+        return f"{v!r} holds a value that is not finite; give finite numbers"
+    return None
+
+
 _pos = _number(0, lo_open=True)
 
 SCHEMA: dict[str, dict[str, Key]] = {
@@ -144,6 +165,11 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "quality_field": Key(None, _text(optional=True)),
         "crs": Key("auto", _text()),
         "layer": Key(None, _text(optional=True), doc="layer of a GeoPackage"),
+        "habitat_values": Key(None, _number_list,
+                              doc="a raster path: cell values that are habitat"),
+        "suitability_threshold": Key(None, _optional(_number()),
+                                     doc="a raster path: cells of at least this are habitat"),
+        "min_area_km2": Key(0.0, _nonneg, doc="a raster path: smaller patches are dropped"),
     },
     "prey": {
         "growth": Key("logistic", _choice(table=GROWTH_FORMS)),
@@ -175,6 +201,16 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "corridors": Key(None, _text(optional=True)),
         "links": Key(None, _text(optional=True)),
         "corridor_snap_km": Key(0.1, _nonneg, doc="how far a corridor end may be from its patch"),
+        "resistance": Key(None, _text(optional=True),
+                          doc="GeoTIFF: cost of crossing one km of each cell relative to open "
+                              "ground; links then act as their least-cost distance"),
+        "matrix_resistance": Key(1.0, _pos,
+                                 doc="without a resistance raster: cost of one km between "
+                                     "patches relative to open ground"),
+        "corridor_resistance": Key(CORRIDOR_RESISTANCE, _pos,
+                                   doc="cost of one km along a corridor relative to open "
+                                       "ground, unless the corridor's 'resistance' says "
+                                       "otherwise"),
     },
     "run": {
         "duration": Key(400.0, _pos),

@@ -104,7 +104,7 @@ def landscape_matrix(network: Network, area_km2, *, scale_km,
     Arcs are taken as unordered pairs, so a one-way links-table row links the pair both
     ways here, and a pair joined by several routes (a kernel link and a corridor) enters
     once, with its largest kernel weight (its shortest route), not summed. ``d_ij`` is the
-    arc's ``distance_km`` (a corridor's length for a corridor); fixed link weights of a
+    arc's ``effective_distance_km`` (a corridor's length times its resistance); fixed link weights of a
     links table are not used.
     """
     n = network.n_patches
@@ -119,7 +119,8 @@ def landscape_matrix(network: Network, area_km2, *, scale_km,
     hi = np.maximum(src, dst)[off]
     if lo.size == 0:
         return sp.csr_array((n, n))
-    weight = kernel_weight(kernel, network.distance_km[off], _pair_scale(scale_km, n, lo, hi))
+    weight = kernel_weight(kernel, network.effective_distance_km[off],
+                           _pair_scale(scale_km, n, lo, hi))
     key = network.pair_codes(lo, hi)
     order = np.argsort(key, kind="stable")
     key, weight = key[order], weight[order]

@@ -417,10 +417,11 @@ def read_corridors(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     Parameters
     ----------
     path : str or path
-        GeoJSON / GeoPackage / Shapefile of LineString or MultiLineString features, with an
-        optional ``corridor_id`` attribute (unique ids) and an optional ``survival``
-        attribute (share of dispersers surviving the whole corridor, 0 to 1; empty means
-        "from survival_per_km").
+        GeoJSON / GeoPackage / Shapefile of LineString or MultiLineString features, with
+        optional attributes ``corridor_id`` (unique ids), ``survival`` (share of dispersers
+        surviving the whole corridor, 0 to 1; empty means "from survival_per_km"),
+        ``resistance`` (cost per km along the corridor, > 0) and ``quality`` (> 0; see
+        :func:`trophoscape.model.network.corridor_resistances`).
     crs : pyproj.CRS
         The landscape's metric CRS.
     layer : str or int, optional
@@ -459,12 +460,38 @@ def read_corridors(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
                   "line has zero length; draw the corridor as a line from one patch to "
                   "another, or remove the feature", path=path, refs=refs)
     out = frame.drop(columns=[frame.geometry.name])
+    _warn_near_names(out.columns, CORRIDOR_ATTRIBUTES, path=path)
     if has_ids:
         out["corridor_id"] = ids
     if "survival" in out.columns:
         out["survival"] = _numbers(out["survival"], path=path, refs=refs, field="survival",
                                    lo=0.0, hi=1.0, allow_missing=True)
+    for name in ("quality", "resistance"):
+        if name in out.columns:
+            out[name] = _numbers(out[name], path=path, refs=refs, field=name, lo=0.0,
+                                 lo_open=True, allow_missing=True)
     return geopandas.GeoDataFrame(out, geometry=lines.values, crs=crs)
+
+
+#: Attributes trophoscape reads from a corridor file (the README lists them).
+CORRIDOR_ATTRIBUTES = ("corridor_id", "survival", "quality", "resistance")
+#: Attributes trophoscape reads from a candidate-corridor file.
+CANDIDATE_ATTRIBUTES = (*CORRIDOR_ATTRIBUTES, "cost")
+
+
+def _warn_near_names(columns, known, *, path) -> None:
+    """A warning for each column whose name is close to, but not, an attribute trophoscape
+    reads (``resistence``, ``Cost``): its values would be silently ignored otherwise."""
+    lowered = {k.lower(): k for k in known}
+    for column in map(str, columns):
+        if column in known:
+            continue
+        close = ([lowered[column.lower()]] if column.lower() in lowered
+                 else difflib.get_close_matches(column, known, n=1, cutoff=0.8))
+        if close:
+            warnings.warn(f"{path}: attribute {column!r} is not read; did you mean "
+                          f"{close[0]!r}? (the attributes read are "
+                          f"{', '.join(map(repr, known))})", TrophoscapeWarning, stacklevel=3)
 
 
 def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
@@ -477,8 +504,10 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
         thin Polygon / MultiPolygon features (a strip of land drawn as an area). Attributes:
         ``cost`` (required, a finite number >= 0, in the user's own unit), ``corridor_id``
         (optional unique ids; default the feature order), ``quality`` (optional, > 0,
-        default 1) and ``survival`` (optional, 0 to 1, the share of dispersers surviving the
-        whole corridor; empty means "from survival_per_km").
+        default 1), ``resistance`` (optional, > 0: cost per km along the corridor; see
+        :func:`trophoscape.model.network.corridor_resistances`) and ``survival`` (optional,
+        0 to 1, the share of dispersers surviving the whole corridor; empty means "from
+        survival_per_km").
     crs : pyproj.CRS
         The landscape's metric CRS.
     layer : str or int, optional
@@ -522,6 +551,8 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     source, assumed = (frame.crs, False) if frame.crs is not None else (
         pyproj.CRS.from_epsg(4326), True)
     _check_coordinates(geoms, source, path=path, refs=refs, assumed=assumed)
+    _warn_near_names([c for c in frame.columns if c != frame.geometry.name],
+                     CANDIDATE_ATTRIBUTES, path=path)
     if "cost" not in frame.columns:
         have = ", ".join(repr(c) for c in frame.columns if c != frame.geometry.name)
         raise InputError(f"the file has no 'cost' attribute (it has: {have or 'none'}); "
@@ -534,6 +565,9 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     survival = (_numbers(frame["survival"], path=path, refs=refs, field="survival", lo=0.0,
                          hi=1.0, allow_missing=True)
                 if "survival" in frame.columns else np.full(len(frame), np.nan))
+    resistance = (_numbers(frame["resistance"], path=path, refs=refs, field="resistance",
+                           lo=0.0, lo_open=True, allow_missing=True)
+                  if "resistance" in frame.columns else None)
     projected = geopandas.GeoSeries(geoms, crs=source).to_crs(crs).to_numpy()
     kind = shapely.get_type_id(projected)
     area = np.isin(kind, (_POLYGON, _MULTIPOLYGON))
@@ -549,6 +583,8 @@ def read_candidates(path, *, crs, layer=None) -> geopandas.GeoDataFrame:
     out["cost"] = cost
     out["quality"] = np.where(np.isnan(quality), 1.0, quality)
     out["survival"] = survival
+    if resistance is not None:
+        out["resistance"] = resistance
     out["drawn_as"] = np.where(area, "polygon", "line")
     result = geopandas.GeoDataFrame(out, geometry=lines, crs=crs)
     result.attrs["has_ids"] = has_ids

@@ -23,6 +23,7 @@ from scipy.spatial import cKDTree
 
 from ..errors import InputError, allowed_range
 from .landscape import Landscape, read_corridors, read_links_table
+from .resistance import CORRIDOR_RESISTANCE, corridor_resistances
 
 __all__ = [
     "Network",
@@ -92,16 +93,21 @@ class Network:
         Arc i -> j as patch positions; an undirected link is two arcs. Sorted by
         (source, target); parallel arcs (say a kernel link and a corridor) are two routes.
     distance_km : ndarray of float64, shape (n_arcs,)
-        Boundary or centroid distance; a corridor's length for a corridor.
+        Straight boundary or centroid distance; a corridor's length for a corridor.
     weight : ndarray of float64, shape (n_arcs,)
-        Fixed weight; NaN means "the species' kernel of ``distance_km``".
+        Fixed weight; NaN means "the species' kernel of ``effective_distance_km``".
     survival : ndarray of float64, shape (n_arcs,)
-        Fixed share surviving the trip; NaN means ``survival_per_km ** distance_km``.
+        Fixed share surviving the trip; NaN means ``survival_per_km ** effective_distance_km``.
     origin : ndarray of str, shape (n_arcs,)
         "kernel", "corridor" or "table".
     kernel : str
         "exponential", "gaussian", "step" or "none".
     max_distance_km : float
+        No kernel link with a longer effective distance.
+    effective_distance_km : ndarray of float64, shape (n_arcs,)
+        The distance the arc acts as for kernels and transit survival: ``distance_km`` times
+        the matrix resistance, the least-cost distance over a resistance surface, or a
+        corridor's length times its resistance. Default (None): ``distance_km``.
     """
 
     ids: np.ndarray
@@ -113,6 +119,7 @@ class Network:
     origin: np.ndarray
     kernel: str
     max_distance_km: float
+    effective_distance_km: np.ndarray | None = None
 
     def __post_init__(self):
         arrays = {
@@ -124,8 +131,12 @@ class Network:
             "survival": np.asarray(self.survival, dtype=np.float64),
             "origin": np.asarray(self.origin, dtype=str),
         }
+        arrays["effective_distance_km"] = (
+            arrays["distance_km"].copy() if self.effective_distance_km is None
+            else np.asarray(self.effective_distance_km, dtype=np.float64))
         m = arrays["source"].shape
-        for name in ("target", "distance_km", "weight", "survival", "origin"):
+        for name in ("target", "distance_km", "weight", "survival", "origin",
+                     "effective_distance_km"):
             if arrays[name].shape != m:
                 raise ValueError(f"Network.{name} has shape {arrays[name].shape}, expected {m}")
         n = arrays["ids"].size
@@ -141,6 +152,16 @@ class Network:
     @property
     def n_patches(self) -> int:
         return int(self.ids.size)
+
+    #: The per-arc arrays, in the order :meth:`select` and :meth:`merged` keep them.
+    ARC_FIELDS = ("source", "target", "distance_km", "effective_distance_km", "weight",
+                  "survival", "origin")
+
+    def select(self, keep) -> "Network":
+        """The network with only the arcs ``keep`` (a boolean mask or positions), in order."""
+        keep = np.asarray(keep)
+        return Network(ids=self.ids, kernel=self.kernel, max_distance_km=self.max_distance_km,
+                       **{f: getattr(self, f)[keep] for f in self.ARC_FIELDS})
 
     @property
     def n_arcs(self) -> int:
@@ -218,7 +239,8 @@ class Network:
     def _edge_table(self, directed: bool) -> pd.DataFrame:
         """One row per linked pair (ordered if ``directed``): a, b, distance_km, origin.
 
-        Parallel routes are merged: the shortest distance, and the origins joined by "+".
+        Parallel routes are merged: the shortest distance and the shortest effective
+        distance, and the origins joined by "+".
         """
         if directed:
             a, b = self.source, self.target
@@ -237,6 +259,9 @@ class Network:
             "a": a[order][start], "b": b[order][start],
             "distance_km": (np.minimum.reduceat(self.distance_km[order], start)
                             if key.size else np.empty(0)),
+            "effective_distance_km": (
+                np.minimum.reduceat(self.effective_distance_km[order], start)
+                if key.size else np.empty(0)),
             "origin": names[mask],
         })
 
@@ -247,7 +272,7 @@ class Network:
         -------
         networkx.Graph or networkx.DiGraph
             Nodes are the ids in patch order with attribute ``index``; edges carry
-            ``distance_km`` (shortest route) and ``origin`` ("kernel", "corridor", "table",
+            ``distance_km`` and ``effective_distance_km`` (shortest route) and ``origin`` ("kernel", "corridor", "table",
             joined by "+" for parallel routes). A DiGraph when some arc has no reverse
             (a one-way links-table row), else a Graph.
         """
@@ -257,9 +282,11 @@ class Network:
         names = self.ids.tolist()
         graph.add_nodes_from((name, {"index": i}) for i, name in enumerate(names))
         graph.add_edges_from(
-            (names[a], names[b], {"distance_km": d, "origin": o})
-            for a, b, d, o in zip(edges["a"].tolist(), edges["b"].tolist(),
-                                  edges["distance_km"].tolist(), edges["origin"].tolist())
+            (names[a], names[b], {"distance_km": d, "effective_distance_km": e, "origin": o})
+            for a, b, d, e, o in zip(edges["a"].tolist(), edges["b"].tolist(),
+                                     edges["distance_km"].tolist(),
+                                     edges["effective_distance_km"].tolist(),
+                                     edges["origin"].tolist())
         )
         return graph
 
@@ -275,7 +302,8 @@ class Network:
         -------
         geopandas.GeoDataFrame
             Columns ``source``, ``target`` (ids; source is the earlier patch), ``distance_km``
-            (shortest route), ``origin``; geometry a LineString between representative points
+            (shortest straight route), ``origin``, ``effective_distance_km`` (shortest
+            effective route); geometry a LineString between representative points
             (``shapely.point_on_surface``) of the two patches, in the landscape's CRS.
         """
         if not np.array_equal(landscape.ids, self.ids):
@@ -287,13 +315,16 @@ class Network:
         lines = shapely.linestrings(np.stack([points[a], points[b]], axis=1).reshape(-1, 2, 2))
         return geopandas.GeoDataFrame(
             {"source": self.ids[a], "target": self.ids[b],
-             "distance_km": edges["distance_km"].to_numpy(), "origin": edges["origin"].to_numpy()},
+             "distance_km": edges["distance_km"].to_numpy(),
+             "origin": edges["origin"].to_numpy(),
+             "effective_distance_km": edges["effective_distance_km"].to_numpy()},
             geometry=lines, crs=landscape.crs)
 
 
 def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km=15.0,
                   distance="boundary", corridors=None, links_table=None, corridor_snap_km=0.1,
-                  base_dir=None) -> Network:
+                  base_dir=None, matrix_resistance=1.0,
+                  corridor_resistance=None, resistance=None) -> Network:
     """Links between the patches of a landscape.
 
     Parameters
@@ -303,16 +334,19 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
         Kernel links join every pair of patches within ``max_distance_km``; "none" makes none
         (the corridors and the links table alone then define the network).
     max_distance_km : float
-        No kernel link beyond this distance (inclusive).
+        No kernel link with a longer effective distance (inclusive).
     distance : {"boundary", "centroid"}
         Edge-to-edge distance (0 for touching patches) or distance between centroids; used
-        for kernel links and links-table rows.
+        for kernel links and links-table rows. With a resistance surface, the effective
+        distance is the least-cost distance from boundary to boundary either way.
     corridors : str or path, optional
         Lines joining two patches; see :func:`trophoscape.model.landscape.read_corridors`. Each end
         must lie within ``corridor_snap_km`` of a patch, the two ends at different patches.
-        A corridor links both ways; its distance is its length; its weight is the kernel of
-        its length (1 when ``kernel="none"``); its survival the ``survival`` attribute or,
-        where empty, ``survival_per_km`` to the power of its length.
+        A corridor links both ways; its distance is its length and its effective distance its
+        length times its resistance (:func:`corridor_resistances`); its weight is the kernel
+        of its effective distance (1 when ``kernel="none"``); its survival the ``survival``
+        attribute or, where empty, ``survival_per_km`` to the power of its effective
+        distance.
     links_table : str or path, optional
         CSV of ``source,target,weight[,survival][,directed]``; see
         :func:`trophoscape.model.landscape.read_links_table`. Ids must be patch ids.
@@ -320,6 +354,19 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
         How far a corridor end may be from its patch.
     base_dir : str or path, optional
         Folder that relative ``corridors`` / ``links_table`` paths are read from.
+    matrix_resistance : float
+        Without a resistance surface: the cost of crossing one km between patches relative
+        to open ground (> 0); kernel links and links-table rows act as their distance times
+        it.
+    corridor_resistance : float, optional
+        The cost of one km along a corridor (> 0), unless the corridor's ``resistance``
+        attribute says otherwise; default :data:`CORRIDOR_RESISTANCE`.
+    resistance : ResistanceSurface, optional
+        A resistance surface (:func:`trophoscape.model.resistance.read_resistance`): kernel
+        links then join the pairs whose least-cost distance is within ``max_distance_km``,
+        and act as that distance; links-table rows act as their pair's least-cost distance.
+        The corridors are burnt into it first (:meth:`ResistanceSurface.burned`), so that
+        paths between other patches may use them too.
 
     Returns
     -------
@@ -344,31 +391,51 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
                          field="dispersal.distance")
     max_distance_km = _nonnegative(max_distance_km, "dispersal.max_distance_km")
     corridor_snap_km = _nonnegative(corridor_snap_km, "dispersal.corridor_snap_km")
+    matrix_resistance = _positive(matrix_resistance, "dispersal.matrix_resistance")
+    corridor_resistance = _positive(
+        CORRIDOR_RESISTANCE if corridor_resistance is None else corridor_resistance,
+        "dispersal.corridor_resistance")
 
     parts = []
+    if corridors is not None:
+        lines, corridor_part = _corridor_arcs(landscape, _resolve(corridors, base_dir), kernel,
+                                              corridor_snap_km * 1000.0, corridor_resistance)
+        if resistance is not None:  # corridors are part of the ground to cross
+            resistance = resistance.burned(lines.geometry.to_numpy(),
+                                           corridor_resistances(lines, corridor_resistance))
     if kernel != "none":
-        i, j, d = _kernel_pairs(landscape, max_distance_km * 1000.0, distance)
+        if resistance is not None:
+            i, j, e = resistance.pairs_within(landscape, max_distance_km)
+            d = _pair_distance_km(landscape, i, j, distance)
+        else:
+            i, j, d = _kernel_pairs(landscape, max_distance_km / matrix_resistance * 1000.0,
+                                    distance)
+            e = d * matrix_resistance
         nan = np.full(2 * i.size, np.nan)
         parts.append((np.concatenate([i, j]), np.concatenate([j, i]), np.concatenate([d, d]),
-                      nan, nan, _CODE["kernel"]))
+                      np.concatenate([e, e]), nan, nan, _CODE["kernel"]))
     if corridors is not None:
-        parts.append(_corridor_arcs(landscape, _resolve(corridors, base_dir), kernel,
-                                    corridor_snap_km * 1000.0))
+        parts.append(corridor_part)
     if links_table is not None:
-        parts.append(_table_arcs(landscape, _resolve(links_table, base_dir), distance))
+        src, dst, d, weight, survival, code = _table_arcs(
+            landscape, _resolve(links_table, base_dir), distance)
+        e = (resistance.between(landscape, src, dst) if resistance is not None
+             else d * matrix_resistance)
+        parts.append((src, dst, d, e, weight, survival, code))
 
     if parts:
-        source, target, dist, weight, survival, origin = (
+        source, target, dist, effective, weight, survival, origin = (
             np.concatenate([np.broadcast_to(p[k], p[0].shape) for p in parts])
-            for k in range(6))
+            for k in range(7))
     else:
         source = target = np.empty(0, dtype=np.int64)
-        dist = weight = survival = np.empty(0)
+        dist = effective = weight = survival = np.empty(0)
         origin = np.empty(0, dtype=np.int64)
     order = np.lexsort((dist, origin, target, source))
     return Network(
         ids=landscape.ids, source=source[order], target=target[order],
-        distance_km=dist[order], weight=weight[order], survival=survival[order],
+        distance_km=dist[order], effective_distance_km=effective[order],
+        weight=weight[order], survival=survival[order],
         origin=np.asarray(_ORIGINS)[origin[order]], kernel=kernel,
         max_distance_km=max_distance_km,
     )
@@ -395,7 +462,7 @@ def arc_weights(network: Network, *, scale_km) -> np.ndarray:
         raise ValueError("an arc without a fixed weight in a network with kernel 'none'")
     scale = per_patch_array(scale_km, network.n_patches, "kernel_scale_km", positive=True)
     out = weight.copy()
-    out[free] = kernel_weight(network.kernel, network.distance_km[free],
+    out[free] = kernel_weight(network.kernel, network.effective_distance_km[free],
                               scale[network.source[free]])
     return out
 
@@ -445,8 +512,8 @@ def movement_operator(network: Network, *, emigration_rate, scale_km,
                          field="survival_per_km")
     src, dst = network.source, network.target
     weight = arc_weights(network, scale_km=scale_km)
-    survival = np.where(np.isnan(network.survival), survival_per_km ** network.distance_km,
-                        network.survival)
+    survival = np.where(np.isnan(network.survival),
+                        survival_per_km ** network.effective_distance_km, network.survival)
     total = np.bincount(src, weights=weight, minlength=n)
     sends = total > 0
     share = np.divide(weight, total[src], out=np.zeros_like(weight), where=total[src] > 0)
@@ -459,6 +526,16 @@ def movement_operator(network: Network, *, emigration_rate, scale_km,
 
 
 # ---------------------------------------------------------------- helpers
+
+
+def _positive(value, key: str) -> float:
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = np.nan
+    if not (np.isfinite(number) and number > 0):
+        raise InputError(f"{value!r} is out of range; give a number above 0", field=key)
+    return number
 
 
 def _nonnegative(value, key: str) -> float:
@@ -516,7 +593,8 @@ def _pair_distance_km(landscape: Landscape, i, j, distance: str) -> np.ndarray:
     return shapely.distance(landscape.geometries[i], landscape.geometries[j]) / 1000.0
 
 
-def _corridor_arcs(landscape: Landscape, path: Path, kernel: str, snap_m: float):
+def _corridor_arcs(landscape: Landscape, path: Path, kernel: str, snap_m: float,
+                   corridor_resistance: float):
     lines = read_corridors(path, crs=landscape.crs)
     refs = lines["corridor_id"].to_numpy() if "corridor_id" in lines.columns else None
     geoms = lines.geometry.to_numpy()
@@ -524,11 +602,14 @@ def _corridor_arcs(landscape: Landscape, path: Path, kernel: str, snap_m: float)
     a, b = snap_line_ends(landscape, geoms, snap_m, path=path,
                           ref=lambda c: _corridor_ref(refs, c))
     length_km = shapely.length(geoms) / 1000.0
+    effective = length_km * corridor_resistances(lines, corridor_resistance)
     weight = np.full(k, 1.0 if kernel == "none" else np.nan)
     survival = (lines["survival"].to_numpy(dtype=np.float64) if "survival" in lines.columns
                 else np.full(k, np.nan))
-    return (np.concatenate([a, b]), np.concatenate([b, a]), np.tile(length_km, 2),
-            np.tile(weight, 2), np.tile(survival, 2), _CODE["corridor"])
+    return lines, (np.concatenate([a, b]), np.concatenate([b, a]), np.tile(length_km, 2),
+                   np.tile(effective, 2), np.tile(weight, 2), np.tile(survival, 2),
+                   _CODE["corridor"])
+
 
 
 def snap_line_ends(landscape: Landscape, geoms, snap_m: float, *, path, ref, what=""):
@@ -620,7 +701,8 @@ def _table_arcs(landscape: Landscape, path: Path, distance: str):
 
 
 def with_links(network: Network, source, target, distance_km, *, weight=None, survival=None,
-               origin: str = "corridor", both_ways: bool = True) -> Network:
+               origin: str = "corridor", both_ways: bool = True,
+               effective_distance_km=None) -> Network:
     """A new network with extra links; ``network`` is left as it was.
 
     Parameters
@@ -631,13 +713,15 @@ def with_links(network: Network, source, target, distance_km, *, weight=None, su
     distance_km : array_like of float, shape (k,)
         Length of each new link.
     weight : array_like of float, shape (k,), optional
-        Fixed weights; NaN or None means "the species' kernel of ``distance_km``" (1 for a
-        network with kernel "none", which has no kernel to fall back on).
+        Fixed weights; NaN or None means "the species' kernel of the effective distance" (1
+        for a network with kernel "none", which has no kernel to fall back on).
     survival : array_like of float, shape (k,), optional
-        Fixed share surviving the trip; NaN or None means ``survival_per_km ** distance_km``.
+        Fixed share surviving the trip; NaN or None means ``survival_per_km ** effective``.
     origin : {"corridor", "kernel", "table"}
     both_ways : bool
         Each new link is two arcs (i -> j and j -> i), as corridors are.
+    effective_distance_km : array_like of float, shape (k,), optional
+        The distance each new link acts as (default ``distance_km``).
 
     Returns
     -------
@@ -651,6 +735,8 @@ def with_links(network: Network, source, target, distance_km, *, weight=None, su
     s = np.asarray(source, dtype=np.int64).ravel()
     t = np.asarray(target, dtype=np.int64).ravel()
     d = np.broadcast_to(np.asarray(distance_km, dtype=np.float64), s.shape)
+    e = d if effective_distance_km is None else np.broadcast_to(
+        np.asarray(effective_distance_km, dtype=np.float64), s.shape)
     fallback = 1.0 if network.kernel == "none" else np.nan
     w = np.broadcast_to(np.asarray(np.nan if weight is None else weight, dtype=np.float64),
                         s.shape)
@@ -659,7 +745,7 @@ def with_links(network: Network, source, target, distance_km, *, weight=None, su
                                     dtype=np.float64), s.shape)
     if both_ways:
         s, t = np.concatenate([s, t]), np.concatenate([t, s])
-        d, w, sv = np.tile(d, 2), np.tile(w, 2), np.tile(sv, 2)
+        d, e, w, sv = np.tile(d, 2), np.tile(e, 2), np.tile(w, 2), np.tile(sv, 2)
     source_ = np.concatenate([network.source, s])
     target_ = np.concatenate([network.target, t])
     dist = np.concatenate([network.distance_km, d])
@@ -668,6 +754,7 @@ def with_links(network: Network, source, target, distance_km, *, weight=None, su
     order = np.lexsort((dist, code, target_, source_))
     return Network(
         ids=network.ids, source=source_[order], target=target_[order], distance_km=dist[order],
+        effective_distance_km=np.concatenate([network.effective_distance_km, e])[order],
         weight=np.concatenate([network.weight, w])[order],
         survival=np.concatenate([network.survival, sv])[order],
         origin=np.asarray(_ORIGINS)[code[order]], kernel=network.kernel,
@@ -699,11 +786,7 @@ def without(network: Network, *, patches=(), links=()) -> Network:
     pairs = np.asarray(list(links), dtype=np.int64).reshape(-1, 2)
     if pairs.size:
         keep &= ~np.isin(network.pair_codes(), network.pair_codes(pairs[:, 0], pairs[:, 1]))
-    return Network(
-        ids=network.ids, source=network.source[keep], target=network.target[keep],
-        distance_km=network.distance_km[keep], weight=network.weight[keep],
-        survival=network.survival[keep], origin=network.origin[keep], kernel=network.kernel,
-        max_distance_km=network.max_distance_km)
+    return network.select(keep)
 
 
 __all__ += ["with_links", "without"]

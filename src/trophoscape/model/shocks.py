@@ -180,10 +180,7 @@ class Rewire:
 
         net = self.context.network
         keep = ~self.removed
-        masked = dataclasses.replace(
-            net, source=net.source[keep], target=net.target[keep],
-            distance_km=net.distance_km[keep], weight=net.weight[keep],
-            survival=net.survival[keep], origin=net.origin[keep])
+        masked = net.select(keep)
         ops = {s: movement_operator(masked, emigration_rate=self.context.dispersal[s]["emigration_rate"],
                                     scale_km=self.context.dispersal[s]["scale_km"],
                                     survival_per_km=self.context.survival_per_km)

@@ -70,8 +70,10 @@ def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, laye
                                  weights=weights)
     study = scenario if isinstance(scenario, Study) else load_study(scenario)
     candidates_file = Path(candidates)
-    candidates = read_candidates(candidates_file, study.landscape, layer=layer,
-                                 snap_km=study.scenario["dispersal.corridor_snap_km"])
+    candidates = read_candidates(
+        candidates_file, study.landscape, layer=layer,
+        snap_km=study.scenario["dispersal.corridor_snap_km"],
+        corridor_resistance=study.scenario["dispersal.corridor_resistance"])
     inputs = [*input_files(study.scenario), candidates_file]
     links_file = None
     if links is not None and links != "all":

@@ -280,10 +280,26 @@ def _scenario_words(result) -> str:
         f"quality); predators eat them with a {response.words} "
         f"response and die at rate {_fmt(sc['predator.mortality_rate'])} per "
         f"{sc['time_unit']}. Dispersal follows {_article(sc['dispersal.kernel'])} {sc['dispersal.kernel']} kernel up to "
-        f"{_fmt(sc['dispersal.max_distance_km'])} km. The run lasts "
+        f"{_fmt(sc['dispersal.max_distance_km'])} km{_resistance_words(sc)}. The run lasts "
         f"{_fmt(sc['run.duration'])} {sc['time_unit']}s; the first "
         f"{_fmt(sc['run.burn_in'])} are burn-in."
     )
+
+
+def _resistance_words(sc) -> str:
+    """How distances are counted, when not straight (the scenario's resistance keys)."""
+    words = []
+    if sc["dispersal.resistance"]:
+        words.append(" of least-cost distance over the resistance raster "
+                     f"{Path(sc['dispersal.resistance']).name}")
+    elif sc["dispersal.matrix_resistance"] != 1.0:
+        words.append(f", each km between patches counting as "
+                     f"{_fmt(sc['dispersal.matrix_resistance'])}")
+    if sc["dispersal.corridors"]:
+        words.append(f"; a km along a corridor counts as "
+                     f"{_fmt(sc['dispersal.corridor_resistance'])} unless the corridor "
+                     "says otherwise")
+    return "".join(words)
 
 
 def _headline_rows(summary):

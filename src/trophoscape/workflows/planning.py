@@ -47,8 +47,8 @@ import pandas as pd
 import shapely
 
 from ..errors import InputError, RunError, param
-from ..model.network import (KERNELS, Network, movement_operator, snap_line_ends,
-                                       with_links, without)
+from ..model.network import (CORRIDOR_RESISTANCE, KERNELS, Network, corridor_resistances,
+                             movement_operator, snap_line_ends, with_links, without)
 from ..model.system import SPECIES, CoupledSystem
 from ..analysis.capacity import metapopulation_capacity
 from ..io.ledger import Ledger
@@ -117,12 +117,13 @@ class Candidates:
         Patch positions of the two ends (``source`` holds the first point's patch).
     length_km : ndarray of float64, shape (k,)
         Length of the line (of a polygon's long axis).
-    distance_km : ndarray of float64, shape (k,)
-        The length the corridor acts as: ``length_km / quality``. A corridor of quality 2
-        is as easy to cross as a line half as long, for the kernel, the survival per km
-        and λ_M alike.
+    effective_km : ndarray of float64, shape (k,)
+        The length the corridor acts as: ``length_km`` times its resistance
+        (:func:`trophoscape.model.network.corridor_resistances`: the ``resistance``
+        attribute, else the scenario's ``corridor_resistance`` divided by ``quality``), for
+        the kernel, the survival per km and λ_M alike.
     survival : ndarray of float64, shape (k,)
-        Share surviving the whole corridor; NaN for "``survival_per_km ** distance_km``".
+        Share surviving the whole corridor; NaN for "``survival_per_km ** effective_km``".
     cost : ndarray of float64, shape (k,)
     frame : geopandas.GeoDataFrame or None
         The lines with every attribute of the file, for maps and layers (not sent to
@@ -134,7 +135,7 @@ class Candidates:
     source: np.ndarray
     target: np.ndarray
     length_km: np.ndarray
-    distance_km: np.ndarray
+    effective_km: np.ndarray
     survival: np.ndarray
     cost: np.ndarray
     frame: object = field(default=None, repr=False)
@@ -147,10 +148,11 @@ class Candidates:
     def arrays(self) -> dict:
         """The numeric arrays alone (what a worker needs), as a picklable dict."""
         return {k: np.asarray(getattr(self, k)) for k in
-                ("ids", "source", "target", "length_km", "distance_km", "survival", "cost")}
+                ("ids", "source", "target", "length_km", "effective_km", "survival", "cost")}
 
 
-def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None) -> Candidates:
+def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None,
+                    corridor_resistance: float = CORRIDOR_RESISTANCE) -> Candidates:
     """Read a candidate-corridor file and snap each candidate to the two patches it joins.
 
     Parameters
@@ -162,6 +164,8 @@ def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None) -> Can
     snap_km : float
         How far an end may lie from its patch (the scenario's ``corridor_snap_km``).
     layer : str or int, optional
+    corridor_resistance : float
+        The scenario's ``[dispersal] corridor_resistance``.
 
     Returns
     -------
@@ -176,10 +180,12 @@ def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None) -> Can
     from ..model.landscape import read_candidates as read_file
 
     frame = read_file(path, crs=landscape.crs, layer=layer)
-    return snap_candidates(frame, landscape, snap_km=snap_km, path=path)
+    return snap_candidates(frame, landscape, snap_km=snap_km, path=path,
+                           corridor_resistance=corridor_resistance)
 
 
-def snap_candidates(frame, landscape, *, snap_km: float = 0.1, path=None) -> Candidates:
+def snap_candidates(frame, landscape, *, snap_km: float = 0.1, path=None,
+                    corridor_resistance: float = CORRIDOR_RESISTANCE) -> Candidates:
     """Snap candidate lines (a frame as :func:`trophoscape.model.landscape.read_candidates` returns)
     to patches, with the rules corridors follow in :func:`trophoscape.model.network.build_network`.
 
@@ -199,8 +205,6 @@ def snap_candidates(frame, landscape, *, snap_km: float = 0.1, path=None) -> Can
     a, b = snap_line_ends(landscape, geoms, snap_m, path=path, ref=ref,
                           what="the candidate joins fewer than two patches: ")
     length = shapely.length(geoms) / 1000.0
-    quality = frame["quality"].to_numpy(dtype=float) if "quality" in frame.columns else \
-        np.ones(k)
     survival = frame["survival"].to_numpy(dtype=float) if "survival" in frame.columns else \
         np.full(k, np.nan)
     out = frame.copy()
@@ -209,7 +213,8 @@ def snap_candidates(frame, landscape, *, snap_km: float = 0.1, path=None) -> Can
     out["target"] = landscape.ids[b]
     out["length_km"] = length
     return Candidates(ids=ids, source=a, target=b, length_km=length,
-                      distance_km=length / quality, survival=survival,
+                      effective_km=length * corridor_resistances(frame, corridor_resistance),
+                      survival=survival,
                       cost=frame["cost"].to_numpy(dtype=float), frame=out,
                       path=None if path is None else Path(path))
 
@@ -295,7 +300,8 @@ def _variant_network(network: Network, cand: dict, variant: Variant) -> Network:
     net = network
     if variant.add:
         k = np.asarray(variant.add, dtype=np.int64)
-        net = with_links(net, cand["source"][k], cand["target"][k], cand["distance_km"][k],
+        net = with_links(net, cand["source"][k], cand["target"][k], cand["length_km"][k],
+                         effective_distance_km=cand["effective_km"][k],
                          survival=cand["survival"][k], origin="corridor")
     if variant.cut or variant.lost:
         net = without(net, patches=variant.lost, links=variant.cut)

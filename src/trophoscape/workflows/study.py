@@ -145,10 +145,37 @@ def _build_study(scenario: Scenario) -> Study:
     for key, what in INPUT_FILES.items():
         if sc[key]:
             check_regular_file(sc.resolve(sc[key]), what=what, folders=True)
-    landscape = read_patches(
-        sc.resolve(sc["patches.path"]), id_field=sc["patches.id_field"], crs=sc["patches.crs"],
-        fields=sc.fields_used(), layer=sc["patches.layer"],
-    )
+    from ..model.habitat import habitat_patches, is_raster_path
+
+    if is_raster_path(sc["patches.path"]):
+        if sc["patches.id_field"] or sc["patches.layer"]:
+            raise InputError("a habitat raster names its patches itself (h<row>_<col>); "
+                             "leave out [patches] id_field and layer",
+                             file=sc.path, field="patches.id_field" if sc["patches.id_field"]
+                             else "patches.layer")
+        landscape = habitat_patches(
+            sc.resolve(sc["patches.path"]), habitat_values=sc["patches.habitat_values"],
+            suitability_threshold=sc["patches.suitability_threshold"],
+            min_area_km2=sc["patches.min_area_km2"], crs=sc["patches.crs"],
+            fields=sc.fields_used())
+    else:
+        for key in ("patches.habitat_values", "patches.suitability_threshold"):
+            if sc[key] is not None:
+                raise InputError(f"{key} applies to a habitat raster (a .tif path), and "
+                                 f"{sc['patches.path']!r} is a vector file; remove the key",
+                                 file=sc.path, field=key)
+        landscape = read_patches(
+            sc.resolve(sc["patches.path"]), id_field=sc["patches.id_field"],
+            crs=sc["patches.crs"], fields=sc.fields_used(), layer=sc["patches.layer"],
+        )
+    surface = None
+    if sc["dispersal.resistance"]:
+        import shapely
+
+        from ..model.resistance import read_resistance
+
+        surface = read_resistance(sc.resolve(sc["dispersal.resistance"]), crs=landscape.crs,
+                                  patch_bounds=shapely.total_bounds(landscape.geometries))
     network = build_network(
         landscape,
         kernel=sc["dispersal.kernel"],
@@ -157,6 +184,9 @@ def _build_study(scenario: Scenario) -> Study:
         corridors=sc.resolve(sc["dispersal.corridors"]) if sc["dispersal.corridors"] else None,
         links_table=sc.resolve(sc["dispersal.links"]) if sc["dispersal.links"] else None,
         corridor_snap_km=sc["dispersal.corridor_snap_km"],
+        matrix_resistance=sc["dispersal.matrix_resistance"],
+        corridor_resistance=sc["dispersal.corridor_resistance"],
+        resistance=surface,
     )
     n = landscape.n_patches
     params = {name: _per_patch(sc, landscape, key) for name, key in PARAMETER_KEYS.items()}

@@ -1,0 +1,383 @@
+"""Resistance to movement: corridors' resistance, and least-cost distances over a raster.
+
+Planners describe how hard the ground between patches is to cross with a *resistance
+surface*: a raster whose cells give the cost of crossing one km of them relative to open
+ground (1 = open ground, 10 = ten times as hard, 0.5 = twice as easy). With one, a link's
+effective distance is its *least-cost distance*: the cheapest sum of cost × step length over
+8-neighbour moves from the boundary of one patch to the boundary of the other.
+
+The rule, exactly (what the tests check against ``scipy.sparse.csgraph.dijkstra``):
+
+- The patches are burnt into the raster's grid (a cell belongs to a patch when its centre
+  lies inside it; a patch smaller than a cell gets the cell of its representative point).
+- Moving between two neighbouring cells ``a`` and ``b`` costs ``(c_a + c_b) / 2`` times the
+  step length (a cell side, or the diagonal), as scikit-image's ``MCP_Geometric`` counts it;
+  the cells of the patch the path starts from cost 0, so leaving it costs half a step of
+  the first cell outside.
+- The least-cost distance to another patch is the least cumulative cost at its cells, less
+  half a step of the cell entered, so that it ends on the patch's boundary; the distance of
+  a pair is the smaller of the two directions (they differ only by the diagonal entry step).
+- Other patches' cells cost what the raster says: a path may cross a patch.
+- Cells without a value (nodata) cannot be crossed; within the patches' extent they are
+  refused (:func:`read_resistance`).
+- Corridors are burnt into the raster: every cell a corridor line touches costs the
+  corridor's resistance where that is lower than the cell's own.
+
+On a uniform surface the result is the boundary distance measured along 8-neighbour moves,
+which exceeds the straight distance by at most ``sqrt(4 - 2 sqrt 2) - 1`` ≈ 8.2 % (the
+largest error of the octile metric, at 22.5° off the grid's axes), plus up to a cell from
+burning the patches into the grid.
+
+Each patch is searched once, on a window of the raster around it large enough that no
+path within ``max_distance_km`` leaves it (its size follows from the lowest resistance in
+the raster), so the cost per patch does not grow with the number of patches.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = ["CORRIDOR_RESISTANCE", "corridor_resistances", "ResistanceSurface",
+           "read_resistance", "MAX_RASTER_SHARE"]
+
+#: Default cost of one km along a corridor relative to open ground
+#: (``[dispersal] corridor_resistance``; the README states its basis).
+CORRIDOR_RESISTANCE = 0.2
+
+#: The largest share of the machine's memory a resistance raster (values, patch cells and
+#: the search's work arrays: about 20 bytes a cell) may take; a larger one is refused.
+MAX_RASTER_SHARE = 0.5
+_BYTES_PER_CELL = 20
+
+
+def corridor_resistances(frame, default: float) -> np.ndarray:
+    """The resistance of each corridor line (cost per km relative to open ground): its
+    ``resistance`` attribute where given, else ``default`` divided by its ``quality``
+    attribute (1 where empty or absent), so that a corridor of quality 2 acts as half as
+    long as one of quality 1. ``frame`` holds the values read and checked (NaN = empty)."""
+    n = len(frame)
+    quality = (frame["quality"].to_numpy(dtype=np.float64) if "quality" in frame.columns
+               else np.full(n, np.nan))
+    given = (frame["resistance"].to_numpy(dtype=np.float64) if "resistance" in frame.columns
+             else np.full(n, np.nan))
+    return np.where(np.isnan(given), default / np.where(np.isnan(quality), 1.0, quality),
+                    given)
+
+
+@dataclass(frozen=True, eq=False)
+class ResistanceSurface:
+    """A resistance raster in the landscape's CRS.
+
+    Attributes
+    ----------
+    values : ndarray of float32, shape (rows, cols)
+        Cost of crossing one km of each cell relative to open ground (> 0); NaN where the
+        raster has no value.
+    transform : affine.Affine
+        Cell (row, col) → map coordinates (metres) of its upper-left corner, north up.
+    path : Path or None
+        The file it was read from (for messages).
+    """
+
+    values: np.ndarray
+    transform: object
+    path: Path | None = None
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(self.values.shape)
+
+    @property
+    def cell_km(self) -> tuple[float, float]:
+        """Cell height and width in km."""
+        return abs(self.transform.e) / 1000.0, abs(self.transform.a) / 1000.0
+
+    def bounds(self) -> tuple[float, float, float, float]:
+        """(xmin, ymin, xmax, ymax) of the raster in map coordinates."""
+        rows, cols = self.shape
+        t = self.transform
+        xs = [t.c, t.c + t.a * cols]
+        ys = [t.f, t.f + t.e * rows]
+        return min(xs), min(ys), max(xs), max(ys)
+
+    def burned(self, lines, resistance) -> "ResistanceSurface":
+        """A copy with the cells that ``lines`` touch set to ``resistance`` (one value per
+        line, or one for all) where that is lower than the raster's: corridors as part of
+        the ground, for paths between any patches."""
+        from rasterio import features
+
+        lines = np.asarray(lines, dtype=object)
+        value = np.broadcast_to(np.asarray(resistance, dtype=np.float32), lines.shape)
+        if not lines.size:
+            return self
+        # the lowest resistance wins where lines cross: burn the highest first
+        order = np.argsort(-value, kind="stable")
+        burnt = features.rasterize(
+            ((lines[k], float(value[k])) for k in order), out_shape=self.shape,
+            transform=self.transform, fill=np.nan, dtype="float32", all_touched=True)
+        values = np.fmin(self.values, burnt)  # NaN (not on a line) keeps the raster's value
+        values[np.isnan(self.values)] = np.nan  # a line does not fill a hole in the raster
+        return ResistanceSurface(values=values, transform=self.transform, path=self.path)
+
+    # -- the patches on the grid
+
+    def patch_cells(self, landscape) -> np.ndarray:
+        """Patch position + 1 of each cell (0 outside every patch), shape (rows, cols).
+
+        A cell belongs to a patch when its centre lies inside it (the first patch in
+        patch order where patches overlap); a patch with no such cell gets the cell of its
+        representative point."""
+        import shapely
+        from rasterio import features
+
+        n = landscape.n_patches
+        geoms = landscape.geometries
+        labels = features.rasterize(
+            ((g, k + 1) for k, g in reversed(list(enumerate(geoms)))),
+            out_shape=self.shape, transform=self.transform, fill=0, dtype="int32",
+            all_touched=False)
+        present = np.zeros(n + 1, dtype=bool)
+        present[np.unique(labels)] = True
+        missing = np.flatnonzero(~present[1:])
+        if missing.size:
+            points = shapely.get_coordinates(shapely.point_on_surface(geoms[missing]))
+            rows, cols = self.rowcol(points[:, 0], points[:, 1])
+            labels[rows, cols] = missing + 1
+        return labels
+
+    def rowcol(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+        """The cell holding each point (clipped to the raster)."""
+        t = self.transform  # north up (read_resistance refuses others)
+        col = (np.asarray(x, dtype=float) - t.c) / t.a
+        row = (np.asarray(y, dtype=float) - t.f) / t.e
+        rows, cols = self.shape
+        return (np.clip(np.floor(row).astype(np.int64), 0, rows - 1),
+                np.clip(np.floor(col).astype(np.int64), 0, cols - 1))
+
+    # -- least-cost distances
+
+    def _reach(self, max_km: float) -> tuple[int, int]:
+        """Cells a path of cost ``max_km`` can go at most, along rows and along columns."""
+        finite = self.values[np.isfinite(self.values)]
+        lowest = float(finite.min()) if finite.size else 1.0
+        h, w = self.cell_km
+        return (int(math.ceil(max_km / (lowest * h))) + 2,
+                int(math.ceil(max_km / (lowest * w))) + 2)
+
+    def _search(self, labels, boxes, p: int, reach, max_km):
+        """Least-cost distance (km) from patch ``p`` to every patch within ``max_km``:
+        (positions, distances)."""
+        from skimage.graph import MCP_Geometric
+
+        box = boxes[p]
+        rows, cols = self.shape
+        r0, r1 = max(box[0].start - reach[0], 0), min(box[0].stop + reach[0], rows)
+        c0, c1 = max(box[1].start - reach[1], 0), min(box[1].stop + reach[1], cols)
+        lab = labels[r0:r1, c0:c1]
+        cost = self.values[r0:r1, c0:c1].astype(np.float64)
+        cost[~np.isfinite(cost)] = -1.0  # impassable
+        own = lab == p + 1
+        cost[own] = 0.0
+        starts = np.argwhere(_edge_cells(own))
+        h, w = self.cell_km
+        mcp = MCP_Geometric(cost, sampling=(h, w))
+        cum, _ = mcp.find_costs(starts)
+        # end on the boundary: less half of the (orthogonal) step into the cell entered
+        reached = (lab > 0) & ~own & np.isfinite(cum)
+        found = lab[reached] - 1
+        dist = cum[reached] - 0.5 * cost[reached] * min(h, w)
+        keep = dist <= max_km * (1 + 1e-12)
+        found, dist = found[keep], dist[keep]
+        if not found.size:
+            return np.empty(0, np.int64), np.empty(0)
+        order = np.lexsort((dist, found))
+        found, dist = found[order], dist[order]
+        first = np.r_[True, found[1:] != found[:-1]]
+        return found[first].astype(np.int64), np.maximum(dist[first], 0.0)
+
+    def pairs_within(self, landscape, max_km: float, *, progress: bool = False):
+        """Pairs ``i < j`` whose least-cost distance is at most ``max_km``, and that
+        distance: arrays ``(i, j, km)`` sorted by (i, j)."""
+        from scipy import ndimage
+
+        labels = self.patch_cells(landscape)
+        boxes = ndimage.find_objects(labels, max_label=landscape.n_patches)
+        reach = self._reach(max_km)
+        src, dst, km = [], [], []
+        for p in range(landscape.n_patches):  # one search per patch (module notes)
+            found, dist = self._search(labels, boxes, p, reach, max_km)
+            src.append(np.full(found.size, p, dtype=np.int64))
+            dst.append(found)
+            km.append(dist)
+        return _symmetric(np.concatenate(src) if src else np.empty(0, np.int64),
+                          np.concatenate(dst) if dst else np.empty(0, np.int64),
+                          np.concatenate(km) if km else np.empty(0),
+                          landscape.n_patches)
+
+    def between(self, landscape, source, target) -> np.ndarray:
+        """Least-cost distance (km) of given pairs (say the rows of a links table): from
+        each source patch on a window holding both patches and room for a detour."""
+        from scipy import ndimage
+
+        source = np.asarray(source, dtype=np.int64)
+        target = np.asarray(target, dtype=np.int64)
+        labels = self.patch_cells(landscape)
+        boxes = ndimage.find_objects(labels, max_label=landscape.n_patches)
+        out = np.full(source.size, np.inf)
+        h, w = self.cell_km
+        for k, (s, t) in enumerate(zip(source.tolist(), target.tolist())):
+            span = max(boxes[s][0].stop, boxes[t][0].stop) - min(boxes[s][0].start,
+                                                                  boxes[t][0].start)
+            span_c = max(boxes[s][1].stop, boxes[t][1].stop) - min(boxes[s][1].start,
+                                                                    boxes[t][1].start)
+            limit = 2.0 * float(np.nanmax(self.values)) * (span * h + span_c * w)
+            found, dist = self._search(labels, boxes, s, self._reach(limit), limit)
+            hit = found == t
+            if hit.any():
+                out[k] = dist[hit][0]
+        return out
+
+
+def _edge_cells(mask: np.ndarray) -> np.ndarray:
+    """Cells of ``mask`` with a neighbour (8-connected) outside it, or on the array's edge."""
+    from scipy import ndimage
+
+    inner = ndimage.binary_erosion(mask, structure=np.ones((3, 3), bool), border_value=0)
+    return mask & ~inner
+
+
+def _symmetric(i, j, km, n):
+    """One entry per unordered pair, the smaller of its two directions; sorted."""
+    lo, hi = np.minimum(i, j), np.maximum(i, j)
+    key = lo * max(n, 1) + hi
+    order = np.lexsort((km, key))
+    key, km = key[order], km[order]
+    first = np.r_[True, key[1:] != key[:-1]] if key.size else np.zeros(0, bool)
+    key, km = key[first], km[first]
+    return key // max(n, 1), key % max(n, 1), km
+
+
+def _memory_bytes() -> int:
+    try:
+        return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
+    except (ValueError, OSError, AttributeError):
+        return 8 << 30
+
+
+def read_resistance(path, *, crs, patch_bounds, field="dispersal.resistance"
+                    ) -> ResistanceSurface:
+    """Read a resistance raster (GeoTIFF or any single-band raster GDAL reads) into ``crs``.
+
+    Parameters
+    ----------
+    path : str or path
+    crs : pyproj.CRS
+        The landscape's metric CRS; a raster in another CRS is reprojected onto a grid of
+        about the same cell size (nearest neighbour, so class values stay as they are).
+    patch_bounds : (xmin, ymin, xmax, ymax)
+        The patches' extent in ``crs``: the raster must cover it, with a value in every
+        cell of it.
+
+    Raises
+    ------
+    InputError
+        A file that is not a raster or has no CRS, a raster too large for memory, one that
+        does not cover the patches, values of 0 or below, or cells without a value within
+        the patches' extent: one line naming the file and the problem.
+    """
+    import rasterio
+    from rasterio.errors import RasterioError
+    from rasterio.warp import Resampling, calculate_default_transform, reproject
+
+    path = Path(path)
+    try:
+        src = rasterio.open(path)
+    except (RasterioError, OSError) as exc:
+        raise InputError(f"cannot be read as a raster ({_short(exc)}); give a GeoTIFF of "
+                         "resistance values", file=path, field=field) from None
+    with src:
+        if src.crs is None:
+            raise InputError("the raster has no coordinate reference system; save it with "
+                             "one (for example as a GeoTIFF with its CRS)", file=path,
+                             field=field)
+        try:
+            source_crs = src.crs
+            same = source_crs == rasterio.crs.CRS.from_wkt(crs.to_wkt())
+        except (RasterioError, ValueError) as exc:
+            raise InputError(f"its coordinate reference system cannot be read ({_short(exc)})",
+                             file=path, field=field) from None
+        if same:
+            transform, width, height = src.transform, src.width, src.height
+        else:
+            try:
+                transform, width, height = calculate_default_transform(
+                    source_crs, crs.to_wkt(), src.width, src.height, *src.bounds)
+            except (RasterioError, ValueError) as exc:
+                raise InputError(f"cannot be reprojected into the patches' CRS "
+                                 f"({_short(exc)})", file=path, field=field) from None
+        cells = int(width) * int(height)
+        need = cells * _BYTES_PER_CELL
+        have = _memory_bytes()
+        if need > MAX_RASTER_SHARE * have:
+            raise InputError(
+                f"the raster has {height:,} × {width:,} cells, which need about "
+                f"{need / 2**30:.1f} GB, more than {MAX_RASTER_SHARE:.0%} of this machine's "
+                f"{have / 2**30:.1f} GB; give a coarser raster, or clip it to the patches",
+                file=path, field=field)
+        nodata = src.nodata
+        if same:
+            raw = src.read(1, masked=True)
+            values = raw.filled(np.nan).astype(np.float32)
+        else:
+            values = np.full((height, width), np.nan, dtype=np.float32)
+            reproject(source=rasterio.band(src, 1), destination=values,
+                      src_transform=src.transform, src_crs=source_crs, src_nodata=nodata,
+                      dst_transform=transform, dst_crs=crs.to_wkt(), dst_nodata=np.nan,
+                      resampling=Resampling.nearest)
+    if transform.b != 0 or transform.d != 0 or transform.e >= 0:
+        raise InputError("the raster is rotated or not north up; save it north up",
+                         file=path, field=field)
+    surface = ResistanceSurface(values=values, transform=transform, path=path)
+    xmin, ymin, xmax, ymax = surface.bounds()
+    px0, py0, px1, py1 = patch_bounds
+    if px0 < xmin or py0 < ymin or px1 > xmax or py1 > ymax:
+        raise InputError(
+            f"does not cover the patches: they span x {px0:.0f} to {px1:.0f}, y {py0:.0f} "
+            f"to {py1:.0f}, the raster x {xmin:.0f} to {xmax:.0f}, y {ymin:.0f} to "
+            f"{ymax:.0f} (in the patches' CRS); give a raster over the whole landscape",
+            file=path, field=field)
+    bad = np.isfinite(values) & ~(values > 0)
+    if bad.any():
+        r, c = np.argwhere(bad)[0]
+        x, y = _centre(transform, r, c)
+        raise InputError(f"holds {int(bad.sum()):,} cell(s) of value 0 or below, the first "
+                         f"{float(values[r, c]):g} at ({x:.1f}, {y:.1f}); a resistance is the "
+                         "cost of crossing one km relative to open ground: give values above "
+                         "0", file=path, field=field)
+    r0, c0 = surface.rowcol(px0, py1)
+    r1, c1 = surface.rowcol(px1, py0)
+    gaps = ~np.isfinite(values[r0:r1 + 1, c0:c1 + 1])
+    if gaps.any():
+        r, c = np.argwhere(gaps)[0]
+        x, y = _centre(transform, r + r0, c + c0)
+        raise InputError(f"has no value (nodata) in {int(gaps.sum()):,} cell(s) within the "
+                         f"patches' extent, the first at ({x:.1f}, {y:.1f}); give every cell "
+                         "between the patches a resistance", file=path, field=field)
+    return surface
+
+
+def _centre(transform, row, col) -> tuple[float, float]:
+    return (transform.c + (col + 0.5) * transform.a + (row + 0.5) * transform.b,
+            transform.f + (col + 0.5) * transform.d + (row + 0.5) * transform.e)
+
+
+def _short(exc) -> str:
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    return text[:200]
