@@ -428,3 +428,97 @@ def test_a_scenario_with_a_habitat_raster_builds_its_network(tmp_path):
     raw["patches"]["id_field"] = "patch_id"
     with pytest.raises(InputError, match="names its patches itself"):
         build_study(parse_scenario(raw, base_dir=tmp_path))
+
+
+# ------------------------------------------------------------------ candidates found
+
+
+def two_groups(folder):
+    """Two groups of two squares, 3 km apart (beyond max_distance_km = 2), and a raster of
+    open ground with a wall at x = 2.5 km open only at y = 4.5 km (north of every patch)."""
+    patches = write_patches(folder, [("A", 0, 0, 1, 1), ("B", 0, 1.5, 1, 2.5),
+                                     ("C", 4, 0, 5, 1), ("D", 4, 1.5, 5, 2.5)])
+    cell = 50.0
+    values = np.ones((160, 160))  # x -1..7 km, y -2..6 km
+    col = int((2.5 + 1.0) * 1000 / cell)
+    values[:, col:col + 2] = 100.0
+    gap_row = int((6.0 - 4.5) * 1000 / cell)
+    values[gap_row - 2:gap_row + 2, col:col + 2] = 1.0
+    write_raster(folder, values, cell_m=cell, left_km=-1.0, top_km=6.0)
+    scenario = folder / "s.toml"
+    scenario.write_text(
+        '[patches]\npath = "patches.gpkg"\nid_field = "patch_id"\n'
+        '[dispersal]\nmax_distance_km = 2.0\nresistance = "resistance.tif"\n'
+        '[planning]\ncost_per_km = 10.0\nsearch_km = 4.0\n'
+        '[run]\nduration = 20\nburn_in = 5\n'
+        '[analysis]\nstability = false\ncapacity = false\n', encoding="utf-8")
+    return scenario
+
+
+def test_candidates_found_join_the_groups_along_the_least_cost_path(tmp_path):
+    from trophoscape.workflows.candidates import find_candidates
+    from trophoscape.workflows.study import load_study
+
+    study = load_study(two_groups(tmp_path))
+    found = find_candidates(study, max_candidates=5)
+    # two groups: one candidate, between the closest pair (3 km apart, straight)
+    assert len(found) == 1
+    row = found.iloc[0]
+    assert {row["source"], row["target"]} in ({"A", "C"}, {"B", "D"})
+    assert row["reason"] == "joins two groups" and np.isnan(row["linked_as_km"])
+    assert row["straight_km"] == pytest.approx(3.0, rel=1e-9)
+    line = row.geometry
+    # it runs through the gap in the wall: up from B's top edge to y = 4.5 km and down
+    # again (Euclidean length of the detour, shapely), not straight through the wall
+    top = shapely.get_coordinates(line)[:, 1].max()
+    assert top == pytest.approx(Y0 + 4500, abs=150)
+    # from the west patch's upper corner (x 1 km, y 1 or 2.5 km) to the gap (2.5, 4.5) and
+    # down to the east patch's (4, same y)
+    corner_y = 1.0 if {row["source"], row["target"]} == {"A", "C"} else 2.5
+    detour = 2 * math.hypot(1.5, 4.5 - corner_y)
+    assert row["length_km"] == pytest.approx(detour, rel=0.1)
+    assert row["cost"] == pytest.approx(10.0 * row["length_km"], rel=1e-12)
+    # its ends lie on the two patches' outlines
+    land = study.landscape
+    a, b = (list(land.ids).index(row[k]) for k in ("source", "target"))
+    ends = shapely.get_coordinates(line)[[0, -1]]
+    assert shapely.distance(land.geometries[a], shapely.Point(ends[0])) < 1e-6
+    assert shapely.distance(land.geometries[b], shapely.Point(ends[1])) < 1e-6
+
+
+def test_corridors_auto_writes_candidates_to_edit_and_give_back(tmp_path):
+    import pandas as pd
+
+    from trophoscape.report.corridors import corridors_to_folder
+
+    scenario = two_groups(tmp_path)
+    out = tmp_path / "auto"
+    corridors_to_folder(scenario, "auto", out, budget=100.0, links=None, patches=False,
+                        workers=1, maps=False)
+    found = geopandas.read_file(out / "candidates.gpkg")
+    assert list(found.columns[:4]) == ["corridor_id", "cost", "source", "target"]
+    first = pd.read_csv(out / "corridors.csv", dtype={"corridor_id": str})
+    # consistency test: the same candidates given back as a file rank the same
+    again = tmp_path / "again"
+    corridors_to_folder(scenario, out / "candidates.gpkg", again, budget=100.0, links=None,
+                        patches=False, workers=1, maps=False)
+    second = pd.read_csv(again / "corridors.csv", dtype={"corridor_id": str})
+    pd.testing.assert_frame_equal(first[["corridor_id", "rank", "score"]],
+                                  second[["corridor_id", "rank", "score"]])
+    assert not (again / "candidates.gpkg").exists()
+
+
+def test_the_command_takes_auto_and_refuses_a_bad_count(tmp_path, capsys):
+    from trophoscape.cli import main
+
+    scenario = two_groups(tmp_path)
+    code = main(["corridors", str(scenario), "--candidates", "auto", "--budget", "50",
+                 "--out", str(tmp_path / "o"), "--max-candidates", "0", "--quiet"])
+    assert code == 2
+    err = capsys.readouterr().err
+    assert "--max-candidates" in err and "at least 1" in err and "\n" == err[-1:]
+    assert not (tmp_path / "o").exists()
+    code = main(["corridors", str(scenario), "--candidates", "auto", "--budget", "50",
+                 "--out", str(tmp_path / "o"), "--workers", "1", "--no-maps", "--quiet",
+                 "--remove-links", "none", "--remove-patches", "none"])
+    assert code == 0 and (tmp_path / "o" / "candidates.gpkg").is_file()

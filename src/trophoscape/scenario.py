@@ -50,7 +50,8 @@ class Key:
 LARGEST = 1e12
 #: The scenario keys that name input files, and what each file is (for messages).
 INPUT_FILES = {"patches.path": "patch file", "dispersal.corridors": "corridor file",
-               "dispersal.links": "links table", "dispersal.resistance": "resistance raster"}
+               "dispersal.links": "links table", "dispersal.resistance": "resistance raster",
+               "planning.cost_raster": "cost raster"}
 #: A scenario is a short text: larger files are refused before they are read.
 MAX_SCENARIO_BYTES = 1 << 20
 def _number(lo=None, hi=None, *, lo_open=False, integer=False):
@@ -222,6 +223,16 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "atol": Key(1e-8, _pos),
         "seed": Key(1, _number(0, integer=True)),
         "replicates": Key(1, _number(1, integer=True)),
+    },
+    "planning": {
+        "cost_per_km": Key(1.0, _pos, doc="cost of one km of a candidate corridor that "
+                                         "trophoscape draws itself"),
+        "cost_raster": Key(None, _text(optional=True),
+                           doc="GeoTIFF of the cost of one km of corridor in each cell "
+                               "(instead of cost_per_km)"),
+        "search_km": Key(None, _optional(_pos),
+                         doc="how far apart two patches may be for a candidate between "
+                             "them (default twice max_distance_km)"),
     },
     "analysis": {
         "stability": Key(True, _flag, doc="equilibrium and leading eigenvalues of the network"),

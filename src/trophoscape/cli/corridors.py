@@ -49,10 +49,15 @@ def add_parser(subparsers) -> None:
                     f"{EXHAUSTIVE_LIMIT} candidates).",
         epilog=EPILOG_CORRIDORS, formatter_class=fmt)
     p.add_argument("scenario", type=Path, help="scenario file (TOML)")
-    p.add_argument("--candidates", type=Path, required=True,
+    p.add_argument("--candidates", required=True, metavar="FILE|auto",
                    help="GeoJSON / GeoPackage / Shapefile of candidate lines (or thin "
                         "polygons) with a 'cost' attribute; optional corridor_id, quality, "
-                        "survival")
+                        "resistance, survival. 'auto': let trophoscape find them (least-cost "
+                        "paths where the network is cut or thin; written to candidates.gpkg; "
+                        "a file named auto is ./auto)")
+    p.add_argument("--max-candidates", type=int, default=20, metavar="N",
+                   help="with --candidates auto: at most N candidates, shortest first "
+                        "(default 20)")
     p.add_argument("--layer", default=None, help="layer of the candidates file")
     p.add_argument("--budget", type=float, required=True,
                    help="total cost the chosen set may reach (same unit as 'cost')")
@@ -102,7 +107,9 @@ def add_parser(subparsers) -> None:
 def run_corridors(args) -> int:
     """The ``corridors`` command; returns the exit code."""
     links = {"all": "all", "none": None}.get(args.remove_links, args.remove_links)
-    plan = corridors_to_folder(args.scenario, args.candidates, args.out, budget=args.budget,
+    candidates = args.candidates if args.candidates == "auto" else Path(args.candidates)
+    plan = corridors_to_folder(args.scenario, candidates, args.out, budget=args.budget,
+                               max_candidates=args.max_candidates,
                                weights=args.weights, layer=args.layer, links=links,
                                patches=args.remove_patches == "all", screen=args.screen,
                                exhaustive_limit=args.exhaustive_limit, workers=args.workers,

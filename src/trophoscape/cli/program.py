@@ -31,7 +31,7 @@ FLAGS = {
     "maps": "--no-maps", "plots": "--no-plots", "geojson": "--geojson",
     "variants_or_vary_specs": "--vary", "table": "--table", "replicates": "--replicates",
     "workers": "--workers", "scheduler": "--scheduler", "dask_local": "--dask-local",
-    "candidates": "--candidates", "layer": "--layer", "budget": "--budget",
+    "candidates": "--candidates", "max_candidates": "--max-candidates", "layer": "--layer", "budget": "--budget",
     "weights": "--weights", "screen": "--screen", "exhaustive_limit": "--exhaustive-limit",
     "links": "--remove-links", "columns": "--columns",
     "runs": "--no-runs", "origins": "--origins", "patches": "--patches", "name": "--name",

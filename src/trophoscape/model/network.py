@@ -265,6 +265,11 @@ class Network:
             "origin": names[mask],
         })
 
+    def pair_table(self) -> pd.DataFrame:
+        """One row per linked pair, sorted by :meth:`pair_codes`: positions ``a < b``, the
+        shortest ``distance_km`` and ``effective_distance_km`` of its routes, ``origin``."""
+        return self._edge_table(directed=False)
+
     def to_networkx(self) -> nx.Graph:
         """The network as a networkx graph.
 

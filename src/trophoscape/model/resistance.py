@@ -245,6 +245,51 @@ class ResistanceSurface:
         return out
 
 
+    def least_cost_path(self, landscape, a: int, b: int) -> np.ndarray:
+        """The cells of the least-cost path from patch ``a``'s edge to patch ``b``, shape
+        (k, 2) rows and columns, ``a``'s last cell first and ``b``'s first cell last.
+
+        Searched on a window around both patches wide enough for any path cheaper than the
+        straight one between them (the same costs as :meth:`pairs_within`)."""
+        import shapely
+        from scipy import ndimage
+        from skimage.graph import MCP_Geometric
+
+        labels = self.patch_cells(landscape)
+        boxes = ndimage.find_objects(labels, max_label=landscape.n_patches)
+        # the straight line's cost bounds the least cost, and so how far a path may stray
+        line = shapely.shortest_line(landscape.geometries[a], landscape.geometries[b])
+        h, w = self.cell_km
+        xy = shapely.get_coordinates(shapely.segmentize(line, 250.0 * min(h, w)))
+        seg = np.hypot(*(xy[1:] - xy[:-1]).T) / 1000.0
+        mid = 0.5 * (xy[1:] + xy[:-1])
+        r, c = self.rowcol(mid[:, 0], mid[:, 1])
+        bound = float(np.sum(self.values[r, c] * seg)) + 2 * max(h, w) * float(
+            np.nanmax(self.values))
+        reach = self._reach(bound) if np.isfinite(bound) else self.shape
+        rows, cols = self.shape
+        r0 = max(min(boxes[a][0].start, boxes[b][0].start) - reach[0], 0)
+        r1 = min(max(boxes[a][0].stop, boxes[b][0].stop) + reach[0], rows)
+        c0 = max(min(boxes[a][1].start, boxes[b][1].start) - reach[1], 0)
+        c1 = min(max(boxes[a][1].stop, boxes[b][1].stop) + reach[1], cols)
+        lab = labels[r0:r1, c0:c1]
+        cost = self.values[r0:r1, c0:c1].astype(np.float64)
+        cost[~np.isfinite(cost)] = -1.0
+        own = lab == a + 1
+        cost[own] = 0.0
+        mcp = MCP_Geometric(cost, sampling=(h, w))
+        cum, _ = mcp.find_costs(np.argwhere(_edge_cells(own)))
+        target = (lab == b + 1) & np.isfinite(cum)
+        if not target.any():
+            raise InputError(f"no path over the raster joins patches {landscape.ids[a]!r} "
+                             f"and {landscape.ids[b]!r} (cells without a value between "
+                             "them)", file=self.path, field="dispersal.resistance")
+        score = np.where(target, cum - 0.5 * cost * min(h, w), np.inf)
+        end = np.unravel_index(int(np.argmin(score)), score.shape)
+        path = np.asarray(mcp.traceback(end), dtype=np.int64)
+        return path + np.array([r0, c0])
+
+
 def _edge_cells(mask: np.ndarray) -> np.ndarray:
     """Cells of ``mask`` with a neighbour (8-connected) outside it, or on the array's edge."""
     from scipy import ndimage

@@ -23,10 +23,14 @@ from .html import CAUTION
 
 __all__ = ["corridors_to_folder", "compare_to_folder", "write_corridors", "write_comparison"]
 
+#: The columns of ``candidates.gpkg`` (candidates found with ``--candidates auto``).
+FOUND_COLUMNS = ("corridor_id", "cost", "source", "target", "length_km", "straight_km",
+                 "linked_as_km", "reason")
+
 def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, layer=None,
                         links="all", patches=True, screen=None, exhaustive_limit=12,
                         workers=None, maps: bool = True, force: bool = False,
-                        progress: bool = False):
+                        progress: bool = False, max_candidates: int = 20):
     """Rank candidate corridors, choose a set within the budget and write the folder: what
     ``trophoscape corridors`` does.
 
@@ -34,8 +38,10 @@ def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, laye
     ----------
     scenario : path or Study
         The scenario file (or a study built from it).
-    candidates : path
-        The candidate corridors (lines with ``cost``; see the README).
+    candidates : path or "auto"
+        The candidate corridors (lines with ``cost``; see the README), or "auto": found by
+        :func:`trophoscape.workflows.candidates.find_candidates` (at most
+        ``max_candidates``) and written to ``candidates.gpkg`` in ``out``.
     out : path
         The output folder. While the runs go on it holds ``corridors.partial.sqlite``: running
         the same call again reads those runs back instead of running them again.
@@ -69,12 +75,21 @@ def corridors_to_folder(scenario, candidates, out, *, budget, weights=None, laye
                                  exhaustive_limit=exhaustive_limit, workers=workers,
                                  weights=weights)
     study = scenario if isinstance(scenario, Study) else load_study(scenario)
-    candidates_file = Path(candidates)
-    candidates = read_candidates(
-        candidates_file, study.landscape, layer=layer,
-        snap_km=study.scenario["dispersal.corridor_snap_km"],
-        corridor_resistance=study.scenario["dispersal.corridor_resistance"])
-    inputs = [*input_files(study.scenario), candidates_file]
+    snap = {"snap_km": study.scenario["dispersal.corridor_snap_km"],
+            "corridor_resistance": study.scenario["dispersal.corridor_resistance"]}
+    if isinstance(candidates, str) and candidates == "auto":
+        from ..workflows.candidates import find_candidates
+        from ..workflows.planning import snap_candidates
+
+        found = find_candidates(study, max_candidates=max_candidates)
+        found.attrs["has_ids"] = True
+        found.attrs["found"] = True
+        candidates = snap_candidates(found, study.landscape, **snap)
+        inputs = [*input_files(study.scenario)]
+    else:
+        candidates_file = Path(candidates)
+        candidates = read_candidates(candidates_file, study.landscape, layer=layer, **snap)
+        inputs = [*input_files(study.scenario), candidates_file]
     links_file = None
     if links is not None and links != "all":
         links_file = Path(links)
@@ -196,6 +211,12 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
         write_json(stage / "corridors.json", summary)
         frame.to_file(stage / "corridors.gpkg", layer="candidates", driver="GPKG",
                       engine="pyogrio")
+        if cand.frame is not None and cand.frame.attrs.get("found"):
+            # the candidates trophoscape found, as a file to edit and give back
+            found = cand.frame[[c for c in FOUND_COLUMNS if c in cand.frame.columns]]
+            geopandas.GeoDataFrame(found, geometry=cand.frame.geometry.to_numpy(),
+                                   crs=cand.frame.crs).to_file(
+                stage / "candidates.gpkg", layer="candidates", driver="GPKG", engine="pyogrio")
         link_rows = critical[critical["kind"] == "link"]
         if len(link_rows):
             key = links_frame["source"] + "–" + links_frame["target"]

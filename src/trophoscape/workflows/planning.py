@@ -160,7 +160,9 @@ def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None,
     path : str or path
         See :func:`trophoscape.model.landscape.read_candidates` (LineStrings or thin Polygons,
         ``cost`` required, ``corridor_id``, ``quality``, ``survival`` optional).
-    landscape : Landscape
+    landscape : Landscape or Study
+        With a study, its landscape, and ``snap_km`` and ``corridor_resistance`` from its
+        scenario (the arguments are then not needed).
     snap_km : float
         How far an end may lie from its patch (the scenario's ``corridor_snap_km``).
     layer : str or int, optional
@@ -179,6 +181,10 @@ def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None,
     """
     from ..model.landscape import read_candidates as read_file
 
+    if hasattr(landscape, "scenario") and hasattr(landscape, "landscape"):  # a Study
+        snap_km = landscape.scenario["dispersal.corridor_snap_km"]
+        corridor_resistance = landscape.scenario["dispersal.corridor_resistance"]
+        landscape = landscape.landscape
     frame = read_file(path, crs=landscape.crs, layer=layer)
     return snap_candidates(frame, landscape, snap_km=snap_km, path=path,
                            corridor_resistance=corridor_resistance)
