@@ -522,3 +522,70 @@ def test_the_command_takes_auto_and_refuses_a_bad_count(tmp_path, capsys):
                  "--out", str(tmp_path / "o"), "--workers", "1", "--no-maps", "--quiet",
                  "--remove-links", "none", "--remove-patches", "none"])
     assert code == 0 and (tmp_path / "o" / "candidates.gpkg").is_file()
+
+
+def test_least_cost_distances_converge_as_cells_shrink(tmp_path):
+    # consistency test across a numerical setting: the wall-and-gap landscape drawn at 100,
+    # 50 and 25 m cells gives the same detour within the grid's own error (a cell or two
+    # at each end, and the octile bound on the legs)
+    patches = write_patches(tmp_path, [("A", 0, 0, 1, 1), ("B", 4, 0, 5, 1)])
+    land = read_patches(patches, id_field="patch_id")
+    got = {}
+    for cell in (100.0, 50.0, 25.0):
+        n_x, n_y = int(7000 / cell), int(6000 / cell)
+        values = np.ones((n_y, n_x))
+        col = int(3500 / cell)
+        values[:, col:col + max(1, int(100 / cell))] = 1000.0
+        gap = int(1500 / cell)
+        values[gap - int(100 / cell):gap + int(100 / cell), col:col + max(1, int(100 / cell))] = 1
+        raster = write_raster(tmp_path, values, cell_m=cell, left_km=-1.0, top_km=4.0,
+                              name=f"r{int(cell)}.tif")
+        i, j, km = surface_for(tmp_path, land, raster).pairs_within(land, 12.0)
+        got[cell] = float(km[(i == 0) & (j == 1)][0])
+    assert got[50.0] == pytest.approx(got[25.0], rel=0.03)
+    assert got[100.0] == pytest.approx(got[25.0], rel=0.06)
+
+
+def test_a_candidate_is_burnt_into_the_ground_while_it_is_evaluated(tmp_path):
+    # A wall (1000 per km) with no gap parts the west patches A, B from the east ones C, D.
+    # Candidate K joins A and C across it at 0.2 per km. Burnt into the ground, it links B
+    # and D too: 0.8 km down from B's edge to K, 3 km along it at 0.2, 0.8 km up to D, about
+    # 2.2 km (Euclidean geometry of the construction), within max_distance_km = 3.
+    from trophoscape.workflows import planning
+    from trophoscape.workflows.study import load_study
+
+    write_patches(tmp_path, [("A", 0, 0, 1, 1), ("B", 0, 1.3, 1, 2.3),
+                             ("C", 4, 0, 5, 1), ("D", 4, 1.3, 5, 2.3)])
+    values = np.ones((140, 160))  # x -1..7 km, y -2..5 km at 50 m
+    values[:, 70:72] = 1000.0      # the wall at x = 2.5 km
+    write_raster(tmp_path, values, cell_m=50.0, left_km=-1.0, top_km=5.0)
+    line = shapely.LineString([(X0 + 1000, Y0 + 500), (X0 + 4000, Y0 + 500)])
+    geopandas.GeoDataFrame({"corridor_id": ["K"], "cost": [1.0]}, geometry=[line],
+                           crs=32632).to_file(tmp_path / "k.gpkg", driver="GPKG",
+                                              engine="pyogrio")
+    (tmp_path / "s.toml").write_text(
+        '[patches]\npath = "patches.gpkg"\nid_field = "patch_id"\n'
+        '[dispersal]\nmax_distance_km = 3.0\nresistance = "resistance.tif"\n',
+        encoding="utf-8")
+    study = load_study(tmp_path / "s.toml")
+    candidates = planning.read_candidates(tmp_path / "k.gpkg", study)
+    burnt = planning.relink_candidates(candidates, study)
+    assert set(burnt.relink["affected_patch"].tolist()) == {0, 1, 2, 3}
+    ids = list(study.ids)
+
+    def kernel_links(net):
+        frame = net.links_frame(study.landscape)
+        frame = frame[frame["origin"].str.contains("kernel")]
+        return dict(zip(zip(frame["source"], frame["target"]), frame["effective_distance_km"]))
+
+    before = kernel_links(study.network)
+    assert ("B", "D") not in before and ("A", "C") not in before
+    with_k = planning._variant_network(study.network, burnt.arrays(),
+                                       planning.Variant.of(add=[0]))
+    after = kernel_links(with_k)
+    assert after[("B", "D")] == pytest.approx(2.2, rel=0.1)
+    assert after[("A", "B")] == pytest.approx(before[("A", "B")], rel=1e-6)  # untouched
+    # the candidate's own link is there as before, as a corridor
+    frame = with_k.links_frame(study.landscape).set_index(["source", "target"])
+    assert "corridor" in frame.loc[("A", "C"), "origin"]
+    assert ids == ["A", "B", "C", "D"]

@@ -411,7 +411,7 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
     if kernel != "none":
         if resistance is not None:
             i, j, e = resistance.pairs_within(landscape, max_distance_km)
-            d = _pair_distance_km(landscape, i, j, distance)
+            d = pair_distance_km(landscape, i, j, distance)
         else:
             i, j, d = _kernel_pairs(landscape, max_distance_km / matrix_resistance * 1000.0,
                                     distance)
@@ -592,7 +592,9 @@ def _kernel_pairs(landscape: Landscape, max_m: float, distance: str):
     return i[keep], j[keep], d[keep] / 1000.0
 
 
-def _pair_distance_km(landscape: Landscape, i, j, distance: str) -> np.ndarray:
+def pair_distance_km(landscape: Landscape, i, j, distance: str) -> np.ndarray:
+    """Straight distance (km) of pairs of patches: ``"boundary"`` (edge to edge) or
+    ``"centroid"``."""
     if distance == "centroid":
         return np.hypot(*(landscape.centroids[i] - landscape.centroids[j]).T) / 1000.0
     return shapely.distance(landscape.geometries[i], landscape.geometries[j]) / 1000.0
@@ -698,7 +700,7 @@ def _table_arcs(landscape: Landscape, path: Path, distance: str):
                          "give each link once", file=path, feature=again, field="target")
     weight = table["weight"].to_numpy(dtype=np.float64)[rows]
     survival = table["survival"].to_numpy(dtype=np.float64)[rows]
-    return (src, dst, _pair_distance_km(landscape, src, dst, distance), weight, survival,
+    return (src, dst, pair_distance_km(landscape, src, dst, distance), weight, survival,
             _CODE["table"])
 
 
@@ -794,4 +796,4 @@ def without(network: Network, *, patches=(), links=()) -> Network:
     return network.select(keep)
 
 
-__all__ += ["with_links", "without"]
+__all__ += ["with_links", "without", "pair_distance_km"]

@@ -202,24 +202,34 @@ class ResistanceSurface:
         first = np.r_[True, found[1:] != found[:-1]]
         return found[first].astype(np.int64), np.maximum(dist[first], 0.0)
 
-    def pairs_within(self, landscape, max_km: float, *, progress: bool = False):
-        """Pairs ``i < j`` whose least-cost distance is at most ``max_km``, and that
-        distance: arrays ``(i, j, km)`` sorted by (i, j)."""
+    def reach_km(self, max_km: float) -> float:
+        """How far (straight, km) a path of cost ``max_km`` can go at most."""
+        finite = self.values[np.isfinite(self.values)]
+        return max_km / (float(finite.min()) if finite.size else 1.0)
+
+    def pairs_from(self, landscape, patches, max_km: float):
+        """The searches from ``patches`` alone: arrays ``(source, target, km)`` of every
+        patch each reaches within ``max_km`` (one direction, unsorted)."""
         from scipy import ndimage
 
         labels = self.patch_cells(landscape)
         boxes = ndimage.find_objects(labels, max_label=landscape.n_patches)
         reach = self._reach(max_km)
         src, dst, km = [], [], []
-        for p in range(landscape.n_patches):  # one search per patch (module notes)
+        for p in np.asarray(patches, dtype=np.int64).tolist():  # one search per patch
             found, dist = self._search(labels, boxes, p, reach, max_km)
             src.append(np.full(found.size, p, dtype=np.int64))
             dst.append(found)
             km.append(dist)
-        return _symmetric(np.concatenate(src) if src else np.empty(0, np.int64),
-                          np.concatenate(dst) if dst else np.empty(0, np.int64),
-                          np.concatenate(km) if km else np.empty(0),
-                          landscape.n_patches)
+        return (np.concatenate(src) if src else np.empty(0, np.int64),
+                np.concatenate(dst) if dst else np.empty(0, np.int64),
+                np.concatenate(km) if km else np.empty(0))
+
+    def pairs_within(self, landscape, max_km: float):
+        """Pairs ``i < j`` whose least-cost distance is at most ``max_km``, and that
+        distance: arrays ``(i, j, km)`` sorted by (i, j)."""
+        src, dst, km = self.pairs_from(landscape, np.arange(landscape.n_patches), max_km)
+        return _symmetric(src, dst, km, landscape.n_patches)
 
     def between(self, landscape, source, target) -> np.ndarray:
         """Least-cost distance (km) of given pairs (say the rows of a links table): from

@@ -48,7 +48,8 @@ import shapely
 
 from ..errors import InputError, RunError, param
 from ..model.network import (CORRIDOR_RESISTANCE, KERNELS, Network, corridor_resistances,
-                             movement_operator, snap_line_ends, with_links, without)
+                             movement_operator, pair_distance_km, snap_line_ends, with_links,
+                             without)
 from ..model.system import SPECIES, CoupledSystem
 from ..analysis.capacity import metapopulation_capacity
 from ..io.ledger import Ledger
@@ -129,6 +130,11 @@ class Candidates:
         The lines with every attribute of the file, for maps and layers (not sent to
         worker processes).
     path : pathlib.Path or None
+    relink : dict or None
+        With a resistance raster (:func:`relink_candidates`): for each candidate burnt
+        into the ground alone, the patches within its reach (``affected_owner``,
+        ``affected_patch``) and their kernel links searched again (``relink_owner``,
+        ``relink_i``, ``relink_j``, ``relink_d`` straight and ``relink_e`` effective km).
     """
 
     ids: np.ndarray
@@ -140,6 +146,7 @@ class Candidates:
     cost: np.ndarray
     frame: object = field(default=None, repr=False)
     path: Path | None = None
+    relink: dict | None = field(default=None, repr=False)
 
     @property
     def n(self) -> int:
@@ -147,8 +154,10 @@ class Candidates:
 
     def arrays(self) -> dict:
         """The numeric arrays alone (what a worker needs), as a picklable dict."""
-        return {k: np.asarray(getattr(self, k)) for k in
-                ("ids", "source", "target", "length_km", "effective_km", "survival", "cost")}
+        out = {k: np.asarray(getattr(self, k)) for k in
+               ("ids", "source", "target", "length_km", "effective_km", "survival", "cost")}
+        out.update({k: np.asarray(v) for k, v in (self.relink or {}).items()})
+        return out
 
 
 def read_candidates(path, landscape, *, snap_km: float = 0.1, layer=None,
@@ -304,6 +313,8 @@ class Variant:
 
 def _variant_network(network: Network, cand: dict, variant: Variant) -> Network:
     net = network
+    if variant.add and "relink_owner" in cand:
+        net = _relinked(net, cand, np.asarray(variant.add, dtype=np.int64))
     if variant.add:
         k = np.asarray(variant.add, dtype=np.int64)
         net = with_links(net, cand["source"][k], cand["target"][k], cand["length_km"][k],
@@ -312,6 +323,65 @@ def _variant_network(network: Network, cand: dict, variant: Variant) -> Network:
     if variant.cut or variant.lost:
         net = without(net, patches=variant.lost, links=variant.cut)
     return net
+
+
+def _relinked(network: Network, cand: dict, added) -> Network:
+    """The kernel links of the patches within reach of the added candidates, as searched
+    again with the candidates burnt into the ground (:func:`relink_candidates`); a pair
+    reached from several candidates' searches keeps its shortest distance (a path using two
+    new corridors at once is not looked for)."""
+    affected = np.unique(cand["affected_patch"][np.isin(cand["affected_owner"], added)])
+    if not affected.size:
+        return network
+    touching = np.isin(network.source, affected) | np.isin(network.target, affected)
+    net = network.select(~((network.origin == "kernel") & touching))
+    sel = np.isin(cand["relink_owner"], added)
+    i, j = cand["relink_i"][sel], cand["relink_j"][sel]
+    d, e = cand["relink_d"][sel], cand["relink_e"][sel]
+    code = network.pair_codes(i, j)
+    order = np.lexsort((e, code))
+    first = np.r_[True, code[order][1:] != code[order][:-1]] if code.size else code.astype(bool)
+    k = order[first]
+    return with_links(net, np.minimum(i, j)[k], np.maximum(i, j)[k], d[k],
+                      effective_distance_km=e[k], origin="kernel")
+
+
+def relink_candidates(candidates: Candidates, study) -> Candidates:
+    """With a resistance raster, each candidate burnt into the ground while it is evaluated:
+    the patches whose searches could reach it within ``max_distance_km`` are searched again
+    on the ground with the candidate in it (at its resistance), so that pairs whose
+    least-cost path now runs along it are linked as such. Without a raster, or without
+    kernel links, the candidates are returned as they are."""
+    from .candidates import _surface
+
+    if (not study.scenario["dispersal.resistance"] or study.network.kernel == "none"
+            or candidates.n == 0 or candidates.frame is None):
+        return candidates
+    surface = _surface(study)
+    land = study.landscape
+    max_km = study.network.max_distance_km
+    lines = candidates.frame.geometry.to_numpy()
+    resistance = corridor_resistances(candidates.frame,
+                                      study.scenario["dispersal.corridor_resistance"])
+    tree = shapely.STRtree(land.geometries)
+    reach_m = surface.reach_km(max_km) * 1000.0
+    parts = {k: [] for k in ("affected_owner", "affected_patch", "relink_owner", "relink_i",
+                             "relink_j", "relink_e")}
+    for c in range(candidates.n):  # a loop over candidates, each a few searches
+        near = np.unique(tree.query(lines[c], predicate="dwithin", distance=reach_m))
+        src, dst, km = surface.burned([lines[c]], resistance[c]).pairs_from(land, near, max_km)
+        parts["affected_owner"].append(np.full(near.size, c))
+        parts["affected_patch"].append(near)
+        parts["relink_owner"].append(np.full(src.size, c))
+        parts["relink_i"].append(src)
+        parts["relink_j"].append(dst)
+        parts["relink_e"].append(km)
+    relink = {k: np.concatenate(v) for k, v in parts.items()}
+    for k in ("affected_owner", "affected_patch", "relink_owner", "relink_i", "relink_j"):
+        relink[k] = relink[k].astype(np.int64)
+    relink["relink_d"] = pair_distance_km(land, relink["relink_i"], relink["relink_j"],
+                                          study.scenario["dispersal.distance"])
+    return replace(candidates, relink=relink)
 
 
 def variant_study(study, candidates, variant: Variant):
@@ -458,6 +528,9 @@ class Planner:
         self.workers = workers
         self.progress = progress
         self.source = ScenarioPayload.of(study.scenario)
+        if candidates.relink is None:
+            candidates = relink_candidates(candidates, study)
+            self.candidates = candidates
         self._arrays = candidates.arrays()
         self.results: dict = {}
         self.failures: dict = {}
