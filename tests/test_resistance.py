@@ -589,3 +589,24 @@ def test_a_candidate_is_burnt_into_the_ground_while_it_is_evaluated(tmp_path):
     frame = with_k.links_frame(study.landscape).set_index(["source", "target"])
     assert "corridor" in frame.loc[("A", "C"), "origin"]
     assert ids == ["A", "B", "C", "D"]
+
+
+def test_least_cost_links_do_not_depend_on_the_number_of_processes(tmp_path, monkeypatch):
+    # consistency test: the searches shared out over two forked processes give what one
+    # process gives
+    from trophoscape.model import resistance
+
+    rng = np.random.default_rng(5)
+    corners = rng.uniform(0, 6, size=(15, 2))
+    land = read_patches(write_patches(tmp_path, [(f"Q{k}", x, y, x + 0.4, y + 0.4)
+                                                 for k, (x, y) in enumerate(corners)]),
+                        id_field="patch_id")
+    raster = write_raster(tmp_path, rng.uniform(0.5, 4.0, size=(180, 180)), cell_m=40.0,
+                          left_km=-0.6, top_km=6.6)
+    surface = surface_for(tmp_path, land, raster)
+    monkeypatch.setattr(resistance, "PARALLEL_MIN_PATCHES", 1)
+    one = surface.pairs_from(land, np.arange(land.n_patches), 3.0, workers=1)
+    two = surface.pairs_from(land, np.arange(land.n_patches), 3.0, workers=2)
+    assert one[0].size > 10
+    for a, b in zip(one, two):
+        np.testing.assert_array_equal(a, b)

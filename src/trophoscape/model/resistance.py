@@ -166,18 +166,22 @@ class ResistanceSurface:
     def _reach(self, max_km: float) -> tuple[int, int]:
         """Cells a path of cost ``max_km`` can go at most, along rows and along columns."""
         finite = self.values[np.isfinite(self.values)]
-        lowest = float(finite.min()) if finite.size else 1.0
+        value = float(finite.min()) if finite.size else 1.0
         h, w = self.cell_km
-        return (int(math.ceil(max_km / (lowest * h))) + 2,
-                int(math.ceil(max_km / (lowest * w))) + 2)
+        return (int(math.ceil(max_km / (value * h))) + 2,
+                int(math.ceil(max_km / (value * w))) + 2)
 
     def _search(self, labels, boxes, p: int, reach, max_km):
         """Least-cost distance (km) from patch ``p`` to every patch within ``max_km``:
-        (positions, distances)."""
-        from skimage.graph import MCP_Geometric
+        (positions, distances).
 
+        The window around the patch reaches ``reach`` cells (:meth:`_reach`) on each side,
+        which no path within ``max_km`` can leave; the search itself stops once the cheapest
+        cell left costs more than ``max_km`` (:class:`_LimitedSearch`), so its time follows
+        the area within reach, not the window's."""
         box = boxes[p]
         rows, cols = self.shape
+        h, w = self.cell_km
         r0, r1 = max(box[0].start - reach[0], 0), min(box[0].stop + reach[0], rows)
         c0, c1 = max(box[1].start - reach[1], 0), min(box[1].stop + reach[1], cols)
         lab = labels[r0:r1, c0:c1]
@@ -186,9 +190,9 @@ class ResistanceSurface:
         own = lab == p + 1
         cost[own] = 0.0
         starts = np.argwhere(_edge_cells(own))
-        h, w = self.cell_km
-        mcp = MCP_Geometric(cost, sampling=(h, w))
-        cum, _ = mcp.find_costs(starts)
+        # a target's cell is entered at up to max_km plus half a step of it
+        limit = max_km + 0.5 * float(np.max(cost[lab > 0], initial=0.0)) * min(h, w)
+        cum, _ = _LimitedSearch(cost, limit, sampling=(h, w)).find_costs(starts)
         # end on the boundary: less half of the (orthogonal) step into the cell entered
         reached = (lab > 0) & ~own & np.isfinite(cum)
         found = lab[reached] - 1
@@ -207,23 +211,35 @@ class ResistanceSurface:
         finite = self.values[np.isfinite(self.values)]
         return max_km / (float(finite.min()) if finite.size else 1.0)
 
-    def pairs_from(self, landscape, patches, max_km: float):
+    def pairs_from(self, landscape, patches, max_km: float, *, workers=None):
         """The searches from ``patches`` alone: arrays ``(source, target, km)`` of every
-        patch each reaches within ``max_km`` (one direction, unsorted)."""
+        patch each reaches within ``max_km`` (one direction, in the order of ``patches``).
+
+        From :data:`PARALLEL_MIN_PATCHES` searches on, they are shared out over ``workers``
+        processes (default: the cores this process may use), forked from this one so that
+        the raster is not copied; the result does not depend on how many."""
         from scipy import ndimage
 
+        patches = np.asarray(patches, dtype=np.int64)
         labels = self.patch_cells(landscape)
         boxes = ndimage.find_objects(labels, max_label=landscape.n_patches)
         reach = self._reach(max_km)
-        src, dst, km = [], [], []
-        for p in np.asarray(patches, dtype=np.int64).tolist():  # one search per patch
-            found, dist = self._search(labels, boxes, p, reach, max_km)
-            src.append(np.full(found.size, p, dtype=np.int64))
-            dst.append(found)
-            km.append(dist)
-        return (np.concatenate(src) if src else np.empty(0, np.int64),
-                np.concatenate(dst) if dst else np.empty(0, np.int64),
-                np.concatenate(km) if km else np.empty(0))
+        job = (self, labels, boxes, reach, max_km)
+        n_workers = _workers(workers, patches.size)
+        if n_workers > 1:
+            import multiprocessing as mp
+
+            global _JOB
+            chunks = np.array_split(patches, 8 * n_workers)
+            _JOB = job
+            try:
+                with mp.get_context("fork").Pool(n_workers) as pool:
+                    parts = pool.map(_search_chunk, chunks)
+            finally:
+                _JOB = None
+        else:
+            parts = [_search_chunk(patches, job)]
+        return tuple(np.concatenate([part[k] for part in parts]) for k in range(3))
 
     def pairs_within(self, landscape, max_km: float):
         """Pairs ``i < j`` whose least-cost distance is at most ``max_km``, and that
@@ -298,6 +314,68 @@ class ResistanceSurface:
         end = np.unravel_index(int(np.argmin(score)), score.shape)
         path = np.asarray(mcp.traceback(end), dtype=np.int64)
         return path + np.array([r0, c0])
+
+
+#: Searches from at least this many patches are shared out over processes.
+PARALLEL_MIN_PATCHES = 2_000
+#: The searches' inputs, set while a pool of forked processes works on them.
+_JOB = None
+
+
+def _workers(workers, n: int) -> int:
+    """How many processes to search ``n`` patches with (1 where fork is not available)."""
+    import multiprocessing as mp
+
+    if n < PARALLEL_MIN_PATCHES or "fork" not in mp.get_all_start_methods():
+        return 1
+    if workers is None:
+        try:
+            workers = len(os.sched_getaffinity(0))
+        except AttributeError:  # not on Linux
+            workers = os.cpu_count() or 1
+    return max(1, min(int(workers), n))
+
+
+def _search_chunk(patches, job=None):
+    """The searches from some patches (in a forked process, with the inputs of ``_JOB``)."""
+    surface, labels, boxes, reach, max_km = _JOB if job is None else job
+    src, dst, km = [], [], []
+    for p in np.asarray(patches, dtype=np.int64).tolist():  # one search per patch
+        found, dist = surface._search(labels, boxes, p, reach, max_km)
+        src.append(np.full(found.size, p, dtype=np.int64))
+        dst.append(found)
+        km.append(dist)
+    return (np.concatenate(src) if src else np.empty(0, np.int64),
+            np.concatenate(dst) if dst else np.empty(0, np.int64),
+            np.concatenate(km) if km else np.empty(0))
+
+
+def _limited_search_class():
+    from skimage.graph import MCP_Geometric
+
+    class LimitedSearch(MCP_Geometric):
+        """scikit-image's ``MCP_Geometric`` that stops once the cheapest cell on its heap
+        costs more than ``limit`` (its documented ``goal_reached`` hook): every cell within
+        ``limit`` is then final, and cells beyond it stay unreached (inf)."""
+
+        def __init__(self, costs, limit, *, sampling):
+            super().__init__(costs, sampling=sampling)
+            self.limit = float(limit)
+
+        def goal_reached(self, index, cumcost):
+            return 2 if cumcost > self.limit else 0
+
+    return LimitedSearch
+
+
+def _LimitedSearch(costs, limit, *, sampling):
+    global _LIMITED
+    if _LIMITED is None:
+        _LIMITED = _limited_search_class()
+    return _LIMITED(costs, limit, sampling=sampling)
+
+
+_LIMITED = None
 
 
 def _edge_cells(mask: np.ndarray) -> np.ndarray:
