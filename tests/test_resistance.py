@@ -433,11 +433,11 @@ def test_a_scenario_with_a_habitat_raster_builds_its_network(tmp_path):
 # ------------------------------------------------------------------ candidates found
 
 
-def two_groups(folder):
+def two_groups(folder, reverse=False):
     """Two groups of two squares, 3 km apart (beyond max_distance_km = 2), and a raster of
     open ground with a wall at x = 2.5 km open only at y = 4.5 km (north of every patch)."""
-    patches = write_patches(folder, [("A", 0, 0, 1, 1), ("B", 0, 1.5, 1, 2.5),
-                                     ("C", 4, 0, 5, 1), ("D", 4, 1.5, 5, 2.5)])
+    boxes = [("A", 0, 0, 1, 1), ("B", 0, 1.5, 1, 2.5), ("C", 4, 0, 5, 1), ("D", 4, 1.5, 5, 2.5)]
+    write_patches(folder, boxes[::-1] if reverse else boxes)
     cell = 50.0
     values = np.ones((160, 160))  # x -1..7 km, y -2..6 km
     col = int((2.5 + 1.0) * 1000 / cell)
@@ -610,3 +610,18 @@ def test_least_cost_links_do_not_depend_on_the_number_of_processes(tmp_path, mon
     assert one[0].size > 10
     for a, b in zip(one, two):
         np.testing.assert_array_equal(a, b)
+
+
+def test_candidates_found_do_not_depend_on_the_feature_order(tmp_path):
+    # consistency test: the same squares in reverse feature order give the same candidates
+    from trophoscape.workflows.candidates import find_candidates
+    from trophoscape.workflows.study import load_study
+
+    found = []
+    for reverse in (False, True):
+        folder = tmp_path / str(reverse)
+        folder.mkdir()
+        found.append(find_candidates(load_study(two_groups(folder, reverse)), max_candidates=5))
+    columns = ["corridor_id", "source", "target", "straight_km", "reason"]
+    assert found[0][columns].equals(found[1][columns])
+    np.testing.assert_allclose(found[0]["length_km"], found[1]["length_km"], rtol=1e-9)

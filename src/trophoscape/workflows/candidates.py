@@ -81,8 +81,12 @@ def find_candidates(study, *, max_candidates: int = 20):
     along = _network_distance(net, i, j, limit=WEAK_RATIO * search_km)
     place = along >= WEAK_RATIO * np.maximum(straight, 1e-3)
     # shortest first; each patch in one candidate at most, each two groups joined once
+    # ties broken by the patches' ids, so that the feature order does not matter
+    ids = land.ids.astype(str)
+    first_id = np.where(ids[i] <= ids[j], ids[i], ids[j])
+    second_id = np.where(ids[i] <= ids[j], ids[j], ids[i])
     order = np.flatnonzero(place)
-    order = order[np.argsort(straight[order], kind="stable")]
+    order = order[np.lexsort((second_id[order], first_id[order], straight[order]))]
     used, joined, chosen = set(), set(), []
     for k in order.tolist():  # over the candidate places, not over patches
         a, b = int(i[k]), int(j[k])
@@ -104,7 +108,11 @@ def find_candidates(study, *, max_candidates: int = 20):
     # the pair's present route, for the table
     linked = np.where(np.isfinite(along), along, np.nan)
     surface = _surface(study)
-    lines = [_path(surface, land, int(i[k]), int(j[k])) for k in chosen]
+    # each candidate drawn from the patch with the smaller id
+    swap = ids[i[chosen]] > ids[j[chosen]]
+    i_c = np.where(swap, j[chosen], i[chosen])
+    j_c = np.where(swap, i[chosen], j[chosen])
+    lines = [_path(surface, land, int(a), int(b)) for a, b in zip(i_c, j_c)]
     lines = np.asarray(lines, dtype=object)
     length = shapely.length(lines) / 1000.0
     cost = _cost(sc, land, lines, length)
@@ -112,7 +120,7 @@ def find_candidates(study, *, max_candidates: int = 20):
     return geopandas.GeoDataFrame({
         "corridor_id": [f"auto{k + 1:0{width}d}" for k in range(chosen.size)],
         "cost": cost,
-        "source": land.ids[i[chosen]], "target": land.ids[j[chosen]],
+        "source": land.ids[i_c], "target": land.ids[j_c],
         "length_km": length, "straight_km": straight[chosen],
         "linked_as_km": linked[chosen],
         "reason": np.where(apart[chosen], "joins two groups", "shortens a detour"),
