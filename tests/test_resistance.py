@@ -330,8 +330,15 @@ def test_corridors_are_burnt_into_the_raster(tmp_path):
     expected = 0.5 * 10 + 2.5 * 0.2  # down to the corridor, then along it to B's edge
     assert burnt.loc[("B", "C")] == pytest.approx(expected, rel=0.15)
     assert burnt.loc[("B", "C")] < 0.3 * plain.loc[("B", "C")]
-    # A–B's own kernel link runs along the corridor too: 6 km at 0.2
-    assert burnt.loc[("A", "B")] == pytest.approx(6 * 0.2, rel=0.05)
+    # A–B's own kernel link is the way across the ground beside the corridor (6 km at 10),
+    # not a second copy of the corridor (which is A–B's corridor arc, 6 km at 0.2)
+    net = build_network(land, max_distance_km=70.0, resistance=surface, corridors=corridors,
+                        corridor_resistance=0.2)
+    ab = (net.source == 0) & (net.target == 1)
+    kernel = net.effective_distance_km[ab & (net.origin == "kernel")]
+    corridor = net.effective_distance_km[ab & (net.origin == "corridor")]
+    assert kernel.size == 1 and kernel[0] == pytest.approx(60.0, rel=0.02)
+    assert corridor.size == 1 and corridor[0] == pytest.approx(6 * 0.2, rel=1e-9)
 
 
 # ------------------------------------------------------------- patches from a raster
@@ -625,3 +632,33 @@ def test_candidates_found_do_not_depend_on_the_feature_order(tmp_path):
     columns = ["corridor_id", "source", "target", "straight_km", "reason"]
     assert found[0][columns].equals(found[1][columns])
     np.testing.assert_allclose(found[0]["length_km"], found[1]["length_km"], rtol=1e-9)
+
+
+def test_an_integer_raster_with_nodata_reads_and_a_damaged_one_is_refused(two):
+    folder, land = two
+    values = np.full((80, 140), 2, dtype=np.uint8)
+    values[0, 0] = 255  # nodata, outside the patches' extent
+    path = folder / "classes.tif"
+    with rasterio.open(path, "w", driver="GTiff", width=140, height=80, count=1,
+                       dtype="uint8", crs="EPSG:32632", nodata=255,
+                       transform=Affine(50.0, 0.0, X0 - 1000, 0.0, -50.0, Y0 + 2000)) as f:
+        f.write(values, 1)
+    surface = read_resistance(path, crs=land.crs,
+                              patch_bounds=shapely.total_bounds(land.geometries))
+    assert np.isnan(surface.values[0, 0]) and surface.values[40, 70] == 2.0
+    damaged = folder / "damaged.tif"
+    damaged.write_bytes(path.read_bytes()[:600])
+    text = refused(land, damaged)
+    assert "cannot be read" in text or "cells cannot be read" in text
+
+
+def test_two_small_patches_in_one_cell_are_refused(tmp_path):
+    # two 20 m squares inside one 100 m cell: neither has a cell of its own
+    patches = write_patches(tmp_path, [("a", 0.01, 0.01, 0.03, 0.03),
+                                       ("b", 0.05, 0.05, 0.07, 0.07), ("c", 2, 0, 3, 1)])
+    land = read_patches(patches, id_field="patch_id")
+    raster = write_raster(tmp_path, np.ones((40, 60)), cell_m=100.0, left_km=-1.0, top_km=2.0)
+    surface = surface_for(tmp_path, land, raster)
+    with pytest.raises(InputError, match="share their only raster cell") as info:
+        surface.pairs_within(land, 3.0)
+    assert str(raster) in str(info.value)

@@ -92,7 +92,11 @@ def habitat_patches(path, *, habitat_values=None, suitability_threshold=None,
                 f"{need / 2**30:.1f} GB, more than {MAX_RASTER_SHARE:.0%} of this machine's "
                 f"{have / 2**30:.1f} GB; give a coarser raster, or clip it", file=path,
                 field="patches.path")
-        band = src.read(1, masked=True)
+        try:
+            band = src.read(1, masked=True)
+        except RasterioError as exc:
+            raise InputError(f"its cells cannot be read ({_short(exc)}); the file may be "
+                             "damaged or cut short", file=path, field="patches.path") from None
         transform, raster_crs = src.transform, src.crs
     values = band.data.astype(np.float64)
     valid = ~np.ma.getmaskarray(band) & np.isfinite(values)

@@ -402,6 +402,7 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
         "dispersal.corridor_resistance")
 
     parts = []
+    ground = resistance
     if corridors is not None:
         lines, corridor_part = _corridor_arcs(landscape, _resolve(corridors, base_dir), kernel,
                                               corridor_snap_km * 1000.0, corridor_resistance)
@@ -411,6 +412,9 @@ def build_network(landscape: Landscape, *, kernel="exponential", max_distance_km
     if kernel != "none":
         if resistance is not None:
             i, j, e = resistance.pairs_within(landscape, max_distance_km)
+            if corridors is not None and i.size:
+                i, j, e = _unburnt_ends(ground, landscape, corridor_part, i, j, e,
+                                        max_distance_km)
             d = pair_distance_km(landscape, i, j, distance)
         else:
             i, j, d = _kernel_pairs(landscape, max_distance_km / matrix_resistance * 1000.0,
@@ -590,6 +594,32 @@ def _kernel_pairs(landscape: Landscape, max_m: float, distance: str):
         d = shapely.distance(geoms[i], geoms[j])
     keep = d <= max_m  # the index is inclusive; keep the rule exact in floating point
     return i[keep], j[keep], d[keep] / 1000.0
+
+
+def _unburnt_ends(ground, landscape, corridor_part, i, j, e, max_km):
+    """Kernel links ``(i, j, e)`` found on the ground with the corridors burnt in, with the
+    pairs a corridor joins measured on the ground without them: the corridor is that pair's
+    own route (its arc), and its kernel link is the way across the ground beside it (as
+    without a raster), not a second copy of the corridor."""
+    n = landscape.n_patches
+    a, b = corridor_part[0], corridor_part[1]
+    ends = np.unique(np.concatenate([a, b]))
+    src, dst, km = ground.pairs_from(landscape, ends, max_km)
+    lo, hi = np.minimum(src, dst), np.maximum(src, dst)
+    key = lo * max(n, 1) + hi
+    order = np.lexsort((km, key))
+    key, km = key[order], km[order]
+    first = np.r_[True, key[1:] != key[:-1]] if key.size else np.zeros(0, bool)
+    plain_key, plain_km = key[first], km[first]  # sorted by key
+    joined = np.unique(np.minimum(a, b) * max(n, 1) + np.maximum(a, b))
+    codes = i * max(n, 1) + j  # i < j
+    on_corridor = np.isin(codes, joined)
+    pos = np.minimum(np.searchsorted(plain_key, codes), max(plain_key.size - 1, 0))
+    found = plain_key.size > 0
+    has_plain = (plain_key[pos] == codes) if found else np.zeros(codes.size, dtype=bool)
+    e = np.where(on_corridor & has_plain, plain_km[pos] if found else e, e)
+    keep = ~on_corridor | has_plain
+    return i[keep], j[keep], e[keep]
 
 
 def pair_distance_km(landscape: Landscape, i, j, distance: str) -> np.ndarray:

@@ -150,6 +150,16 @@ class ResistanceSurface:
             points = shapely.get_coordinates(shapely.point_on_surface(geoms[missing]))
             rows, cols = self.rowcol(points[:, 0], points[:, 1])
             labels[rows, cols] = missing + 1
+            present[:] = False
+            present[np.unique(labels)] = True
+            lost = np.flatnonzero(~present[1:])
+            if lost.size:  # two small patches in one cell, or on another's only cell
+                names = ", ".join(repr(str(landscape.ids[k])) for k in lost[:3])
+                raise InputError(
+                    f"patch(es) {names}{' and others' if lost.size > 3 else ''} share their "
+                    f"only raster cell with another patch (cells of {self.cell_km[1] * 1000:g}"
+                    " m); give a finer resistance raster", file=self.path,
+                    field="dispersal.resistance")
         return labels
 
     def rowcol(self, x, y) -> tuple[np.ndarray, np.ndarray]:
@@ -178,7 +188,8 @@ class ResistanceSurface:
         The window around the patch reaches ``reach`` cells (:meth:`_reach`) on each side,
         which no path within ``max_km`` can leave; the search itself stops once the cheapest
         cell left costs more than ``max_km`` (:class:`_LimitedSearch`), so its time follows
-        the area within reach, not the window's."""
+        the ground within reach. (Windows that start small and grow while the search
+        reaches their edge were slower on the benchmark: the searches were redone.)"""
         box = boxes[p]
         rows, cols = self.shape
         h, w = self.cell_km
@@ -228,13 +239,20 @@ class ResistanceSurface:
         n_workers = _workers(workers, patches.size)
         if n_workers > 1:
             import multiprocessing as mp
+            from concurrent.futures import ProcessPoolExecutor
+            from concurrent.futures.process import BrokenProcessPool
+
+            from ..errors import RunError
 
             global _JOB
             chunks = np.array_split(patches, 8 * n_workers)
             _JOB = job
             try:
-                with mp.get_context("fork").Pool(n_workers) as pool:
-                    parts = pool.map(_search_chunk, chunks)
+                with ProcessPoolExecutor(n_workers, mp_context=mp.get_context("fork")) as pool:
+                    parts = list(pool.map(_search_chunk, chunks))
+            except BrokenProcessPool:
+                raise RunError("a process searching least-cost paths died (out of memory?); "
+                               "give a coarser resistance raster") from None
             finally:
                 _JOB = None
         else:
@@ -326,7 +344,8 @@ def _workers(workers, n: int) -> int:
     """How many processes to search ``n`` patches with (1 where fork is not available)."""
     import multiprocessing as mp
 
-    if n < PARALLEL_MIN_PATCHES or "fork" not in mp.get_all_start_methods():
+    if (n < PARALLEL_MIN_PATCHES or "fork" not in mp.get_all_start_methods()
+            or mp.parent_process() is not None):  # not from inside a worker of a sweep
         return 1
     if workers is None:
         try:
@@ -465,15 +484,18 @@ def read_resistance(path, *, crs, patch_bounds, field="dispersal.resistance"
                 f"{have / 2**30:.1f} GB; give a coarser raster, or clip it to the patches",
                 file=path, field=field)
         nodata = src.nodata
-        if same:
-            raw = src.read(1, masked=True)
-            values = raw.filled(np.nan).astype(np.float32)
-        else:
-            values = np.full((height, width), np.nan, dtype=np.float32)
-            reproject(source=rasterio.band(src, 1), destination=values,
-                      src_transform=src.transform, src_crs=source_crs, src_nodata=nodata,
-                      dst_transform=transform, dst_crs=crs.to_wkt(), dst_nodata=np.nan,
-                      resampling=Resampling.nearest)
+        try:
+            if same:
+                values = src.read(1, masked=True).astype(np.float32).filled(np.nan)
+            else:
+                values = np.full((height, width), np.nan, dtype=np.float32)
+                reproject(source=rasterio.band(src, 1), destination=values,
+                          src_transform=src.transform, src_crs=source_crs, src_nodata=nodata,
+                          dst_transform=transform, dst_crs=crs.to_wkt(), dst_nodata=np.nan,
+                          resampling=Resampling.nearest)
+        except RasterioError as exc:
+            raise InputError(f"its cells cannot be read ({_short(exc)}); the file may be "
+                             "damaged or cut short", file=path, field=field) from None
     if transform.b != 0 or transform.d != 0 or transform.e >= 0:
         raise InputError("the raster is rotated or not north up; save it north up",
                          file=path, field=field)

@@ -3,8 +3,10 @@
 ``trophoscape corridors SCENARIO --candidates auto`` asks trophoscape to propose the
 candidates itself. A pair of patches within ``[planning] search_km`` of each other (boundary
 to boundary; default twice ``max_distance_km``) is a place for a corridor when the network
-holds them at least :data:`WEAK_RATIO` times farther apart than they are: the shortest route
-between them along the links (in effective km) is that long, or there is none (they lie in
+holds them at least :data:`WEAK_RATIO` times farther apart than the ground typically makes
+such a gap: the shortest route between them along the links (in effective km) is at least
+that many times their straight distance times the typical resistance (the matrix
+resistance, or the resistance raster's median value), or there is none (they lie in
 different connected groups). A river between two facing patches, crossed only far away, makes
 such a place; so does a gap wider than ``max_distance_km``.
 
@@ -78,8 +80,14 @@ def find_candidates(study, *, max_candidates: int = 20):
     apart = group[i] != group[j]
     # how far apart the network holds each pair: its shortest route along the links, in
     # effective km (inf between groups, or beyond what matters here)
-    along = _network_distance(net, i, j, limit=WEAK_RATIO * search_km)
-    place = along >= WEAK_RATIO * np.maximum(straight, 1e-3)
+    # what the ground typically makes of a straight km: the matrix resistance, or the
+    # raster's median value (effective km are compared with effective km)
+    surface = _surface(study)
+    typical = (float(np.nanmedian(surface.values)) if surface is not None
+               else sc["dispersal.matrix_resistance"])
+    expected = typical * np.maximum(straight, 1e-3)
+    along = _network_distance(net, i, j, limit=WEAK_RATIO * float(expected.max(initial=0.0)))
+    place = along >= WEAK_RATIO * expected
     # shortest first; each patch in one candidate at most, each two groups joined once
     # ties broken by the patches' ids, so that the feature order does not matter
     ids = land.ids.astype(str)
@@ -107,7 +115,6 @@ def find_candidates(study, *, max_candidates: int = 20):
             file=sc.path, field="planning.search_km")
     # the pair's present route, for the table
     linked = np.where(np.isfinite(along), along, np.nan)
-    surface = _surface(study)
     # each candidate drawn from the patch with the smaller id
     swap = ids[i[chosen]] > ids[j[chosen]]
     i_c = np.where(swap, j[chosen], i[chosen])

@@ -326,24 +326,37 @@ def _variant_network(network: Network, cand: dict, variant: Variant) -> Network:
 
 
 def _relinked(network: Network, cand: dict, added) -> Network:
-    """The kernel links of the patches within reach of the added candidates, as searched
-    again with the candidates burnt into the ground (:func:`relink_candidates`); a pair
-    reached from several candidates' searches keeps its shortest distance (a path using two
-    new corridors at once is not looked for)."""
-    affected = np.unique(cand["affected_patch"][np.isin(cand["affected_owner"], added)])
-    if not affected.size:
-        return network
-    touching = np.isin(network.source, affected) | np.isin(network.target, affected)
-    net = network.select(~((network.origin == "kernel") & touching))
+    """The kernel links with the added candidates burnt into the ground
+    (:func:`relink_candidates`): burning only lowers costs, so each pair keeps the shorter
+    of its present effective distance and the one found again, and pairs found within
+    ``max_distance_km`` for the first time are linked. A pair reached from several
+    candidates' searches keeps its shortest (a path along two new corridors at once is not
+    looked for); a candidate's own two patches keep their link beside it."""
     sel = np.isin(cand["relink_owner"], added)
+    if not sel.any():
+        return network
     i, j = cand["relink_i"][sel], cand["relink_j"][sel]
     d, e = cand["relink_d"][sel], cand["relink_e"][sel]
     code = network.pair_codes(i, j)
     order = np.lexsort((e, code))
-    first = np.r_[True, code[order][1:] != code[order][:-1]] if code.size else code.astype(bool)
+    first = np.r_[True, code[order][1:] != code[order][:-1]]
     k = order[first]
-    return with_links(net, np.minimum(i, j)[k], np.maximum(i, j)[k], d[k],
-                      effective_distance_km=e[k], origin="kernel")
+    code, i, j, d, e = code[k], i[k], j[k], d[k], e[k]  # one per pair, sorted by code
+    kernel = network.origin == "kernel"
+    arc_code = network.pair_codes()
+    pos = np.minimum(np.searchsorted(code, arc_code), code.size - 1)
+    hit = kernel & (code[pos] == arc_code)
+    effective = network.effective_distance_km.copy()
+    effective[hit] = np.minimum(effective[hit], e[pos[hit]])
+    net = Network(ids=network.ids, kernel=network.kernel,
+                  max_distance_km=network.max_distance_km,
+                  **{f: (effective if f == "effective_distance_km" else getattr(network, f))
+                     for f in Network.ARC_FIELDS})
+    new = ~np.isin(code, arc_code[kernel])
+    if not new.any():
+        return net
+    return with_links(net, np.minimum(i, j)[new], np.maximum(i, j)[new], d[new],
+                      effective_distance_km=e[new], origin="kernel")
 
 
 def relink_candidates(candidates: Candidates, study) -> Candidates:
@@ -364,12 +377,17 @@ def relink_candidates(candidates: Candidates, study) -> Candidates:
     resistance = corridor_resistances(candidates.frame,
                                       study.scenario["dispersal.corridor_resistance"])
     tree = shapely.STRtree(land.geometries)
-    reach_m = surface.reach_km(max_km) * 1000.0
+    # a burnt line touches cells up to a diagonal from it
+    h, w = surface.cell_km
+    reach_m = (surface.reach_km(max_km) + math.hypot(h, w)) * 1000.0
     parts = {k: [] for k in ("affected_owner", "affected_patch", "relink_owner", "relink_i",
                              "relink_j", "relink_e")}
     for c in range(candidates.n):  # a loop over candidates, each a few searches
         near = np.unique(tree.query(lines[c], predicate="dwithin", distance=reach_m))
         src, dst, km = surface.burned([lines[c]], resistance[c]).pairs_from(land, near, max_km)
+        ends = {int(candidates.source[c]), int(candidates.target[c])}
+        own = np.isin(src, list(ends)) & np.isin(dst, list(ends))
+        src, dst, km = src[~own], dst[~own], km[~own]  # its own two patches: the corridor
         parts["affected_owner"].append(np.full(near.size, c))
         parts["affected_patch"].append(near)
         parts["relink_owner"].append(np.full(src.size, c))
