@@ -662,3 +662,21 @@ def test_two_small_patches_in_one_cell_are_refused(tmp_path):
     with pytest.raises(InputError, match="share their only raster cell") as info:
         surface.pairs_within(land, 3.0)
     assert str(raster) in str(info.value)
+
+
+def test_links_table_rows_act_as_their_least_cost_distance(tmp_path):
+    # consistency test: a links-table row between two patches acts as the least-cost
+    # distance the kernel search finds for that pair (both measured the same way), and a
+    # row between patches no path joins within the raster is inf
+    patches = write_patches(tmp_path, [("A", 0, 0, 1, 1), ("B", 4, 0, 5, 1), ("C", 0, 3, 1, 4)])
+    land = read_patches(patches, id_field="patch_id")
+    values = np.ones((120, 140))   # x -1..6 km, y -2..4 km at 50 m
+    values[:, 70:72] = 1000.0       # a wall at x = 2.5 km with a gap 1.5 km up
+    values[50:54, 70:72] = 1.0
+    raster = write_raster(tmp_path, values, cell_m=50.0, left_km=-1.0, top_km=4.0)
+    surface = surface_for(tmp_path, land, raster)
+    i, j, km = surface.pairs_within(land, 12.0)
+    kernel = dict(zip(zip(i.tolist(), j.tolist()), km.tolist()))
+    rows = surface.between(land, [1, 0], [0, 2])  # B->A (the other way round), A->C
+    assert rows[0] == pytest.approx(kernel[(0, 1)], rel=1e-12)
+    assert rows[1] == pytest.approx(kernel[(0, 2)], rel=1e-12)

@@ -265,29 +265,63 @@ class ResistanceSurface:
         src, dst, km = self.pairs_from(landscape, np.arange(landscape.n_patches), max_km)
         return _symmetric(src, dst, km, landscape.n_patches)
 
-    def between(self, landscape, source, target) -> np.ndarray:
-        """Least-cost distance (km) of given pairs (say the rows of a links table): from
-        each source patch on a window holding both patches and room for a detour."""
-        from scipy import ndimage
+    def straight_costs(self, landscape, a, b) -> np.ndarray:
+        """The cost (km) of the straight shortest line between patches ``a[k]`` and
+        ``b[k]``, sampled every quarter cell, plus two cells at the raster's highest value: a
+        bound on their least-cost distance (inf where the line crosses a cell without a
+        value)."""
+        import shapely
 
+        a, b = np.asarray(a, dtype=np.int64), np.asarray(b, dtype=np.int64)
+        h, w = self.cell_km
+        geoms = landscape.geometries
+        lines = shapely.segmentize(shapely.shortest_line(geoms[a], geoms[b]),
+                                   250.0 * min(h, w))
+        xy, which = shapely.get_coordinates(lines, return_index=True)
+        same = which[1:] == which[:-1]
+        mid = 0.5 * (xy[1:] + xy[:-1])[same]
+        seg = np.hypot(*(xy[1:] - xy[:-1])[same].T) / 1000.0
+        r, c = self.rowcol(mid[:, 0], mid[:, 1])
+        cost = np.bincount(which[1:][same], weights=self.values[r, c] * seg,
+                           minlength=a.size)
+        return cost + 2 * max(h, w) * float(np.nanmax(self.values))
+
+    def between(self, landscape, source, target) -> np.ndarray:
+        """Least-cost distance (km) of given pairs (say the rows of a links table), the
+        smaller of the two directions as for :meth:`pairs_within`: one search from each
+        patch named, reaching as far as the dearest straight line of its pairs
+        (:meth:`straight_costs`) — no least-cost path is dearer. inf where none joins them."""
         source = np.asarray(source, dtype=np.int64)
         target = np.asarray(target, dtype=np.int64)
-        labels = self.patch_cells(landscape)
-        boxes = ndimage.find_objects(labels, max_label=landscape.n_patches)
+        n = landscape.n_patches
         out = np.full(source.size, np.inf)
-        h, w = self.cell_km
-        for k, (s, t) in enumerate(zip(source.tolist(), target.tolist())):
-            span = max(boxes[s][0].stop, boxes[t][0].stop) - min(boxes[s][0].start,
-                                                                  boxes[t][0].start)
-            span_c = max(boxes[s][1].stop, boxes[t][1].stop) - min(boxes[s][1].start,
-                                                                    boxes[t][1].start)
-            limit = 2.0 * float(np.nanmax(self.values)) * (span * h + span_c * w)
-            found, dist = self._search(labels, boxes, s, self._reach(limit), limit)
-            hit = found == t
-            if hit.any():
-                out[k] = dist[hit][0]
-        return out
+        if not source.size:
+            return out
+        bound = self.straight_costs(landscape, source, target)
+        ends = np.concatenate([source, target])
+        limit = np.zeros(n)
+        np.maximum.at(limit, ends, np.concatenate([bound, bound]))
+        limit[~np.isfinite(limit)] = np.inf
+        src, dst, km = [], [], []
+        from scipy import ndimage
 
+        labels = self.patch_cells(landscape)
+        boxes = ndimage.find_objects(labels, max_label=n)
+        for p in np.unique(ends).tolist():  # one search per patch named
+            lim = float(limit[p]) if np.isfinite(limit[p]) else float(
+                np.nanmax(self.values)) * sum(x * y for x, y in zip(self.shape, self.cell_km))
+            found, dist = self._search(labels, boxes, p, self._reach(lim), lim)
+            src.append(np.full(found.size, p, dtype=np.int64))
+            dst.append(found)
+            km.append(dist)
+        i, j, d = _symmetric(np.concatenate(src), np.concatenate(dst), np.concatenate(km), n)
+        codes = i * max(n, 1) + j
+        wanted = np.minimum(source, target) * max(n, 1) + np.maximum(source, target)
+        if codes.size:
+            pos = np.minimum(np.searchsorted(codes, wanted), codes.size - 1)
+            hit = codes[pos] == wanted
+            out[hit] = d[pos[hit]]
+        return out
 
     def least_cost_path(self, landscape, a: int, b: int) -> np.ndarray:
         """The cells of the least-cost path from patch ``a``'s edge to patch ``b``, shape
@@ -295,21 +329,14 @@ class ResistanceSurface:
 
         Searched on a window around both patches wide enough for any path cheaper than the
         straight one between them (the same costs as :meth:`pairs_within`)."""
-        import shapely
         from scipy import ndimage
         from skimage.graph import MCP_Geometric
 
         labels = self.patch_cells(landscape)
         boxes = ndimage.find_objects(labels, max_label=landscape.n_patches)
         # the straight line's cost bounds the least cost, and so how far a path may stray
-        line = shapely.shortest_line(landscape.geometries[a], landscape.geometries[b])
         h, w = self.cell_km
-        xy = shapely.get_coordinates(shapely.segmentize(line, 250.0 * min(h, w)))
-        seg = np.hypot(*(xy[1:] - xy[:-1]).T) / 1000.0
-        mid = 0.5 * (xy[1:] + xy[:-1])
-        r, c = self.rowcol(mid[:, 0], mid[:, 1])
-        bound = float(np.sum(self.values[r, c] * seg)) + 2 * max(h, w) * float(
-            np.nanmax(self.values))
+        bound = float(self.straight_costs(landscape, [a], [b])[0])
         reach = self._reach(bound) if np.isfinite(bound) else self.shape
         rows, cols = self.shape
         r0 = max(min(boxes[a][0].start, boxes[b][0].start) - reach[0], 0)
