@@ -680,3 +680,21 @@ def test_links_table_rows_act_as_their_least_cost_distance(tmp_path):
     rows = surface.between(land, [1, 0], [0, 2])  # B->A (the other way round), A->C
     assert rows[0] == pytest.approx(kernel[(0, 1)], rel=1e-12)
     assert rows[1] == pytest.approx(kernel[(0, 2)], rel=1e-12)
+
+
+def test_overlapping_patches_share_cells_by_id_not_by_feature_order(tmp_path):
+    # consistency test: where two patches overlap, the shared cells go to the same patch
+    # whichever comes first in the file, so the links are the same
+    # P1 lies inside P2, near its east edge
+    boxes = [("P1", 1.4, 0.6, 1.9, 1.1), ("P2", 0, 0, 2.0, 2.0), ("P3", 3.5, 0, 4.5, 1)]
+    runs = []
+    for order, name in ((boxes, "a.gpkg"), (boxes[::-1], "b.gpkg")):
+        land = read_patches(write_patches(tmp_path, order, name=name), id_field="patch_id")
+        raster = write_raster(tmp_path, np.full((100, 120), 2.0), cell_m=50.0, left_km=-0.5,
+                              top_km=3.0, name=f"{name}.tif")
+        i, j, km = surface_for(tmp_path, land, raster).pairs_within(land, 8.0)
+        ids = land.ids
+        runs.append({tuple(sorted((ids[a], ids[b]))): d for a, b, d in zip(i, j, km)})
+    assert runs[0].keys() == runs[1].keys()
+    for k, v in runs[0].items():
+        assert runs[1][k] == pytest.approx(v, rel=1e-9)

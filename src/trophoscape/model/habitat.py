@@ -111,6 +111,24 @@ def habitat_patches(path, *, habitat_values=None, suitability_threshold=None,
         raise InputError(f"no cell is habitat ({rule}); check the rule against the "
                          "raster's values", file=path, field="patches.habitat_values"
                          if habitat_values is not None else "patches.suitability_threshold")
+    if min_area_km2 > 0 and raster_crs.is_projected:
+        # patches far below the smallest area are dropped before they are outlined (half
+        # the area, in cells of the raster's own CRS: its scale error is far smaller)
+        unit = raster_crs.linear_units_factor[1] if raster_crs.linear_units_factor else 1.0
+        cell_km2 = abs(transform.a * transform.e) * unit * unit / 1e6
+        cells = np.bincount(labels.ravel(), minlength=count + 1)
+        small = np.flatnonzero(cells * cell_km2 < 0.5 * float(min_area_km2))
+        small = small[small > 0]
+        if small.size:
+            keep = np.ones(count + 1, dtype=bool)
+            keep[small] = False
+            habitat = keep[labels] & habitat
+            labels, count = ndimage.label(habitat, structure=np.ones((3, 3), dtype=bool))
+        if count == 0:
+            biggest = float(cells[1:].max()) * cell_km2
+            raise InputError(f"no habitat patch has {min_area_km2:g} km² or more (the largest "
+                             f"has about {biggest:.3g} km²); lower [patches] min_area_km2",
+                             file=path, field="patches.min_area_km2")
     index = np.arange(1, count + 1)
     # the first cell of each patch in row order: its id
     flat = np.flatnonzero(labels.ravel())

@@ -131,16 +131,19 @@ class ResistanceSurface:
     def patch_cells(self, landscape) -> np.ndarray:
         """Patch position + 1 of each cell (0 outside every patch), shape (rows, cols).
 
-        A cell belongs to a patch when its centre lies inside it (the first patch in
-        patch order where patches overlap); a patch with no such cell gets the cell of its
+        A cell belongs to a patch when its centre lies inside it (the patch with the
+        smallest id where patches overlap); a patch with no such cell gets the cell of its
         representative point."""
         import shapely
         from rasterio import features
 
         n = landscape.n_patches
         geoms = landscape.geometries
+        # where patches overlap, a cell goes to the one with the smallest id (burnt last),
+        # whatever the order of the features
+        by_id = np.argsort(landscape.ids.astype(str), kind="stable")[::-1]
         labels = features.rasterize(
-            ((g, k + 1) for k, g in reversed(list(enumerate(geoms)))),
+            ((geoms[k], int(k) + 1) for k in by_id),
             out_shape=self.shape, transform=self.transform, fill=0, dtype="int32",
             all_touched=False)
         present = np.zeros(n + 1, dtype=bool)
