@@ -1,0 +1,160 @@
+"""Fitting a scenario to survey counts (first part: the counts table).
+
+A counts table holds the monitoring data a fit is measured against: one row per count,
+columns ``patch_id,time,species,count``.
+
+- ``patch_id``: a patch of the scenario's landscape;
+- ``time``: in the scenario's time unit from the start of the run (t = 0), within the run;
+- ``species``: ``prey`` or ``predator``;
+- ``count``: individuals counted in the whole patch (an abundance, not a density), a finite
+  number of at least 0; whole numbers for the Poisson and negative-binomial observation
+  models, above 0 for the lognormal one (:mod:`trophoscape.analysis.observation`).
+
+Missing years are simply absent rows; each (patch, time, species) is counted once. Every
+problem is refused in one line naming the file, the row (``feature``, counted from 0 after
+the header) and the column.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = ["Counts", "read_counts"]
+
+#: The columns of a counts table, in order.
+COUNT_COLUMNS = ("patch_id", "time", "species", "count")
+_SPECIES = ("prey", "predator")
+
+
+@dataclass(frozen=True, eq=False)
+class Counts:
+    """Survey counts, one entry per row of the table, in its order.
+
+    Attributes
+    ----------
+    patch : ndarray of int64
+        Patch positions in the landscape.
+    time : ndarray of float64
+    species : ndarray of int64
+        0 prey, 1 predator.
+    count : ndarray of float64
+    path : Path or None
+    """
+
+    patch: np.ndarray
+    time: np.ndarray
+    species: np.ndarray
+    count: np.ndarray
+    path: Path | None = None
+
+    @property
+    def n(self) -> int:
+        return int(self.count.size)
+
+
+def read_counts(path, study, *, observation: str = "lognormal") -> Counts:
+    """Read and check a counts table against a study (its patches and its run's length).
+
+    Parameters
+    ----------
+    path : str or path
+    study : Study
+    observation : {"lognormal", "poisson", "negative_binomial"}
+        The observation model the counts will be fitted with (it decides which counts are
+        possible: whole numbers, or above 0).
+
+    Raises
+    ------
+    InputError
+        An unreadable or empty file, a missing column, an unknown patch id or species, a
+        time or count that is not a number, a time outside the run, a negative count, a
+        count the observation model cannot produce, or a count given twice.
+    """
+    import csv
+
+    path = Path(path)
+    expected = "columns " + ",".join(COUNT_COLUMNS)
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            rows = list(csv.reader(fh))
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"cannot be read as a CSV table ({exc}); expected {expected}",
+                         file=path) from None
+    rows = [r for r in rows if any(cell.strip() for cell in r)]
+    if not rows:
+        raise InputError(f"the file is empty; write a header row with {expected}", file=path)
+    header = [c.strip() for c in rows[0]]
+    for column in COUNT_COLUMNS:
+        if column not in header:
+            import difflib
+
+            close = difflib.get_close_matches(column, header, n=1)
+            hint = f" ({close[0]!r} is close)" if close else ""
+            raise InputError(f"the table has no {column!r} column{hint}; expected {expected}",
+                             file=path, field=column)
+    at = {c: header.index(c) for c in COUNT_COLUMNS}
+    data = rows[1:]
+    if not data:
+        raise InputError("the table has no counts; add one row per count", file=path)
+    table = np.array([[(row[at[c]].strip() if at[c] < len(row) else "") for c in COUNT_COLUMNS]
+                      for row in data], dtype=object).reshape(-1, len(COUNT_COLUMNS))
+    cells = {c: table[:, k].astype(str) for k, c in enumerate(COUNT_COLUMNS)}
+    duration = float(study.scenario["run.duration"])
+
+    def refuse(bad, column, message):
+        if bad.any():
+            r = int(np.flatnonzero(bad)[0])
+            raise InputError(message(r), file=path, feature=r, field=column)
+
+    ids = np.asarray(study.ids, dtype=str)
+    order = np.argsort(ids)
+    pos = np.minimum(np.searchsorted(ids[order], cells["patch_id"]), ids.size - 1)
+    known = ids[order][pos] == cells["patch_id"]
+    refuse(~known, "patch_id", lambda r: f"unknown patch {str(cells['patch_id'][r])!r}; give the id "
+                                         "of a patch of the scenario's patch file")
+    patch = order[pos].astype(np.int64)
+    species_ok = np.isin(cells["species"], _SPECIES)
+    refuse(~species_ok, "species",
+           lambda r: f"{str(cells['species'][r])!r} is not a species; give prey or predator")
+    species = (cells["species"] == "predator").astype(np.int64)
+    numbers = {}
+    for column in ("time", "count"):
+        values = np.array([_number(v) for v in cells[column]], dtype=float)
+        refuse(~np.isfinite(values), column,
+               lambda r, c=column: f"{str(cells[c][r])!r} is not a finite number")
+        numbers[column] = values
+    time, count = numbers["time"], numbers["count"]
+    refuse(~((time >= 0.0) & (time <= duration)), "time",
+           lambda r: f"time {time[r]:g} is outside the run (0 to {duration:g}); give times "
+                     "from the start of the run, in its time unit")
+    refuse(count < 0, "count", lambda r: f"count {count[r]:g} is negative; give a count of at "
+                                         "least 0")
+    if observation in ("poisson", "negative_binomial"):
+        refuse(count != np.round(count), "count",
+               lambda r: f"count {count[r]:g} is not a whole number, which the {observation} "
+                         "model needs; use the lognormal model for indices")
+    if observation == "lognormal":
+        refuse(count == 0, "count", lambda r: "a count of 0 has no density under the "
+                                              "lognormal model; use the poisson or "
+                                              "negative_binomial model for data with zeros")
+    key = (patch * 2 + species).astype(np.float64) * (duration + 1.0) + time
+    order = np.argsort(key, kind="stable")
+    same = np.flatnonzero(key[order][1:] == key[order][:-1])
+    if same.size:
+        first, again = sorted((int(order[same[0]]), int(order[same[0] + 1])))
+        raise InputError(f"counts this patch, time and species again (also row {first}); "
+                         "give each count once", file=path, feature=again, field="count")
+    return Counts(patch=patch, time=time, species=species, count=count, path=path)
+
+
+def _number(text: str) -> float:
+    try:
+        return float(text)
+    except ValueError:
+        return math.nan

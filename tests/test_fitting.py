@@ -1,0 +1,80 @@
+"""Fitting to survey counts, first part: the counts table and its bad input."""
+
+from __future__ import annotations
+
+import geopandas
+import numpy as np
+import pytest
+import shapely
+
+from trophoscape.errors import InputError
+from trophoscape.workflows.fitting import read_counts
+
+X0, Y0 = 500_000.0, 5_000_000.0
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    from trophoscape.workflows.study import load_study
+
+    folder = tmp_path_factory.mktemp("counts")
+    boxes = [shapely.box(X0 + k * 2000, Y0, X0 + k * 2000 + 1000, Y0 + 1000) for k in range(3)]
+    geopandas.GeoDataFrame({"patch_id": ["W1", "W2", "W3"]}, geometry=boxes,
+                           crs=32632).to_file(folder / "p.gpkg", driver="GPKG",
+                                              engine="pyogrio")
+    (folder / "s.toml").write_text('[patches]\npath = "p.gpkg"\nid_field = "patch_id"\n'
+                                   '[run]\nduration = 20\nburn_in = 5\n', encoding="utf-8")
+    return load_study(folder / "s.toml")
+
+
+def write(tmp_path, text, name="counts.csv"):
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_a_counts_table_is_read_in_its_order(tmp_path, study):
+    path = write(tmp_path, "patch_id,time,species,count\nW2,0,prey,120\nW1,5.5,predator,3\n"
+                           "W3,20,prey,0.5\n")
+    counts = read_counts(path, study)
+    assert counts.n == 3
+    assert counts.patch.tolist() == [1, 0, 2] and counts.species.tolist() == [0, 1, 0]
+    np.testing.assert_array_equal(counts.time, [0.0, 5.5, 20.0])
+    np.testing.assert_array_equal(counts.count, [120.0, 3.0, 0.5])
+    # columns in another order and extra columns are fine
+    other = write(tmp_path, "count,note,species,time,patch_id\n7,x,predator,1,W1\n", "o.csv")
+    assert read_counts(other, study).count.tolist() == [7.0]
+
+
+@pytest.mark.parametrize("body, observation, words, field, row", [
+    ("W9,1,prey,3", "lognormal", "unknown patch 'W9'", "patch_id", 0),
+    ("W1,1,deer,3", "lognormal", "'deer' is not a species", "species", 0),
+    ("W1,soon,prey,3", "lognormal", "'soon' is not a finite number", "time", 0),
+    ("W1,1,prey,many", "lognormal", "'many' is not a finite number", "count", 0),
+    ("W1,25,prey,3", "lognormal", "time 25 is outside the run (0 to 20)", "time", 0),
+    ("W1,1,prey,-2", "poisson", "count -2 is negative", "count", 0),
+    ("W1,1,prey,2.5", "poisson", "not a whole number, which the poisson model needs",
+     "count", 0),
+    ("W1,1,prey,0", "lognormal", "a count of 0 has no density under the lognormal", "count", 0),
+])
+def test_bad_counts_are_refused_naming_row_and_column(tmp_path, study, body, observation,
+                                                      words, field, row):
+    path = write(tmp_path, "patch_id,time,species,count\nW2,0,prey,4\n" + body + "\n")
+    with pytest.raises(InputError) as info:
+        read_counts(path, study, observation=observation)
+    text = str(info.value)
+    assert "\n" not in text and str(path) in text and words in text
+    assert f"feature {row + 1}" in text and f"'{field}'" in text
+
+
+def test_a_count_given_twice_and_missing_columns(tmp_path, study):
+    path = write(tmp_path, "patch_id,time,species,count\nW1,2,prey,4\nW2,2,prey,4\n"
+                           "W1,2,prey,5\n")
+    with pytest.raises(InputError, match="again \\(also row 0\\)") as info:
+        read_counts(path, study)
+    assert "feature 2" in str(info.value)
+    with pytest.raises(InputError, match="no 'count' column \\('counts' is close\\)"):
+        read_counts(write(tmp_path, "patch_id,time,species,counts\nW1,1,prey,2\n", "m.csv"),
+                    study)
+    with pytest.raises(InputError, match="the file is empty"):
+        read_counts(write(tmp_path, "\n", "e.csv"), study)
