@@ -78,3 +78,28 @@ def test_a_count_given_twice_and_missing_columns(tmp_path, study):
                     study)
     with pytest.raises(InputError, match="the file is empty"):
         read_counts(write(tmp_path, "\n", "e.csv"), study)
+
+
+def test_expected_counts_do_not_depend_on_the_census_interval(tmp_path, study):
+    # consistency test across a numerical setting: counts at times off the census grid
+    # (1.25, 3.7) get the abundance the run has then, whatever the census interval; and at
+    # a census time, the value a census run records there
+    from trophoscape.integrate.ode import RunSettings, simulate
+    from trophoscape.workflows.fitting import expected_counts
+
+    path = write(tmp_path, "patch_id,time,species,count\nW1,1.25,prey,10\nW2,3.7,predator,2\n"
+                           "W3,3,prey,5\n")
+    counts = read_counts(path, study)
+    from dataclasses import replace
+
+    got = [expected_counts(replace(study, scenario=study.scenario.with_values(
+        run__census_interval=c)), counts, detection=0.5) for c in (0.5, 2.0)]
+    np.testing.assert_array_equal(got[0], got[1])
+    fine = simulate(study.system, study.initial_state,
+                    **RunSettings.from_scenario(study.scenario).options(
+                        duration=4.0, census_interval=0.05, dtype=np.float64))
+    t = fine.time
+    want = [fine["prey"].values[np.argmin(abs(t - 1.25)), 0],
+            fine["predator"].values[np.argmin(abs(t - 3.7)), 1],
+            fine["prey"].values[np.argmin(abs(t - 3.0)), 2]]
+    np.testing.assert_allclose(got[0], 0.5 * np.asarray(want), rtol=1e-4)

@@ -357,6 +357,7 @@ def simulate(
     dtype=np.float64,
     sink=None,
     sink_rows: int = 64,
+    output_times=None,
 ) -> Trajectory:
     """Integrate ``system`` from ``y0`` with census steps every ``census_interval``.
 
@@ -411,6 +412,11 @@ def simulate(
         (demographic) runs do not call it.
     sink_rows : int
         Census rows per call of ``sink``.
+    output_times : array_like, optional
+        Record the state at these times (and at 0) instead of every ``census_interval``,
+        within ``[0, duration]``: the run ends at the last of them. ODE runs only; the
+        recorded values do not depend on where they fall (the solver's dense output between
+        its own steps, as on the census grid).
 
     Returns
     -------
@@ -425,6 +431,10 @@ def simulate(
         # whole individuals and random events: no ODE (trophoscape.integrate.events.simulate_events)
         from .events import simulate_events
 
+        if output_times is not None:
+            raise ValueError("output_times is for ODE runs; event-based runs record the "
+                             "census grid")
+
         traj = simulate_events(system, y0, duration=duration, census_interval=census_interval,
                                noise=noise, extinction_abundance=extinction_abundance, ids=ids,
                                time_unit=time_unit, events=events, progress=progress)
@@ -434,7 +444,12 @@ def simulate(
     method = choose_method(method)
     solver_cls = METHODS[method]
     n = system.n_patches
-    times = census_times(float(duration), float(census_interval))
+    if output_times is None:
+        times = census_times(float(duration), float(census_interval))
+    else:  # the state recorded at these times instead (they include 0)
+        times = np.union1d(0.0, np.asarray(output_times, dtype=float))
+        if times[0] < 0 or times[-1] > float(duration) * (1 + 1e-12):
+            raise ValueError("output_times must lie within 0 and duration")
     # (species, time, patch): each species' series contiguous, held once
     record = np.empty((2, times.size, n), dtype=dtype)
     # a finite float64 state can still overflow a narrower storage type

@@ -25,7 +25,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["Counts", "read_counts"]
+__all__ = ["Counts", "read_counts", "expected_counts"]
 
 #: The columns of a counts table, in order.
 COUNT_COLUMNS = ("patch_id", "time", "species", "count")
@@ -151,6 +151,35 @@ def read_counts(path, study, *, observation: str = "lognormal") -> Counts:
         raise InputError(f"counts this patch, time and species again (also row {first}); "
                          "give each count once", file=path, feature=again, field="count")
     return Counts(patch=patch, time=time, species=species, count=count, path=path)
+
+
+def expected_counts(study, counts: Counts, *, detection: float = 1.0) -> np.ndarray:
+    """The counts a deterministic run of ``study`` predicts for each row of ``counts``:
+    ``detection`` times the species' abundance in the patch at the row's time.
+
+    The run records the state at the counts' own times (``simulate(output_times=...)``) and
+    ends at the last of them, so the values do not depend on the census interval. Noise and
+    replicates are left out: the expectation is the deterministic model's.
+    """
+    from ..integrate.ode import RunSettings, simulate
+
+    sc = study.scenario
+    times = np.unique(counts.time)
+    settings = RunSettings.from_scenario(sc).options(duration=float(max(times.max(), 0.0)))
+    settings["dtype"] = np.float64
+    events = ()
+    if study.shocks:
+        from ..model.shocks import ShockContext, shock_events
+
+        events = shock_events(study.shocks, ShockContext.from_study(study))
+    if settings["duration"] == 0.0:
+        state = np.asarray(study.initial_state, dtype=float).reshape(2, -1)
+        return detection * state[counts.species, counts.patch]
+    traj = simulate(study.system, study.initial_state, ids=study.ids, events=events,
+                    output_times=times, **settings)
+    rows = np.searchsorted(traj.time, counts.time)
+    values = np.stack([traj.data[s].values for s in ("prey", "predator")])
+    return detection * values[counts.species, rows, counts.patch]
 
 
 def _number(text: str) -> float:
