@@ -131,6 +131,9 @@ distance = "boundary"           # "boundary" (edge to edge) | "centroid"
 survival_per_km = 0.97
 # corridors = "corridors.geojson"   # LineStrings joining two patches
 # links = "links.csv"               # source,target,weight[,survival][,directed]
+# resistance = "resistance.tif"    # cost of crossing 1 km of each cell (> 0): least-cost links
+# matrix_resistance = 1.0           # without a raster: straight distances count this much
+# corridor_resistance = 0.2         # per km along a corridor (its own 'resistance' overrides)
 
 [run]
 duration = 400
