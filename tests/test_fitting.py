@@ -103,3 +103,40 @@ def test_expected_counts_do_not_depend_on_the_census_interval(tmp_path, study):
             fine["predator"].values[np.argmin(abs(t - 3.7)), 1],
             fine["prey"].values[np.argmin(abs(t - 3.0)), 2]]
     np.testing.assert_allclose(got[0], 0.5 * np.asarray(want), rtol=1e-4)
+
+
+def test_reassembled_rates_give_the_system_a_rebuild_gives(study):
+    # consistency test: changing rates on the kept landscape and network gives the same
+    # right-hand side as building the changed scenario from its files
+    from trophoscape.workflows.fitting import with_rates
+    from trophoscape.workflows.study import build_study
+
+    changes = {"prey.growth_rate": 1.7, "predator.emigration_rate": 0.3}
+    quick = with_rates(study, changes)
+    full = build_study(study.scenario.with_values(prey__growth_rate=1.7,
+                                                  predator__emigration_rate=0.3))
+    y = np.linspace(1.0, 50.0, 2 * study.landscape.n_patches)
+    np.testing.assert_array_equal(quick.system.rhs_function()(0.0, y),
+                                  full.system.rhs_function()(0.0, y))
+    with pytest.raises(InputError, match="shapes the patches or the network"):
+        with_rates(study, {"dispersal.max_distance_km": 3.0})
+
+
+def test_the_log_likelihood_sums_the_observation_densities(tmp_path, study):
+    # the Poisson log-likelihood of the counts is scipy's log pmf summed at the expected
+    # counts (scipy.stats as the outside reference for the densities)
+    from scipy import stats
+
+    from trophoscape.workflows.fitting import expected_counts, log_likelihood
+
+    path = write(tmp_path, "patch_id,time,species,count\nW1,1,prey,40\nW2,2,predator,3\n"
+                           "W3,4,prey,0\n")
+    counts = read_counts(path, study, observation="poisson")
+    mu = expected_counts(study, counts, detection=0.8)
+    ll = log_likelihood(study, counts, observation="poisson", detection=0.8)
+    assert ll == pytest.approx(float(np.sum(stats.poisson.logpmf(counts.count, mu))),
+                               rel=1e-10)
+    # a different growth rate gives another likelihood: the changes reach the run
+    other = log_likelihood(study, counts, observation="poisson", detection=0.8,
+                           changes={"prey.growth_rate": 2.5})
+    assert other != ll

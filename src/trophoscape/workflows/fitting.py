@@ -25,7 +25,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["Counts", "read_counts", "expected_counts"]
+__all__ = ["Counts", "read_counts", "expected_counts", "log_likelihood", "with_rates"]
 
 #: The columns of a counts table, in order.
 COUNT_COLUMNS = ("patch_id", "time", "species", "count")
@@ -180,6 +180,35 @@ def expected_counts(study, counts: Counts, *, detection: float = 1.0) -> np.ndar
     rows = np.searchsorted(traj.time, counts.time)
     values = np.stack([traj.data[s].values for s in ("prey", "predator")])
     return detection * values[counts.species, rows, counts.patch]
+
+
+def with_rates(study, changes: dict):
+    """The study with some scenario values changed (``{"prey.growth_rate": 1.3}``), its
+    landscape and network kept: rates, densities, emigration, kernel scales, survival —
+    anything but the keys that shape the network or the patches
+    (:data:`trophoscape.workflows.study.STRUCTURE_KEYS`), which a fit cannot vary."""
+    from .study import STRUCTURE_KEYS, STRUCTURE_SECTIONS, assemble_study
+
+    for key in changes:
+        if key in STRUCTURE_KEYS or key.split(".", 1)[0] in STRUCTURE_SECTIONS:
+            raise InputError(f"{key} shapes the patches or the network, which a fit keeps as "
+                             "they are; estimate rates and densities instead", field=key)
+    scenario = study.scenario.with_values(**{k.replace(".", "__"): v
+                                             for k, v in changes.items()})
+    return assemble_study(scenario, study.landscape, study.network)
+
+
+def log_likelihood(study, counts: Counts, *, observation: str = "lognormal",
+                   detection: float = 1.0, extra=None, changes=None) -> float:
+    """The log-likelihood of the counts under the study (with ``changes`` to its scenario
+    values, :func:`with_rates`): the sum over the counts of the log density of each under
+    ``observation`` around the expected count (:func:`expected_counts`); ``extra`` is the
+    observation model's sd or dispersion."""
+    from ..analysis.observation import log_density
+
+    trial = study if not changes else with_rates(study, changes)
+    expected = expected_counts(trial, counts, detection=detection)
+    return float(np.sum(log_density(observation, counts.count, expected, extra)))
 
 
 def _number(text: str) -> float:

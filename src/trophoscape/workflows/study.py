@@ -37,8 +37,8 @@ from ..model.system import SPECIES, CoupledSystem, pack
 if TYPE_CHECKING:
     from ..integrate.noise import NoiseModel
 
-__all__ = ["Study", "RunResult", "load_study", "build_study", "run_study", "analyse",
-           "run_seeds", "noise_model", "simulate_replicates"]
+__all__ = ["Study", "RunResult", "load_study", "build_study", "assemble_study", "run_study",
+           "analyse", "run_seeds", "noise_model", "simulate_replicates"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -188,6 +188,24 @@ def _build_study(scenario: Scenario) -> Study:
         corridor_resistance=sc["dispersal.corridor_resistance"],
         resistance=surface,
     )
+    return assemble_study(sc, landscape, network)
+
+
+#: Scenario keys that shape the landscape or the network: a study that changes one of them
+#: must be built again from its files (:func:`build_study`), not re-assembled.
+STRUCTURE_SECTIONS = ("patches",)
+STRUCTURE_KEYS = ("dispersal.kernel", "dispersal.max_distance_km", "dispersal.distance",
+                  "dispersal.corridors", "dispersal.links", "dispersal.corridor_snap_km",
+                  "dispersal.resistance", "dispersal.matrix_resistance",
+                  "dispersal.corridor_resistance")
+
+
+def assemble_study(scenario: Scenario, landscape, network) -> Study:
+    """The local model, movement operators, coupled system, initial state and shocks of a
+    scenario on a landscape and network already built (from the same scenario, or from one
+    that differs only outside :data:`STRUCTURE_KEYS` and the ``[patches]`` section): what a
+    fit does for each trial of its rates, without reading any file again."""
+    sc = scenario
     n = landscape.n_patches
     params = {name: _per_patch(sc, landscape, key) for name, key in PARAMETER_KEYS.items()}
     quality = (landscape.values(sc["patches.quality_field"], key="patches.quality_field")
