@@ -23,9 +23,10 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, RunError
 
-__all__ = ["Counts", "read_counts", "expected_counts", "log_likelihood", "with_rates"]
+__all__ = ["Counts", "read_counts", "expected_counts", "log_likelihood", "with_rates",
+           "Fit", "fit_counts"]
 
 #: The columns of a counts table, in order.
 COUNT_COLUMNS = ("patch_id", "time", "species", "count")
@@ -209,6 +210,118 @@ def log_likelihood(study, counts: Counts, *, observation: str = "lognormal",
     trial = study if not changes else with_rates(study, changes)
     expected = expected_counts(trial, counts, detection=detection)
     return float(np.sum(log_density(observation, counts.count, expected, extra)))
+
+
+@dataclass(frozen=True)
+class Fit:
+    """A maximum-likelihood fit (:func:`fit_counts`).
+
+    Attributes
+    ----------
+    estimates : dict
+        Each estimated scenario key → its estimate.
+    observation : str
+    extra : float or None
+        The observation model's sd (lognormal) or dispersion (negative binomial).
+    log_likelihood : float
+    aic : float
+        ``2 k − 2 log L``, ``k`` counting every estimated quantity (sd or dispersion too).
+    starts : int
+        Starting points tried.
+    agreeing : int
+        Starts that ended within 0.01 of the best log-likelihood.
+    converged : bool
+        The best start's optimiser said it converged.
+    evaluations : int
+        Model runs used.
+    """
+
+    estimates: dict
+    observation: str
+    extra: float | None
+    log_likelihood: float
+    aic: float
+    starts: int
+    agreeing: int
+    converged: bool
+    evaluations: int
+
+
+def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal",
+               bounds=None, detection: float = 1.0, starts: int = 4, seed: int = 1) -> Fit:
+    """Maximum-likelihood estimates of some scenario values from survey counts.
+
+    The values are searched in logarithms within ``bounds`` (key → (low, high); default a
+    hundredth to a hundred times the scenario's value) from ``starts`` points: the
+    scenario's values, then points drawn uniformly in the logarithms (``seed``), each
+    refined by scipy's bounded Nelder–Mead. The lognormal sd is profiled out (its estimate
+    given the expected counts is the root mean square of the log residuals); the negative
+    binomial's dispersion is estimated with the rest, in logarithms; Poisson has none.
+    The runs use tolerances a hundred times tighter than the scenario's, so that the
+    likelihood is smooth enough to search.
+    """
+    from scipy.optimize import minimize
+
+    from ..analysis.observation import log_density
+
+    keys = list(estimate)
+    base = np.array([float(study.scenario[k]) for k in keys])
+    if np.any(base <= 0):
+        k = keys[int(np.argmax(base <= 0))]
+        raise InputError(f"{k} is {study.scenario[k]!r} in the scenario; an estimated value "
+                         "must start above 0", field=k)
+    bounds = dict(bounds or {})
+    lo = np.log([bounds.get(k, (b / 100.0, b * 100.0))[0] for k, b in zip(keys, base)])
+    hi = np.log([bounds.get(k, (b / 100.0, b * 100.0))[1] for k, b in zip(keys, base)])
+    tight = study.scenario.with_values(run__rtol=study.scenario["run.rtol"] / 100.0,
+                                       run__atol=study.scenario["run.atol"] / 100.0)
+    from dataclasses import replace
+
+    study = replace(study, scenario=tight)
+    n_extra = 1 if observation in ("lognormal", "negative_binomial") else 0
+    runs = [0]
+
+    def unpack(theta):
+        values = dict(zip(keys, np.exp(theta[:len(keys)]).tolist()))
+        extra = float(np.exp(theta[len(keys)])) if observation == "negative_binomial" else None
+        return values, extra
+
+    def negative(theta):
+        values, extra = unpack(theta)
+        runs[0] += 1
+        try:
+            expected = expected_counts(with_rates(study, values), counts, detection=detection)
+        except (RunError, InputError):  # a trial the model cannot run: no likelihood there
+            return 1e300
+        if observation == "lognormal":
+            if np.any(expected <= 0):
+                return 1e300
+            resid = np.log(counts.count) - np.log(expected)
+            extra = max(float(np.sqrt(np.mean(resid * resid))), 1e-12)
+        ll = float(np.sum(log_density(observation, counts.count, expected, extra)))
+        return -ll if np.isfinite(ll) else 1e300
+
+    rng = np.random.default_rng(seed)
+    dim = len(keys) + (1 if observation == "negative_binomial" else 0)
+    low = np.r_[lo, [np.log(1e-3)] if observation == "negative_binomial" else []]
+    high = np.r_[hi, [np.log(1e3)] if observation == "negative_binomial" else []]
+    first = np.r_[np.log(base), [0.0] if observation == "negative_binomial" else []]
+    points = [np.clip(first, low, high)] + [rng.uniform(low, high) for _ in range(starts - 1)]
+    results = [minimize(negative, x0, method="Nelder-Mead", bounds=list(zip(low, high)),
+                        options={"xatol": 1e-5, "fatol": 1e-7, "maxfev": 400 * dim})
+               for x0 in points]  # a few starts
+    best = min(results, key=lambda r: r.fun)
+    values, extra = unpack(best.x)
+    if observation == "lognormal":
+        expected = expected_counts(with_rates(study, values), counts, detection=detection)
+        resid = np.log(counts.count) - np.log(expected)
+        extra = float(np.sqrt(np.mean(resid * resid)))
+    ll = -float(best.fun)
+    k = len(keys) + n_extra
+    return Fit(estimates=values, observation=observation, extra=extra, log_likelihood=ll,
+               aic=2 * k - 2 * ll, starts=len(points),
+               agreeing=int(sum(abs(r.fun - best.fun) <= 0.01 for r in results)),
+               converged=bool(best.success), evaluations=runs[0])
 
 
 def _number(text: str) -> float:
