@@ -193,3 +193,28 @@ def test_a_fit_recovers_the_rates_counts_were_drawn_from(tmp_path):
         assert fit.estimates[key] == pytest.approx(value, rel=0.15), key
     assert fit.aic == pytest.approx(2 * 2 - 2 * fit.log_likelihood)
     assert fit.converged and fit.evaluations > 10 and fit.agreeing >= 1
+
+
+def test_the_fit_section_of_a_scenario(tmp_path):
+    # the [fit] keys are checked when the scenario is read (consistency test of the checks)
+    from trophoscape.scenario import parse_scenario
+
+    raw = {"patches": {"path": "p.gpkg"},
+           "fit": {"estimate": ["prey.growth_rate", "predation.attack_rate"],
+                   "observation": "negative_binomial", "detection": 0.6,
+                   "bounds": {"prey.growth_rate": [0.1, 5.0]}}}
+    sc = parse_scenario(raw)
+    assert sc["fit.estimate"] == ["prey.growth_rate", "predation.attack_rate"]
+    assert sc["fit.bounds"] == {"prey.growth_rate": [0.1, 5.0]}
+    assert sc.with_values(prey__growth_rate=2.0)["fit.bounds"] == sc["fit.bounds"]
+    for fit, words in (
+            ({"estimate": ["predation.atack_rate"]}, "did you mean 'predation.attack_rate'"),
+            ({"estimate": ["prey.growth"]}, "is not a number, so it cannot be estimated"),
+            ({"estimate": "prey.growth_rate"}, "is not a list"),
+            ({"estimate": ["prey.growth_rate", "prey.growth_rate"]}, "named twice"),
+            ({"bounds": {"prey.growth_rate": [5.0, 1.0]}}, "give [low, high] with 0 < low"),
+            ({"detection": 0.0}, "fit.detection"),
+            ({"observation": "gamma"}, "fit.observation")):
+        with pytest.raises(InputError) as info:
+            parse_scenario({"patches": {"path": "p.gpkg"}, "fit": fit})
+        assert words in str(info.value)

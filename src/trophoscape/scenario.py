@@ -276,7 +276,64 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "sustained": Key(2.0, _pos, doc="for at least this long (time units)"),
         "window": Key(20.0, _pos, doc="width of the baseline's centred running mean"),
     },
+    "fit": {
+        "estimate": Key((), lambda v: _estimate_keys(v),
+                        doc="numeric scenario keys to estimate from counts, as "
+                            "'section.key'"),
+        "observation": Key("lognormal", _choice("lognormal", "poisson", "negative_binomial"),
+                           doc="how counts scatter around the model's expectation"),
+        "detection": Key(1.0, _number(0, 1, lo_open=True),
+                         doc="share of the individuals of a patch a survey counts"),
+        "bounds": Key(None, lambda v: _bounds_table(v),
+                      doc="per estimated key, [low, high] (default a hundredth to a hundred "
+                          "times the scenario's value)"),
+    },
 }
+
+
+def _numeric_key(name) -> str | None:
+    """Why ``name`` is not a numeric scenario key that a fit could estimate, or None."""
+    if not isinstance(name, str) or "." not in name:
+        return f"{name!r} is not a scenario key; write it as 'section.key'"
+    section, _, key = name.partition(".")
+    spec = SCHEMA.get(section, {}).get(key)
+    if spec is None or section == "fit":
+        known = [f"{s}.{k}" for s, keys in SCHEMA.items() for k in keys if s != "fit"]
+        close = difflib.get_close_matches(name, known, n=1)
+        return (f"{name!r} is not a scenario key" + (f"; did you mean {close[0]!r}?"
+                                                      if close else ""))
+    if isinstance(spec.default, bool) or not isinstance(spec.default, (int, float)):
+        return f"{name!r} is not a number, so it cannot be estimated"
+    return None
+
+
+def _estimate_keys(v):
+    if not isinstance(v, (list, tuple)):
+        return f"{v!r} is not a list; give e.g. [\"prey.growth_rate\", \"predation.attack_rate\"]"
+    for name in v:
+        why = _numeric_key(name)
+        if why:
+            return why
+    if len(set(v)) != len(v):
+        return "a key is named twice; name each once"
+    return None
+
+
+def _bounds_table(v):
+    if v is None:
+        return None
+    if not isinstance(v, dict):
+        return (f"{v!r} is not a table; give e.g. {{\"prey.growth_rate\" = [0.1, 5.0]}}")
+    for name, pair in v.items():
+        why = _numeric_key(name)
+        if why:
+            return why
+        if (not isinstance(pair, (list, tuple)) or len(pair) != 2
+                or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in pair)
+                or not 0 < pair[0] < pair[1] or not math.isfinite(pair[1])):
+            return (f"the bounds of {name} are {pair!r}; give [low, high] with "
+                    "0 < low < high")
+    return None
 
 #: Keys that meant something else in earlier versions: refused with what to write instead.
 RETIRED: dict[tuple[str, str], str] = {

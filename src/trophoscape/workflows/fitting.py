@@ -265,6 +265,12 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
     from ..analysis.observation import log_density
 
     keys = list(estimate)
+    for k in keys:
+        if isinstance(study.scenario[k], bool) or not isinstance(study.scenario[k],
+                                                                 (int, float)):
+            raise InputError(f"{k} is taken per patch from an attribute in the scenario; a "
+                             "fit estimates one value for all patches: give it a number",
+                             field=k)
     base = np.array([float(study.scenario[k]) for k in keys])
     if np.any(base <= 0):
         k = keys[int(np.argmax(base <= 0))]
