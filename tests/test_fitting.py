@@ -218,3 +218,21 @@ def test_the_fit_section_of_a_scenario(tmp_path):
         with pytest.raises(InputError) as info:
             parse_scenario({"patches": {"path": "p.gpkg"}, "fit": fit})
         assert words in str(info.value)
+
+
+def test_expected_counts_do_not_depend_on_tolerances_or_solver(tmp_path, study):
+    # consistency test across numerical settings: the expected counts at tighter
+    # tolerances, or from another explicit solver, agree to the tolerance's order (and to
+    # a millionth of an individual where a trickle of immigrants holds a few 1e-8)
+    from dataclasses import replace
+
+    from trophoscape.workflows.fitting import expected_counts
+
+    path = write(tmp_path, "patch_id,time,species,count\nW1,1.25,prey,10\nW2,3.7,predator,2\n"
+                           "W3,3,prey,5\n")
+    counts = read_counts(path, study)
+    base = expected_counts(study, counts)
+    for changes in ({"run__rtol": 1e-9, "run__atol": 1e-11}, {"run__method": "DOP853"}):
+        other = expected_counts(replace(study, scenario=study.scenario.with_values(**changes)),
+                                counts)
+        np.testing.assert_allclose(other, base, rtol=1e-4, atol=1e-6)

@@ -38,6 +38,7 @@ from __future__ import annotations
 import math
 import os
 from dataclasses import dataclass
+from functools import cached_property
 from pathlib import Path
 
 import numpy as np
@@ -176,10 +177,25 @@ class ResistanceSurface:
 
     # -- least-cost distances
 
+    def _window(self, labels, r0, r1, c0, c1, p):
+        """A search's window: the patch cells, the costs (the source patch's cells 0, cells
+        without a value impassable), the source's own cells and its edge cells, the starts."""
+        lab = labels[r0:r1, c0:c1]
+        cost = self.values[r0:r1, c0:c1].astype(np.float64)
+        cost[~np.isfinite(cost)] = -1.0  # impassable
+        own = lab == p + 1
+        cost[own] = 0.0
+        return lab, cost, own, np.argwhere(_edge_cells(own))
+
+    @cached_property
+    def value_range(self) -> tuple[float, float]:
+        """The lowest and highest value in the raster (1, 1 when it has none), read once."""
+        finite = self.values[np.isfinite(self.values)]
+        return (float(finite.min()), float(finite.max())) if finite.size else (1.0, 1.0)
+
     def _reach(self, max_km: float) -> tuple[int, int]:
         """Cells a path of cost ``max_km`` can go at most, along rows and along columns."""
-        finite = self.values[np.isfinite(self.values)]
-        value = float(finite.min()) if finite.size else 1.0
+        value = self.value_range[0]
         h, w = self.cell_km
         return (int(math.ceil(max_km / (value * h))) + 2,
                 int(math.ceil(max_km / (value * w))) + 2)
@@ -198,12 +214,7 @@ class ResistanceSurface:
         h, w = self.cell_km
         r0, r1 = max(box[0].start - reach[0], 0), min(box[0].stop + reach[0], rows)
         c0, c1 = max(box[1].start - reach[1], 0), min(box[1].stop + reach[1], cols)
-        lab = labels[r0:r1, c0:c1]
-        cost = self.values[r0:r1, c0:c1].astype(np.float64)
-        cost[~np.isfinite(cost)] = -1.0  # impassable
-        own = lab == p + 1
-        cost[own] = 0.0
-        starts = np.argwhere(_edge_cells(own))
+        lab, cost, own, starts = self._window(labels, r0, r1, c0, c1, p)
         # a target's cell is entered at up to max_km plus half a step of it
         limit = max_km + 0.5 * float(np.max(cost[lab > 0], initial=0.0)) * min(h, w)
         cum, _ = _LimitedSearch(cost, limit, sampling=(h, w)).find_costs(starts)
@@ -222,8 +233,7 @@ class ResistanceSurface:
 
     def reach_km(self, max_km: float) -> float:
         """How far (straight, km) a path of cost ``max_km`` can go at most."""
-        finite = self.values[np.isfinite(self.values)]
-        return max_km / (float(finite.min()) if finite.size else 1.0)
+        return max_km / self.value_range[0]
 
     def pairs_from(self, landscape, patches, max_km: float, *, workers=None):
         """The searches from ``patches`` alone: arrays ``(source, target, km)`` of every
@@ -287,7 +297,7 @@ class ResistanceSurface:
         r, c = self.rowcol(mid[:, 0], mid[:, 1])
         cost = np.bincount(which[1:][same], weights=self.values[r, c] * seg,
                            minlength=a.size)
-        return cost + 2 * max(h, w) * float(np.nanmax(self.values))
+        return cost + 2 * max(h, w) * self.value_range[1]
 
     def between(self, landscape, source, target) -> np.ndarray:
         """Least-cost distance (km) of given pairs (say the rows of a links table), the
@@ -304,20 +314,15 @@ class ResistanceSurface:
         ends = np.concatenate([source, target])
         limit = np.zeros(n)
         np.maximum.at(limit, ends, np.concatenate([bound, bound]))
-        limit[~np.isfinite(limit)] = np.inf
-        src, dst, km = [], [], []
+        # where a straight line crosses a hole, any path within the whole raster
+        whole = self.value_range[1] * sum(x * y for x, y in zip(self.shape, self.cell_km))
+        limit[~np.isfinite(limit)] = whole
         from scipy import ndimage
 
         labels = self.patch_cells(landscape)
         boxes = ndimage.find_objects(labels, max_label=n)
-        for p in np.unique(ends).tolist():  # one search per patch named
-            lim = float(limit[p]) if np.isfinite(limit[p]) else float(
-                np.nanmax(self.values)) * sum(x * y for x, y in zip(self.shape, self.cell_km))
-            found, dist = self._search(labels, boxes, p, self._reach(lim), lim)
-            src.append(np.full(found.size, p, dtype=np.int64))
-            dst.append(found)
-            km.append(dist)
-        i, j, d = _symmetric(np.concatenate(src), np.concatenate(dst), np.concatenate(km), n)
+        src, dst, km = _search_chunk(np.unique(ends), (self, labels, boxes, None, limit))
+        i, j, d = _symmetric(src, dst, km, n)
         codes = i * max(n, 1) + j
         wanted = np.minimum(source, target) * max(n, 1) + np.maximum(source, target)
         if codes.size:
@@ -346,13 +351,9 @@ class ResistanceSurface:
         r1 = min(max(boxes[a][0].stop, boxes[b][0].stop) + reach[0], rows)
         c0 = max(min(boxes[a][1].start, boxes[b][1].start) - reach[1], 0)
         c1 = min(max(boxes[a][1].stop, boxes[b][1].stop) + reach[1], cols)
-        lab = labels[r0:r1, c0:c1]
-        cost = self.values[r0:r1, c0:c1].astype(np.float64)
-        cost[~np.isfinite(cost)] = -1.0
-        own = lab == a + 1
-        cost[own] = 0.0
+        lab, cost, own, starts = self._window(labels, r0, r1, c0, c1, a)
         mcp = MCP_Geometric(cost, sampling=(h, w))
-        cum, _ = mcp.find_costs(np.argwhere(_edge_cells(own)))
+        cum, _ = mcp.find_costs(starts)
         target = (lab == b + 1) & np.isfinite(cum)
         if not target.any():
             raise InputError(f"no path over the raster joins patches {landscape.ids[a]!r} "
@@ -386,11 +387,16 @@ def _workers(workers, n: int) -> int:
 
 
 def _search_chunk(patches, job=None):
-    """The searches from some patches (in a forked process, with the inputs of ``_JOB``)."""
+    """The searches from some patches (in a forked process, with the inputs of ``_JOB``).
+    ``job`` is ``(surface, labels, boxes, reach, max_km)``; with ``reach`` None, ``max_km``
+    is an array of one limit per patch position."""
     surface, labels, boxes, reach, max_km = _JOB if job is None else job
     src, dst, km = [], [], []
     for p in np.asarray(patches, dtype=np.int64).tolist():  # one search per patch
-        found, dist = surface._search(labels, boxes, p, reach, max_km)
+        limit = float(max_km if reach is not None else max_km[p])
+        found, dist = surface._search(labels, boxes, p,
+                                      reach if reach is not None else surface._reach(limit),
+                                      limit)
         src.append(np.full(found.size, p, dtype=np.int64))
         dst.append(found)
         km.append(dist)
@@ -565,4 +571,4 @@ def _centre(transform, row, col) -> tuple[float, float]:
 
 def _short(exc) -> str:
     text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-    return text[:200]
+    return text[:200].rstrip(". ")

@@ -161,23 +161,19 @@ def _network_distance(net, i, j, *, limit: float) -> np.ndarray:
 
 
 def _surface(study):
-    """The scenario's resistance raster with its corridors burnt in, or None."""
-    sc = study.scenario
-    if not sc["dispersal.resistance"]:
+    """The study's resistance raster with its corridors burnt in (as the network was built
+    on), or None."""
+    if study.ground is None:
         return None
-    import shapely
-
+    sc = study.scenario
+    if not sc["dispersal.corridors"]:
+        return study.ground
     from ..model.landscape import read_corridors
-    from ..model.resistance import corridor_resistances, read_resistance
+    from ..model.resistance import corridor_resistances
 
-    land = study.landscape
-    surface = read_resistance(sc.resolve(sc["dispersal.resistance"]), crs=land.crs,
-                              patch_bounds=shapely.total_bounds(land.geometries))
-    if sc["dispersal.corridors"]:
-        lines = read_corridors(sc.resolve(sc["dispersal.corridors"]), crs=land.crs)
-        surface = surface.burned(lines.geometry.to_numpy(),
-                                 corridor_resistances(lines, sc["dispersal.corridor_resistance"]))
-    return surface
+    lines = read_corridors(sc.resolve(sc["dispersal.corridors"]), crs=study.landscape.crs)
+    return study.ground.burned(lines.geometry.to_numpy(),
+                               corridor_resistances(lines, sc["dispersal.corridor_resistance"]))
 
 
 def _path(surface, land, a: int, b: int):

@@ -163,16 +163,13 @@ def expected_counts(study, counts: Counts, *, detection: float = 1.0) -> np.ndar
     replicates are left out: the expectation is the deterministic model's.
     """
     from ..integrate.ode import RunSettings, simulate
+    from .study import shock_schedule
 
     sc = study.scenario
     times = np.unique(counts.time)
     settings = RunSettings.from_scenario(sc).options(duration=float(max(times.max(), 0.0)))
     settings["dtype"] = np.float64
-    events = ()
-    if study.shocks:
-        from ..model.shocks import ShockContext, shock_events
-
-        events = shock_events(study.shocks, ShockContext.from_study(study))
+    events = shock_schedule(study)
     if settings["duration"] == 0.0:
         state = np.asarray(study.initial_state, dtype=float).reshape(2, -1)
         return detection * state[counts.species, counts.patch]
@@ -196,7 +193,7 @@ def with_rates(study, changes: dict):
                              "they are; estimate rates and densities instead", field=key)
     scenario = study.scenario.with_values(**{k.replace(".", "__"): v
                                              for k, v in changes.items()})
-    return assemble_study(scenario, study.landscape, study.network)
+    return assemble_study(scenario, study.landscape, study.network, ground=study.ground)
 
 
 def log_likelihood(study, counts: Counts, *, observation: str = "lognormal",

@@ -367,7 +367,7 @@ def relink_candidates(candidates: Candidates, study) -> Candidates:
     kernel links, the candidates are returned as they are."""
     from .candidates import _surface
 
-    if (not study.scenario["dispersal.resistance"] or study.network.kernel == "none"
+    if (study.ground is None or study.network.kernel == "none"
             or candidates.n == 0 or candidates.frame is None):
         return candidates
     surface = _surface(study)

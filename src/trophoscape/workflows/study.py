@@ -53,6 +53,10 @@ class Study:
     initial_state: np.ndarray
     dispersal: dict = field(repr=False)  # per species: emigration_rate, scale_km arrays
     shocks: tuple = ()  # trophoscape.model.shocks objects from the [[shock]] tables
+    # the resistance raster as read (trophoscape.model.resistance.ResistanceSurface, without
+    # the corridors burnt in), or None: kept so that candidates and their evaluation do not
+    # read it again
+    ground: object = field(default=None, repr=False)
 
     @property
     def ids(self) -> np.ndarray:
@@ -188,7 +192,7 @@ def _build_study(scenario: Scenario) -> Study:
         corridor_resistance=sc["dispersal.corridor_resistance"],
         resistance=surface,
     )
-    return assemble_study(sc, landscape, network)
+    return assemble_study(sc, landscape, network, ground=surface)
 
 
 #: Scenario keys that shape the landscape or the network: a study that changes one of them
@@ -200,7 +204,7 @@ STRUCTURE_KEYS = ("dispersal.kernel", "dispersal.max_distance_km", "dispersal.di
                   "dispersal.corridor_resistance")
 
 
-def assemble_study(scenario: Scenario, landscape, network) -> Study:
+def assemble_study(scenario: Scenario, landscape, network, ground=None) -> Study:
     """The local model, movement operators, coupled system, initial state and shocks of a
     scenario on a landscape and network already built (from the same scenario, or from one
     that differs only outside :data:`STRUCTURE_KEYS` and the ``[patches]`` section): what a
@@ -253,8 +257,17 @@ def assemble_study(scenario: Scenario, landscape, network) -> Study:
     shocks = build_shocks(sc["shock"], ids=landscape.ids, network=network, file=sc.path)
     check_run_size(sc, n, model.params, emigration={s: d["emigration_rate"]
                                                     for s, d in dispersal.items()})
-    return Study(scenario=sc, landscape=landscape, network=network, model=model,
+    return Study(scenario=sc, landscape=landscape, network=network, model=model, ground=ground,
                  system=system, initial_state=initial, dispersal=dispersal, shocks=shocks)
+
+
+def shock_schedule(study) -> tuple:
+    """The timed events of the study's ``[[shock]]`` tables, as a run takes them."""
+    if not study.shocks:
+        return ()
+    from ..model.shocks import ShockContext, shock_events
+
+    return shock_events(study.shocks, ShockContext.from_study(study))
 
 
 def physical_memory() -> int:
@@ -535,11 +548,7 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
         ``extras`` what the figures need beyond those (curves, binned tables).
     """
     sc = study.scenario
-    events = ()
-    if study.shocks:
-        from ..model.shocks import ShockContext, shock_events
-
-        events = shock_events(study.shocks, ShockContext.from_study(study))
+    events = shock_schedule(study)
     seeds = run_seeds(sc)
     noise = noise_model(study, seeds)
     writer = None
