@@ -183,17 +183,20 @@ def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> fl
 
 
 def _dense_at(dense, index, x):
-    """Components ``index`` of one step's dense output, each at its own point ``x``.
+    """Components ``index`` of one step's dense output, each at its own points ``x``.
 
-    ``x`` (shape ``(len(index),)``) is the position in the step, 0 at its start and 1 at its
-    end. scipy's Runge–Kutta interpolants are polynomials with per-component coefficients,
-    evaluated here for those rows only; None for other interpolants.
+    ``x`` (shape ``(len(index),)``, or ``(m, len(index))`` for ``m`` points per component)
+    is the position in the step, 0 at its start and 1 at its end. scipy's Runge–Kutta
+    interpolants are polynomials with per-component coefficients, evaluated here for those
+    rows only, at every point in one array operation; None for other interpolants.
     """
+    x = np.asarray(x, dtype=float)
     if isinstance(dense, si._ivp.rk.RkDenseOutput):
-        powers = np.cumprod(np.tile(x, (dense.order + 1, 1)), axis=0)
-        return dense.h * np.einsum("ik,ki->i", dense.Q[index], powers) + dense.y_old[index]
+        powers = np.cumprod(np.broadcast_to(x, (dense.order + 1,) + x.shape), axis=0)
+        q = dense.Q[index]  # (components, order + 1)
+        return dense.h * np.einsum("ij,j...i->...i", q, powers) + dense.y_old[index]
     if isinstance(dense, si._ivp.rk.Dop853DenseOutput):
-        y = np.zeros(np.shape(index))
+        y = np.zeros(x.shape)
         for i, f in enumerate(reversed(dense.F)):
             y += f[index]
             y *= x if i % 2 == 0 else 1.0 - x
@@ -207,6 +210,8 @@ def _dense_at(dense, index, x):
 _NEAR = 0.25
 #: Points per step at which populations near the threshold are looked at between step ends.
 _LOOKS = 16
+#: Points per round, and rounds, that narrow a crossing: 64**7 = 2**42 of the step.
+_REFINE, _ROUNDS = 64, 7
 
 
 def _falls_within(values, level, armed):
@@ -222,7 +227,7 @@ def _falls_within(values, level, armed):
 
 def _grid_values(dense, index):
     grid = np.linspace(0.0, 1.0, _LOOKS + 1)
-    return grid, np.stack([_dense_at(dense, index, np.full(index.size, g)) for g in grid])
+    return grid, _dense_at(dense, index, np.repeat(grid[:, None], index.size, axis=1))
 
 
 def _falls_through_within(dense, index, level, armed):
@@ -245,26 +250,25 @@ def _crossing_positions(dense, index, level, armed):
     there.
 
     The first of ``_LOOKS + 1`` evenly spaced points below the threshold after one at or
-    above it brackets the crossing with the point before it; bisection of the component's
-    own interpolant narrows it to 2**-42 of the step.
+    above it brackets the crossing with the point before it; each round then looks at
+    ``_REFINE - 1`` evenly spaced points within the bracket and keeps the first below the
+    threshold with the point before it, until the bracket is 2**-42 of the step.
     """
     grid, values = _grid_values(dense, index)
     first = _falls_within(values, level, armed)
     first = np.where(first >= 0, first, _LOOKS)
     lo = grid[np.maximum(first - 1, 0)]
     hi = grid[first]
-    for _ in range(38):
-        mid = 0.5 * (lo + hi)
-        below = _dense_at(dense, index, mid) < level
-        hi = np.where(below, mid, hi)
-        lo = np.where(below, lo, mid)
+    inner = np.arange(1, _REFINE)[:, None] / _REFINE
+    for _ in range(_ROUNDS):
+        points = lo + inner * (hi - lo)  # (_REFINE - 1, components)
+        below = _dense_at(dense, index, points) < level
+        j = np.where(below.any(axis=0), np.argmax(below, axis=0), _REFINE - 1)
+        cols = np.arange(index.size)
+        new_hi = np.where(j < _REFINE - 1, points[np.minimum(j, _REFINE - 2), cols], hi)
+        lo = np.where(j > 0, points[np.maximum(j - 1, 0), cols], lo)
+        hi = new_hi
     return hi, _dense_at(dense, index, hi)
-
-
-
-
-
-
 
 
 def choose_method(method: str) -> str:
