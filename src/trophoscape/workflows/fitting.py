@@ -209,6 +209,22 @@ def log_likelihood(study, counts: Counts, *, observation: str = "lognormal",
     return float(np.sum(log_density(observation, counts.count, expected, extra)))
 
 
+#: Signed-root deviance at a 95 % profile-likelihood bound: sqrt of the 0.95 quantile of
+#: chi-squared with one degree of freedom (3.8415; Wilks 1938, Ann. Math. Stat. 9:60).
+_ROOT95 = 1.959963984540054
+#: How far (in log-value) starting points are spread around the scenario's values: within a
+#: factor of 3 either way.
+_START_SPREAD = math.log(3.0)
+#: Correlation of two estimates (log-values) above which they are reported as not
+#: separately identifiable.
+_CORRELATED = 0.95
+#: Search range of the negative binomial's dispersion.
+_DISPERSION_RANGE = (1e-3, 1e4)
+#: Expected counts are floored here in the search only (an extinct patch with counts has
+#: no likelihood; the floor gives the search a slope out of it).
+_FLOOR = 1e-6
+
+
 @dataclass(frozen=True)
 class Fit:
     """A maximum-likelihood fit (:func:`fit_counts`).
@@ -217,51 +233,365 @@ class Fit:
     ----------
     estimates : dict
         Each estimated scenario key → its estimate.
+    low, high : dict
+        Each key → the ends of its 95 % profile-likelihood interval (NaN when intervals were
+        not asked for); an end at the key's bound when the likelihood does not fall by
+        1.92 within the bounds (see ``open_ends``).
+    open_ends : dict
+        Each key → the ends (``"low"``, ``"high"``) where the interval reached the bound.
     observation : str
-    extra : float or None
-        The observation model's sd (lognormal) or dispersion (negative binomial).
+    extras : dict
+        Per species with counts (``"prey"``, ``"predator"``): the observation model's sd
+        (lognormal) or dispersion (negative binomial); empty for Poisson.
     log_likelihood : float
+        The sum over the counts of their log densities at the estimates.
     aic : float
         ``2 k − 2 log L``, ``k`` counting every estimated quantity (sd or dispersion too).
+    n_counts : int
     starts : int
         Starting points tried.
     agreeing : int
         Starts that ended within 0.01 of the best log-likelihood.
     converged : bool
-        The best start's optimiser said it converged.
+        The best start's last search stopped on its tolerances, not on its run limit.
     evaluations : int
-        Model runs used.
+        Model runs used, intervals included.
+    correlation : ndarray
+        Correlations of the estimates (log-values), from the curvature of the likelihood.
+    standard_error : dict
+        Each key → the standard error of the log of its estimate, from the same curvature.
+    profiles : dict
+        Each key → ``(values, log_likelihoods)`` of the profile points computed.
+    warnings : list of str
+        Parameters not identifiable from the counts, and other cautions.
+    expected : ndarray
+        The fitted expected counts, one per row of the counts.
     """
 
     estimates: dict
+    low: dict
+    high: dict
+    open_ends: dict
     observation: str
-    extra: float | None
+    extras: dict
     log_likelihood: float
     aic: float
+    n_counts: int
     starts: int
     agreeing: int
     converged: bool
     evaluations: int
+    correlation: np.ndarray
+    standard_error: dict
+    profiles: dict
+    warnings: list
+    expected: np.ndarray
+
+    @property
+    def extra(self):
+        """The one sd or dispersion when only one species was counted, else a dict."""
+        if len(self.extras) == 1:
+            return next(iter(self.extras.values()))
+        return dict(self.extras) or None
+
+
+#: The fit a forked worker computes runs for, while a pool works on it.
+_JOB = None
+
+
+def _run_in_worker(theta):
+    return _JOB.expected(theta)
+
+
+class _Likelihood:
+    """The log-likelihood of counts as a function of the log-values of estimated keys.
+
+    Each species' sd (lognormal) or dispersion (negative binomial) is set to its best value
+    given the expected counts. For the searches the counts are also given as deviance
+    residuals ``e`` with ``Σ e² = −2 (log L − log L_saturated)`` at fixed sd or dispersion,
+    so that scipy's least-squares search, which uses the curvature ``JᵀJ``, maximises the
+    likelihood.
+    """
+
+    def __init__(self, study, counts, keys, observation, detection, lo, hi, workers):
+        self.study, self.counts, self.keys = study, counts, list(keys)
+        self.observation, self.detection = observation, float(detection)
+        self.lo, self.hi = lo, hi
+        self.species = [s for s in (0, 1) if np.any(counts.species == s)]
+        self.rows = {s: counts.species == s for s in self.species}
+        self.runs = 0
+        self.workers = workers
+        self.pool = None
+        rtol = float(study.scenario["run.rtol"])
+        #: forward-difference step in log-values: about the square root of the runs' noise
+        self.step = float(np.clip(math.sqrt(rtol), 1e-6, 1e-3))
+
+    # -- runs -----------------------------------------------------------------------
+    def expected(self, theta):
+        """Expected counts at log-values ``theta`` (None where the model cannot run)."""
+        values = dict(zip(self.keys, np.exp(theta).tolist()))
+        try:
+            return expected_counts(with_rates(self.study, values), self.counts,
+                                   detection=self.detection)
+        except (RunError, InputError):
+            return None
+
+    def expected_many(self, thetas):
+        self.runs += len(thetas)
+        if self.pool is None or len(thetas) == 1:
+            return [self.expected(t) for t in thetas]
+        return list(self.pool.map(_run_in_worker, thetas))
+
+    def __enter__(self):
+        import multiprocessing as mp
+
+        workers = self.workers
+        if workers is None:
+            from .tasks import default_workers
+
+            workers = default_workers()
+        workers = min(int(workers), len(self.keys))
+        if (workers > 1 and "fork" in mp.get_all_start_methods()
+                and mp.parent_process() is None):
+            from concurrent.futures import ProcessPoolExecutor
+
+            from .tasks import _init_worker
+
+            global _JOB
+            _JOB = self
+            self.pool = ProcessPoolExecutor(workers, mp_context=mp.get_context("fork"),
+                                            initializer=_init_worker,
+                                            initargs=(__import__("os").getpid(),))
+        return self
+
+    def __exit__(self, *exc):
+        global _JOB
+        if self.pool is not None:
+            from .tasks import _stop_pool
+
+            _stop_pool(self.pool)
+            self.pool = None
+        _JOB = None
+        return False
+
+    # -- the observation model ---------------------------------------------------------
+    def best_extras(self, mu) -> dict:
+        """Each counted species' sd or dispersion that maximises the likelihood at ``mu``."""
+        from scipy.optimize import minimize_scalar
+
+        from ..analysis.observation import negative_binomial_log_pmf
+
+        y = self.counts.count
+        out = {}
+        for s in self.species:
+            rows = self.rows[s]
+            m = np.maximum(mu[rows], _FLOOR)
+            if self.observation == "lognormal":
+                r = np.log(y[rows]) - np.log(m)
+                out[s] = max(float(np.sqrt(np.mean(r * r))), 1e-9)
+            elif self.observation == "negative_binomial":
+                best = minimize_scalar(
+                    lambda lk: -float(np.sum(negative_binomial_log_pmf(y[rows], m,
+                                                                       math.exp(lk)))),
+                    bounds=tuple(math.log(v) for v in _DISPERSION_RANGE), method="bounded",
+                    options={"xatol": 1e-6})
+                out[s] = float(math.exp(best.x))
+        return out
+
+    def extra_array(self, extras):
+        if not extras:
+            return None
+        e = np.ones(self.counts.n)
+        for s, v in extras.items():
+            e[self.rows[s]] = v
+        return e
+
+    def log_likelihood(self, mu, extras) -> float:
+        from ..analysis.observation import log_density
+
+        if mu is None:
+            return -math.inf
+        ll = float(np.sum(log_density(self.observation, self.counts.count, mu,
+                                      self.extra_array(extras))))
+        return ll if not math.isnan(ll) else -math.inf
+
+    def residuals(self, mu, extras) -> np.ndarray:
+        from scipy.special import kl_div
+
+        y = self.counts.count
+        m = np.maximum(mu, _FLOOR)
+        if self.observation == "lognormal":
+            return (np.log(y) - np.log(m)) / self.extra_array(extras)
+        half = kl_div(y, m)
+        if self.observation == "negative_binomial":
+            k = self.extra_array(extras)
+            half = half - kl_div(y + k, m + k)
+        return np.sign(y - m) * np.sqrt(2.0 * np.maximum(half, 0.0))
+
+    # -- the searches ------------------------------------------------------------------
+    def differences(self, theta, free, extras, f0) -> np.ndarray:
+        """Forward differences of the residuals ``f0`` (at ``theta``) in each free
+        log-value (backward at the upper bound; a column of 0 where the run fails)."""
+        index = np.flatnonzero(free)
+        h = np.where(theta[index] + self.step <= self.hi[index], self.step, -self.step)
+        trials = []
+        for j, step in zip(index, h):
+            t = theta.copy()
+            t[j] += step
+            trials.append(t)
+        cols = [np.zeros_like(f0) if m is None else (self.residuals(m, extras) - f0) / step
+                for step, m in zip(h, self.expected_many(trials))]
+        return np.column_stack(cols)
+
+    def maximise(self, theta0, free, *, max_rounds: int = 20):
+        """Maximise over the log-values ``free`` (a boolean mask) from ``theta0``, the
+        others held; returns ``(theta, mu, extras, log L, converged, jacobian)``."""
+        from scipy.optimize import least_squares
+
+        theta = np.array(theta0, dtype=float)
+        lo, hi = self.lo[free], self.hi[free]
+        width = hi - lo
+        theta[free] = np.clip(theta[free], lo + 1e-9 * width, hi - 1e-9 * width)
+        (mu,) = self.expected_many([theta])
+        if mu is None:
+            return theta, None, {}, -math.inf, False, None
+        extras = self.best_extras(mu)
+        ll = self.log_likelihood(mu, extras)
+        fails = np.full(self.counts.n, 1e3)
+        converged, jac_last = False, None
+        for _ in range(max_rounds):
+            cache = {}
+
+            def full(x):
+                t = theta.copy()
+                t[free] = x
+                return t
+
+            def fun(x, extras=extras, cache=cache):
+                key = x.tobytes()
+                if key not in cache:
+                    (m,) = self.expected_many([full(x)])
+                    cache.clear()
+                    cache[key] = (fails if m is None else self.residuals(m, extras), m)
+                return cache[key][0]
+
+            def jac(x, extras=extras, cache=cache):
+                return self.differences(full(x), free, extras, fun(x))
+
+            res = least_squares(fun, theta[free], jac=jac, bounds=(lo, hi), method="trf",
+                                x_scale="jac", ftol=1e-7, xtol=1e-7, gtol=1e-7,
+                                max_nfev=60)
+            converged, jac_last = res.status > 0, res.jac
+            theta[free] = res.x
+            key = res.x.tobytes()
+            m = cache[key][1] if key in cache else self.expected_many([theta])[0]
+            if m is None:
+                break
+            mu = m
+            new_extras = self.best_extras(mu)
+            new_ll = self.log_likelihood(mu, new_extras)
+            gain = new_ll - ll
+            extras, ll = new_extras, new_ll
+            if not self.species or self.observation == "poisson" or abs(gain) < 1e-4:
+                break
+        return theta, mu, extras, ll, converged, jac_last
+
+    def profile(self, j, theta_hat, ll_hat, cov):
+        """The profile of parameter ``j`` out to where the log-likelihood has fallen by
+        1.92 (a 95 % interval) on each side, or to its bound: ``(low, high, open ends,
+        points, best point seen)``."""
+        free = np.ones(theta_hat.size, dtype=bool)
+        free[j] = False
+        se = math.sqrt(cov[j, j]) if np.isfinite(cov[j, j]) and cov[j, j] > 0 else 0.1
+        points = [(float(theta_hat[j]), ll_hat)]
+        ends, open_ends, better = [], [], None
+        for side, limit in ((-1, self.lo[j]), (1, self.hi[j])):
+            room = abs(limit - theta_hat[j])
+            step = min(_ROOT95 * se, room)
+            seen = [(0.0, 0.0)]  # (distance, signed root) on this side
+            end = None
+            for _ in range(8):
+                if step <= 1e-12:
+                    break
+                x = theta_hat[j] + side * step
+                start = theta_hat + cov[:, j] / cov[j, j] * (x - theta_hat[j]) \
+                    if cov[j, j] > 0 and np.all(np.isfinite(cov[:, j])) else theta_hat.copy()
+                start[j] = x
+                t, _, _, ll, _, _ = self.maximise(start, free)
+                if ll > ll_hat + 0.01 and (better is None or ll > better[1]):
+                    better = (t, ll)
+                r = math.sqrt(max(0.0, 2.0 * (ll_hat - ll))) if np.isfinite(ll) else np.inf
+                points.append((float(x), ll))
+                seen.append((step, r))
+                if abs(r - _ROOT95) < 0.1:  # the signed root is about linear here
+                    end = step * _ROOT95 / r
+                    break
+                if r < _ROOT95 and step >= room * (1 - 1e-9):
+                    end = room
+                    open_ends.append("low" if side < 0 else "high")
+                    break
+                factor = _ROOT95 / r if 0 < r < np.inf else (4.0 if r == 0 else 0.5)
+                step = min(step * float(np.clip(factor, 0.25, 4.0)), room)
+            if end is None:  # between the last point below 1.96 and the first above
+                seen.sort()
+                below = [p for p in seen if p[1] < _ROOT95]
+                above = [p for p in seen if p[1] >= _ROOT95]
+                if above:
+                    (d0, r0), (d1, r1) = below[-1], above[0]
+                    end = d0 + (d1 - d0) * (_ROOT95 - r0) / (r1 - r0) if np.isfinite(r1) \
+                        else 0.5 * (d0 + d1)
+                else:
+                    end = seen[-1][0]
+            ends.append(theta_hat[j] + side * end)
+        points.sort()
+        return ends[0], ends[1], open_ends, points, better
 
 
 def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal",
-               bounds=None, detection: float = 1.0, starts: int = 4, seed: int = 1) -> Fit:
-    """Maximum-likelihood estimates of some scenario values from survey counts.
+               bounds=None, detection: float = 1.0, starts: int = 4, seed: int = 1,
+               intervals: bool = True, workers=None) -> Fit:
+    """Maximum-likelihood estimates of some scenario values from survey counts, with 95 %
+    profile-likelihood intervals.
 
     The values are searched in logarithms within ``bounds`` (key → (low, high); default a
     hundredth to a hundred times the scenario's value) from ``starts`` points: the
-    scenario's values, then points drawn uniformly in the logarithms (``seed``), each
-    refined by scipy's bounded Nelder–Mead. The lognormal sd is profiled out (its estimate
-    given the expected counts is the root mean square of the log residuals); the negative
-    binomial's dispersion is estimated with the rest, in logarithms; Poisson has none.
-    The runs use tolerances a hundred times tighter than the scenario's, so that the
-    likelihood is smooth enough to search.
+    scenario's values, then points drawn (``seed``) within a factor of 3 of them. Each
+    search is scipy's bounded least squares (``least_squares``, trust-region reflective)
+    on the counts' deviance residuals, with gradients by forward differences of the
+    coupled system's runs, computed on ``workers`` processes (default all cores; results do
+    not depend on it). Each species' lognormal sd or negative-binomial dispersion is set
+    to its best value in turn with the rates until the likelihood stops rising. The runs
+    use tolerances a hundred times tighter than the scenario's, so the likelihood is smooth
+    enough for differences, and without removing populations that fall below
+    ``run.extinction_abundance``: a removal makes the expected counts jump as the rates
+    change, and a likelihood with jumps cannot be searched by its slope. The fit fits the
+    deterministic model's smooth course; a warning says when removals, applied at the
+    estimates, would lower the log-likelihood by more than 1.
+
+    With ``intervals``, each value is profiled: held at values stepping away from its
+    estimate, the others searched again, until the log-likelihood has fallen by
+    χ²₁(0.95)/2 = 1.92 (Wilks 1938) or the bound is reached (the interval then ends at the
+    bound and the value is reported as not identifiable). Pairs of estimates correlated
+    above 0.95 (from the curvature of the likelihood) are reported too.
+
+    Raises
+    ------
+    InputError
+        A key given per patch, a value not above 0, or fewer counts than estimated
+        quantities.
+    RunError
+        No start could be run.
     """
-    from scipy.optimize import minimize
+    from dataclasses import replace
 
-    from ..analysis.observation import log_density
+    from ..analysis.observation import OBSERVATION_MODELS
 
+    if observation not in OBSERVATION_MODELS:
+        raise ValueError(f"unknown observation model {observation!r}")
     keys = list(estimate)
+    if not keys:
+        raise InputError("nothing to estimate; list scenario keys in [fit] estimate, e.g. "
+                         "[\"prey.growth_rate\"]", field="fit.estimate")
     for k in keys:
         if isinstance(study.scenario[k], bool) or not isinstance(study.scenario[k],
                                                                  (int, float)):
@@ -273,58 +603,93 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
         k = keys[int(np.argmax(base <= 0))]
         raise InputError(f"{k} is {study.scenario[k]!r} in the scenario; an estimated value "
                          "must start above 0", field=k)
+    n_species = len(set(counts.species.tolist()))
+    n_extra = n_species if OBSERVATION_MODELS[observation] else 0
+    if counts.n < len(keys) + n_extra:
+        raise InputError(f"the table has {counts.n} counts, fewer than the "
+                         f"{len(keys) + n_extra} quantities the fit estimates ({len(keys)} "
+                         f"scenario values and {n_extra} observation "
+                         f"{OBSERVATION_MODELS[observation] or 'parameter'}s); add counts or "
+                         "estimate fewer values", file=counts.path, field="count")
     bounds = dict(bounds or {})
     lo = np.log([bounds.get(k, (b / 100.0, b * 100.0))[0] for k, b in zip(keys, base)])
     hi = np.log([bounds.get(k, (b / 100.0, b * 100.0))[1] for k, b in zip(keys, base)])
-    tight = study.scenario.with_values(run__rtol=study.scenario["run.rtol"] / 100.0,
-                                       run__atol=study.scenario["run.atol"] / 100.0)
-    from dataclasses import replace
-
+    scenario = study.scenario
+    tight = scenario.with_values(run__rtol=scenario["run.rtol"] / 100.0,
+                                 run__atol=scenario["run.atol"] / 100.0,
+                                 run__extinction_abundance=0.0)
     study = replace(study, scenario=tight)
-    n_extra = 1 if observation in ("lognormal", "negative_binomial") else 0
-    runs = [0]
-
-    def unpack(theta):
-        values = dict(zip(keys, np.exp(theta[:len(keys)]).tolist()))
-        extra = float(np.exp(theta[len(keys)])) if observation == "negative_binomial" else None
-        return values, extra
-
-    def negative(theta):
-        values, extra = unpack(theta)
-        runs[0] += 1
-        try:
-            expected = expected_counts(with_rates(study, values), counts, detection=detection)
-        except (RunError, InputError):  # a trial the model cannot run: no likelihood there
-            return 1e300
-        if observation == "lognormal":
-            if np.any(expected <= 0):
-                return 1e300
-            resid = np.log(counts.count) - np.log(expected)
-            extra = max(float(np.sqrt(np.mean(resid * resid))), 1e-12)
-        ll = float(np.sum(log_density(observation, counts.count, expected, extra)))
-        return -ll if np.isfinite(ll) else 1e300
-
     rng = np.random.default_rng(seed)
-    dim = len(keys) + (1 if observation == "negative_binomial" else 0)
-    low = np.r_[lo, [np.log(1e-3)] if observation == "negative_binomial" else []]
-    high = np.r_[hi, [np.log(1e3)] if observation == "negative_binomial" else []]
-    first = np.r_[np.log(base), [0.0] if observation == "negative_binomial" else []]
-    points = [np.clip(first, low, high)] + [rng.uniform(low, high) for _ in range(starts - 1)]
-    results = [minimize(negative, x0, method="Nelder-Mead", bounds=list(zip(low, high)),
-                        options={"xatol": 1e-5, "fatol": 1e-7, "maxfev": 400 * dim})
-               for x0 in points]  # a few starts
-    best = min(results, key=lambda r: r.fun)
-    values, extra = unpack(best.x)
-    if observation == "lognormal":
-        expected = expected_counts(with_rates(study, values), counts, detection=detection)
-        resid = np.log(counts.count) - np.log(expected)
-        extra = float(np.sqrt(np.mean(resid * resid)))
-    ll = -float(best.fun)
-    k = len(keys) + n_extra
-    return Fit(estimates=values, observation=observation, extra=extra, log_likelihood=ll,
-               aic=2 * k - 2 * ll, starts=len(points),
-               agreeing=int(sum(abs(r.fun - best.fun) <= 0.01 for r in results)),
-               converged=bool(best.success), evaluations=runs[0])
+    first = np.clip(np.log(base), lo, hi)
+    points = [first] + [np.clip(first + rng.uniform(-_START_SPREAD, _START_SPREAD, first.size),
+                                lo, hi) for _ in range(max(1, starts) - 1)]
+    free = np.ones(len(keys), dtype=bool)
+    with _Likelihood(study, counts, keys, observation, detection, lo, hi, workers) as like:
+        results = [like.maximise(x0, free) for x0 in points]
+        best = max(results, key=lambda r: r[3])
+        theta, mu, extras, ll, converged, jac = best
+        if mu is None or not np.isfinite(ll):
+            raise RunError("no starting point gave a run the counts are possible under; "
+                           "check the scenario's values and bounds of the estimated keys")
+        # the curvature at the estimates (fresh differences there, all keys free)
+        (mu_hat,) = like.expected_many([theta])
+        jac = like.differences(theta, free, extras, like.residuals(mu_hat, extras))
+        cov = np.linalg.pinv(jac.T @ jac)
+        sd = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            corr = cov / np.outer(sd, sd)
+        warnings = []
+        low, high, open_ends, profiles = {}, {}, {}, {}
+        for j, k in enumerate(keys):
+            if intervals:
+                a, b, ends, pts, better = like.profile(j, theta, ll, cov)
+                low[k], high[k], open_ends[k] = float(np.exp(a)), float(np.exp(b)), ends
+                profiles[k] = (np.exp([p[0] for p in pts]), np.array([p[1] for p in pts]))
+                if ends:
+                    warnings.append(f"{k} is not identifiable from these counts: the "
+                                    "likelihood hardly changes out to its "
+                                    f"{' and '.join(ends)} bound (the interval ends there)")
+                if better is not None:
+                    warnings.append(f"holding {k} at {math.exp(better[0][j]):.4g} gave a "
+                                    f"higher likelihood ({better[1]:.4g} against {ll:.4g}): "
+                                    "the estimates are a local optimum; try more starts or "
+                                    "other bounds")
+            else:
+                low[k] = high[k] = math.nan
+                open_ends[k] = []
+        for i in range(len(keys)):
+            for j in range(i + 1, len(keys)):
+                if abs(corr[i, j]) > _CORRELATED:
+                    warnings.append(f"{keys[i]} and {keys[j]} are not separately identifiable "
+                                    f"from these counts (correlation {corr[i, j]:+.2f}): "
+                                    "their ratio or product is determined, not each")
+        threshold = float(scenario["run.extinction_abundance"])
+        if threshold > 0:
+            # the searches run without removals (they make the expected counts jump with
+            # the rates); say so where removals would change the fit at the estimates
+            removing = replace(study, scenario=tight.with_values(
+                run__extinction_abundance=threshold))
+            like.runs += 1
+            with_removals = like.log_likelihood(
+                expected_counts(with_rates(removing, dict(zip(keys, np.exp(theta).tolist()))),
+                                counts, detection=detection), extras)
+            if not with_removals >= ll - 1.0:
+                warnings.append(
+                    "at the estimates some populations fall below the extinction threshold "
+                    f"({threshold:g}), which the fit's runs do not apply and other commands "
+                    f"do: with removals the log-likelihood is {with_removals:.6g} against "
+                    f"{ll:.6g}; treat the fit with care, or lower run.extinction_abundance")
+        runs = like.runs
+    names = {0: "prey", 1: "predator"}
+    k_total = len(keys) + len(extras)
+    return Fit(estimates=dict(zip(keys, np.exp(theta).tolist())), low=low, high=high,
+               open_ends=open_ends, observation=observation,
+               extras={names[s]: v for s, v in sorted(extras.items())}, log_likelihood=ll,
+               aic=2 * k_total - 2 * ll, n_counts=counts.n, starts=len(points),
+               agreeing=int(sum(abs(r[3] - ll) <= 0.01 for r in results)),
+               converged=bool(converged), evaluations=runs, correlation=corr,
+               standard_error=dict(zip(keys, sd.tolist())), profiles=profiles,
+               warnings=warnings, expected=mu)
 
 
 def _number(text: str) -> float:
