@@ -167,6 +167,10 @@ TOML_ADVICE = "; correct the file there (text values need quotes, sections [brac
 UNREADABLE = "cannot be read as a GeoJSON (.geojson), GeoPackage (.gpkg) or Shapefile (.shp)"
 LINKS_COLUMNS = "columns source,target,weight[,survival][,directed]"
 
+FIT_SCENARIO = scenario(patches={"id_field": "pid"}) + '[fit]\nestimate = ["prey.growth_rate"]\n'
+COUNTS_HEAD = "patch_id,time,species,count\n"
+FIT_ARGV = ("fit", "s.toml", "--counts", "c.csv", "--out", "out")
+
 CASES = [
     # ---------------------------------------------------------------- the scenario file
     Case("toml-syntax",
@@ -551,6 +555,43 @@ CASES = [
          "run would record 2,000,000,001 census rows",
          argv=("sweep", "s.toml", "--vary", "run.census_interval=0.5,1e-9", "--out", "sw"),
          prefix=True),
+    # ---------------------------------------------------------------- fit: counts and [fit]
+    Case("fit-unknown-patch",
+         "error: c.csv: feature 1: field 'patch_id': unknown patch 'A9'; give the id of a "
+         "patch of the scenario's patch file",
+         {"s.toml": FIT_SCENARIO, "c.csv": COUNTS_HEAD + "A1,1,prey,30\nA9,1,prey,30\n"},
+         argv=FIT_ARGV),
+    Case("fit-count-not-a-number",
+         "error: c.csv: feature 0: field 'count': 'a few' is not a finite number",
+         {"s.toml": FIT_SCENARIO, "c.csv": COUNTS_HEAD + "A1,1,prey,a few\n"}, argv=FIT_ARGV),
+    Case("fit-negative-count",
+         "error: c.csv: feature 0: field 'count': count -3 is negative; give a count of at "
+         "least 0",
+         {"s.toml": FIT_SCENARIO, "c.csv": COUNTS_HEAD + "A1,1,prey,-3\n"}, argv=FIT_ARGV),
+    Case("fit-time-outside-the-run",
+         "error: c.csv: feature 0: field 'time': time 9 is outside the run (0 to 2); give "
+         "times from the start of the run, in its time unit",
+         {"s.toml": FIT_SCENARIO, "c.csv": COUNTS_HEAD + "A1,9,prey,3\n"}, argv=FIT_ARGV),
+    Case("fit-unknown-species",
+         "error: c.csv: feature 0: field 'species': 'hare' is not a species; give prey or "
+         "predator",
+         {"s.toml": FIT_SCENARIO, "c.csv": COUNTS_HEAD + "A1,1,hare,3\n"}, argv=FIT_ARGV),
+    Case("fit-fewer-counts-than-quantities",
+         "error: c.csv: field 'count': the table has 2 counts, fewer than the 3 quantities the "
+         "fit estimates (2 scenario values and 1 observation sd); add counts or estimate "
+         "fewer values",
+         {"s.toml": FIT_SCENARIO.replace('["prey.growth_rate"]',
+                                         '["prey.growth_rate", "predation.attack_rate"]'),
+          "c.csv": COUNTS_HEAD + "A1,1,prey,30\nA2,1,prey,20\n"}, argv=FIT_ARGV),
+    Case("fit-estimate-not-a-key",
+         "error: s.toml: field 'fit.estimate': 'prey.growth' is not a number, so it cannot be "
+         "estimated",
+         {"s.toml": FIT_SCENARIO.replace("prey.growth_rate", "prey.growth"),
+          "c.csv": COUNTS_HEAD + "A1,1,prey,30\n"}, argv=FIT_ARGV),
+    Case("fit-no-fit-section",
+         "error: s.toml: field 'fit.estimate': the scenario has nothing to estimate; add a "
+         "[fit] section with estimate = [\"prey.growth_rate\", ...]",
+         {"c.csv": COUNTS_HEAD + "A1,1,prey,30\n"}, argv=FIT_ARGV),
     # ---------------------------------------------------------------- a failed run: exit 1
     Case("explosive-growth",  # exponential prey at r = 2000 per year, no predator
          "error: the run failed: ",

@@ -287,6 +287,9 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "bounds": Key(None, lambda v: _bounds_table(v),
                       doc="per estimated key, [low, high] (default a hundredth to a hundred "
                           "times the scenario's value)"),
+        "starts": Key(4, _number(1, 50, integer=True),
+                      doc="starting points of the search: the scenario's values, then points "
+                          "drawn (run.seed) within a factor of 3 of them"),
     },
 }
 

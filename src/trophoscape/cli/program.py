@@ -35,12 +35,13 @@ FLAGS = {
     "weights": "--weights", "screen": "--screen", "exhaustive_limit": "--exhaustive-limit",
     "links": "--remove-links", "columns": "--columns",
     "runs": "--no-runs", "origins": "--origins", "patches": "--patches", "name": "--name",
+    "counts": "--counts",
     "scenarios": "scenarios",  # compare's positional argument
 }
 
 #: Modules that add a command: each has ``add_parser(subparsers)``, which registers its
 #: parser with ``set_defaults(handler=fn)``; ``fn(args)`` returns the exit code.
-COMMAND_MODULES: tuple[str, ...] = ("init", "spread", "corridors", "sweep")
+COMMAND_MODULES: tuple[str, ...] = ("init", "spread", "corridors", "sweep", "fit")
 
 EPILOG_RUN = "example:\n  trophoscape run valley.toml --out results/valley-a"
 EPILOG_CHECK = "example:\n  trophoscape check valley.toml"

@@ -1069,3 +1069,146 @@ def regional_extinction_plot(dataset, *, path, species="predator", time_unit="ye
 
 
 __all__ += ["regional_extinction_probability", "regional_extinction_plot"]
+
+
+# --------------------------------------------------------------------------------------------
+# fitting to survey counts
+
+#: Patches drawn in the figure of observed against fitted counts.
+MAX_FIT_PANELS = 9
+
+
+@_plain_text
+def fitted_counts_panels(course, observed, *, path, time_unit="year") -> Path:
+    """Observed counts (points) and the fitted model's expected counts (lines) over time,
+    one small panel per patch.
+
+    Parameters
+    ----------
+    course : dict
+        Patch id → ``(times, prey, predator)``, the expected counts along the fitted run
+        (arrays of the same length).
+    observed : dict
+        Patch id → ``(times, counts, species)`` of its survey rows (species 0 prey,
+        1 predator).
+    path : str or path-like
+    """
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
+
+    ids = list(course)[:MAX_FIT_PANELS]
+    n = max(len(ids), 1)
+    ncols = 1 if n == 1 else 2 if n <= 4 else 3
+    nrows = math.ceil(n / ncols)
+    fig = Figure(figsize=(max(3.3 * ncols + 0.6, 5.6), 2.2 * nrows + 1.0), layout="constrained")
+    axes = np.atleast_1d(fig.subplots(nrows, ncols, sharex=True, squeeze=False)).ravel()
+    for ax, pid in zip(axes, ids):
+        t, prey, predator = course[pid]
+        ax.plot(t, prey, linewidth=1.1, **PREY_STYLE)
+        ax.plot(t, predator, linewidth=1.1, **PREDATOR_STYLE)
+        ot, oc, os_ = observed.get(pid, (np.empty(0), np.empty(0), np.empty(0)))
+        for s, style in ((0, PREY_STYLE), (1, PREDATOR_STYLE)):
+            pick = os_ == s
+            ax.plot(ot[pick], oc[pick], linestyle="none", marker="o" if s == 0 else "s",
+                    markersize=3.2, markerfacecolor="none", color=style["color"])
+        top = max(1.0, np.nanmax(np.r_[prey, predator, oc], initial=0.0))
+        ax.set_yscale("symlog", linthresh=1.0, linscale=0.4)
+        ax.set_ylim(-0.1, top * 1.6)
+        ax.set_title(_literal(f"patch {pid}"), fontsize=9)
+        ax.tick_params(labelsize=8, labelbottom=True)
+        ax.grid(True, which="major", color="0.9", linewidth=0.5)
+    for ax in axes[len(ids):]:
+        ax.set_visible(False)
+    handles = [Line2D([], [], linewidth=1.4, label="prey, fitted", **PREY_STYLE),
+               Line2D([], [], linestyle="none", marker="o", markerfacecolor="none",
+                      color=PREY_STYLE["color"], label="prey, counted"),
+               Line2D([], [], linewidth=1.4, label="predator, fitted", **PREDATOR_STYLE),
+               Line2D([], [], linestyle="none", marker="s", markerfacecolor="none",
+                      color=PREDATOR_STYLE["color"], label="predator, counted")]
+    fig.legend(handles=handles, loc="outside upper center", ncol=4, frameon=False, fontsize=8)
+    fig.supxlabel(_literal(f"time ({time_unit})"), fontsize=9)
+    fig.supylabel("count (individuals)", fontsize=9)
+    return _save(fig, Path(path))
+
+
+@_plain_text
+def observed_fitted_scatter(observed, expected, species, *, path) -> Path:
+    """Every count against the fitted model's expected count, log–log, with the 1:1 line."""
+    from matplotlib.figure import Figure
+
+    observed = np.asarray(observed, dtype=float)
+    expected = np.asarray(expected, dtype=float)
+    species = np.asarray(species)
+    fig = Figure(figsize=(4.6, 4.4), layout="constrained")
+    ax = fig.subplots()
+    shift = 1.0  # log(1 + count): zeros show
+    for s, (name, style) in enumerate((("prey", PREY_STYLE), ("predator", PREDATOR_STYLE))):
+        pick = species == s
+        if pick.any():
+            ax.plot(expected[pick] + shift, observed[pick] + shift, linestyle="none",
+                    marker="o" if s == 0 else "s", markersize=2.5, alpha=0.5,
+                    color=style["color"], label=name)
+    both = np.r_[observed, expected] + shift
+    lo, hi = float(np.nanmin(both, initial=1.0)), float(np.nanmax(both, initial=10.0))
+    ax.plot([lo, hi], [lo, hi], color="0.3", linewidth=0.8, label="1:1")
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("fitted expected count + 1", fontsize=9)
+    ax.set_ylabel("observed count + 1", fontsize=9)
+    ax.legend(frameon=False, fontsize=8)
+    ax.grid(True, color="0.9", linewidth=0.5)
+    return _save(fig, Path(path))
+
+
+@_plain_text
+def profile_panels(profiles, *, path) -> Path:
+    """Each estimated value's profile: the fall of the log-likelihood from its maximum as
+    the value is held away from its estimate (the other values re-estimated), with the
+    1.92 line that bounds the 95 % interval.
+
+    ``profiles``: key → ``(values, log_likelihoods, estimate, low, high)``.
+    """
+    from matplotlib.figure import Figure
+
+    keys = list(profiles)
+    n = max(len(keys), 1)
+    ncols = 1 if n == 1 else 2 if n <= 4 else 3
+    nrows = math.ceil(n / ncols)
+    fig = Figure(figsize=(max(3.3 * ncols + 0.6, 5.0), 2.4 * nrows + 0.6), layout="constrained")
+    axes = np.atleast_1d(fig.subplots(nrows, ncols, squeeze=False)).ravel()
+    from matplotlib.ticker import MaxNLocator
+
+    for ax, key in zip(axes, keys):
+        values, ll, estimate, low, high = profiles[key]
+        values, ll = np.asarray(values, dtype=float), np.asarray(ll, dtype=float)
+        top = float(np.nanmax(np.r_[ll, -np.inf]))
+        fall = top - ll
+        ok = np.isfinite(fall)
+        values, fall = values[ok], fall[ok]
+        order = np.argsort(values)
+        values, fall = values[order], fall[order]
+        if values.size > 1:
+            # between the points computed, the signed root of twice the fall is taken as
+            # linear in the log-value (it is exactly so for a normal likelihood)
+            root = np.sign(np.log(values) - np.log(estimate)) * np.sqrt(2 * fall)
+            x = np.geomspace(values[0], values[-1], 200)
+            ax.plot(x, 0.5 * np.interp(np.log(x), np.log(values), root) ** 2,
+                    color=OKABE_ITO[0], linewidth=1.0)
+        ax.plot(values, fall, linestyle="none", marker="o", markersize=3.5,
+                color=OKABE_ITO[0])
+        ax.axhline(1.92, color=OKABE_ITO[6], linewidth=0.9, linestyle="--")
+        ax.axvline(estimate, color="0.3", linewidth=0.8)
+        for end in (low, high):
+            if np.isfinite(end):
+                ax.axvline(end, color=OKABE_ITO[6], linewidth=0.8, linestyle=":")
+        ax.xaxis.set_major_locator(MaxNLocator(4))
+        ax.set_title(_literal(key), fontsize=9)
+        ax.tick_params(labelsize=7)
+        ax.set_ylim(bottom=-0.1)
+        ax.grid(True, color="0.9", linewidth=0.5)
+    for ax in axes[len(keys):]:
+        ax.set_visible(False)
+    fig.supylabel("fall of log-likelihood from its maximum", fontsize=9)
+    fig.supxlabel("value held (others re-estimated); dashed: 1.92, the 95 % interval's edge",
+                  fontsize=8)
+    return _save(fig, Path(path))

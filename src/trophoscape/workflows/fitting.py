@@ -26,7 +26,7 @@ import numpy as np
 from ..errors import InputError, RunError
 
 __all__ = ["Counts", "read_counts", "expected_counts", "log_likelihood", "with_rates",
-           "Fit", "fit_counts"]
+           "Fit", "fit_counts", "searched_study"]
 
 #: The columns of a counts table, in order.
 COUNT_COLUMNS = ("patch_id", "time", "species", "count")
@@ -547,9 +547,22 @@ class _Likelihood:
         return ends[0], ends[1], open_ends, points, better
 
 
+def searched_study(study, values=None):
+    """The study as a fit's runs see it: tolerances a hundred times tighter than the
+    scenario's, no removals below the extinction threshold (:func:`fit_counts`), and
+    ``values`` (key → value) in place."""
+    from dataclasses import replace
+
+    sc = study.scenario
+    tight = sc.with_values(run__rtol=sc["run.rtol"] / 100.0, run__atol=sc["run.atol"] / 100.0,
+                           run__extinction_abundance=0.0)
+    study = replace(study, scenario=tight)
+    return with_rates(study, values) if values else study
+
+
 def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal",
                bounds=None, detection: float = 1.0, starts: int = 4, seed: int = 1,
-               intervals: bool = True, workers=None) -> Fit:
+               intervals: bool = True, workers=None, progress: bool = False) -> Fit:
     """Maximum-likelihood estimates of some scenario values from survey counts, with 95 %
     profile-likelihood intervals.
 
@@ -608,24 +621,31 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
     if counts.n < len(keys) + n_extra:
         raise InputError(f"the table has {counts.n} counts, fewer than the "
                          f"{len(keys) + n_extra} quantities the fit estimates ({len(keys)} "
-                         f"scenario values and {n_extra} observation "
-                         f"{OBSERVATION_MODELS[observation] or 'parameter'}s); add counts or "
-                         "estimate fewer values", file=counts.path, field="count")
+                         f"scenario value{'s' * (len(keys) != 1)} and {n_extra} observation "
+                         f"{OBSERVATION_MODELS[observation] or 'parameter'}"
+                         f"{'s' * (n_extra != 1)}); add counts or estimate fewer values",
+                         file=counts.path, field="count")
     bounds = dict(bounds or {})
     lo = np.log([bounds.get(k, (b / 100.0, b * 100.0))[0] for k, b in zip(keys, base)])
     hi = np.log([bounds.get(k, (b / 100.0, b * 100.0))[1] for k, b in zip(keys, base)])
     scenario = study.scenario
-    tight = scenario.with_values(run__rtol=scenario["run.rtol"] / 100.0,
-                                 run__atol=scenario["run.atol"] / 100.0,
-                                 run__extinction_abundance=0.0)
-    study = replace(study, scenario=tight)
+    study = searched_study(study)
+    tight = study.scenario
     rng = np.random.default_rng(seed)
     first = np.clip(np.log(base), lo, hi)
     points = [first] + [np.clip(first + rng.uniform(-_START_SPREAD, _START_SPREAD, first.size),
                                 lo, hi) for _ in range(max(1, starts) - 1)]
     free = np.ones(len(keys), dtype=bool)
-    with _Likelihood(study, counts, keys, observation, detection, lo, hi, workers) as like:
-        results = [like.maximise(x0, free) for x0 in points]
+    from tqdm.auto import tqdm
+
+    bar = tqdm(total=len(points) + (len(keys) if intervals else 0), disable=not progress,
+               desc="fit: starts, then intervals", unit="search", delay=1.0)
+    with bar, _Likelihood(study, counts, keys, observation, detection, lo, hi,
+                          workers) as like:
+        results = []
+        for x0 in points:
+            results.append(like.maximise(x0, free))
+            bar.update(1)
         best = max(results, key=lambda r: r[3])
         theta, mu, extras, ll, converged, jac = best
         if mu is None or not np.isfinite(ll):
@@ -643,6 +663,7 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
         for j, k in enumerate(keys):
             if intervals:
                 a, b, ends, pts, better = like.profile(j, theta, ll, cov)
+                bar.update(1)
                 low[k], high[k], open_ends[k] = float(np.exp(a)), float(np.exp(b)), ends
                 profiles[k] = (np.exp([p[0] for p in pts]), np.array([p[1] for p in pts]))
                 if ends:
