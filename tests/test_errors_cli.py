@@ -588,6 +588,17 @@ CASES = [
          "estimated",
          {"s.toml": FIT_SCENARIO.replace("prey.growth_rate", "prey.growth"),
           "c.csv": COUNTS_HEAD + "A1,1,prey,30\n"}, argv=FIT_ARGV),
+    Case("fit-a-structure-key",
+         "error: s.toml: field 'fit.estimate': dispersal.max_distance_km shapes the patches or "
+         "the network, which a fit keeps as they are; estimate rates and densities instead",
+         {"s.toml": FIT_SCENARIO.replace("prey.growth_rate", "dispersal.max_distance_km"),
+          "c.csv": COUNTS_HEAD + "A1,1,prey,30\n"}, argv=FIT_ARGV),
+    Case("fit-a-run-setting",
+         "error: s.toml: field 'fit.estimate': run.duration is not a value of the model (a "
+         "fit estimates keys of [prey], [predator], [predation], [dispersal]); estimate "
+         "rates and densities instead",
+         {"s.toml": FIT_SCENARIO.replace("prey.growth_rate", "run.duration"),
+          "c.csv": COUNTS_HEAD + "A1,1,prey,30\n"}, argv=FIT_ARGV),
     Case("fit-no-fit-section",
          "error: s.toml: field 'fit.estimate': the scenario has nothing to estimate; add a "
          "[fit] section with estimate = [\"prey.growth_rate\", ...]",

@@ -180,6 +180,26 @@ def expected_counts(study, counts: Counts, *, detection: float = 1.0) -> np.ndar
     return detection * values[counts.species, rows, counts.patch]
 
 
+#: Sections whose numeric keys a fit can estimate (the model's); others set the computation
+#: (run), or do not enter the deterministic runs a fit compares with counts.
+FITTABLE_SECTIONS = ("prey", "predator", "predation", "dispersal")
+
+
+def _refuse_unfittable(keys, where) -> None:
+    from .study import STRUCTURE_KEYS, STRUCTURE_SECTIONS
+
+    for key in keys:
+        section = key.split(".", 1)[0]
+        if key in STRUCTURE_KEYS or section in STRUCTURE_SECTIONS:
+            raise InputError(f"{key} shapes the patches or the network, which a fit keeps as "
+                             "they are; estimate rates and densities instead", file=where,
+                             field="fit.estimate")
+        if section not in FITTABLE_SECTIONS:
+            raise InputError(f"{key} is not a value of the model (a fit estimates keys of "
+                             f"[{'], ['.join(FITTABLE_SECTIONS)}]); estimate rates and "
+                             "densities instead", file=where, field="fit.estimate")
+
+
 def with_rates(study, changes: dict):
     """The study with some scenario values changed (``{"prey.growth_rate": 1.3}``), its
     landscape and network kept: rates, densities, emigration, kernel scales, survival —
@@ -605,17 +625,24 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
     if not keys:
         raise InputError("nothing to estimate; list scenario keys in [fit] estimate, e.g. "
                          "[\"prey.growth_rate\"]", field="fit.estimate")
+    from ..scenario import FieldRef
+
+    where = study.scenario.path
+    _refuse_unfittable(keys, where)
     for k in keys:
-        if isinstance(study.scenario[k], bool) or not isinstance(study.scenario[k],
-                                                                 (int, float)):
+        value = study.scenario[k]
+        if isinstance(value, FieldRef):
             raise InputError(f"{k} is taken per patch from an attribute in the scenario; a "
                              "fit estimates one value for all patches: give it a number",
-                             field=k)
+                             file=where, field=k)
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise InputError(f"{k} is {value!r} in the scenario; a fit estimates a number: "
+                             "give one to start from", file=where, field=k)
     base = np.array([float(study.scenario[k]) for k in keys])
     if np.any(base <= 0):
         k = keys[int(np.argmax(base <= 0))]
         raise InputError(f"{k} is {study.scenario[k]!r} in the scenario; an estimated value "
-                         "must start above 0", field=k)
+                         "must start above 0", file=where, field=k)
     n_species = len(set(counts.species.tolist()))
     n_extra = n_species if OBSERVATION_MODELS[observation] else 0
     if counts.n < len(keys) + n_extra:
