@@ -70,7 +70,7 @@ def test_bad_counts_are_refused_naming_row_and_column(tmp_path, study, body, obs
 def test_a_count_given_twice_and_missing_columns(tmp_path, study):
     path = write(tmp_path, "patch_id,time,species,count\nW1,2,prey,4\nW2,2,prey,4\n"
                            "W1,2,prey,5\n")
-    with pytest.raises(InputError, match="again \\(also row 0\\)") as info:
+    with pytest.raises(InputError, match="again \\(as feature 0\\)") as info:
         read_counts(path, study)
     assert "feature 2" in str(info.value)
     with pytest.raises(InputError, match="no 'count' column \\('counts' is close\\)"):
@@ -515,3 +515,86 @@ def test_the_fitted_scenario_reads_back_as_the_scenario_with_the_estimates(tmp_p
     for key, value in before.values.items():
         if key not in ("prey.growth_rate", "patches.path"):
             assert after[key] == value, key
+
+
+def test_one_value_a_value_on_its_bound_and_a_value_limited_above(tmp_path):
+    # consistency tests of the edges of the search: a fit of one value gets its interval;
+    # a value whose bound stops the search short of what the counts ask for is estimated on
+    # that bound, its interval open there and a warning says so; a survival (at most 1 by
+    # the scenario's rules) is searched within what the scenario accepts
+    from trophoscape.workflows.fitting import fit_counts
+
+    study = four_patches(tmp_path)
+    counts = drawn_counts(study, TRUTH, seed=11, observation="lognormal")
+    one = fit_counts(study, counts, ["prey.growth_rate"], observation="lognormal", starts=1)
+    assert one.low["prey.growth_rate"] < one.estimates["prey.growth_rate"] \
+        < one.high["prey.growth_rate"]
+    capped = fit_counts(study, counts, ["prey.growth_rate"], observation="lognormal",
+                        starts=1, bounds={"prey.growth_rate": [0.2, 0.9]})
+    assert capped.estimates["prey.growth_rate"] == pytest.approx(0.9, rel=1e-5)
+    assert "high" in capped.open_ends["prey.growth_rate"]
+    assert capped.high["prey.growth_rate"] == pytest.approx(0.9, rel=1e-5)
+    assert any("estimated on its upper bound" in w for w in capped.warnings)
+    survival = fit_counts(study, counts, ["dispersal.survival_per_km"],
+                          observation="lognormal", starts=1)
+    assert 0 < survival.low["dispersal.survival_per_km"] \
+        <= survival.high["dispersal.survival_per_km"] <= 1.0
+
+
+def test_the_pool_is_used_and_left_behind_by_nothing(tmp_path, monkeypatch):
+    # consistency test: with two workers the runs of the differences go to a pool (which
+    # the settings test relies on to compare with one worker), and the pool is gone after
+    # the fit
+    import trophoscape.workflows.fitting as fitting
+
+    study = four_patches(tmp_path)
+    counts = drawn_counts(study, TRUTH, seed=4)
+    pools = []
+    original = fitting._Likelihood.expected_many
+
+    def spy(self, thetas):
+        out = original(self, thetas)
+        if self.pool is not None:
+            pools.extend((self.pool._processes or {}).values())
+        return out
+
+    monkeypatch.setattr(fitting._Likelihood, "expected_many", spy)
+    fitting.fit_counts(study, counts, list(TRUTH), observation="poisson", starts=1,
+                       intervals=False, workers=2)
+    assert pools, "no pool was started"
+
+    def running(pid):  # read from the kernel: Process.is_alive() can miss a reaped child
+        import os
+
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        return open(f"/proc/{pid}/stat").read().split(")")[-1].split()[0] != "Z"
+
+    assert not any(running(proc.pid) for proc in pools)
+    assert fitting._JOB is None
+
+
+def test_counts_a_fit_cannot_use_are_refused(tmp_path):
+    # bad input in Python calls (consistency test of the checks): a count of a species
+    # absent from the start; bounds of a value not estimated; a counted species with fewer
+    # than 3 counts under a model that estimates its scatter
+    from trophoscape.workflows.fitting import Counts, fit_counts
+
+    study = four_patches(tmp_path / "a", CYCLING.replace("initial_density = 10.0",
+                                                         "initial_density = 0.0"))
+    counts = drawn_counts(four_patches(tmp_path / "b"), TRUTH, seed=1)
+    with pytest.raises(InputError, match="absent from the start") as info:
+        fit_counts(study, counts, ["prey.growth_rate"], observation="poisson")
+    assert "'count'" in str(info.value) and "feature" in str(info.value)
+    good = four_patches(tmp_path / "c")
+    with pytest.raises(InputError, match="not estimated"):
+        fit_counts(good, counts, ["prey.growth_rate"], observation="poisson",
+                   bounds={"predation.attack_rate": [0.01, 0.1]})
+    few = np.flatnonzero(counts.species == 1)[:2]
+    keep = np.r_[np.flatnonzero(counts.species == 0), few]
+    thin = Counts(patch=counts.patch[keep], time=counts.time[keep],
+                  species=counts.species[keep], count=counts.count[keep])
+    with pytest.raises(InputError, match="2 count\\(s\\) of predator"):
+        fit_counts(good, thin, ["prey.growth_rate"], observation="negative_binomial")

@@ -188,17 +188,17 @@ def _toml_text(raw: dict) -> str:
 
 
 def fitted_scenario_text(scenario, estimates: dict, folder, counts_path=None) -> str:
-    """The scenario's text with ``estimates`` (``"section.key"`` → value) in place and its
-    file paths rewritten to resolve from ``folder`` (relative where they can be).
+    """The scenario (as it was fitted: its values, not its file's text) as TOML with
+    ``estimates`` (``"section.key"`` → value) in place and its file paths rewritten to
+    resolve from ``folder`` (relative where they can be).
 
-    Comments of the original are not kept; a header says where the file came from.
+    Every key is written, defaults included; comments of the original are not kept; a
+    header says where the file came from.
     """
-    import tomllib
-
-    from ..scenario import INPUT_FILES
+    from ..scenario import INPUT_FILES, nested_tables
     from ..workflows.template import _plain
 
-    raw = tomllib.loads(scenario.text) if scenario.text else {}
+    raw = nested_tables(dict(scenario.values))  # the scenario as fitted, defaults included
     for key, value in estimates.items():
         section, _, name = key.partition(".")
         raw.setdefault(section, {})[name] = float(value)
@@ -218,8 +218,8 @@ def fitted_scenario_text(scenario, estimates: dict, folder, counts_path=None) ->
               "# with " + _plain(", ".join(estimates)) + " estimated"
               + (f" from {_plain(counts_path)}" if counts_path else "")
               + " (estimates.csv beside this file holds their 95 % intervals).",
-              "# File paths resolve from this file's folder. Comments of the original are "
-              "not kept."]
+              "# File paths resolve from this file's folder. Every key is written, defaults "
+              "included; comments of the original are not kept."]
     return "\n".join(header) + "\n" + _toml_text(raw)
 
 

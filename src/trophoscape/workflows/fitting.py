@@ -92,6 +92,9 @@ def read_counts(path, study, *, observation: str = "lognormal") -> Counts:
         raise InputError(f"the file is empty; write a header row with {expected}", file=path)
     header = [c.strip() for c in rows[0]]
     for column in COUNT_COLUMNS:
+        if header.count(column) > 1:
+            raise InputError(f"the table has {header.count(column)} {column!r} columns; keep "
+                             "one", file=path, field=column)
         if column not in header:
             import difflib
 
@@ -149,7 +152,7 @@ def read_counts(path, study, *, observation: str = "lognormal") -> Counts:
     same = np.flatnonzero(key[order][1:] == key[order][:-1])
     if same.size:
         first, again = sorted((int(order[same[0]]), int(order[same[0] + 1])))
-        raise InputError(f"counts this patch, time and species again (also row {first}); "
+        raise InputError(f"counts this patch, time and species again (as feature {first}); "
                          "give each count once", file=path, feature=again, field="count")
     return Counts(patch=patch, time=time, species=species, count=count, path=path)
 
@@ -477,6 +480,8 @@ class _Likelihood:
             return theta, None, {}, -math.inf, False, None
         extras = self.best_extras(mu)
         ll = self.log_likelihood(mu, extras)
+        if not free.any():  # every value held: the likelihood there is all there is
+            return theta, mu, extras, ll, True, None
         fails = np.full(self.counts.n, 1e3)
         converged, jac_last = False, None
         for _ in range(max_rounds):
@@ -501,12 +506,12 @@ class _Likelihood:
             res = least_squares(fun, theta[free], jac=jac, bounds=(lo, hi), method="trf",
                                 x_scale="jac", ftol=1e-7, xtol=1e-7, gtol=1e-7,
                                 max_nfev=60)
-            converged, jac_last = res.status > 0, res.jac
-            theta[free] = res.x
             key = res.x.tobytes()
-            m = cache[key][1] if key in cache else self.expected_many([theta])[0]
+            m = cache[key][1] if key in cache else self.expected_many([full(res.x)])[0]
             if m is None:
                 break
+            converged, jac_last = res.status > 0, res.jac
+            theta[free] = res.x
             mu = m
             new_extras = self.best_extras(mu)
             new_ll = self.log_likelihood(mu, new_extras)
@@ -518,39 +523,48 @@ class _Likelihood:
 
     def profile(self, j, theta_hat, ll_hat, cov):
         """The profile of parameter ``j`` out to where the log-likelihood has fallen by
-        1.92 (a 95 % interval) on each side, or to its bound: ``(low, high, open ends,
-        points, best point seen)``."""
+        1.92 (a 95 % interval) on each side: ``(low, high, open ends, points, best point
+        seen)``. An end is open (listed in ``open ends``) where the fall is not reached:
+        the estimate sits on its bound, or the likelihood stays higher up to the bound or up
+        to where the model cannot run; the end is then that place."""
         free = np.ones(theta_hat.size, dtype=bool)
         free[j] = False
-        se = math.sqrt(cov[j, j]) if np.isfinite(cov[j, j]) and cov[j, j] > 0 else 0.1
+        usable = np.isfinite(cov[j, j]) and cov[j, j] > 0 and np.all(np.isfinite(cov[:, j]))
+        se = math.sqrt(cov[j, j]) if usable else 0.1
         points = [(float(theta_hat[j]), ll_hat)]
         ends, open_ends, better = [], [], None
         for side, limit in ((-1, self.lo[j]), (1, self.hi[j])):
+            name = "low" if side < 0 else "high"
             room = abs(limit - theta_hat[j])
-            step = min(_ROOT95 * se, room)
             seen = [(0.0, 0.0)]  # (distance, signed root) on this side
-            end = None
-            for _ in range(8):
-                if step <= 1e-12:
+            end, step = None, min(_ROOT95 * se, room)
+            for _ in range(12):
+                if room <= 1e-9 or step <= 1e-12:
+                    end = room
+                    open_ends.append(name)
                     break
                 x = theta_hat[j] + side * step
-                start = theta_hat + cov[:, j] / cov[j, j] * (x - theta_hat[j]) \
-                    if cov[j, j] > 0 and np.all(np.isfinite(cov[:, j])) else theta_hat.copy()
+                start = (theta_hat + cov[:, j] / cov[j, j] * (x - theta_hat[j]) if usable
+                         else theta_hat.copy())
                 start[j] = x
                 t, _, _, ll, _, _ = self.maximise(start, free)
+                if not np.isfinite(ll):  # the model cannot run here: its edge is the bound
+                    room = step
+                    step *= 0.5
+                    continue
                 if ll > ll_hat + 0.01 and (better is None or ll > better[1]):
                     better = (t, ll)
-                r = math.sqrt(max(0.0, 2.0 * (ll_hat - ll))) if np.isfinite(ll) else np.inf
+                r = math.sqrt(max(0.0, 2.0 * (ll_hat - ll)))
                 points.append((float(x), ll))
                 seen.append((step, r))
-                if abs(r - _ROOT95) < 0.1:  # the signed root is about linear here
-                    end = step * _ROOT95 / r
-                    break
                 if r < _ROOT95 and step >= room * (1 - 1e-9):
                     end = room
-                    open_ends.append("low" if side < 0 else "high")
+                    open_ends.append(name)
                     break
-                factor = _ROOT95 / r if 0 < r < np.inf else (4.0 if r == 0 else 0.5)
+                if abs(r - _ROOT95) < 0.1:  # the signed root is about linear here
+                    end = min(step * _ROOT95 / r, room)
+                    break
+                factor = _ROOT95 / r if r > 0 else 4.0
                 step = min(step * float(np.clip(factor, 0.25, 4.0)), room)
             if end is None:  # between the last point below 1.96 and the first above
                 seen.sort()
@@ -558,10 +572,10 @@ class _Likelihood:
                 above = [p for p in seen if p[1] >= _ROOT95]
                 if above:
                     (d0, r0), (d1, r1) = below[-1], above[0]
-                    end = d0 + (d1 - d0) * (_ROOT95 - r0) / (r1 - r0) if np.isfinite(r1) \
-                        else 0.5 * (d0 + d1)
-                else:
+                    end = d0 + (d1 - d0) * (_ROOT95 - r0) / (r1 - r0)
+                else:  # never reached: as far as it was followed, and open
                     end = seen[-1][0]
+                    open_ends.append(name)
             ends.append(theta_hat[j] + side * end)
         points.sort()
         return ends[0], ends[1], open_ends, points, better
@@ -652,9 +666,28 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
                          f"{OBSERVATION_MODELS[observation] or 'parameter'}"
                          f"{'s' * (n_extra != 1)}); add counts or estimate fewer values",
                          file=counts.path, field="count")
+    per_species = np.bincount(counts.species, minlength=2)
+    if n_extra:
+        thin = [(s, int(per_species[s])) for s in (0, 1) if 0 < per_species[s] < 3]
+        if thin:
+            name = _SPECIES[thin[0][0]]
+            raise InputError(f"the table has {thin[0][1]} count(s) of {name}; the {observation} "
+                             f"model estimates a {OBSERVATION_MODELS[observation]} for each "
+                             "species counted, which needs at least 3 counts of it: add counts "
+                             f"or leave the {name} out", file=counts.path, field="species")
     bounds = dict(bounds or {})
-    lo = np.log([bounds.get(k, (b / 100.0, b * 100.0))[0] for k, b in zip(keys, base)])
-    hi = np.log([bounds.get(k, (b / 100.0, b * 100.0))[1] for k, b in zip(keys, base)])
+    stray = sorted(set(bounds) - set(keys))
+    if stray:
+        raise InputError(f"bounds are given for {stray[0]}, which is not estimated; add it to "
+                         "fit.estimate or remove its bounds", file=where, field="fit.bounds")
+    lo, hi = [], []
+    for k, b in zip(keys, base):
+        a_, b_ = bounds.get(k, (b / 100.0, b * 100.0))
+        if k not in bounds:  # the default range, within what the key accepts
+            a_, b_ = _valid_range(k, b, a_, b_)
+        lo.append(math.log(a_))
+        hi.append(math.log(b_))
+    lo, hi = np.array(lo), np.array(hi)
     scenario = study.scenario
     study = searched_study(study)
     tight = study.scenario
@@ -669,48 +702,71 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
                desc="fit: starts, then intervals", unit="search", delay=1.0)
     with bar, _Likelihood(study, counts, keys, observation, detection, lo, hi,
                           workers) as like:
+        _refuse_impossible(like, first)
         results = []
         for x0 in points:
             results.append(like.maximise(x0, free))
             bar.update(1)
         best = max(results, key=lambda r: r[3])
-        theta, mu, extras, ll, converged, jac = best
+        theta, mu, extras, ll, converged, _ = best
         if mu is None or not np.isfinite(ll):
             raise RunError("no starting point gave a run the counts are possible under; "
                            "check the scenario's values and bounds of the estimated keys")
-        # the curvature at the estimates (fresh differences there, all keys free)
-        (mu_hat,) = like.expected_many([theta])
-        jac = like.differences(theta, free, extras, like.residuals(mu_hat, extras))
-        cov = np.linalg.pinv(jac.T @ jac)
-        sd = np.sqrt(np.clip(np.diag(cov), 0.0, None))
-        with np.errstate(invalid="ignore", divide="ignore"):
-            corr = cov / np.outer(sd, sd)
-        warnings = []
-        low, high, open_ends, profiles = {}, {}, {}, {}
-        for j, k in enumerate(keys):
-            if intervals:
-                a, b, ends, pts, better = like.profile(j, theta, ll, cov)
+        for attempt in range(2):
+            warnings = []
+            cov, sd, corr = _curvature(like, theta, extras, keys, warnings)
+            low, high, open_ends, profiles, better = {}, {}, {}, {}, None
+            for j, k in enumerate(keys):
+                if not intervals:
+                    low[k] = high[k] = math.nan
+                    open_ends[k] = []
+                    continue
+                a, b, ends, pts, higher = like.profile(j, theta, ll, cov)
                 bar.update(1)
                 low[k], high[k], open_ends[k] = float(np.exp(a)), float(np.exp(b)), ends
                 profiles[k] = (np.exp([p[0] for p in pts]), np.array([p[1] for p in pts]))
-                if ends:
-                    warnings.append(f"{k} is not identifiable from these counts: the "
-                                    "likelihood hardly changes out to its "
-                                    f"{' and '.join(ends)} bound (the interval ends there)")
-                if better is not None:
-                    warnings.append(f"holding {k} at {math.exp(better[0][j]):.4g} gave a "
-                                    f"higher likelihood ({better[1]:.4g} against {ll:.4g}): "
-                                    "the estimates are a local optimum; try more starts or "
-                                    "other bounds")
-            else:
-                low[k] = high[k] = math.nan
-                open_ends[k] = []
+                if higher is not None and (better is None or higher[1] > better[1]):
+                    better = higher
+            if better is None or attempt == 1:
+                break
+            # a profile found a higher likelihood: search again from there, then profile
+            again = like.maximise(better[0], free)
+            if again[1] is None or not again[3] > ll:
+                break
+            theta, mu, extras, ll, converged, _ = again
+            bar.total += len(keys)
+        if better is not None:
+            warnings.append(f"a profile found a higher likelihood ({better[1]:.6g} against "
+                            f"{ll:.6g}) even after searching again from it: the estimates may "
+                            "be a local optimum; try more starts or narrower bounds")
+        values = np.exp(theta)
+        for j, k in enumerate(keys):
+            on = [n for n, edge in (("lower", lo[j]), ("upper", hi[j]))
+                  if abs(theta[j] - edge) <= 1e-6]
+            if on:
+                warnings.append(f"{k} is estimated on its {on[0]} bound ({values[j]:.4g}): "
+                                "the counts ask for a value beyond it; widen fit.bounds if "
+                                "such values are possible")
+            elif open_ends[k]:
+                warnings.append(f"{k} is not identifiable from these counts: the likelihood "
+                                "hardly changes out to its " + " and ".join(open_ends[k])
+                                + " bound (the interval ends there)")
         for i in range(len(keys)):
             for j in range(i + 1, len(keys)):
                 if abs(corr[i, j]) > _CORRELATED:
                     warnings.append(f"{keys[i]} and {keys[j]} are not separately identifiable "
                                     f"from these counts (correlation {corr[i, j]:+.2f}): "
                                     "their ratio or product is determined, not each")
+        if observation == "negative_binomial":
+            for s, k_ in sorted(extras.items()):
+                if k_ <= _DISPERSION_RANGE[0] * 1.01:
+                    warnings.append(f"the {_SPECIES[s]} counts scatter so widely that their "
+                                    f"dispersion is at its lowest ({k_:.3g}): they hardly "
+                                    "weigh in the fit; check them")
+                elif k_ >= _DISPERSION_RANGE[1] / 1.01:
+                    warnings.append(f"the {_SPECIES[s]} counts scatter no more than Poisson "
+                                    f"counts (dispersion {k_:.3g}, the highest searched): the "
+                                    "poisson observation model suits them")
         threshold = float(scenario["run.extinction_abundance"])
         if threshold > 0:
             # the searches run without removals (they make the expected counts jump with
@@ -719,7 +775,7 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
                 run__extinction_abundance=threshold))
             like.runs += 1
             with_removals = like.log_likelihood(
-                expected_counts(with_rates(removing, dict(zip(keys, np.exp(theta).tolist()))),
+                expected_counts(with_rates(removing, dict(zip(keys, values.tolist()))),
                                 counts, detection=detection), extras)
             if not with_removals >= ll - 1.0:
                 warnings.append(
@@ -728,16 +784,83 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
                     f"do: with removals the log-likelihood is {with_removals:.6g} against "
                     f"{ll:.6g}; treat the fit with care, or lower run.extinction_abundance")
         runs = like.runs
-    names = {0: "prey", 1: "predator"}
     k_total = len(keys) + len(extras)
-    return Fit(estimates=dict(zip(keys, np.exp(theta).tolist())), low=low, high=high,
+    return Fit(estimates=dict(zip(keys, values.tolist())), low=low, high=high,
                open_ends=open_ends, observation=observation,
-               extras={names[s]: v for s, v in sorted(extras.items())}, log_likelihood=ll,
+               extras={_SPECIES[s]: v for s, v in sorted(extras.items())}, log_likelihood=ll,
                aic=2 * k_total - 2 * ll, n_counts=counts.n, starts=len(points),
                agreeing=int(sum(abs(r[3] - ll) <= 0.01 for r in results)),
                converged=bool(converged), evaluations=runs, correlation=corr,
                standard_error=dict(zip(keys, sd.tolist())), profiles=profiles,
                warnings=warnings, expected=mu)
+
+
+def _valid_range(key, value, low, high):
+    """``(low, high)`` narrowed to the values the scenario accepts for ``key`` (such as a
+    survival of at most 1), found by bisection in logarithms from ``value``, which it
+    accepts."""
+    from ..scenario import SCHEMA
+
+    section, _, name = key.partition(".")
+    check = SCHEMA[section][name].check
+
+    def edge(far):
+        if check(far) is None:
+            return far
+        inside, outside = math.log(value), math.log(far)
+        for _ in range(60):
+            mid = 0.5 * (inside + outside)
+            if check(math.exp(mid)) is None:
+                inside = mid
+            else:
+                outside = mid
+        return math.exp(inside)
+
+    return edge(low), edge(high)
+
+
+def _refuse_impossible(like, theta) -> None:
+    """Refuse counts the model cannot produce at the scenario's values, whatever the rates:
+    a positive count where the expected count is 0 (a species absent from the start)."""
+    (mu,) = like.expected_many([theta])
+    if mu is None:
+        return
+    y = like.counts.count
+    impossible = (mu <= 0) & ((y > 0) | (like.observation == "lognormal"))
+    if impossible.any():
+        r = int(np.flatnonzero(impossible)[0])
+        raise InputError(f"the model expects no {_SPECIES[int(like.counts.species[r])]} here "
+                         f"(it is absent from the start), so a count of {y[r]:g} is "
+                         "impossible; give the species an initial density above 0, or leave "
+                         "the row out", file=like.counts.path, feature=r, field="count")
+
+
+def _curvature(like, theta, extras, keys, warnings):
+    """Covariance, standard errors and correlations of the log-values from the curvature
+    ``JᵀJ`` of the deviance at ``theta``; a direction it does not curve in (the counts do
+    not determine it) gives its values an infinite standard error and a warning."""
+    free = np.ones(theta.size, dtype=bool)
+    (mu,) = like.expected_many([theta])
+    jac = like.differences(theta, free, extras, like.residuals(mu, extras))
+    h = jac.T @ jac
+    w, v = np.linalg.eigh(h)
+    flat = w <= 1e-10 * max(float(w.max()), 1e-300)
+    cov = np.linalg.pinv(h)
+    sd = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    if flat.any():
+        involved = np.abs(v[:, flat]).max(axis=1) > 0.1
+        sd[involved] = np.inf
+        warnings.append("the counts do not determine " + ", ".join(
+            k for k, i in zip(keys, involved) if i) + " (the likelihood does not change "
+            "along some combination of them)")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corr = cov / np.outer(sd, sd)
+    undetermined = ~np.isfinite(sd) | (sd == 0)
+    corr[undetermined, :] = np.nan
+    corr[:, undetermined] = np.nan
+    corr[~np.isfinite(corr)] = np.nan
+    np.fill_diagonal(corr, 1.0)
+    return cov, sd, corr
 
 
 def _number(text: str) -> float:
