@@ -719,7 +719,7 @@ def test_messages_name_the_file_and_feature(outcomes):
             continue
         line = outcomes[case.id].stderr.splitlines()[-1]
         named = [n for n in ("s.toml", "p.geojson", "p.gpkg", "c.geojson", "l.csv",
-                             "missing.geojson", "nolinks.csv", "field '--out'",
+                             "missing.geojson", "nolinks.csv", "c.csv", "field '--out'",
                              "field '--vary") if n in line]  # or the argument at fault
         if case.wrong_text is None:
             assert named, line
