@@ -254,3 +254,103 @@ def test_empty_synchrony_charts_say_why(tmp_path, monkeypatch):
     texts.clear()
     kuramoto_plot({"prey": r.fillna(0.5)}, path=tmp_path / "k2.png")
     assert not any("no phases" in t for t in texts)
+
+
+# ------------------------------------------------------------------ maps of many patches
+
+
+def _awkward_patches():
+    """Squares, a square with a hole, a two-part patch, a patch smaller than a raster cell
+    and an empty geometry, in UTM zone 32N (EPSG:32632)."""
+    from shapely.geometry import MultiPolygon, Polygon
+
+    x0, y0 = 440_000.0, 5_300_000.0
+    holed = Polygon(box(x0, y0, x0 + 3000, y0 + 3000).exterior.coords,
+                    [box(x0 + 1000, y0 + 1000, x0 + 2000, y0 + 2000).exterior.coords])
+    parts = MultiPolygon([box(x0 + 4000, y0, x0 + 5000, y0 + 1000),
+                          box(x0 + 4000, y0 + 2000, x0 + 5000, y0 + 3000)])
+    tiny = box(x0 + 6000, y0 + 100, x0 + 6002, y0 + 102)  # 2 m across
+    squares = [box(x0 + 6000 + 1500 * k, y0 + 1500, x0 + 7000 + 1500 * k, y0 + 2500)
+               for k in range(3)]
+    geoms = [holed, parts, tiny, Polygon(), *squares]
+    return gpd.GeoDataFrame({"patch_id": [f"Q{k}" for k in range(len(geoms))],
+                             "v": np.arange(len(geoms), dtype=float)},
+                            geometry=geoms, crs="EPSG:32632")
+
+
+def test_vector_paths_are_the_rings_of_each_patch():
+    # consistency test: the paths built for all patches at once hold each patch's rings as
+    # shapely gives them one patch at a time (outer counterclockwise, holes clockwise), in km
+    import shapely
+    from matplotlib.path import Path as MplPath
+
+    frame = _awkward_patches()
+    paths = plot.MapCanvas(frame, raster=False).paths()
+    assert len(paths) == len(frame)
+    oriented = shapely.orient_polygons(frame.geometry.values, exterior_cw=False)
+    for geom, path in zip(oriented, paths):
+        if geom.is_empty:
+            assert len(path.vertices) == 1
+            continue
+        rings = [r for part in getattr(geom, "geoms", [geom])
+                 for r in (part.exterior, *part.interiors)]
+        want = np.concatenate([np.asarray(r.coords) for r in rings]) / 1e3
+        np.testing.assert_array_equal(path.vertices, want)
+        assert (path.codes == MplPath.MOVETO).sum() == len(rings)
+        assert (path.codes == MplPath.CLOSEPOLY).sum() == len(rings)
+
+
+def test_raster_cells_belong_to_the_patch_shapely_puts_them_in(monkeypatch):
+    # the rasterised patches against shapely's point-in-polygon test (the outside
+    # reference) at every cell centre; a patch smaller than a cell still has its cell;
+    # links mark the cells they cross
+    import shapely
+
+    monkeypatch.setattr(plot, "RASTER_CELLS", 120)
+    frame = _awkward_patches()
+    line = gpd.GeoDataFrame(geometry=[LineString([(441_000, 5_302_710), (449_030, 5_302_710),
+                                                  (449_030, 5_310_000)])], crs="EPSG:32632")
+    canvas = plot.MapCanvas(frame, line, raster=True)
+    labels, lines, (left, right, bottom, top) = canvas.grid()
+    h, w = labels.shape
+    cx = (left + (np.arange(w) + 0.5) * (right - left) / w) * 1e3
+    cy = (top - (np.arange(h) + 0.5) * (top - bottom) / h) * 1e3
+    X, Y = np.meshgrid(cx, cy)
+    tiny = 2
+    for k, geom in enumerate(frame.geometry.values):
+        inside = shapely.contains_xy(geom, X, Y) if not geom.is_empty else np.zeros_like(X, bool)
+        if k == tiny:
+            assert (labels == k + 1).sum() == 1 and not inside.any()
+            continue
+        disagree = (labels == k + 1) != inside
+        assert disagree.sum() <= 0.01 * max(inside.sum(), 1), k  # centres on an edge only
+    assert not (labels == 4).any()  # the empty geometry has no cell
+    # the horizontal part fills its row; the vertical part runs up from it to the map's
+    # edge (beyond it, off the map); nothing below
+    size = (top - bottom) * 1e3 / h
+    row = int(np.argmin(abs(cy - 5_302_710)))
+    assert lines[row].sum() >= 0.9 * 8_000 / size
+    assert not lines[cy < 5_302_710 - size].any()
+    assert lines[:row, int(np.argmin(abs(cx - 449_030)))].all()
+
+
+def test_a_raster_map_colours_each_patch_as_the_vector_map_does(tmp_path):
+    # consistency test between the two ways of drawing: at the centre of a large patch the
+    # raster map and the vector map show the same colour
+    frame = _awkward_patches()
+    got = {}
+    for raster in (False, True):
+        path = plot.patch_map(frame, "v", path=tmp_path / f"m{raster}.png",
+                              canvas=plot.MapCanvas(frame, raster=raster))
+        got[raster] = read_png(path)
+    assert got[False].shape == got[True].shape
+    # the two-part patch's lower square: the same pixel in both (the axes are the same)
+    import matplotlib
+
+    colour = matplotlib.colormaps["viridis"](1 / 6)[:3]
+    for image in got.values():
+        near = np.all(np.abs(image[..., :3] - colour) < 0.02, axis=-1)
+        assert near.sum() > 100
+    a = np.all(np.abs(got[False][..., :3] - colour) < 0.02, axis=-1)
+    b = np.all(np.abs(got[True][..., :3] - colour) < 0.02, axis=-1)
+    assert (a & b).sum() > 0.8 * min(a.sum(), b.sum())

@@ -76,7 +76,7 @@ def _plain_text(draw):
 @_plain_text
 def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap=None,
               diverging=False, categorical=False, bool_labels=("present", "absent"),
-              isolines=None) -> Path:
+              isolines=None, canvas=None) -> Path:
     """Draw one per-patch value as a map and save it as a PNG.
 
     Parameters
@@ -107,6 +107,9 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         For numbers: contour lines of the value over the patch centroids (a Delaunay
         triangulation of the patches that have a value), e.g. isochrones of an arrival
         time; an int asks for that many levels.
+    canvas : MapCanvas, optional
+        The patches' (and links') drawing prepared once for several maps of the same
+        patches, in the same order (``links`` is then ignored); default: prepared here.
 
     Returns
     -------
@@ -127,7 +130,11 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         raise InputError(f"no such column; available: {', '.join(map(str, patches.columns))}",
                          field=column)
     _check_metric(patches.crs, "patches")
-    geoms = np.asarray(patches.geometry.values, dtype=object)
+    if canvas is None:
+        canvas = MapCanvas(patches, links)
+    elif len(canvas.geoms) != len(patches):
+        raise ValueError("the canvas was prepared for other patches")
+    geoms = canvas.geoms
     values = patches[column]
     missing = values.isna().to_numpy()
 
@@ -144,11 +151,15 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
             colours[chosen] = _rgba(colour)
             handles.append(Patch(facecolor=colour, edgecolor="0.3", label=_literal(word)))
     elif kind == "class":
-        classes = sorted({str(v) for v in values[~missing]})
+        import pandas as pd
+
+        text = values[~missing].astype(str)
+        classes = sorted(set(text))
         palette = _class_palette(len(classes))
         lookup = {c: palette[i] for i, c in enumerate(classes)}
-        for i in np.flatnonzero(~missing):
-            colours[i] = lookup[str(values.iloc[i])]
+        if classes:
+            codes = pd.Categorical(text, categories=classes).codes
+            colours[np.flatnonzero(~missing)] = np.asarray(palette, dtype=float)[codes]
         handles += [Patch(facecolor=lookup[c], edgecolor="0.3", label=_literal(c))
                     for c in classes]
     else:
@@ -170,12 +181,8 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         handles.append(Patch(facecolor=NO_VALUE_COLOUR, edgecolor="0.3", label="no value"))
 
     fig, ax = _map_figure(geoms)
-    if links is not None and len(links):
-        if links.crs is not None and patches.crs is not None and links.crs != patches.crs:
-            links = links.to_crs(patches.crs)
-        ax.add_collection(_line_collection(np.asarray(links.geometry.values, dtype=object)))
+    if canvas.draw(ax, colours):
         handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="link"))
-    ax.add_collection(_polygon_collection(geoms, colours))
     _frame_map(ax, geoms, patches.crs)
     if kind == "number" and "patch_id" in patches.columns and finite.size >= 2 \
             and np.ptp(finite) > 0 and constant is None:
@@ -323,49 +330,158 @@ def _bounds(geoms):
     return shapely.total_bounds(geoms)
 
 
-def _polygon_collection(geoms, colours):
-    """One compound path per patch in km (holes and parts included)."""
-    import shapely
-    from matplotlib.collections import PathCollection
-    from matplotlib.path import Path as MplPath
-
-    # Orient rings (outer counterclockwise, holes clockwise) so holes stay empty whatever the
-    # fill rule.
-    oriented = shapely.orient_polygons(geoms, exterior_cw=False)
-    paths = []
-    for geom in oriented:  # one Path per patch is what PathCollection takes
-        rings = [] if geom is None or geom.is_empty else [
-            ring for part in getattr(geom, "geoms", [geom])
-            for ring in (part.exterior, *part.interiors)]
-        if not rings:
-            paths.append(MplPath(np.zeros((1, 2))))
-            continue
-        vertices = np.concatenate([np.asarray(r.coords)[:, :2] for r in rings]) / 1e3
-        codes = np.concatenate([_ring_codes(len(r.coords)) for r in rings])
-        paths.append(MplPath(vertices, codes))
-    return PathCollection(paths, facecolors=colours, edgecolors="#404040", linewidths=0.35,
-                          zorder=2)
+#: From this many patches on, a map draws the patches as an image rasterised once per set of
+#: maps (rasterio), not as one vector path per patch: at a map's size such a network is a
+#: texture, and drawing 100,000 paths (and half a million links) cost seconds per map.
+RASTER_MIN_PATCHES = 20_000
+#: Cells along the longer side of that image (about the map's width in pixels).
+RASTER_CELLS = 1200
 
 
-def _ring_codes(n):
-    from matplotlib.path import Path as MplPath
+class MapCanvas:
+    """The drawing of one set of patches (and links), prepared once and shared by every map
+    of them: only the colours change from map to map.
 
-    codes = np.full(n, MplPath.LINETO, dtype=MplPath.code_type)
-    codes[0] = MplPath.MOVETO
-    codes[-1] = MplPath.CLOSEPOLY
-    return codes
+    Below :data:`RASTER_MIN_PATCHES` the patches are vector paths (one compound path per
+    patch, holes and parts included) and the links line segments; from it on, both are
+    rasterised onto one grid (patches by cell centres, with a patch smaller than a cell
+    given the cell of a point inside it; links as the cells they cross, shown where no
+    patch is), and a map is a lookup of the patches' colours on that grid.
 
+    Parameters
+    ----------
+    patches : geopandas.GeoDataFrame
+        Polygons in a projected CRS in metres.
+    links : geopandas.GeoDataFrame, optional
+        LineStrings, reprojected to the patches' CRS if needed.
+    raster : bool, optional
+        Force one way of drawing (default: by the number of patches).
+    """
 
-def _line_collection(geoms):
-    import shapely
-    from matplotlib.collections import LineCollection
+    def __init__(self, patches, links=None, *, raster=None):
+        self.geoms = np.asarray(patches.geometry.values, dtype=object)
+        self.crs = patches.crs
+        if links is not None and len(links):
+            if links.crs is not None and self.crs is not None and links.crs != self.crs:
+                links = links.to_crs(self.crs)
+            self.links = np.asarray(links.geometry.values, dtype=object)
+        else:
+            self.links = None
+        self.raster = len(self.geoms) >= RASTER_MIN_PATCHES if raster is None else raster
+        self._paths = self._segments = self._grid = None
 
-    parts = shapely.get_parts(geoms)
-    parts = parts[~shapely.is_empty(parts)]
-    coords, index = shapely.get_coordinates(parts, return_index=True)
-    cuts = np.flatnonzero(np.diff(index)) + 1
-    segments = np.split(coords / 1e3, cuts)
-    return LineCollection(segments, colors=LINK_COLOUR, linewidths=0.6, alpha=0.8, zorder=1)
+    # -- vectors --------------------------------------------------------------------
+    def paths(self):
+        """One matplotlib Path per patch, in km, rings oriented (outer counterclockwise,
+        holes clockwise) so holes stay empty whatever the fill rule."""
+        if self._paths is None:
+            import shapely
+            from matplotlib.path import Path as MplPath
+
+            n = len(self.geoms)
+            oriented = shapely.orient_polygons(self.geoms, exterior_cw=False)
+            parts, part_of = shapely.get_parts(oriented, return_index=True)
+            rings, ring_of = shapely.get_rings(parts, return_index=True)
+            xy, coord_of = shapely.get_coordinates(rings, return_index=True)
+            codes = np.full(len(xy), MplPath.LINETO, dtype=MplPath.code_type)
+            if len(xy):
+                starts = np.r_[0, np.flatnonzero(np.diff(coord_of)) + 1]
+                codes[starts] = MplPath.MOVETO
+                codes[np.r_[starts[1:], len(xy)] - 1] = MplPath.CLOSEPOLY
+            owner = part_of[ring_of[coord_of]] if len(xy) else np.empty(0, dtype=np.int64)
+            cuts = np.cumsum(np.bincount(owner, minlength=n))[:-1]
+            vertices = xy / 1e3
+            empty = np.zeros((1, 2))
+            self._paths = [MplPath(v, c) if len(v) else MplPath(empty)
+                           for v, c in zip(np.split(vertices, cuts), np.split(codes, cuts))]
+        return self._paths
+
+    def segments(self):
+        """The links as line segments in km (one polyline per part)."""
+        if self._segments is None:
+            import shapely
+
+            parts = shapely.get_parts(self.links)
+            parts = parts[~shapely.is_empty(parts)]
+            coords, index = shapely.get_coordinates(parts, return_index=True)
+            cuts = np.flatnonzero(np.diff(index)) + 1
+            self._segments = np.split(coords / 1e3, cuts)
+        return self._segments
+
+    # -- raster -----------------------------------------------------------------------
+    def grid(self):
+        """``(labels, links, extent)``: patch position + 1 per cell (0 none), whether a link
+        crosses the cell (or None), and the grid's extent in km (left, right, bottom,
+        top)."""
+        if self._grid is None:
+            import shapely
+            from rasterio import features
+            from rasterio.transform import from_origin
+
+            x0, y0, x1, y1 = _bounds(self.geoms)
+            cell = max(x1 - x0, y1 - y0, 1.0) / RASTER_CELLS
+            width = max(1, int(math.ceil((x1 - x0) / cell)))
+            height = max(1, int(math.ceil((y1 - y0) / cell)))
+
+            def cells(xy):
+                col = np.clip(((xy[:, 0] - x0) / cell).astype(np.int64), 0, width - 1)
+                row = np.clip(((y1 - xy[:, 1]) / cell).astype(np.int64), 0, height - 1)
+                return row, col
+
+            keep = np.flatnonzero(~shapely.is_missing(self.geoms)
+                                  & ~shapely.is_empty(self.geoms))
+            labels = np.zeros((height, width), dtype=np.int32)
+            if keep.size:
+                features.rasterize(zip(self.geoms[keep], (keep + 1).tolist()), out=labels,
+                                   transform=from_origin(x0, y1, cell, cell))
+                # a patch smaller than a cell, holding no cell centre, takes the cell of a
+                # point inside it where no other patch does
+                shown = np.bincount(labels.ravel(), minlength=len(self.geoms) + 1)[1:] > 0
+                small = keep[~shown[keep]]
+                if small.size:
+                    row, col = cells(shapely.get_coordinates(
+                        shapely.point_on_surface(self.geoms[small])))
+                    free = labels[row, col] == 0
+                    labels[row[free], col[free]] = small[free] + 1
+            lines = None
+            if self.links is not None:
+                # sampled every half cell along each link: the cells it crosses
+                dense = shapely.segmentize(self.links[~shapely.is_missing(self.links)],
+                                           cell / 2.0)
+                xy = shapely.get_coordinates(dense)
+                inside = ((xy[:, 0] >= x0) & (xy[:, 0] <= x0 + width * cell)
+                          & (xy[:, 1] <= y1) & (xy[:, 1] >= y1 - height * cell))
+                lines = np.zeros((height, width), dtype=bool)
+                lines[cells(xy[inside])] = True  # beyond the patches: off the map
+            extent = (x0 / 1e3, (x0 + width * cell) / 1e3, (y1 - height * cell) / 1e3,
+                      y1 / 1e3)
+            self._grid = (labels, lines, extent)
+        return self._grid
+
+    # -- drawing ------------------------------------------------------------------------
+    def draw(self, ax, colours) -> bool:
+        """Draw the links, then the patches in ``colours`` (RGBA rows in patch order), on
+        ``ax`` (in km); True if links were drawn."""
+        from matplotlib.collections import LineCollection, PathCollection
+
+        if self.raster:
+            labels, lines, extent = self.grid()
+            table = np.zeros((len(colours) + 2, 4), dtype=np.uint8)
+            table[1:-1] = np.round(np.clip(colours, 0, 1) * 255).astype(np.uint8)
+            table[-1, :3] = np.round(_rgba(LINK_COLOUR)[:3] * 255).astype(np.uint8)
+            table[-1, 3] = 204  # alpha 0.8, as the vector links
+            index = labels
+            if lines is not None:  # links show where no patch is
+                index = np.where((labels == 0) & lines, len(colours) + 1, labels)
+            ax.imshow(table[index], extent=extent, origin="upper", interpolation="nearest",
+                      zorder=2)
+            return lines is not None
+        if self.links is not None:
+            ax.add_collection(LineCollection(self.segments(), colors=LINK_COLOUR,
+                                             linewidths=0.6, alpha=0.8, zorder=1))
+        ax.add_collection(PathCollection(self.paths(), facecolors=colours,
+                                         edgecolors="#404040", linewidths=0.35, zorder=2))
+        return self.links is not None
 
 
 def _frame_map(ax, geoms, crs):
@@ -876,12 +992,8 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
     extent = np.concatenate([geoms, lines]) if len(lines) else geoms
     fig, ax = _map_figure(extent)
     handles = []
-    if links is not None and len(links):
-        if links.crs is not None and links.crs != patches.crs:
-            links = links.to_crs(patches.crs)
-        ax.add_collection(_line_collection(np.asarray(links.geometry.values, dtype=object)))
+    if MapCanvas(patches, links).draw(ax, np.tile(_rgba("#e9e6df"), (len(geoms), 1))):
         handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="existing link"))
-    ax.add_collection(_polygon_collection(geoms, np.tile(_rgba("#e9e6df"), (len(geoms), 1))))
 
     segments = [shapely.get_coordinates(g) / 1e3 for g in lines]
     if chosen.any():

@@ -101,6 +101,7 @@ def write_figures_and_report(folder, result, gdf, links, summary, extra_sections
     maps.mkdir(exist_ok=True)
     sc = result.study.scenario
     sections: dict[str, list] = {}
+    canvas = plot.MapCanvas(gdf, links)  # the patches and links prepared once for every map
     for section, specs in SECTIONS.items():
         for spec in specs:
             for s in SPECIES:
@@ -114,7 +115,7 @@ def write_figures_and_report(folder, result, gdf, links, summary, extra_sections
                     frame = gdf[[col, "geometry"]].copy()
                     frame[col] = frame[col].where(frame[col] != spec.missing).astype(object)
                     frame[col] = frame[col].map(lambda v: v if v != v else f"group {int(v)}")
-                plot.patch_map(frame, col, path=path, links=links,
+                plot.patch_map(frame, col, path=path, canvas=canvas,
                                title=spec.title.format(S=s.capitalize()), label=spec.label,
                                diverging=spec.kind == "diverging",
                                categorical=spec.kind == "categorical")
