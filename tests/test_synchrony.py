@@ -316,7 +316,7 @@ def test_bad_centroids_are_refused(noisy):
 
 
 # --------------------------------------------------------------------------------------------
-# groups (Louvain communities via networkx; Blondel et al. 2008, J. Stat. Mech., from memory)
+# groups (Louvain communities via igraph; Blondel et al. 2008, J. Stat. Mech., from memory)
 
 
 def test_two_driven_blocks_form_two_groups(rng):
@@ -337,6 +337,29 @@ def test_two_driven_blocks_form_two_groups(rng):
     assert set(g[keep]) == {0, 1}
     # one label per block, the larger block (13 patches with a series) is group 0
     assert (g[keep & (block == 0)] == 0).all() and (g[keep & (block == 1)] == 1).all()
+
+
+def test_groups_follow_the_patches_not_their_order(rng):
+    # consistency test: six weakly coupled blocks of patches with noisy, overlapping
+    # drives, so that the communities are not obvious; the same patches and links in
+    # another order give every patch the same group (groups are found on the patches in
+    # the order of their ids)
+    n, t = 60, 200
+    drive = rng.standard_normal((t, 6))
+    block = np.arange(n) % 6
+    y = 3.0 + 0.3 * (drive[:, block] + 1.2 * rng.standard_normal((t, n)))
+    graph = nx.random_geometric_graph(n, 0.3, seed=5)
+    a, b = np.array(graph.edges()).T
+    ids = [f"p{k:02d}" for k in range(n)]
+    base = sy.synchrony_groups(dataset(from_log(y), ids=ids), burn_in=0, source=a, target=b,
+                               seed=3)["prey_sync_group"]
+    assert base.nunique() > 2
+    perm = rng.permutation(n)
+    where = np.argsort(perm)  # new position of each old patch
+    moved = sy.synchrony_groups(dataset(from_log(y[:, perm]), ids=[ids[k] for k in perm]),
+                                burn_in=0, source=where[a], target=where[b],
+                                seed=3)["prey_sync_group"]
+    assert (moved.loc[base.index] == base).all()
 
 
 # --------------------------------------------------------------------------------------------

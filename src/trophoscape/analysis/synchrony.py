@@ -809,30 +809,49 @@ def synchrony_by_distance(traj, *, burn_in: float, species=SPECIES, centroids,
 # groups of patches that move together
 
 
-def _groups_from_links(r, source, target, valid, seed, resolution):
-    """Louvain communities of the graph of links with positive correlation."""
-    import networkx as nx
+def _groups_from_links(r, source, target, valid, seed, resolution, rank=None):
+    """Louvain communities of the graph of links with positive correlation.
+
+    igraph's ``community_multilevel`` (the Louvain method of Blondel et al. 2008, compiled)
+    on the patches in the order of ``rank`` (a patch's place among the ids; default the
+    patch order), with igraph's random numbers drawn from ``random.Random(seed)``: so the
+    groups follow the patches' ids, not their order in the file. Groups are numbered by
+    size, largest first, ties by their first patch in ``rank`` order.
+    """
+    import random
+
+    import igraph
 
     n = valid.size
+    rank = np.arange(n) if rank is None else np.asarray(rank, dtype=np.int64)
     a, b = np.minimum(source, target), np.maximum(source, target)
     keep = (a != b) & np.isfinite(r) & (r > 0) & valid[a] & valid[b]
-    a, b, r = a[keep], b[keep], r[keep]
+    a, b, r = rank[a[keep]], rank[b[keep]], r[keep]
+    a, b = np.minimum(a, b), np.maximum(a, b)
     # an undirected link stored as two arcs (or parallel routes) is one edge: mean correlation
     code, inverse = np.unique(a * n + b, return_inverse=True)
     weight = np.bincount(inverse, weights=r) / np.bincount(inverse)
-    graph = nx.Graph()
-    graph.add_nodes_from(np.flatnonzero(valid).tolist())
-    graph.add_weighted_edges_from(zip((code // n).tolist(), (code % n).tolist(),
-                                      weight.tolist()))
-    groups = nx.community.louvain_communities(graph, weight="weight", resolution=resolution,
-                                              seed=seed)
-    label = np.full(n, -1, dtype=np.int64)
-    members = [np.fromiter(g, dtype=np.int64) for g in groups]
-    # numbered by size, largest first; ties by the first patch, so labels are reproducible
-    order = sorted(range(len(members)), key=lambda k: (-members[k].size, members[k].min()))
-    for rank, k in enumerate(order):
-        label[members[k]] = rank
-    return label
+    nodes = np.sort(rank[valid])  # the patches with a series, in id order
+    where = np.full(n, -1, dtype=np.int64)
+    where[nodes] = np.arange(nodes.size)
+    graph = igraph.Graph(n=nodes.size,
+                         edges=np.column_stack([where[code // n], where[code % n]]))
+    igraph.set_random_number_generator(random.Random(seed))
+    try:
+        membership = np.asarray(graph.community_multilevel(
+            weights=weight, resolution=resolution).membership, dtype=np.int64)
+    finally:
+        igraph.set_random_number_generator(random)
+    by_rank = np.full(n, -1, dtype=np.int64)
+    if nodes.size:
+        size = np.bincount(membership)
+        first = np.full(size.size, n, dtype=np.int64)
+        np.minimum.at(first, membership, nodes)
+        order = np.lexsort((first, -size))
+        number = np.empty_like(order)
+        number[order] = np.arange(order.size)
+        by_rank[nodes] = number[membership]
+    return by_rank[rank]
 
 
 def synchrony_groups(traj, *, burn_in: float, source, target, species=SPECIES, seed: int = 0,
@@ -841,8 +860,10 @@ def synchrony_groups(traj, *, burn_in: float, source, target, species=SPECIES, s
 
     The graph has one node per patch with a varying series and one edge per linked pair with a
     positive correlation (weight: the correlation; with replicates, the mean over replicates);
-    groups are its communities by :func:`networkx.community.louvain_communities` (Blondel et
-    al. 2008, J. Stat. Mech. P10008, from memory) with the given ``seed`` and ``resolution``.
+    groups are its communities by the Louvain method (Blondel et al. 2008, J. Stat. Mech.
+    P10008, from memory; igraph's ``community_multilevel``) with the given ``seed`` and
+    ``resolution``, on the patches in the order of their ids (so the groups do not depend on
+    the order of the patch file).
 
     Parameters
     ----------
@@ -870,13 +891,16 @@ def synchrony_groups(traj, *, burn_in: float, source, target, species=SPECIES, s
 def _groups_table(data, res, source, target, species, seed, resolution):
     n = data.sizes["patch"]
     source, target = _arcs(source, target, n)
+    ids = np.asarray(data["patch"].values).astype(str)
+    rank = np.empty(n, dtype=np.int64)
+    rank[np.argsort(ids, kind="stable")] = np.arange(n)
     columns = {}
     for s in species:
         valid = np.asarray(res[s]["valid"]) > 0  # a varying series in some replicate
         r = res[s].get("links", np.empty(0))
         r = np.asarray(r, dtype=float).reshape(-1)
         columns[f"{s}_sync_group"] = _groups_from_links(r, source, target, valid, seed,
-                                                        resolution)
+                                                        resolution, rank)
     return pd.DataFrame(columns, index=_patch_index(data))
 
 
