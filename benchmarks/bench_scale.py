@@ -37,9 +37,9 @@ from common import (STUDY_STAGES, table, timed_study, versions,  # noqa: E402
                     write_study_inputs)
 
 
-def child(folder: Path, profile: str | None, kernel: str) -> dict:
+def child(folder: Path, profile: str | None, kernel: str, maps: bool = False) -> dict:
     """Run one study in this process; return stage (wall, CPU) seconds and peak memory."""
-    timed = timed_study(folder, profile=profile, kernel=kernel)
+    timed = timed_study(folder, profile=profile, kernel=kernel, maps=maps)
     got, load, run = timed["stages"], timed["load"], timed["run"]
     result = timed["result"]
     rows = {
@@ -53,7 +53,8 @@ def child(folder: Path, profile: str | None, kernel: str) -> dict:
         "stability_analysis": got["stability_analysis"],
         "capacity_analysis": got["capacity_analysis"],
         "rest of run_study": run - sum(got[k] for k in STUDY_STAGES[2:]),
-        "write_run_files(maps=False)": timed["write"],
+        ("write_run_files(maps=True): files, maps, report" if maps
+         else "write_run_files(maps=False)"): timed["write"],
         "end to end": timed["total"],
     }
     stats = result.trajectory.stats
@@ -66,9 +67,10 @@ def child(folder: Path, profile: str | None, kernel: str) -> dict:
             "outputs_mb": sizes}
 
 
-def prepare(n: int, stability: bool) -> Path:
+def prepare(n: int, stability: bool, duration: float) -> Path:
     folder = Path(tempfile.mkdtemp(prefix=f"trophoscape-scale-{n}-"))
-    write_study_inputs(folder, n, SCENARIO.format(n=n) + "\n[analysis]\nstability = %s\n"
+    text = SCENARIO.format(n=n).replace("duration = 200", f"duration = {duration:g}")
+    write_study_inputs(folder, n, text + "\n[analysis]\nstability = %s\n"
                        % ("true" if stability else "false"))
     return folder
 
@@ -80,16 +82,21 @@ def main():
     ap.add_argument("--profile", help="cProfile output file (largest size only)")
     ap.add_argument("--kernel", choices=["auto", "numpy"], default="auto",
                     help="numpy: keep the local terms on numpy at every size")
+    ap.add_argument("--maps", action="store_true", help="write the maps and the report too")
+    ap.add_argument("--duration", type=float, default=200.0, help="time units (default 200)")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
-        print("RESULT " + json.dumps(child(Path(args.child), args.profile, args.kernel)))
+        print("RESULT " + json.dumps(child(Path(args.child), args.profile, args.kernel,
+                                           args.maps)))
         return
     print("bench_scale:", versions())
     results = {}
     for n in args.sizes:
-        folder = prepare(n, args.stability)
+        folder = prepare(n, args.stability, args.duration)
         cmd = [sys.executable, __file__, "--child", str(folder), "--kernel", args.kernel]
+        if args.maps:
+            cmd.append("--maps")
         if args.profile and n == max(args.sizes):
             cmd += ["--profile", args.profile]
         t0 = time.perf_counter()

@@ -162,11 +162,13 @@ def write_study_inputs(folder: Path, n: int, scenario_text: str) -> None:
     (folder / "scenario.toml").write_text(scenario_text, encoding="utf-8")
 
 
-def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto") -> dict:
+def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto",
+                maps: bool = False) -> dict:
     """Run ``folder/scenario.toml`` as the command line does, timing every stage.
 
     ``load_study``; then, inside the staged output folder ``folder/out``, ``run_study`` with
-    ``series_to`` (``timeseries.nc`` written as the run goes) and ``write_run_files(maps=False)``;
+    ``series_to`` (``timeseries.nc`` written as the run goes) and ``write_run_files(maps=maps)``
+    (with ``maps``, the maps and ``report.html`` too);
     the functions of :data:`STUDY_STAGES` and the series writer's block writes are wrapped
     by :func:`clock` for the time of the call. ``profile``: a cProfile output file for the
     whole of it. ``kernel="numpy"`` keeps the local terms on numpy at every size.
@@ -207,7 +209,7 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
         with staged_folder(folder / "out") as stage:
             result = study_module.run_study(study, series_to=stage / "timeseries.nc")
             t2 = now()
-            write_run_files(result, stage, maps=False)
+            write_run_files(result, stage, maps=maps)
         t3 = now()
     finally:
         if prof is not None:
