@@ -354,3 +354,23 @@ def test_a_raster_map_colours_each_patch_as_the_vector_map_does(tmp_path):
     a = np.all(np.abs(got[False][..., :3] - colour) < 0.02, axis=-1)
     b = np.all(np.abs(got[True][..., :3] - colour) < 0.02, axis=-1)
     assert (a & b).sum() > 0.8 * min(a.sum(), b.sum())
+
+
+def test_size_classes_hold_equal_numbers_of_patches_and_their_shares(tmp_path):
+    # consistency test against a direct count: quintiles of area, the share of patches
+    # with the flag in each, unknown flags left out
+    rng = np.random.default_rng(3)
+    area = rng.lognormal(0.0, 1.0, 500)
+    flags = (rng.uniform(size=500) < np.clip(area / area.max() * 3, 0, 1)).astype(float)
+    flags[:7] = np.nan
+    edges, shares, counts = plot.size_class_shares(area, flags, classes=5)
+    assert edges.size == 6 and edges[0] == area.min() and edges[-1] == area.max()
+    for k in range(5):
+        inside = (area >= edges[k]) & ((area < edges[k + 1]) if k < 4 else (area <= edges[5]))
+        known = inside & np.isfinite(flags)
+        assert counts[k] == known.sum()
+        assert shares[k] == pytest.approx(flags[known].mean())
+    assert abs(counts.sum() - 493) == 0
+    path = plot.size_class_plot(area, {"prey": flags, "predator": 1 - np.nan_to_num(flags)},
+                                path=tmp_path / "s.png")
+    assert read_png(path).shape[0] > 100

@@ -1324,3 +1324,58 @@ def profile_panels(profiles, *, path) -> Path:
     fig.supxlabel("value held (others re-estimated); dashed: 1.92, the 95 % interval's edge",
                   fontsize=8)
     return _save(fig, Path(path))
+
+
+# --------------------------------------------------------------------------------------------
+# a summary of many patches
+
+
+def size_class_shares(area_km2, flags, *, classes: int = 5):
+    """Patches in size classes (quantiles of area) and, per class, the share of them where
+    ``flags`` is True: ``(edges, shares, counts)``, ``edges`` of length classes + 1 (fewer
+    where many patches share an area), NaN flags left out of the shares."""
+    area = np.asarray(area_km2, dtype=float)
+    flags = np.asarray(flags, dtype=float)
+    edges = np.unique(np.quantile(area, np.linspace(0.0, 1.0, classes + 1)))
+    if edges.size < 2:
+        edges = np.array([area.min(), area.max()])
+    which = np.clip(np.searchsorted(edges, area, side="right") - 1, 0, edges.size - 2)
+    known = np.isfinite(flags)
+    counts = np.bincount(which[known], minlength=edges.size - 1)
+    hits = np.bincount(which[known], weights=flags[known], minlength=edges.size - 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        shares = np.where(counts > 0, hits / np.maximum(counts, 1), np.nan)
+    return edges, shares, counts
+
+
+@_plain_text
+def size_class_plot(area_km2, persists: dict, *, path, classes: int = 5) -> Path:
+    """Share of patches where each species is present at the end, by patch-size class
+    (quintiles of area): a view of a large network that a map of its patches cannot give.
+
+    ``persists``: species name → per-patch booleans (NaN where unknown).
+    """
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(6.4, 3.4), layout="constrained")
+    ax = fig.subplots()
+    names = list(persists)
+    width = 0.8 / max(len(names), 1)
+    labels = None
+    for k, name in enumerate(names):
+        edges, shares, counts = size_class_shares(area_km2, persists[name], classes=classes)
+        x = np.arange(shares.size)
+        style = _SPECIES_STYLES.get(name, {"color": OKABE_ITO[k % len(OKABE_ITO)]})
+        ax.bar(x + (k - (len(names) - 1) / 2) * width, shares, width=width,
+               color=style["color"], label=_literal(name))
+        labels = [f"{a:.3g}–{b:.3g}\n({c} patches)" for a, b, c in
+                  zip(edges[:-1], edges[1:], counts)]
+    if labels:
+        ax.set_xticks(np.arange(len(labels)), labels, fontsize=7)
+    ax.set_ylim(0, 1.05)
+    ax.set_ylabel("share of patches where present at the end", fontsize=8)
+    ax.set_xlabel("patch area (km²), classes of equal numbers of patches", fontsize=8)
+    ax.tick_params(axis="y", labelsize=8)
+    ax.grid(True, axis="y", color="0.9", linewidth=0.5)
+    fig.legend(loc="outside upper center", ncol=max(len(names), 1), frameon=False, fontsize=8)
+    return _save(fig, Path(path))

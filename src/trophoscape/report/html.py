@@ -127,9 +127,21 @@ def write_figures_and_report(folder, result, gdf, links, summary, extra_sections
                                     burn_in=sc["run.burn_in"])
     occupancy = plot.occupancy_curve(data, path=maps / "occupancy.png",
                                      time_unit=sc["time_unit"])
+    by_size = []
+    persists = {s: gdf[f"{s}_persists"].astype("boolean").to_numpy(dtype=float,
+                                                                   na_value=np.nan)
+                for s in SPECIES
+                if f"{s}_persists" in gdf.columns and gdf[f"{s}_persists"].notna().any()}
+    if persists and "area_km2" in gdf.columns:
+        by_size = [("Persistence by patch size", plot.size_class_plot(
+            gdf["area_km2"].to_numpy(dtype=float), persists, path=maps / "persistence_by_size.png"),
+            "Each bar is the share of patches of that size class where the species is present "
+            "at the end. Where small patches lose a species first, the network depends on its "
+            "large patches; on a large network this says more than the maps can.")]
     sections.setdefault("Persistence", []).extend([
         ("Share of patches occupied over time", occupancy,
          "A falling curve means a species is losing patches faster than it recolonises them."),
+        *by_size,
         ("Abundance in six patches, largest to smallest", panels,
          "Prey (solid) and predator (dashed) numbers; the grey band is the burn-in, left out "
          "of every figure above."),
