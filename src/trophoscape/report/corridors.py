@@ -443,14 +443,15 @@ def write_comparison(results, out, *, columns=("predator_occupancy", "prey_occup
             stem = f"{slugs[k]}_minus_{slugs[0]}"
             diff.to_csv(stage / f"differences_{stem}.csv", index=True)
             if maps and len(diff):
-                from .figures import patch_map
+                from .figures import MapCanvas, patch_map
 
                 (stage / "maps").mkdir(exist_ok=True)
                 frame = r.study.landscape.frame.set_index("patch_id").loc[diff.index]
-                frame = frame[["geometry"]].reset_index()
+                frame = frame[["geometry"]].reset_index().set_geometry("geometry")
+                canvas = MapCanvas(frame)  # the shared patches, prepared once for every map
                 for c in columns:
                     frame[c] = diff[f"{c}_difference"].to_numpy()
-                    path = patch_map(frame.set_geometry("geometry"), c,
+                    path = patch_map(frame, c, canvas=canvas,
                                      path=stage / "maps" / f"difference_{c}_{stem}.png",
                                      diverging=True,
                                      title=f"{c.replace('_', ' ')}: {table.index[k]} − "

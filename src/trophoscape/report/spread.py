@@ -96,7 +96,7 @@ def write_spread(study, result, out, *, scan=None, maps=True, geojson=False,
 
 def _spread_maps(stage: Path, study, result, scan) -> str:
     """Draw the spread's maps into ``stage/maps``; return the report section showing them."""
-    from .figures import arrival_distance_plot, patch_map
+    from .figures import MapCanvas, arrival_distance_plot, patch_map
     from .html import section_html
 
     folder = stage / "maps"
@@ -108,7 +108,8 @@ def _spread_maps(stage: Path, study, result, scan) -> str:
         frame[col] = result.table[col].to_numpy()
     unit = study.scenario["time_unit"]
     species = result.summary["species"]
-    patch_map(frame, "arrival_time", path=folder / "spread_arrival.png", links=links,
+    canvas = MapCanvas(frame, links)  # prepared once for both maps
+    patch_map(frame, "arrival_time", path=folder / "spread_arrival.png", canvas=canvas,
               title=f"Arrival of {species} collapse", label=f"arrival time ({unit})",
               cmap="viridis_r", isolines=6)
     s = result.summary
@@ -122,7 +123,7 @@ def _spread_maps(stage: Path, study, result, scan) -> str:
         frame["cascade_share"] = scan["cascade_share"].reindex(
             land.ids.astype(str)).to_numpy(dtype=float)
         patch_map(frame, "cascade_share", path=folder / "origin_vulnerability.png",
-                  links=links, title="Origins: share of other patches a collapse reaches",
+                  canvas=canvas, title="Origins: share of other patches a collapse reaches",
                   label="share of patches reached", cmap="magma_r")
     speed = s["front_speed_km_per_time"]
     figures = [
