@@ -316,6 +316,8 @@ def test_fit_command_writes_its_folder_and_the_fitted_scenario_is_accepted(tmp_p
     est = pd.read_csv(out / "estimates.csv")
     assert list(est.columns[:4]) == ["parameter", "estimate", "low", "high"]
     assert list(est["parameter"]) == list(TRUTH)
+    assert est["lower_bound"].tolist() == pytest.approx([v / 100 for v in (0.7, 0.07)])
+    assert est["upper_bound"].tolist() == pytest.approx([v * 100 for v in (0.7, 0.07)])
     assert (est["low"] < est["estimate"]).all() and (est["estimate"] < est["high"]).all()
     summary = json.loads((out / "summary.json").read_text())
     fitted = pd.read_csv(out / "fitted_counts.csv")
@@ -373,6 +375,17 @@ def test_a_fit_does_not_depend_on_numerical_settings(tmp_path):
         other = replace(study, scenario=study.scenario.with_values(**changes))
         for key, value in fit(other, workers=1).items():
             assert value == pytest.approx(base[key], rel=1e-3), (changes, key)
+    # the profile intervals too: identical with one or two workers, close at tighter
+    # tolerances
+    def ends(s, workers):
+        f = fit_counts(s, counts, list(TRUTH), observation="poisson", starts=1,
+                       workers=workers)
+        return [f.low[k] for k in TRUTH] + [f.high[k] for k in TRUTH]
+
+    one = ends(study, 1)
+    assert ends(study, 2) == one
+    tight = replace(study, scenario=study.scenario.with_values(run__rtol=1e-7, run__atol=1e-9))
+    assert ends(tight, 1) == pytest.approx(one, rel=1e-3)
     # the same patches in reverse order: the counts follow their ids
     folder = tmp_path / "b"
     folder.mkdir()
@@ -539,6 +552,9 @@ def test_one_value_a_value_on_its_bound_and_a_value_limited_above(tmp_path):
                           observation="lognormal", starts=1)
     assert 0 < survival.low["dispersal.survival_per_km"] \
         <= survival.high["dispersal.survival_per_km"] <= 1.0
+    # the range searched, as estimates.csv reports it, is the one the scenario accepts
+    low, high = survival.bounds["dispersal.survival_per_km"]
+    assert high <= 1.0 and low == pytest.approx(study.scenario["dispersal.survival_per_km"] / 100)
 
 
 def test_the_pool_is_used_and_left_behind_by_nothing(tmp_path, monkeypatch):

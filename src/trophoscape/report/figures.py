@@ -57,6 +57,13 @@ def _literal(text) -> str:
     return str(text).replace("$", r"\$")
 
 
+def _panel_grid(n: int) -> tuple[int, int]:
+    """Rows and columns for ``n`` small panels: one column for one, two up to four, else
+    three."""
+    ncols = 1 if n == 1 else 2 if n <= 4 else 3
+    return math.ceil(n / ncols), ncols
+
+
 def _plain_text(draw):
     """Run a drawing function with ``text.usetex`` off (whatever the user's matplotlibrc
     says), so every label is drawn by matplotlib and user text is never sent to TeX."""
@@ -584,8 +591,7 @@ def timeseries_panels(dataset, patch_ids, *, path, time_unit="year", burn_in=Non
     time = dataset["time"].values
 
     n = len(patch_ids)
-    ncols = 1 if n == 1 else 2 if n <= 4 else 3
-    nrows = math.ceil(n / ncols)
+    nrows, ncols = _panel_grid(n)
     # A single panel gets extra width so the legend row above it fits.
     fig = Figure(figsize=(max(3.3 * ncols + 0.6, 5.6), 2.3 * nrows + 0.9), layout="constrained")
     axes = np.atleast_1d(fig.subplots(nrows, ncols, sharex=True, sharey=True, squeeze=False)
@@ -1210,8 +1216,7 @@ def fitted_counts_panels(course, observed, *, path, time_unit="year") -> Path:
 
     ids = list(course)[:MAX_FIT_PANELS]
     n = max(len(ids), 1)
-    ncols = 1 if n == 1 else 2 if n <= 4 else 3
-    nrows = math.ceil(n / ncols)
+    nrows, ncols = _panel_grid(n)
     fig = Figure(figsize=(max(3.3 * ncols + 0.6, 5.6), 2.2 * nrows + 1.0), layout="constrained")
     axes = np.atleast_1d(fig.subplots(nrows, ncols, sharex=True, squeeze=False)).ravel()
     for ax, pid in zip(axes, ids):
@@ -1284,8 +1289,7 @@ def profile_panels(profiles, *, path) -> Path:
 
     keys = list(profiles)
     n = max(len(keys), 1)
-    ncols = 1 if n == 1 else 2 if n <= 4 else 3
-    nrows = math.ceil(n / ncols)
+    nrows, ncols = _panel_grid(n)
     fig = Figure(figsize=(max(3.3 * ncols + 0.6, 5.0), 2.4 * nrows + 0.6), layout="constrained")
     axes = np.atleast_1d(fig.subplots(nrows, ncols, squeeze=False)).ravel()
     from matplotlib.ticker import MaxNLocator

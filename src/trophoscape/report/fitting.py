@@ -114,13 +114,11 @@ def fit_summary(study, counts, fit) -> dict:
 def _estimates_frame(sc, fit):
     import pandas as pd
 
-    bounds = dict(sc["fit.bounds"] or {})
     rows = []
     for k, v in fit.estimates.items():
-        start = float(sc[k])
-        lo, hi = bounds.get(k, (start / 100.0, start * 100.0))
+        lo, hi = fit.bounds[k]  # as searched: a default range narrowed to what k accepts
         rows.append({"parameter": k, "estimate": v, "low": fit.low[k], "high": fit.high[k],
-                     "start": start, "lower_bound": lo, "upper_bound": hi,
+                     "start": float(sc[k]), "lower_bound": lo, "upper_bound": hi,
                      "open_ends": ";".join(fit.open_ends[k])})
     return pd.DataFrame(rows)
 

@@ -18,19 +18,20 @@ the header) and the column.
 from __future__ import annotations
 
 import math
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import InputError, RunError
+from ..model.system import SPECIES
 
 __all__ = ["Counts", "read_counts", "expected_counts", "log_likelihood", "with_rates",
            "Fit", "fit_counts", "searched_study"]
 
 #: The columns of a counts table, in order.
 COUNT_COLUMNS = ("patch_id", "time", "species", "count")
-_SPECIES = ("prey", "predator")
 
 
 @dataclass(frozen=True, eq=False)
@@ -84,6 +85,8 @@ def read_counts(path, study, *, observation: str = "lognormal") -> Counts:
     try:
         with open(path, newline="", encoding="utf-8-sig") as fh:
             rows = list(csv.reader(fh))
+    except FileNotFoundError:
+        raise InputError("the counts table does not exist; check the path", file=path) from None
     except (OSError, UnicodeDecodeError, csv.Error) as exc:
         raise InputError(f"cannot be read as a CSV table ({exc}); expected {expected}",
                          file=path) from None
@@ -123,7 +126,7 @@ def read_counts(path, study, *, observation: str = "lognormal") -> Counts:
     refuse(~known, "patch_id", lambda r: f"unknown patch {str(cells['patch_id'][r])!r}; give the id "
                                          "of a patch of the scenario's patch file")
     patch = order[pos].astype(np.int64)
-    species_ok = np.isin(cells["species"], _SPECIES)
+    species_ok = np.isin(cells["species"], SPECIES)
     refuse(~species_ok, "species",
            lambda r: f"{str(cells['species'][r])!r} is not a species; give prey or predator")
     species = (cells["species"] == "predator").astype(np.int64)
@@ -179,7 +182,7 @@ def expected_counts(study, counts: Counts, *, detection: float = 1.0) -> np.ndar
     traj = simulate(study.system, study.initial_state, ids=study.ids, events=events,
                     output_times=times, **settings)
     rows = np.searchsorted(traj.time, counts.time)
-    values = np.stack([traj.data[s].values for s in ("prey", "predator")])
+    values = np.stack([traj.data[s].values for s in SPECIES])
     return detection * values[counts.species, rows, counts.patch]
 
 
@@ -188,15 +191,19 @@ def expected_counts(study, counts: Counts, *, detection: float = 1.0) -> np.ndar
 FITTABLE_SECTIONS = ("prey", "predator", "predation", "dispersal")
 
 
-def _refuse_unfittable(keys, where) -> None:
+def _refuse_structure(key, **where) -> None:
+    """Refuse a key that shapes the patches or the network (which a fit keeps)."""
     from .study import STRUCTURE_KEYS, STRUCTURE_SECTIONS
 
+    if key in STRUCTURE_KEYS or key.split(".", 1)[0] in STRUCTURE_SECTIONS:
+        raise InputError(f"{key} shapes the patches or the network, which a fit keeps as "
+                         "they are; estimate rates and densities instead", **where)
+
+
+def _refuse_unfittable(keys, where) -> None:
     for key in keys:
         section = key.split(".", 1)[0]
-        if key in STRUCTURE_KEYS or section in STRUCTURE_SECTIONS:
-            raise InputError(f"{key} shapes the patches or the network, which a fit keeps as "
-                             "they are; estimate rates and densities instead", file=where,
-                             field="fit.estimate")
+        _refuse_structure(key, file=where, field="fit.estimate")
         if section not in FITTABLE_SECTIONS:
             raise InputError(f"{key} is not a value of the model (a fit estimates keys of "
                              f"[{'], ['.join(FITTABLE_SECTIONS)}]); estimate rates and "
@@ -208,12 +215,10 @@ def with_rates(study, changes: dict):
     landscape and network kept: rates, densities, emigration, kernel scales, survival —
     anything but the keys that shape the network or the patches
     (:data:`trophoscape.workflows.study.STRUCTURE_KEYS`), which a fit cannot vary."""
-    from .study import STRUCTURE_KEYS, STRUCTURE_SECTIONS, assemble_study
+    from .study import assemble_study
 
     for key in changes:
-        if key in STRUCTURE_KEYS or key.split(".", 1)[0] in STRUCTURE_SECTIONS:
-            raise InputError(f"{key} shapes the patches or the network, which a fit keeps as "
-                             "they are; estimate rates and densities instead", field=key)
+        _refuse_structure(key, field=key)
     scenario = study.scenario.with_values(**{k.replace(".", "__"): v
                                              for k, v in changes.items()})
     return assemble_study(scenario, study.landscape, study.network, ground=study.ground)
@@ -262,6 +267,9 @@ class Fit:
         1.92 within the bounds (see ``open_ends``).
     open_ends : dict
         Each key → the ends (``"low"``, ``"high"``) where the interval reached the bound.
+    bounds : dict
+        Each key → ``(low, high)``, the range searched (the given bounds, or the default
+        range narrowed to what the key accepts).
     observation : str
     extras : dict
         Per species with counts (``"prey"``, ``"predator"``): the observation model's sd
@@ -295,6 +303,7 @@ class Fit:
     low: dict
     high: dict
     open_ends: dict
+    bounds: dict
     observation: str
     extras: dict
     log_likelihood: float
@@ -309,13 +318,6 @@ class Fit:
     profiles: dict
     warnings: list
     expected: np.ndarray
-
-    @property
-    def extra(self):
-        """The one sd or dispersion when only one species was counted, else a dict."""
-        if len(self.extras) == 1:
-            return next(iter(self.extras.values()))
-        return dict(self.extras) or None
 
 
 #: The fit a forked worker computes runs for, while a pool works on it.
@@ -384,7 +386,7 @@ class _Likelihood:
             _JOB = self
             self.pool = ProcessPoolExecutor(workers, mp_context=mp.get_context("fork"),
                                             initializer=_init_worker,
-                                            initargs=(__import__("os").getpid(),))
+                                            initargs=(os.getpid(),))
         return self
 
     def __exit__(self, *exc):
@@ -660,8 +662,8 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
     n_species = len(set(counts.species.tolist()))
     n_extra = n_species if OBSERVATION_MODELS[observation] else 0
     if counts.n < len(keys) + n_extra:
-        raise InputError(f"the table has {counts.n} counts, fewer than the "
-                         f"{len(keys) + n_extra} quantities the fit estimates ({len(keys)} "
+        raise InputError(f"the table has {counts.n} count{'s' * (counts.n != 1)}, fewer "
+                         f"than the {len(keys) + n_extra} quantities the fit estimates ({len(keys)} "
                          f"scenario value{'s' * (len(keys) != 1)} and {n_extra} observation "
                          f"{OBSERVATION_MODELS[observation] or 'parameter'}"
                          f"{'s' * (n_extra != 1)}); add counts or estimate fewer values",
@@ -670,7 +672,7 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
     if n_extra:
         thin = [(s, int(per_species[s])) for s in (0, 1) if 0 < per_species[s] < 3]
         if thin:
-            name = _SPECIES[thin[0][0]]
+            name = SPECIES[thin[0][0]]
             raise InputError(f"the table has {thin[0][1]} count(s) of {name}; the {observation} "
                              f"model estimates a {OBSERVATION_MODELS[observation]} for each "
                              "species counted, which needs at least 3 counts of it: add counts "
@@ -760,11 +762,11 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
         if observation == "negative_binomial":
             for s, k_ in sorted(extras.items()):
                 if k_ <= _DISPERSION_RANGE[0] * 1.01:
-                    warnings.append(f"the {_SPECIES[s]} counts scatter so widely that their "
+                    warnings.append(f"the {SPECIES[s]} counts scatter so widely that their "
                                     f"dispersion is at its lowest ({k_:.3g}): they hardly "
                                     "weigh in the fit; check them")
                 elif k_ >= _DISPERSION_RANGE[1] / 1.01:
-                    warnings.append(f"the {_SPECIES[s]} counts scatter no more than Poisson "
+                    warnings.append(f"the {SPECIES[s]} counts scatter no more than Poisson "
                                     f"counts (dispersion {k_:.3g}, the highest searched): the "
                                     "poisson observation model suits them")
         threshold = float(scenario["run.extinction_abundance"])
@@ -786,8 +788,10 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
         runs = like.runs
     k_total = len(keys) + len(extras)
     return Fit(estimates=dict(zip(keys, values.tolist())), low=low, high=high,
-               open_ends=open_ends, observation=observation,
-               extras={_SPECIES[s]: v for s, v in sorted(extras.items())}, log_likelihood=ll,
+               open_ends=open_ends,
+               bounds={k: (float(np.exp(a)), float(np.exp(b))) for k, a, b in zip(keys, lo, hi)},
+               observation=observation,
+               extras={SPECIES[s]: v for s, v in sorted(extras.items())}, log_likelihood=ll,
                aic=2 * k_total - 2 * ll, n_counts=counts.n, starts=len(points),
                agreeing=int(sum(abs(r[3] - ll) <= 0.01 for r in results)),
                converged=bool(converged), evaluations=runs, correlation=corr,
@@ -829,7 +833,7 @@ def _refuse_impossible(like, theta) -> None:
     impossible = (mu <= 0) & ((y > 0) | (like.observation == "lognormal"))
     if impossible.any():
         r = int(np.flatnonzero(impossible)[0])
-        raise InputError(f"the model expects no {_SPECIES[int(like.counts.species[r])]} here "
+        raise InputError(f"the model expects no {SPECIES[int(like.counts.species[r])]} here "
                          f"(it is absent from the start), so a count of {y[r]:g} is "
                          "impossible; give the species an initial density above 0, or leave "
                          "the row out", file=like.counts.path, feature=r, field="count")
