@@ -682,14 +682,14 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
     if stray:
         raise InputError(f"bounds are given for {stray[0]}, which is not estimated; add it to "
                          "fit.estimate or remove its bounds", file=where, field="fit.bounds")
-    lo, hi = [], []
+    searched = {}
     for k, b in zip(keys, base):
         a_, b_ = bounds.get(k, (b / 100.0, b * 100.0))
         if k not in bounds:  # the default range, within what the key accepts
             a_, b_ = _valid_range(k, b, a_, b_)
-        lo.append(math.log(a_))
-        hi.append(math.log(b_))
-    lo, hi = np.array(lo), np.array(hi)
+        searched[k] = (float(a_), float(b_))
+    lo = np.log([searched[k][0] for k in keys])
+    hi = np.log([searched[k][1] for k in keys])
     scenario = study.scenario
     study = searched_study(study)
     tight = study.scenario
@@ -789,7 +789,7 @@ def fit_counts(study, counts: Counts, estimate, *, observation: str = "lognormal
     k_total = len(keys) + len(extras)
     return Fit(estimates=dict(zip(keys, values.tolist())), low=low, high=high,
                open_ends=open_ends,
-               bounds={k: (float(np.exp(a)), float(np.exp(b))) for k, a, b in zip(keys, lo, hi)},
+               bounds=searched,
                observation=observation,
                extras={SPECIES[s]: v for s, v in sorted(extras.items())}, log_likelihood=ll,
                aic=2 * k_total - 2 * ll, n_counts=counts.n, starts=len(points),
