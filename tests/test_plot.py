@@ -374,3 +374,22 @@ def test_size_classes_hold_equal_numbers_of_patches_and_their_shares(tmp_path):
     path = plot.size_class_plot(area, {"prey": flags, "predator": 1 - np.nan_to_num(flags)},
                                 path=tmp_path / "s.png")
     assert read_png(path).shape[0] > 100
+
+
+def test_a_corridor_map_on_a_shared_canvas_is_the_same_map(patches, tmp_path):
+    # consistency test: the corridor map drawn on a canvas prepared once (as `corridors`
+    # shares it with the map of critical patches) is pixel for pixel the one drawn alone; a
+    # canvas of other patches is refused
+    cx, cy = 440_500.0, 5_300_500.0
+    candidates = gpd.GeoDataFrame(
+        {"v": [1.0, np.nan]},
+        geometry=[LineString([(cx, cy), (cx + 2000, cy)]),
+                  LineString([(cx, cy), (cx, cy + 2000)])], crs="EPSG:32632")
+    alone = plot.corridor_map(patches, candidates, "v", path=tmp_path / "a.png",
+                              chosen=[True, False])
+    shared = plot.corridor_map(patches, candidates, "v", path=tmp_path / "b.png",
+                               chosen=[True, False], canvas=plot.MapCanvas(patches))
+    np.testing.assert_array_equal(read_png(alone), read_png(shared))
+    with pytest.raises(ValueError, match="other patches"):
+        plot.corridor_map(patches, candidates, "v", path=tmp_path / "c.png",
+                          canvas=plot.MapCanvas(patches.iloc[:3]))

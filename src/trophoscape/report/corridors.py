@@ -238,21 +238,22 @@ def write_corridors(plan, out, *, maps: bool = True, baseline=None, force: bool 
             evaluations_frame(log).to_csv(stage / "evaluations.csv", index=False)
         figures = {}
         if maps:
-            from .figures import corridor_map, patch_map
+            from .figures import MapCanvas, corridor_map, patch_map
 
             (stage / "maps").mkdir()
+            canvas = MapCanvas(land.frame, links_frame)  # prepared once for both maps
             frame["gain_per_cost_map"] = frame["score_per_cost"].replace(
                 [np.inf, -np.inf], np.nan)
             figures["gain"] = corridor_map(
                 land.frame, frame, "gain_per_cost_map",
                 path=stage / "maps" / "corridors_gain_per_cost.png",
-                chosen=frame["chosen"].to_numpy(bool), links=links_frame,
+                chosen=frame["chosen"].to_numpy(bool), canvas=canvas,
                 title="Candidate corridors: score gained per unit cost",
                 label="score per unit cost")
             if len(patch_rows):
                 figures["patches"] = patch_map(
                     patches, "score_loss", path=stage / "maps" / "critical_patches.png",
-                    links=links_frame, title="Patches: score lost if the patch is lost",
+                    canvas=canvas, title="Patches: score lost if the patch is lost",
                     label="score lost")
         blocks = corridor_blocks(plan, summary, table, critical, figures)
         (stage / "corridors.html").write_text(_corridors_page(blocks, summary),

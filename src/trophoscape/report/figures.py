@@ -949,7 +949,7 @@ __all__ += ["sweep_plot"]
 
 @_plain_text
 def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, title=None,
-                 label=None, cmap="viridis") -> Path:
+                 label=None, cmap="viridis", canvas=None) -> Path:
     """Candidate corridors coloured by a value (e.g. gain per cost) over the patches.
 
     Parameters
@@ -970,6 +970,9 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
         Figure title (default the column) and colourbar label.
     cmap : str
         A sequential matplotlib colormap.
+    canvas : MapCanvas, optional
+        The patches (and ``links``) prepared once for several maps (see :func:`patch_map`);
+        ``links`` is then ignored.
 
     Returns
     -------
@@ -998,7 +1001,11 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
     extent = np.concatenate([geoms, lines]) if len(lines) else geoms
     fig, ax = _map_figure(extent)
     handles = []
-    if MapCanvas(patches, links).draw(ax, np.tile(_rgba("#e9e6df"), (len(geoms), 1))):
+    if canvas is None:
+        canvas = MapCanvas(patches, links)
+    elif len(canvas.geoms) != len(patches):
+        raise ValueError("the canvas was prepared for other patches")
+    if canvas.draw(ax, np.tile(_rgba("#e9e6df"), (len(geoms), 1))):
         handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="existing link"))
 
     segments = [shapely.get_coordinates(g) / 1e3 for g in lines]
