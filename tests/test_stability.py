@@ -374,3 +374,28 @@ def test_the_quick_eigenvalues_of_large_networks_agree_with_dense(monkeypatch):
     assert how == "sparse, tolerance 1e-2 (large network)"
     assert abs(quick[0] - ref[0]) <= 0.02 * abs(ref[0])
     assert classify(quick) == classify(ref) == "damped oscillation"
+
+
+def test_the_large_network_equilibrium_and_eigenvalues_do_not_depend_on_patch_order(rng):
+    # consistency test across patch order: the same 240 patches (480 states: Newton's
+    # method and ARPACK) numbered in a random order give the same equilibrium, patch by
+    # patch, and the same leading eigenvalues
+    system = grid_system(12, 20, rng)
+    n = system.n_patches
+    perm = rng.permutation(n)
+    model = LocalModel(growth=system.model.growth, response=system.model.response,
+                       params={k: np.asarray(v)[perm] if np.ndim(v) else v
+                               for k, v in system.model.params.items()})
+    shuffled = CoupledSystem(model=model, area_km2=system.area_km2[perm],
+                             prey_movement=system.prey_movement[perm][:, perm],
+                             predator_movement=system.predator_movement[perm][:, perm])
+    first, second = stability_analysis(system), stability_analysis(shuffled)
+    assert first["equilibrium_method"] == second["equilibrium_method"] == "newton"
+    for s in ("prey", "predator"):
+        np.testing.assert_allclose(second[f"{s}_equilibrium"], first[f"{s}_equilibrium"][perm],
+                                   rtol=1e-7)
+    assert second["leading_eigenvalue_real"] == pytest.approx(
+        first["leading_eigenvalue_real"], rel=1e-5, abs=1e-9)
+    assert second["leading_eigenvalue_imag"] == pytest.approx(
+        first["leading_eigenvalue_imag"], rel=1e-5, abs=1e-9)
+    assert second["stability"] == first["stability"]

@@ -338,7 +338,6 @@ def _newton(fun, jac, u0, fatol: float, *, max_iterations: int = 100):
     F = fun(u)
     norm = float(np.max(np.abs(F))) if F.size else 0.0
     n = u.size // 2
-    i = np.arange(n)
     for it in range(max_iterations):
         if not np.isfinite(norm):
             raise FloatingPointError("the residual is not finite")
@@ -346,9 +345,10 @@ def _newton(fun, jac, u0, fatol: float, *, max_iterations: int = 100):
             return OptimizeResult(x=u, success=True, nit=it,
                                   message=f"Newton converged in {it} steps")
         J = sp.csr_array(jac(u))
+        # each patch's block: its two species on the main diagonal, their effect on each
+        # other n places off it (the movement operator links one species' patches only)
         a, d = J.diagonal()[:n], J.diagonal()[n:]
-        b = np.asarray(J[i, n + i]).ravel()
-        c = np.asarray(J[n + i, i]).ravel()
+        b, c = J.diagonal(n), J.diagonal(-n)
         det = a * d - b * c
         ok = np.abs(det) > 1e-300
         det = np.where(ok, det, 1.0)
