@@ -371,6 +371,10 @@ def test_size_classes_hold_equal_numbers_of_patches_and_their_shares(tmp_path):
         assert counts[k] == known.sum()
         assert shares[k] == pytest.approx(flags[known].mean())
     assert abs(counts.sum() - 493) == 0
+    # the axis labels count every patch of a class, whatever a species' unknown values
+    labels = plot.size_class_labels(area, classes=5)
+    assert [int(t.split("(")[1].split()[0]) for t in labels] == [100] * 5
+    assert labels[0].startswith(f"{area.min():.3g}–")
     path = plot.size_class_plot(area, {"prey": flags, "predator": 1 - np.nan_to_num(flags)},
                                 path=tmp_path / "s.png")
     assert read_png(path).shape[0] > 100

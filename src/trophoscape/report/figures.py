@@ -137,10 +137,7 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         raise InputError(f"no such column; available: {', '.join(map(str, patches.columns))}",
                          field=column)
     _check_metric(patches.crs, "patches")
-    if canvas is None:
-        canvas = MapCanvas(patches, links)
-    elif len(canvas.geoms) != len(patches):
-        raise ValueError("the canvas was prepared for other patches")
+    canvas = _canvas_for(patches, links, canvas)
     geoms = canvas.geoms
     values = patches[column]
     missing = values.isna().to_numpy()
@@ -489,6 +486,15 @@ class MapCanvas:
         ax.add_collection(PathCollection(self.paths(), facecolors=colours,
                                          edgecolors="#404040", linewidths=0.35, zorder=2))
         return self.links is not None
+
+
+def _canvas_for(patches, links, canvas):
+    """``canvas`` if given (checked to be of these patches), else one prepared here."""
+    if canvas is None:
+        return MapCanvas(patches, links)
+    if len(canvas.geoms) != len(patches):
+        raise ValueError("the canvas was prepared for other patches")
+    return canvas
 
 
 def _frame_map(ax, geoms, crs):
@@ -1001,11 +1007,8 @@ def corridor_map(patches, candidates, column, *, path, chosen=None, links=None, 
     extent = np.concatenate([geoms, lines]) if len(lines) else geoms
     fig, ax = _map_figure(extent)
     handles = []
-    if canvas is None:
-        canvas = MapCanvas(patches, links)
-    elif len(canvas.geoms) != len(patches):
-        raise ValueError("the canvas was prepared for other patches")
-    if canvas.draw(ax, np.tile(_rgba("#e9e6df"), (len(geoms), 1))):
+    background = np.tile(_rgba("#e9e6df"), (len(geoms), 1))
+    if _canvas_for(patches, links, canvas).draw(ax, background):
         handles.append(Line2D([], [], color=LINK_COLOUR, linewidth=1.0, label="existing link"))
 
     segments = [shapely.get_coordinates(g) / 1e3 for g in lines]
@@ -1359,6 +1362,13 @@ def size_class_shares(area_km2, flags, *, classes: int = 5):
     return edges, shares, counts
 
 
+def size_class_labels(area_km2, *, classes: int = 5) -> list[str]:
+    """The size classes' labels: the range of area and how many patches each holds (all of
+    them, whatever a species' values; the classes depend on the areas only)."""
+    edges, _, sizes = size_class_shares(area_km2, np.zeros(np.size(area_km2)), classes=classes)
+    return [f"{a:.3g}–{b:.3g}\n({c} patches)" for a, b, c in zip(edges[:-1], edges[1:], sizes)]
+
+
 @_plain_text
 def size_class_plot(area_km2, persists: dict, *, path, classes: int = 5) -> Path:
     """Share of patches where each species is present at the end, by patch-size class
@@ -1372,16 +1382,14 @@ def size_class_plot(area_km2, persists: dict, *, path, classes: int = 5) -> Path
     ax = fig.subplots()
     names = list(persists)
     width = 0.8 / max(len(names), 1)
-    labels = None
     for k, name in enumerate(names):
-        edges, shares, counts = size_class_shares(area_km2, persists[name], classes=classes)
+        edges, shares, _ = size_class_shares(area_km2, persists[name], classes=classes)
         x = np.arange(shares.size)
         style = _SPECIES_STYLES.get(name, {"color": OKABE_ITO[k % len(OKABE_ITO)]})
         ax.bar(x + (k - (len(names) - 1) / 2) * width, shares, width=width,
                color=style["color"], label=_literal(name))
-        labels = [f"{a:.3g}–{b:.3g}\n({c} patches)" for a, b, c in
-                  zip(edges[:-1], edges[1:], counts)]
-    if labels:
+    if names:
+        labels = size_class_labels(area_km2, classes=classes)
         ax.set_xticks(np.arange(len(labels)), labels, fontsize=7)
     ax.set_ylim(0, 1.05)
     ax.set_ylabel("share of patches where present at the end", fontsize=8)
