@@ -147,6 +147,33 @@ def test_occupancy_curve(tmp_path, dataset):
     assert_png(out)
 
 
+def test_occupancy_curve_counts_presence_as_the_persistence_figures_do(tmp_path, dataset,
+                                                                      monkeypatch):
+    # consistency test against trophoscape.analysis.persistence.occupancy_curve: immigrants
+    # gathering below the extinction abundance (0.5 predators) do not make a patch occupied
+    from matplotlib.axes import Axes
+
+    from trophoscape.analysis.persistence import occupancy_curve
+
+    dataset = dataset.copy(deep=True)
+    dataset["predator"].values[dataset["time"].values > 70.0, 3:] = 0.5
+    drawn = {}
+    real = Axes.plot
+
+    def capture(self, x, y, *args, label=None, **kwargs):
+        drawn[label] = np.asarray(y)
+        return real(self, x, y, *args, label=label, **kwargs)
+
+    monkeypatch.setattr(Axes, "plot", capture)
+    out = plot.occupancy_curve(dataset, path=tmp_path / "occ.png", extinction_abundance=1.0,
+                               burn_in=20.0)
+    assert_png(out)
+    expected = occupancy_curve(dataset, extinction_abundance=1.0)
+    for s in ("prey", "predator"):
+        np.testing.assert_allclose(drawn[s], expected[s].to_numpy())
+    assert drawn["predator"][-1] == pytest.approx(3 / 12)
+
+
 def test_occupancy_curve_needs_both_species(tmp_path, dataset):
     with pytest.raises(InputError, match="predator"):
         plot.occupancy_curve(dataset.drop_vars("predator"), path=tmp_path / "occ.png")

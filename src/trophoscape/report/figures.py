@@ -636,8 +636,11 @@ def timeseries_panels(dataset, patch_ids, *, path, time_unit="year", burn_in=Non
 
 
 @_plain_text
-def occupancy_curve(dataset, *, path, time_unit="year") -> Path:
-    """Share of patches where each species is present (abundance > 0) over time.
+def occupancy_curve(dataset, *, path, time_unit="year", extinction_abundance=1.0,
+                    burn_in=None) -> Path:
+    """Share of patches where each species is present over time: abundance at or above
+    ``extinction_abundance`` (above 0 if that is 0), as every persistence figure counts it
+    (:func:`trophoscape.analysis.persistence.present`).
 
     Parameters
     ----------
@@ -648,6 +651,11 @@ def occupancy_curve(dataset, *, path, time_unit="year") -> Path:
         PNG file to write.
     time_unit : str
         Unit of the ``time`` coordinate, for the axis label.
+    extinction_abundance : float
+        The run's quasi-extinction abundance: a population below it (immigrants gathering
+        in an emptied patch) does not count as present.
+    burn_in : float, optional
+        Shade the burn-in (left out of the persistence figures).
 
     Returns
     -------
@@ -661,10 +669,15 @@ def occupancy_curve(dataset, *, path, time_unit="year") -> Path:
     time = dataset["time"].values
     fig = Figure(figsize=(6.4, 3.6), layout="constrained")
     ax = fig.add_subplot()
+    if burn_in is not None:
+        ax.axvspan(time[0], burn_in, color="0.92", zorder=0, linewidth=0,
+                   label="burn-in (not analysed)")
+    from ..analysis.persistence import present
+
     for name, style in (("prey", PREY_STYLE), ("predator", PREDATOR_STYLE)):
         x = dataset[name]
         # Missing values (a failed replicate) are left out of the share, not counted as absent.
-        share = (x > 0).sum("patch") / x.notnull().sum("patch")
+        share = present(x, float(extinction_abundance)).sum("patch") / x.notnull().sum("patch")
         if "replicate" in share.dims:
             ax.fill_between(time, share.min("replicate").values, share.max("replicate").values,
                             color=style["color"], alpha=0.18, linewidth=0)
@@ -676,7 +689,7 @@ def occupancy_curve(dataset, *, path, time_unit="year") -> Path:
     ax.set_ylabel("share of patches occupied", fontsize=9)
     ax.tick_params(labelsize=8)
     ax.grid(True, color="0.9", linewidth=0.5)
-    ax.legend(frameon=False, fontsize=9, loc="lower left")
+    ax.legend(frameon=False, fontsize=9, loc="lower right")  # the burn-in band is on the left
     n_patches = dataset.sizes["patch"]
     ax.set_title(f"Occupied patches (of {n_patches})", fontsize=10)
     return _save(fig, path)

@@ -126,7 +126,9 @@ def write_figures_and_report(folder, result, gdf, links, summary, extra_sections
                                     path=maps / "timeseries.png", time_unit=sc["time_unit"],
                                     burn_in=sc["run.burn_in"])
     occupancy = plot.occupancy_curve(data, path=maps / "occupancy.png",
-                                     time_unit=sc["time_unit"])
+                                     time_unit=sc["time_unit"],
+                                     extinction_abundance=sc["run.extinction_abundance"],
+                                     burn_in=sc["run.burn_in"])
     by_size = []
     persists = {s: gdf[f"{s}_persists"].astype("boolean").to_numpy(dtype=float,
                                                                    na_value=np.nan)
@@ -140,11 +142,13 @@ def write_figures_and_report(folder, result, gdf, links, summary, extra_sections
             "large patches; on a large network this says more than the maps can.")]
     sections.setdefault("Persistence", []).extend([
         ("Share of patches occupied over time", occupancy,
-         "A falling curve means a species is losing patches faster than it recolonises them."),
+         "A patch counts as occupied while it holds at least the run's extinction abundance "
+         "(immigrants gathering below it do not count). A falling curve means a species is "
+         "losing patches faster than it recolonises them."),
         *by_size,
         ("Abundance in six patches, largest to smallest", panels,
          "Prey (solid) and predator (dashed) numbers; the grey band is the burn-in, left out "
-         "of every figure above."),
+         "of every map and statistic above."),
     ])
     extras = getattr(result, "extras", {}) or {}
     if extras.get("by_distance"):
