@@ -18,6 +18,7 @@ import scipy.sparse as sp
 
 from conftest import make_model, make_system
 from trophoscape.integrate.ode import simulate
+from trophoscape.model.system import CoupledSystem
 
 LEVEL = 1.0
 
@@ -184,3 +185,67 @@ def test_a_large_patch_elsewhere_does_not_change_the_removals(method):
     z0 = np.concatenate([y0[:n], [1e8], y0[n:], [0.0]])
     network = np.r_[0:n, n + 1:2 * n + 1]
     assert _max_error(big, z0, duration, method, 1e-6, columns=network) <= 1e-4
+
+
+@pytest.mark.parametrize("setting", [{"GROW": 0.0}, {"WHOLE": 0.0}, {"ROUNDS": 0}])
+def test_the_region_taken_again_does_not_change_the_removals(monkeypatch, setting):
+    # A step with removals is taken again over a region around them
+    # (trophoscape.integrate.retake); here the region grows at any change outside it, or is the
+    # whole network at once, and the result still meets scipy's event restarts.
+    from trophoscape.integrate import retake
+
+    for name, value in setting.items():
+        monkeypatch.setattr(retake, name, value)
+    system, y0, duration = _crashing_network()
+    assert _max_error(system, y0, duration, "RK45", 1e-6) <= 1e-4
+
+
+def _side_by_side(copies):
+    """``copies`` unlinked copies of the crashing network, each started from other numbers
+    of predators, as one system; and each copy's system and start."""
+    system, y0, duration = _crashing_network()
+    n = system.n_patches
+    starts = [np.concatenate([y0[:n], y0[n:] * (1.0 + 0.1 * c)]) for c in range(copies)]
+    model = make_model(n=copies * n, capacity=40.0)
+    big = make_system(model, area=np.tile(system.area_km2, copies),
+                      prey_movement=sp.csr_array(sp.block_diag([system.prey_movement] * copies)),
+                      predator_movement=sp.csr_array(
+                          sp.block_diag([system.predator_movement] * copies)))
+    z0 = np.concatenate([np.concatenate([s[:n] for s in starts]),
+                         np.concatenate([s[n:] for s in starts])])
+    return big, z0, system, starts, duration
+
+
+def test_networks_side_by_side_each_meet_scipys_event_restarts():
+    # Three unlinked networks in one run crash at different times, so a solver step holds
+    # removals in several of them: each is taken again with its own clock and step size, and
+    # each must meet scipy's event restarts of that network alone.
+    big, z0, system, starts, duration = _side_by_side(3)
+    n = system.n_patches
+    times = np.linspace(0.0, duration, 41)
+    run = simulate(big, z0, duration=duration, census_interval=duration / 40,
+                   extinction_abundance=LEVEL, rtol=1e-6, atol=1e-8)
+    total = 0
+    for c, start in enumerate(starts):
+        reference, crossings = _scipy_removals(system, start, duration, times)
+        total += len(crossings)
+        got = np.concatenate([run["prey"].values[:, c * n:(c + 1) * n],
+                              run["predator"].values[:, c * n:(c + 1) * n]], axis=1)
+        assert np.max(np.abs(got - reference)) <= 1e-4
+    assert sum(run.stats.removals) == total
+
+
+def test_removals_do_not_depend_on_patch_order():
+    # consistency test: the side-by-side networks numbered in a random order give the same
+    # removals and the same course per patch
+    big, z0, *_ , duration = _side_by_side(3)
+    n = big.n_patches
+    perm = np.random.default_rng(7).permutation(n)
+    shuffled = CoupledSystem(model=big.model, area_km2=big.area_km2,
+                             prey_movement=big.prey_movement,
+                             predator_movement=big.predator_movement, order=perm)
+    runs = [simulate(s, z0, duration=duration, census_interval=duration / 40,
+                     extinction_abundance=LEVEL, rtol=1e-6, atol=1e-8) for s in (big, shuffled)]
+    assert runs[0].stats.removals == runs[1].stats.removals
+    for name in ("prey", "predator"):
+        assert np.max(np.abs(runs[0][name].values - runs[1][name].values)) <= 1e-5

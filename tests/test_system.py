@@ -107,9 +107,10 @@ def test_identical_linked_patches_stay_in_step():
 def test_sub_threshold_sink_is_left_alone_and_removals_restart_cheaply(rng):
     # A sink patch where immigrant predators die fast stays below one individual: it never
     # falls through the threshold from above, so the rule leaves it alone (before, a census
-    # zeroed it at every step). Each removal restarts the solver at the crossing with the
-    # step size already reached: about one evaluation plus the part of the step after the
-    # crossing, not a fresh step-size search (consistency test of the solver budget).
+    # zeroed it at every step). A step with removals is taken again over the region around
+    # them and the solver restarts at the step's end with the step size already reached: at
+    # most one restart per removal, and about one step's evaluations per removal, not a
+    # fresh step-size search (consistency test of the solver budget).
     n = 30
     model = make_model(n=n, growth="logistic", response="holling2", capacity=60.0,
                        attack_rate=0.3, handling_time=0.1, conversion=0.3, mortality=0.4)
@@ -123,8 +124,9 @@ def test_sub_threshold_sink_is_left_alone_and_removals_restart_cheaply(rng):
     assert free.stats.restarts == 0
     sink = ruled["predator"].values[:, 5]
     assert np.all(sink < 1.0) and sink[-1] > 0  # fed, below the threshold, never cut
-    assert ruled.stats.restarts == sum(ruled.stats.removals)
-    assert ruled.stats.nfev <= free.stats.nfev + 10 * ruled.stats.restarts + 2
+    assert 0 < ruled.stats.restarts <= sum(ruled.stats.removals)
+    # (the region's evaluations counted in whole-network evaluations)
+    assert ruled.stats.nfev <= free.stats.nfev + 10 * sum(ruled.stats.removals) + 2
 
 
 def test_with_model_shares_the_network_and_gives_the_rebuilt_rhs(rng):

@@ -6,10 +6,14 @@ recorded:
 
 Quasi-extinction is an event of the integration, not of the census
     A local population that falls through ``extinction_abundance`` from above is removed at
-    the moment it crosses (located on the solver's dense output), and the solver restarts
-    there. A population below the threshold that is not falling through it (one growing from
-    zero by immigration, a trickle-fed sink) is left alone. Census times only record the
-    state, so the census interval changes what is recorded, never what happens.
+    the moment it crosses (located on the solver's dense output). With the Runge–Kutta
+    methods, a step that holds removals is taken again over the patches with removals and
+    those around them, every removal at its own moment, and the whole network's solver
+    goes on from the step's end (:mod:`trophoscape.integrate.retake`); with the implicit
+    methods the step is cut back to the first crossing and the solver restarts there. A
+    population below the threshold that is not falling through it (one growing from zero by
+    immigration, a trickle-fed sink) is left alone. Census times only record the state, so
+    the census interval changes what is recorded, never what happens.
 Error control per patch
     The explicit Runge–Kutta methods take the largest scaled error over all components (a max
     norm) instead of scipy's root mean square, so one patch's accuracy does not dilute as
@@ -30,6 +34,8 @@ import xarray as xr
 
 from ..errors import RunError
 from ..model.system import SPECIES, CoupledSystem
+from .crossings import NEAR, crossing_positions, dense_at, falls_through_within
+from .retake import StepRetaker
 from .trajectory import SolverStats, Trajectory, census_times
 
 __all__ = ["METHODS", "RunSettings", "STORAGE_DTYPE", "simulate", "choose_method"]
@@ -135,7 +141,7 @@ def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> fl
     """The earliest time in ``(t_old, t_new]`` at which a component falls to ``level``.
 
     For solvers whose interpolant is not per component (BDF, Radau, LSODA); the Runge–Kutta
-    methods use :func:`_crossing_positions`, which also finds dips between step ends.
+    methods use :func:`trophoscape.integrate.crossings.crossing_positions`, which also finds dips between step ends.
 
     Parameters
     ----------
@@ -182,93 +188,9 @@ def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> fl
     return b
 
 
-def _dense_at(dense, index, x):
-    """Components ``index`` of one step's dense output, each at its own points ``x``.
-
-    ``x`` (shape ``(len(index),)``, or ``(m, len(index))`` for ``m`` points per component)
-    is the position in the step, 0 at its start and 1 at its end. scipy's Runge–Kutta
-    interpolants are polynomials with per-component coefficients, evaluated here for those
-    rows only, at every point in one array operation; None for other interpolants.
-    """
-    x = np.asarray(x, dtype=float)
-    if isinstance(dense, si._ivp.rk.RkDenseOutput):
-        powers = np.cumprod(np.broadcast_to(x, (dense.order + 1,) + x.shape), axis=0)
-        q = dense.Q[index]  # (components, order + 1)
-        return dense.h * np.einsum("ij,j...i->...i", q, powers) + dense.y_old[index]
-    if isinstance(dense, si._ivp.rk.Dop853DenseOutput):
-        y = np.zeros(x.shape)
-        for i, f in enumerate(reversed(dense.F)):
-            y += f[index]
-            y *= x if i % 2 == 0 else 1.0 - x
-        return y + dense.y_old[index]
-    return None
-
-
-#: Populations within this share of the threshold at either end of a step are looked at
-#: between its ends (a dip, or a rise, larger than this within one error-controlled step is
-#: implausible).
-_NEAR = 0.25
-#: Points per step at which populations near the threshold are looked at between step ends.
-_LOOKS = 16
-#: Points per round, and rounds, that narrow a crossing: 64**7 = 2**42 of the step.
-_REFINE, _ROUNDS = 64, 7
-
-
-def _falls_within(values, level, armed):
-    """For each column of ``values`` (a population on the step's grid, its start first):
-    the first grid point below ``level`` after the population was at or above it, at the
-    start (``armed``) or at an earlier point; ``-1`` where there is none."""
-    at_or_above = values >= level
-    at_or_above[0] |= armed
-    seen = np.maximum.accumulate(at_or_above, axis=0)
-    falls = (values[1:] < level) & seen[:-1]
-    return np.where(falls.any(axis=0), np.argmax(falls, axis=0) + 1, -1)
-
-
-def _grid_values(dense, index):
-    grid = np.linspace(0.0, 1.0, _LOOKS + 1)
-    return grid, _dense_at(dense, index, np.repeat(grid[:, None], index.size, axis=1))
-
-
-def _falls_through_within(dense, index, level, armed):
-    """Which of ``index`` fall through ``level`` somewhere in the step, on its interpolant.
-
-    Looked at on ``_LOOKS + 1`` evenly spaced points: a population that dips through the
-    threshold and back within one step is removed like one that ends the step below it, and
-    one below the threshold at both ends of a step that rose to it in between (and so
-    counted as present) and fell back is removed too, so the rule does not depend on where
-    the solver happened to put its step ends. ``armed``: at or above the threshold at the
-    step's start.
-    """
-    _, values = _grid_values(dense, index)
-    return _falls_within(values, level, armed) >= 0
-
-
-def _crossing_positions(dense, index, level, armed):
-    """Where in the step each of ``index`` first falls through ``level`` (after being at or
-    above it: at the step's start, ``armed``, or later in the step), and its abundance
-    there.
-
-    The first of ``_LOOKS + 1`` evenly spaced points below the threshold after one at or
-    above it brackets the crossing with the point before it; each round then looks at
-    ``_REFINE - 1`` evenly spaced points within the bracket and keeps the first below the
-    threshold with the point before it, until the bracket is 2**-42 of the step.
-    """
-    grid, values = _grid_values(dense, index)
-    first = _falls_within(values, level, armed)
-    first = np.where(first >= 0, first, _LOOKS)
-    lo = grid[np.maximum(first - 1, 0)]
-    hi = grid[first]
-    inner = np.arange(1, _REFINE)[:, None] / _REFINE
-    for _ in range(_ROUNDS):
-        points = lo + inner * (hi - lo)  # (_REFINE - 1, components)
-        below = _dense_at(dense, index, points) < level
-        j = np.where(below.any(axis=0), np.argmax(below, axis=0), _REFINE - 1)
-        cols = np.arange(index.size)
-        new_hi = np.where(j < _REFINE - 1, points[np.minimum(j, _REFINE - 2), cols], hi)
-        lo = np.where(j > 0, points[np.maximum(j - 1, 0), cols], lo)
-        hi = new_hi
-    return hi, _dense_at(dense, index, hi)
+def _on(dense):
+    """``at(index, x)`` of :mod:`trophoscape.integrate.crossings` for a step's dense output."""
+    return lambda index, x: dense_at(dense, index, x)
 
 
 def choose_method(method: str) -> str:
@@ -484,6 +406,7 @@ def simulate(
     def user_order(v):
         return system.to_user(v) if internal else v
     totals = dict(nfev=0, njev=0, nlu=0)
+    local_evaluations = 0.0  # of steps taken again over regions, in whole-network evaluations
     steps = restarts = 0
     removals = np.zeros(2, dtype=np.int64)
     removed = np.zeros(2)
@@ -587,6 +510,18 @@ def simulate(
     h_wanted = None
     # Runge-Kutta solvers interpolate each component on its own: dips can be looked for
     per_component = isinstance(solver, si._ivp.rk.RungeKutta)
+    # steps with removals are taken again over the region they change (Runge-Kutta methods)
+    retakers = []  # [(system, its retaker)]: one, for the system integrated now
+
+    def retaker():
+        if retakers and retakers[0][0] is system:
+            return retakers[0][1]
+        area, model, movement = system.parts(internal)
+        old = retakers[0][1] if retakers else None
+        # noise and shocks change the rates, seldom the links: those are shared
+        new = StepRetaker(area, model, movement, share=old)
+        retakers[:] = [(system, new)]
+        return new
     try:
         while k < times.size:
             if solver.status == "finished" and solver.t < times[k]:
@@ -635,26 +570,39 @@ def simulate(
             dense = None
             t_end = solver.t  # the state is known up to here
             falling = None
-            if rule:
+            retaken = None
+            if rule and solver.t > t_old:  # (a restart at the bound takes a step of zero length)
                 now = solver.y >= level
                 crossed = above & ~now
                 if per_component:
                     # those near the threshold at either end may have dipped through it, or
                     # risen to it and fallen back, between the step's ends
                     near = np.flatnonzero(~crossed
-                                          & (np.minimum(y_prev, solver.y) < (1.0 + _NEAR) * level)
-                                          & (np.maximum(y_prev, solver.y) > (1.0 - _NEAR) * level))
+                                          & (np.minimum(y_prev, solver.y) < (1.0 + NEAR) * level)
+                                          & (np.maximum(y_prev, solver.y) > (1.0 - NEAR) * level))
                     if near.size:
                         dense = solver.dense_output()
-                        crossed[near[_falls_through_within(dense, near, level,
-                                                           above[near])]] = True
-                if crossed.any():
+                        crossed[near[falls_through_within(_on(dense), near, level,
+                                                          above[near])]] = True
+                if crossed.any() and per_component:
+                    # the step taken again over the patches with removals and around them
+                    dense = dense or solver.dense_output()
+                    inside = times[k:np.searchsorted(times, solver.t, side="right")]
+                    retaken = retaker().retake(
+                        t_old, y_prev, solver.t, solver.y, dense,
+                        np.unique(np.flatnonzero(crossed) % n), level, above,
+                        rtol_used, atol_used, census=inside)
+                    removals[:] += retaken.removals
+                    removed[:] += retaken.removed
+                    local_evaluations += retaken.evaluations
+                    now = retaken.y >= level
+                elif crossed.any():
                     # removed where it crosses: the step is cut back to the first crossing
                     dense = dense or solver.dense_output()
                     index = np.flatnonzero(crossed)
                     first = None
                     if per_component:
-                        where, _ = _crossing_positions(dense, index, level, above[index])
+                        where, _ = crossing_positions(_on(dense), index, level, above[index])
                         first = index[where == where.min()]
                         t_end = t_old + float(where.min()) * (solver.t - t_old)
                     else:
@@ -666,12 +614,17 @@ def simulate(
                     now = y_end >= level
                     now[falling] = False
                 above = now
+            first_row = k
             while k < times.size and times[k] <= t_end and (falling is None or times[k] < t_end):
-                if times[k] == solver.t:
+                if retaken is not None and times[k] == solver.t:
+                    y_k = retaken.y
+                elif times[k] == solver.t:
                     y_k = solver.y
                 else:
                     dense = dense or solver.dense_output()
                     y_k = dense(times[k])
+                    if retaken is not None:
+                        y_k[retaken.components] = retaken.census[k - first_row]
                 try:
                     store(k, y_k)
                 except RunError:
@@ -682,6 +635,8 @@ def simulate(
                 if sink is not None and k - sunk == sink_rows:
                     sink(sunk, k, record)
                     sunk = k
+            if retaken is not None:
+                solver = restart(solver, t_end, retaken.y, step_wanted(solver))
             if falling is not None:
                 # half the step reached: the full one was often rejected right after a
                 # population was zeroed (benchmarks/README.md)
@@ -693,6 +648,8 @@ def simulate(
     finally:
         bar.close()
 
+    # the regional steps, counted as the whole-network evaluations they amount to
+    totals["nfev"] += int(np.ceil(local_evaluations))
     stats = SolverStats(method=method, steps=steps, restarts=restarts, status=status,
                         message=message, removals=tuple(int(v) for v in removals),
                         removed_individuals=tuple(float(v) for v in removed), **totals)

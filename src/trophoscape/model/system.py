@@ -447,6 +447,18 @@ class CoupledSystem:
 
         return rhs
 
+    def parts(self, internal: bool = False):
+        """``(area_km2, model, movement)`` in the order of :meth:`rhs_function`'s state:
+        the user's order, or the internal one (``internal=True``). ``rhs`` is the local terms
+        of ``model`` on ``max(y, 0)`` plus ``movement @ max(y, 0)``."""
+        if not (internal and self.reordered):
+            return self.area_km2, self.model, self.movement
+        perm = self.permutation
+        model = LocalModel(growth=self.model.growth, response=self.model.response,
+                           params={k: np.asarray(v)[perm] if np.ndim(v) else v
+                                   for k, v in self.model.params.items()})
+        return self._internal["area"], model, self._internal["movement"]
+
     def stiffness_ratio(self, y) -> float:
         """How much faster dispersal is than the local dynamics, at state ``y``.
 

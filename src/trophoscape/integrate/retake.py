@@ -1,0 +1,376 @@
+"""A solver step in which populations fall through the extinction threshold, taken again
+over the part of the network that the removals change.
+
+The rule of :mod:`trophoscape.integrate.ode` removes a population the moment it falls through
+the threshold. Restarting the whole network's solver at every such moment makes a run in
+which thousands of populations dwindle cost a whole-network step per removal. Instead, when
+an accepted Runge–Kutta step of the whole network holds removals, that step is taken again
+over a *region*: the patches with a removal and the patches around them, started from the
+state at the step's start, with
+
+* the region's own equations (local terms and the links within it) integrated by the
+  Dormand–Prince 5(4) pair (the tableau of :class:`scipy.integrate.RK45`), its error
+  controlled per component at the run's tolerances, in separate *groups* (the region's
+  connected parts), each with its own clock and step size;
+* the immigrants from outside the region read from the whole step's interpolant, at each
+  group's own times;
+* every removal taken where it happens, on the group's interpolant (dips between step ends
+  included), after which that group goes on from the state with the population removed:
+  one group's removals never cut another group's steps.
+
+What the region sends out differs from the whole step's interpolant only by what the
+removals changed; the integral of that difference is carried as an extra quadrature of the
+same stages, and the patches just outside receive it as a correction at the step's end.
+A patch outside whose correction exceeds the tolerance (or that the correction would take
+through the threshold) joins the region, and the step is taken again, until every
+correction left outside is within the tolerance; a region of more than half of the network
+becomes the whole network, whose integration has no outside at all.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.integrate as si
+import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
+
+from .crossings import NEAR, Rows, crossing_positions, falls_through_within
+
+__all__ = ["StepRetaker"]
+
+_RK = si.RK45
+_A = np.asarray(_RK.A)
+_B = np.asarray(_RK.B)
+_C = np.asarray(_RK.C)
+_E = np.asarray(_RK.E)
+_P = np.asarray(_RK.P)
+_STAGES = _RK.n_stages
+_EXPONENT = -1.0 / (_RK.error_estimator_order + 1)
+# scipy's step-size controller (scipy.integrate._ivp.rk)
+_SAFETY, _MIN_FACTOR, _MAX_FACTOR = 0.9, 0.2, 10.0
+
+#: An outside population whose first-order correction exceeds this many tolerance units
+#: (``atol + rtol |y|``) joins the region.
+GROW = 1.0
+#: A region of more than this share of the patches is taken as the whole network.
+WHOLE = 0.5
+#: Rounds of growing the region before it is taken as the whole network.
+ROUNDS = 12
+
+
+@dataclass
+class Retaken:
+    """A step taken again over a region.
+
+    Attributes
+    ----------
+    y : ndarray, shape (2 n,)
+        The state at the step's end: the region's integrated again, the patches just
+        outside corrected, the rest the whole step's.
+    components : ndarray of int
+        The state components of the region.
+    census : ndarray, shape (len(census_times), len(components))
+        The region's values at the census times inside the step.
+    removals : ndarray of int, shape (2,)
+        Populations removed in the step, per species.
+    removed : ndarray, shape (2,)
+        Individuals they held.
+    evaluations : float
+        Right-hand-side evaluations, in whole-network evaluations (the region's size over
+        the network's, summed over every evaluation).
+    rounds : int
+        Times the step was taken (1 when the first region sufficed).
+    """
+
+    y: np.ndarray
+    components: np.ndarray
+    census: np.ndarray
+    removals: np.ndarray
+    removed: np.ndarray
+    evaluations: float
+    rounds: int
+
+
+class StepRetaker:
+    """Takes steps with removals again over regions of one network.
+
+    Parameters
+    ----------
+    area, model, movement
+        The network in the solver's order (:meth:`trophoscape.model.system.CoupledSystem.parts`):
+        the right-hand side is the local terms of ``model`` on ``max(y, 0)`` plus
+        ``movement @ max(y, 0)``.
+    share : StepRetaker, optional
+        A retaker of another system; what depends only on the movement operator (the
+        patches' links, the operator by columns) is taken from it when the operator is the
+        same object.
+    """
+
+    def __init__(self, area, model, movement, share=None):
+        self.area = np.asarray(area, dtype=float)
+        self.model = model
+        self.n = n = self.area.size
+        self._operator = movement
+        if share is not None and share._operator is movement:
+            self.movement, self.links = share.movement, share.links
+            self._columns = share._columns
+            return
+        self.movement = sp.csr_array(movement)
+        self._columns = None
+        block = abs(self.movement[:n, :n]) + abs(self.movement[n:, n:])
+        self.links = sp.csr_array(block + block.T)
+
+    # ------------------------------------------------------------------------------------
+    def retake(self, t0, y0, t1, y1, dense, patches, level, armed, rtol, atol,
+               census=()) -> Retaken:
+        """Take the step ``t0 -> t1`` again over the patches with removals and around them.
+
+        Parameters
+        ----------
+        t0, y0, t1, y1 : float, ndarray
+            The whole step's start and end (``y1`` as the whole network's solver found it,
+            removals not taken).
+        dense : scipy dense output
+            The whole step's interpolant (a Runge–Kutta one, per component).
+        patches : ndarray of int
+            Patches with a population falling through ``level`` in the step.
+        level : float
+            The extinction threshold.
+        armed : ndarray of bool, shape (2 n,)
+            Populations at or above ``level`` at ``t0`` (those can fall through it).
+        rtol, atol : float
+            Tolerances, per component.
+        census : sequence of float
+            Census times inside ``(t0, t1]``.
+        """
+        n = self.n
+        region = np.zeros(n, dtype=bool)
+        region[np.asarray(patches, dtype=np.int64)] = True
+        region |= self._neighbours(region)
+        census = np.asarray(census, dtype=float)
+        evaluations = 0.0
+        for rounds in range(1, ROUNDS + 2):
+            if rounds > ROUNDS or region.sum() > WHOLE * n:
+                region[:] = True
+            out = _Region(self, np.flatnonzero(region), t0, y0, t1, dense, level, armed,
+                          rtol, atol, census)
+            evaluations += out.evaluations
+            y = np.asarray(y1, dtype=float).copy()
+            y[out.components] = out.x
+            if out.outside.size == 0:
+                break
+            change = out.outside_change
+            before = y[out.outside]
+            after = before + change
+            grow = (np.abs(change) > GROW * (atol + rtol * np.abs(before))) | (
+                armed[out.outside] & (after < level) & (before >= level))
+            if not grow.any():
+                y[out.outside] = after
+                break
+            region[out.outside[grow] % n] = True
+        return Retaken(y=y, components=out.components, census=out.census,
+                       removals=out.removals, removed=out.removed,
+                       evaluations=evaluations, rounds=rounds)
+
+    def _neighbours(self, region):
+        return (self.links @ region.astype(np.float64)) != 0
+
+    def _column_operator(self):
+        if self._columns is None:
+            self._columns = sp.csc_array(self.movement)
+        return self._columns
+
+
+class _Region:
+    """One integration of a region over a step (see the module's description)."""
+
+    def __init__(self, retaker: StepRetaker, patches, t0, y0, t1, dense, level, armed,
+                 rtol, atol, census):
+        n = retaker.n
+        self.t0, self.span = float(t0), float(t1) - float(t0)
+        # patches in the order of their groups, so each group's components are contiguous
+        within = retaker.links[patches][:, patches]
+        _, label = connected_components(within, directed=False)
+        order = np.argsort(label, kind="stable")
+        patches, label = patches[order], label[order]
+        m = patches.size
+        self.m = m
+        self.groups = int(label.max()) + 1 if m else 0
+        self.starts = np.flatnonzero(np.r_[True, label[1:] != label[:-1]]) if m else np.zeros(0, int)
+        self.group = np.concatenate([label, label])
+        comps = np.concatenate([patches, patches + n])
+        self.components = comps
+        position = np.full(2 * n, -1, dtype=np.int64)
+        position[comps] = np.arange(2 * m)
+        # the region's rows of the movement operator: links within it, and in from outside
+        rows = sp.coo_array(retaker.movement[comps])
+        inside = position[rows.col] >= 0
+        self.within = sp.csr_array((rows.data[inside], (rows.row[inside],
+                                                        position[rows.col[inside]])),
+                                   shape=(2 * m, 2 * m))
+        self.in_row, self.in_col = rows.row[~inside], rows.col[~inside]
+        self.in_rate = rows.data[~inside]
+        self.in_group = self.group[self.in_row]
+        self.inflow = Rows(dense, self.in_col) if self.in_row.size else None
+        # the region's columns: what it sends to the patches just outside
+        cols = sp.coo_array(retaker._column_operator()[:, comps])
+        outside = position[cols.row] < 0
+        out_row, out_col, out_rate = cols.row[outside], cols.col[outside], cols.data[outside]
+        self.outside, out_index = np.unique(out_row, return_inverse=True)
+        self.sends = self.outside.size > 0
+        self.mine = Rows(dense, comps) if self.sends else None
+        # the local model on the region's patches
+        self.area = np.concatenate([retaker.area[patches]] * 2)
+        model = retaker.model
+        self.params = {k: np.asarray(v)[patches] if np.ndim(v) else v
+                       for k, v in model.params.items()}
+        self.model = type(model)(growth=model.growth, response=model.response,
+                                 params=self.params)
+        self.evaluations = 0.0
+        self.removals = np.zeros(2, dtype=np.int64)
+        self.removed = np.zeros(2)
+        self._weight = 2 * m / (2 * n)
+        self._run(np.asarray(y0, dtype=float)[comps], np.asarray(armed)[comps].copy(),
+                  float(level), float(rtol), float(atol), census)
+        if self.sends:
+            self.outside_change = np.bincount(out_index, weights=out_rate * self.q[out_col],
+                                              minlength=self.outside.size)
+
+    # ------------------------------------------------------------------------------------
+    def _f(self, t, x):
+        """The region's derivative and, where it sends to outside, the difference of its
+        clipped state from the whole step's; ``t`` per group."""
+        m = self.m
+        xc = np.maximum(x, 0.0)
+        dens = xc / self.area
+        dn, dp = self.model.rates(dens[:m], dens[m:])
+        dy = np.concatenate([dn, dp]) * self.area
+        dy += self.within @ xc
+        theta = (t - self.t0) / self.span
+        if self.in_row.size:
+            outside = np.maximum(self.inflow(theta[self.in_group]), 0.0)
+            dy += np.bincount(self.in_row, weights=self.in_rate * outside, minlength=2 * m)
+        g = None
+        if self.sends:
+            g = xc - np.maximum(self.mine(theta[self.group]), 0.0)
+        self.evaluations += self._weight
+        return dy, g
+
+    def _run(self, x, armed, level, rtol, atol, census):
+        m2, k = 2 * self.m, self.groups
+        t1 = self.t0 + self.span
+        group, starts = self.group, self.starts
+        tiny = 1e-12 * self.span
+        t = np.full(k, self.t0)
+        h = np.full(k, self.span)
+        rejected = np.zeros(k, dtype=bool)
+        q = np.zeros(m2)
+        record = np.full((census.size, m2), np.nan)
+        next_census = np.zeros(k, dtype=np.int64)
+        K = np.empty((_STAGES + 1, m2))
+        G = np.empty((_STAGES + 1, m2)) if self.sends else None
+        for _ in range(1_000_000):
+            live = t < t1 - tiny
+            if not live.any():
+                break
+            step = np.where(live, np.minimum(h, t1 - t), 0.0)
+            step = np.where(live & (t1 - (t + step) <= tiny), t1 - t, step)
+            hc = step[group]
+            K[0], g0 = self._f(t, x)
+            if G is not None:
+                G[0] = g0
+            for s in range(1, _STAGES):
+                dy = (K[:s].T @ _A[s, :s]) * hc
+                K[s], gs = self._f(t + _C[s] * step, x + dy)
+                if G is not None:
+                    G[s] = gs
+            x_new = x + hc * (K[:_STAGES].T @ _B)
+            K[-1], gl = self._f(t + step, x_new)
+            if G is not None:
+                G[-1] = gl
+            scale = atol + rtol * np.maximum(np.abs(x), np.abs(x_new))
+            err_c = np.abs(hc * (K.T @ _E)) / scale
+            err = np.maximum(np.maximum.reduceat(err_c[:self.m], starts),
+                             np.maximum.reduceat(err_c[self.m:], starts))
+            accept = live & ((err < 1.0) | (step <= tiny))
+            factor = _SAFETY * np.maximum(err, 1e-30) ** _EXPONENT
+            grow = np.minimum(_MAX_FACTOR, factor)
+            shrink = np.maximum(_MIN_FACTOR, np.minimum(1.0, factor))
+            grow = np.where(rejected, np.minimum(1.0, grow), grow)
+            h = np.where(live, np.where(accept, step * grow, step * shrink), h)
+            rejected = np.where(accept, False, rejected | live)
+            if not accept.any():
+                continue
+            # crossings in the accepted steps, on each group's interpolant
+            Q = K.T @ _P  # (components, 4)
+
+            def at(index, pos, Q=Q, x=x, hc=hc):
+                # the interpolant of scipy's RK45, x + h sum_j Q_j pos**(j + 1), by Horner
+                q = Q[index]
+                acc = q[:, -1] * pos
+                for j in range(q.shape[1] - 2, -1, -1):
+                    acc += q[:, j]
+                    acc *= pos
+                return hc[index] * acc + x[index]
+
+            acc = accept[group]
+            crossed = acc & armed & (x_new < level)
+            near = np.flatnonzero(acc & ~crossed
+                                  & (np.minimum(x, x_new) < (1.0 + NEAR) * level)
+                                  & (np.maximum(x, x_new) > (1.0 - NEAR) * level))
+            if near.size:
+                crossed[near[falls_through_within(at, near, level, armed[near])]] = True
+            cut = np.full(k, np.inf)
+            index = np.flatnonzero(crossed)
+            if index.size:
+                where, _ = crossing_positions(at, index, level, armed[index])
+                np.minimum.at(cut, group[index], where)
+            cut_groups = np.isfinite(cut)
+            end = t + np.where(cut_groups, cut, 1.0) * step
+            # census times the accepted steps pass (one at a crossing: after the removal)
+            for j in range(census.size):
+                due = accept & (next_census == j) & ((census[j] < end) | (
+                    (census[j] <= end) & ~np.isfinite(cut)))
+                if not due.any():
+                    continue
+                rows = np.flatnonzero(due[group])
+                pos = (census[j] - t[group[rows]]) / np.where(hc[rows] > 0, hc[rows], 1.0)
+                record[j, rows] = at(rows, np.clip(pos, 0.0, 1.0))
+                next_census[due] += 1
+            new_q = None
+            if G is not None:
+                new_q = q + hc * (G[:_STAGES].T @ _B)
+            whole = acc & ~cut_groups[group]
+            x = np.where(whole, x_new, x)
+            if G is not None:
+                q = np.where(whole, new_q, q)
+            if cut_groups.any():
+                rows = np.flatnonzero(cut_groups[group])
+                pos = cut[group[rows]]
+                y_cut = at(rows, pos)
+                falling = armed[rows] & (y_cut < level)
+                falling |= crossed[rows] & (_spread(index, crossed.size, where)[rows] == pos)
+                if G is not None:  # the quadrature on its own interpolant
+                    q[rows] = at(rows, pos, Q=G.T @ _P, x=q)
+                gone = rows[falling]
+                species = (gone >= self.m).astype(np.int64)
+                self.removals += np.bincount(species, minlength=2)
+                self.removed += np.bincount(species, weights=y_cut[falling], minlength=2)
+                y_cut[falling] = 0.0
+                x[rows] = y_cut
+            armed = np.where(acc, x >= level, armed)
+            t = np.where(accept, end, t)
+        else:  # pragma: no cover
+            raise RuntimeError("the regional integration did not reach the step's end")
+        self.x = x
+        self.q = q
+        self.census = record
+
+
+def _spread(index, size, where):
+    """``where`` (values for ``index``) spread over ``size`` components (``inf`` elsewhere)."""
+    out = np.full(size, np.inf)
+    out[index] = where
+    return out
