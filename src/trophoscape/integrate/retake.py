@@ -149,29 +149,55 @@ class StepRetaker:
         region = np.zeros(n, dtype=bool)
         region[np.asarray(patches, dtype=np.int64)] = True
         region |= self._neighbours(region)
+        todo = region.copy()  # the patches to integrate in this round
         census = np.asarray(census, dtype=float)
+        y = np.asarray(y1, dtype=float).copy()
+        sent = np.zeros(2 * n)  # what each component of the region sent, minus the step's
+        counts = np.zeros(2 * n, dtype=np.int64)
+        held = np.zeros(2 * n)
+        record = np.full((census.size, 2 * n), np.nan)
         evaluations = 0.0
         for rounds in range(1, ROUNDS + 2):
             if rounds > ROUNDS or region.sum() > WHOLE * n:
+                todo |= ~region
                 region[:] = True
-            out = _Region(self, np.flatnonzero(region), t0, y0, t1, dense, level, armed,
-                          rtol, atol, census)
+            out = _Region(self, np.flatnonzero(todo), t0, y0, t1, dense, level, armed,
+                          rtol, atol, census, sends=not region.all())
+            comps = out.components
+            y[comps], sent[comps], counts[comps], held[comps] = out.x, out.q, out.counts, out.held
+            record[:, comps] = out.census
             evaluations += out.evaluations
-            y = np.asarray(y1, dtype=float).copy()
-            y[out.components] = out.x
-            if out.outside.size == 0:
+            if region.all():
                 break
-            change = out.outside_change
-            before = y[out.outside]
+            # the first-order change of the patches just outside the whole region
+            inside = np.concatenate([region, region])
+            columns = sp.coo_array(self._column_operator()[:, np.flatnonzero(inside)])
+            away = ~inside[columns.row]
+            outside, which = np.unique(columns.row[away], return_inverse=True)
+            source = np.flatnonzero(inside)[columns.col[away]]
+            change = np.bincount(which, weights=columns.data[away] * sent[source],
+                                 minlength=outside.size)
+            before = y[outside]
             after = before + change
             grow = (np.abs(change) > GROW * (atol + rtol * np.abs(before))) | (
-                armed[out.outside] & (after < level) & (before >= level))
+                armed[outside] & (after < level) & (before >= level))
             if not grow.any():
-                y[out.outside] = after
+                y[outside] = after
                 break
-            region[out.outside[grow] % n] = True
-        return Retaken(y=y, components=out.components, census=out.census,
-                       removals=out.removals, removed=out.removed,
+            # those patches join; the groups they join are integrated again, the rest kept
+            new = np.zeros(n, dtype=bool)
+            new[outside[grow] % n] = True
+            region |= new
+            members = np.flatnonzero(region)
+            _, label = connected_components(self.links[members][:, members], directed=False)
+            todo = np.zeros(n, dtype=bool)
+            todo[members[np.isin(label, label[new[members]])]] = True
+        components = np.flatnonzero(np.concatenate([region, region]))
+        species = (components >= n).astype(np.int64)
+        return Retaken(y=y, components=components, census=record[:, components],
+                       removals=np.bincount(species, weights=counts[components],
+                                            minlength=2).astype(np.int64),
+                       removed=np.bincount(species, weights=held[components], minlength=2),
                        evaluations=evaluations, rounds=rounds)
 
     def _neighbours(self, region):
@@ -187,7 +213,7 @@ class _Region:
     """One integration of a region over a step (see the module's description)."""
 
     def __init__(self, retaker: StepRetaker, patches, t0, y0, t1, dense, level, armed,
-                 rtol, atol, census):
+                 rtol, atol, census, sends=True):
         n = retaker.n
         self.t0, self.span = float(t0), float(t1) - float(t0)
         # patches in the order of their groups, so each group's components are contiguous
@@ -214,13 +240,9 @@ class _Region:
         self.in_rate = rows.data[~inside]
         self.in_group = self.group[self.in_row]
         self.inflow = Rows(dense, self.in_col) if self.in_row.size else None
-        # the region's columns: what it sends to the patches just outside
-        cols = sp.coo_array(retaker._column_operator()[:, comps])
-        outside = position[cols.row] < 0
-        out_row, out_col, out_rate = cols.row[outside], cols.col[outside], cols.data[outside]
-        self.outside, out_index = np.unique(out_row, return_inverse=True)
-        self.sends = self.outside.size > 0
-        self.mine = Rows(dense, comps) if self.sends else None
+        # what it sends out is compared with the step's: its own course on the interpolant
+        self.sends = sends
+        self.mine = Rows(dense, comps) if sends else None
         # the local model on the region's patches
         self.area = np.concatenate([retaker.area[patches]] * 2)
         model = retaker.model
@@ -229,14 +251,11 @@ class _Region:
         self.model = type(model)(growth=model.growth, response=model.response,
                                  params=self.params)
         self.evaluations = 0.0
-        self.removals = np.zeros(2, dtype=np.int64)
-        self.removed = np.zeros(2)
+        self.counts = np.zeros(2 * m, dtype=np.int64)  # removals per component
+        self.held = np.zeros(2 * m)  # individuals they held
         self._weight = 2 * m / (2 * n)
         self._run(np.asarray(y0, dtype=float)[comps], np.asarray(armed)[comps].copy(),
                   float(level), float(rtol), float(atol), census)
-        if self.sends:
-            self.outside_change = np.bincount(out_index, weights=out_rate * self.q[out_col],
-                                              minlength=self.outside.size)
 
     # ------------------------------------------------------------------------------------
     def _f(self, t, x):
@@ -355,9 +374,8 @@ class _Region:
                 if G is not None:  # the quadrature on its own interpolant
                     q[rows] = at(rows, pos, Q=G.T @ _P, x=q)
                 gone = rows[falling]
-                species = (gone >= self.m).astype(np.int64)
-                self.removals += np.bincount(species, minlength=2)
-                self.removed += np.bincount(species, weights=y_cut[falling], minlength=2)
+                self.counts[gone] += 1
+                self.held[gone] += y_cut[falling]
                 y_cut[falling] = 0.0
                 x[rows] = y_cut
             armed = np.where(acc, x >= level, armed)
