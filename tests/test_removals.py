@@ -249,3 +249,18 @@ def test_removals_do_not_depend_on_patch_order():
     assert runs[0].stats.removals == runs[1].stats.removals
     for name in ("prey", "predator"):
         assert np.max(np.abs(runs[0][name].values - runs[1][name].values)) <= 1e-5
+
+
+def test_an_undefined_error_estimate_stops_the_run_with_a_run_error():
+    # robustness (from a review): with atol = 0 a removed population has no error scale, the
+    # regional step's error is 0/0; the run must stop with a RunError, not loop on NaN
+    from trophoscape.errors import RunError
+
+    model = make_model(n=2, growth="exponential", growth_rate=0.0)
+    model.params["growth_rate"][:] = [0.5, 0.5]
+    model.params["mortality"][:] = [1.0, 0.3]
+    system = make_system(model, predator_movement=sp.csr_array(np.array([[-0.1, 0.1],
+                                                                         [0.1, -0.1]])))
+    with pytest.raises(RunError, match="not a number"):
+        simulate(system, np.array([5.0, 5.0, 3.0, 30.0]), duration=3.0, census_interval=0.5,
+                 extinction_abundance=LEVEL, rtol=1e-6, atol=0.0)

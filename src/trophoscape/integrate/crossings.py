@@ -54,16 +54,29 @@ class Rows:
     evaluated by Horner's rule.
     """
 
-    def __init__(self, dense, index):
+    def __init__(self, dense, index=None):
+        if dense is None:  # filled by take()
+            return
         self.y_old = dense.y_old[index]
         if isinstance(dense, si._ivp.rk.RkDenseOutput):
             self.h = dense.h
-            self.coefficients = list(dense.Q[index].T)  # lowest power first
+            # lowest power first, each contiguous
+            self.coefficients = list(np.ascontiguousarray(dense.Q[index].T))
             self.factors = None
         elif isinstance(dense, si._ivp.rk.Dop853DenseOutput):
             self.factors = [f[index] for f in reversed(dense.F)]
         else:
             raise TypeError("a Runge-Kutta dense output is needed")
+
+    def take(self, index) -> "Rows":
+        """These rows' ``index``-th ones, as another :class:`Rows`."""
+        new = Rows(None)
+        new.y_old = self.y_old[index]
+        new.factors = None if self.factors is None else [f[index] for f in self.factors]
+        if self.factors is None:
+            new.h = self.h
+            new.coefficients = [c[index] for c in self.coefficients]
+        return new
 
     def __call__(self, x):
         if self.factors is None:

@@ -34,7 +34,7 @@ import xarray as xr
 
 from ..errors import RunError
 from ..model.system import SPECIES, CoupledSystem
-from .crossings import NEAR, crossing_positions, dense_at, falls_through_within
+from .crossings import NEAR, dense_at, falls_through_within
 from .retake import StepRetaker
 from .trajectory import SolverStats, Trajectory, census_times
 
@@ -141,7 +141,8 @@ def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> fl
     """The earliest time in ``(t_old, t_new]`` at which a component falls to ``level``.
 
     For solvers whose interpolant is not per component (BDF, Radau, LSODA); the Runge–Kutta
-    methods use :func:`trophoscape.integrate.crossings.crossing_positions`, which also finds dips between step ends.
+    methods find crossings on each component's interpolant instead, dips between step ends
+    included (:mod:`trophoscape.integrate.crossings`, :mod:`trophoscape.integrate.retake`).
 
     Parameters
     ----------
@@ -597,20 +598,13 @@ def simulate(
                     local_evaluations += retaken.evaluations
                     now = retaken.y >= level
                 elif crossed.any():
-                    # removed where it crosses: the step is cut back to the first crossing
+                    # implicit methods: the step is cut back to the first crossing, which is
+                    # removed there, and the solver restarts
                     dense = dense or solver.dense_output()
-                    index = np.flatnonzero(crossed)
-                    first = None
-                    if per_component:
-                        where, _ = crossing_positions(_on(dense), index, level, above[index])
-                        first = index[where == where.min()]
-                        t_end = t_old + float(where.min()) * (solver.t - t_old)
-                    else:
-                        t_end = first_crossing(dense, index, level, t_old, solver.t)
+                    t_end = first_crossing(dense, np.flatnonzero(crossed), level, t_old,
+                                           solver.t)
                     y_end = dense(t_end) if t_end < solver.t else solver.y.copy()
                     falling = above & (y_end < level)
-                    if first is not None:  # at its crossing, whatever the rounding
-                        falling[first] = True
                     now = y_end >= level
                     now[falling] = False
                 above = now

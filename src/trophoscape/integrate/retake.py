@@ -36,6 +36,7 @@ import scipy.integrate as si
 import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 
+from ..errors import RunError
 from .crossings import NEAR, Rows, crossing_positions, falls_through_within
 
 __all__ = ["StepRetaker"]
@@ -78,10 +79,8 @@ class Retaken:
     removed : ndarray, shape (2,)
         Individuals they held.
     evaluations : float
-        Right-hand-side evaluations, in whole-network evaluations (the region's size over
-        the network's, summed over every evaluation).
-    rounds : int
-        Times the step was taken (1 when the first region sufficed).
+        Right-hand-side evaluations, in whole-network evaluations (the components evaluated
+        over the network's, summed over every evaluation).
     """
 
     y: np.ndarray
@@ -90,7 +89,6 @@ class Retaken:
     removals: np.ndarray
     removed: np.ndarray
     evaluations: float
-    rounds: int
 
 
 class StepRetaker:
@@ -104,8 +102,7 @@ class StepRetaker:
         ``movement @ max(y, 0)``.
     share : StepRetaker, optional
         A retaker of another system; what depends only on the movement operator (the
-        patches' links, the operator by columns) is taken from it when the operator is the
-        same object.
+        patches' links) is taken from it when the operator is the same object.
     """
 
     def __init__(self, area, model, movement, share=None):
@@ -115,10 +112,8 @@ class StepRetaker:
         self._operator = movement
         if share is not None and share._operator is movement:
             self.movement, self.links = share.movement, share.links
-            self._columns = share._columns
             return
         self.movement = sp.csr_array(movement)
-        self._columns = None
         block = abs(self.movement[:n, :n]) + abs(self.movement[n:, n:])
         self.links = sp.csr_array(block + block.T)
 
@@ -169,24 +164,20 @@ class StepRetaker:
             evaluations += out.evaluations
             if region.all():
                 break
-            # the first-order change of the patches just outside the whole region
+            # the first-order change of the patches just outside the whole region (one
+            # product with the movement operator: sent is zero outside the region)
             inside = np.concatenate([region, region])
-            columns = sp.coo_array(self._column_operator()[:, np.flatnonzero(inside)])
-            away = ~inside[columns.row]
-            outside, which = np.unique(columns.row[away], return_inverse=True)
-            source = np.flatnonzero(inside)[columns.col[away]]
-            change = np.bincount(which, weights=columns.data[away] * sent[source],
-                                 minlength=outside.size)
-            before = y[outside]
-            after = before + change
-            grow = (np.abs(change) > GROW * (atol + rtol * np.abs(before))) | (
-                armed[outside] & (after < level) & (before >= level))
+            change = self.movement @ sent
+            change[inside] = 0.0
+            after = y + change
+            grow = (np.abs(change) > GROW * (atol + rtol * np.abs(y))) | (
+                armed & (after < level) & (y >= level) & ~inside)
             if not grow.any():
-                y[outside] = after
+                y = after
                 break
             # those patches join; the groups they join are integrated again, the rest kept
             new = np.zeros(n, dtype=bool)
-            new[outside[grow] % n] = True
+            new[np.flatnonzero(grow) % n] = True
             region |= new
             members = np.flatnonzero(region)
             _, label = connected_components(self.links[members][:, members], directed=False)
@@ -198,19 +189,22 @@ class StepRetaker:
                        removals=np.bincount(species, weights=counts[components],
                                             minlength=2).astype(np.int64),
                        removed=np.bincount(species, weights=held[components], minlength=2),
-                       evaluations=evaluations, rounds=rounds)
+                       evaluations=evaluations)
 
     def _neighbours(self, region):
         return (self.links @ region.astype(np.float64)) != 0
 
-    def _column_operator(self):
-        if self._columns is None:
-            self._columns = sp.csc_array(self.movement)
-        return self._columns
-
 
 class _Region:
-    """One integration of a region over a step (see the module's description)."""
+    """One integration of a region over a step (see the module's description).
+
+    The groups still integrating are *active*; when they hold less than half of the active
+    components, the finished groups' values are written out and the arrays narrowed to the
+    others, so a group that needs many steps does not carry the finished ones along.
+    """
+
+    #: Narrow the active arrays when the live groups hold less than this share of them.
+    NARROW = 0.5
 
     def __init__(self, retaker: StepRetaker, patches, t0, y0, t1, dense, level, armed,
                  rtol, atol, census, sends=True):
@@ -222,10 +216,6 @@ class _Region:
         order = np.argsort(label, kind="stable")
         patches, label = patches[order], label[order]
         m = patches.size
-        self.m = m
-        self.groups = int(label.max()) + 1 if m else 0
-        self.starts = np.flatnonzero(np.r_[True, label[1:] != label[:-1]]) if m else np.zeros(0, int)
-        self.group = np.concatenate([label, label])
         comps = np.concatenate([patches, patches + n])
         self.components = comps
         position = np.full(2 * n, -1, dtype=np.int64)
@@ -233,34 +223,57 @@ class _Region:
         # the region's rows of the movement operator: links within it, and in from outside
         rows = sp.coo_array(retaker.movement[comps])
         inside = position[rows.col] >= 0
-        self.within = sp.csr_array((rows.data[inside], (rows.row[inside],
-                                                        position[rows.col[inside]])),
-                                   shape=(2 * m, 2 * m))
-        self.in_row, self.in_col = rows.row[~inside], rows.col[~inside]
-        self.in_rate = rows.data[~inside]
-        self.in_group = self.group[self.in_row]
-        self.inflow = Rows(dense, self.in_col) if self.in_row.size else None
+        self._within = sp.csr_array((rows.data[inside], (rows.row[inside],
+                                                         position[rows.col[inside]])),
+                                    shape=(2 * m, 2 * m))
+        self._in = rows.row[~inside], rows.col[~inside], rows.data[~inside]
+        self._patches, self._retaker, self._dense = patches, retaker, dense
         # what it sends out is compared with the step's: its own course on the interpolant
         self.sends = sends
-        self.mine = Rows(dense, comps) if sends else None
-        # the local model on the region's patches
-        self.area = np.concatenate([retaker.area[patches]] * 2)
-        model = retaker.model
-        self.params = {k: np.asarray(v)[patches] if np.ndim(v) else v
-                       for k, v in model.params.items()}
-        self.model = type(model)(growth=model.growth, response=model.response,
-                                 params=self.params)
         self.evaluations = 0.0
+        self._unit = 1.0 / (2 * n)
         self.counts = np.zeros(2 * m, dtype=np.int64)  # removals per component
         self.held = np.zeros(2 * m)  # individuals they held
-        self._weight = 2 * m / (2 * n)
-        self._run(np.asarray(y0, dtype=float)[comps], np.asarray(armed)[comps].copy(),
-                  float(level), float(rtol), float(atol), census)
+        self.x = np.asarray(y0, dtype=float)[comps]
+        self.q = np.zeros(2 * m)
+        self.census = np.full((np.size(census), 2 * m), np.nan)
+        self._run(label, np.asarray(armed)[comps].copy(), float(level), float(rtol),
+                  float(atol), census)
 
     # ------------------------------------------------------------------------------------
+    def _focus(self, keep):
+        """Make the region's components ``keep`` (whole groups, both species) the active
+        ones: their links, immigrants, interpolant rows and local parameters."""
+        first = getattr(self, "index", None) is None
+        self.m = half = keep.size // 2
+        if first:  # every component: gathered from the whole step's interpolant
+            self.within = self._within
+            self.in_row, self.in_col, self.in_rate = self._in
+            self.inflow = Rows(self._dense, self.in_col) if self.in_row.size else None
+            self.mine = Rows(self._dense, self.components) if self.sends else None
+        else:  # narrowed from the active ones (keep is a subset of self.index)
+            position = np.full(self.components.size, -1, dtype=np.int64)
+            position[self.index] = np.arange(self.index.size)
+            sub = position[keep]
+            self.within = self.within[sub][:, sub]
+            inner = np.full(self.index.size, -1, dtype=np.int64)
+            inner[sub] = np.arange(sub.size)
+            chosen = inner[self.in_row] >= 0
+            self.in_row, self.in_col = inner[self.in_row[chosen]], self.in_col[chosen]
+            self.in_rate = self.in_rate[chosen]
+            self.inflow = self.inflow.take(chosen) if self.in_row.size else None
+            self.mine = self.mine.take(sub) if self.sends else None
+        self.index = keep
+        patches = self._patches[keep[:half]]
+        self.area = np.concatenate([self._retaker.area[patches]] * 2)
+        model = self._retaker.model
+        self.model = type(model)(growth=model.growth, response=model.response,
+                                 params={k: np.asarray(v)[patches] if np.ndim(v) else v
+                                         for k, v in model.params.items()})
+
     def _f(self, t, x):
-        """The region's derivative and, where it sends to outside, the difference of its
-        clipped state from the whole step's; ``t`` per group."""
+        """The active components' derivative and, where the region sends out, the
+        difference of their clipped state from the whole step's; ``t`` per group."""
         m = self.m
         xc = np.maximum(x, 0.0)
         dens = xc / self.area
@@ -274,32 +287,65 @@ class _Region:
         g = None
         if self.sends:
             g = xc - np.maximum(self.mine(theta[self.group]), 0.0)
-        self.evaluations += self._weight
+        self.evaluations += x.size * self._unit
         return dy, g
 
-    def _run(self, x, armed, level, rtol, atol, census):
-        m2, k = 2 * self.m, self.groups
+    def _groups(self, label):
+        """Group numbers of the active components (from 0, contiguous) and where each
+        group starts in either species' half."""
+        half = label[:self.m]
+        starts = np.flatnonzero(np.r_[True, half[1:] != half[:-1]])
+        number = np.cumsum(np.r_[0, half[1:] != half[:-1]])
+        self.group = np.concatenate([number, number])
+        self.in_group = self.group[self.in_row]
+        return starts
+
+    def _run(self, label, armed, level, rtol, atol, census):
+        census = np.asarray(census, dtype=float)
         t1 = self.t0 + self.span
-        group, starts = self.group, self.starts
         tiny = 1e-12 * self.span
+        self.index = None
+        self._focus(np.arange(self.components.size))
+        label = np.concatenate([label, label])
+        starts = self._groups(label)
+        k = starts.size
+        x, q = self.x.copy(), self.q.copy()
         t = np.full(k, self.t0)
         h = np.full(k, self.span)
         rejected = np.zeros(k, dtype=bool)
-        q = np.zeros(m2)
-        record = np.full((census.size, m2), np.nan)
+        stale = np.ones(k, dtype=bool)  # the derivative at (t, x) is to be evaluated
         next_census = np.zeros(k, dtype=np.int64)
-        K = np.empty((_STAGES + 1, m2))
-        G = np.empty((_STAGES + 1, m2)) if self.sends else None
-        for _ in range(1_000_000):
+        K = G = None
+        for _ in range(100_000):
             live = t < t1 - tiny
             if not live.any():
                 break
+            if live.mean() < self.NARROW and x.size > 64:
+                # write out the finished groups; go on with the live ones
+                done = ~live[self.group]
+                self.x[self.index[done]] = x[done]
+                self.q[self.index[done]] = q[done]
+                keep = np.flatnonzero(~done)
+                self._focus(self.index[keep])
+                label = label[keep]
+                starts = self._groups(label)
+                x, q, armed = x[keep], q[keep], armed[keep]
+                K, G = K[:, keep], (None if G is None else G[:, keep])
+                t, h, rejected, stale, next_census = (a[live] for a in (
+                    t, h, rejected, stale, next_census))
+                live = live[live]
+                k = live.size
+            group = self.group
             step = np.where(live, np.minimum(h, t1 - t), 0.0)
             step = np.where(live & (t1 - (t + step) <= tiny), t1 - t, step)
             hc = step[group]
-            K[0], g0 = self._f(t, x)
-            if G is not None:
-                G[0] = g0
+            if K is None:
+                K = np.empty((_STAGES + 1, x.size))
+                G = np.empty((_STAGES + 1, x.size)) if self.sends else None
+            if stale.any():  # else the last stage of the accepted steps (first same as last)
+                K[0], g0 = self._f(t, x)
+                if G is not None:
+                    G[0] = g0
             for s in range(1, _STAGES):
                 dy = (K[:s].T @ _A[s, :s]) * hc
                 K[s], gs = self._f(t + _C[s] * step, x + dy)
@@ -310,9 +356,17 @@ class _Region:
             if G is not None:
                 G[-1] = gl
             scale = atol + rtol * np.maximum(np.abs(x), np.abs(x_new))
-            err_c = np.abs(hc * (K.T @ _E)) / scale
-            err = np.maximum(np.maximum.reduceat(err_c[:self.m], starts),
-                             np.maximum.reduceat(err_c[self.m:], starts))
+            with np.errstate(invalid="ignore", divide="ignore"):  # 0/0 where atol = 0
+                err_c = np.abs(hc * (K.T @ _E)) / scale
+            m = self.m
+            err = np.maximum(np.maximum.reduceat(err_c[:m], starts),
+                             np.maximum.reduceat(err_c[m:], starts))
+            err = np.where(np.isnan(err), np.inf, err)
+            if np.any(live & ~np.isfinite(err) & (step <= tiny)):
+                raise RunError(f"the error estimate is not a number near time {self.t0:.6g} "
+                               "(a step with removals, taken again): abundances became "
+                               "non-finite, or a population at zero has no error scale "
+                               "(atol = 0); use atol > 0 and check for explosive growth")
             accept = live & ((err < 1.0) | (step <= tiny))
             factor = _SAFETY * np.maximum(err, 1e-30) ** _EXPONENT
             grow = np.minimum(_MAX_FACTOR, factor)
@@ -320,6 +374,7 @@ class _Region:
             grow = np.where(rejected, np.minimum(1.0, grow), grow)
             h = np.where(live, np.where(accept, step * grow, step * shrink), h)
             rejected = np.where(accept, False, rejected | live)
+            stale[:] = False
             if not accept.any():
                 continue
             # crossings in the accepted steps, on each group's interpolant
@@ -327,10 +382,10 @@ class _Region:
 
             def at(index, pos, Q=Q, x=x, hc=hc):
                 # the interpolant of scipy's RK45, x + h sum_j Q_j pos**(j + 1), by Horner
-                q = Q[index]
-                acc = q[:, -1] * pos
-                for j in range(q.shape[1] - 2, -1, -1):
-                    acc += q[:, j]
+                c = Q[index]
+                acc = c[:, -1] * pos
+                for j in range(c.shape[1] - 2, -1, -1):
+                    acc += c[:, j]
                     acc *= pos
                 return hc[index] * acc + x[index]
 
@@ -349,22 +404,27 @@ class _Region:
             cut_groups = np.isfinite(cut)
             end = t + np.where(cut_groups, cut, 1.0) * step
             # census times the accepted steps pass (one at a crossing: after the removal)
-            for j in range(census.size):
-                due = accept & (next_census == j) & ((census[j] < end) | (
-                    (census[j] <= end) & ~np.isfinite(cut)))
-                if not due.any():
-                    continue
-                rows = np.flatnonzero(due[group])
-                pos = (census[j] - t[group[rows]]) / np.where(hc[rows] > 0, hc[rows], 1.0)
-                record[j, rows] = at(rows, np.clip(pos, 0.0, 1.0))
-                next_census[due] += 1
-            new_q = None
-            if G is not None:
-                new_q = q + hc * (G[:_STAGES].T @ _B)
+            if census.size:
+                passed = np.where(cut_groups, np.searchsorted(census, end, side="left"),
+                                  np.searchsorted(census, end, side="right"))
+                passing = accept & (passed > next_census)
+                if passing.any():
+                    for j in range(int(next_census[passing].min()),
+                                   int(passed[passing].max())):
+                        due = passing & (next_census == j) & (j < passed)
+                        rows = np.flatnonzero(due[group])
+                        pos = (census[j] - t[group[rows]]) / np.where(hc[rows] > 0,
+                                                                      hc[rows], 1.0)
+                        self.census[j, self.index[rows]] = at(rows, np.clip(pos, 0.0, 1.0))
+                        next_census[due] += 1
             whole = acc & ~cut_groups[group]
             x = np.where(whole, x_new, x)
             if G is not None:
-                q = np.where(whole, new_q, q)
+                q = np.where(whole, q + hc * (G[:_STAGES].T @ _B), q)
+            # the next step starts where this one ended: its first stage is this one's last
+            K[0] = np.where(whole, K[-1], K[0])
+            if G is not None:
+                G[0] = np.where(whole, G[-1], G[0])
             if cut_groups.any():
                 rows = np.flatnonzero(cut_groups[group])
                 pos = cut[group[rows]]
@@ -374,17 +434,18 @@ class _Region:
                 if G is not None:  # the quadrature on its own interpolant
                     q[rows] = at(rows, pos, Q=G.T @ _P, x=q)
                 gone = rows[falling]
-                self.counts[gone] += 1
-                self.held[gone] += y_cut[falling]
+                self.counts[self.index[gone]] += 1
+                self.held[self.index[gone]] += y_cut[falling]
                 y_cut[falling] = 0.0
                 x[rows] = y_cut
+                stale |= cut_groups
             armed = np.where(acc, x >= level, armed)
             t = np.where(accept, end, t)
         else:  # pragma: no cover
-            raise RuntimeError("the regional integration did not reach the step's end")
-        self.x = x
-        self.q = q
-        self.census = record
+            raise RunError("the regional integration of a step with removals did not reach "
+                           f"the step's end (time {t1:.6g})")
+        self.x[self.index] = x
+        self.q[self.index] = q
 
 
 def _spread(index, size, where):

@@ -458,8 +458,9 @@ def simulate_replicates(study: Study, *, seeds, noise=None, events=(), stacked=N
     Notes
     -----
     Stacked, the solver's error control (a max norm over every component) holds each
-    replicate to the tolerances as if it ran alone, but the step size is shared and a
-    quasi-extinction in one replicate restarts all of them; one by one, each replicate keeps
+    replicate to the tolerances as if it ran alone, but the step size is shared and a step
+    with a quasi-extinction in one replicate is taken again over that replicate's patches
+    around it, then restarts all of them from its end; one by one, each replicate keeps
     its own step size. The noise of each replicate is the same either way; the integration
     errors differ at the level of the tolerances.
     """
