@@ -264,3 +264,20 @@ def test_an_undefined_error_estimate_stops_the_run_with_a_run_error():
     with pytest.raises(RunError, match="not a number"):
         simulate(system, np.array([5.0, 5.0, 3.0, 30.0]), duration=3.0, census_interval=0.5,
                  extinction_abundance=LEVEL, rtol=1e-6, atol=0.0)
+
+
+def test_many_census_times_within_steps_with_removals():
+    # a census every 0.01 puts many census times inside each solver step with removals:
+    # every one must meet scipy's event restarts, and the times shared with a census every
+    # 0.25 must be the same numbers (a consistency test: the census only records)
+    system, y0, duration = _crashing_network()
+    fine = np.linspace(0.0, duration, 1001)
+    reference, crossings = _scipy_removals(system, y0, duration, fine)
+    runs = [simulate(system, y0, duration=duration, census_interval=interval,
+                     extinction_abundance=LEVEL, rtol=1e-6, atol=1e-8)
+            for interval in (duration / 1000, duration / 40)]
+    got = np.concatenate([runs[0]["prey"].values, runs[0]["predator"].values], axis=1)
+    assert sum(runs[0].stats.removals) == len(crossings)
+    assert np.max(np.abs(got - reference)) <= 1e-4
+    coarse = np.concatenate([runs[1]["prey"].values, runs[1]["predator"].values], axis=1)
+    assert np.max(np.abs(got[::25] - coarse)) <= 1e-9

@@ -300,6 +300,28 @@ class _Region:
         self.in_group = self.group[self.in_row]
         return starts
 
+    def _record(self, census, passing, next_census, passed, starts, t, hc, at):
+        """The census times each ``passing`` group's accepted step passed
+        (``next_census[g]`` to ``passed[g] - 1``), every component of the group at each, on
+        the step's interpolant, in one array operation."""
+        groups = np.flatnonzero(passing)
+        times = passed[groups] - next_census[groups]  # census times per group
+        size = np.diff(np.r_[starts, self.m])[groups]  # patches per group
+        # one entry per (group, census time, component): both species of each patch
+        per = np.repeat(2 * size, times)
+        pair_group = np.repeat(groups, times)
+        first = np.repeat(np.cumsum(times) - times, times)
+        pair_census = next_census[pair_group] + np.arange(times.sum()) - first
+        entry_group = np.repeat(pair_group, per)
+        entry_census = np.repeat(pair_census, per)
+        offset = np.arange(per.sum()) - np.repeat(np.cumsum(per) - per, per)
+        patch = starts[entry_group] + offset % np.repeat(size[np.searchsorted(
+            groups, pair_group)], per)
+        rows = np.where(offset < np.repeat(size[np.searchsorted(groups, pair_group)], per),
+                        patch, patch + self.m)
+        pos = (census[entry_census] - t[entry_group]) / np.where(hc[rows] > 0, hc[rows], 1.0)
+        self.census[entry_census, self.index[rows]] = at(rows, np.clip(pos, 0.0, 1.0))
+
     def _run(self, label, armed, level, rtol, atol, census):
         census = np.asarray(census, dtype=float)
         t1 = self.t0 + self.span
@@ -409,14 +431,8 @@ class _Region:
                                   np.searchsorted(census, end, side="right"))
                 passing = accept & (passed > next_census)
                 if passing.any():
-                    for j in range(int(next_census[passing].min()),
-                                   int(passed[passing].max())):
-                        due = passing & (next_census == j) & (j < passed)
-                        rows = np.flatnonzero(due[group])
-                        pos = (census[j] - t[group[rows]]) / np.where(hc[rows] > 0,
-                                                                      hc[rows], 1.0)
-                        self.census[j, self.index[rows]] = at(rows, np.clip(pos, 0.0, 1.0))
-                        next_census[due] += 1
+                    self._record(census, passing, next_census, passed, starts, t, hc, at)
+                    next_census = np.where(passing, passed, next_census)
             whole = acc & ~cut_groups[group]
             x = np.where(whole, x_new, x)
             if G is not None:
