@@ -110,10 +110,16 @@ class StepRetaker:
         self.model = model
         self.n = n = self.area.size
         self._operator = movement
+        # work arrays of the network's size, allocated once: all False / -1 between uses
+        self._mark = np.zeros(2 * n, dtype=bool)
+        self._position = np.full(2 * n, -1, dtype=np.int64)
         if share is not None and share._operator is movement:
             self.movement, self.links = share.movement, share.links
+            self._transposed = share._transposed
             return
         self.movement = sp.csr_array(movement)
+        # by rows of the transpose: where each component sends
+        self._transposed = sp.csr_array(self.movement.T)
         block = abs(self.movement[:n, :n]) + abs(self.movement[n:, n:])
         self.links = sp.csr_array(block + block.T)
 
@@ -141,58 +147,59 @@ class StepRetaker:
             Census times inside ``(t0, t1]``.
         """
         n = self.n
-        region = np.zeros(n, dtype=bool)
-        region[np.asarray(patches, dtype=np.int64)] = True
-        region |= self._neighbours(region)
-        todo = region.copy()  # the patches to integrate in this round
+        patches = np.unique(np.asarray(patches, dtype=np.int64))
+        members = np.union1d(patches, self.links[patches].indices)  # the region's patches
+        todo = members  # the patches to integrate in this round
         census = np.asarray(census, dtype=float)
         y = np.asarray(y1, dtype=float).copy()
-        sent = np.zeros(2 * n)  # what each component of the region sent, minus the step's
-        counts = np.zeros(2 * n, dtype=np.int64)
-        held = np.zeros(2 * n)
-        record = np.full((census.size, 2 * n), np.nan)
+        # per component of the region (written for every component integrated, read only
+        # for those; nothing proportional to the whole network is filled)
+        sent = np.empty(2 * n)  # what each component sent, minus the step's course
+        counts = np.empty(2 * n, dtype=np.int64)
+        held = np.empty(2 * n)
+        record = np.empty((census.size, 2 * n))
         evaluations = 0.0
         for rounds in range(1, ROUNDS + 2):
-            if rounds > ROUNDS or region.sum() > WHOLE * n:
-                todo |= ~region
-                region[:] = True
-            out = _Region(self, np.flatnonzero(todo), t0, y0, t1, dense, level, armed,
-                          rtol, atol, census, sends=not region.all())
+            if rounds > ROUNDS or members.size > WHOLE * n:
+                members = todo = np.arange(n)
+            whole = members.size == n
+            out = _Region(self, todo, t0, y0, t1, dense, level, armed, rtol, atol, census,
+                          sends=not whole)
             comps = out.components
             y[comps], sent[comps], counts[comps], held[comps] = out.x, out.q, out.counts, out.held
             record[:, comps] = out.census
             evaluations += out.evaluations
-            if region.all():
+            if whole:
                 break
-            # the first-order change of the patches just outside the whole region (one
-            # product with the movement operator: sent is zero outside the region)
-            inside = np.concatenate([region, region])
-            change = self.movement @ sent
-            change[inside] = 0.0
-            after = y + change
-            grow = (np.abs(change) > GROW * (atol + rtol * np.abs(y))) | (
-                armed & (after < level) & (y >= level) & ~inside)
+            # the first-order change of the components just outside the region: what the
+            # region's components sent, minus the step's course, along their links out
+            inside = np.concatenate([members, members + n])
+            links = sp.coo_array(self._transposed[inside])  # row: a component of the region
+            self._mark[inside] = True
+            away = ~self._mark[links.col]
+            self._mark[inside] = False
+            targets, which = np.unique(links.col[away], return_inverse=True)
+            change = np.bincount(which, weights=links.data[away] * sent[inside[links.row[away]]],
+                                 minlength=targets.size)
+            before = y[targets]
+            after = before + change
+            grow = (np.abs(change) > GROW * (atol + rtol * np.abs(before))) | (
+                armed[targets] & (after < level) & (before >= level))
             if not grow.any():
-                y = after
+                y[targets] = after
                 break
             # those patches join; the groups they join are integrated again, the rest kept
-            new = np.zeros(n, dtype=bool)
-            new[np.flatnonzero(grow) % n] = True
-            region |= new
-            members = np.flatnonzero(region)
+            new = np.setdiff1d(targets[grow] % n, members)
+            members = np.union1d(members, new)
             _, label = connected_components(self.links[members][:, members], directed=False)
-            todo = np.zeros(n, dtype=bool)
-            todo[members[np.isin(label, label[new[members]])]] = True
-        components = np.flatnonzero(np.concatenate([region, region]))
+            todo = members[np.isin(label, label[np.isin(members, new)])]
+        components = np.concatenate([members, members + n])
         species = (components >= n).astype(np.int64)
         return Retaken(y=y, components=components, census=record[:, components],
                        removals=np.bincount(species, weights=counts[components],
                                             minlength=2).astype(np.int64),
                        removed=np.bincount(species, weights=held[components], minlength=2),
                        evaluations=evaluations)
-
-    def _neighbours(self, region):
-        return (self.links @ region.astype(np.float64)) != 0
 
 
 class _Region:
@@ -218,7 +225,7 @@ class _Region:
         m = patches.size
         comps = np.concatenate([patches, patches + n])
         self.components = comps
-        position = np.full(2 * n, -1, dtype=np.int64)
+        position = retaker._position  # -1 but for the region's components, for now
         position[comps] = np.arange(2 * m)
         # the region's rows of the movement operator: links within it, and in from outside
         rows = sp.coo_array(retaker.movement[comps])
@@ -226,6 +233,7 @@ class _Region:
         self._within = sp.csr_array((rows.data[inside], (rows.row[inside],
                                                          position[rows.col[inside]])),
                                     shape=(2 * m, 2 * m))
+        position[comps] = -1
         self._in = rows.row[~inside], rows.col[~inside], rows.data[~inside]
         self._patches, self._retaker, self._dense = patches, retaker, dense
         # what it sends out is compared with the step's: its own course on the interpolant
