@@ -153,11 +153,11 @@ class StepRetaker:
         census = np.asarray(census, dtype=float)
         y = np.asarray(y1, dtype=float).copy()
         # per component of the region (written for every component integrated, read only
-        # for those; nothing proportional to the whole network is filled)
+        # for those: np.empty leaves the pages of the others untouched)
         sent = np.empty(2 * n)  # what each component sent, minus the step's course
         counts = np.empty(2 * n, dtype=np.int64)
         held = np.empty(2 * n)
-        record = np.empty((census.size, 2 * n))
+        rounds_census = []  # (components, their census values) of each round
         evaluations = 0.0
         for rounds in range(1, ROUNDS + 2):
             if rounds > ROUNDS or members.size > WHOLE * n:
@@ -167,7 +167,8 @@ class StepRetaker:
                           sends=not whole)
             comps = out.components
             y[comps], sent[comps], counts[comps], held[comps] = out.x, out.q, out.counts, out.held
-            record[:, comps] = out.census
+            if census.size:
+                rounds_census.append((comps, out.census))
             evaluations += out.evaluations
             if whole:
                 break
@@ -195,7 +196,15 @@ class StepRetaker:
             todo = members[np.isin(label, label[np.isin(members, new)])]
         components = np.concatenate([members, members + n])
         species = (components >= n).astype(np.int64)
-        return Retaken(y=y, components=components, census=record[:, components],
+        # the census values of the region, the last round's where a group was taken again
+        record = np.empty((census.size, components.size))
+        if census.size:
+            position = self._position
+            position[components] = np.arange(components.size)
+            for comps, values in rounds_census:
+                record[:, position[comps]] = values
+            position[components] = -1
+        return Retaken(y=y, components=components, census=record,
                        removals=np.bincount(species, weights=counts[components],
                                             minlength=2).astype(np.int64),
                        removed=np.bincount(species, weights=held[components], minlength=2),
@@ -350,7 +359,8 @@ class _Region:
             live = t < t1 - tiny
             if not live.any():
                 break
-            if live.mean() < self.NARROW and x.size > 64:
+            sizes = np.diff(np.r_[starts, self.m])  # patches per group
+            if sizes[live].sum() < self.NARROW * self.m and x.size > 64 and K is not None:
                 # write out the finished groups; go on with the live ones
                 done = ~live[self.group]
                 self.x[self.index[done]] = x[done]
