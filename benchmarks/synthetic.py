@@ -31,6 +31,8 @@ __all__ = ["synthetic_frame", "synthetic_landscape", "write_patches"]
 
 #: South-west corner of the square the patches lie in (UTM zone 32 N, about 47° N, 9° E).
 ORIGIN_M = (300_000.0, 5_100_000.0)
+#: The corner of landscapes too wide for a UTM zone, in EPSG:3035 (central Europe).
+WIDE_ORIGIN_M = (3_300_000.0, 2_300_000.0)
 
 
 def _star_polygons(rng, centres, area_km2, vertices):
@@ -70,7 +72,7 @@ def _star_polygons(rng, centres, area_km2, vertices):
 def synthetic_frame(n: int, *, seed: int = 0, median_area_km2: float = 0.3,
                     area_sigma: float = 0.9, spacing_km: float = 1.6, cluster_size: float = 25,
                     cluster_spread_km: float = 3.0, vertices: int = 9, overlap: bool = False,
-                    shuffle: bool = False, crs: str = "EPSG:32632") -> geopandas.GeoDataFrame:
+                    shuffle: bool = False, crs: str | None = None) -> geopandas.GeoDataFrame:
     """A GeoDataFrame of ``n`` synthetic patch polygons.
 
     Parameters
@@ -98,8 +100,11 @@ def synthetic_frame(n: int, *, seed: int = 0, median_area_km2: float = 0.3,
     shuffle : bool
         Random feature order. By default features come cluster by cluster, so patches near
         each other in space are near each other in the file.
-    crs : str
-        Projected CRS in metres.
+    crs : str, optional
+        Projected CRS in metres. By default UTM zone 32N (EPSG:32632) with the corner at
+        ``ORIGIN_M``; a square wider than 600 km (more than about 140,000 patches) does not
+        fit a UTM zone's area of use, which trophoscape checks, so it goes in the
+        pan-European equal-area CRS (EPSG:3035) with its corner at ``WIDE_ORIGIN_M``.
 
     Returns
     -------
@@ -109,6 +114,11 @@ def synthetic_frame(n: int, *, seed: int = 0, median_area_km2: float = 0.3,
     """
     rng = np.random.default_rng(seed)
     side = spacing_km * 1000.0 * np.sqrt(n)
+    if crs is None:
+        wide = side * 1.15 > 600_000.0  # 1.15: the scaling after overlaps are dropped
+        crs, corner = ("EPSG:3035", WIDE_ORIGIN_M) if wide else ("EPSG:32632", ORIGIN_M)
+    else:
+        corner = ORIGIN_M
     geoms = np.empty(0, dtype=object)
     while geoms.size < n:
         want = int((n - geoms.size) * 1.25) + 16
@@ -117,7 +127,7 @@ def synthetic_frame(n: int, *, seed: int = 0, median_area_km2: float = 0.3,
         members = rng.poisson(cluster_size, n_clusters)
         centres = np.repeat(hubs, members, axis=0)
         centres += rng.normal(0, cluster_spread_km * 1000.0, centres.shape)
-        centres = np.mod(centres, side) + np.asarray(ORIGIN_M)  # wrap: no edge pile-up
+        centres = np.mod(centres, side) + np.asarray(corner)  # wrap: no edge pile-up
         area = median_area_km2 * np.exp(area_sigma * rng.standard_normal(centres.shape[0]))
         new = _star_polygons(rng, centres, area, vertices)
         if not overlap:
@@ -134,7 +144,7 @@ def synthetic_frame(n: int, *, seed: int = 0, median_area_km2: float = 0.3,
         # dropping overlaps removes big patches more often than small ones; scaling the
         # whole map (positions and sizes alike) restores the median and keeps it overlap-free
         factor = np.sqrt(median_area_km2 * 1e6 / np.median(shapely.area(geoms)))
-        origin = np.asarray(ORIGIN_M)
+        origin = np.asarray(corner)
         geoms = shapely.transform(geoms, lambda xy: origin + (xy - origin) * factor)
     if shuffle:
         geoms = geoms[rng.permutation(n)]

@@ -22,9 +22,13 @@ What the region sends out differs from the whole step's interpolant only by what
 removals changed; the integral of that difference is carried as an extra quadrature of the
 same stages, and the patches just outside receive it as a correction at the step's end.
 A patch outside whose correction exceeds the tolerance (or that the correction would take
-through the threshold) joins the region, and the step is taken again, until every
-correction left outside is within the tolerance; a region of more than half of the network
-becomes the whole network, whose integration has no outside at all.
+through the threshold) joins the region, and the groups it joins are integrated again (the
+others keep their result), until every correction left outside is within the tolerance; a
+region of more than half of the network becomes the whole network, whose integration has no
+outside at all.
+
+The outside reference for all of this is scipy's event location restarted at every
+crossing (``tests/test_removals.py``).
 """
 
 from __future__ import annotations
