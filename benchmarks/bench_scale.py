@@ -70,6 +70,8 @@ def child(folder: Path, profile: str | None, kernel: str, maps: bool = False) ->
 def prepare(n: int, stability: bool, duration: float) -> Path:
     folder = Path(tempfile.mkdtemp(prefix=f"trophoscape-scale-{n}-"))
     text = SCENARIO.format(n=n).replace("duration = 200", f"duration = {duration:g}")
+    # the burn-in must end before the run does
+    text = text.replace("burn_in = 50", f"burn_in = {min(50.0, duration / 2):g}")
     write_study_inputs(folder, n, text + "\n[analysis]\nstability = %s\n"
                        % ("true" if stability else "false"))
     return folder
