@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.integrate as si
 
-__all__ = ["Rows", "dense_at", "falls_through_within", "crossing_positions"]
+__all__ = ["Rows", "dense_at", "horner", "falls_through_within", "crossing_positions"]
 
 #: Populations within this share of the threshold at either end of a step are looked at
 #: between its ends (a dip, or a rise, larger than this within one error-controlled step is
@@ -34,9 +34,7 @@ def dense_at(dense, index, x):
     """
     x = np.asarray(x, dtype=float)
     if isinstance(dense, si._ivp.rk.RkDenseOutput):
-        powers = np.cumprod(np.broadcast_to(x, (dense.order + 1,) + x.shape), axis=0)
-        q = dense.Q[index]  # (components, order + 1)
-        return dense.h * np.einsum("ij,j...i->...i", q, powers) + dense.y_old[index]
+        return dense.h * horner(dense.Q[index], x) + dense.y_old[index]
     if isinstance(dense, si._ivp.rk.Dop853DenseOutput):
         y = np.zeros(x.shape)
         for i, f in enumerate(reversed(dense.F)):
@@ -44,6 +42,17 @@ def dense_at(dense, index, x):
             y *= x if i % 2 == 0 else 1.0 - x
         return y + dense.y_old[index]
     return None
+
+
+def horner(q, x):
+    """``sum_j q[:, j] x**(j + 1)`` (scipy's Runge–Kutta interpolants without ``h`` and
+    ``y_old``) by Horner's rule; ``q`` is ``(components, terms)``, ``x`` one position per
+    component (``(components,)``) or several (``(points, components)``)."""
+    acc = q[:, -1] * x
+    for j in range(q.shape[1] - 2, -1, -1):
+        acc += q[:, j]
+        acc *= x
+    return acc
 
 
 class Rows:
@@ -60,8 +69,7 @@ class Rows:
         self.y_old = dense.y_old[index]
         if isinstance(dense, si._ivp.rk.RkDenseOutput):
             self.h = dense.h
-            # lowest power first, each contiguous
-            self.coefficients = list(np.ascontiguousarray(dense.Q[index].T))
+            self.coefficients = np.ascontiguousarray(dense.Q[index])
             self.factors = None
         elif isinstance(dense, si._ivp.rk.Dop853DenseOutput):
             self.factors = [f[index] for f in reversed(dense.F)]
@@ -75,17 +83,12 @@ class Rows:
         new.factors = None if self.factors is None else [f[index] for f in self.factors]
         if self.factors is None:
             new.h = self.h
-            new.coefficients = [c[index] for c in self.coefficients]
+            new.coefficients = self.coefficients[index]
         return new
 
     def __call__(self, x):
         if self.factors is None:
-            c = self.coefficients
-            acc = c[-1] * x
-            for q in c[-2::-1]:
-                acc += q
-                acc *= x
-            return self.h * acc + self.y_old
+            return self.h * horner(self.coefficients, x) + self.y_old
         y = np.zeros_like(x)
         for i, f in enumerate(self.factors):
             y += f

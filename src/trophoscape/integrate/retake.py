@@ -41,7 +41,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 
 from ..errors import RunError
-from .crossings import NEAR, Rows, crossing_positions, falls_through_within
+from .crossings import NEAR, Rows, crossing_positions, falls_through_within, horner
 
 __all__ = ["StepRetaker"]
 
@@ -425,13 +425,8 @@ class _Region:
             Q = K.T @ _P  # (components, 4)
 
             def at(index, pos, Q=Q, x=x, hc=hc):
-                # the interpolant of scipy's RK45, x + h sum_j Q_j pos**(j + 1), by Horner
-                c = Q[index]
-                acc = c[:, -1] * pos
-                for j in range(c.shape[1] - 2, -1, -1):
-                    acc += c[:, j]
-                    acc *= pos
-                return hc[index] * acc + x[index]
+                # the interpolant of scipy's RK45, x + h sum_j Q_j pos**(j + 1)
+                return hc[index] * horner(Q[index], pos) + x[index]
 
             acc = accept[group]
             crossed = acc & armed & (x_new < level)
