@@ -281,3 +281,125 @@ def test_many_census_times_within_steps_with_removals():
     assert np.max(np.abs(got - reference)) <= 1e-4
     coarse = np.concatenate([runs[1]["prey"].values, runs[1]["predator"].values], axis=1)
     assert np.max(np.abs(got[::25] - coarse)) <= 1e-9
+
+
+# --- The same references, by the other paths of the step taken again ------------------------
+# "compiled": the regions' groups integrated by trophoscape.integrate.compiled (numba), which
+# the compiled local terms bring with them (networks of 10,000 patches and more by default).
+# "spared": whole-network steps that leave their few slowest patches to the regions
+# (ode.SPARE_SHARE, from 1,000 patches by default), here forced on these small networks.
+
+
+def _as(system, variant, monkeypatch):
+    """``system`` for ``variant`` ("compiled" or "spared"; see above)."""
+    if variant == "spared":
+        from trophoscape.integrate import ode
+
+        # a fifth of the patches may miss the tolerance in a whole-network step
+        monkeypatch.setattr(ode, "SPARE_SHARE", 0.2)
+        return system
+    pytest.importorskip("numba", reason="numba is not installed")
+    return CoupledSystem(model=system.model, area_km2=system.area_km2,
+                         prey_movement=system.prey_movement,
+                         predator_movement=system.predator_movement, local_terms="compiled")
+
+
+VARIANTS = ["compiled", "spared"]
+
+
+@pytest.mark.parametrize("variant", VARIANTS)
+@pytest.mark.parametrize("network", [_declining_network, _crashing_network])
+@pytest.mark.parametrize("method", ["RK45", "DOP853"])
+def test_other_paths_match_scipys_event_restarts(monkeypatch, variant, network, method):
+    # scipy's event restarts (DOP853, 1e-12) as the reference, as above
+    system, y0, duration = network()
+    times = np.linspace(0.0, duration, 41)
+    reference, crossings = _scipy_removals(system, y0, duration, times)
+    run = simulate(_as(system, variant, monkeypatch), y0, duration=duration,
+                   census_interval=duration / 40, extinction_abundance=LEVEL, method=method,
+                   rtol=1e-6, atol=1e-8)
+    got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
+    assert sum(run.stats.removals) == len(crossings)
+    assert np.max(np.abs(got - reference)) <= 1e-4
+
+
+@pytest.mark.parametrize("variant", VARIANTS)
+def test_other_paths_with_fast_dispersal_and_a_fine_census(monkeypatch, variant):
+    # the fast-dispersal crash and a census every 0.01 (census times inside the steps taken
+    # again), against scipy's event restarts
+    system, y0, duration = _crashing_network(predator_rate=3.0)
+    fine = np.linspace(0.0, duration, 1001)
+    reference, crossings = _scipy_removals(system, y0, duration, fine)
+    run = simulate(_as(system, variant, monkeypatch), y0, duration=duration,
+                   census_interval=duration / 1000, extinction_abundance=LEVEL, rtol=1e-6,
+                   atol=1e-8)
+    got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
+    assert sum(run.stats.removals) == len(crossings)
+    assert np.max(np.abs(got - reference)) <= 1e-4
+
+
+@pytest.mark.parametrize("variant", VARIANTS)
+def test_other_paths_for_networks_side_by_side(monkeypatch, variant):
+    # groups with their own clocks (three unlinked networks), each against scipy alone
+    big, z0, system, starts, duration = _side_by_side(3)
+    n = system.n_patches
+    times = np.linspace(0.0, duration, 41)
+    run = simulate(_as(big, variant, monkeypatch), z0, duration=duration,
+                   census_interval=duration / 40, extinction_abundance=LEVEL, rtol=1e-6,
+                   atol=1e-8)
+    total = 0
+    for c, start in enumerate(starts):
+        reference, crossings = _scipy_removals(system, start, duration, times)
+        total += len(crossings)
+        got = np.concatenate([run["prey"].values[:, c * n:(c + 1) * n],
+                              run["predator"].values[:, c * n:(c + 1) * n]], axis=1)
+        assert np.max(np.abs(got - reference)) <= 1e-4
+    assert sum(run.stats.removals) == total
+
+
+def test_the_other_species_case_by_the_compiled_path(monkeypatch):
+    # the two-patch case above (a removal in A changes B's prey before B's own removal)
+    model = make_model(n=2, growth="exponential", growth_rate=0.0, attack_rate=0.0)
+    model.params["growth_rate"][:] = [-1.0, 0.0]
+    model.params["mortality"][:] = [0.0, 1.5]
+    movement = sp.csr_array(np.array([[-0.5, 0.0], [0.5, 0.0]]))
+    system = _as(make_system(model, prey_movement=movement), "compiled", monkeypatch)
+    y0 = np.array([3.0, 50.0, 0.0, 3.1])
+    assert _max_error(system, y0, 2.0, "RK45", 1e-6) <= 1e-4
+    assert _max_error(system, y0, 2.0, "RK45", 1e-9) <= 1e-6
+
+
+def test_spared_patches_without_removals_meet_scipy(monkeypatch):
+    # with the rule off (threshold 0), the only steps taken again are those that left patches
+    # over the tolerance: the run must still meet scipy's solve_ivp (DOP853, 1e-12), and
+    # converge as the tolerance tightens
+    from trophoscape.integrate import ode
+
+    system, y0, duration = _crashing_network(predator_rate=3.0)
+    times = np.linspace(0.0, duration, 41)
+    reference = si.solve_ivp(system.rhs_function(), (0.0, duration), y0, method="DOP853",
+                             rtol=1e-12, atol=1e-12, t_eval=times).y.T
+    monkeypatch.setattr(ode, "SPARE_SHARE", 0.2)
+    errors = []
+    for rtol in (1e-6, 1e-8):
+        run = simulate(system, y0, duration=duration, census_interval=duration / 40,
+                       extinction_abundance=0.0, rtol=rtol, atol=rtol * 1e-2)
+        assert run.stats.restarts > 0  # steps were taken again over spared patches
+        got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
+        errors.append(np.max(np.abs(got - reference)))
+    assert errors[0] <= 1e-4
+    assert errors[1] <= errors[0] / 20
+
+
+def test_compiled_and_numpy_regions_agree(monkeypatch):
+    # consistency test: the compiled and the numpy integration of the regions take the same
+    # removals and agree within the tolerance (their sums are taken in other orders, and
+    # rounding grows through a crash like any difference; tests/test_compiled.py)
+    big, z0, *_, duration = _side_by_side(3)
+    runs = [simulate(s, z0, duration=duration, census_interval=duration / 40,
+                     extinction_abundance=LEVEL, rtol=1e-6, atol=1e-8)
+            for s in (big, _as(big, "compiled", monkeypatch))]
+    assert runs[0].stats.removals == runs[1].stats.removals
+    for name in ("prey", "predator"):
+        want = runs[0][name].values
+        assert np.max(np.abs(runs[1][name].values - want) / (1e-8 + 1e-6 * np.abs(want))) <= 2.0

@@ -17,9 +17,13 @@ Quasi-extinction is an event of the integration, not of the census
 Error control per patch
     The explicit Runge–Kutta methods take the largest scaled error over all components (a max
     norm) instead of scipy's root mean square, so one patch's accuracy does not dilute as
-    quiet patches or replicates are added beside it. Implicit methods keep scipy's norm with
-    tolerances divided by the square root of the state size, which bounds the error of every
-    component by the same tolerance.
+    quiet patches or replicates are added beside it. On networks of 1,000 patches and more
+    (:data:`SPARE_SHARE`), a step is accepted when all but the few patches with the largest
+    errors meet the tolerance, and those few are taken again over their region at their own
+    step sizes, like a step with removals: one tiny, fast patch no longer sets the step of
+    the whole network, and every patch still meets the tolerance in every step. Implicit
+    methods keep scipy's norm with tolerances divided by the square root of the state size,
+    which bounds the error of every component by the same tolerance.
 """
 
 from __future__ import annotations
@@ -51,10 +55,43 @@ class _MaxNormRK:
     dense output are scipy's.
     """
 
+    #: Patches whose error may exceed the tolerance in an accepted step; they are taken
+    #: again over a region (set per run by :func:`simulate`, see :data:`SPARE_SHARE`).
+    spare = 0
+    #: The patches over the tolerance in the last step tried (the accepted one, after a step).
+    over = np.empty(0, dtype=np.int64)
+
     def _estimate_error_norm(self, K, h, scale):
         err = np.abs(self._estimate_error(K, h))
         err /= scale
+        return _spared(self, err)
+
+
+def _spared(solver, err) -> float:
+    """The error norm of a step in which up to ``solver.spare`` patches may miss the
+    tolerance: the largest scaled error of the others (the ``spare + 1``-th largest of the
+    patches' errors, both species of a patch together). The patches over the tolerance are
+    left in ``solver.over``; a step accepted with some is taken again over them.
+    """
+    if not solver.spare:
         return float(err.max(initial=0.0))
+    per = err.reshape(2, -1).max(axis=0)
+    worst = float(per.max(initial=0.0))
+    if not worst >= 1.0:  # (a NaN is returned as it is: the step is rejected)
+        solver.over = np.empty(0, dtype=np.int64)
+        return worst
+    over = np.flatnonzero(per >= 1.0)
+    spare = solver.spare
+    if over.size > spare:  # rejected: the (spare + 1)-th largest is among them
+        solver.over = over
+        return float(np.partition(per[over], over.size - spare - 1)[over.size - spare - 1])
+    solver.over = over
+    # the (spare + 1)-th largest: among the errors of at least 1e-2 when there are enough
+    # of those (one pass over the network), else among all
+    some = per[per >= 1e-2]
+    if some.size <= spare:
+        some = per
+    return float(np.partition(some, some.size - spare - 1)[some.size - spare - 1])
 
 
 class RK23(_MaxNormRK, si.RK23):
@@ -70,8 +107,12 @@ class DOP853(si.DOP853):
 
     scipy combines the two estimates over the whole state (Hairer, Nørsett & Wanner 1993,
     Solving Ordinary Differential Equations I, §II.10); the same formula is applied to each
-    component on its own and the largest is kept.
+    component on its own and the largest is kept (or, with ``spare`` patches, as in
+    :func:`_spared`).
     """
+
+    spare = _MaxNormRK.spare
+    over = _MaxNormRK.over
 
     def _estimate_error_norm(self, K, h, scale):
         err5 = np.dot(K.T, self.E5) / scale
@@ -80,7 +121,8 @@ class DOP853(si.DOP853):
         denom = e5 + 0.01 * (err3 * err3)
         with np.errstate(invalid="ignore", divide="ignore"):
             ratio = np.where(denom > 0, e5 / np.sqrt(denom), 0.0)
-        return float(abs(h) * ratio.max(initial=0.0))
+        ratio *= abs(h)
+        return _spared(self, ratio)
 
 
 #: Solvers by the names ``solve_ivp`` uses. The explicit ones control the error per
@@ -96,6 +138,12 @@ METHODS = {
 }
 #: Methods whose error control is per component.
 MAX_NORM = ("RK23", "RK45", "DOP853")
+#: In a network of ``n`` patches, a whole-network Runge–Kutta step is accepted when every
+#: patch but the ``int(SPARE_SHARE * n)`` with the largest errors meets the tolerance; those
+#: few are then taken again over a region at their own step sizes
+#: (:mod:`trophoscape.integrate.retake`), so one fast patch no longer sets the step of all.
+#: Below ``1 / SPARE_SHARE`` patches no patch is spared.
+SPARE_SHARE = 1e-3
 #: Methods that take the sparse analytic Jacobian.
 IMPLICIT = ("Radau", "BDF")
 
@@ -406,6 +454,7 @@ def simulate(
 
     def user_order(v):
         return system.to_user(v) if internal else v
+    spare = int(SPARE_SHARE * n) if method in MAX_NORM else 0
     totals = dict(nfev=0, njev=0, nlu=0)
     local_evaluations = 0.0  # of steps taken again over regions, in whole-network evaluations
     steps = restarts = 0
@@ -466,7 +515,10 @@ def simulate(
             first_step = _initial_step(rhs, t0, y_start, bound(), solver_cls.error_estimator_order,
                                        rtol_used, atol_used)
             totals["nfev"] += 2
-        return solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options)
+        solver = solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options)
+        if method in MAX_NORM:
+            solver.spare = spare
+        return solver
 
     def add_counts(s):
         for key in totals:
@@ -520,7 +572,8 @@ def simulate(
         area, model, movement = system.parts(internal)
         old = retakers[0][1] if retakers else None
         # noise and shocks change the rates, seldom the links: those are shared
-        new = StepRetaker(area, model, movement, share=old)
+        new = StepRetaker(area, model, movement, share=old,
+                          compiled=system.local_terms_used == "compiled")
         retakers[:] = [(system, new)]
         return new
     try:
@@ -572,7 +625,18 @@ def simulate(
             t_end = solver.t  # the state is known up to here
             falling = None
             retaken = None
-            if rule and solver.t > t_old:  # (a restart at the bound takes a step of zero length)
+            # patches that missed the tolerance in the step (at most `spare`)
+            over = solver.over if spare and solver.t > t_old else None
+            if over is not None and not over.size:
+                over = None
+            if over is not None and not rule:  # taken again over a region, with no removals
+                dense = solver.dense_output()
+                inside = times[k:np.searchsorted(times, solver.t, side="right")]
+                retaken = retaker().retake(
+                    t_old, y_prev, solver.t, solver.y, dense, over, -np.inf,
+                    np.zeros(2 * n, dtype=bool), rtol_used, atol_used, census=inside)
+                local_evaluations += retaken.evaluations
+            elif rule and solver.t > t_old:  # (a restart at the bound: a step of zero length)
                 now = solver.y >= level
                 crossed = above & ~now
                 if per_component:
@@ -585,14 +649,17 @@ def simulate(
                         dense = solver.dense_output()
                         crossed[near[falls_through_within(_on(dense), near, level,
                                                           above[near])]] = True
-                if crossed.any() and per_component:
-                    # the step taken again over the patches with removals and around them
+                if (crossed.any() or over is not None) and per_component:
+                    # the step taken again over the patches with removals (and those that
+                    # missed the tolerance) and around them
                     dense = dense or solver.dense_output()
                     inside = times[k:np.searchsorted(times, solver.t, side="right")]
+                    patches = np.flatnonzero(crossed) % n
+                    if over is not None:
+                        patches = np.concatenate([patches, over])
                     retaken = retaker().retake(
-                        t_old, y_prev, solver.t, solver.y, dense,
-                        np.unique(np.flatnonzero(crossed) % n), level, above,
-                        rtol_used, atol_used, census=inside)
+                        t_old, y_prev, solver.t, solver.y, dense, np.unique(patches), level,
+                        above, rtol_used, atol_used, census=inside)
                     removals[:] += retaken.removals
                     removed[:] += retaken.removed
                     local_evaluations += retaken.evaluations

@@ -27,8 +27,16 @@ others keep their result), until every correction left outside is within the tol
 region of more than half of the network becomes the whole network, whose integration has no
 outside at all.
 
+The same serves the few patches that a whole-network step leaves over the tolerance
+(:data:`trophoscape.integrate.ode.SPARE_SHARE`): they form the region, with or without
+removals, and are integrated at their own step sizes.
+
+The groups are integrated by numpy (the reference), or group by group by the compiled code
+of :mod:`trophoscape.integrate.compiled` when the system evaluates its local terms by
+compiled code (numba installed, 10,000 patches and more by default).
+
 The outside reference for all of this is scipy's event location restarted at every
-crossing (``tests/test_removals.py``).
+crossing (``tests/test_removals.py``), and scipy's ``solve_ivp`` without removals.
 """
 
 from __future__ import annotations
@@ -41,7 +49,8 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 
 from ..errors import RunError
-from .crossings import NEAR, Rows, crossing_positions, falls_through_within, horner
+from .crossings import (LOOKS, NEAR, REFINE, ROUNDS as REFINE_ROUNDS, Rows,
+                        crossing_positions, falls_through_within, horner)
 
 __all__ = ["StepRetaker"]
 
@@ -107,11 +116,24 @@ class StepRetaker:
     share : StepRetaker, optional
         A retaker of another system; what depends only on the movement operator (the
         patches' links) is taken from it when the operator is the same object.
+    compiled : bool
+        Integrate the regions' groups with the compiled code of
+        :mod:`trophoscape.integrate.compiled` (numba; the model's growth form and response
+        must be known to it), else with numpy.
     """
 
-    def __init__(self, area, model, movement, share=None):
+    def __init__(self, area, model, movement, share=None, compiled=False):
         self.area = np.asarray(area, dtype=float)
         self.model = model
+        self.compiled = None
+        if compiled:
+            from . import compiled as module
+            from ..model import compiled as local
+
+            if local.supports(model):
+                self.compiled = module
+                self._block = local.parameter_block(model, self.area.size)
+                self._codes = local.codes(model)
         self.n = n = self.area.size
         self._operator = movement
         # work arrays of the network's size, allocated once: all False / -1 between uses
@@ -128,6 +150,41 @@ class StepRetaker:
         self.links = sp.csr_array(block + block.T)
 
     # ------------------------------------------------------------------------------------
+    def _distinct(self, index):
+        """The distinct values of ``index`` (components, or patches), in increasing order."""
+        mark = self._mark
+        mark[index] = True
+        out = np.flatnonzero(mark)
+        mark[out] = False
+        return out
+
+    def _gather(self, matrix, rows):
+        """:func:`_gather`, by the compiled code when the retaker uses it."""
+        if self.compiled is None:
+            return _gather(matrix, rows)
+        return self.compiled.gather(matrix.indptr, matrix.indices, matrix.data,
+                                    np.asarray(rows, dtype=np.int64))
+
+    def _positions(self, distinct, index):
+        """Where each of ``index`` is in ``distinct`` (which holds them all)."""
+        position = self._position
+        position[distinct] = np.arange(distinct.size)
+        out = position[index]
+        position[distinct] = -1
+        return out
+
+    def _within(self, patches):
+        """The links among ``patches``, numbered as they come in ``patches``."""
+        position = self._position
+        position[patches] = np.arange(patches.size)
+        row, col, weight = self._gather(self.links, patches)
+        local = position[col]
+        position[patches] = -1
+        inside = local >= 0
+        indptr = np.r_[0, np.cumsum(np.bincount(row[inside], minlength=patches.size))]
+        return sp.csr_array((weight[inside], local[inside], indptr),
+                            shape=(patches.size, patches.size))
+
     def retake(self, t0, y0, t1, y1, dense, patches, level, armed, rtol, atol,
                census=()) -> Retaken:
         """Take the step ``t0 -> t1`` again over the patches with removals and around them.
@@ -152,7 +209,8 @@ class StepRetaker:
         """
         n = self.n
         patches = np.unique(np.asarray(patches, dtype=np.int64))
-        members = np.union1d(patches, self.links[patches].indices)  # the region's patches
+        # the region's patches: those and their neighbours
+        members = self._distinct(np.concatenate([patches, self._gather(self.links, patches)[1]]))
         todo = members  # the patches to integrate in this round
         census = np.asarray(census, dtype=float)
         y = np.asarray(y1, dtype=float).copy()
@@ -179,12 +237,14 @@ class StepRetaker:
             # the first-order change of the components just outside the region: what the
             # region's components sent, minus the step's course, along their links out
             inside = np.concatenate([members, members + n])
-            links = sp.coo_array(self._transposed[inside])  # row: a component of the region
+            row, col, rate = self._gather(self._transposed, inside)  # row: a component of the region
             self._mark[inside] = True
-            away = ~self._mark[links.col]
+            away = ~self._mark[col]
             self._mark[inside] = False
-            targets, which = np.unique(links.col[away], return_inverse=True)
-            change = np.bincount(which, weights=links.data[away] * sent[inside[links.row[away]]],
+            col = col[away]
+            targets = self._distinct(col)
+            which = self._positions(targets, col)
+            change = np.bincount(which, weights=rate[away] * sent[inside[row[away]]],
                                  minlength=targets.size)
             before = y[targets]
             after = before + change
@@ -196,7 +256,7 @@ class StepRetaker:
             # those patches join; the groups they join are integrated again, the rest kept
             new = np.setdiff1d(targets[grow] % n, members)
             members = np.union1d(members, new)
-            _, label = connected_components(self.links[members][:, members], directed=False)
+            _, label = connected_components(self._within(members), directed=False)
             todo = members[np.isin(label, label[np.isin(members, new)])]
         components = np.concatenate([members, members + n])
         species = (components >= n).astype(np.int64)
@@ -231,8 +291,7 @@ class _Region:
         n = retaker.n
         self.t0, self.span = float(t0), float(t1) - float(t0)
         # patches in the order of their groups, so each group's components are contiguous
-        within = retaker.links[patches][:, patches]
-        _, label = connected_components(within, directed=False)
+        _, label = connected_components(retaker._within(patches), directed=False)
         order = np.argsort(label, kind="stable")
         patches, label = patches[order], label[order]
         m = patches.size
@@ -241,13 +300,14 @@ class _Region:
         position = retaker._position  # -1 but for the region's components, for now
         position[comps] = np.arange(2 * m)
         # the region's rows of the movement operator: links within it, and in from outside
-        rows = sp.coo_array(retaker.movement[comps])
-        inside = position[rows.col] >= 0
-        self._within = sp.csr_array((rows.data[inside], (rows.row[inside],
-                                                         position[rows.col[inside]])),
+        row, col, rate = retaker._gather(retaker.movement, comps)  # in the order of the rows
+        local = position[col]
+        inside = local >= 0
+        indptr = np.r_[0, np.cumsum(np.bincount(row[inside], minlength=2 * m))]
+        self._within = sp.csr_array((rate[inside], local[inside], indptr),
                                     shape=(2 * m, 2 * m))
         position[comps] = -1
-        self._in = rows.row[~inside], rows.col[~inside], rows.data[~inside]
+        self._in = row[~inside], col[~inside], rate[~inside]
         self._patches, self._retaker, self._dense = patches, retaker, dense
         # what it sends out is compared with the step's: its own course on the interpolant
         self.sends = sends
@@ -258,8 +318,59 @@ class _Region:
         self.x = np.asarray(y0, dtype=float)[comps]
         self.q = np.zeros(2 * m)
         self.census = np.full((np.size(census), 2 * m), np.nan)
-        self._run(label, np.asarray(armed)[comps].copy(), float(level), float(rtol),
-                  float(atol), census)
+        run = self._run if retaker.compiled is None else self._run_compiled
+        run(label, np.asarray(armed)[comps].copy(), float(level), float(rtol), float(atol),
+            census)
+
+    def _run_compiled(self, label, armed, level, rtol, atol, census):
+        """:meth:`_run` by the compiled code, group by group."""
+        retaker = self._retaker
+        module = retaker.compiled
+        m = self._patches.size
+        starts = np.flatnonzero(np.r_[True, label[1:] != label[:-1]])
+        starts = np.r_[starts, m].astype(np.int64)
+        within = self._within
+        rows, cols, rates = self._in
+        # the links in from outside (in the order of their rows): those from sources that
+        # stay positive over the whole step summed into one polynomial per component (no
+        # clipping at zero to do), the others kept
+        outside = retaker._distinct(cols)
+        source = retaker._positions(outside, cols)
+        o_kind, o_old, o_coef, o_h = _coefficients(self._dense, outside)
+        spread = o_h * np.abs(o_coef).sum(axis=1) if o_kind == 0 else np.abs(o_coef).sum(axis=1)
+        positive = (o_old - spread > 0)[source]
+        weight = rates[positive]
+        target, sure = rows[positive], source[positive]
+        p_old = np.bincount(target, weights=weight * o_old[sure], minlength=2 * m)
+        p_coef = np.empty((2 * m, o_coef.shape[1]))
+        for j in range(o_coef.shape[1]):
+            p_coef[:, j] = np.bincount(target, weights=weight * o_coef[sure, j], minlength=2 * m)
+        rows, i_src, rates = rows[~positive], source[~positive], rates[~positive]
+        i_ptr = np.r_[0, np.cumsum(np.bincount(rows, minlength=2 * m))].astype(np.int64)
+        if self.sends:
+            _, s_old, s_coef, _ = _coefficients(self._dense, self.components)
+        else:
+            s_old, s_coef = o_old[:0], o_coef[:0]
+        growth, response, harvest = retaker._codes
+        groups = starts.size - 1
+        status = np.zeros(groups, dtype=np.int64)
+        evaluations = np.zeros(groups)
+        census = np.ascontiguousarray(census, dtype=float)
+        module.run_groups(
+            starts, m, self.t0, self.span, self.x, self.q, armed, level, rtol, atol,
+            within.indptr.astype(np.int64), within.indices.astype(np.int64),
+            within.data.astype(float), p_old, p_coef, i_ptr, i_src, rates.astype(float),
+            o_kind, o_old, o_coef, o_h, self.sends, s_old, s_coef, growth, response, harvest,
+            retaker.area[self._patches], np.ascontiguousarray(retaker._block[:, self._patches]),
+            census, self.census, self.counts, self.held, _A, _B, _C, _E, _P,
+            _SAFETY, _MIN_FACTOR, _MAX_FACTOR, _EXPONENT, NEAR, LOOKS, REFINE, REFINE_ROUNDS,
+            status, evaluations)
+        self.evaluations = float(evaluations.sum()) * self._unit
+        if np.any(status == module.NOT_A_NUMBER):
+            raise RunError(_NOT_A_NUMBER.format(time=self.t0))
+        if np.any(status != module.DONE):  # pragma: no cover
+            raise RunError("the regional integration of a step with removals did not reach "
+                           f"the step's end (time {self.t0 + self.span:.6g})")
 
     # ------------------------------------------------------------------------------------
     def _focus(self, keep):
@@ -407,10 +518,7 @@ class _Region:
                              np.maximum.reduceat(err_c[m:], starts))
             err = np.where(np.isnan(err), np.inf, err)
             if np.any(live & ~np.isfinite(err) & (step <= tiny)):
-                raise RunError(f"the error estimate is not a number near time {self.t0:.6g} "
-                               "(a step with removals, taken again): abundances became "
-                               "non-finite, or a population at zero has no error scale "
-                               "(atol = 0); use atol > 0 and check for explosive growth")
+                raise RunError(_NOT_A_NUMBER.format(time=self.t0))
             accept = live & ((err < 1.0) | (step <= tiny))
             factor = _SAFETY * np.maximum(err, 1e-30) ** _EXPONENT
             grow = np.minimum(_MAX_FACTOR, factor)
@@ -479,6 +587,33 @@ class _Region:
                            f"the step's end (time {t1:.6g})")
         self.x[self.index] = x
         self.q[self.index] = q
+
+
+_NOT_A_NUMBER = ("the error estimate is not a number near time {time:.6g} (a step with "
+                 "removals, taken again): abundances became non-finite, or a population at "
+                 "zero has no error scale (atol = 0); use atol > 0 and check for explosive "
+                 "growth")
+
+
+def _coefficients(dense, index):
+    """Rows ``index`` of the whole step's interpolant for the compiled code:
+    ``(kind, y_old, coefficients, h)`` (:func:`trophoscape.integrate.compiled._interpolant`)."""
+    rows = Rows(dense, index)
+    if rows.factors is None:
+        return 0, rows.y_old, rows.coefficients, float(rows.h)
+    coefficients = np.ascontiguousarray(np.stack(rows.factors, axis=1))
+    return 1, rows.y_old, coefficients, 0.0
+
+
+def _gather(matrix, rows):
+    """The entries of the CSR ``matrix`` in ``rows``, row by row in that order, each row's
+    in its stored order: ``(position of the row in rows, column, value)``."""
+    begin = matrix.indptr[rows]
+    count = matrix.indptr[rows + 1] - begin
+    total = int(count.sum())
+    first = np.cumsum(count) - count  # where each row's entries start in the result
+    at = np.arange(total) + np.repeat(begin - first, count)
+    return np.repeat(np.arange(rows.size), count), matrix.indices[at], matrix.data[at]
 
 
 def _spread(index, size, where):

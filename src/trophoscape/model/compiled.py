@@ -42,10 +42,46 @@ def _jit(function):
         return numba.njit(cache=False, **options)(function)
 
 
+def _jit_inline(function):
+    """Compiled with numba and inlined where it is called (in compiled code only)."""
+    options = dict(error_model="numpy", boundscheck=False, nogil=True, inline="always")
+    try:
+        return numba.njit(cache=True, **options)(function)
+    except RuntimeError:  # no writable cache folder
+        return numba.njit(cache=False, **options)(function)
+
+
+@_jit_inline
+def local_one(growth, response, harvest, big_n, big_p, ai, q, i):  # pragma: no cover
+    """The local terms of patch ``i`` (abundance per time) at abundances ``big_n, big_p``,
+    already clipped at zero; ``q`` the parameter block (:data:`PARAMETER_ROWS`)."""
+    dn = big_n / ai
+    dp = big_p / ai
+    if growth == 0:
+        g = q[0, i] * dn
+    elif growth == 1:
+        g = q[0, i] * dn * (1.0 - dn / q[1, i])
+    else:
+        g = q[0, i] * dn * (1.0 - dn / q[1, i]) * (dn / q[2, i] - 1.0)
+    a = q[3, i]
+    if response == 0:
+        f = a * dn
+    elif response == 1:
+        f = a * dn / (1.0 + a * q[4, i] * dn)
+    elif response == 2:
+        f = a * dn * dn / (1.0 + a * q[4, i] * dn * dn)
+    else:
+        f = a * dn / (1.0 + a * q[4, i] * dn + q[5, i] * dp)
+    eaten = f * dp
+    rate_n = g - eaten
+    if harvest:
+        rate_n = rate_n - q[8, i] * dn
+    return rate_n * ai, (q[6, i] * eaten - q[7, i] * dp) * ai
+
+
 @_jit
 def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no cover - compiled
     n = area.size
-    r, k, t, a, h, c, e, m, hv = q[0], q[1], q[2], q[3], q[4], q[5], q[6], q[7], q[8]
     for i in range(n):
         big_n = y[i]
         big_p = y[n + i]
@@ -56,29 +92,22 @@ def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no co
             big_p = 0.0
         x[i] = big_n
         x[n + i] = big_p
-        ai = area[i]
-        dn = big_n / ai
-        dp = big_p / ai
-        if growth == 0:
-            g = r[i] * dn
-        elif growth == 1:
-            g = r[i] * dn * (1.0 - dn / k[i])
-        else:
-            g = r[i] * dn * (1.0 - dn / k[i]) * (dn / t[i] - 1.0)
-        if response == 0:
-            f = a[i] * dn
-        elif response == 1:
-            f = a[i] * dn / (1.0 + a[i] * h[i] * dn)
-        elif response == 2:
-            f = a[i] * dn * dn / (1.0 + a[i] * h[i] * dn * dn)
-        else:
-            f = a[i] * dn / (1.0 + a[i] * h[i] * dn + c[i] * dp)
-        eaten = f * dp
-        rate_n = g - eaten
-        if harvest:
-            rate_n = rate_n - hv[i] * dn
-        dy[i] = rate_n * ai
-        dy[n + i] = (e[i] * eaten - m[i] * dp) * ai
+        dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
+
+
+def parameter_block(model, n):
+    """The parameters of ``model`` as the block the compiled code reads, shape (9, n)."""
+    params = model.params
+    block = np.empty((len(PARAMETER_ROWS), n))
+    for row, name in enumerate(PARAMETER_ROWS):
+        block[row] = params.get(name, 0.0)
+    return block
+
+
+def codes(model):
+    """``(growth, response, harvest)`` codes of ``model`` for the compiled code."""
+    return (GROWTH_CODES[model.growth], RESPONSE_CODES[model.response],
+            "prey_harvest" in model.params)
 
 
 def supports(model) -> bool:
@@ -105,13 +134,8 @@ def local_terms_function(model, area):
     """
     area = np.ascontiguousarray(area, dtype=np.float64)
     n = area.size
-    params = model.params
-    block = np.empty((len(PARAMETER_ROWS), n))
-    for row, name in enumerate(PARAMETER_ROWS):
-        block[row] = params.get(name, 0.0)
-    growth = GROWTH_CODES[model.growth]
-    response = RESPONSE_CODES[model.response]
-    harvest = "prey_harvest" in params
+    block = parameter_block(model, n)
+    growth, response, harvest = codes(model)
     terms = _local_terms
 
     def local(y, x):

@@ -1,0 +1,343 @@
+"""Optional compiled code for steps taken again over a region (numba).
+
+:class:`trophoscape.integrate.retake._Region` integrates a region's connected groups, each
+with its own clock and step size, in numpy: every array operation goes over all the groups
+still integrating. This module does the same group by group in one compiled loop, each group
+with its own stages, so a group's step costs what its own components cost, and the groups
+are shared out over the cores (they are independent: each reads the whole step's
+interpolant and writes only its own components).
+
+The method is the numpy one, operation for operation: the Dormand–Prince 5(4) tableau of
+``scipy.integrate.RK45`` and scipy's step-size controller, the error per component, the
+crossings looked for on ``crossings.LOOKS + 1`` points of each accepted step's interpolant
+and narrowed by ``crossings.REFINE`` points per round, every removal at its own moment, the
+census values on the group's interpolant. Sums are taken in another order than numpy's, so
+the two paths agree to rounding, not bit for bit; both are checked against scipy's event
+location in ``tests/test_removals.py``.
+
+Used only with the compiled local terms (``CoupledSystem.local_terms_used == "compiled"``,
+numba installed); the numpy path is the reference and the fallback. This module imports
+numba at import time: :mod:`trophoscape.integrate.retake` imports it only when a retaker
+takes the compiled path.
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+from ..model.compiled import local_one
+
+#: Status codes returned by :func:`run_groups`.
+DONE, NOT_A_NUMBER, TOO_MANY_STEPS = 0, 1, 2
+#: Steps per group before the integration is given up (as the numpy path).
+MAX_STEPS = 100_000
+
+
+def _jit(function):
+    options = dict(error_model="numpy", boundscheck=False, nogil=True)
+    try:
+        return numba.njit(cache=True, parallel=True, **options)(function)
+    except RuntimeError:  # no writable cache folder (numba's words): compile in each process
+        return numba.njit(cache=False, parallel=True, **options)(function)
+
+
+@numba.njit(inline="always", error_model="numpy", boundscheck=False)
+def _interpolant(kind, old, coef, h, row, theta):  # pragma: no cover - compiled
+    """Row ``row`` of the whole step's interpolant at ``theta`` (0 at the step's start):
+    scipy's Runge–Kutta form (kind 0: ``old + h sum_j coef_j theta**(j + 1)``) or its DOP853
+    form (kind 1: factors alternately times ``theta`` and ``1 - theta``)."""
+    terms = coef.shape[1]
+    if kind == 0:
+        acc = coef[row, terms - 1] * theta
+        for j in range(terms - 2, -1, -1):
+            acc += coef[row, j]
+            acc *= theta
+        return h * acc + old[row]
+    y = 0.0
+    for i in range(terms):
+        y += coef[row, i]
+        if i % 2 == 0:
+            y *= theta
+        else:
+            y *= 1.0 - theta
+    return y + old[row]
+
+
+@numba.njit(inline="always", error_model="numpy", boundscheck=False)
+def _own(Q, x, hc, j, pos):  # pragma: no cover - compiled
+    """The group's own interpolant (scipy's RK45 form) of local component ``j`` at ``pos``."""
+    acc = Q[j, 3] * pos
+    for i in range(2, -1, -1):
+        acc += Q[j, i]
+        acc *= pos
+    return hc * acc + x[j]
+
+
+@numba.njit(error_model="numpy", boundscheck=False)
+def _first_fall(Q, x, hc, j, level, armed, looks):  # pragma: no cover - compiled
+    """The first of ``looks + 1`` even points of the step below ``level`` after one at or
+    above it (or ``armed`` at the start); -1 when there is none."""
+    seen = armed or _own(Q, x, hc, j, 0.0) >= level
+    for k in range(1, looks + 1):
+        v = _own(Q, x, hc, j, k / looks)
+        if v < level and seen:
+            return k
+        if v >= level:
+            seen = True
+    return -1
+
+
+@numba.njit(error_model="numpy", boundscheck=False)
+def _crossing(Q, x, hc, j, level, armed, looks, refine, rounds):  # pragma: no cover
+    """Where in the step local component ``j`` first falls through ``level`` (as
+    ``crossings.crossing_positions``)."""
+    first = _first_fall(Q, x, hc, j, level, armed, looks)
+    if first < 0:
+        first = looks
+    lo = max(first - 1, 0) / looks
+    hi = first / looks
+    for _ in range(rounds):
+        chosen = refine - 1
+        for i in range(1, refine):
+            point = lo + (i / refine) * (hi - lo)
+            if _own(Q, x, hc, j, point) < level:
+                chosen = i - 1
+                break
+        new_hi = hi
+        if chosen < refine - 1:
+            new_hi = lo + ((chosen + 1) / refine) * (hi - lo)
+        if chosen > 0:
+            lo = lo + (chosen / refine) * (hi - lo)
+        hi = new_hi
+    return hi
+
+
+@numba.njit(error_model="numpy", boundscheck=False)
+def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
+                w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old,
+                o_coef, o_h, sends, s_old, s_coef, growth, response, harvest, area,
+                block):  # pragma: no cover
+    """The derivative of group ``[b, b + s)`` (both species; local order prey then
+    predator) at time ``t`` and state ``xs``, and what it sends minus the step's course.
+
+    The immigrants from outside are one polynomial per component (``p_old``, ``p_coef``:
+    the sources that stay positive over the whole step, summed) plus the links from the
+    others (``i_ptr, i_src, i_rate``), each clipped at zero."""
+    theta = (t - t0) / span
+    for j in range(2 * s):
+        v = xs[j]
+        xc[j] = 0.0 if v < 0.0 else v  # keeps a NaN, as np.maximum does
+    for i in range(s):
+        out[i], out[s + i] = local_one(growth, response, harvest, xc[i], xc[s + i],
+                                       area[b + i], block, b + i)
+    for j in range(2 * s):
+        c = b + j if j < s else m + b + (j - s)
+        within = 0.0
+        for k in range(w_ptr[c], w_ptr[c + 1]):
+            col = w_idx[k]
+            local = col - b if col < m else col - m - b + s
+            within += w_val[k] * xc[local]
+        inflow = _interpolant(o_kind, p_old, p_coef, o_h, c, theta)
+        for k in range(i_ptr[c], i_ptr[c + 1]):
+            v = _interpolant(o_kind, o_old, o_coef, o_h, i_src[k], theta)
+            inflow += i_rate[k] * (0.0 if v < 0.0 else v)
+        out[j] = out[j] + within + inflow
+        if sends:
+            v = _interpolant(o_kind, s_old, s_coef, o_h, c, theta)
+            gout[j] = xc[j] - (0.0 if v < 0.0 else v)
+
+
+@_jit
+def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
+               w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old, o_coef, o_h,
+               sends, s_old, s_coef, growth, response, harvest, area, block,
+               census, census_out, counts, held, A, B, C, E, P,
+               safety, min_factor, max_factor, exponent, near, looks, refine, rounds,
+               status, evaluations):  # pragma: no cover - compiled
+    """Integrate every group of a region over the step ``t0 -> t0 + span``.
+
+    ``x``, ``q`` (the region's state and what it sent, minus the step's course), ``counts``,
+    ``held``, ``census_out`` (census values, ``(len(census), 2 m)``), ``status`` and
+    ``evaluations`` (per group) are written in place; the components of group ``g`` are
+    ``starts[g]:starts[g + 1]`` and the same plus ``m``.
+    """
+    groups = starts.size - 1
+    stages = B.size
+    t1 = t0 + span
+    tiny = 1e-12 * span
+    for g in numba.prange(groups):
+        b = starts[g]
+        s = starts[g + 1] - b
+        size = 2 * s
+        xl = np.empty(size)
+        ql = np.empty(size)
+        armed = np.empty(size, dtype=np.bool_)
+        for j in range(size):
+            c = b + j if j < s else m + b + (j - s)
+            xl[j] = x[c]
+            ql[j] = q[c]
+            armed[j] = armed_in[c]
+        K = np.empty((stages + 1, size))
+        G = np.empty((stages + 1, size))
+        xs = np.empty(size)
+        x_new = np.empty(size)
+        xc = np.empty(size)
+        Q = np.empty((size, 4))
+        crossed = np.zeros(size, dtype=np.bool_)
+        where = np.empty(size)
+        t = t0
+        h = span
+        rejected = False
+        stale = True
+        next_census = 0
+        outcome = TOO_MANY_STEPS
+        for _ in range(MAX_STEPS):
+            if not t < t1 - tiny:
+                outcome = DONE
+                break
+            step = min(h, t1 - t)
+            if t1 - (t + step) <= tiny:
+                step = t1 - t
+            hc = step
+            if stale:
+                _derivative(b, s, m, t, t0, span, xl, K[0], G[0], xc, w_ptr, w_idx, w_val,
+                            p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old, o_coef, o_h, sends, s_old,
+                            s_coef, growth, response, harvest, area, block)
+                evaluations[g] += size
+                stale = False
+            for st in range(1, stages):
+                for j in range(size):
+                    acc = 0.0
+                    for l in range(st):
+                        acc += K[l, j] * A[st, l]
+                    xs[j] = xl[j] + acc * hc
+                _derivative(b, s, m, t + C[st] * step, t0, span, xs, K[st], G[st], xc,
+                            w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind,
+                            o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest, area, block)
+                evaluations[g] += size
+            for j in range(size):
+                acc = 0.0
+                for l in range(stages):
+                    acc += K[l, j] * B[l]
+                x_new[j] = xl[j] + hc * acc
+            _derivative(b, s, m, t + step, t0, span, x_new, K[stages], G[stages], xc,
+                        w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind,
+                        o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest, area, block)
+            evaluations[g] += size
+            err = 0.0
+            for j in range(size):
+                acc = 0.0
+                for l in range(stages + 1):
+                    acc += K[l, j] * E[l]
+                scale = atol + rtol * max(abs(xl[j]), abs(x_new[j]))
+                e = abs(hc * acc) / scale
+                if e != e:  # NaN (0/0 where atol = 0)
+                    err = np.inf
+                elif e > err:
+                    err = e
+            if not np.isfinite(err) and step <= tiny:
+                outcome = NOT_A_NUMBER
+                break
+            accept = err < 1.0 or step <= tiny
+            factor = safety * max(err, 1e-30) ** exponent
+            grow = min(max_factor, factor)
+            shrink = max(min_factor, min(1.0, factor))
+            if rejected:
+                grow = min(1.0, grow)
+            if accept:
+                h = step * grow
+                rejected = False
+            else:
+                h = step * shrink
+                rejected = True
+                continue
+            # the accepted step's own interpolant, x + h sum_j Q_j pos**(j + 1)
+            for j in range(size):
+                for i in range(4):
+                    acc = 0.0
+                    for l in range(stages + 1):
+                        acc += K[l, j] * P[l, i]
+                    Q[j, i] = acc
+            cut = np.inf
+            for j in range(size):
+                crossed[j] = False
+                if armed[j] and x_new[j] < level:
+                    crossed[j] = True
+                elif (min(xl[j], x_new[j]) < (1.0 + near) * level
+                      and max(xl[j], x_new[j]) > (1.0 - near) * level):
+                    crossed[j] = _first_fall(Q, xl, hc, j, level, armed[j], looks) >= 0
+                if crossed[j]:
+                    where[j] = _crossing(Q, xl, hc, j, level, armed[j], looks, refine, rounds)
+                    if where[j] < cut:
+                        cut = where[j]
+            cut_here = np.isfinite(cut)
+            end = t + (cut if cut_here else 1.0) * step
+            # census times the step passes (one at a crossing: after the removal)
+            passed = next_census
+            while passed < census.size and (census[passed] < end
+                                            or (not cut_here and census[passed] == end)):
+                passed += 1
+            for k in range(next_census, passed):
+                pos = (census[k] - t) / (hc if hc > 0 else 1.0)
+                pos = min(max(pos, 0.0), 1.0)
+                for j in range(size):
+                    c = b + j if j < s else m + b + (j - s)
+                    census_out[k, c] = _own(Q, xl, hc, j, pos)
+            next_census = passed
+            if not cut_here:
+                for j in range(size):
+                    xl[j] = x_new[j]
+                    K[0, j] = K[stages, j]
+                    if sends:
+                        acc = 0.0
+                        for l in range(stages):
+                            acc += G[l, j] * B[l]
+                        ql[j] = ql[j] + hc * acc
+                        G[0, j] = G[stages, j]
+            else:
+                for j in range(size):
+                    y_cut = _own(Q, xl, hc, j, cut)
+                    falling = (armed[j] and y_cut < level) or (crossed[j] and where[j] == cut)
+                    if sends:  # the quadrature on its own interpolant
+                        acc = 0.0
+                        for i in range(3, -1, -1):
+                            coefficient = 0.0
+                            for l in range(stages + 1):
+                                coefficient += G[l, j] * P[l, i]
+                            acc = (acc + coefficient) * cut if i < 3 else coefficient * cut
+                        ql[j] = hc * acc + ql[j]
+                    if falling:
+                        c = b + j if j < s else m + b + (j - s)
+                        counts[c] += 1
+                        held[c] += y_cut
+                        y_cut = 0.0
+                    xl[j] = y_cut
+                stale = True
+            for j in range(size):
+                armed[j] = xl[j] >= level
+            t = end
+        status[g] = outcome
+        for j in range(size):
+            c = b + j if j < s else m + b + (j - s)
+            x[c] = xl[j]
+            q[c] = ql[j]
+
+
+@numba.njit(cache=True, error_model="numpy", boundscheck=False, nogil=True)
+def gather(indptr, indices, data, rows):  # pragma: no cover - compiled
+    """As ``retake._gather``: the entries of a CSR matrix in ``rows``, row by row."""
+    total = 0
+    for r in range(rows.size):
+        total += indptr[rows[r] + 1] - indptr[rows[r]]
+    row = np.empty(total, dtype=np.int64)
+    col = np.empty(total, dtype=indices.dtype)
+    value = np.empty(total, dtype=data.dtype)
+    k = 0
+    for r in range(rows.size):
+        for e in range(indptr[rows[r]], indptr[rows[r] + 1]):
+            row[k] = r
+            col[k] = indices[e]
+            value[k] = data[e]
+            k += 1
+    return row, col, value
