@@ -424,3 +424,31 @@ def test_a_corridor_map_on_a_shared_canvas_is_the_same_map(patches, tmp_path):
     with pytest.raises(ValueError, match="other patches"):
         plot.corridor_map(patches, candidates, "v", path=tmp_path / "c.png",
                           canvas=plot.MapCanvas(patches.iloc[:3]))
+
+
+def test_a_map_of_many_classes_colours_the_largest_and_groups_the_rest(tmp_path, monkeypatch):
+    # 300 synchrony-like groups: the legend names the 19 largest and one entry for the rest
+    # (a legend of 300 entries took most of a 100,000-patch report's drawing time)
+    from matplotlib.figure import Figure
+
+    from trophoscape.report.figures import MAX_CLASSES, patch_map
+    from trophoscape.testing import grid_landscape
+
+    land = grid_landscape(20, 20, spacing_km=1.5, size_km=1.0)
+    frame = land.frame[["patch_id", "geometry"]].copy()
+    groups = np.arange(400) % 300  # groups 0-99 hold two patches, 100-299 one
+    frame["group"] = [f"group {g}" for g in groups]
+    seen = {}
+    legend = Figure.legend
+
+    def spy(self, *args, **kwargs):
+        seen["labels"] = [h.get_label() for h in kwargs["handles"]]
+        return legend(self, *args, **kwargs)
+
+    monkeypatch.setattr(Figure, "legend", spy)
+    patch_map(frame, "group", path=tmp_path / "g.png", categorical=True)
+    labels = seen["labels"]
+    assert len(labels) == MAX_CLASSES
+    assert labels[-1] == "281 more, each smaller"
+    # the coloured ones are among the largest (two patches each), by name
+    assert labels[:-1] == sorted(f"group {g}" for g in range(100))[:MAX_CLASSES - 1]

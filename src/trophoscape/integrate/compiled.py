@@ -89,12 +89,10 @@ def _first_fall(Q, x, hc, j, level, armed, looks):  # pragma: no cover - compile
 
 
 @numba.njit(error_model="numpy", boundscheck=False)
-def _crossing(Q, x, hc, j, level, armed, looks, refine, rounds):  # pragma: no cover
-    """Where in the step local component ``j`` first falls through ``level`` (as
-    ``crossings.crossing_positions``)."""
-    first = _first_fall(Q, x, hc, j, level, armed, looks)
-    if first < 0:
-        first = looks
+def _crossing(Q, x, hc, j, level, first, looks, refine, rounds):  # pragma: no cover
+    """Where in the step local component ``j`` first falls through ``level``, given the
+    first of the even points below it (``first``, from :func:`_first_fall`), as
+    ``crossings.crossing_positions``."""
     lo = max(first - 1, 0) / looks
     hi = first / looks
     for _ in range(rounds):
@@ -186,6 +184,7 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
         Q = np.empty((size, 4))
         crossed = np.zeros(size, dtype=np.bool_)
         where = np.empty(size)
+        fall = np.empty(size, dtype=np.int64)
         t = t0
         h = span
         rejected = False
@@ -260,17 +259,31 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
                         acc += K[l, j] * P[l, i]
                     Q[j, i] = acc
             cut = np.inf
+            any_crossed = False
             for j in range(size):
                 crossed[j] = False
+                where[j] = np.inf
                 if armed[j] and x_new[j] < level:
                     crossed[j] = True
+                    f = _first_fall(Q, xl, hc, j, level, armed[j], looks)
+                    fall[j] = f if f >= 0 else looks
                 elif (min(xl[j], x_new[j]) < (1.0 + near) * level
                       and max(xl[j], x_new[j]) > (1.0 - near) * level):
-                    crossed[j] = _first_fall(Q, xl, hc, j, level, armed[j], looks) >= 0
-                if crossed[j]:
-                    where[j] = _crossing(Q, xl, hc, j, level, armed[j], looks, refine, rounds)
-                    if where[j] < cut:
-                        cut = where[j]
+                    fall[j] = _first_fall(Q, xl, hc, j, level, armed[j], looks)
+                    crossed[j] = fall[j] >= 0
+                any_crossed = any_crossed or crossed[j]
+            # the first crossing, found by narrowing only the brackets that can hold it: a
+            # bracket that starts at or after a crossing found has none before it (the
+            # others keep where = inf; they are found again from the step's new start)
+            if any_crossed:
+                for k in range(1, looks + 1):
+                    if (k - 1) / looks >= cut:
+                        break
+                    for j in range(size):
+                        if crossed[j] and fall[j] == k:
+                            where[j] = _crossing(Q, xl, hc, j, level, k, looks, refine, rounds)
+                            if where[j] < cut:
+                                cut = where[j]
             cut_here = np.isfinite(cut)
             end = t + (cut if cut_here else 1.0) * step
             # census times the step passes (one at a crossing: after the removal)

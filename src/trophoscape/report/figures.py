@@ -39,6 +39,10 @@ OKABE_ITO = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#F0E442", "#56B4E9", "
 PREY_STYLE = {"color": "#0072B2", "linestyle": "-"}
 PREDATOR_STYLE = {"color": "#D55E00", "linestyle": "--"}
 NO_VALUE_COLOUR = "#c8c8c8"
+#: A map of classes colours at most this many: beyond it, the largest ``MAX_CLASSES - 1``
+#: and the others together in :data:`OTHER_CLASSES_COLOUR`.
+MAX_CLASSES = 20
+OTHER_CLASSES_COLOUR = "#505050"
 LINK_COLOUR = "#9a9a9a"
 MAX_PANELS = 6
 
@@ -158,14 +162,27 @@ def patch_map(patches, column, *, path, links=None, title=None, label=None, cmap
         import pandas as pd
 
         text = values[~missing].astype(str)
-        classes = sorted(set(text))
+        counts = text.value_counts()
+        classes = sorted(counts.index)
+        others = 0
+        if len(classes) > MAX_CLASSES:
+            # the largest classes (most patches; ties by name) get their own colours, the
+            # others one colour together: a legend of hundreds of classes is unreadable,
+            # and slow to draw
+            largest = sorted(classes, key=lambda c: (-int(counts[c]), c))[:MAX_CLASSES - 1]
+            others = len(classes) - len(largest)
+            classes = sorted(largest)
         palette = _class_palette(len(classes))
         lookup = {c: palette[i] for i, c in enumerate(classes)}
         if classes:
-            codes = pd.Categorical(text, categories=classes).codes
-            colours[np.flatnonzero(~missing)] = np.asarray(palette, dtype=float)[codes]
+            codes = pd.Index(classes).get_indexer(text)  # -1 for the others
+            table = np.vstack([np.asarray(palette, dtype=float), _rgba(OTHER_CLASSES_COLOUR)])
+            colours[np.flatnonzero(~missing)] = table[codes]  # code -1: the last row
         handles += [Patch(facecolor=lookup[c], edgecolor="0.3", label=_literal(c))
                     for c in classes]
+        if others:
+            handles.append(Patch(facecolor=OTHER_CLASSES_COLOUR, edgecolor="0.3",
+                                 label=f"{others} more, each smaller"))
     else:
         import matplotlib
 
@@ -419,8 +436,6 @@ class MapCanvas:
         top)."""
         if self._grid is None:
             import shapely
-            from rasterio import features
-            from rasterio.transform import from_origin
 
             x0, y0, x1, y1 = _bounds(self.geoms)
             cell = max(x1 - x0, y1 - y0, 1.0) / RASTER_CELLS
@@ -436,8 +451,7 @@ class MapCanvas:
                                   & ~shapely.is_empty(self.geoms))
             labels = np.zeros((height, width), dtype=np.int32)
             if keep.size:
-                features.rasterize(zip(self.geoms[keep], (keep + 1).tolist()), out=labels,
-                                   transform=from_origin(x0, y1, cell, cell))
+                _burn(labels, self.geoms[keep], keep + 1, x0, y1, cell)
                 # a patch smaller than a cell, holding no cell centre, takes the cell of a
                 # point inside it where no other patch does
                 shown = np.bincount(labels.ravel(), minlength=len(self.geoms) + 1)[1:] > 0
@@ -486,6 +500,39 @@ class MapCanvas:
         ax.add_collection(PathCollection(self.paths(), facecolors=colours,
                                          edgecolors="#404040", linewidths=0.35, zorder=2))
         return self.links is not None
+
+
+def _burn(labels, geoms, values, x0, y1, cell):
+    """Write ``values`` into the cells of ``labels`` whose centre lies inside each of
+    ``geoms`` (the grid's top left corner at ``x0, y1``, square cells of ``cell`` metres);
+    where polygons overlap, the largest value (with increasing values, the later polygon's,
+    as GDAL's rasterisation burns them).
+
+    Every polygon is tested at the cell centres within its bounding box, all in one
+    vectorised call of shapely's point-in-polygon test.
+    """
+    import shapely
+
+    height, width = labels.shape
+    box = shapely.bounds(geoms)  # (minx, miny, maxx, maxy) per polygon
+    col0 = np.clip(np.ceil((box[:, 0] - x0) / cell - 0.5), 0, width).astype(np.int64)
+    col1 = np.clip(np.floor((box[:, 2] - x0) / cell - 0.5), -1, width - 1).astype(np.int64)
+    row0 = np.clip(np.ceil((y1 - box[:, 3]) / cell - 0.5), 0, height).astype(np.int64)
+    row1 = np.clip(np.floor((y1 - box[:, 1]) / cell - 0.5), -1, height - 1).astype(np.int64)
+    cols = np.maximum(col1 - col0 + 1, 0)
+    rows = np.maximum(row1 - row0 + 1, 0)
+    count = cols * rows  # cell centres within each bounding box
+    owner = np.repeat(np.arange(len(geoms)), count)
+    k = np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count)
+    row = row0[owner] + k // cols[owner]
+    col = col0[owner] + k % cols[owner]
+    shapely.prepare(geoms)
+    try:
+        inside = shapely.contains_xy(geoms[owner], x0 + (col + 0.5) * cell,
+                                     y1 - (row + 0.5) * cell)
+    finally:
+        shapely.destroy_prepared(geoms)
+    np.maximum.at(labels, (row[inside], col[inside]), np.asarray(values)[owner[inside]])
 
 
 def _canvas_for(patches, links, canvas):
