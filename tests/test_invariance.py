@@ -75,12 +75,11 @@ def test_one_cycling_patch_among_2000_quiet_ones_keeps_its_accuracy(monkeypatch,
         assert big.stats.restarts == 0
         assert _relative_error(big_xy, lone_xy) < 1e-9
     else:
-        # consistency test: taken again at its own steps (by the Dormand–Prince pair, whatever
-        # the method), it is no further from the patch alone than twice the lone run's own
-        # error against scipy (measured: 1.7e-6 with RK45, 1.5e-4 with RK23)
+        # taken again at its own steps (by the Dormand–Prince pair, whatever the method), it
+        # is as accurate against scipy as the patch alone, within a factor of 3 (measured:
+        # 0.89 with RK45, 2.1 with DOP853, 0.81 with RK23)
         assert big.stats.restarts > 0
-        lone_error = _relative_error(lone_xy, ref)
-        assert _relative_error(big_xy, lone_xy) <= 2.0 * lone_error
+        assert _relative_error(big_xy, ref) <= 3.0 * _relative_error(lone_xy, ref)
 
 
 def test_stock_rms_norm_would_dilute_the_error():
@@ -313,3 +312,25 @@ def test_demo_results_do_not_depend_on_the_solver(demo_scenario, method):
             ok = ~np.isnan(a)
             np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
             assert np.max(np.abs(a[ok] - b[ok]), initial=0.0) <= 1e-3, f"{s}_{c}"
+
+
+def test_a_spared_patch_beside_patches_with_no_error_keeps_the_step_near_its_own():
+    # (from a review) beside quiet patches at an exact steady state the error of every other
+    # patch is 0, and a step that spares the cycling patch grew tenfold a step to the whole
+    # run, leaving its region to integrate the whole run at once (which failed on longer
+    # runs). The step is now held within about ode.SPARE_STEPS of what the spared patch
+    # needs; the patch still meets scipy's solve_ivp (DOP853, 1e-12).
+    from trophoscape.integrate import ode
+
+    duration = 60.0
+    lone_system, lone_y0 = _mixed_system(0)
+    lone = simulate(lone_system, lone_y0, duration=duration, census_interval=0.5,
+                    extinction_abundance=0.0)
+    big_system, big_y0 = _mixed_system(1000)  # 1,001 patches: one spared
+    big = simulate(big_system, big_y0, duration=duration, census_interval=0.5,
+                   extinction_abundance=0.0)
+    assert int(ode.SPARE_SHARE * 1001) == 1 and big.stats.restarts > 0
+    assert big.stats.steps >= lone.stats.steps / (2.0 * ode.SPARE_STEPS)
+    ref = _reference(duration, lone.time)
+    big_xy = [big[s].values[:, 0] for s in ("prey", "predator")]
+    assert _relative_error(big_xy, ref) < 0.01

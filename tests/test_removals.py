@@ -403,3 +403,32 @@ def test_compiled_and_numpy_regions_agree(monkeypatch):
     for name in ("prey", "predator"):
         want = runs[0][name].values
         assert np.max(np.abs(runs[1][name].values - want) / (1e-8 + 1e-6 * np.abs(want))) <= 2.0
+
+
+def test_links_stored_with_a_zero_rate_are_no_links(monkeypatch):
+    # (from a review) a movement operator may store arcs with a zero rate (no individual
+    # arrives alive: survival_per_km = 0); the regions' groups know no such link, and the
+    # compiled path read another group's values through them. Both paths must meet scipy's
+    # event restarts (here: unlinked declining predators).
+    from trophoscape.model.network import build_network, movement_operator
+    from trophoscape.testing import grid_landscape
+
+    land = grid_landscape(4, 4, spacing_km=1.0, size_km=0.5)
+    movement = movement_operator(build_network(land, kernel="exponential",
+                                               max_distance_km=1.6),
+                                 emigration_rate=0.3, scale_km=1.0, survival_per_km=0.0)
+    assert (movement.data == 0).sum() > 0  # zeros stored
+    n = movement.shape[0]
+    model = make_model(n=n, growth="exponential", growth_rate=0.0)
+    model.params["mortality"][:] = np.linspace(0.3, 1.0, n)
+    y0 = np.concatenate([np.zeros(n), np.linspace(5.0, 40.0, n)])
+    system = CoupledSystem(model=model, area_km2=np.ones(n), prey_movement=movement,
+                           predator_movement=movement)
+    times = np.linspace(0.0, 6.0, 13)
+    reference, crossings = _scipy_removals(system, y0, 6.0, times)
+    for variant in (None, "compiled"):
+        s = system if variant is None else _as(system, variant, monkeypatch)
+        run = simulate(s, y0, duration=6.0, census_interval=0.5, extinction_abundance=LEVEL)
+        got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
+        assert sum(run.stats.removals) == len(crossings)
+        assert np.max(np.abs(got - reference)) <= 1e-4

@@ -70,28 +70,32 @@ class _MaxNormRK:
 def _spared(solver, err) -> float:
     """The error norm of a step in which up to ``solver.spare`` patches may miss the
     tolerance: the largest scaled error of the others (the ``spare + 1``-th largest of the
-    patches' errors, both species of a patch together). The patches over the tolerance are
-    left in ``solver.over``; a step accepted with some is taken again over them.
+    patches' errors, both species of a patch together), and at least the largest divided by
+    :data:`SPARE_STEPS` ``** (order + 1)``, so that the step stays within about
+    ``SPARE_STEPS`` steps of what the spared patches need (beside patches with no error at
+    all it would grow to the whole run). The patches over the tolerance are left in
+    ``solver.over``; a step accepted with some is taken again over them.
     """
     if not solver.spare:
         return float(err.max(initial=0.0))
     per = err.reshape(2, -1).max(axis=0)
     worst = float(per.max(initial=0.0))
-    if not worst >= 1.0:  # (a NaN is returned as it is: the step is rejected)
-        solver.over = np.empty(0, dtype=np.int64)
+    if not worst >= 1.0:  # every patch meets the tolerance (a NaN is returned as it is: the
+        solver.over = np.empty(0, dtype=np.int64)  # step is rejected)
         return worst
     over = np.flatnonzero(per >= 1.0)
     spare = solver.spare
-    if over.size > spare:  # rejected: the (spare + 1)-th largest is among them
-        solver.over = over
-        return float(np.partition(per[over], over.size - spare - 1)[over.size - spare - 1])
     solver.over = over
+    floor = worst / SPARE_STEPS ** (solver.error_estimator_order + 1)
+    if over.size > spare:  # rejected: the (spare + 1)-th largest is among them
+        return max(floor, float(np.partition(per[over], over.size - spare - 1)
+                                [over.size - spare - 1]))
     # the (spare + 1)-th largest: among the errors of at least 1e-2 when there are enough
     # of those (one pass over the network), else among all
     some = per[per >= 1e-2]
     if some.size <= spare:
         some = per
-    return float(np.partition(some, some.size - spare - 1)[some.size - spare - 1])
+    return max(floor, float(np.partition(some, some.size - spare - 1)[some.size - spare - 1]))
 
 
 class RK23(_MaxNormRK, si.RK23):
@@ -144,6 +148,9 @@ MAX_NORM = ("RK23", "RK45", "DOP853")
 #: (:mod:`trophoscape.integrate.retake`), so one fast patch no longer sets the step of all.
 #: Below ``1 / SPARE_SHARE`` patches no patch is spared.
 SPARE_SHARE = 1e-3
+#: A step that spares patches is at most about this many times the step they need: their
+#: largest error counts, divided by ``SPARE_STEPS ** (order + 1)``.
+SPARE_STEPS = 10.0
 #: Methods that take the sparse analytic Jacobian.
 IMPLICIT = ("Radau", "BDF")
 
@@ -454,7 +461,7 @@ def simulate(
 
     def user_order(v):
         return system.to_user(v) if internal else v
-    spare = int(SPARE_SHARE * n) if method in MAX_NORM else 0
+    spare = min(int(SPARE_SHARE * n), n - 1) if method in MAX_NORM else 0
     totals = dict(nfev=0, njev=0, nlu=0)
     local_evaluations = 0.0  # of steps taken again over regions, in whole-network evaluations
     steps = restarts = 0

@@ -301,6 +301,10 @@ class _Region:
         position[comps] = np.arange(2 * m)
         # the region's rows of the movement operator: links within it, and in from outside
         row, col, rate = retaker._gather(retaker.movement, comps)  # in the order of the rows
+        # entries stored with a zero rate are no links (the groups, from self.links, know
+        # none of them; movement_operator stores zeros where no individual arrives alive)
+        nonzero = rate != 0
+        row, col, rate = row[nonzero], col[nonzero], rate[nonzero]
         local = position[col]
         inside = local >= 0
         indptr = np.r_[0, np.cumsum(np.bincount(row[inside], minlength=2 * m))]
@@ -369,8 +373,8 @@ class _Region:
         if np.any(status == module.NOT_A_NUMBER):
             raise RunError(_NOT_A_NUMBER.format(time=self.t0))
         if np.any(status != module.DONE):  # pragma: no cover
-            raise RunError("the regional integration of a step with removals did not reach "
-                           f"the step's end (time {self.t0 + self.span:.6g})")
+            raise RunError("the integration of a step taken again over a region did not "
+                           f"reach the step's end (time {self.t0 + self.span:.6g})")
 
     # ------------------------------------------------------------------------------------
     def _focus(self, keep):
@@ -583,16 +587,16 @@ class _Region:
             armed = np.where(acc, x >= level, armed)
             t = np.where(accept, end, t)
         else:  # pragma: no cover
-            raise RunError("the regional integration of a step with removals did not reach "
-                           f"the step's end (time {t1:.6g})")
+            raise RunError("the integration of a step taken again over a region did not "
+                           f"reach the step's end (time {t1:.6g})")
         self.x[self.index] = x
         self.q[self.index] = q
 
 
-_NOT_A_NUMBER = ("the error estimate is not a number near time {time:.6g} (a step with "
-                 "removals, taken again): abundances became non-finite, or a population at "
-                 "zero has no error scale (atol = 0); use atol > 0 and check for explosive "
-                 "growth")
+_NOT_A_NUMBER = ("the error estimate is not a number near time {time:.6g} (a step taken "
+                 "again over a region, for removals or patches over the tolerance): "
+                 "abundances became non-finite, or a population at zero has no error scale "
+                 "(atol = 0); use atol > 0 and check for explosive growth")
 
 
 def _coefficients(dense, index):
