@@ -4,8 +4,9 @@ synthetic study of N patches, census every 0.5.
 
 It builds the study as ``bench_run`` does (``common.write_study_inputs``, then
 ``load_study``) and calls ``simulate`` directly, so only the integration is timed. Printed
-per run: wall time, RHS evaluations, steps, restarts (every restart is a removal since the
-census restarts nothing), removals per species, and peak memory of the process.
+per run: wall time, RHS evaluations, steps, restarts (steps taken again over a region, for
+removals or, from 1,000 patches, for the patches a step left over the tolerance; the census
+restarts nothing), removals per species, and peak memory of the process.
 
     OPENBLAS_NUM_THREADS=1 PYTHONPATH=src python benchmarks/bench_removals.py 10000 20
     OPENBLAS_NUM_THREADS=1 PYTHONPATH=src python benchmarks/bench_removals.py 100000 2
