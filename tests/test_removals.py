@@ -216,15 +216,18 @@ def _side_by_side(copies):
     return big, z0, system, starts, duration
 
 
-def test_networks_side_by_side_each_meet_scipys_event_restarts():
+@pytest.mark.parametrize("variant", [None, "compiled", "spared"])
+def test_networks_side_by_side_each_meet_scipys_event_restarts(monkeypatch, variant):
     # Three unlinked networks in one run crash at different times, so a solver step holds
     # removals in several of them: each is taken again with its own clock and step size, and
-    # each must meet scipy's event restarts of that network alone.
+    # each must meet scipy's event restarts of that network alone (also by the other paths
+    # of the step taken again, see _as below).
     big, z0, system, starts, duration = _side_by_side(3)
     n = system.n_patches
     times = np.linspace(0.0, duration, 41)
-    run = simulate(big, z0, duration=duration, census_interval=duration / 40,
-                   extinction_abundance=LEVEL, rtol=1e-6, atol=1e-8)
+    run = simulate(_as(big, variant, monkeypatch), z0, duration=duration,
+                   census_interval=duration / 40, extinction_abundance=LEVEL, rtol=1e-6,
+                   atol=1e-8)
     total = 0
     for c, start in enumerate(starts):
         reference, crossings = _scipy_removals(system, start, duration, times)
@@ -291,7 +294,9 @@ def test_many_census_times_within_steps_with_removals():
 
 
 def _as(system, variant, monkeypatch):
-    """``system`` for ``variant`` ("compiled" or "spared"; see above)."""
+    """``system`` for ``variant`` ("compiled" or "spared"; see above; None: as it is)."""
+    if variant is None:
+        return system
     if variant == "spared":
         from trophoscape.integrate import ode
 
@@ -336,25 +341,6 @@ def test_other_paths_with_fast_dispersal_and_a_fine_census(monkeypatch, variant)
     got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
     assert sum(run.stats.removals) == len(crossings)
     assert np.max(np.abs(got - reference)) <= 1e-4
-
-
-@pytest.mark.parametrize("variant", VARIANTS)
-def test_other_paths_for_networks_side_by_side(monkeypatch, variant):
-    # groups with their own clocks (three unlinked networks), each against scipy alone
-    big, z0, system, starts, duration = _side_by_side(3)
-    n = system.n_patches
-    times = np.linspace(0.0, duration, 41)
-    run = simulate(_as(big, variant, monkeypatch), z0, duration=duration,
-                   census_interval=duration / 40, extinction_abundance=LEVEL, rtol=1e-6,
-                   atol=1e-8)
-    total = 0
-    for c, start in enumerate(starts):
-        reference, crossings = _scipy_removals(system, start, duration, times)
-        total += len(crossings)
-        got = np.concatenate([run["prey"].values[:, c * n:(c + 1) * n],
-                              run["predator"].values[:, c * n:(c + 1) * n]], axis=1)
-        assert np.max(np.abs(got - reference)) <= 1e-4
-    assert sum(run.stats.removals) == total
 
 
 def test_the_other_species_case_by_the_compiled_path(monkeypatch):
