@@ -208,3 +208,15 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
     # logistic r n (1 - n/K) - a n p / (1 + a h n) with every parameter 1, n = 0..2, p = 3..5
     n, p = np.arange(3.0), np.arange(3.0, 6.0)
     np.testing.assert_allclose(eval(values)[:3], n * (1 - n) - n * p / (1 + n))
+    # the same for the compiled integration of regions (trophoscape.integrate.compiled)
+    code = ("import numpy as np, scipy.sparse as sp; "
+            "from trophoscape.integrate import compiled as c; "
+            "m = sp.csr_array(np.array([[0., 2.], [3., 0.]])); "
+            "r = c.gather(m.indptr, m.indices, m.data, np.array([1, 0])); "
+            "print(c.run_groups._cache.__class__.__name__, c.gather._cache.__class__.__name__, "
+            "[a.tolist() for a in r])")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
+    assert out.returncode == 0, out.stderr
+    first, second, values = out.stdout.split(" ", 2)
+    assert first == second == "NullCache"
+    assert eval(values) == [[0, 1], [0, 1], [3.0, 2.0]]

@@ -34,12 +34,16 @@ DONE, NOT_A_NUMBER, TOO_MANY_STEPS = 0, 1, 2
 MAX_STEPS = 100_000
 
 
-def _jit(function):
-    options = dict(error_model="numpy", boundscheck=False, nogil=True)
+def _jit(function=None, *, parallel=True):
+    """Compiled with numba, cached on disk when a folder for it is writable (else compiled
+    in each process, as :mod:`trophoscape.model.compiled`)."""
+    if function is None:
+        return lambda f: _jit(f, parallel=parallel)
+    options = dict(error_model="numpy", boundscheck=False, nogil=True, parallel=parallel)
     try:
-        return numba.njit(cache=True, parallel=True, **options)(function)
+        return numba.njit(cache=True, **options)(function)
     except RuntimeError:  # no writable cache folder (numba's words): compile in each process
-        return numba.njit(cache=False, parallel=True, **options)(function)
+        return numba.njit(cache=False, **options)(function)
 
 
 @numba.njit(inline="always", error_model="numpy", boundscheck=False)
@@ -337,7 +341,7 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
             q[c] = ql[j]
 
 
-@numba.njit(cache=True, error_model="numpy", boundscheck=False, nogil=True)
+@_jit(parallel=False)
 def gather(indptr, indices, data, rows):  # pragma: no cover - compiled
     """As ``retake._gather``: the entries of a CSR matrix in ``rows``, row by row."""
     total = 0
