@@ -220,3 +220,36 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
     first, second, values = out.stdout.split(" ", 2)
     assert first == second == "NullCache"
     assert eval(values) == [[0, 1], [0, 1], [3.0, 2.0]]
+
+
+def test_compiled_regions_from_several_threads_at_once():
+    # numba's default thread pool (workqueue) ends the process when two Python threads
+    # enter a parallel kernel at once (numba's documentation, "The Threading Layers"); the
+    # compiled regions take turns, so four threads simulating at once finish, each with the
+    # same removals. In a subprocess: without the turns the whole process is aborted.
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    tests = Path(__file__).resolve().parent
+    code = (
+        "import sys, threading; sys.path.insert(0, %r)\n"
+        "import test_removals as T\n"
+        "from trophoscape.model.system import CoupledSystem\n"
+        "from trophoscape.integrate.ode import simulate\n"
+        "big, z0, *_, d = T._side_by_side(60)\n"
+        "c = CoupledSystem(model=big.model, area_km2=big.area_km2, "
+        "prey_movement=big.prey_movement, predator_movement=big.predator_movement, "
+        "local_terms='compiled')\n"
+        "out = {}\n"
+        "def work(k):\n"
+        "    out[k] = simulate(c, z0, duration=d, census_interval=0.25).stats.removals\n"
+        "threads = [threading.Thread(target=work, args=(k,)) for k in range(4)]\n"
+        "[t.start() for t in threads]; [t.join() for t in threads]\n"
+        "print(len(set(out.values())), len(out))\n" % str(tests))
+    env = dict(os.environ, NUMBA_THREADING_LAYER="workqueue", NUMBA_NUM_THREADS="2")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env,
+                         timeout=600)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.split() == ["1", "4"]

@@ -205,8 +205,8 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
             hc = step
             if stale:
                 _derivative(b, s, m, t, t0, span, xl, K[0], G[0], xc, w_ptr, w_idx, w_val,
-                            p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old, o_coef, o_h, sends, s_old,
-                            s_coef, growth, response, harvest, area, block)
+                            p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old, o_coef, o_h,
+                            sends, s_old, s_coef, growth, response, harvest, area, block)
                 evaluations[g] += size
                 stale = False
             for st in range(1, stages):
@@ -217,7 +217,8 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
                     xs[j] = xl[j] + acc * hc
                 _derivative(b, s, m, t + C[st] * step, t0, span, xs, K[st], G[st], xc,
                             w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind,
-                            o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest, area, block)
+                            o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest,
+                            area, block)
                 evaluations[g] += size
             for j in range(size):
                 acc = 0.0
@@ -226,7 +227,8 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
                 x_new[j] = xl[j] + hc * acc
             _derivative(b, s, m, t + step, t0, span, x_new, K[stages], G[stages], xc,
                         w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind,
-                        o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest, area, block)
+                        o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest,
+                        area, block)
             evaluations[g] += size
             err = 0.0
             for j in range(size):

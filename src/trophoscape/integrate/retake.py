@@ -41,6 +41,7 @@ crossing (``tests/test_removals.py``), and scipy's ``solve_ivp`` without removal
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -237,7 +238,8 @@ class StepRetaker:
             # the first-order change of the components just outside the region: what the
             # region's components sent, minus the step's course, along their links out
             inside = np.concatenate([members, members + n])
-            row, col, rate = self._gather(self._transposed, inside)  # row: a component of the region
+            # row: a component of the region
+            row, col, rate = self._gather(self._transposed, inside)
             self._mark[inside] = True
             away = ~self._mark[col]
             self._mark[inside] = False
@@ -360,15 +362,17 @@ class _Region:
         status = np.zeros(groups, dtype=np.int64)
         evaluations = np.zeros(groups)
         census = np.ascontiguousarray(census, dtype=float)
-        module.run_groups(
-            starts, m, self.t0, self.span, self.x, self.q, armed, level, rtol, atol,
-            within.indptr.astype(np.int64), within.indices.astype(np.int64),
-            within.data.astype(float), p_old, p_coef, i_ptr, i_src, rates.astype(float),
-            o_kind, o_old, o_coef, o_h, self.sends, s_old, s_coef, growth, response, harvest,
-            retaker.area[self._patches], np.ascontiguousarray(retaker._block[:, self._patches]),
-            census, self.census, self.counts, self.held, _A, _B, _C, _E, _P,
-            _SAFETY, _MIN_FACTOR, _MAX_FACTOR, _EXPONENT, NEAR, LOOKS, REFINE, REFINE_ROUNDS,
-            status, evaluations)
+        with _ONE_AT_A_TIME:
+            module.run_groups(
+                starts, m, self.t0, self.span, self.x, self.q, armed, level, rtol, atol,
+                within.indptr.astype(np.int64), within.indices.astype(np.int64),
+                within.data.astype(float), p_old, p_coef, i_ptr, i_src, rates.astype(float),
+                o_kind, o_old, o_coef, o_h, self.sends, s_old, s_coef, growth, response, harvest,
+                retaker.area[self._patches],
+                np.ascontiguousarray(retaker._block[:, self._patches]),
+                census, self.census, self.counts, self.held, _A, _B, _C, _E, _P,
+                _SAFETY, _MIN_FACTOR, _MAX_FACTOR, _EXPONENT, NEAR, LOOKS, REFINE, REFINE_ROUNDS,
+                status, evaluations)
         self.evaluations = float(evaluations.sum()) * self._unit
         if np.any(status == module.NOT_A_NUMBER):
             raise RunError(_NOT_A_NUMBER.format(time=self.t0))
@@ -592,6 +596,10 @@ class _Region:
         self.x[self.index] = x
         self.q[self.index] = q
 
+
+#: The compiled regions run their groups on numba's threads, whose default pool (workqueue)
+#: ends the process when two Python threads enter it at once: one region at a time.
+_ONE_AT_A_TIME = threading.Lock()
 
 _NOT_A_NUMBER = ("the error estimate is not a number near time {time:.6g} (a step taken "
                  "again over a region, for removals or patches over the tolerance): "
