@@ -26,7 +26,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ..model.compiled import local_one
+from ..model.compiled import jit, local_one
 
 #: Status codes returned by :func:`run_groups`.
 DONE, NOT_A_NUMBER, TOO_MANY_STEPS = 0, 1, 2
@@ -34,32 +34,26 @@ DONE, NOT_A_NUMBER, TOO_MANY_STEPS = 0, 1, 2
 MAX_STEPS = 100_000
 
 
-def _jit(function=None, *, parallel=True):
-    """Compiled with numba, cached on disk when a folder for it is writable (else compiled
-    in each process, as :mod:`trophoscape.model.compiled`)."""
-    if function is None:
-        return lambda f: _jit(f, parallel=parallel)
-    options = dict(error_model="numpy", boundscheck=False, nogil=True, parallel=parallel)
-    try:
-        return numba.njit(cache=True, **options)(function)
-    except RuntimeError:  # no writable cache folder (numba's words): compile in each process
-        return numba.njit(cache=False, **options)(function)
+@jit(inline=True)
+def _horner(coef, row, theta):  # pragma: no cover - compiled
+    """``sum_j coef[row, j] theta**(j + 1)`` by Horner's rule (``crossings.horner``)."""
+    terms = coef.shape[1]
+    acc = coef[row, terms - 1] * theta
+    for j in range(terms - 2, -1, -1):
+        acc += coef[row, j]
+        acc *= theta
+    return acc
 
 
-@numba.njit(inline="always", error_model="numpy", boundscheck=False)
+@jit(inline=True)
 def _interpolant(kind, old, coef, h, row, theta):  # pragma: no cover - compiled
     """Row ``row`` of the whole step's interpolant at ``theta`` (0 at the step's start):
     scipy's Runge–Kutta form (kind 0: ``old + h sum_j coef_j theta**(j + 1)``) or its DOP853
     form (kind 1: factors alternately times ``theta`` and ``1 - theta``)."""
-    terms = coef.shape[1]
     if kind == 0:
-        acc = coef[row, terms - 1] * theta
-        for j in range(terms - 2, -1, -1):
-            acc += coef[row, j]
-            acc *= theta
-        return h * acc + old[row]
+        return h * _horner(coef, row, theta) + old[row]
     y = 0.0
-    for i in range(terms):
+    for i in range(coef.shape[1]):
         y += coef[row, i]
         if i % 2 == 0:
             y *= theta
@@ -68,17 +62,13 @@ def _interpolant(kind, old, coef, h, row, theta):  # pragma: no cover - compiled
     return y + old[row]
 
 
-@numba.njit(inline="always", error_model="numpy", boundscheck=False)
+@jit(inline=True)
 def _own(Q, x, hc, j, pos):  # pragma: no cover - compiled
     """The group's own interpolant (scipy's RK45 form) of local component ``j`` at ``pos``."""
-    acc = Q[j, 3] * pos
-    for i in range(2, -1, -1):
-        acc += Q[j, i]
-        acc *= pos
-    return hc * acc + x[j]
+    return hc * _horner(Q, j, pos) + x[j]
 
 
-@numba.njit(error_model="numpy", boundscheck=False)
+@jit
 def _first_fall(Q, x, hc, j, level, armed, looks):  # pragma: no cover - compiled
     """The first of ``looks + 1`` even points of the step below ``level`` after one at or
     above it (or ``armed`` at the start); -1 when there is none."""
@@ -92,7 +82,7 @@ def _first_fall(Q, x, hc, j, level, armed, looks):  # pragma: no cover - compile
     return -1
 
 
-@numba.njit(error_model="numpy", boundscheck=False)
+@jit
 def _crossing(Q, x, hc, j, level, first, looks, refine, rounds):  # pragma: no cover
     """Where in the step local component ``j`` first falls through ``level``, given the
     first of the even points below it (``first``, from :func:`_first_fall`), as
@@ -115,7 +105,7 @@ def _crossing(Q, x, hc, j, level, first, looks, refine, rounds):  # pragma: no c
     return hi
 
 
-@numba.njit(error_model="numpy", boundscheck=False)
+@jit
 def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
                 w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old,
                 o_coef, o_h, sends, s_old, s_coef, growth, response, harvest, area,
@@ -150,7 +140,7 @@ def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
             gout[j] = xc[j] - (0.0 if v < 0.0 else v)
 
 
-@_jit
+@jit(parallel=True)
 def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
                w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old, o_coef, o_h,
                sends, s_old, s_coef, growth, response, harvest, area, block,
@@ -186,6 +176,7 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
         x_new = np.empty(size)
         xc = np.empty(size)
         Q = np.empty((size, 4))
+        QG = np.empty((size, 4))
         crossed = np.zeros(size, dtype=np.bool_)
         where = np.empty(size)
         fall = np.empty(size, dtype=np.int64)
@@ -319,13 +310,12 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
                     y_cut = _own(Q, xl, hc, j, cut)
                     falling = (armed[j] and y_cut < level) or (crossed[j] and where[j] == cut)
                     if sends:  # the quadrature on its own interpolant
-                        acc = 0.0
-                        for i in range(3, -1, -1):
-                            coefficient = 0.0
+                        for i in range(4):
+                            acc = 0.0
                             for l in range(stages + 1):
-                                coefficient += G[l, j] * P[l, i]
-                            acc = (acc + coefficient) * cut if i < 3 else coefficient * cut
-                        ql[j] = hc * acc + ql[j]
+                                acc += G[l, j] * P[l, i]
+                            QG[j, i] = acc
+                        ql[j] = _own(QG, ql, hc, j, cut)
                     if falling:
                         c = b + j if j < s else m + b + (j - s)
                         counts[c] += 1
@@ -343,7 +333,7 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
             q[c] = ql[j]
 
 
-@_jit(parallel=False)
+@jit
 def gather(indptr, indices, data, rows):  # pragma: no cover - compiled
     """As ``retake._gather``: the entries of a CSR matrix in ``rows``, row by row."""
     total = 0

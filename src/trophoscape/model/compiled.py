@@ -29,29 +29,27 @@ PARAMETER_ROWS = ("growth_rate", "capacity", "allee_density", "attack_rate", "ha
                   "interference", "conversion", "mortality", "prey_harvest")
 
 
-def _jit(function):
-    """Compiled with numba, the machine code cached on disk when a folder for it is writable.
+def jit(function=None, *, inline=False, parallel=False):
+    """Compiled with numba, the machine code cached on disk when a folder for it is writable
+    (else compiled in each process). ``inline``: inlined where compiled code calls it;
+    ``parallel``: numba's ``prange`` runs on its threads. Shared by
+    :mod:`trophoscape.integrate.compiled`.
 
     error_model="numpy": no Python zero-division checks, so the loop vectorises; a division by
     a zero area cannot occur (areas are checked positive when the landscape is read).
     """
-    options = dict(error_model="numpy", boundscheck=False, nogil=True)
+    if function is None:
+        return lambda f: jit(f, inline=inline, parallel=parallel)
+    options = dict(error_model="numpy", boundscheck=False, nogil=True, parallel=parallel)
+    if inline:
+        options["inline"] = "always"
     try:
         return numba.njit(cache=True, **options)(function)
     except RuntimeError:  # no writable cache folder (numba's words): compile in each process
         return numba.njit(cache=False, **options)(function)
 
 
-def _jit_inline(function):
-    """Compiled with numba and inlined where it is called (in compiled code only)."""
-    options = dict(error_model="numpy", boundscheck=False, nogil=True, inline="always")
-    try:
-        return numba.njit(cache=True, **options)(function)
-    except RuntimeError:  # no writable cache folder
-        return numba.njit(cache=False, **options)(function)
-
-
-@_jit_inline
+@jit(inline=True)
 def local_one(growth, response, harvest, big_n, big_p, ai, q, i):  # pragma: no cover
     """The local terms of patch ``i`` (abundance per time) at abundances ``big_n, big_p``,
     already clipped at zero; ``q`` the parameter block (:data:`PARAMETER_ROWS`)."""
@@ -79,7 +77,7 @@ def local_one(growth, response, harvest, big_n, big_p, ai, q, i):  # pragma: no 
     return rate_n * ai, (q[6, i] * eaten - q[7, i] * dp) * ai
 
 
-@_jit
+@jit
 def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no cover - compiled
     n = area.size
     for i in range(n):
