@@ -214,11 +214,12 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
             "m = sp.csr_array(np.array([[0., 2.], [3., 0.]])); "
             "r = c.gather(m.indptr, m.indices, m.data, np.array([1, 0])); "
             "print(c.run_groups._cache.__class__.__name__, c.gather._cache.__class__.__name__, "
-            "[a.tolist() for a in r])")
+            "c.region_setup._cache.__class__.__name__, c.corrections._cache.__class__.__name__, "
+            "c.joined._cache.__class__.__name__, [a.tolist() for a in r])")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
     assert out.returncode == 0, out.stderr
-    first, second, values = out.stdout.split(" ", 2)
-    assert first == second == "NullCache"
+    *names, values = out.stdout.split(" ", 5)
+    assert names == ["NullCache"] * 5
     assert eval(values) == [[0, 1], [0, 1], [3.0, 2.0]]
 
 
@@ -253,3 +254,59 @@ def test_compiled_regions_from_several_threads_at_once():
                          timeout=600)
     assert out.returncode == 0, out.stderr[-2000:]
     assert out.stdout.split() == ["1", "4"]
+
+
+def test_compiled_region_groups_match_scipy_connected_components(rng):
+    # the compiled regions find their groups by union-find; reference: scipy.sparse.csgraph
+    # .connected_components on the links among the same patches (random sparse graphs)
+    from scipy.sparse.csgraph import connected_components
+
+    from trophoscape.integrate import compiled
+
+    for trial in range(30):
+        n = int(rng.integers(5, 400))
+        a = sp.random_array((n, n), density=float(rng.uniform(0.001, 0.02)), random_state=rng,
+                            format="csr")
+        links = sp.csr_array(abs(a) + abs(a).T)
+        patches = np.sort(rng.choice(n, size=int(rng.integers(1, n + 1)), replace=False))
+        position = np.full(2 * n, -1, dtype=np.int64)
+        label, count = compiled._groups(patches, links.indptr, links.indices, position)
+        assert np.all(position == -1)
+        want_count, want = connected_components(links[patches][:, patches], directed=False)
+        assert count == want_count
+        # the same partition: labels correspond one to one
+        pairs = set(zip(label.tolist(), want.tolist()))
+        assert len(pairs) == count
+        # numbered in the order of each group's first patch
+        first = [int(np.flatnonzero(label == g)[0]) for g in range(count)]
+        assert first == sorted(first)
+        # joined: the members in the groups that hold any of the new patches
+        new = rng.choice(patches, size=min(3, patches.size), replace=False)
+        mark = np.zeros(2 * n, dtype=bool)
+        got = compiled.joined(patches, np.sort(new), links.indptr, links.indices, position,
+                              mark)
+        assert not mark.any() and np.all(position == -1)
+        np.testing.assert_array_equal(got, patches[np.isin(want, want[np.isin(patches, new)])])
+
+
+def test_compiled_corrections_equal_numpy(rng):
+    # consistency test: what a region sends to the components just outside it, by the
+    # compiled pass and by the numpy reference (retake.StepRetaker._corrections), summed in
+    # the same order, so bit for bit
+    from trophoscape.integrate.retake import StepRetaker
+
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    system = CoupledSystem(model=make_model(n), area_km2=np.ones(n), prey_movement=ops[0],
+                           predator_movement=ops[1], local_terms="numpy")
+    area, model, movement = system.parts()
+    both = [StepRetaker(area, model, movement, compiled=flag) for flag in (False, True)]
+    assert both[0].compiled is None and both[1].compiled is not None
+    for _ in range(10):
+        members = np.sort(rng.choice(n, size=int(rng.integers(1, n // 2)), replace=False))
+        sent = rng.normal(size=2 * n)
+        (t0, c0), (t1, c1) = (r._corrections(members, sent) for r in both)
+        assert t0.size > 0
+        np.testing.assert_array_equal(t1, t0)
+        np.testing.assert_array_equal(c1, c0)
+        assert not both[1]._mark.any() and np.all(both[1]._position == -1)

@@ -15,6 +15,11 @@ census values on the group's interpolant. Sums are taken in another order than n
 the two paths agree to rounding, not bit for bit; both are checked against scipy's event
 location in ``tests/test_removals.py``.
 
+The region is set up here too, in one pass each (:func:`region_setup`: its groups by
+union-find, the links within it and in from outside; :func:`corrections`: what it sends to
+the components just outside; :func:`joined`: the groups that patches joining it fall into),
+where the numpy path builds the same arrays by index arithmetic and scipy.
+
 Used only with the compiled local terms (``CoupledSystem.local_terms_used == "compiled"``,
 numba installed); the numpy path is the reference and the fallback. This module imports
 numba at import time: :mod:`trophoscape.integrate.retake` imports it only when a retaker
@@ -107,22 +112,26 @@ def _crossing(Q, x, hc, j, level, first, looks, refine, rounds):  # pragma: no c
 
 @jit
 def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
-                w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old,
-                o_coef, o_h, sends, s_old, s_coef, growth, response, harvest, area,
+                w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, kind, y_old,
+                coef, whole_h, sends, comps, growth, response, harvest, patches, area,
                 block):  # pragma: no cover
     """The derivative of group ``[b, b + s)`` (both species; local order prey then
     predator) at time ``t`` and state ``xs``, and what it sends minus the step's course.
 
     The immigrants from outside are one polynomial per component (``p_old``, ``p_coef``:
     the sources that stay positive over the whole step, summed) plus the links from the
-    others (``i_ptr, i_src, i_rate``), each clipped at zero."""
+    others (``i_ptr, i_src, i_rate``; ``i_src`` the network's components), each clipped at
+    zero. ``y_old, coef`` are the whole step's interpolant over the network (kind ``kind``,
+    :func:`_interpolant`); ``comps`` and ``patches`` the region's components and patches in
+    the network's numbering; ``area`` and ``block`` the network's."""
     theta = (t - t0) / span
     for j in range(2 * s):
         v = xs[j]
         xc[j] = 0.0 if v < 0.0 else v  # keeps a NaN, as np.maximum does
     for i in range(s):
+        p = patches[b + i]
         out[i], out[s + i] = local_one(growth, response, harvest, xc[i], xc[s + i],
-                                       area[b + i], block, b + i)
+                                       area[p], block, p)
     for j in range(2 * s):
         c = b + j if j < s else m + b + (j - s)
         within = 0.0
@@ -130,20 +139,20 @@ def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
             col = w_idx[k]
             local = col - b if col < m else col - m - b + s
             within += w_val[k] * xc[local]
-        inflow = _interpolant(o_kind, p_old, p_coef, o_h, c, theta)
+        inflow = _interpolant(kind, p_old, p_coef, whole_h, c, theta)
         for k in range(i_ptr[c], i_ptr[c + 1]):
-            v = _interpolant(o_kind, o_old, o_coef, o_h, i_src[k], theta)
+            v = _interpolant(kind, y_old, coef, whole_h, i_src[k], theta)
             inflow += i_rate[k] * (0.0 if v < 0.0 else v)
         out[j] = out[j] + within + inflow
         if sends:
-            v = _interpolant(o_kind, s_old, s_coef, o_h, c, theta)
+            v = _interpolant(kind, y_old, coef, whole_h, comps[c], theta)
             gout[j] = xc[j] - (0.0 if v < 0.0 else v)
 
 
 @jit(parallel=True)
 def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
-               w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old, o_coef, o_h,
-               sends, s_old, s_coef, growth, response, harvest, area, block,
+               w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, kind, y_old, coef,
+               whole_h, sends, comps, growth, response, harvest, patches, area, block,
                census, census_out, counts, held, A, B, C, E, P,
                safety, min_factor, max_factor, exponent, near, looks, refine, rounds,
                status, evaluations):  # pragma: no cover - compiled
@@ -152,7 +161,8 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
     ``x``, ``q`` (the region's state and what it sent, minus the step's course), ``counts``,
     ``held``, ``census_out`` (census values, ``(len(census), 2 m)``), ``status`` and
     ``evaluations`` (per group) are written in place; the components of group ``g`` are
-    ``starts[g]:starts[g + 1]`` and the same plus ``m``.
+    ``starts[g]:starts[g + 1]`` and the same plus ``m``. The links and immigrants are
+    :func:`region_setup`'s.
     """
     groups = starts.size - 1
     stages = B.size
@@ -196,8 +206,8 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
             hc = step
             if stale:
                 _derivative(b, s, m, t, t0, span, xl, K[0], G[0], xc, w_ptr, w_idx, w_val,
-                            p_old, p_coef, i_ptr, i_src, i_rate, o_kind, o_old, o_coef, o_h,
-                            sends, s_old, s_coef, growth, response, harvest, area, block)
+                            p_old, p_coef, i_ptr, i_src, i_rate, kind, y_old, coef, whole_h,
+                            sends, comps, growth, response, harvest, patches, area, block)
                 evaluations[g] += size
                 stale = False
             for st in range(1, stages):
@@ -207,9 +217,9 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
                         acc += K[l, j] * A[st, l]
                     xs[j] = xl[j] + acc * hc
                 _derivative(b, s, m, t + C[st] * step, t0, span, xs, K[st], G[st], xc,
-                            w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind,
-                            o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest,
-                            area, block)
+                            w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, kind,
+                            y_old, coef, whole_h, sends, comps, growth, response, harvest,
+                            patches, area, block)
                 evaluations[g] += size
             for j in range(size):
                 acc = 0.0
@@ -217,9 +227,9 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
                     acc += K[l, j] * B[l]
                 x_new[j] = xl[j] + hc * acc
             _derivative(b, s, m, t + step, t0, span, x_new, K[stages], G[stages], xc,
-                        w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, o_kind,
-                        o_old, o_coef, o_h, sends, s_old, s_coef, growth, response, harvest,
-                        area, block)
+                        w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, kind,
+                        y_old, coef, whole_h, sends, comps, growth, response, harvest,
+                        patches, area, block)
             evaluations[g] += size
             err = 0.0
             for j in range(size):
@@ -350,3 +360,203 @@ def gather(indptr, indices, data, rows):  # pragma: no cover - compiled
             value[k] = data[e]
             k += 1
     return row, col, value
+
+
+@jit
+def _groups(patches, l_ptr, l_idx, position):  # pragma: no cover - compiled
+    """The connected groups of ``patches`` by the links among them (the CSR ``l_ptr, l_idx``
+    over the network's patches): a label per patch, 0, 1, ... in the order each group's first
+    patch comes in ``patches``, and their number. ``position`` is a work array over the
+    network's components, -1 everywhere on entry and on return."""
+    m = patches.size
+    for i in range(m):
+        position[patches[i]] = i
+    parent = np.arange(m)
+    for i in range(m):
+        p = patches[i]
+        for e in range(l_ptr[p], l_ptr[p + 1]):
+            j = position[l_idx[e]]
+            if j < 0:
+                continue
+            a = i
+            while parent[a] != a:  # the roots, halving the paths
+                parent[a] = parent[parent[a]]
+                a = parent[a]
+            b = j
+            while parent[b] != b:
+                parent[b] = parent[parent[b]]
+                b = parent[b]
+            if a < b:  # the root is the group's first patch
+                parent[b] = a
+            elif b < a:
+                parent[a] = b
+    for i in range(m):
+        position[patches[i]] = -1
+    label = np.empty(m, dtype=np.int64)
+    count = 0
+    for i in range(m):
+        a = i
+        while parent[a] != a:
+            a = parent[a]
+        if a == i:
+            label[i] = count
+            count += 1
+        else:
+            label[i] = label[a]
+    return label, count
+
+
+@jit
+def region_setup(patches, n, l_ptr, l_idx, mv_ptr, mv_idx, mv_val, position, kind, y_old,
+                 coef, h):  # pragma: no cover - compiled
+    """What :func:`run_groups` needs of a region of ``patches`` (increasing): as
+    ``retake._Region`` builds it in numpy, in one pass.
+
+    The patches are put in the order of their connected groups (by the links ``l_ptr,
+    l_idx``), increasing within each. Of the region's rows of the movement operator (the
+    CSR ``mv_ptr, mv_idx, mv_val``, entries with a zero rate skipped: no link), the links
+    within the region are kept in the region's numbering (``w_ptr, w_idx, w_val``); those
+    in from sources whose interpolant stays positive over the whole step (``y_old - |coef|
+    sum > 0``, times ``h`` for kind 0) are summed into one polynomial per component
+    (``p_old, p_coef``), in the order of the rows; the others are kept (``i_ptr, i_src,
+    i_rate``, sources in the network's numbering).
+
+    Returns ``patches`` in group order, the groups' starts, the region's components in
+    the network's numbering (those patches, then the same plus ``n``), and the arrays
+    named above.
+    """
+    label, count = _groups(patches, l_ptr, l_idx, position)
+    m = patches.size
+    starts = np.zeros(count + 1, dtype=np.int64)
+    for i in range(m):
+        starts[label[i] + 1] += 1
+    for g in range(count):
+        starts[g + 1] += starts[g]
+    fill = starts[:-1].copy()
+    order = np.empty(m, dtype=np.int64)
+    for i in range(m):
+        order[fill[label[i]]] = patches[i]
+        fill[label[i]] += 1
+    comps = np.empty(2 * m, dtype=np.int64)
+    for i in range(m):
+        comps[i] = order[i]
+        comps[m + i] = order[i] + n
+    total = 0
+    for c in range(2 * m):
+        position[comps[c]] = c
+        total += mv_ptr[comps[c] + 1] - mv_ptr[comps[c]]
+    terms = coef.shape[1]
+    w_ptr = np.zeros(2 * m + 1, dtype=np.int64)
+    w_idx = np.empty(total, dtype=np.int64)
+    w_val = np.empty(total)
+    i_ptr = np.zeros(2 * m + 1, dtype=np.int64)
+    i_src = np.empty(total, dtype=np.int64)
+    i_rate = np.empty(total)
+    p_old = np.zeros(2 * m)
+    p_coef = np.zeros((2 * m, terms))
+    nw = 0
+    ni = 0
+    for c in range(2 * m):
+        r = comps[c]
+        for e in range(mv_ptr[r], mv_ptr[r + 1]):
+            rate = mv_val[e]
+            if rate == 0.0:
+                continue
+            col = mv_idx[e]
+            local = position[col]
+            if local >= 0:
+                w_idx[nw] = local
+                w_val[nw] = rate
+                nw += 1
+                continue
+            spread = 0.0
+            for j in range(terms):
+                spread += abs(coef[col, j])
+            if kind == 0:
+                spread = h * spread
+            if y_old[col] - spread > 0.0:
+                p_old[c] += rate * y_old[col]
+                for j in range(terms):
+                    p_coef[c, j] += rate * coef[col, j]
+            else:
+                i_src[ni] = col
+                i_rate[ni] = rate
+                ni += 1
+        w_ptr[c + 1] = nw
+        i_ptr[c + 1] = ni
+    for c in range(2 * m):
+        position[comps[c]] = -1
+    return (order, starts, comps, w_ptr, w_idx[:nw].copy(), w_val[:nw].copy(), p_old, p_coef,
+            i_ptr, i_src[:ni].copy(), i_rate[:ni].copy())
+
+
+@jit
+def corrections(members, n, t_ptr, t_idx, t_val, sent, mark, position):  # pragma: no cover
+    """What the components of the region's ``members`` (patches, increasing) sent out
+    (``sent``, over the network's components, minus the step's course) along their links
+    to components outside (the CSR ``t_ptr, t_idx, t_val``: the movement operator's
+    transpose): the components reached (increasing) and the change of each, summed in the
+    order of the region's components (prey, then predators) and of the rows' entries.
+    ``mark`` (False) and ``position`` (-1) are work arrays over the network's components,
+    left as they came."""
+    m = members.size
+    total = 0
+    for i in range(m):
+        for c in (members[i], members[i] + n):
+            mark[c] = True
+            total += t_ptr[c + 1] - t_ptr[c]
+    found = np.empty(total, dtype=np.int64)
+    k = 0
+    for half in range(2):
+        for i in range(m):
+            c = members[i] + half * n
+            for e in range(t_ptr[c], t_ptr[c + 1]):
+                col = t_idx[e]
+                if not mark[col] and position[col] == -1:
+                    position[col] = -2
+                    found[k] = col
+                    k += 1
+    targets = np.sort(found[:k])
+    for i in range(k):
+        position[targets[i]] = i
+    change = np.zeros(k)
+    for half in range(2):
+        for i in range(m):
+            c = members[i] + half * n
+            for e in range(t_ptr[c], t_ptr[c + 1]):
+                col = t_idx[e]
+                if not mark[col]:
+                    change[position[col]] += t_val[e] * sent[c]
+    for i in range(k):
+        position[targets[i]] = -1
+    for i in range(m):
+        mark[members[i]] = False
+        mark[members[i] + n] = False
+    return targets, change
+
+
+@jit
+def joined(members, new, l_ptr, l_idx, position, mark):  # pragma: no cover - compiled
+    """The ``members`` (patches, increasing) in the connected groups that hold any of
+    ``new`` (the groups by the links ``l_ptr, l_idx``); work arrays as in
+    :func:`corrections`."""
+    label, count = _groups(members, l_ptr, l_idx, position)
+    hit = np.zeros(count, dtype=np.bool_)
+    for p in new:
+        mark[p] = True
+    size = 0
+    for i in range(members.size):
+        if mark[members[i]]:
+            hit[label[i]] = True
+    for p in new:
+        mark[p] = False
+    for i in range(members.size):
+        if hit[label[i]]:
+            size += 1
+    out = np.empty(size, dtype=np.int64)
+    k = 0
+    for i in range(members.size):
+        if hit[label[i]]:
+            out[k] = members[i]
+            k += 1
+    return out

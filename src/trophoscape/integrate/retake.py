@@ -186,6 +186,35 @@ class StepRetaker:
         return sp.csr_array((weight[inside], local[inside], indptr),
                             shape=(patches.size, patches.size))
 
+    def _corrections(self, members, sent):
+        """What the components of the region's ``members`` sent out (``sent``, minus the
+        step's course) along their links to components outside: the components reached
+        (increasing) and the first-order change of each."""
+        n = self.n
+        matrix = self._transposed
+        if self.compiled is not None:
+            return self.compiled.corrections(members, n, matrix.indptr, matrix.indices,
+                                             matrix.data, sent, self._mark, self._position)
+        inside = np.concatenate([members, members + n])
+        row, col, rate = _gather(matrix, inside)  # row: a component of the region
+        self._mark[inside] = True
+        away = ~self._mark[col]
+        self._mark[inside] = False
+        col = col[away]
+        targets = self._distinct(col)
+        which = self._positions(targets, col)
+        return targets, np.bincount(which, weights=rate[away] * sent[inside[row[away]]],
+                                    minlength=targets.size)
+
+    def _joined(self, members, new):
+        """The ``members`` in the connected groups that hold any of ``new``."""
+        if self.compiled is not None:
+            links = self.links
+            return self.compiled.joined(members, new, links.indptr, links.indices,
+                                        self._position, self._mark)
+        _, label = connected_components(self._within(members), directed=False)
+        return members[np.isin(label, label[np.isin(members, new)])]
+
     def retake(self, t0, y0, t1, y1, dense, patches, level, armed, rtol, atol,
                census=()) -> Retaken:
         """Take the step ``t0 -> t1`` again over the patches with removals and around them.
@@ -222,12 +251,14 @@ class StepRetaker:
         held = np.empty(2 * n)
         rounds_census = []  # (components, their census values) of each round
         evaluations = 0.0
+        # the compiled regions read the whole step's interpolant over the network
+        interpolant = None if self.compiled is None else _coefficients(dense)
         for rounds in range(1, ROUNDS + 2):
             if rounds > ROUNDS or members.size > WHOLE * n:
                 members = todo = np.arange(n)
             whole = members.size == n
             out = _Region(self, todo, t0, y0, t1, dense, level, armed, rtol, atol, census,
-                          sends=not whole)
+                          sends=not whole, interpolant=interpolant)
             comps = out.components
             y[comps], sent[comps], counts[comps], held[comps] = out.x, out.q, out.counts, out.held
             if census.size:
@@ -237,17 +268,7 @@ class StepRetaker:
                 break
             # the first-order change of the components just outside the region: what the
             # region's components sent, minus the step's course, along their links out
-            inside = np.concatenate([members, members + n])
-            # row: a component of the region
-            row, col, rate = self._gather(self._transposed, inside)
-            self._mark[inside] = True
-            away = ~self._mark[col]
-            self._mark[inside] = False
-            col = col[away]
-            targets = self._distinct(col)
-            which = self._positions(targets, col)
-            change = np.bincount(which, weights=rate[away] * sent[inside[row[away]]],
-                                 minlength=targets.size)
+            targets, change = self._corrections(members, sent)
             before = y[targets]
             after = before + change
             grow = (np.abs(change) > GROW * (atol + rtol * np.abs(before))) | (
@@ -258,8 +279,7 @@ class StepRetaker:
             # those patches join; the groups they join are integrated again, the rest kept
             new = np.setdiff1d(targets[grow] % n, members)
             members = np.union1d(members, new)
-            _, label = connected_components(self._within(members), directed=False)
-            todo = members[np.isin(label, label[np.isin(members, new)])]
+            todo = self._joined(members, new)
         components = np.concatenate([members, members + n])
         species = (components >= n).astype(np.int64)
         # the census values of the region, the last round's where a group was taken again
@@ -289,9 +309,16 @@ class _Region:
     NARROW = 0.5
 
     def __init__(self, retaker: StepRetaker, patches, t0, y0, t1, dense, level, armed,
-                 rtol, atol, census, sends=True):
+                 rtol, atol, census, sends=True, interpolant=None):
         n = retaker.n
         self.t0, self.span = float(t0), float(t1) - float(t0)
+        self.sends = sends  # what it sends out is compared with the step's own course
+        self.evaluations = 0.0
+        self._unit = 1.0 / (2 * n)
+        if retaker.compiled is not None:
+            self._run_compiled(retaker, patches, y0, interpolant, armed, float(level),
+                               float(rtol), float(atol), census)
+            return
         # patches in the order of their groups, so each group's components are contiguous
         _, label = connected_components(retaker._within(patches), directed=False)
         order = np.argsort(label, kind="stable")
@@ -315,48 +342,36 @@ class _Region:
         position[comps] = -1
         self._in = row[~inside], col[~inside], rate[~inside]
         self._patches, self._retaker, self._dense = patches, retaker, dense
-        # what it sends out is compared with the step's: its own course on the interpolant
-        self.sends = sends
-        self.evaluations = 0.0
-        self._unit = 1.0 / (2 * n)
+        self._start(y0, m, census)
+        self._run(label, np.asarray(armed)[comps].copy(), float(level), float(rtol),
+                  float(atol), census)
+
+    def _start(self, y0, m, census):
+        """The region's state at the step's start, and its outputs, empty."""
         self.counts = np.zeros(2 * m, dtype=np.int64)  # removals per component
         self.held = np.zeros(2 * m)  # individuals they held
-        self.x = np.asarray(y0, dtype=float)[comps]
+        self.x = np.asarray(y0, dtype=float)[self.components]
         self.q = np.zeros(2 * m)
         self.census = np.full((np.size(census), 2 * m), np.nan)
-        run = self._run if retaker.compiled is None else self._run_compiled
-        run(label, np.asarray(armed)[comps].copy(), float(level), float(rtol), float(atol),
-            census)
 
-    def _run_compiled(self, label, armed, level, rtol, atol, census):
-        """:meth:`_run` by the compiled code, group by group."""
-        retaker = self._retaker
+    def _run_compiled(self, retaker, patches, y0, interpolant, armed, level, rtol, atol,
+                      census):
+        """The region set up (:func:`trophoscape.integrate.compiled.region_setup`: its
+        groups, the links within it and in from outside, the immigrants from sources that
+        stay positive over the whole step summed into one polynomial per component) and
+        integrated group by group (:func:`~trophoscape.integrate.compiled.run_groups`), as
+        the numpy setup and :meth:`_run` do."""
         module = retaker.compiled
-        m = self._patches.size
-        starts = np.flatnonzero(np.r_[True, label[1:] != label[:-1]])
-        starts = np.r_[starts, m].astype(np.int64)
-        within = self._within
-        rows, cols, rates = self._in
-        # the links in from outside (in the order of their rows): those from sources that
-        # stay positive over the whole step summed into one polynomial per component (no
-        # clipping at zero to do), the others kept
-        outside = retaker._distinct(cols)
-        source = retaker._positions(outside, cols)
-        o_kind, o_old, o_coef, o_h = _coefficients(self._dense, outside)
-        spread = o_h * np.abs(o_coef).sum(axis=1) if o_kind == 0 else np.abs(o_coef).sum(axis=1)
-        positive = (o_old - spread > 0)[source]
-        weight = rates[positive]
-        target, sure = rows[positive], source[positive]
-        p_old = np.bincount(target, weights=weight * o_old[sure], minlength=2 * m)
-        p_coef = np.empty((2 * m, o_coef.shape[1]))
-        for j in range(o_coef.shape[1]):
-            p_coef[:, j] = np.bincount(target, weights=weight * o_coef[sure, j], minlength=2 * m)
-        rows, i_src, rates = rows[~positive], source[~positive], rates[~positive]
-        i_ptr = np.r_[0, np.cumsum(np.bincount(rows, minlength=2 * m))].astype(np.int64)
-        if self.sends:
-            _, s_old, s_coef, _ = _coefficients(self._dense, self.components)
-        else:
-            s_old, s_coef = o_old[:0], o_coef[:0]
+        kind, y_old, coef, h = interpolant
+        links, movement = retaker.links, retaker.movement
+        (order, starts, comps, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src,
+         i_rate) = module.region_setup(
+            np.asarray(patches, dtype=np.int64), retaker.n, links.indptr, links.indices,
+            movement.indptr, movement.indices, movement.data, retaker._position, kind,
+            y_old, coef, h)
+        self.components = comps
+        m = order.size
+        self._start(y0, m, census)
         growth, response, harvest = retaker._codes
         groups = starts.size - 1
         status = np.zeros(groups, dtype=np.int64)
@@ -364,15 +379,12 @@ class _Region:
         census = np.ascontiguousarray(census, dtype=float)
         with _ONE_AT_A_TIME:
             module.run_groups(
-                starts, m, self.t0, self.span, self.x, self.q, armed, level, rtol, atol,
-                within.indptr.astype(np.int64), within.indices.astype(np.int64),
-                within.data.astype(float), p_old, p_coef, i_ptr, i_src, rates.astype(float),
-                o_kind, o_old, o_coef, o_h, self.sends, s_old, s_coef, growth, response, harvest,
-                retaker.area[self._patches],
-                np.ascontiguousarray(retaker._block[:, self._patches]),
-                census, self.census, self.counts, self.held, _A, _B, _C, _E, _P,
-                _SAFETY, _MIN_FACTOR, _MAX_FACTOR, _EXPONENT, NEAR, LOOKS, REFINE, REFINE_ROUNDS,
-                status, evaluations)
+                starts, m, self.t0, self.span, self.x, self.q, np.asarray(armed)[comps],
+                level, rtol, atol, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate,
+                kind, y_old, coef, h, self.sends, comps, growth, response, harvest, order,
+                retaker.area, retaker._block, census, self.census, self.counts, self.held,
+                _A, _B, _C, _E, _P, _SAFETY, _MIN_FACTOR, _MAX_FACTOR, _EXPONENT, NEAR, LOOKS,
+                REFINE, REFINE_ROUNDS, status, evaluations)
         self.evaluations = float(evaluations.sum()) * self._unit
         if np.any(status == module.NOT_A_NUMBER):
             raise RunError(_NOT_A_NUMBER.format(time=self.t0))
@@ -607,10 +619,10 @@ _NOT_A_NUMBER = ("the error estimate is not a number near time {time:.6g} (a ste
                  "(atol = 0); use atol > 0 and check for explosive growth")
 
 
-def _coefficients(dense, index):
-    """Rows ``index`` of the whole step's interpolant for the compiled code:
+def _coefficients(dense):
+    """The whole step's interpolant over the network for the compiled code:
     ``(kind, y_old, coefficients, h)`` (:func:`trophoscape.integrate.compiled._interpolant`)."""
-    rows = Rows(dense, index)
+    rows = Rows(dense, slice(None))
     if rows.factors is None:
         return 0, rows.y_old, rows.coefficients, float(rows.h)
     coefficients = np.ascontiguousarray(np.stack(rows.factors, axis=1))
