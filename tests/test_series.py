@@ -55,6 +55,7 @@ def assert_same_file(got, want):
         for s in SPECIES:
             assert a[s].dtype == np.float32
             assert a[s].encoding["zlib"] or a[s].encoding.get("compression") == "gzip"
+            assert a[s].encoding["shuffle"]
 
 
 def test_streamed_file_equals_xarrays_and_arrives_in_blocks(grid_file, tmp_path, monkeypatch):
