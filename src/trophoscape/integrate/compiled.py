@@ -560,3 +560,45 @@ def joined(members, new, l_ptr, l_idx, position, mark):  # pragma: no cover - co
             out[k] = members[i]
             k += 1
     return out
+
+
+@jit
+def derivative_after(y, y_ref, f_ref, mv_ptr, mv_idx, mv_val, t_ptr, t_idx, growth, response,
+                     harvest, area, block, mark):  # pragma: no cover - compiled
+    """The network's derivative at ``y``, from ``f_ref``, the derivative at ``y_ref``, where
+    the two states differ in few components (a step taken again over a region): the rows
+    that read a changed component (its patch's local terms, the rows its links reach) are
+    evaluated again as the system's right-hand side evaluates them (the local terms, then
+    ``+= rate * max(y, 0)`` over the row's entries in their stored order, as scipy's CSR
+    product), so the result is that of a whole evaluation, bit for bit; the others are kept.
+
+    ``mv_ptr, mv_idx, mv_val`` the movement operator, ``t_ptr, t_idx`` its transpose's
+    pattern; ``mark`` a work array over the components, False on entry and on return."""
+    size = y.size
+    n = size // 2
+    f = f_ref.copy()
+    for c in range(size):
+        if y[c] != y_ref[c] or y[c] != y[c]:
+            p = c if c < n else c - n
+            mark[p] = True
+            mark[p + n] = True
+            for e in range(t_ptr[c], t_ptr[c + 1]):
+                mark[t_idx[e]] = True
+    for r in range(size):
+        if not mark[r]:
+            continue
+        mark[r] = False
+        p = r if r < n else r - n
+        big_n = y[p]
+        big_p = y[p + n]
+        if big_n < 0.0:
+            big_n = 0.0
+        if big_p < 0.0:
+            big_p = 0.0
+        dn, dp = local_one(growth, response, harvest, big_n, big_p, area[p], block, p)
+        acc = dn if r < n else dp
+        for e in range(mv_ptr[r], mv_ptr[r + 1]):
+            v = y[mv_idx[e]]
+            acc += mv_val[e] * (0.0 if v < 0.0 else v)
+        f[r] = acc
+    return f

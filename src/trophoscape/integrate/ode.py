@@ -44,7 +44,24 @@ from .trajectory import SolverStats, Trajectory, census_times
 
 __all__ = ["METHODS", "RunSettings", "STORAGE_DTYPE", "simulate", "choose_method"]
 
-class _MaxNormRK:
+class _KnownStart:
+    """A Runge–Kutta solver that can be given the right-hand side at its start
+    (``start_derivative``) instead of evaluating it (scipy's evaluates it in ``__init__``)."""
+
+    def __init__(self, fun, t0, y0, t_bound, start_derivative=None, **options):
+        if start_derivative is None:
+            super().__init__(fun, t0, y0, t_bound, **options)
+            return
+        known = [np.asarray(start_derivative, dtype=float)]
+
+        def fun_or_known(t, y):
+            return known.pop() if known else fun(t, y)
+
+        super().__init__(fun_or_known, t0, y0, t_bound, **options)
+        self.nfev -= 1  # the start was not evaluated
+
+
+class _MaxNormRK(_KnownStart):
     """Error control by the largest scaled error over all components (a max norm).
 
     scipy's explicit Runge–Kutta classes take the root mean square of the scaled error over
@@ -106,7 +123,7 @@ class RK45(_MaxNormRK, si.RK45):
     """scipy's RK45 (Dormand–Prince 5(4)) with a max-norm error control."""
 
 
-class DOP853(si.DOP853):
+class DOP853(_KnownStart, si.DOP853):
     """scipy's DOP853 with its combined 5th/3rd-order error estimate taken per component.
 
     scipy combines the two estimates over the whole state (Hairer, Nørsett & Wanner 1993,
@@ -512,8 +529,13 @@ def simulate(
         # a rewired system may number its patches differently: back into its own order
         return system.to_internal(y_start) if internal else y_start
 
-    def start(t0, y_start, first_step):
+    def start(t0, y_start, first_step, derivative=None):
+        before = rhs
         y_start = apply_events(t0, y_start)
+        # the right-hand side at the start, known from the last step's where the state
+        # changed in few components and the system did not (a step taken again)
+        known = {} if derivative is None or rhs is not before else {
+            "start_derivative": derivative(y_start)}
         if bound() <= t0:  # nothing to integrate before the next census or event
             first_step = None
         elif first_step is not None:
@@ -522,7 +544,8 @@ def simulate(
             first_step = _initial_step(rhs, t0, y_start, bound(), solver_cls.error_estimator_order,
                                        rtol_used, atol_used)
             totals["nfev"] += 2
-        solver = solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options)
+        solver = solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options,
+                            **known)
         if method in MAX_NORM:
             solver.spare = spare
         return solver
@@ -531,11 +554,12 @@ def simulate(
         for key in totals:
             totals[key] += int(getattr(s, key, 0) or 0)
 
-    def restart(old, t0, y_start, first_step):
-        """A fresh solver from ``(t0, y_start)``; the old one's counts kept, its arrays freed."""
+    def restart(old, t0, y_start, first_step, derivative=None):
+        """A fresh solver from ``(t0, y_start)``; the old one's counts kept, its arrays freed.
+        ``derivative``: ``y -> rhs(t0, y)`` cheaper than an evaluation, or None."""
         nonlocal restarts, above
         add_counts(old)
-        new = start(t0, y_start, first_step)
+        new = start(t0, y_start, first_step, derivative)
         _release(old)
         restarts += 1
         # which components can fall through the threshold from here
@@ -704,7 +728,8 @@ def simulate(
                     sink(sunk, k, record)
                     sunk = k
             if retaken is not None:
-                solver = restart(solver, t_end, retaken.y, step_wanted(solver))
+                solver = restart(solver, t_end, retaken.y, step_wanted(solver),
+                                 retaker().derivative_after(solver.y, solver.f))
             if falling is not None:
                 # half the step reached: the full one was often rejected right after a
                 # population was zeroed (benchmarks/README.md)
