@@ -32,6 +32,9 @@ from ..io.folder import write_atomic
 __all__ = ["patch_map", "timeseries_panels", "occupancy_curve"]
 
 DPI = 150
+#: zlib level of the PNG files: 3 encodes a map about three times faster than Pillow's
+#: default 6, for files about a tenth larger (the pixels are the same: PNG is lossless).
+PNG_COMPRESS_LEVEL = 3
 # Okabe & Ito (2008), "Color Universal Design", colour-blind-safe qualitative palette.
 # Ordered so that the first few classes differ most (sky blue comes after yellow).
 OKABE_ITO = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#F0E442", "#56B4E9", "#D55E00",
@@ -770,7 +773,8 @@ def _save(fig, path: Path) -> Path:
 
     FigureCanvasAgg(fig)
     try:
-        write_atomic(path, lambda handle: fig.savefig(handle, format="png", dpi=DPI))
+        write_atomic(path, lambda handle: fig.savefig(
+            handle, format="png", dpi=DPI, pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL}))
     finally:
         fig.clear()  # a bare Figure is not registered with pyplot; clearing frees it
     return path
