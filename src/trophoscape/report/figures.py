@@ -355,7 +355,7 @@ def _bounds(geoms):
 
 
 #: From this many patches on, a map draws the patches as an image rasterised once per set of
-#: maps (rasterio), not as one vector path per patch: at a map's size such a network is a
+#: maps (:func:`_burn`), not as one vector path per patch: at a map's size such a network is a
 #: texture, and drawing 100,000 paths (and half a million links) cost seconds per map.
 RASTER_MIN_PATCHES = 20_000
 #: Cells along the longer side of that image (about the map's width in pixels).
