@@ -500,12 +500,9 @@ def corrections(members, n, t_ptr, t_idx, t_val, sent, mark, position):  # pragm
     ``mark`` (False) and ``position`` (-1) are work arrays over the network's components,
     left as they came."""
     m = members.size
-    total = 0
     for i in range(m):
-        for c in (members[i], members[i] + n):
-            mark[c] = True
-            total += t_ptr[c + 1] - t_ptr[c]
-    found = np.empty(total, dtype=np.int64)
+        mark[members[i]] = True
+        mark[members[i] + n] = True
     k = 0
     for half in range(2):
         for i in range(m):
@@ -514,11 +511,15 @@ def corrections(members, n, t_ptr, t_idx, t_val, sent, mark, position):  # pragm
                 col = t_idx[e]
                 if not mark[col] and position[col] == -1:
                     position[col] = -2
-                    found[k] = col
                     k += 1
-    targets = np.sort(found[:k])
-    for i in range(k):
-        position[targets[i]] = i
+    # in increasing order: one pass over the network (cheaper than sorting them)
+    targets = np.empty(k, dtype=np.int64)
+    j = 0
+    for col in range(position.size):
+        if position[col] == -2:
+            position[col] = j
+            targets[j] = col
+            j += 1
     change = np.zeros(k)
     for half in range(2):
         for i in range(m):

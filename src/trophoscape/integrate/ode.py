@@ -689,7 +689,7 @@ def simulate(
                     if over is not None:
                         patches = np.concatenate([patches, over])
                     retaken = retaker().retake(
-                        t_old, y_prev, solver.t, solver.y, dense, np.unique(patches), level,
+                        t_old, y_prev, solver.t, solver.y, dense, patches, level,
                         above, rtol_used, atol_used, census=inside)
                     removals[:] += retaken.removals
                     removed[:] += retaken.removed

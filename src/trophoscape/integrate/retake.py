@@ -257,7 +257,7 @@ class StepRetaker:
             Census times inside ``(t0, t1]``.
         """
         n = self.n
-        patches = np.unique(np.asarray(patches, dtype=np.int64))
+        patches = self._distinct(np.asarray(patches, dtype=np.int64))
         # the region's patches: those and their neighbours
         members = self._distinct(np.concatenate([patches, self._gather(self.links, patches)[1]]))
         todo = members  # the patches to integrate in this round
@@ -296,8 +296,11 @@ class StepRetaker:
                 y[targets] = after
                 break
             # those patches join; the groups they join are integrated again, the rest kept
-            new = np.setdiff1d(targets[grow] % n, members)
-            members = np.union1d(members, new)
+            joining = self._distinct(targets[grow] % n)
+            self._mark[members] = True
+            new = joining[~self._mark[joining]]
+            self._mark[members] = False
+            members = self._distinct(np.concatenate([members, new]))
             todo = self._joined(members, new)
         components = np.concatenate([members, members + n])
         species = (components >= n).astype(np.int64)
