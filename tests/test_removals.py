@@ -418,3 +418,35 @@ def test_links_stored_with_a_zero_rate_are_no_links(monkeypatch):
         got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
         assert sum(run.stats.removals) == len(crossings)
         assert np.max(np.abs(got - reference)) <= 1e-4
+
+
+@pytest.mark.parametrize("method", ["RK45", "DOP853"])
+def test_a_step_whose_region_would_be_most_of_the_network_is_taken_shorter(monkeypatch,
+                                                                           method):
+    # A step whose region of removals grows to most of the network (retake.WHOLE) from more
+    # than one patch is refused and taken again at half the length: on a network that is
+    # mostly one linked piece, the whole network would be one group whose every removal
+    # cuts its steps (DOP853's long steps at 100,000 patches never finished). Here WHOLE is
+    # lowered so that the 16-patch crash meets it; the result must still meet scipy's event
+    # restarts, with every removal, and some steps must have been refused.
+    from trophoscape.integrate import retake
+
+    monkeypatch.setattr(retake, "WHOLE", 0.25)
+    outcomes = []
+    original = retake.StepRetaker.retake
+
+    def spy(self, *args, **kwargs):
+        out = original(self, *args, **kwargs)
+        outcomes.append(out is None)
+        return out
+
+    monkeypatch.setattr(retake.StepRetaker, "retake", spy)
+    system, y0, duration = _crashing_network()
+    times = np.linspace(0.0, duration, 41)
+    reference, crossings = _scipy_removals(system, y0, duration, times)
+    run = simulate(system, y0, duration=duration, census_interval=duration / 40,
+                   extinction_abundance=LEVEL, method=method, rtol=1e-6, atol=1e-8)
+    got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
+    assert any(outcomes) and not all(outcomes)
+    assert sum(run.stats.removals) == len(crossings)
+    assert np.max(np.abs(got - reference)) <= 1e-4

@@ -665,7 +665,11 @@ def simulate(
                 inside = times[k:np.searchsorted(times, solver.t, side="right")]
                 retaken = retaker().retake(
                     t_old, y_prev, solver.t, solver.y, dense, over, -np.inf,
-                    np.zeros(2 * n, dtype=bool), rtol_used, atol_used, census=inside)
+                    np.zeros(2 * n, dtype=bool), rtol_used, atol_used, census=inside,
+                    refuse=True)
+                if retaken is None:  # a region of most of the network: a shorter step
+                    solver = restart(solver, t_old, y_prev.copy(), 0.5 * (solver.t - t_old))
+                    continue
                 local_evaluations += retaken.evaluations
             elif rule and solver.t > t_old:  # (a restart at the bound: a step of zero length)
                 now = solver.y >= level
@@ -690,7 +694,11 @@ def simulate(
                         patches = np.concatenate([patches, over])
                     retaken = retaker().retake(
                         t_old, y_prev, solver.t, solver.y, dense, patches, level,
-                        above, rtol_used, atol_used, census=inside)
+                        above, rtol_used, atol_used, census=inside, refuse=True)
+                    if retaken is None:  # too many removals for one step: a shorter one
+                        solver = restart(solver, t_old, y_prev.copy(),
+                                         0.5 * (solver.t - t_old))
+                        continue
                     removals[:] += retaken.removals
                     removed[:] += retaken.removed
                     local_evaluations += retaken.evaluations

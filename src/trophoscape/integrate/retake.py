@@ -235,7 +235,7 @@ class StepRetaker:
         return members[np.isin(label, label[np.isin(members, new)])]
 
     def retake(self, t0, y0, t1, y1, dense, patches, level, armed, rtol, atol,
-               census=()) -> Retaken:
+               census=(), refuse=False) -> Retaken | None:
         """Take the step ``t0 -> t1`` again over the patches with removals and around them.
 
         Parameters
@@ -255,6 +255,12 @@ class StepRetaker:
             Tolerances, per component.
         census : sequence of float
             Census times inside ``(t0, t1]``.
+        refuse : bool
+            Return None, instead of taking the step again over the whole network, when the
+            region grows to it (:data:`WHOLE`, :data:`ROUNDS`) from more than one patch: the
+            network is then mostly one group, whose every removal cuts its steps, so such a
+            step costs about its removals times the network's size; the caller takes a
+            shorter step instead.
         """
         n = self.n
         patches = self._distinct(np.asarray(patches, dtype=np.int64))
@@ -274,6 +280,8 @@ class StepRetaker:
         interpolant = None if self.compiled is None else _coefficients(dense)
         for rounds in range(1, ROUNDS + 2):
             if rounds > ROUNDS or members.size > WHOLE * n:
+                if refuse and patches.size > 1:
+                    return None
                 members = todo = np.arange(n)
             whole = members.size == n
             out = _Region(self, todo, t0, y0, t1, dense, level, armed, rtol, atol, census,
