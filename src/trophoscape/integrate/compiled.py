@@ -31,7 +31,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from ..model.compiled import jit, local_one
+from ..model.compiled import clipped, jit, local_one
 
 #: Status codes returned by :func:`run_groups`.
 DONE, NOT_A_NUMBER, TOO_MANY_STEPS = 0, 1, 2
@@ -590,16 +590,10 @@ def derivative_after(y, y_ref, f_ref, mv_ptr, mv_idx, mv_val, t_ptr, t_idx, grow
             continue
         mark[r] = False
         p = r if r < n else r - n
-        big_n = y[p]
-        big_p = y[p + n]
-        if big_n < 0.0:
-            big_n = 0.0
-        if big_p < 0.0:
-            big_p = 0.0
-        dn, dp = local_one(growth, response, harvest, big_n, big_p, area[p], block, p)
+        dn, dp = local_one(growth, response, harvest, clipped(y[p]), clipped(y[p + n]),
+                           area[p], block, p)
         acc = dn if r < n else dp
         for e in range(mv_ptr[r], mv_ptr[r + 1]):
-            v = y[mv_idx[e]]
-            acc += mv_val[e] * (0.0 if v < 0.0 else v)
+            acc += mv_val[e] * clipped(y[mv_idx[e]])
         f[r] = acc
     return f

@@ -50,6 +50,13 @@ def jit(function=None, *, inline=False, parallel=False):
 
 
 @jit(inline=True)
+def clipped(v):  # pragma: no cover - compiled
+    """``max(v, 0)`` that keeps a NaN, as ``np.maximum`` does (so a failing solve still
+    shows it)."""
+    return 0.0 if v < 0.0 else v
+
+
+@jit(inline=True)
 def local_one(growth, response, harvest, big_n, big_p, ai, q, i):  # pragma: no cover
     """The local terms of patch ``i`` (abundance per time) at abundances ``big_n, big_p``,
     already clipped at zero; ``q`` the parameter block (:data:`PARAMETER_ROWS`)."""
@@ -81,13 +88,8 @@ def local_one(growth, response, harvest, big_n, big_p, ai, q, i):  # pragma: no 
 def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no cover - compiled
     n = area.size
     for i in range(n):
-        big_n = y[i]
-        big_p = y[n + i]
-        # max(y, 0) that keeps a NaN (np.maximum does), so a failing solve still shows it
-        if big_n < 0.0:
-            big_n = 0.0
-        if big_p < 0.0:
-            big_p = 0.0
+        big_n = clipped(y[i])
+        big_p = clipped(y[n + i])
         x[i] = big_n
         x[n + i] = big_p
         dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
