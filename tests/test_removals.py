@@ -420,18 +420,10 @@ def test_links_stored_with_a_zero_rate_are_no_links(monkeypatch):
         assert np.max(np.abs(got - reference)) <= 1e-4
 
 
-@pytest.mark.parametrize("method", ["RK45", "DOP853"])
-def test_a_step_whose_region_would_be_most_of_the_network_is_taken_shorter(monkeypatch,
-                                                                           method):
-    # A step whose region of removals grows to most of the network (retake.WHOLE) from more
-    # than one patch is refused and taken again at half the length: on a network that is
-    # mostly one linked piece, the whole network would be one group whose every removal
-    # cuts its steps (DOP853's long steps at 100,000 patches never finished). Here WHOLE is
-    # lowered so that the 16-patch crash meets it; the result must still meet scipy's event
-    # restarts, with every removal, and some steps must have been refused.
+def _refusals(monkeypatch):
+    """Record whether each step taken again was refused (True) or taken (False)."""
     from trophoscape.integrate import retake
 
-    monkeypatch.setattr(retake, "WHOLE", 0.25)
     outcomes = []
     original = retake.StepRetaker.retake
 
@@ -441,6 +433,23 @@ def test_a_step_whose_region_would_be_most_of_the_network_is_taken_shorter(monke
         return out
 
     monkeypatch.setattr(retake.StepRetaker, "retake", spy)
+    return outcomes
+
+
+@pytest.mark.parametrize("method", ["RK45", "DOP853"])
+def test_a_step_whose_region_would_be_most_of_the_network_is_taken_shorter(monkeypatch,
+                                                                           method):
+    # From ode.REFUSE_MIN_PATCHES patches on, a step whose region of removals grows to most
+    # of the network (retake.WHOLE) from more than one patch is refused and taken again at
+    # half the length: on a network mostly in one piece, the whole network would be one
+    # group whose every removal cuts its steps (DOP853's long steps at 100,000 patches never
+    # finished). Here the threshold is lowered so that the 16-patch crash meets it; the
+    # result must still meet scipy's event restarts, with every removal, some steps must
+    # have been refused, and refused steps are not restarts (at most one per removal).
+    from trophoscape.integrate import ode
+
+    monkeypatch.setattr(ode, "REFUSE_MIN_PATCHES", 16)
+    outcomes = _refusals(monkeypatch)
     system, y0, duration = _crashing_network()
     times = np.linspace(0.0, duration, 41)
     reference, crossings = _scipy_removals(system, y0, duration, times)
@@ -449,4 +458,37 @@ def test_a_step_whose_region_would_be_most_of_the_network_is_taken_shorter(monke
     got = np.concatenate([run["prey"].values, run["predator"].values], axis=1)
     assert any(outcomes) and not all(outcomes)
     assert sum(run.stats.removals) == len(crossings)
+    assert run.stats.restarts <= len(crossings)
     assert np.max(np.abs(got - reference)) <= 1e-4
+
+
+def test_removals_at_the_same_moment_everywhere_are_not_refused_for_ever(monkeypatch):
+    # 1,000 identical patches on a ring (every patch sends as much as it receives) crash at
+    # the same moment, so every step holding that moment has a region of the whole network
+    # however short it is: the step is refused at most ode.MAX_REFUSALS times in a row, then
+    # taken over the whole network (without the cap the run never ended). Each patch then
+    # follows the lone patch, whose removals scipy's event restarts give.
+    from trophoscape.integrate import ode
+
+    outcomes = _refusals(monkeypatch)
+    n = 1000
+    i, j = np.arange(n), (np.arange(n) + 1) % n
+    ring = np.zeros((n, n))
+    ring[i, j] = ring[j, i] = 0.15
+    ring[i, i] = -0.3
+    system = make_system(make_model(n=n, capacity=40.0),
+                         prey_movement=sp.csr_array(0.1 * ring),
+                         predator_movement=sp.csr_array(ring))
+    y0 = np.concatenate([np.full(n, 5.0), np.full(n, 60.0)])
+    lone, lone_y0 = make_system(make_model(n=1, capacity=40.0)), np.array([5.0, 60.0])
+    duration = 10.0
+    times = np.linspace(0.0, duration, 21)
+    reference, crossings = _scipy_removals(lone, lone_y0, duration, times)
+    assert len(crossings) >= 1
+    run = simulate(system, y0, duration=duration, census_interval=duration / 20,
+                   extinction_abundance=LEVEL, rtol=1e-6, atol=1e-8)
+    in_a_row = max(len(r) for r in "".join("x" if o else "." for o in outcomes).split("."))
+    assert 1 <= in_a_row <= ode.MAX_REFUSALS
+    assert sum(run.stats.removals) == n * len(crossings)
+    for s, name in enumerate(("prey", "predator")):
+        assert np.max(np.abs(run[name].values - reference[:, [s]])) <= 1e-4

@@ -565,7 +565,7 @@ def joined(members, new, l_ptr, l_idx, position, mark):  # pragma: no cover - co
 
 @jit
 def derivative_after(y, y_ref, f_ref, mv_ptr, mv_idx, mv_val, t_ptr, t_idx, growth, response,
-                     harvest, area, block, mark):  # pragma: no cover - compiled
+                     harvest, area, block, mark, bits, ref_bits):  # pragma: no cover
     """The network's derivative at ``y``, from ``f_ref``, the derivative at ``y_ref``, where
     the two states differ in few components (a step taken again over a region): the rows
     that read a changed component (its patch's local terms, the rows its links reach) are
@@ -574,12 +574,14 @@ def derivative_after(y, y_ref, f_ref, mv_ptr, mv_idx, mv_val, t_ptr, t_idx, grow
     product), so the result is that of a whole evaluation, bit for bit; the others are kept.
 
     ``mv_ptr, mv_idx, mv_val`` the movement operator, ``t_ptr, t_idx`` its transpose's
-    pattern; ``mark`` a work array over the components, False on entry and on return."""
+    pattern; ``mark`` a work array over the components, False on entry and on return;
+    ``bits``, ``ref_bits`` the two states' bits (``int64`` views): a component differs when
+    its bits do (so 0.0 and -0.0 differ too, and a NaN is evaluated as it is)."""
     size = y.size
     n = size // 2
     f = f_ref.copy()
     for c in range(size):
-        if y[c] != y_ref[c] or y[c] != y[c]:
+        if bits[c] != ref_bits[c]:
             p = c if c < n else c - n
             mark[p] = True
             mark[p + n] = True

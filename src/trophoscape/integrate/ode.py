@@ -168,6 +168,14 @@ SPARE_SHARE = 1e-3
 #: A step that spares patches is at most about this many times the step they need: their
 #: largest error counts, divided by ``SPARE_STEPS ** (order + 1)``.
 SPARE_STEPS = 10.0
+#: From this many patches on, a step whose region of removals would grow to most of the
+#: network from more than one patch is tried again at half the length
+#: (:meth:`trophoscape.integrate.retake.StepRetaker.retake`, ``refuse``), at most
+#: :data:`MAX_REFUSALS` times between two steps taken again (where populations fall at the
+#: same moment everywhere, a shorter step does not help): on a large network mostly in one
+#: piece, that region is one group cut at every removal. Smaller networks take it as it is.
+REFUSE_MIN_PATCHES = 1_000
+MAX_REFUSALS = 4
 #: Methods that take the sparse analytic Jacobian.
 IMPLICIT = ("Radau", "BDF")
 
@@ -554,17 +562,28 @@ def simulate(
         for key in totals:
             totals[key] += int(getattr(s, key, 0) or 0)
 
-    def restart(old, t0, y_start, first_step, derivative=None):
+    def restart(old, t0, y_start, first_step, derivative=None, counted=True):
         """A fresh solver from ``(t0, y_start)``; the old one's counts kept, its arrays freed.
-        ``derivative``: ``y -> rhs(t0, y)`` cheaper than an evaluation, or None."""
+        ``derivative``: ``y -> rhs(t0, y)`` cheaper than an evaluation, or None;
+        ``counted``: in ``restarts`` (not a step refused, which is taken again shorter)."""
         nonlocal restarts, above
         add_counts(old)
         new = start(t0, y_start, first_step, derivative)
         _release(old)
-        restarts += 1
+        restarts += counted
         # which components can fall through the threshold from here
         above = new.y >= level
         return new
+
+    refusals = [0]  # steps refused in a row
+
+    def refusable():
+        return n >= REFUSE_MIN_PATCHES and refusals[0] < MAX_REFUSALS
+
+    def refused(old, t_old, y_prev):
+        """The step from ``t_old`` tried again at half the length."""
+        refusals[0] += 1
+        return restart(old, t_old, y_prev.copy(), 0.5 * (old.t - t_old), counted=False)
 
     def step_wanted(s):
         return getattr(s, "h_abs", None) or s.step_size
@@ -666,9 +685,9 @@ def simulate(
                 retaken = retaker().retake(
                     t_old, y_prev, solver.t, solver.y, dense, over, -np.inf,
                     np.zeros(2 * n, dtype=bool), rtol_used, atol_used, census=inside,
-                    refuse=True)
+                    refuse=refusable())
                 if retaken is None:  # a region of most of the network: a shorter step
-                    solver = restart(solver, t_old, y_prev.copy(), 0.5 * (solver.t - t_old))
+                    solver = refused(solver, t_old, y_prev)
                     continue
                 local_evaluations += retaken.evaluations
             elif rule and solver.t > t_old:  # (a restart at the bound: a step of zero length)
@@ -694,10 +713,9 @@ def simulate(
                         patches = np.concatenate([patches, over])
                     retaken = retaker().retake(
                         t_old, y_prev, solver.t, solver.y, dense, patches, level,
-                        above, rtol_used, atol_used, census=inside, refuse=True)
+                        above, rtol_used, atol_used, census=inside, refuse=refusable())
                     if retaken is None:  # too many removals for one step: a shorter one
-                        solver = restart(solver, t_old, y_prev.copy(),
-                                         0.5 * (solver.t - t_old))
+                        solver = refused(solver, t_old, y_prev)
                         continue
                     removals[:] += retaken.removals
                     removed[:] += retaken.removed
@@ -714,6 +732,8 @@ def simulate(
                     now = y_end >= level
                     now[falling] = False
                 above = now
+            if retaken is not None:  # at most MAX_REFUSALS refused between two taken
+                refusals[0] = 0
             first_row = k
             while k < times.size and times[k] <= t_end and (falling is None or times[k] < t_end):
                 if retaken is not None and times[k] == solver.t:

@@ -25,7 +25,8 @@ A patch outside whose correction exceeds the tolerance (or that the correction w
 through the threshold) joins the region, and the groups it joins are integrated again (the
 others keep their result), until every correction left outside is within the tolerance; a
 region of more than half of the network becomes the whole network, whose integration has no
-outside at all.
+outside at all (or, on large networks, the step is refused and tried again shorter: see
+``refuse`` in :meth:`StepRetaker.retake`).
 
 The same serves the few patches that a whole-network step leaves over the tolerance
 (:data:`trophoscape.integrate.ode.SPARE_SHARE`): they form the region, with or without
@@ -193,15 +194,17 @@ class StepRetaker:
         :func:`trophoscape.integrate.compiled.derivative_after`); None without it."""
         if self.compiled is None:
             return None
-        y_ref, f_ref = np.asarray(y_ref, dtype=float), np.asarray(f_ref, dtype=float)
+        y_ref = np.ascontiguousarray(y_ref, dtype=float)
+        f_ref = np.asarray(f_ref, dtype=float)
         matrix, pattern = self.movement, self._transposed
         growth, response, harvest = self._codes
 
         def derivative(y):
+            y = np.ascontiguousarray(y, dtype=float)
             return self.compiled.derivative_after(
-                np.asarray(y, dtype=float), y_ref, f_ref, matrix.indptr, matrix.indices,
-                matrix.data, pattern.indptr, pattern.indices, growth, response, harvest,
-                self.area, self._block, self._mark)
+                y, y_ref, f_ref, matrix.indptr, matrix.indices, matrix.data, pattern.indptr,
+                pattern.indices, growth, response, harvest, self.area, self._block,
+                self._mark, y.view(np.int64), y_ref.view(np.int64))
 
         return derivative
 
