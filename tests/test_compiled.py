@@ -211,16 +211,16 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
     # the same for the compiled integration of regions (trophoscape.integrate.compiled)
     code = ("import numpy as np, scipy.sparse as sp; "
             "from trophoscape.integrate import compiled as c; "
-            "m = sp.csr_array(np.array([[0., 2.], [3., 0.]])); "
-            "r = c.gather(m.indptr, m.indices, m.data, np.array([1, 0])); "
-            "print(c.run_groups._cache.__class__.__name__, c.gather._cache.__class__.__name__, "
+            "m = sp.csr_array(np.array([[0., 2., 0.], [3., 0., 0.], [0., 0., 0.]])); "
+            "r = c._groups(np.arange(3), m.indptr, m.indices, np.full(6, -1)); "
+            "print(c.run_groups._cache.__class__.__name__, c._groups._cache.__class__.__name__, "
             "c.region_setup._cache.__class__.__name__, c.corrections._cache.__class__.__name__, "
-            "c.joined._cache.__class__.__name__, [a.tolist() for a in r])")
+            "c.joined._cache.__class__.__name__, [r[0].tolist(), r[1]])")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
     assert out.returncode == 0, out.stderr
     *names, values = out.stdout.split(" ", 5)
     assert names == ["NullCache"] * 5
-    assert eval(values) == [[0, 1], [0, 1], [3.0, 2.0]]
+    assert eval(values) == [[0, 0, 1], 2]  # patches 0 and 1 linked, 2 alone
 
 
 def test_compiled_regions_from_several_threads_at_once():

@@ -344,25 +344,6 @@ def run_groups(starts, m, t0, span, x, q, armed_in, level, rtol, atol,
 
 
 @jit
-def gather(indptr, indices, data, rows):  # pragma: no cover - compiled
-    """As ``retake._gather``: the entries of a CSR matrix in ``rows``, row by row."""
-    total = 0
-    for r in range(rows.size):
-        total += indptr[rows[r] + 1] - indptr[rows[r]]
-    row = np.empty(total, dtype=np.int64)
-    col = np.empty(total, dtype=indices.dtype)
-    value = np.empty(total, dtype=data.dtype)
-    k = 0
-    for r in range(rows.size):
-        for e in range(indptr[rows[r]], indptr[rows[r] + 1]):
-            row[k] = r
-            col[k] = indices[e]
-            value[k] = data[e]
-            k += 1
-    return row, col, value
-
-
-@jit
 def _groups(patches, l_ptr, l_idx, position):  # pragma: no cover - compiled
     """The connected groups of ``patches`` by the links among them (the CSR ``l_ptr, l_idx``
     over the network's patches): a label per patch, 0, 1, ... in the order each group's first

@@ -575,14 +575,15 @@ def simulate(
         above = new.y >= level
         return new
 
-    refusals = [0]  # steps refused in a row
+    refusals = 0  # steps refused since the last step taken again
 
     def refusable():
-        return n >= REFUSE_MIN_PATCHES and refusals[0] < MAX_REFUSALS
+        return n >= REFUSE_MIN_PATCHES and refusals < MAX_REFUSALS
 
     def refused(old, t_old, y_prev):
         """The step from ``t_old`` tried again at half the length."""
-        refusals[0] += 1
+        nonlocal refusals
+        refusals += 1
         return restart(old, t_old, y_prev.copy(), 0.5 * (old.t - t_old), counted=False)
 
     def step_wanted(s):
@@ -733,7 +734,7 @@ def simulate(
                     now[falling] = False
                 above = now
             if retaken is not None:  # at most MAX_REFUSALS refused between two taken
-                refusals[0] = 0
+                refusals = 0
             first_row = k
             while k < times.size and times[k] <= t_end and (falling is None or times[k] < t_end):
                 if retaken is not None and times[k] == solver.t:

@@ -160,13 +160,6 @@ class StepRetaker:
         mark[out] = False
         return out
 
-    def _gather(self, matrix, rows):
-        """:func:`_gather`, by the compiled code when the retaker uses it."""
-        if self.compiled is None:
-            return _gather(matrix, rows)
-        return self.compiled.gather(matrix.indptr, matrix.indices, matrix.data,
-                                    np.asarray(rows, dtype=np.int64))
-
     def _positions(self, distinct, index):
         """Where each of ``index`` is in ``distinct`` (which holds them all)."""
         position = self._position
@@ -179,7 +172,7 @@ class StepRetaker:
         """The links among ``patches``, numbered as they come in ``patches``."""
         position = self._position
         position[patches] = np.arange(patches.size)
-        row, col, weight = self._gather(self.links, patches)
+        row, col, weight = _gather(self.links, patches)
         local = position[col]
         position[patches] = -1
         inside = local >= 0
@@ -268,7 +261,7 @@ class StepRetaker:
         n = self.n
         patches = self._distinct(np.asarray(patches, dtype=np.int64))
         # the region's patches: those and their neighbours
-        members = self._distinct(np.concatenate([patches, self._gather(self.links, patches)[1]]))
+        members = self._distinct(np.concatenate([patches, _gather(self.links, patches)[1]]))
         todo = members  # the patches to integrate in this round
         census = np.asarray(census, dtype=float)
         y = np.asarray(y1, dtype=float).copy()
@@ -362,7 +355,7 @@ class _Region:
         position = retaker._position  # -1 but for the region's components, for now
         position[comps] = np.arange(2 * m)
         # the region's rows of the movement operator: links within it, and in from outside
-        row, col, rate = retaker._gather(retaker.movement, comps)  # in the order of the rows
+        row, col, rate = _gather(retaker.movement, comps)  # in the order of the rows
         # entries stored with a zero rate are no links (the groups, from self.links, know
         # none of them; movement_operator stores zeros where no individual arrives alive)
         nonzero = rate != 0
