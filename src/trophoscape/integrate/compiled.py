@@ -126,8 +126,7 @@ def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
     the network's numbering; ``area`` and ``block`` the network's."""
     theta = (t - t0) / span
     for j in range(2 * s):
-        v = xs[j]
-        xc[j] = 0.0 if v < 0.0 else v  # keeps a NaN, as np.maximum does
+        xc[j] = clipped(xs[j])
     for i in range(s):
         p = patches[b + i]
         out[i], out[s + i] = local_one(growth, response, harvest, xc[i], xc[s + i],
@@ -141,12 +140,12 @@ def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
             within += w_val[k] * xc[local]
         inflow = _interpolant(kind, p_old, p_coef, whole_h, c, theta)
         for k in range(i_ptr[c], i_ptr[c + 1]):
-            v = _interpolant(kind, y_old, coef, whole_h, i_src[k], theta)
-            inflow += i_rate[k] * (0.0 if v < 0.0 else v)
+            inflow += i_rate[k] * clipped(_interpolant(kind, y_old, coef, whole_h, i_src[k],
+                                                       theta))
         out[j] = out[j] + within + inflow
         if sends:
-            v = _interpolant(kind, y_old, coef, whole_h, comps[c], theta)
-            gout[j] = xc[j] - (0.0 if v < 0.0 else v)
+            gout[j] = xc[j] - clipped(_interpolant(kind, y_old, coef, whole_h, comps[c],
+                                                   theta))
 
 
 @jit(parallel=True)
