@@ -342,3 +342,20 @@ def test_derivative_after_a_region_equals_a_whole_evaluation(rng, order):
         np.testing.assert_array_equal(got.view(np.int64), want.view(np.int64))
         assert not np.array_equal(got, f_ref)
         assert not retaker._mark.any()
+
+
+def test_derivative_after_is_not_used_without_scipys_csr_product(monkeypatch):
+    # consistency test: derivative_after repeats the sums of scipy's CSR product in their
+    # order; where the system falls back to `movement @ x` (another order), the restart
+    # evaluates the right-hand side itself instead
+    from trophoscape.integrate.retake import StepRetaker
+
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    system = CoupledSystem(model=make_model(n), area_km2=np.ones(n), prey_movement=ops[0],
+                           predator_movement=ops[1], local_terms="numpy")
+    retaker = StepRetaker(*system.parts(), compiled=True)
+    y = np.ones(2 * n)
+    assert retaker.derivative_after(y, y) is not None
+    monkeypatch.setattr(system_module, "_csr_matvec", None)
+    assert retaker.derivative_after(y, y) is None

@@ -184,8 +184,11 @@ class StepRetaker:
         """With the compiled code, ``y -> f``: the right-hand side at a state ``y`` that
         differs from ``y_ref`` (where it is ``f_ref``) in few components, by evaluating
         again only the rows those reach (bit for bit a whole evaluation: see
-        :func:`trophoscape.integrate.compiled.derivative_after`); None without it."""
-        if self.compiled is None:
+        :func:`trophoscape.integrate.compiled.derivative_after`); None without it, or when
+        the system's product is not scipy's CSR one (whose order of sums it repeats)."""
+        from ..model import system
+
+        if self.compiled is None or system._csr_matvec is None:
             return None
         y_ref = np.ascontiguousarray(y_ref, dtype=float)
         f_ref = np.asarray(f_ref, dtype=float)
