@@ -68,6 +68,26 @@ def test_compiled_rhs_equals_numpy_bit_for_bit(rng, growth, response, harvest):
                                       ref.rhs_function(internal=True)(0.0, yi))
 
 
+def test_compiled_rhs_is_the_same_on_any_number_of_threads(rng):
+    # consistency test: the whole RHS runs on numba's threads, row by row, each row summed
+    # in its own order; one thread or all of them must give the same bits
+    import numba
+
+    ops = grid_operators(20)
+    n = ops[0].shape[0]
+    model = varied_model(rng, n, "logistic", "beddington_deangelis", True)
+    ref, fast = pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")
+    y = state(rng, n)
+    want = ref.rhs_function()(0.0, y)
+    before = numba.get_num_threads()
+    try:
+        for threads in sorted({1, 2, numba.config.NUMBA_NUM_THREADS}):
+            numba.set_num_threads(min(threads, numba.config.NUMBA_NUM_THREADS))
+            np.testing.assert_array_equal(fast.rhs_function()(0.0, y), want)
+    finally:
+        numba.set_num_threads(before)
+
+
 def test_compiled_rhs_with_scalar_parameters_and_no_links(rng):
     # parameters may be scalars (CoupledSystem.with_model takes them); no links at all
     n = 30
@@ -199,12 +219,16 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
             "q = {k: np.ones(3) for k in c.PARAMETER_ROWS[:-1]}; "
             "f = c.local_terms_function(LocalModel('logistic', 'holling2', q), np.ones(3)); "
             "y = np.arange(6.0); x = np.empty(6); dy = f(y, x); "
-            "print(c._local_terms._cache.__class__.__name__, dy.tolist())")
+            "import scipy.sparse as sp; "
+            "w = c.rhs_function(LocalModel('logistic', 'holling2', q), np.ones(3), "
+            "sp.csr_array((6, 6))); assert w(0.0, y).tolist() == dy.tolist(); "
+            "print(c._local_terms._cache.__class__.__name__ + ',' + "
+            "c._whole_rhs._cache.__class__.__name__, dy.tolist())")
     env = dict(os.environ, NUMBA_CACHE_LOCATOR_CLASSES="no_such_module.NoLocator")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
     assert out.returncode == 0, out.stderr
     name, values = out.stdout.split(" ", 1)
-    assert name == "NullCache"  # compiled, not cached
+    assert name == "NullCache,NullCache"  # compiled, not cached (local terms, whole RHS)
     # logistic r n (1 - n/K) - a n p / (1 + a h n) with every parameter 1, n = 0..2, p = 3..5
     n, p = np.arange(3.0), np.arange(3.0, 6.0)
     np.testing.assert_allclose(eval(values)[:3], n * (1 - n) - n * p / (1 + n))

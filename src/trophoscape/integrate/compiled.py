@@ -20,6 +20,11 @@ union-find, the links within it and in from outside; :func:`corrections`: what i
 the components just outside; :func:`joined`: the groups that patches joining it fall into),
 where the numpy path builds the same arrays by index arithmetic and scipy.
 
+Indices read from arrays (CSR rows and columns, sources) are taken as unsigned (``np.uintp``)
+where they index: with signed ones numba checks every index for a negative (wrap-around)
+value, which made such loops about twice as slow (benchmarks/README.md, "The whole RHS on both
+cores").
+
 Used only with the compiled local terms (``CoupledSystem.local_terms_used == "compiled"``,
 numba installed); the numpy path is the reference and the fallback. This module imports
 numba at import time: :mod:`trophoscape.integrate.retake` imports it only when a retaker
@@ -42,6 +47,7 @@ MAX_STEPS = 100_000
 @jit(inline=True)
 def _horner(coef, row, theta):  # pragma: no cover - compiled
     """``sum_j coef[row, j] theta**(j + 1)`` by Horner's rule (``crossings.horner``)."""
+    row = np.uintp(row)
     terms = coef.shape[1]
     acc = coef[row, terms - 1] * theta
     for j in range(terms - 2, -1, -1):
@@ -55,6 +61,7 @@ def _interpolant(kind, old, coef, h, row, theta):  # pragma: no cover - compiled
     """Row ``row`` of the whole step's interpolant at ``theta`` (0 at the step's start):
     scipy's Runge–Kutta form (kind 0: ``old + h sum_j coef_j theta**(j + 1)``) or its DOP853
     form (kind 1: factors alternately times ``theta`` and ``1 - theta``)."""
+    row = np.uintp(row)
     if kind == 0:
         return h * _horner(coef, row, theta) + old[row]
     y = 0.0
@@ -134,12 +141,12 @@ def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
     for j in range(2 * s):
         c = b + j if j < s else m + b + (j - s)
         within = 0.0
-        for k in range(w_ptr[c], w_ptr[c + 1]):
+        for k in range(np.uintp(w_ptr[c]), np.uintp(w_ptr[c + 1])):
             col = w_idx[k]
             local = col - b if col < m else col - m - b + s
-            within += w_val[k] * xc[local]
+            within += w_val[k] * xc[np.uintp(local)]
         inflow = _interpolant(kind, p_old, p_coef, whole_h, c, theta)
-        for k in range(i_ptr[c], i_ptr[c + 1]):
+        for k in range(np.uintp(i_ptr[c]), np.uintp(i_ptr[c + 1])):
             inflow += i_rate[k] * clipped(_interpolant(kind, y_old, coef, whole_h, i_src[k],
                                                        theta))
         out[j] = out[j] + within + inflow
@@ -354,8 +361,8 @@ def _groups(patches, l_ptr, l_idx, position):  # pragma: no cover - compiled
     parent = np.arange(m)
     for i in range(m):
         p = patches[i]
-        for e in range(l_ptr[p], l_ptr[p + 1]):
-            j = position[l_idx[e]]
+        for e in range(np.uintp(l_ptr[p]), np.uintp(l_ptr[p + 1])):
+            j = position[np.uintp(l_idx[e])]
             if j < 0:
                 continue
             a = i
@@ -438,11 +445,11 @@ def region_setup(patches, n, l_ptr, l_idx, mv_ptr, mv_idx, mv_val, position, kin
     ni = 0
     for c in range(2 * m):
         r = comps[c]
-        for e in range(mv_ptr[r], mv_ptr[r + 1]):
+        for e in range(np.uintp(mv_ptr[r]), np.uintp(mv_ptr[r + 1])):
             rate = mv_val[e]
             if rate == 0.0:
                 continue
-            col = mv_idx[e]
+            col = np.uintp(mv_idx[e])
             local = position[col]
             if local >= 0:
                 w_idx[nw] = local
@@ -487,8 +494,8 @@ def corrections(members, n, t_ptr, t_idx, t_val, sent, mark, position):  # pragm
     for half in range(2):
         for i in range(m):
             c = members[i] + half * n
-            for e in range(t_ptr[c], t_ptr[c + 1]):
-                col = t_idx[e]
+            for e in range(np.uintp(t_ptr[c]), np.uintp(t_ptr[c + 1])):
+                col = np.uintp(t_idx[e])
                 if not mark[col] and position[col] == -1:
                     position[col] = -2
                     k += 1
@@ -504,10 +511,10 @@ def corrections(members, n, t_ptr, t_idx, t_val, sent, mark, position):  # pragm
     for half in range(2):
         for i in range(m):
             c = members[i] + half * n
-            for e in range(t_ptr[c], t_ptr[c + 1]):
-                col = t_idx[e]
+            for e in range(np.uintp(t_ptr[c]), np.uintp(t_ptr[c + 1])):
+                col = np.uintp(t_idx[e])
                 if not mark[col]:
-                    change[position[col]] += t_val[e] * sent[c]
+                    change[np.uintp(position[col])] += t_val[e] * sent[c]
     for i in range(k):
         position[targets[i]] = -1
     for i in range(m):
@@ -565,8 +572,8 @@ def derivative_after(y, y_ref, f_ref, mv_ptr, mv_idx, mv_val, t_ptr, t_idx, grow
             p = c if c < n else c - n
             mark[p] = True
             mark[p + n] = True
-            for e in range(t_ptr[c], t_ptr[c + 1]):
-                mark[t_idx[e]] = True
+            for e in range(np.uintp(t_ptr[c]), np.uintp(t_ptr[c + 1])):
+                mark[np.uintp(t_idx[e])] = True
     for r in range(size):
         if not mark[r]:
             continue
@@ -575,7 +582,7 @@ def derivative_after(y, y_ref, f_ref, mv_ptr, mv_idx, mv_val, t_ptr, t_idx, grow
         dn, dp = local_one(growth, response, harvest, clipped(y[p]), clipped(y[p + n]),
                            area[p], block, p)
         acc = dn if r < n else dp
-        for e in range(mv_ptr[r], mv_ptr[r + 1]):
-            acc += mv_val[e] * clipped(y[mv_idx[e]])
+        for e in range(np.uintp(mv_ptr[r]), np.uintp(mv_ptr[r + 1])):
+            acc += mv_val[e] * clipped(y[np.uintp(mv_idx[e])])
         f[r] = acc
     return f

@@ -42,7 +42,6 @@ crossing (``tests/test_removals.py``), and scipy's ``solve_ivp`` without removal
 
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -390,6 +389,8 @@ class _Region:
         stay positive over the whole step summed into one polynomial per component) and
         integrated group by group (:func:`~trophoscape.integrate.compiled.run_groups`), as
         the numpy setup and :meth:`_run` do."""
+        from ..model.compiled import ONE_AT_A_TIME  # numba's threads: one kernel at a time
+
         module = retaker.compiled
         kind, y_old, coef, h = interpolant
         links, movement = retaker.links, retaker.movement
@@ -406,7 +407,7 @@ class _Region:
         status = np.zeros(groups, dtype=np.int64)
         evaluations = np.zeros(groups)
         census = np.ascontiguousarray(census, dtype=float)
-        with _ONE_AT_A_TIME:
+        with ONE_AT_A_TIME:
             module.run_groups(
                 starts, m, self.t0, self.span, self.x, self.q, np.asarray(armed)[comps],
                 level, rtol, atol, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate,
@@ -637,10 +638,6 @@ class _Region:
         self.x[self.index] = x
         self.q[self.index] = q
 
-
-#: The compiled regions run their groups on numba's threads, whose default pool (workqueue)
-#: ends the process when two Python threads enter it at once: one region at a time.
-_ONE_AT_A_TIME = threading.Lock()
 
 _NOT_A_NUMBER = ("the error estimate is not a number near time {time:.6g} (a step taken "
                  "again over a region, for removals or patches over the tolerance): "

@@ -3,7 +3,9 @@
 numpy evaluates the local terms of :func:`trophoscape.model.system._rhs` in about 16 passes over the
 patches, each reading and writing whole arrays; this code does all of them in one pass
 (clip, densities, growth, predation, scaling back by the area), reading each parameter once.
-The sparse product stays scipy's (a compiled product was slower, benchmarks/README.md).
+:func:`rhs_function` does that pass and the sparse product in one call on numba's threads,
+summing each row in the order of scipy's CSR product (benchmarks/README.md, "The whole RHS on
+both cores").
 
 It is used only where it pays (see ``system.COMPILED_MIN_PATCHES``) and only when numba is
 installed (``pip install "trophoscape[fast]"``); the numpy path is the reference and the
@@ -18,9 +20,15 @@ system takes the compiled path (``system._compiled_module``), never at ``import 
 
 from __future__ import annotations
 
+import threading
+
 import numba
 import numpy as np
 
+#: The kernels that run on numba's threads (the whole RHS here, the regions' groups in
+#: :mod:`trophoscape.integrate.compiled`) take this lock: numba's default thread pool
+#: (workqueue) ends the process when two Python threads enter it at once.
+ONE_AT_A_TIME = threading.Lock()
 #: Growth forms and responses the compiled code knows, by their names in ``dynamics``.
 GROWTH_CODES = {"exponential": 0, "logistic": 1, "allee": 2}
 RESPONSE_CODES = {"lotka_volterra": 0, "holling2": 1, "holling3": 2, "beddington_deangelis": 3}
@@ -95,6 +103,33 @@ def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no co
         dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
 
 
+@jit(parallel=True)
+def _whole_rhs(growth, response, harvest, y, area, q, x, dy, indptr, indices,
+               data):  # pragma: no cover - compiled
+    """The whole right-hand side on numba's threads: the local terms (as
+    :func:`_local_terms`), then ``dy += M x`` row by row, each row summed in the order of its
+    stored entries starting from the local term, which is the order of scipy's CSR product
+    (``csr_matvec``), so the numbers are those of the numpy path bit for bit whatever the
+    number of threads (rows are independent). The indices are read as unsigned: with signed
+    ones numba checks each for a negative (wrap-around) index, and the product took 2.4 ms
+    instead of 1.0 at 100,000 patches."""
+    n = area.size
+    for i in numba.prange(n):
+        big_n = clipped(y[i])
+        big_p = clipped(y[n + i])
+        x[i] = big_n
+        x[n + i] = big_p
+        dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
+    for row in numba.prange(2 * n):
+        acc = dy[row]
+        k = np.uintp(indptr[row])
+        end = np.uintp(indptr[row + 1])
+        while k < end:
+            acc += data[k] * x[np.uintp(indices[k])]
+            k += np.uintp(1)
+        dy[row] = acc
+
+
 def parameter_block(model, n):
     """The parameters of ``model`` as the block the compiled code reads, shape (9, n)."""
     params = model.params
@@ -144,3 +179,28 @@ def local_terms_function(model, area):
         return dy
 
     return local
+
+
+def rhs_function(model, area, movement):
+    """``rhs(t, y) -> dy/dt`` of the whole network in one compiled call on numba's threads:
+    the local terms of ``model`` and the sparse product with ``movement`` (CSR, shape
+    (2 n, 2 n), in the order of ``area``). Bit for bit the numpy path's
+    (:func:`trophoscape.model.system._rhs`); each call returns a fresh array and reuses one
+    buffer for the clipped state, so one closure must not be called from several threads
+    at once."""
+    area = np.ascontiguousarray(area, dtype=np.float64)
+    n = area.size
+    block = parameter_block(model, n)
+    growth, response, harvest = codes(model)
+    indptr, indices = movement.indptr, movement.indices
+    data = np.ascontiguousarray(movement.data, dtype=np.float64)
+    x = np.empty(2 * n)
+    whole = _whole_rhs
+
+    def rhs(t, y):
+        dy = np.empty(2 * n)
+        with ONE_AT_A_TIME:
+            whole(growth, response, harvest, y, area, block, x, dy, indptr, indices, data)
+        return dy
+
+    return rhs

@@ -240,13 +240,15 @@ def _local_terms(model, area, compiled: bool):
 def _rhs(n, area, model, movement, compiled=False):
     """``rhs(t, y)`` for a state in the order of ``area`` / ``model`` / ``movement``.
 
-    ``compiled=True`` evaluates the local terms with compiled code
-    (:mod:`trophoscape.model.compiled`, same numbers bit for bit).
+    ``compiled=True`` evaluates the whole of it with compiled code on numba's threads
+    (:func:`trophoscape.model.compiled.rhs_function`, same numbers bit for bit).
 
     Buffers for the clipped state and the densities are allocated once; each call still
     returns a fresh array, because scipy's Runge–Kutta solvers keep the returned derivative
     (``self.f``) and reuse it after a rejected step, while the stages call ``rhs`` again.
     """
+    if compiled:
+        return _compiled_module().rhs_function(model, area, movement)
     x = np.empty(2 * n)
     m = 2 * n
     local = _local_terms(model, area, compiled)

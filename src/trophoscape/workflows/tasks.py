@@ -356,9 +356,11 @@ def _run_dask(fn, tasks, on_result, scheduler, dask_local, retries, bar):
                                  "workers, a whole number of at least 1", field=param("dask_local"))
             # A task is moved off a lost worker this many times before it counts as failed.
             with dask.config.set({"distributed.scheduler.allowed-failures": int(retries)}):
+                # one thread per worker, numba's too (the compiled RHS and regions run on
+                # numba's threads, as many as the machine has cores by default)
                 cluster = LocalCluster(n_workers=int(dask_local), threads_per_worker=1,
                                        host="127.0.0.1", dashboard_address=None,
-                                       processes=True)
+                                       processes=True, env={"NUMBA_NUM_THREADS": "1"})
             client = Client(cluster)
         else:
             try:
