@@ -60,7 +60,9 @@ def child(folder: Path, profile: str | None, kernel: str, maps: bool = False) ->
     stats = result.trajectory.stats
     sizes = {p.name: p.stat().st_size / 1e6 for p in (folder / "out").iterdir()}
     return {"stages": {k: v.tolist() for k, v in rows.items()},
-            "peak_mb": timed["peak_mb"], "base_mb": timed["base_mb"], "links": result.summary["links"],
+            "peak_mb": timed["peak_mb"], "base_mb": timed["base_mb"],
+            "write_tree_mb": timed["write_tree_mb"], "children_mb": timed["children_mb"],
+            "links": result.summary["links"],
             "solver": {"method": stats.method, "steps": stats.steps, "nfev": stats.nfev,
                        "restarts": stats.restarts,
                        "local_terms": result.summary["solver"]["local_terms"]},
@@ -108,7 +110,9 @@ def main():
         results[n] = json.loads(line[7:])
         r = results[n]
         print(f"\n{n:,} patches, {r['links']:,} links ({time.perf_counter() - t0:.0f} s in the "
-              f"child); peak RSS {r['peak_mb']:.0f} MB (imports {r['base_mb']:.0f} MB); solver "
+              f"child); peak RSS {r['peak_mb']:.0f} MB (imports {r['base_mb']:.0f} MB); while the "
+              f"files are written, with the maps' process (PSS summed) {r['write_tree_mb']:.0f} MB, "
+              f"that process's own peak RSS {r['children_mb']:.0f} MB; solver "
               f"{r['solver']}; outputs " + ", ".join(f"{k} {v:.1f} MB"
                                                     for k, v in sorted(r["outputs_mb"].items())))
         total = np.array(r["stages"]["end to end"])
@@ -129,8 +133,9 @@ def main():
         print(f"target: cost per patch at {big:,} within 2x of {small:,}: {b[1] / a[1]:.2f}x CPU "
               f"({b[0] / a[0]:.2f}x wall) -> {'PASS' if b[1] / a[1] <= 2 else 'MISS'}")
     for n, r in results.items():
-        print(f"target: peak memory under 4 GB at {n:,}: {r['peak_mb']:.0f} MB -> "
-              f"{'PASS' if r['peak_mb'] < 4096 else 'MISS'}")
+        peak = max(r["peak_mb"], r["write_tree_mb"])  # the maps' process counted
+        print(f"target: peak memory under 4 GB at {n:,}: {peak:.0f} MB -> "
+              f"{'PASS' if peak < 4096 else 'MISS'}")
 
 
 if __name__ == "__main__":

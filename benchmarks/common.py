@@ -145,6 +145,42 @@ def peak_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
+class TreeMemory:
+    """Peak memory of this process and its children together while in the ``with`` block,
+    MB: their proportional set sizes (PSS: a page shared by several processes, as a forked
+    child shares its parent's, is split between them) summed, sampled every 0.05 s by a
+    thread (psutil). ``peak_mb`` is the largest sum seen."""
+
+    def __init__(self, every: float = 0.05):
+        self.every = every
+        self.peak_mb = 0.0
+
+    def _sample(self) -> None:
+        import psutil
+
+        me = psutil.Process()
+        while not self._done.wait(self.every):
+            total = 0
+            for proc in [me, *me.children(recursive=True)]:
+                try:
+                    total += proc.memory_full_info().pss
+                except (psutil.Error, AttributeError):
+                    pass
+            self.peak_mb = max(self.peak_mb, total / 2**20)
+
+    def __enter__(self):
+        import threading
+
+        self._done = threading.Event()
+        self._thread = threading.Thread(target=self._sample, daemon=True)
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self._done.set()
+        self._thread.join()
+
+
 #: The study functions whose time each end-to-end benchmark reports as a stage.
 STUDY_STAGES = ("read_patches", "build_network", "simulate", "persistence_table",
                 "synchrony_analysis", "stability_analysis", "capacity_analysis")
@@ -178,7 +214,10 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
     dict
         ``stages`` (name -> (wall, CPU) seconds, every :data:`STUDY_STAGES` name and
         ``series_blocks``), ``load``, ``run``, ``write``, ``total`` (the same pairs),
-        ``study``, ``result``, ``base_mb`` (peak RSS before the run) and ``peak_mb``.
+        ``study``, ``result``, ``base_mb`` (peak RSS before the run), ``peak_mb``,
+        ``write_tree_mb`` (:class:`TreeMemory` over ``write_run_files``: this process and
+        the one that draws the maps, if any) and ``children_mb`` (the largest child's peak
+        RSS, pages shared with this process included).
     """
     import trophoscape.workflows.study as study_module
     import trophoscape.model.system as system_module
@@ -209,7 +248,8 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
         with staged_folder(folder / "out") as stage:
             result = study_module.run_study(study, series_to=stage / "timeseries.nc")
             t2 = now()
-            write_run_files(result, stage, maps=maps)
+            with TreeMemory() as tree:
+                write_run_files(result, stage, maps=maps)
         t3 = now()
     finally:
         if prof is not None:
@@ -222,4 +262,6 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
     zero = np.zeros(2)
     return {"stages": {k: stages.get(k, zero) for k in (*STUDY_STAGES, "series_blocks")},
             "load": t1 - t0, "run": t2 - t1, "write": t3 - t2, "total": t3 - t0,
-            "study": study, "result": result, "base_mb": base, "peak_mb": peak_mb()}
+            "study": study, "result": result, "base_mb": base, "peak_mb": peak_mb(),
+            "write_tree_mb": tree.peak_mb,
+            "children_mb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0}

@@ -1,0 +1,139 @@
+"""Maps and report drawn in a second process (``report.run.MAPS_APART_MIN_PATCHES``).
+
+Consistency tests: the folder written with the maps drawn apart must be the one written in
+one process, an error in either process must end both and leave no output, and nothing may
+keep running afterwards.
+"""
+
+import json
+import multiprocessing
+import os
+import re
+import time
+
+import numpy as np
+import pytest
+from matplotlib.image import imread
+
+import trophoscape as ts
+from trophoscape.errors import InputError, RunError
+from trophoscape.report import html as html_module
+from trophoscape.report import run as run_module
+from trophoscape.scenario import parse_scenario
+from trophoscape.testing import grid_landscape
+
+apart_possible = pytest.mark.skipif(
+    "fork" not in multiprocessing.get_all_start_methods()
+    or len(os.sched_getaffinity(0)) < 2,
+    reason="the maps are drawn apart only where processes fork and there are two cores")
+
+
+@pytest.fixture(scope="module")
+def result(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("apart")
+    land = grid_landscape(3, 4, spacing_km=1.5, size_km=1.0)
+    land.frame.to_file(folder / "p.gpkg", driver="GPKG", engine="pyogrio")
+    sc = parse_scenario({"name": "Apart check", "patches": {"path": "p.gpkg",
+                                                             "id_field": "patch_id"},
+                         "run": {"duration": 30.0, "burn_in": 5.0}}, base_dir=folder)
+    return ts.run_study(ts.build_study(sc))
+
+
+@pytest.fixture
+def apart(monkeypatch):
+    """Maps drawn apart from the first patch on; counts the processes started."""
+    started = []
+    original = run_module._beside
+
+    def counting(work):
+        started.append(1)
+        return original(work)
+
+    monkeypatch.setattr(run_module, "MAPS_APART_MIN_PATCHES", 1)
+    monkeypatch.setattr(run_module, "_beside", counting)
+    return started
+
+
+def no_process_left():
+    return multiprocessing.active_children() == []
+
+
+@apart_possible
+def test_maps_drawn_apart_are_those_drawn_in_one_process(result, tmp_path, apart):
+    ts.write_run(result, tmp_path / "apart")
+    assert apart == [1]  # the second process was used
+    run_module.MAPS_APART_MIN_PATCHES = 1 << 40  # (monkeypatch restores it)
+    ts.write_run(result, tmp_path / "here")
+    assert apart == [1]  # and not here
+    maps = sorted(p.name for p in (tmp_path / "here" / "maps").iterdir())
+    assert maps and maps == sorted(p.name for p in (tmp_path / "apart" / "maps").iterdir())
+    for name in maps:
+        np.testing.assert_array_equal(imread(tmp_path / "apart" / "maps" / name),
+                                      imread(tmp_path / "here" / "maps" / name))
+    assert ((tmp_path / "apart" / "patches.csv").read_bytes()
+            == (tmp_path / "here" / "patches.csv").read_bytes())
+    summaries = [json.loads((tmp_path / f / "summary.json").read_text("utf-8"))
+                 for f in ("apart", "here")]
+    for summary in summaries:
+        summary["provenance"].pop("created")  # when the folder was written
+    assert summaries[0] == summaries[1]
+    # the report says when it was written; the rest is the same
+    stamp = re.compile(r"Run \d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\+00:00")
+    pages = [stamp.subn("Run (time)", (tmp_path / f / "report.html").read_text("utf-8"))
+             for f in ("apart", "here")]
+    assert pages[0][1] == 1 and pages[0] == pages[1]
+    assert no_process_left()
+
+
+@apart_possible
+def test_an_error_while_drawing_apart_is_raised_here_and_nothing_is_written(
+        result, tmp_path, apart, monkeypatch):
+    def bad(*args, **kwargs):
+        raise InputError("no such colour scheme", field="report.colours")
+
+    monkeypatch.setattr(html_module, "write_figures_and_report", bad)
+    with pytest.raises(InputError, match="no such colour scheme") as caught:
+        ts.write_run(result, tmp_path / "out")
+    assert caught.value.field == "report.colours"  # the same error, its parts whole
+    assert apart == [1]
+    assert not (tmp_path / "out").exists()
+    assert no_process_left()
+
+
+@apart_possible
+def test_a_failure_writing_the_files_ends_the_drawing_process(result, tmp_path, apart,
+                                                              monkeypatch):
+    def slow(*args, **kwargs):
+        time.sleep(120)
+
+    def failing(*args, **kwargs):
+        raise RunError("disk full")
+
+    monkeypatch.setattr(html_module, "write_figures_and_report", slow)
+    monkeypatch.setattr(run_module, "_write_files", failing)
+    t0 = time.perf_counter()
+    with pytest.raises(RunError, match="disk full"):
+        ts.write_run(result, tmp_path / "out")
+    assert time.perf_counter() - t0 < 60  # not waiting for the drawing
+    assert apart == [1]
+    assert no_process_left()
+    assert not (tmp_path / "out").exists()
+
+
+@apart_possible
+def test_a_drawing_process_that_dies_is_a_run_error(result, tmp_path, apart, monkeypatch):
+    def dies(*args, **kwargs):
+        os._exit(3)
+
+    monkeypatch.setattr(html_module, "write_figures_and_report", dies)
+    with pytest.raises(RunError, match="exit code 3"):
+        ts.write_run(result, tmp_path / "out")
+    assert no_process_left()
+    assert not (tmp_path / "out").exists()
+
+
+def test_small_runs_and_workers_draw_in_their_own_process(monkeypatch):
+    assert not run_module._apart(run_module.MAPS_APART_MIN_PATCHES - 1)
+    monkeypatch.setattr(multiprocessing.current_process(), "_config",
+                        {**multiprocessing.current_process()._config, "daemon": True})
+    assert not run_module._apart(run_module.MAPS_APART_MIN_PATCHES)
