@@ -260,3 +260,45 @@ def test_failing_persistence_with_replicates_keeps_the_replicate_columns(grid_fi
     assert result.summary.keys() == base.summary.keys()
     assert result.patches["prey_persistence_share"].isna().all()
     assert math.isnan(result.summary["prey_regional_survival_low"])
+
+
+@pytest.fixture
+def stability_beside(monkeypatch):
+    """The stability analysis on a second thread from the first patch on; counts the
+    threads started."""
+    started = []
+    original = trophoscape.workflows.study._Beside
+
+    def counting(work):
+        started.append(1)
+        return original(work)
+
+    monkeypatch.setattr(trophoscape.workflows.study, "STABILITY_BESIDE_MIN_PATCHES", 1)
+    monkeypatch.setattr(trophoscape.workflows.study, "_Beside", counting)
+    return started
+
+
+def test_stability_on_a_second_thread_gives_the_same_results(grid_file, baseline,
+                                                             stability_beside):
+    # consistency test: the same table, columns in the same order, and the same summary
+    result = ts.run_study(grid_study(grid_file, duration=6.0, analysis=ON))
+    assert stability_beside == [1]
+    pd.testing.assert_frame_equal(result.patches, baseline.patches)
+    assert same(result.summary, baseline.summary)
+
+
+def test_stability_failing_on_a_second_thread_is_recorded_the_same(grid_file, baseline,
+                                                                   stability_beside,
+                                                                   monkeypatch):
+    fail_with(monkeypatch, "stability_analysis", RuntimeError("forced failure"))
+    with pytest.warns(TrophoscapeWarning, match="the stability analysis failed"):
+        result = ts.run_study(grid_study(grid_file, duration=6.0, analysis=ON))
+    assert stability_beside == [1]
+    assert result.summary["analysis_errors"] == [
+        {"analysis": "stability", "reason": "RuntimeError: forced failure"}]
+    assert list(result.patches.columns) == list(baseline.patches.columns)
+    assert result.patches[["prey_equilibrium", "predator_equilibrium"]].isna().all().all()
+    # an interrupt there is raised here, not swallowed
+    fail_with(monkeypatch, "stability_analysis", KeyboardInterrupt())
+    with pytest.raises(KeyboardInterrupt):
+        ts.run_study(grid_study(grid_file, duration=6.0, analysis=ON))

@@ -588,6 +588,41 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
                      extras=extras, series_file=None if writer is None else writer.path)
 
 
+#: From this many patches the stability analysis (which needs the system, not the run) is
+#: computed on a second thread while persistence, synchrony and capacity are computed on this
+#: one; its numbers and where they go are the same either way. Its Krylov steps and sparse
+#: products, and synchrony's transforms, let go of Python's lock, so the two overlap
+#: (benchmarks/README.md, "The whole RHS on both cores").
+STABILITY_BESIDE_MIN_PATCHES = 20_000
+
+
+class _Beside:
+    """``work()`` on a daemon thread, started now; calling the object waits for it and
+    returns its result or raises its exception. A daemon thread cannot keep the process
+    running after the command ends."""
+
+    def __init__(self, work):
+        import threading
+
+        self._outcome = None
+
+        def run():
+            try:
+                self._outcome = (True, work())
+            except BaseException as exc:  # noqa: BLE001 - raised again in the caller
+                self._outcome = (False, exc)
+
+        self._thread = threading.Thread(target=run, name="trophoscape-stability", daemon=True)
+        self._thread.start()
+
+    def __call__(self):
+        self._thread.join()
+        done, value = self._outcome
+        if not done:
+            raise value
+        return value
+
+
 #: Per-patch columns of the output contract, in order (SCENARIO.md); others follow.
 CONTRACT_COLUMNS = ("persists", "occupancy", "mean", "cv", "last_extinction", "sync_local",
                     "sync_region")
@@ -662,6 +697,14 @@ def analyse(study: Study, traj: Trajectory):
         extras.update(more)
 
     level = sc["run.extinction_abundance"]
+    stability_result = None
+    if sc["analysis.stability"]:
+        def compute_stability():
+            return stability_analysis(study.system)
+
+        stability_result = (_Beside(compute_stability)
+                            if study.system.n_patches >= STABILITY_BESIDE_MIN_PATCHES
+                            else compute_stability)
 
     def persistence():
         pers = persistence_table(traj, burn_in=burn_in, extinction_abundance=level)
@@ -692,7 +735,7 @@ def analyse(study: Study, traj: Trajectory):
 
     if sc["analysis.stability"]:
         def stability():
-            stab = stability_analysis(study.system)
+            stab = stability_result()
             eq = pd.DataFrame({f"{s}_equilibrium": stab.pop(f"{s}_equilibrium")
                                for s in SPECIES}, index=index)
             return eq, {"stability": stab.pop("stability"), "stability_details": stab}, {}
