@@ -12,6 +12,7 @@ import scipy.sparse as sp
 from trophoscape.model import system as system_module
 from trophoscape.model.dynamics import GROWTH_FORMS, RESPONSES, LocalModel
 from trophoscape.model.network import build_network, movement_operator
+from trophoscape.integrate import ode as ode_module
 from trophoscape.integrate.ode import simulate
 from trophoscape.model.system import COMPILED_MIN_PATCHES, CoupledSystem
 from trophoscape.testing import grid_landscape
@@ -88,6 +89,32 @@ def test_compiled_rhs_is_the_same_on_any_number_of_threads(rng):
         numba.set_num_threads(before)
 
 
+def test_compiled_run_is_the_same_on_any_number_of_threads(rng):
+    # consistency test: stages, errors, regions on numba's threads, each component's sums
+    # in one order; one thread or all of them must give the same run bit for bit
+    import numba
+
+    ops = grid_operators(20)
+    n = ops[0].shape[0]
+    model = varied_model(rng, n, "logistic", "holling2")
+    fast = pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")[1]
+    y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
+    before = numba.get_num_threads()
+    runs = []
+    try:
+        for threads in sorted({1, numba.config.NUMBA_NUM_THREADS}):
+            numba.set_num_threads(threads)
+            runs.append(simulate(fast, y0, duration=15.0, census_interval=0.5))
+    finally:
+        numba.set_num_threads(before)
+    assert sum(runs[0].stats.removals) > 0
+    for run in runs[1:]:
+        assert run.stats.removals == runs[0].stats.removals
+        for species in ("prey", "predator"):
+            np.testing.assert_array_equal(run.data[species].values,
+                                          runs[0].data[species].values)
+
+
 def test_compiled_rhs_with_scalar_parameters_and_no_links(rng):
     # parameters may be scalars (CoupledSystem.with_model takes them); no links at all
     n = 30
@@ -119,11 +146,28 @@ def test_compiled_trajectory_equals_numpy(rng):
     area = rng.uniform(0.2, 3.0, n)
     y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
     systems = pair(model, area, ops, order="rcm")
-    # without the extinction rule only the right-hand side differs: bit for bit
-    runs = [simulate(s, y0, duration=20.0, census_interval=0.5, extinction_abundance=0.0)
-            for s in systems]
+    # without the extinction rule: the compiled path evaluates each Runge-Kutta stage (its
+    # state and RHS) and the step's errors in one compiled pass each (ode._compiled_step),
+    # summing in another order than numpy's stage sums; the same steps, and values equal to
+    # rounding (within 1e-6 tolerance units, atol + rtol |y|; measured: 7e-9)
+    steps = []
+    original = ode_module._compiled_step
+
+    def counted(solver):
+        steps.append(1)
+        return original(solver)
+
+    ode_module._compiled_step = counted
+    try:
+        runs = [simulate(s, y0, duration=20.0, census_interval=0.5, extinction_abundance=0.0)
+                for s in systems]
+    finally:
+        ode_module._compiled_step = original
+    assert len(steps) == runs[1].stats.steps > 0  # the compiled run took the compiled steps
     for species in ("prey", "predator"):
-        np.testing.assert_array_equal(runs[1].data[species].values, runs[0].data[species].values)
+        want = runs[0].data[species].values
+        units = np.abs(runs[1].data[species].values - want) / (1e-8 + 1e-6 * np.abs(want))
+        assert units.max() <= 1e-6
     assert runs[1].stats.nfev == runs[0].stats.nfev
     # with it, the steps with removals are taken again by compiled code too
     # (trophoscape.integrate.compiled), whose sums run in another order. Rounding then grows
@@ -222,13 +266,17 @@ def test_kernel_still_compiles_where_numba_cannot_cache():
             "import scipy.sparse as sp; "
             "w = c.rhs_function(LocalModel('logistic', 'holling2', q), np.ones(3), "
             "sp.csr_array((6, 6))); assert w(0.0, y).tolist() == dy.tolist(); "
+            "K = np.stack([dy, dy]); out = np.empty(6); "
+            "w.stage(y, K, 1, np.zeros(1), 0.5, out); assert out.tolist() == dy.tolist(); "
             "print(c._local_terms._cache.__class__.__name__ + ',' + "
-            "c._whole_rhs._cache.__class__.__name__, dy.tolist())")
+            "c._whole_rhs._cache.__class__.__name__ + ',' + "
+            "c._stage._cache.__class__.__name__, dy.tolist())")
     env = dict(os.environ, NUMBA_CACHE_LOCATOR_CLASSES="no_such_module.NoLocator")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
     assert out.returncode == 0, out.stderr
     name, values = out.stdout.split(" ", 1)
-    assert name == "NullCache,NullCache"  # compiled, not cached (local terms, whole RHS)
+    assert name == "NullCache,NullCache,NullCache"  # compiled, not cached (local terms,
+    # whole RHS, a Runge-Kutta stage)
     # logistic r n (1 - n/K) - a n p / (1 + a h n) with every parameter 1, n = 0..2, p = 3..5
     n, p = np.arange(3.0), np.arange(3.0, 6.0)
     np.testing.assert_allclose(eval(values)[:3], n * (1 - n) - n * p / (1 + n))

@@ -121,13 +121,76 @@ def _whole_rhs(growth, response, harvest, y, area, q, x, dy, indptr, indices,
         x[n + i] = big_p
         dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
     for row in numba.prange(2 * n):
-        acc = dy[row]
-        k = np.uintp(indptr[row])
-        end = np.uintp(indptr[row + 1])
-        while k < end:
-            acc += data[k] * x[np.uintp(indices[k])]
-            k += np.uintp(1)
-        dy[row] = acc
+        dy[row] = _product(dy, indptr, indices, data, x, row)
+
+
+@jit(inline=True)
+def _product(dy, indptr, indices, data, x, row):  # pragma: no cover - compiled
+    """``dy[row] + (M x)[row]``, summed in the order of the row's stored entries from
+    ``dy[row]`` (as scipy's ``csr_matvec``), indices read as unsigned."""
+    acc = dy[row]
+    for k in range(np.uintp(indptr[row]), np.uintp(indptr[row + 1])):
+        acc += data[k] * x[np.uintp(indices[k])]
+    return acc
+
+
+@jit(inline=True)
+def _combined(K, coefficients, stages, c):  # pragma: no cover - compiled
+    """``sum_l coefficients[l] K[l, c]`` over the first ``stages`` rows, in order."""
+    acc = K[0, c] * coefficients[0]
+    for l in range(1, stages):
+        acc += K[l, c] * coefficients[l]
+    return acc
+
+
+@jit(parallel=True)
+def _stage(growth, response, harvest, y, K, stages, coefficients, h, area, q, x, out, indptr,
+           indices, data, y_out):  # pragma: no cover - compiled
+    """One Runge–Kutta stage on numba's threads: the whole RHS (as :func:`_whole_rhs`) at
+    ``y + (sum_l coefficients[l] K[l]) h`` over the first ``stages`` rows of ``K`` (the
+    stage's state is never stored, only clipped into ``x``), into ``out``; with
+    ``y_out`` of the state's size the state is stored there too (the step's end)."""
+    n = area.size
+    keep = y_out.size == y.size
+    for i in numba.prange(n):
+        v_n = y[i] + _combined(K, coefficients, stages, i) * h
+        v_p = y[n + i] + _combined(K, coefficients, stages, n + i) * h
+        if keep:
+            y_out[i] = v_n
+            y_out[n + i] = v_p
+        big_n = clipped(v_n)
+        big_p = clipped(v_p)
+        x[i] = big_n
+        x[n + i] = big_p
+        out[i], out[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
+    for row in numba.prange(2 * n):
+        out[row] = _product(out, indptr, indices, data, x, row)
+
+
+def patch_errors(K, E, h, y, y_new, rtol, atol, per):
+    """:func:`_patch_errors` (on numba's threads, one caller at a time)."""
+    with ONE_AT_A_TIME:
+        _patch_errors(K, E, h, y, y_new, rtol, atol, per)
+
+
+@jit(parallel=True)
+def _patch_errors(K, E, h, y, y_new, rtol, atol, per):  # pragma: no cover - compiled
+    """Each patch's larger scaled error of a Runge–Kutta step, into ``per`` (shape (n,)):
+    ``|h sum_l E[l] K[l, c]| / (atol + max(|y_c|, |y_new_c|) rtol)`` over its two
+    components; a NaN is kept."""
+    n = per.size
+    stages = E.size
+    for i in numba.prange(n):
+        worst = 0.0
+        for half in range(2):
+            c = i + half * n
+            err = abs(_combined(K, E, stages, c) * h) / (
+                atol + max(abs(y[c]), abs(y_new[c])) * rtol)
+            if err > worst or err != err:
+                worst = err
+            if worst != worst:
+                break
+        per[i] = worst
 
 
 def parameter_block(model, n):
@@ -187,7 +250,11 @@ def rhs_function(model, area, movement):
     (2 n, 2 n), in the order of ``area``). Bit for bit the numpy path's
     (:func:`trophoscape.model.system._rhs`); each call returns a fresh array and reuses one
     buffer for the clipped state, so one closure must not be called from several threads
-    at once."""
+    at once.
+
+    The closure's ``stage`` attribute evaluates a Runge–Kutta stage, the stage's state and
+    the RHS there, in one call (``stage(y, K, stages, coefficients, h, out, y_out=None)``,
+    :func:`_stage`): the explicit solvers of :mod:`trophoscape.integrate.ode` use it."""
     area = np.ascontiguousarray(area, dtype=np.float64)
     n = area.size
     block = parameter_block(model, n)
@@ -203,4 +270,14 @@ def rhs_function(model, area, movement):
             whole(growth, response, harvest, y, area, block, x, dy, indptr, indices, data)
         return dy
 
+    no_state = np.empty(0)
+
+    def stage(y, K, stages, coefficients, h, out, y_out=None):
+        """``out = rhs(y + (sum_l coefficients[l] K[l]) h)`` over the first ``stages`` rows
+        of ``K``, in one call (:func:`_stage`); that state is stored in ``y_out`` if given."""
+        with ONE_AT_A_TIME:
+            _stage(growth, response, harvest, y, K, stages, coefficients, h, area, block, x,
+                   out, indptr, indices, data, no_state if y_out is None else y_out)
+
+    rhs.stage = stage
     return rhs
