@@ -96,6 +96,24 @@ def test_kernel_links_equal_brute_force_shapely(distance, max_km):
     assert np.all(np.diff(keys) > 0)  # sorted by (source, target)
 
 
+@pytest.mark.parametrize("max_km", [0.0, 1.5, 4.0])
+def test_kernel_links_found_on_threads_are_those_found_in_one_call(monkeypatch, max_km):
+    # consistency test: from network.THREADED_MIN_PATCHES the search and the distances run
+    # in chunks on threads; the network must be the one built in one call, array for array,
+    # and still the all-pairs result (reference: shapely distance by an all-pairs loop)
+    import trophoscape.model.network as network_module
+
+    land = random_landscape()
+    one = build_network(land, kernel="exponential", max_distance_km=max_km)
+    monkeypatch.setattr(network_module, "THREADED_MIN_PATCHES", 1)
+    monkeypatch.setattr(network_module, "_cores", lambda: 3)  # three chunks on any machine
+    threaded = build_network(land, kernel="exponential", max_distance_km=max_km)
+    for name in ("source", "target", "distance_km"):
+        np.testing.assert_array_equal(getattr(threaded, name), getattr(one, name))
+    expected = brute_force_pairs(land, max_km, "boundary")
+    assert set(zip(threaded.source.tolist(), threaded.target.tolist())) == expected.keys()
+
+
 def test_touching_patches_are_at_boundary_distance_zero():
     land = chain_landscape(3, spacing_km=1.0, size_km=1.0)  # squares sharing edges
     net = build_network(land, max_distance_km=0.0)

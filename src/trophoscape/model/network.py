@@ -9,6 +9,8 @@ sparse matrix ``M`` of ``dx/dt = M x`` for one species.
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -578,6 +580,46 @@ def _resolve(path, base_dir) -> Path:
     return path if base_dir is None or path.is_absolute() else Path(base_dir) / path
 
 
+#: From this many patches the search for pairs within the kernel's reach and their boundary
+#: distances run in chunks on as many threads as there are cores (shapely lets go of Python's
+#: lock in both): the same pairs, in the same order, as in one call.
+THREADED_MIN_PATCHES = 20_000
+
+
+def _cores() -> int:
+    if hasattr(os, "sched_getaffinity"):
+        return len(os.sched_getaffinity(0))
+    return os.cpu_count() or 1  # pragma: no cover - platforms without affinity
+
+
+def _on_threads(part, size: int, n_patches: int):
+    """``part(lo, hi)`` over ``[0, size)`` in consecutive chunks, one per core from
+    :data:`THREADED_MIN_PATCHES` patches (else one call), concatenated in order along the
+    last axis."""
+    chunks = min(_cores(), 8) if n_patches >= THREADED_MIN_PATCHES and size > 1 else 1
+    if chunks == 1:
+        return part(0, size)
+    edges = np.linspace(0, size, chunks + 1).astype(np.int64)
+    with ThreadPoolExecutor(chunks) as pool:
+        parts = list(pool.map(part, edges[:-1], edges[1:]))
+    return np.concatenate(parts, axis=-1)
+
+
+def _pairs_within(geoms, max_m: float) -> np.ndarray:
+    """Every pair of ``geoms`` within ``max_m`` of each other, both ways and each with
+    itself, as shapely's ``STRtree.query(geoms, "dwithin")`` gives them: shape (2, k),
+    sorted by the first row."""
+    tree = shapely.STRtree(geoms)
+    tree.query(geoms[:1], predicate="dwithin", distance=max_m)  # built before the threads
+
+    def part(lo, hi):
+        found = tree.query(geoms[lo:hi], predicate="dwithin", distance=max_m)
+        found[0] += lo
+        return found
+
+    return _on_threads(part, geoms.size, geoms.size)
+
+
 def _kernel_pairs(landscape: Landscape, max_m: float, distance: str):
     """Pairs i < j within ``max_m`` metres and their distance in km, each shape (k,)."""
     if distance == "centroid":
@@ -587,11 +629,12 @@ def _kernel_pairs(landscape: Landscape, max_m: float, distance: str):
         d = np.hypot(*(landscape.centroids[i] - landscape.centroids[j]).T)
     else:
         geoms = landscape.geometries
-        found = shapely.STRtree(geoms).query(geoms, predicate="dwithin", distance=max_m)
+        found = _pairs_within(geoms, max_m)
         i, j = found[0].astype(np.int64), found[1].astype(np.int64)
         upper = i < j
         i, j = i[upper], j[upper]
-        d = shapely.distance(geoms[i], geoms[j])
+        d = _on_threads(lambda lo, hi: shapely.distance(geoms[i[lo:hi]], geoms[j[lo:hi]]),
+                        i.size, geoms.size)
     keep = d <= max_m  # the index is inclusive; keep the rule exact in floating point
     return i[keep], j[keep], d[keep] / 1000.0
 
