@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import gc
 import multiprocessing
 import os
 import pickle
@@ -165,7 +166,13 @@ class _beside:
                 send.send(RunError(f"{type(outcome).__name__}: {outcome}"))
 
         self._process = context.Process(target=run, name="trophoscape-maps", daemon=True)
-        self._process.start()
+        # objects the collector would visit in the new process stay shared with this one
+        # (the garbage collector writes to every object it visits: copy on write)
+        gc.freeze()
+        try:
+            self._process.start()
+        finally:
+            gc.unfreeze()
         send.close()
 
     def __call__(self) -> None:
