@@ -205,15 +205,16 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
     ``load_study``; then, inside the staged output folder ``folder/out``, ``run_study`` with
     ``series_to`` (``timeseries.nc`` written as the run goes) and ``write_run_files(maps=maps)``
     (with ``maps``, the maps and ``report.html`` too);
-    the functions of :data:`STUDY_STAGES` and the series writer's block writes are wrapped
+    the functions of :data:`STUDY_STAGES`, ``analyse`` and the series writer's block writes are wrapped
     by :func:`clock` for the time of the call. ``profile``: a cProfile output file for the
     whole of it. ``kernel="numpy"`` keeps the local terms on numpy at every size.
 
     Returns
     -------
     dict
-        ``stages`` (name -> (wall, CPU) seconds, every :data:`STUDY_STAGES` name and
-        ``series_blocks``), ``load``, ``run``, ``write``, ``total`` (the same pairs),
+        ``stages`` (name -> (wall, CPU) seconds, every :data:`STUDY_STAGES` name,
+        ``analyse`` (all the analyses, wall) and ``series_blocks``; CPU seconds are the
+        process's, all threads), ``load``, ``run``, ``write``, ``total`` (the same pairs),
         ``study``, ``result``, ``base_mb`` (peak RSS before the run), ``peak_mb``,
         ``write_tree_mb`` (:class:`TreeMemory` over ``write_run_files``: this process and
         the one that draws the maps, if any) and ``children_mb`` (the largest child's peak
@@ -226,7 +227,7 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
     from trophoscape.report.run import write_run_files
 
     stages: dict[str, np.ndarray] = {}
-    originals = {name: getattr(study_module, name) for name in STUDY_STAGES}
+    originals = {name: getattr(study_module, name) for name in (*STUDY_STAGES, "analyse")}
     for name, fn in originals.items():
         setattr(study_module, name, clock(stages, name, fn))
     write_block = SeriesWriter.write
@@ -260,7 +261,8 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
         SeriesWriter.write = write_block
         system_module.COMPILED_MIN_PATCHES = threshold
     zero = np.zeros(2)
-    return {"stages": {k: stages.get(k, zero) for k in (*STUDY_STAGES, "series_blocks")},
+    return {"stages": {k: stages.get(k, zero)
+                       for k in (*STUDY_STAGES, "analyse", "series_blocks")},
             "load": t1 - t0, "run": t2 - t1, "write": t3 - t2, "total": t3 - t0,
             "study": study, "result": result, "base_mb": base, "peak_mb": peak_mb(),
             "write_tree_mb": tree.peak_mb,
