@@ -67,7 +67,7 @@ def child(folder: Path, profile: str | None, kernel: str, maps: bool = False) ->
     sizes = {p.name: p.stat().st_size / 1e6 for p in (folder / "out").iterdir()}
     return {"stages": {k: v.tolist() for k, v in rows.items()},
             "peak_mb": timed["peak_mb"], "base_mb": timed["base_mb"],
-            "write_tree_mb": timed["write_tree_mb"], "children_mb": timed["children_mb"],
+            "write_tree_mb": timed["write_tree_mb"],
             "links": result.summary["links"],
             "solver": {"method": stats.method, "steps": stats.steps, "nfev": stats.nfev,
                        "restarts": stats.restarts,
@@ -117,8 +117,7 @@ def main():
         r = results[n]
         print(f"\n{n:,} patches, {r['links']:,} links ({time.perf_counter() - t0:.0f} s in the "
               f"child); peak RSS {r['peak_mb']:.0f} MB (imports {r['base_mb']:.0f} MB); while the "
-              f"files are written, with the maps' process (PSS summed) {r['write_tree_mb']:.0f} MB, "
-              f"that process's own peak RSS {r['children_mb']:.0f} MB; solver "
+              f"files are written, with the maps' process (PSS summed) {r['write_tree_mb']:.0f} MB; solver "
               f"{r['solver']}; outputs " + ", ".join(f"{k} {v:.1f} MB"
                                                     for k, v in sorted(r["outputs_mb"].items())))
         total = np.array(r["stages"]["end to end"])

@@ -216,9 +216,8 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
         ``analyse`` (all the analyses, wall) and ``series_blocks``; CPU seconds are the
         process's, all threads), ``load``, ``run``, ``write``, ``total`` (the same pairs),
         ``study``, ``result``, ``base_mb`` (peak RSS before the run), ``peak_mb``,
-        ``write_tree_mb`` (:class:`TreeMemory` over ``write_run_files``: this process and
-        the one that draws the maps, if any) and ``children_mb`` (the largest child's peak
-        RSS, pages shared with this process included).
+        and ``write_tree_mb`` (:class:`TreeMemory` over ``write_run_files``: this process
+        and the one that draws the maps, if any).
     """
     import trophoscape.workflows.study as study_module
     import trophoscape.model.system as system_module
@@ -265,5 +264,4 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
                        for k in (*STUDY_STAGES, "analyse", "series_blocks")},
             "load": t1 - t0, "run": t2 - t1, "write": t3 - t2, "total": t3 - t0,
             "study": study, "result": result, "base_mb": base, "peak_mb": peak_mb(),
-            "write_tree_mb": tree.peak_mb,
-            "children_mb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0}
+            "write_tree_mb": tree.peak_mb}

@@ -7,6 +7,7 @@ import gc
 import multiprocessing
 import os
 import pickle
+import sys
 from pathlib import Path
 
 from ..errors import RunError
@@ -17,7 +18,7 @@ from ..scenario import input_files
 
 __all__ = ["run_to_folder", "write_run", "write_run_files", "MAPS_APART_MIN_PATCHES"]
 
-#: From this many patches, where the machine has a second core and processes can be forked,
+#: From this many patches, on Linux (where processes fork safely) with a second core,
 #: the maps and the report are drawn in a second process while this one writes the patch
 #: layers, tables and series (the two take about the same time at 100,000 patches). Forked,
 #: the process shares the run's results without copying them. Below it, everything is
@@ -135,13 +136,11 @@ def _apart(n_patches: int) -> bool:
     """Whether the maps of a run of ``n_patches`` are drawn in a second process."""
     if n_patches < MAPS_APART_MIN_PATCHES:
         return False
-    if "fork" not in multiprocessing.get_all_start_methods():
-        return False  # no fork (Windows; macOS forks unsafely with its frameworks loaded)
+    if not sys.platform.startswith("linux"):
+        return False  # no fork on Windows; macOS forks unsafely with its frameworks loaded
     if multiprocessing.current_process().daemon:
         return False  # a pool's or Dask's worker may not start processes
-    cores = os.sched_getaffinity(0) if hasattr(os, "sched_getaffinity") else range(
-        os.cpu_count() or 1)
-    return len(cores) > 1
+    return len(os.sched_getaffinity(0)) > 1
 
 
 class _beside:
