@@ -450,3 +450,75 @@ def test_derivative_after_is_not_used_without_scipys_csr_product(monkeypatch):
     assert retaker.derivative_after(y, y) is not None
     monkeypatch.setattr(system_module, "_csr_matvec", None)
     assert retaker.derivative_after(y, y) is None
+
+
+_POOL_RUN = {}
+
+
+def _pool_job(task):
+    run = simulate(_POOL_RUN["system"], _POOL_RUN["y0"], duration=10.0, census_interval=0.5)
+    return run.data["prey"].values, run.stats.removals
+
+
+def test_a_pool_forked_after_compiled_runs_gives_the_same_runs(rng):
+    # numba's OpenMP layer ends a forked process at its first parallel loop once its parent
+    # ran one ("fork() called from a process already using GNU OpenMP"); corridor planning
+    # and origin scans fork their pools after the baseline run. The workers take the kernels'
+    # one-thread twins (model.compiled.threaded): every task must finish, bit for bit the
+    # run made here (consistency test)
+    from trophoscape.workflows.tasks import run_tasks
+
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    model = varied_model(rng, n, "logistic", "holling2")
+    fast = pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")[1]
+    y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
+
+    _POOL_RUN.update(system=fast, y0=y0)  # forked workers inherit it
+    job = _pool_job
+    here = job(0)
+    assert sum(here[1]) > 0  # the regions' kernel ran too
+    got = {}
+    run_tasks(job, [1, 2, 3], on_result=lambda task, ok, value: got.update({task: (ok, value)}),
+              workers=2)
+    assert sorted(got) == [1, 2, 3]
+    for ok, value in got.values():
+        assert ok, value
+        np.testing.assert_array_equal(value[0], here[0])
+        assert value[1] == here[1]
+
+
+def _forked_run(queue):
+    value = _pool_job(0)
+    queue.put((value[0].tobytes(), value[1]))
+
+
+def test_a_process_forked_after_compiled_runs_takes_the_one_thread_kernels(rng):
+    # the same for any forked process, not only a pool's worker (which is told to use one
+    # thread): the kernels see they run in a child of the process that started numba's
+    # threads (consistency test: bit for bit the run made here)
+    import multiprocessing
+
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    model = varied_model(rng, n, "logistic", "holling2")
+    _POOL_RUN.update(system=pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")[1],
+                     y0=np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)]))
+    here = _pool_job(0)
+    context = multiprocessing.get_context("fork")
+    queue = context.Queue()
+    child = context.Process(target=_forked_run, args=(queue,))
+    child.start()
+    import queue as queues
+
+    got = None
+    for _ in range(300):  # until the child sends, or ends without sending (killed)
+        try:
+            got = queue.get(timeout=1)
+            break
+        except queues.Empty:
+            if not child.is_alive():
+                break
+    child.join(timeout=60)
+    assert child.exitcode == 0
+    assert got == (here[0].tobytes(), here[1])

@@ -389,7 +389,7 @@ class _Region:
         stay positive over the whole step summed into one polynomial per component) and
         integrated group by group (:func:`~trophoscape.integrate.compiled.run_groups`), as
         the numpy setup and :meth:`_run` do."""
-        from ..model.compiled import ONE_AT_A_TIME  # numba's threads: one kernel at a time
+        from ..model.compiled import ONE_AT_A_TIME, threaded  # numba's threads
 
         module = retaker.compiled
         kind, y_old, coef, h = interpolant
@@ -408,7 +408,7 @@ class _Region:
         evaluations = np.zeros(groups)
         census = np.ascontiguousarray(census, dtype=float)
         with ONE_AT_A_TIME:
-            module.run_groups(
+            threaded(module.run_groups)(
                 starts, m, self.t0, self.span, self.x, self.q, np.asarray(armed)[comps],
                 level, rtol, atol, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate,
                 kind, y_old, coef, h, self.sends, comps, growth, response, harvest, order,

@@ -20,15 +20,21 @@ system takes the compiled path (``system._compiled_module``), never at ``import 
 
 from __future__ import annotations
 
+import os
 import threading
+import types
 
 import numba
 import numpy as np
 
 #: The kernels that run on numba's threads (the whole RHS here, the regions' groups in
-#: :mod:`trophoscape.integrate.compiled`) take this lock: numba's default thread pool
-#: (workqueue) ends the process when two Python threads enter it at once.
+#: :mod:`trophoscape.integrate.compiled`) take this lock: numba's workqueue thread pool
+#: ends the process when two Python threads enter it at once.
 ONE_AT_A_TIME = threading.Lock()
+#: The process that first ran a kernel on numba's threads (see :func:`threaded`).
+_threads_started_in: int | None = None
+#: Set by :func:`one_thread_only` (a pool's worker).
+_one_thread_only = False
 #: Growth forms and responses the compiled code knows, by their names in ``dynamics``.
 GROWTH_CODES = {"exponential": 0, "logistic": 1, "allee": 2}
 RESPONSE_CODES = {"lotka_volterra": 0, "holling2": 1, "holling3": 2, "beddington_deangelis": 3}
@@ -51,10 +57,54 @@ def jit(function=None, *, inline=False, parallel=False):
     options = dict(error_model="numpy", boundscheck=False, nogil=True, parallel=parallel)
     if inline:
         options["inline"] = "always"
+    kernel = _compiled(function, options)
+    if parallel:  # its one-thread twin, cached under its own name (see threaded)
+        kernel.one_thread = _compiled(_twin(function), {**options, "parallel": False})
+    return kernel
+
+
+def _compiled(function, options):
     try:
         return numba.njit(cache=True, **options)(function)
     except RuntimeError:  # no writable cache folder (numba's words): compile in each process
         return numba.njit(cache=False, **options)(function)
+
+
+def _twin(function):
+    """A copy of ``function`` under another qualified name (numba names its cache files by
+    it), so that a one-thread compilation of the same code is cached beside the other."""
+    twin = types.FunctionType(function.__code__, function.__globals__, function.__name__,
+                              function.__defaults__, function.__closure__)
+    twin.__qualname__ = function.__qualname__ + "_one_thread"
+    twin.__module__ = function.__module__
+    twin.__doc__ = function.__doc__
+    return twin
+
+
+def one_thread_only() -> None:
+    """From now on this process runs every compiled kernel on one thread (a pool's worker:
+    the pool gives each worker one core)."""
+    global _one_thread_only
+    _one_thread_only = True
+
+
+def threaded(kernel):
+    """``kernel`` (compiled with ``jit(parallel=True)``) or its one-thread twin, which gives
+    the same numbers bit for bit (every loop on numba's threads has independent iterations).
+
+    The twin runs where numba has one thread (``NUMBA_NUM_THREADS=1``, as in a pool's
+    worker, :func:`one_thread_only`), and in a process forked from
+    one that already ran a kernel on numba's threads: numba's OpenMP layer ends such a
+    process at its first parallel loop ("fork() called from a process already using GNU
+    OpenMP"), and the pools that plan corridors or scan origins fork after the baseline run.
+    """
+    global _threads_started_in
+    pid = os.getpid()
+    if (_one_thread_only or numba.config.NUMBA_NUM_THREADS == 1
+            or _threads_started_in not in (None, pid)):
+        return kernel.one_thread
+    _threads_started_in = pid
+    return kernel
 
 
 @jit(inline=True)
@@ -170,7 +220,7 @@ def _stage(growth, response, harvest, y, K, stages, coefficients, h, area, q, x,
 def patch_errors(K, E, h, y, y_new, rtol, atol, per):
     """:func:`_patch_errors` (on numba's threads, one caller at a time)."""
     with ONE_AT_A_TIME:
-        _patch_errors(K, E, h, y, y_new, rtol, atol, per)
+        threaded(_patch_errors)(K, E, h, y, y_new, rtol, atol, per)
 
 
 @jit(parallel=True)
@@ -267,7 +317,8 @@ def rhs_function(model, area, movement):
     def rhs(t, y):
         dy = np.empty(2 * n)
         with ONE_AT_A_TIME:
-            whole(growth, response, harvest, y, area, block, x, dy, indptr, indices, data)
+            threaded(whole)(growth, response, harvest, y, area, block, x, dy, indptr, indices,
+                            data)
         return dy
 
     no_state = np.empty(0)
@@ -276,8 +327,9 @@ def rhs_function(model, area, movement):
         """``out = rhs(y + (sum_l coefficients[l] K[l]) h)`` over the first ``stages`` rows
         of ``K``, in one call (:func:`_stage`); that state is stored in ``y_out`` if given."""
         with ONE_AT_A_TIME:
-            _stage(growth, response, harvest, y, K, stages, coefficients, h, area, block, x,
-                   out, indptr, indices, data, no_state if y_out is None else y_out)
+            threaded(_stage)(growth, response, harvest, y, K, stages, coefficients, h, area,
+                             block, x, out, indptr, indices, data,
+                             no_state if y_out is None else y_out)
 
     rhs.stage = stage
     return rhs

@@ -123,6 +123,13 @@ def _init_worker(parent_pid: int | None) -> None:
     """The initializer of every local worker process."""
     _ignore_sigint()
     _exit_with_parent(parent_pid)
+    # one core per worker: compiled kernels on one thread. numba reads the variable when it
+    # is imported (and refuses a change once its threads started); the compiled module, if
+    # already imported, is told directly
+    if "numba" not in sys.modules:
+        os.environ["NUMBA_NUM_THREADS"] = "1"
+    if "trophoscape.model.compiled" in sys.modules:
+        sys.modules["trophoscape.model.compiled"].one_thread_only()
 
 
 @dataclass(frozen=True, eq=False)
