@@ -97,9 +97,21 @@ def test_compiled_rk23_steps_agree_with_numpy_to_rounding(rng):
     n = ops[0].shape[0]
     model = varied_model(rng, n, "logistic", "holling2")
     y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
-    runs = [simulate(s, y0, duration=10.0, census_interval=0.5, extinction_abundance=0.0,
-                     method="RK23")
-            for s in pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")]
+    steps = []
+    original = ode_module._compiled_step
+
+    def counted(solver):
+        steps.append(1)
+        return original(solver)
+
+    ode_module._compiled_step = counted
+    try:
+        runs = [simulate(s, y0, duration=10.0, census_interval=0.5, extinction_abundance=0.0,
+                         method="RK23")
+                for s in pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")]
+    finally:
+        ode_module._compiled_step = original
+    assert len(steps) == runs[1].stats.steps  # the compiled run took the compiled steps
     assert runs[1].stats.steps == runs[0].stats.steps > 100
     assert runs[1].stats.nfev == runs[0].stats.nfev
     for species in ("prey", "predator"):
@@ -118,6 +130,8 @@ def test_compiled_run_is_the_same_on_any_number_of_threads(rng):
     model = varied_model(rng, n, "logistic", "holling2")
     fast = pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")[1]
     y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
+    if numba.config.NUMBA_NUM_THREADS < 2:
+        pytest.skip("numba has one thread here (NUMBA_NUM_THREADS)")
     before = numba.get_num_threads()
     runs = []
     try:
@@ -522,3 +536,24 @@ def test_a_process_forked_after_compiled_runs_takes_the_one_thread_kernels(rng):
     child.join(timeout=60)
     assert child.exitcode == 0
     assert got == (here[0].tobytes(), here[1])
+
+
+def test_patch_errors_keep_a_nan_as_numpy_does():
+    # consistency test against numpy's formula (scipy's error estimate over the scale
+    # atol + max(|y|, |y_new|) rtol, np.maximum keeping a NaN), per patch the larger of its
+    # two components
+    rng = np.random.default_rng(5)
+    n, stages = 6, 7
+    K = rng.normal(size=(stages, 2 * n))
+    E = rng.normal(size=stages)
+    y, y_new = rng.uniform(1, 5, 2 * n), rng.uniform(1, 5, 2 * n)
+    y_new[1] = np.nan  # in the scale only (K finite)
+    y[n + 4] = np.nan
+    per = np.empty(n)
+    compiled.patch_errors(K, E, 0.3, y, y_new, 1e-6, 1e-8, per)
+    err = np.abs(np.dot(K.T, E) * 0.3) / (1e-8 + np.maximum(np.abs(y), np.abs(y_new)) * 1e-6)
+    want = np.maximum(err[:n], err[n:])
+    np.testing.assert_array_equal(np.isnan(per), np.isnan(want))
+    assert np.isnan(per[1]) and np.isnan(per[4])
+    ok = ~np.isnan(want)
+    np.testing.assert_allclose(per[ok], want[ok], rtol=1e-13)

@@ -11,6 +11,7 @@ import os
 import re
 import sys
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -43,14 +44,14 @@ def result(tmp_path_factory):
 def apart(monkeypatch):
     """Maps drawn apart from the first patch on; counts the processes started."""
     started = []
-    original = run_module._beside
+    original = run_module._InSecondProcess
 
     def counting(work):
         started.append(1)
         return original(work)
 
     monkeypatch.setattr(run_module, "MAPS_APART_MIN_PATCHES", 1)
-    monkeypatch.setattr(run_module, "_beside", counting)
+    monkeypatch.setattr(run_module, "_InSecondProcess", counting)
     return started
 
 
@@ -137,3 +138,113 @@ def test_small_runs_and_workers_draw_in_their_own_process(monkeypatch):
     monkeypatch.setattr(multiprocessing.current_process(), "_config",
                         {**multiprocessing.current_process()._config, "daemon": True})
     assert not run_module._apart(run_module.MAPS_APART_MIN_PATCHES)
+
+
+def _refuse(*args):
+    raise TypeError("cannot be rebuilt")
+
+
+class _Unrebuildable(Exception):
+    def __init__(self, what, why):
+        super().__init__(f"{what} because {why}")
+
+    def __reduce__(self):  # pickles, but cannot be rebuilt in the other process
+        return _refuse, self.args
+
+
+class _Unpicklable(Exception):
+    def __init__(self, text):
+        super().__init__(text)
+        self.callback = lambda: None  # does not pickle
+
+
+@apart_possible
+def test_an_error_that_cannot_be_rebuilt_here_keeps_its_type_and_text(result, tmp_path, apart,
+                                                                      monkeypatch):
+    def bad(*args, **kwargs):
+        raise _Unrebuildable("no colour", "the palette ran out")
+
+    monkeypatch.setattr(html_module, "write_figures_and_report", bad)
+    with pytest.raises(RunError, match="_Unrebuildable: no colour because the palette ran out"
+                       ) as caught:
+        ts.write_run(result, tmp_path / "out")
+    assert "in the process that drew the maps" in "".join(caught.value.__notes__)
+    assert "the palette ran out" in "".join(caught.value.__notes__)  # its traceback
+    assert no_process_left()
+
+
+@apart_possible
+def test_an_error_that_does_not_pickle_keeps_its_type_and_text(result, tmp_path, apart,
+                                                             monkeypatch):
+    def bad(*args, **kwargs):
+        raise _Unpicklable("a colour map that cannot travel")
+
+    monkeypatch.setattr(html_module, "write_figures_and_report", bad)
+    with pytest.raises(RunError, match="_Unpicklable: a colour map that cannot travel"):
+        ts.write_run(result, tmp_path / "out")
+    assert no_process_left()
+    assert not (tmp_path / "out").exists()
+
+
+@apart_possible
+def test_when_no_process_can_be_started_the_maps_are_drawn_here(result, tmp_path, apart,
+                                                              monkeypatch):
+    def no_fork(self):
+        raise OSError(12, "Cannot allocate memory")
+
+    monkeypatch.setattr(multiprocessing.context.ForkProcess, "start", no_fork)
+    ts.write_run(result, tmp_path / "out")
+    assert apart == [1]
+    assert (tmp_path / "out" / "report.html").exists()
+    assert len(list((tmp_path / "out" / "maps").iterdir())) > 5
+
+
+@apart_possible
+def test_the_maps_process_ends_when_its_parent_is_killed(tmp_path):
+    # a parent killed with SIGKILL cannot stop it: the kernel (PR_SET_PDEATHSIG) or its
+    # watch of the parent's pid must end it, not leave it drawing into a folder nobody owns
+    import signal
+    import subprocess
+
+    script = f"""
+import os, signal, sys, threading, time, multiprocessing
+sys.path.insert(0, {str(Path(__file__).resolve().parent)!r})
+import trophoscape as ts
+from trophoscape.report import html, run
+"""
+    code = script + """
+from trophoscape.scenario import parse_scenario
+from trophoscape.testing import grid_landscape
+from pathlib import Path
+folder = Path(sys.argv[1])
+land = grid_landscape(3, 4, spacing_km=1.5, size_km=1.0)
+land.frame.to_file(folder / "p.gpkg", driver="GPKG", engine="pyogrio")
+sc = parse_scenario({"name": "Kill check", "patches": {"path": "p.gpkg", "id_field": "patch_id"},
+                     "run": {"duration": 10.0, "burn_in": 2.0}}, base_dir=folder)
+result = ts.run_study(ts.build_study(sc))
+run.MAPS_APART_MIN_PATCHES = 1
+html.write_figures_and_report = lambda *a, **k: time.sleep(120)
+def kill_me():
+    time.sleep(3)
+    print(" ".join(str(p.pid) for p in multiprocessing.active_children()), flush=True)
+    os.kill(os.getpid(), signal.SIGKILL)
+threading.Thread(target=kill_me, daemon=True).start()
+ts.write_run(result, folder / "out")
+"""
+    out = subprocess.run([sys.executable, "-c", code, str(tmp_path)], capture_output=True,
+                         text=True, timeout=120)
+    assert out.returncode == -signal.SIGKILL, out.stderr[-2000:]
+    pids = [int(p) for p in out.stdout.split()]
+    assert len(pids) == 1  # the maps' process was running when the parent was killed
+
+    def gone(pid):
+        try:
+            with open(f"/proc/{pid}/status") as f:
+                return "\\tZ" in f.read()  # a zombie has ended
+        except FileNotFoundError:
+            return True
+
+    deadline = time.monotonic() + 10
+    while not gone(pids[0]) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert gone(pids[0])

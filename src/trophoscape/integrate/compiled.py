@@ -22,8 +22,8 @@ where the numpy path builds the same arrays by index arithmetic and scipy.
 
 Indices read from arrays (CSR rows and columns, sources) are taken as unsigned (``np.uintp``)
 where they index: with signed ones numba checks every index for a negative (wrap-around)
-value, which made such loops about twice as slow (benchmarks/README.md, "The whole RHS on both
-cores").
+value, which made such loops about twice as slow (benchmarks/README.md, "Both cores for the whole
+network's steps").
 
 Used only with the compiled local terms (``CoupledSystem.local_terms_used == "compiled"``,
 numba installed); the numpy path is the reference and the fallback. This module imports

@@ -4,8 +4,8 @@ numpy evaluates the local terms of :func:`trophoscape.model.system._rhs` in abou
 patches, each reading and writing whole arrays; this code does all of them in one pass
 (clip, densities, growth, predation, scaling back by the area), reading each parameter once.
 :func:`rhs_function` does that pass and the sparse product in one call on numba's threads,
-summing each row in the order of scipy's CSR product (benchmarks/README.md, "The whole RHS on
-both cores").
+summing each row in the order of scipy's CSR product (benchmarks/README.md, "Both cores for
+the whole network's steps").
 
 It is used only where it pays (see ``system.COMPILED_MIN_PATCHES``) and only when numba is
 installed (``pip install "trophoscape[fast]"``); the numpy path is the reference and the
@@ -227,15 +227,18 @@ def patch_errors(K, E, h, y, y_new, rtol, atol, per):
 def _patch_errors(K, E, h, y, y_new, rtol, atol, per):  # pragma: no cover - compiled
     """Each patch's larger scaled error of a Runge–Kutta step, into ``per`` (shape (n,)):
     ``|h sum_l E[l] K[l, c]| / (atol + max(|y_c|, |y_new_c|) rtol)`` over its two
-    components; a NaN is kept."""
+    components; a NaN (in ``K``, ``y`` or ``y_new``) is kept, as numpy keeps it."""
     n = per.size
     stages = E.size
     for i in numba.prange(n):
         worst = 0.0
         for half in range(2):
             c = i + half * n
-            err = abs(_combined(K, E, stages, c) * h) / (
-                atol + max(abs(y[c]), abs(y_new[c])) * rtol)
+            big = abs(y[c])
+            end = abs(y_new[c])
+            if end > big or end != end:  # np.maximum's rule: a NaN is kept
+                big = end
+            err = abs(_combined(K, E, stages, c) * h) / (atol + big * rtol)
             if err > worst or err != err:
                 worst = err
             if worst != worst:

@@ -8,6 +8,7 @@ import multiprocessing
 import os
 import pickle
 import sys
+import traceback
 from pathlib import Path
 
 from ..errors import RunError
@@ -110,7 +111,11 @@ def write_run_files(result, stage, *, maps: bool = True, geojson: bool = False,
         def draw():
             write_figures_and_report(stage, result, gdf, links, summary, sections)
 
-        drawn = _beside(draw) if _apart(len(gdf)) else draw
+        drawn = draw
+        if _apart(len(gdf)):
+            apart = _InSecondProcess(draw)
+            if apart.start():
+                drawn = apart
     try:
         _write_files(result, stage, gdf, links, summary, geojson)
     except BaseException:
@@ -139,46 +144,67 @@ def _apart(n_patches: int) -> bool:
     if not sys.platform.startswith("linux"):
         return False  # no fork on Windows; macOS forks unsafely with its frameworks loaded
     if multiprocessing.current_process().daemon:
-        return False  # a pool's or Dask's worker may not start processes
+        return False  # a daemonic process (Dask's workers are) may not start processes
     return len(os.sched_getaffinity(0)) > 1
 
 
-class _beside:
+class _InSecondProcess:
     """``work()`` in a forked process, started now; calling the object waits for it and
-    raises its error here (the same exception when it can be passed over, else a
-    :class:`RunError` with its text); :meth:`stop` ends it. The process is a daemon, so it
-    cannot outlive this one."""
+    raises its error here; :meth:`stop` ends it.
+
+    The error is the same exception when it can be passed over whole, else a
+    :class:`RunError` with its type and text; either way the other process's traceback is
+    added as a note. The process leaves Ctrl-C to this one (which stops it), and ends when
+    this one ends, however it ends (:func:`~trophoscape.workflows.tasks.init_worker_process`):
+    it cannot draw on after this one is gone. :meth:`start` returns False when no process
+    could be started (the caller then does the work itself)."""
 
     def __init__(self, work):
+        self._work = work
+        self._process = None
+        self._receive = None
+
+    def start(self) -> bool:
+        from ..workflows.tasks import init_worker_process
+
         context = multiprocessing.get_context("fork")
-        self._receive, send = context.Pipe(duplex=False)
+        receive, send = context.Pipe(duplex=False)
+        parent = os.getpid()
+        work = self._work
 
         def run():
+            init_worker_process(parent)
             try:
                 work()
                 outcome = None
-            except BaseException as exc:  # noqa: BLE001 - passed to the parent as it is
-                outcome = exc
-            try:
-                send.send(outcome)
-            except Exception:  # the exception does not pickle: its text
-                send.send(RunError(f"{type(outcome).__name__}: {outcome}"))
+            except BaseException as exc:  # noqa: BLE001 - passed to the parent
+                try:
+                    whole = pickle.dumps(exc)
+                except Exception:  # it does not pickle: its type and text
+                    whole = None
+                outcome = (whole, type(exc).__name__, str(exc), traceback.format_exc())
+            send.send(outcome)
 
-        self._process = context.Process(target=run, name="trophoscape-maps", daemon=True)
+        process = context.Process(target=run, name="trophoscape-maps", daemon=True)
         # objects the collector would visit in the new process stay shared with this one
         # (the garbage collector writes to every object it visits: copy on write)
         gc.freeze()
         try:
-            self._process.start()
+            process.start()
+        except OSError:  # no memory or no process left for a fork: draw here
+            receive.close()
+            return False
         finally:
             gc.unfreeze()
-        send.close()
+            send.close()
+        self._process, self._receive = process, receive
+        return True
 
     def __call__(self) -> None:
         try:
             try:
                 outcome = self._receive.recv()
-            except (EOFError, OSError, pickle.UnpicklingError):
+            except Exception:  # ended without a result, or one that cannot be rebuilt
                 self._process.join()
                 raise RunError("drawing the maps and the report in a second process ended "
                                f"without a result (exit code {self._process.exitcode})"
@@ -189,8 +215,17 @@ class _beside:
             raise
         finally:
             self._receive.close()
-        if outcome is not None:
-            raise outcome
+        if outcome is None:
+            return
+        whole, name, text, trace = outcome
+        try:
+            exc = pickle.loads(whole) if whole is not None else None
+        except Exception:  # pickled, but cannot be rebuilt here
+            exc = None
+        if not isinstance(exc, BaseException):
+            exc = RunError(f"{name}: {text}" if text else name)
+        exc.add_note("in the process that drew the maps and the report:\n" + trace)
+        raise exc
 
     def stop(self) -> None:
         if self._process.is_alive():

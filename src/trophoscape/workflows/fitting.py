@@ -380,12 +380,12 @@ class _Likelihood:
                 and mp.parent_process() is None):
             from concurrent.futures import ProcessPoolExecutor
 
-            from .tasks import _init_worker
+            from .tasks import init_worker_process
 
             global _JOB
             _JOB = self
             self.pool = ProcessPoolExecutor(workers, mp_context=mp.get_context("fork"),
-                                            initializer=_init_worker,
+                                            initializer=init_worker_process,
                                             initargs=(os.getpid(),))
         return self
 

@@ -589,10 +589,12 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
 
 
 #: From this many patches the stability analysis (which needs the system, not the run) is
-#: computed on a second thread while persistence, synchrony and capacity are computed on this
-#: one; its numbers and where they go are the same either way. Its Krylov steps and sparse
+#: computed on a second thread while persistence and synchrony are computed on this one; its
+#: numbers and where they go are the same either way. (Should those two be interrupted, the
+#: thread finishes its computation on its own and its result is dropped; as a daemon it
+#: cannot keep the process alive.) Its Krylov steps and sparse
 #: products, and synchrony's transforms, let go of Python's lock, so the two overlap
-#: (benchmarks/README.md, "The whole RHS on both cores").
+#: (benchmarks/README.md, "Both cores for the whole network's steps").
 STABILITY_BESIDE_MIN_PATCHES = 20_000
 
 

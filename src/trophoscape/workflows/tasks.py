@@ -46,6 +46,7 @@ from typing import Any, Callable, Iterable
 from ..errors import InputError, param
 
 __all__ = ["run_tasks", "default_workers", "check_workers", "ScenarioPayload", "cached",
+           "init_worker_process",
            "remember", "forget"]
 
 #: Tasks kept in flight per local worker: enough to keep a worker busy between results,
@@ -119,8 +120,10 @@ def _exit_with_parent(parent_pid: int | None) -> None:
     threading.Thread(target=watch, name="trophoscape-parent-watch", daemon=True).start()
 
 
-def _init_worker(parent_pid: int | None) -> None:
-    """The initializer of every local worker process."""
+def init_worker_process(parent_pid: int | None) -> None:
+    """The initializer of every local worker process (and of the process that draws a large
+    run's maps, :mod:`trophoscape.report.run`): Ctrl-C is left to the parent, the process
+    ends with its parent, and compiled kernels run on one thread."""
     _ignore_sigint()
     _exit_with_parent(parent_pid)
     # one core per worker: compiled kernels on one thread. numba reads the variable when it
@@ -290,7 +293,7 @@ def _run_pool(fn, tasks, on_result, workers, retries, bar):
         isolated = bool(suspects)
         source = suspects if isolated else queue
         pool = ProcessPoolExecutor(max_workers=1 if isolated else workers,
-                                   mp_context=context, initializer=_init_worker,
+                                   mp_context=context, initializer=init_worker_process,
                                    initargs=(parent_pid,))
         try:
             lost = _drain(pool, fn, tasks, source, 1 if isolated else
