@@ -557,3 +557,15 @@ def test_patch_errors_keep_a_nan_as_numpy_does():
     assert np.isnan(per[1]) and np.isnan(per[4])
     ok = ~np.isnan(want)
     np.testing.assert_allclose(per[ok], want[ok], rtol=1e-13)
+
+
+def test_dense_coefficients_equal_numpys_product():
+    # consistency test: the compiled interpolant's coefficients are scipy's K.T @ P (BLAS)
+    # to rounding, for RK45's and RK23's interpolants
+    import scipy.integrate as si
+
+    rng = np.random.default_rng(9)
+    for method in (si.RK45, si.RK23):
+        K = rng.normal(size=(method.n_stages + 1, 500))
+        np.testing.assert_allclose(compiled.dense_coefficients(K, method.P), K.T @ method.P,
+                                   rtol=1e-13, atol=1e-15)

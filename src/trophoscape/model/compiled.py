@@ -217,6 +217,26 @@ def _stage(growth, response, harvest, y, K, stages, coefficients, h, area, q, x,
         out[row] = _product(out, indptr, indices, data, x, row)
 
 
+def dense_coefficients(K, P):
+    """``K.T @ P`` (the coefficients of scipy's Runge–Kutta interpolant, shape (n, columns of
+    P)) by :func:`_dense_coefficients`, on numba's threads, one caller at a time."""
+    Q = np.empty((K.shape[1], P.shape[1]))
+    with ONE_AT_A_TIME:
+        threaded(_dense_coefficients)(K, np.ascontiguousarray(P, dtype=np.float64), Q)
+    return Q
+
+
+@jit(parallel=True)
+def _dense_coefficients(K, P, Q):  # pragma: no cover - compiled
+    """``Q[c, j] = sum_l K[l, c] P[l, j]``, summed in order of ``l``."""
+    for c in numba.prange(K.shape[1]):
+        for j in range(P.shape[1]):
+            acc = K[0, c] * P[0, j]
+            for l in range(1, K.shape[0]):
+                acc += K[l, c] * P[l, j]
+            Q[c, j] = acc
+
+
 def patch_errors(K, E, h, y, y_new, rtol, atol, per):
     """:func:`_patch_errors` (on numba's threads, one caller at a time)."""
     with ONE_AT_A_TIME:
