@@ -50,3 +50,17 @@ def grid_study(path, *, duration, **sections):
     for k, v in sections.items():
         raw.setdefault(k, {}).update(v)
     return ts.build_study(parse_scenario(raw, base_dir=path.parent))
+
+
+def count_calls(monkeypatch, owner, name) -> list:
+    """Replace ``owner.name`` (a callable) by one that records each call and calls it;
+    returns the list that grows by one item per call."""
+    calls = []
+    original = getattr(owner, name)
+
+    def counted(*args, **kwargs):
+        calls.append(1)
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(owner, name, counted)
+    return calls

@@ -17,7 +17,7 @@ from trophoscape.integrate.ode import simulate
 from trophoscape.model.system import COMPILED_MIN_PATCHES, CoupledSystem
 from trophoscape.testing import grid_landscape
 
-from conftest import DEFAULTS, make_model
+from conftest import DEFAULTS, count_calls, make_model
 
 compiled = pytest.importorskip("trophoscape.model.compiled", reason="numba is not installed")
 
@@ -49,6 +49,12 @@ def state(rng, n):
     y[rng.choice(2 * n, 12, replace=False)] = -1e-3  # the clipping path
     y[rng.choice(2 * n, 6, replace=False)] = 0.0
     return y
+
+
+@pytest.fixture
+def compiled_steps(monkeypatch):
+    """Counts the steps taken by the compiled stages (ode._compiled_step)."""
+    return count_calls(monkeypatch, ode_module, "_compiled_step")
 
 
 @pytest.mark.parametrize("growth", sorted(GROWTH_FORMS))
@@ -89,7 +95,7 @@ def test_compiled_rhs_is_the_same_on_any_number_of_threads(rng):
         numba.set_num_threads(before)
 
 
-def test_compiled_rk23_steps_agree_with_numpy_to_rounding(rng):
+def test_compiled_rk23_steps_agree_with_numpy_to_rounding(rng, compiled_steps):
     # consistency test: the compiled stages serve RK23's tableau too (3 stages, 4 error
     # weights); the same steps and evaluations, values within 1e-6 tolerance units
     # (measured: 3.6e-13 absolute)
@@ -97,21 +103,10 @@ def test_compiled_rk23_steps_agree_with_numpy_to_rounding(rng):
     n = ops[0].shape[0]
     model = varied_model(rng, n, "logistic", "holling2")
     y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
-    steps = []
-    original = ode_module._compiled_step
-
-    def counted(solver):
-        steps.append(1)
-        return original(solver)
-
-    ode_module._compiled_step = counted
-    try:
-        runs = [simulate(s, y0, duration=10.0, census_interval=0.5, extinction_abundance=0.0,
-                         method="RK23")
-                for s in pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")]
-    finally:
-        ode_module._compiled_step = original
-    assert len(steps) == runs[1].stats.steps  # the compiled run took the compiled steps
+    runs = [simulate(s, y0, duration=10.0, census_interval=0.5, extinction_abundance=0.0,
+                     method="RK23")
+            for s in pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")]
+    assert len(compiled_steps) == runs[1].stats.steps  # the compiled run took the compiled steps
     assert runs[1].stats.steps == runs[0].stats.steps > 100
     assert runs[1].stats.nfev == runs[0].stats.nfev
     for species in ("prey", "predator"):
@@ -172,7 +167,7 @@ def test_compiled_rhs_keeps_nan(rng):
     np.testing.assert_array_equal(np.isnan(got), np.isnan(want))
 
 
-def test_compiled_trajectory_equals_numpy(rng):
+def test_compiled_trajectory_equals_numpy(rng, compiled_steps):
     ops = grid_operators()
     n = ops[0].shape[0]
     model = varied_model(rng, n, "logistic", "holling2")
@@ -183,20 +178,9 @@ def test_compiled_trajectory_equals_numpy(rng):
     # state and RHS) and the step's errors in one compiled pass each (ode._compiled_step),
     # summing in another order than numpy's stage sums; the same steps, and values equal to
     # rounding (within 1e-6 tolerance units, atol + rtol |y|; measured: 7e-9)
-    steps = []
-    original = ode_module._compiled_step
-
-    def counted(solver):
-        steps.append(1)
-        return original(solver)
-
-    ode_module._compiled_step = counted
-    try:
-        runs = [simulate(s, y0, duration=20.0, census_interval=0.5, extinction_abundance=0.0)
-                for s in systems]
-    finally:
-        ode_module._compiled_step = original
-    assert len(steps) == runs[1].stats.steps > 0  # the compiled run took the compiled steps
+    runs = [simulate(s, y0, duration=20.0, census_interval=0.5, extinction_abundance=0.0)
+            for s in systems]
+    assert len(compiled_steps) == runs[1].stats.steps > 0  # the compiled run took the compiled steps
     for species in ("prey", "predator"):
         want = runs[0].data[species].values
         units = np.abs(runs[1].data[species].values - want) / (1e-8 + 1e-6 * np.abs(want))

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 import scipy.linalg
 import scipy.sparse.linalg
-from conftest import grid_study, write_grid_file
+from conftest import count_calls, grid_study, write_grid_file
 
 import trophoscape as ts
 import trophoscape.workflows.study
@@ -266,16 +266,8 @@ def test_failing_persistence_with_replicates_keeps_the_replicate_columns(grid_fi
 def stability_beside(monkeypatch):
     """The stability analysis on a second thread from the first patch on; counts the
     threads started."""
-    started = []
-    original = trophoscape.workflows.study._Beside
-
-    def counting(work):
-        started.append(1)
-        return original(work)
-
     monkeypatch.setattr(trophoscape.workflows.study, "STABILITY_BESIDE_MIN_PATCHES", 1)
-    monkeypatch.setattr(trophoscape.workflows.study, "_Beside", counting)
-    return started
+    return count_calls(monkeypatch, trophoscape.workflows.study, "_Beside")
 
 
 def test_stability_on_a_second_thread_gives_the_same_results(grid_file, baseline,

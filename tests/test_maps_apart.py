@@ -24,6 +24,8 @@ from trophoscape.report import run as run_module
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
 
+from conftest import count_calls
+
 apart_possible = pytest.mark.skipif(
     not sys.platform.startswith("linux") or len(os.sched_getaffinity(0)) < 2,
     reason="the maps are drawn apart only on Linux with two cores")
@@ -43,16 +45,8 @@ def result(tmp_path_factory):
 @pytest.fixture
 def apart(monkeypatch):
     """Maps drawn apart from the first patch on; counts the processes started."""
-    started = []
-    original = run_module._InSecondProcess
-
-    def counting(work):
-        started.append(1)
-        return original(work)
-
     monkeypatch.setattr(run_module, "MAPS_APART_MIN_PATCHES", 1)
-    monkeypatch.setattr(run_module, "_InSecondProcess", counting)
-    return started
+    return count_calls(monkeypatch, run_module, "_InSecondProcess")
 
 
 def no_process_left():
