@@ -106,7 +106,7 @@ def test_kernel_links_found_on_threads_are_those_found_in_one_call(monkeypatch, 
     land = random_landscape()
     one = build_network(land, kernel="exponential", max_distance_km=max_km)
     monkeypatch.setattr(network_module, "THREADED_MIN_PATCHES", 1)
-    monkeypatch.setattr(network_module, "_cores", lambda: 3)  # three chunks on any machine
+    monkeypatch.setattr(network_module, "cores", lambda: 3)  # three chunks on any machine
     threaded = build_network(land, kernel="exponential", max_distance_km=max_km)
     for name in ("source", "target", "distance_km"):
         np.testing.assert_array_equal(getattr(threaded, name), getattr(one, name))

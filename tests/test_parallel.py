@@ -94,3 +94,25 @@ def test_pool_workers_end_when_the_sweep_is_killed(tmp_path):
         if proc.poll() is None:
             proc.kill()
         proc.communicate()
+
+
+def _cores_here(task):
+    from trophoscape.machine import cores
+
+    return cores()
+
+
+def test_a_pools_worker_uses_one_core_and_this_process_its_own():
+    # consistency test: one answer to "how many cores" (trophoscape.machine.cores) serves
+    # the pools, the link search's threads, numba's kernels and the maps' process; a pool's
+    # worker gets one core, so that it starts no threads of its own beside the others
+    import os
+
+    from trophoscape.machine import cores
+    from trophoscape.workflows.tasks import run_tasks
+
+    assert cores() == len(os.sched_getaffinity(0))
+    got = {}
+    run_tasks(_cores_here, [1, 2, 3], on_result=lambda t, ok, v: got.update({t: (ok, v)}),
+              workers=2)
+    assert got == {1: (True, 1), 2: (True, 1), 3: (True, 1)}

@@ -27,14 +27,14 @@ import types
 import numba
 import numpy as np
 
+from ..machine import cores
+
 #: The kernels that run on numba's threads (the whole RHS here, the regions' groups in
 #: :mod:`trophoscape.integrate.compiled`) take this lock: numba's workqueue thread pool
 #: ends the process when two Python threads enter it at once.
 ONE_AT_A_TIME = threading.Lock()
 #: The process that first ran a kernel on numba's threads (see :func:`threaded`).
 _threads_started_in: int | None = None
-#: Set by :func:`one_thread_only` (a pool's worker).
-_one_thread_only = False
 #: Growth forms and responses the compiled code knows, by their names in ``dynamics``.
 GROWTH_CODES = {"exponential": 0, "logistic": 1, "allee": 2}
 RESPONSE_CODES = {"lotka_volterra": 0, "holling2": 1, "holling3": 2, "beddington_deangelis": 3}
@@ -81,26 +81,19 @@ def _twin(function):
     return twin
 
 
-def one_thread_only() -> None:
-    """From now on this process runs every compiled kernel on one thread (a pool's worker:
-    the pool gives each worker one core)."""
-    global _one_thread_only
-    _one_thread_only = True
-
-
 def threaded(kernel):
     """``kernel`` (compiled with ``jit(parallel=True)``) or its one-thread twin, which gives
     the same numbers bit for bit (every loop on numba's threads has independent iterations).
 
-    The twin runs where numba has one thread (``NUMBA_NUM_THREADS=1``, as in a pool's
-    worker, :func:`one_thread_only`), and in a process forked from
+    The twin runs where numba has one thread or the process one core (``NUMBA_NUM_THREADS=1``,
+    a pool's worker: :func:`trophoscape.machine.cores`), and in a process forked from
     one that already ran a kernel on numba's threads: numba's OpenMP layer ends such a
     process at its first parallel loop ("fork() called from a process already using GNU
     OpenMP"), and the pools that plan corridors or scan origins fork after the baseline run.
     """
     global _threads_started_in
     pid = os.getpid()
-    if (_one_thread_only or numba.config.NUMBA_NUM_THREADS == 1
+    if (cores() == 1 or numba.config.NUMBA_NUM_THREADS == 1
             or _threads_started_in not in (None, pid)):
         return kernel.one_thread
     _threads_started_in = pid
@@ -142,15 +135,23 @@ def local_one(growth, response, harvest, big_n, big_p, ai, q, i):  # pragma: no 
     return rate_n * ai, (q[6, i] * eaten - q[7, i] * dp) * ai
 
 
+@jit(inline=True)
+def _local_at(growth, response, harvest, v_n, v_p, area, q, x, dy, i):  # pragma: no cover
+    """Patch ``i`` at abundances ``v_n, v_p``: clipped into ``x``, its local terms into
+    ``dy`` (both of the whole state's size)."""
+    n = area.size
+    big_n = clipped(v_n)
+    big_p = clipped(v_p)
+    x[i] = big_n
+    x[n + i] = big_p
+    dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
+
+
 @jit
 def _local_terms(growth, response, harvest, y, area, q, x, dy):  # pragma: no cover - compiled
     n = area.size
     for i in range(n):
-        big_n = clipped(y[i])
-        big_p = clipped(y[n + i])
-        x[i] = big_n
-        x[n + i] = big_p
-        dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
+        _local_at(growth, response, harvest, y[i], y[n + i], area, q, x, dy, i)
 
 
 @jit(parallel=True)
@@ -165,11 +166,7 @@ def _whole_rhs(growth, response, harvest, y, area, q, x, dy, indptr, indices,
     instead of 1.0 at 100,000 patches."""
     n = area.size
     for i in numba.prange(n):
-        big_n = clipped(y[i])
-        big_p = clipped(y[n + i])
-        x[i] = big_n
-        x[n + i] = big_p
-        dy[i], dy[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
+        _local_at(growth, response, harvest, y[i], y[n + i], area, q, x, dy, i)
     for row in numba.prange(2 * n):
         dy[row] = _product(dy, indptr, indices, data, x, row)
 
@@ -208,11 +205,7 @@ def _stage(growth, response, harvest, y, K, stages, coefficients, h, area, q, x,
         if keep:
             y_out[i] = v_n
             y_out[n + i] = v_p
-        big_n = clipped(v_n)
-        big_p = clipped(v_p)
-        x[i] = big_n
-        x[n + i] = big_p
-        out[i], out[n + i] = local_one(growth, response, harvest, big_n, big_p, area[i], q, i)
+        _local_at(growth, response, harvest, v_n, v_p, area, q, x, out, i)
     for row in numba.prange(2 * n):
         out[row] = _product(out, indptr, indices, data, x, row)
 

@@ -9,7 +9,6 @@ sparse matrix ``M`` of ``dx/dt = M x`` for one species.
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -24,6 +23,7 @@ from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from ..errors import InputError, allowed_range
+from ..machine import cores
 from .landscape import Landscape, read_corridors, read_links_table
 from .resistance import CORRIDOR_RESISTANCE, corridor_resistances
 
@@ -586,17 +586,11 @@ def _resolve(path, base_dir) -> Path:
 THREADED_MIN_PATCHES = 20_000
 
 
-def _cores() -> int:
-    if hasattr(os, "sched_getaffinity"):
-        return len(os.sched_getaffinity(0))
-    return os.cpu_count() or 1  # pragma: no cover - platforms without affinity
-
-
 def _on_threads(part, size: int, n_patches: int):
     """``part(lo, hi)`` over ``[0, size)`` in consecutive chunks, one per core from
     :data:`THREADED_MIN_PATCHES` patches (else one call), concatenated in order along the
     last axis."""
-    chunks = min(_cores(), 8) if n_patches >= THREADED_MIN_PATCHES and size > 1 else 1
+    chunks = min(cores(), 8) if n_patches >= THREADED_MIN_PATCHES and size > 1 else 1
     if chunks == 1:
         return part(0, size)
     edges = np.linspace(0, size, chunks + 1).astype(np.int64)

@@ -44,6 +44,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from ..machine import cores
 
 __all__ = ["CORRIDOR_RESISTANCE", "corridor_resistances", "ResistanceSurface",
            "read_resistance", "MAX_RASTER_SHARE"]
@@ -379,10 +380,7 @@ def _workers(workers, n: int) -> int:
             or mp.parent_process() is not None):  # not from inside a worker of a sweep
         return 1
     if workers is None:
-        try:
-            workers = len(os.sched_getaffinity(0))
-        except AttributeError:  # not on Linux
-            workers = os.cpu_count() or 1
+        workers = cores()
     return max(1, min(int(workers), n))
 
 

@@ -251,7 +251,7 @@ def _rhs(n, area, model, movement, compiled=False):
         return _compiled_module().rhs_function(model, area, movement)
     x = np.empty(2 * n)
     m = 2 * n
-    local = _local_terms(model, area, compiled)
+    local = _numpy_local_terms(model, area)
     indptr, indices, data = movement.indptr, movement.indices, movement.data
 
     def rhs(t, y):

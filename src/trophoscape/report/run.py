@@ -12,6 +12,7 @@ import traceback
 from pathlib import Path
 
 from ..errors import RunError
+from ..machine import cores
 from ..io.folder import staged_folder
 from ..io.series import write_timeseries
 from ..io.tables import patches_frame, provenance, write_json
@@ -145,7 +146,7 @@ def _apart(n_patches: int) -> bool:
         return False  # no fork on Windows; macOS forks unsafely with its frameworks loaded
     if multiprocessing.current_process().daemon:
         return False  # a daemonic process (Dask's workers are) may not start processes
-    return len(os.sched_getaffinity(0)) > 1
+    return cores() > 1
 
 
 class _InSecondProcess:

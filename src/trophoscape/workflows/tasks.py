@@ -44,6 +44,7 @@ from pathlib import Path
 from typing import Any, Callable, Iterable
 
 from ..errors import InputError, param
+from ..machine import cores, one_core_only
 
 __all__ = ["run_tasks", "default_workers", "check_workers", "ScenarioPayload", "cached",
            "init_worker_process",
@@ -55,11 +56,8 @@ IN_FLIGHT_PER_WORKER = 2
 
 
 def default_workers() -> int:
-    """All the cores this process may use."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # pragma: no cover - not on Linux
-        return max(1, os.cpu_count() or 1)
+    """All the cores this process may use (:func:`trophoscape.machine.cores`)."""
+    return cores()
 
 
 def _call(fn, task):
@@ -126,13 +124,11 @@ def init_worker_process(parent_pid: int | None) -> None:
     ends with its parent, and compiled kernels run on one thread."""
     _ignore_sigint()
     _exit_with_parent(parent_pid)
-    # one core per worker: compiled kernels on one thread. numba reads the variable when it
-    # is imported (and refuses a change once its threads started); the compiled module, if
-    # already imported, is told directly
+    # one core per worker (compiled kernels on one thread, no threads of its own). numba
+    # reads its variable when it is imported, and refuses a change once its threads started
+    one_core_only()
     if "numba" not in sys.modules:
         os.environ["NUMBA_NUM_THREADS"] = "1"
-    if "trophoscape.model.compiled" in sys.modules:
-        sys.modules["trophoscape.model.compiled"].one_thread_only()
 
 
 @dataclass(frozen=True, eq=False)
