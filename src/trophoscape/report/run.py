@@ -105,26 +105,24 @@ def write_run_files(result, stage, *, maps: bool = True, geojson: bool = False,
     summary["crs"] = result.study.landscape.crs.to_string()
     summary["repaired_geometries"] = list(result.study.landscape.repaired)
     summary["provenance"] = provenance(result.study)
-    drawn = None
-    if maps:
+    def draw():
         from .html import write_figures_and_report
 
-        def draw():
-            write_figures_and_report(stage, result, gdf, links, summary, sections)
+        write_figures_and_report(stage, result, gdf, links, summary, sections)
 
-        drawn = draw
-        if _apart(len(gdf)):
-            apart = _InSecondProcess(draw)
-            if apart.start():
-                drawn = apart
+    apart = _InSecondProcess(draw) if maps and _apart(len(gdf)) else None
+    if apart is not None and not apart.start():
+        apart = None  # no process could be started: drawn here, after the files
     try:
         _write_files(result, stage, gdf, links, summary, geojson)
     except BaseException:
-        if drawn is not None and hasattr(drawn, "stop"):
-            drawn.stop()
+        if apart is not None:
+            apart.stop()
         raise
-    if drawn is not None:
-        drawn()
+    if apart is not None:
+        apart()  # waits for it, raises its error here
+    elif maps:
+        draw()
 
 
 def _write_files(result, stage, gdf, links, summary, geojson) -> None:
