@@ -19,7 +19,7 @@ PACKAGE = Path(trophoscape.__file__).parent
 
 #: Lowest first. A module may import from its own layer or any layer below it.
 LAYERS = (
-    ("errors", "columns"),  # messages and names every layer shares
+    ("errors", "columns", "machine"),  # messages, names and the cores every layer shares
     ("model",),  # landscape, network, local dynamics, the coupled system, shocks
     ("scenario", "testing"),  # the scenario file, read against the model's tables
     ("integrate",),  # ODE solver, event-based engine, noise, replicates
