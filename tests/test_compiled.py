@@ -401,55 +401,6 @@ def test_compiled_corrections_equal_numpy(rng):
         assert not both[1]._mark.any() and np.all(both[1]._position == -1)
 
 
-@pytest.mark.parametrize("order", ["none", "rcm"])
-def test_derivative_after_a_region_equals_a_whole_evaluation(rng, order):
-    # consistency test: after a step taken again over a region, the solver restarts from a
-    # state that differs in few components; its first derivative is evaluated again only
-    # where those reach (retake.StepRetaker.derivative_after), and must equal the system's
-    # whole right-hand side bit for bit (clipping at zero included)
-    from trophoscape.integrate.retake import StepRetaker
-
-    ops = grid_operators()
-    n = ops[0].shape[0]
-    model = varied_model(rng, n, "logistic", "beddington_deangelis", harvest=True)
-    system = CoupledSystem(model=model, area_km2=rng.uniform(0.5, 2.0, n), prey_movement=ops[0],
-                           predator_movement=ops[1], order=order, local_terms="compiled")
-    rhs = system.rhs_function(internal=True)
-    area, model_in, movement = system.parts(internal=True)
-    retaker = StepRetaker(area, model_in, movement, compiled=True)
-    for _ in range(5):
-        y_ref = state(rng, n)
-        f_ref = rhs(0.0, y_ref)
-        y = y_ref.copy()
-        changed = rng.choice(2 * n, size=int(rng.integers(1, 20)), replace=False)
-        y[changed] = rng.uniform(-1.0, 150.0, changed.size)
-        y[changed[:2]] = 0.0
-        zero = np.flatnonzero(y_ref == 0.0)[0]  # -0.0 where it was 0.0: other bits
-        y[zero] = -0.0
-        got = retaker.derivative_after(y_ref, f_ref)(y)
-        want = rhs(0.0, y)
-        np.testing.assert_array_equal(got.view(np.int64), want.view(np.int64))
-        assert not np.array_equal(got, f_ref)
-        assert not retaker._mark.any()
-
-
-def test_derivative_after_is_not_used_without_scipys_csr_product(monkeypatch):
-    # consistency test: derivative_after repeats the sums of scipy's CSR product in their
-    # order; where the system falls back to `movement @ x` (another order), the restart
-    # evaluates the right-hand side itself instead
-    from trophoscape.integrate.retake import StepRetaker
-
-    ops = grid_operators()
-    n = ops[0].shape[0]
-    system = CoupledSystem(model=make_model(n), area_km2=np.ones(n), prey_movement=ops[0],
-                           predator_movement=ops[1], local_terms="numpy")
-    retaker = StepRetaker(*system.parts(), compiled=True)
-    y = np.ones(2 * n)
-    assert retaker.derivative_after(y, y) is not None
-    monkeypatch.setattr(system_module, "_csr_matvec", None)
-    assert retaker.derivative_after(y, y) is None
-
-
 _POOL_RUN = {}
 
 

@@ -45,26 +45,16 @@ from .trajectory import SolverStats, Trajectory, census_times
 
 __all__ = ["METHODS", "RunSettings", "STORAGE_DTYPE", "simulate", "choose_method"]
 
-class _KnownStart:
-    """A Runge–Kutta solver that can be given the right-hand side at its start
-    (``start_derivative``) instead of evaluating it (scipy's evaluates it in ``__init__``)."""
+class _StageAware:
+    """A Runge–Kutta solver that knows the compiled right-hand side's stage evaluation
+    (``fun.stage``, :mod:`trophoscape.model.compiled`), if it has one."""
 
-    def __init__(self, fun, t0, y0, t_bound, start_derivative=None, **options):
-        # the compiled right-hand side's stage evaluation, if it has one (model.compiled)
+    def __init__(self, fun, t0, y0, t_bound, **options):
         self._stage = getattr(fun, "stage", None)
-        if start_derivative is None:
-            super().__init__(fun, t0, y0, t_bound, **options)
-            return
-        known = [np.asarray(start_derivative, dtype=float)]
-
-        def fun_or_known(t, y):
-            return known.pop() if known else fun(t, y)
-
-        super().__init__(fun_or_known, t0, y0, t_bound, **options)
-        self.nfev -= 1  # the start was not evaluated
+        super().__init__(fun, t0, y0, t_bound, **options)
 
 
-class _MaxNormRK(_KnownStart):
+class _MaxNormRK(_StageAware):
     """Error control by the largest scaled error over all components (a max norm).
 
     scipy's explicit Runge–Kutta classes take the root mean square of the scaled error over
@@ -215,7 +205,7 @@ class RK45(_MaxNormRK, si.RK45):
     """scipy's RK45 (Dormand–Prince 5(4)) with a max-norm error control."""
 
 
-class DOP853(_KnownStart, si.DOP853):
+class DOP853(_StageAware, si.DOP853):
     """scipy's DOP853 with its combined 5th/3rd-order error estimate taken per component.
 
     scipy combines the two estimates over the whole state (Hairer, Nørsett & Wanner 1993,
@@ -629,13 +619,8 @@ def simulate(
         # a rewired system may number its patches differently: back into its own order
         return system.to_internal(y_start) if internal else y_start
 
-    def start(t0, y_start, first_step, derivative=None):
-        before = rhs
+    def start(t0, y_start, first_step):
         y_start = apply_events(t0, y_start)
-        # the right-hand side at the start, known from the last step's where the state
-        # changed in few components and the system did not (a step taken again)
-        known = {} if derivative is None or rhs is not before else {
-            "start_derivative": derivative(y_start)}
         if bound() <= t0:  # nothing to integrate before the next census or event
             first_step = None
         elif first_step is not None:
@@ -644,8 +629,7 @@ def simulate(
             first_step = _initial_step(rhs, t0, y_start, bound(), solver_cls.error_estimator_order,
                                        rtol_used, atol_used)
             totals["nfev"] += 2
-        solver = solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options,
-                            **known)
+        solver = solver_cls(rhs, t0, y_start, bound(), first_step=first_step, **options)
         if method in MAX_NORM:
             solver.spare = spare
         return solver
@@ -654,13 +638,12 @@ def simulate(
         for key in totals:
             totals[key] += int(getattr(s, key, 0) or 0)
 
-    def restart(old, t0, y_start, first_step, derivative=None, counted=True):
+    def restart(old, t0, y_start, first_step, counted=True):
         """A fresh solver from ``(t0, y_start)``; the old one's counts kept, its arrays freed.
-        ``derivative``: ``y -> rhs(t0, y)`` cheaper than an evaluation, or None;
         ``counted``: in ``restarts`` (not a step refused, which is taken again shorter)."""
         nonlocal restarts, above
         add_counts(old)
-        new = start(t0, y_start, first_step, derivative)
+        new = start(t0, y_start, first_step)
         _release(old)
         restarts += counted
         # which components can fall through the threshold from here
@@ -849,8 +832,11 @@ def simulate(
                     sink(sunk, k, record)
                     sunk = k
             if retaken is not None:
-                solver = restart(solver, t_end, retaken.y, step_wanted(solver),
-                                 retaker().derivative_after(solver.y, solver.f))
+                # (a new solver evaluates the right-hand side at its start: on the
+                # compiled path a whole evaluation on numba's threads costs less than one
+                # of only the rows the region changed; benchmarks/README.md, sixteenth
+                # session)
+                solver = restart(solver, t_end, retaken.y, step_wanted(solver))
             if falling is not None:
                 # half the step reached: the full one was often rejected right after a
                 # population was zeroed (benchmarks/README.md)

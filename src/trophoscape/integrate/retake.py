@@ -179,30 +179,6 @@ class StepRetaker:
         return sp.csr_array((weight[inside], local[inside], indptr),
                             shape=(patches.size, patches.size))
 
-    def derivative_after(self, y_ref, f_ref):
-        """With the compiled code, ``y -> f``: the right-hand side at a state ``y`` that
-        differs from ``y_ref`` (where it is ``f_ref``) in few components, by evaluating
-        again only the rows those reach (bit for bit a whole evaluation: see
-        :func:`trophoscape.integrate.compiled.derivative_after`); None without it, or when
-        the system's product is not scipy's CSR one (whose order of sums it repeats)."""
-        from ..model import system
-
-        if self.compiled is None or system._csr_matvec is None:
-            return None
-        y_ref = np.ascontiguousarray(y_ref, dtype=float)
-        f_ref = np.asarray(f_ref, dtype=float)
-        matrix, pattern = self.movement, self._transposed
-        growth, response, harvest = self._codes
-
-        def derivative(y):
-            y = np.ascontiguousarray(y, dtype=float)
-            return self.compiled.derivative_after(
-                y, y_ref, f_ref, matrix.indptr, matrix.indices, matrix.data, pattern.indptr,
-                pattern.indices, growth, response, harvest, self.area, self._block,
-                self._mark, y.view(np.int64), y_ref.view(np.int64))
-
-        return derivative
-
     def _corrections(self, members, sent):
         """What the components of the region's ``members`` sent out (``sent``, minus the
         step's course) along their links to components outside: the components reached
