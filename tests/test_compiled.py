@@ -401,6 +401,80 @@ def test_compiled_corrections_equal_numpy(rng):
         assert not both[1]._mark.any() and np.all(both[1]._position == -1)
 
 
+
+def test_compiled_corrections_are_the_same_with_the_species_apart_or_not(rng):
+    # consistency test: with the species' links apart (a block-diagonal operator, as the
+    # system builds it), the compiled pass does each species on its own thread; the
+    # components reached and their changes must be those of one pass and of the numpy
+    # reference, bit for bit, in the parallel kernel and its one-thread twin. An operator
+    # with a link between the species is not taken apart, and is still summed right.
+    from trophoscape.integrate import compiled
+    from trophoscape.integrate.retake import StepRetaker
+
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    system = CoupledSystem(model=make_model(n), area_km2=np.ones(n), prey_movement=ops[0],
+                           predator_movement=ops[1], local_terms="numpy")
+    area, model, movement = system.parts()
+    # and with links between the species: the prey of patch i reached by the predators of
+    # patch i + 5 (as if they were carried by them), the predators of i by the prey of i + 3
+    far = np.arange(n)
+    cross = sp.csr_array((np.r_[np.full(n, 0.05), np.full(n, 0.02)],
+                          (np.r_[far, far + n], np.r_[(far + 5) % n + n, (far + 3) % n])),
+                         shape=(2 * n, 2 * n))
+    crossed = sp.csr_array(movement + cross)
+    for operator, apart in ((movement, True), (crossed, False)):
+        numpy_path, compiled_path = (StepRetaker(area, model, operator, compiled=flag)
+                                     for flag in (False, True))
+        assert compiled_path._apart is apart
+        t = compiled_path._transposed
+        for _ in range(6):
+            members = np.sort(rng.choice(n, size=int(rng.integers(1, n // 2)), replace=False))
+            sent = rng.normal(size=2 * n)
+            want = numpy_path._corrections(members, sent)
+            runs = [kernel(members, n, t.indptr, t.indices, t.data, sent,
+                           compiled_path._mark, compiled_path._position, split)
+                    for kernel in (compiled.corrections, compiled.corrections.one_thread)
+                    for split in ((True, False) if apart else (False,))]
+            for targets, change in runs + [compiled_path._corrections(members, sent)]:
+                np.testing.assert_array_equal(targets, want[0])
+                np.testing.assert_array_equal(change.view(np.int64), want[1].view(np.int64))
+            assert not compiled_path._mark.any() and np.all(compiled_path._position == -1)
+
+
+@pytest.mark.parametrize("kind", [0, 1])
+def test_region_setup_is_the_same_in_any_number_of_parts(rng, kind):
+    # consistency test: the region's rows are built in runs on numba's threads, each in
+    # its own stretch of the buffers; every array must be the same bit for bit in 1, 2, 3
+    # or 7 runs and in the one-thread twin (kind 0: scipy's Runge-Kutta interpolant, 1:
+    # DOP853's form)
+    from trophoscape.integrate import compiled
+    from trophoscape.integrate.retake import StepRetaker
+
+    ops = grid_operators()
+    n = ops[0].shape[0]
+    system = CoupledSystem(model=make_model(n), area_km2=np.ones(n), prey_movement=ops[0],
+                           predator_movement=ops[1], local_terms="numpy")
+    retaker = StepRetaker(*system.parts(), compiled=True)
+    links, movement = retaker.links, retaker.movement
+    for _ in range(4):
+        patches = np.sort(rng.choice(n, size=int(rng.integers(1, n // 2)), replace=False))
+        y_old = rng.uniform(0.0, 50.0, 2 * n)
+        coef = rng.normal(scale=4.0, size=(2 * n, 4 if kind == 0 else 7))
+        args = (patches, n, links.indptr, links.indices, movement.indptr, movement.indices,
+                movement.data, retaker._position, kind, y_old, coef, 0.3)
+        runs = [compiled.region_setup(*args, parts) for parts in (1, 2, 3, 7)]
+        runs.append(compiled.region_setup.one_thread(*args, 2))
+        first = runs[0]
+        assert first[9].size > 0 and first[4].size > 0  # sources kept, and links within
+        assert np.count_nonzero(first[6]) > 0  # sources summed
+        for other in runs[1:]:
+            for a, b in zip(first, other):
+                np.testing.assert_array_equal(np.asarray(b).view(np.uint8),
+                                              np.asarray(a).view(np.uint8))
+        assert np.all(retaker._position == -1)
+
+
 _POOL_RUN = {}
 
 

@@ -15,7 +15,8 @@ census values on the group's interpolant. Sums are taken in another order than n
 the two paths agree to rounding, not bit for bit; both are checked against scipy's event
 location in ``tests/test_removals.py``.
 
-The region is set up here too, in one pass each (:func:`region_setup`: its groups by
+The region is set up here too, in one pass each, on numba's threads where the work
+splits without two threads writing one place (:func:`region_setup`: its groups by
 union-find, the links within it and in from outside; :func:`corrections`: what it sends to
 the components just outside; :func:`joined`: the groups that patches joining it fall into),
 where the numpy path builds the same arrays by index arithmetic and scipy.
@@ -393,9 +394,9 @@ def _groups(patches, l_ptr, l_idx, position):  # pragma: no cover - compiled
     return label, count
 
 
-@jit
+@jit(parallel=True)
 def region_setup(patches, n, l_ptr, l_idx, mv_ptr, mv_idx, mv_val, position, kind, y_old,
-                 coef, h):  # pragma: no cover - compiled
+                 coef, h, parts):  # pragma: no cover - compiled
     """What :func:`run_groups` needs of a region of ``patches`` (increasing): as
     ``retake._Region`` builds it in numpy, in one pass.
 
@@ -407,6 +408,10 @@ def region_setup(patches, n, l_ptr, l_idx, mv_ptr, mv_idx, mv_val, position, kin
     sum > 0``, times ``h`` for kind 0) are summed into one polynomial per component
     (``p_old, p_coef``), in the order of the rows; the others are kept (``i_ptr, i_src,
     i_rate``, sources in the network's numbering).
+
+    The rows are shared out in ``parts`` runs of rows on numba's threads, each written to
+    its own stretch of the buffers, which are then closed up: every row is built as in one
+    pass, so the result does not depend on ``parts`` (or the number of threads).
 
     Returns ``patches`` in group order, the groups' starts, the region's components in
     the network's numbering (those patches, then the same plus ``n``), and the arrays
@@ -428,10 +433,20 @@ def region_setup(patches, n, l_ptr, l_idx, mv_ptr, mv_idx, mv_val, position, kin
     for i in range(m):
         comps[i] = order[i]
         comps[m + i] = order[i] + n
-    total = 0
-    for c in range(2 * m):
-        position[comps[c]] = c
-        total += mv_ptr[comps[c] + 1] - mv_ptr[comps[c]]
+    # the rows in parts, each with its own stretch of the buffers (its rows' entries)
+    bound = np.empty(parts + 1, dtype=np.int64)
+    for p in range(parts + 1):
+        bound[p] = (2 * m * p) // parts
+    room = np.zeros(parts + 1, dtype=np.int64)
+    for p in numba.prange(parts):
+        k = 0
+        for c in range(bound[p], bound[p + 1]):
+            position[comps[c]] = c
+            k += mv_ptr[comps[c] + 1] - mv_ptr[comps[c]]
+        room[p + 1] = k
+    for p in range(parts):
+        room[p + 1] += room[p]
+    total = room[parts]
     terms = coef.shape[1]
     w_ptr = np.zeros(2 * m + 1, dtype=np.int64)
     w_idx = np.empty(total, dtype=np.int64)
@@ -441,81 +456,121 @@ def region_setup(patches, n, l_ptr, l_idx, mv_ptr, mv_idx, mv_val, position, kin
     i_rate = np.empty(total)
     p_old = np.zeros(2 * m)
     p_coef = np.zeros((2 * m, terms))
-    nw = 0
-    ni = 0
-    for c in range(2 * m):
-        r = comps[c]
-        for e in range(np.uintp(mv_ptr[r]), np.uintp(mv_ptr[r + 1])):
-            rate = mv_val[e]
-            if rate == 0.0:
-                continue
-            col = np.uintp(mv_idx[e])
-            local = position[col]
-            if local >= 0:
-                w_idx[nw] = local
-                w_val[nw] = rate
-                nw += 1
-                continue
-            spread = 0.0
-            for j in range(terms):
-                spread += abs(coef[col, j])
-            if kind == 0:
-                spread = h * spread
-            if y_old[col] - spread > 0.0:
-                p_old[c] += rate * y_old[col]
+    w_end = np.empty(parts, dtype=np.int64)
+    i_end = np.empty(parts, dtype=np.int64)
+    for p in numba.prange(parts):
+        nw = room[p]
+        ni = room[p]
+        for c in range(bound[p], bound[p + 1]):
+            r = comps[c]
+            for e in range(np.uintp(mv_ptr[r]), np.uintp(mv_ptr[r + 1])):
+                rate = mv_val[e]
+                if rate == 0.0:
+                    continue
+                col = np.uintp(mv_idx[e])
+                local = position[col]
+                if local >= 0:
+                    w_idx[nw] = local
+                    w_val[nw] = rate
+                    nw += 1
+                    continue
+                spread = 0.0
                 for j in range(terms):
-                    p_coef[c, j] += rate * coef[col, j]
-            else:
-                i_src[ni] = col
-                i_rate[ni] = rate
-                ni += 1
-        w_ptr[c + 1] = nw
-        i_ptr[c + 1] = ni
-    for c in range(2 * m):
+                    spread += abs(coef[col, j])
+                if kind == 0:
+                    spread = h * spread
+                if y_old[col] - spread > 0.0:
+                    p_old[c] += rate * y_old[col]
+                    for j in range(terms):
+                        p_coef[c, j] += rate * coef[col, j]
+                else:
+                    i_src[ni] = col
+                    i_rate[ni] = rate
+                    ni += 1
+            w_ptr[c + 1] = nw
+            i_ptr[c + 1] = ni
+        w_end[p] = nw
+        i_end[p] = ni
+    # the parts' stretches closed up
+    nw = w_end[0]
+    ni = i_end[0]
+    for p in range(1, parts):
+        w_shift = room[p] - nw
+        i_shift = room[p] - ni
+        for k in range(room[p], w_end[p]):
+            w_idx[k - w_shift] = w_idx[k]
+            w_val[k - w_shift] = w_val[k]
+        for k in range(room[p], i_end[p]):
+            i_src[k - i_shift] = i_src[k]
+            i_rate[k - i_shift] = i_rate[k]
+        for c in range(bound[p], bound[p + 1]):
+            w_ptr[c + 1] -= w_shift
+            i_ptr[c + 1] -= i_shift
+        nw += w_end[p] - room[p]
+        ni += i_end[p] - room[p]
+    for c in numba.prange(2 * m):
         position[comps[c]] = -1
     return (order, starts, comps, w_ptr, w_idx[:nw].copy(), w_val[:nw].copy(), p_old, p_coef,
             i_ptr, i_src[:ni].copy(), i_rate[:ni].copy())
 
 
-@jit
-def corrections(members, n, t_ptr, t_idx, t_val, sent, mark, position):  # pragma: no cover
+@jit(parallel=True)
+def corrections(members, n, t_ptr, t_idx, t_val, sent, mark, position,
+                apart):  # pragma: no cover - compiled
     """What the components of the region's ``members`` (patches, increasing) sent out
     (``sent``, over the network's components, minus the step's course) along their links
     to components outside (the CSR ``t_ptr, t_idx, t_val``: the movement operator's
     transpose): the components reached (increasing) and the change of each, summed in the
     order of the region's components (prey, then predators) and of the rows' entries.
     ``mark`` (False) and ``position`` (-1) are work arrays over the network's components,
-    left as they came."""
+    left as they came.
+
+    ``apart``: the prey's links reach only prey and the predators' only predators (the
+    movement operator is block diagonal, as :class:`trophoscape.model.system.CoupledSystem`
+    builds it); the two species are then done on two of numba's threads, each in its own
+    half of the work arrays, with the same sums in the same order as in one pass."""
     m = members.size
     for i in range(m):
         mark[members[i]] = True
         mark[members[i] + n] = True
-    k = 0
-    for half in range(2):
-        for i in range(m):
-            c = members[i] + half * n
-            for e in range(np.uintp(t_ptr[c]), np.uintp(t_ptr[c + 1])):
-                col = np.uintp(t_idx[e])
-                if not mark[col] and position[col] == -1:
-                    position[col] = -2
-                    k += 1
-    # in increasing order: one pass over the network (cheaper than sorting them)
-    targets = np.empty(k, dtype=np.int64)
-    j = 0
-    for col in range(position.size):
-        if position[col] == -2:
-            position[col] = j
-            targets[j] = col
-            j += 1
-    change = np.zeros(k)
-    for half in range(2):
-        for i in range(m):
-            c = members[i] + half * n
-            for e in range(np.uintp(t_ptr[c]), np.uintp(t_ptr[c + 1])):
-                col = np.uintp(t_idx[e])
-                if not mark[col]:
-                    change[np.uintp(position[col])] += t_val[e] * sent[c]
-    for i in range(k):
+    parts = 2 if apart else 1
+    found = np.zeros(parts, dtype=np.int64)
+    for part in numba.prange(parts):
+        first = part if apart else 0
+        last = part + 1 if apart else 2
+        k = 0
+        for half in range(first, last):
+            for i in range(m):
+                c = members[i] + half * n
+                for e in range(np.uintp(t_ptr[c]), np.uintp(t_ptr[c + 1])):
+                    col = np.uintp(t_idx[e])
+                    if not mark[col] and position[col] == -1:
+                        position[col] = -2
+                        k += 1
+        found[part] = k
+    total = found.sum()
+    targets = np.empty(total, dtype=np.int64)
+    for part in numba.prange(parts):
+        j = 0 if part == 0 else found[0]
+        lo = 0 if part == 0 else n
+        hi = n if apart and part == 0 else 2 * n
+        for col in range(lo, hi):
+            if position[col] == -2:
+                position[col] = j
+                targets[j] = col
+                j += 1
+    change = np.zeros(total)
+    for part in numba.prange(parts):
+        first = part if apart else 0
+        last = part + 1 if apart else 2
+        for half in range(first, last):
+            for i in range(m):
+                c = members[i] + half * n
+                for e in range(np.uintp(t_ptr[c]), np.uintp(t_ptr[c + 1])):
+                    col = np.uintp(t_idx[e])
+                    if not mark[col]:
+                        change[np.uintp(position[col])] += t_val[e] * sent[c]
+    for i in numba.prange(total):
         position[targets[i]] = -1
     for i in range(m):
         mark[members[i]] = False

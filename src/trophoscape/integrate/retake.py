@@ -142,13 +142,17 @@ class StepRetaker:
         self._position = np.full(2 * n, -1, dtype=np.int64)
         if share is not None and share._operator is movement:
             self.movement, self.links = share.movement, share.links
-            self._transposed = share._transposed
+            self._transposed, self._apart = share._transposed, share._apart
             return
         self.movement = sp.csr_array(movement)
         # by rows of the transpose: where each component sends
         self._transposed = sp.csr_array(self.movement.T)
         block = abs(self.movement[:n, :n]) + abs(self.movement[n:, n:])
         self.links = sp.csr_array(block + block.T)
+        # each species' components send only to their own species' (stored entries)
+        t = self._transposed
+        self._apart = bool(np.array_equal(
+            t.indices >= n, np.repeat(np.arange(2 * n) >= n, np.diff(t.indptr))))
 
     # ------------------------------------------------------------------------------------
     def _distinct(self, index):
@@ -186,8 +190,12 @@ class StepRetaker:
         n = self.n
         matrix = self._transposed
         if self.compiled is not None:
-            return self.compiled.corrections(members, n, matrix.indptr, matrix.indices,
-                                             matrix.data, sent, self._mark, self._position)
+            from ..model.compiled import ONE_AT_A_TIME, threaded
+
+            with ONE_AT_A_TIME:
+                return threaded(self.compiled.corrections)(
+                    members, n, matrix.indptr, matrix.indices, matrix.data, sent, self._mark,
+                    self._position, self._apart)
         inside = np.concatenate([members, members + n])
         row, col, rate = _gather(matrix, inside)  # row: a component of the region
         self._mark[inside] = True
@@ -365,16 +373,22 @@ class _Region:
         stay positive over the whole step summed into one polynomial per component) and
         integrated group by group (:func:`~trophoscape.integrate.compiled.run_groups`), as
         the numpy setup and :meth:`_run` do."""
+        import numba
+
         from ..model.compiled import ONE_AT_A_TIME, threaded  # numba's threads
 
         module = retaker.compiled
         kind, y_old, coef, h = interpolant
         links, movement = retaker.links, retaker.movement
-        (order, starts, comps, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src,
-         i_rate) = module.region_setup(
-            np.asarray(patches, dtype=np.int64), retaker.n, links.indptr, links.indices,
-            movement.indptr, movement.indices, movement.data, retaker._position, kind,
-            y_old, coef, h)
+        with ONE_AT_A_TIME:
+            setup = threaded(module.region_setup)
+            # the rows in as many runs as threads (the result is the same for any number)
+            parts = 1 if setup is module.region_setup.one_thread else numba.get_num_threads()
+            (order, starts, comps, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src,
+             i_rate) = setup(
+                np.asarray(patches, dtype=np.int64), retaker.n, links.indptr, links.indices,
+                movement.indptr, movement.indices, movement.data, retaker._position, kind,
+                y_old, coef, h, parts)
         self.components = comps
         m = order.size
         self._start(y0, m, census)
