@@ -475,6 +475,55 @@ def test_region_setup_is_the_same_in_any_number_of_parts(rng, kind):
         assert np.all(retaker._position == -1)
 
 
+
+@pytest.mark.parametrize("kind", ["rk", "dop853"])
+def test_crossings_found_in_compiled_passes_are_numpys(rng, kind):
+    # consistency test: the populations that fall through the threshold in a whole
+    # network's step, found in two compiled passes (ode._crossed_compiled: the step's ends,
+    # then the points on the interpolant of those near the threshold) and by the numpy
+    # lines of simulate with crossings.falls_through_within, must be the same, on
+    # interpolants of scipy's Runge-Kutta form and of DOP853's, NaN included
+    import scipy.integrate as si
+
+    from trophoscape.integrate.crossings import NEAR, falls_through_within
+    from trophoscape.integrate.ode import _crossed_compiled, _on
+
+    size, level = 4000, 2.0
+    for _ in range(5):
+        y_prev = level * rng.uniform(0.3, 2.0, size)
+        y = y_prev * rng.uniform(0.6, 1.4, size)
+        y[:5] = [np.nan, level, level * (1 + NEAR), level * (1 - NEAR), 0.0]
+        above = rng.random(size) < 0.7
+        # the first: just above the threshold at the start, NaN at the end, not armed, a
+        # dip on its interpolant: not near the threshold (NaN), so not looked at
+        y_prev[0], above[0] = 1.01 * level, False
+        if kind == "rk":  # x + h sum_j Q_j theta**(j + 1), Q drawn to make dips
+            q = rng.normal(scale=4.0, size=(size, 4))
+            q[0] = [-10.0, 0.0, 0.0, 0.0]
+            dense = si._ivp.rk.RkDenseOutput(0.0, 0.4, y_prev, q)
+        else:
+            factors = rng.normal(scale=1.5, size=(7, size))
+            factors[0] = y - y_prev
+            factors[:, 0] = [-50.0, 0, 0, 0, 0, 0, 0]
+            dense = si._ivp.rk.Dop853DenseOutput(0.0, 0.4, y_prev, factors)
+
+        class Solver:  # what _crossed_compiled reads of a solver
+            def dense_output(self):
+                return dense
+        solver = Solver()
+        solver.y = y
+        now, crossed, got_dense = _crossed_compiled(solver, y_prev, above, level)
+        want_now = y >= level
+        want = above & ~want_now
+        near = np.flatnonzero(~want & (np.minimum(y_prev, y) < (1.0 + NEAR) * level)
+                              & (np.maximum(y_prev, y) > (1.0 - NEAR) * level))
+        dips = near[falls_through_within(_on(dense), near, level, above[near])]
+        want[dips] = True
+        assert dips.size > 0 and got_dense is dense
+        np.testing.assert_array_equal(now, want_now)
+        np.testing.assert_array_equal(crossed, want)
+
+
 _POOL_RUN = {}
 
 

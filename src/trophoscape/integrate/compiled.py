@@ -118,6 +118,49 @@ def _crossing(Q, x, hc, j, level, first, looks, refine, rounds):  # pragma: no c
     return hi
 
 
+@jit(parallel=True)
+def step_ends(y_prev, y, above, level, near, now, crossed, close):  # pragma: no cover
+    """The whole network's step from ``y_prev`` to ``y`` against the threshold ``level``, in
+    one pass on numba's threads, as :func:`trophoscape.integrate.ode.simulate` does it in
+    numpy: ``now`` (at or above it at the end), ``crossed`` (``above`` at the start, not
+    ``now``), ``close`` (not crossed, and within ``near`` of it, as a share, at either end;
+    False where either end is NaN, as with ``np.minimum``); returns how many are close."""
+    low = (1.0 + near) * level
+    high = (1.0 - near) * level
+    count = 0
+    for c in numba.prange(y.size):
+        a = y_prev[c]
+        b = y[c]
+        now[c] = b >= level
+        crossed[c] = above[c] and not now[c]
+        is_close = False
+        if not crossed[c] and a == a and b == b:
+            is_close = min(a, b) < low and max(a, b) > high
+        close[c] = is_close
+        count += 1 if is_close else 0
+    return count
+
+
+@jit(parallel=True)
+def falls_between(close, above, level, kind, y_old, coef, h, grid,
+                  crossed):  # pragma: no cover - compiled
+    """Marks in ``crossed`` the ``close`` components that fall through ``level`` on the whole
+    step's interpolant (kind ``kind``, :func:`_interpolant`) at the points ``grid`` (0 to 1):
+    a point below it after one at or above it, or after the start where ``above``; as
+    :func:`trophoscape.integrate.crossings.falls_through_within`, value for value."""
+    for c in numba.prange(close.size):
+        if not close[c]:
+            continue
+        seen = above[c]
+        for k in range(grid.size):
+            v = _interpolant(kind, y_old, coef, h, c, grid[k])
+            if k > 0 and v < level and seen:
+                crossed[c] = True
+                break
+            if v >= level:
+                seen = True
+
+
 @jit
 def _derivative(b, s, m, t, t0, span, xs, out, gout, xc,
                 w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate, kind, y_old,

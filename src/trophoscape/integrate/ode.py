@@ -351,6 +351,35 @@ def first_crossing(dense, index, level: float, t_old: float, t_new: float) -> fl
     return b
 
 
+def _crossed_compiled(solver, y_prev, above, level):
+    """``(now, crossed, dense)`` of an accepted step of the whole network, as the numpy
+    lines in :func:`simulate` find them (``dense``: the step's interpolant, None where no
+    population came near the threshold), in compiled passes on numba's threads: the
+    step's ends first, then, for those near the threshold at either end, the points of
+    :func:`~trophoscape.integrate.crossings.falls_through_within` on the interpolant."""
+    from ..model.compiled import ONE_AT_A_TIME, threaded
+    from . import compiled
+    from .crossings import LOOKS
+    from .retake import _coefficients
+
+    y = solver.y
+    now = np.empty(y.size, dtype=bool)
+    crossed = np.empty(y.size, dtype=bool)
+    close = np.empty(y.size, dtype=bool)
+    with ONE_AT_A_TIME:
+        count = threaded(compiled.step_ends)(y_prev, y, above, float(level), NEAR, now,
+                                             crossed, close)
+    if not count:
+        return now, crossed, None
+    dense = solver.dense_output()
+    kind, y_old, coef, h = _coefficients(dense)
+    grid = np.linspace(0.0, 1.0, LOOKS + 1)  # the points of falls_through_within
+    with ONE_AT_A_TIME:
+        threaded(compiled.falls_between)(close, above, float(level), kind, y_old, coef, h,
+                                         grid, crossed)
+    return now, crossed, dense
+
+
 def _on(dense):
     """``at(index, x)`` of :mod:`trophoscape.integrate.crossings` for a step's dense output."""
     return lambda index, x: dense_at(dense, index, x)
@@ -767,9 +796,12 @@ def simulate(
                     continue
                 local_evaluations += retaken.evaluations
             elif rule and solver.t > t_old:  # (a restart at the bound: a step of zero length)
-                now = solver.y >= level
-                crossed = above & ~now
-                if per_component:
+                if per_component and solver._stage is not None:
+                    now, crossed, dense = _crossed_compiled(solver, y_prev, above, level)
+                else:
+                    now = solver.y >= level
+                    crossed = above & ~now
+                if per_component and solver._stage is None:
                     # those near the threshold at either end may have dipped through it, or
                     # risen to it and fallen back, between the step's ends
                     near = np.flatnonzero(~crossed
