@@ -796,12 +796,14 @@ def simulate(
                     continue
                 local_evaluations += retaken.evaluations
             elif rule and solver.t > t_old:  # (a restart at the bound: a step of zero length)
-                if per_component and solver._stage is not None:
+                # the compiled right-hand side's solvers look in compiled passes
+                looked = per_component and getattr(solver, "_stage", None) is not None
+                if looked:
                     now, crossed, dense = _crossed_compiled(solver, y_prev, above, level)
                 else:
                     now = solver.y >= level
                     crossed = above & ~now
-                if per_component and solver._stage is None:
+                if per_component and not looked:
                     # those near the threshold at either end may have dipped through it, or
                     # risen to it and fallen back, between the step's ends
                     near = np.flatnonzero(~crossed
