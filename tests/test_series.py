@@ -131,3 +131,61 @@ def test_block_rows_match_the_netcdf_chunks(grid_file, tmp_path):
     result = ts.run_study(study_of(grid_file), series_to=tmp_path / "s.nc")
     with xr.open_dataset(result.series_file, engine="h5netcdf") as ds:
         assert ds["prey"].encoding["chunksizes"][0] == SERIES_BLOCK_ROWS
+
+
+@pytest.mark.parametrize("limits", [(64, 4096, 16), (8, 7, 2)])
+def test_chunks_encoded_here_read_as_hdf5s_filters_write_them(grid_file, tmp_path, monkeypatch,
+                                                              limits):
+    # consistency test against HDF5's own filter pipeline (h5py): whole chunks along time
+    # are shuffled and deflated here, on threads, and written as they are; the file must
+    # hold the values HDF5's filters store, with the filters HDF5 reads them by (shuffle,
+    # then deflate at level 4), for chunks cut at every edge (small limits: many chunks
+    # along patches and replicates), in one thread or two (the same bytes); blocks that do
+    # not start on a chunk go through HDF5's filters
+    import h5py
+
+    from trophoscape import machine
+    from trophoscape.io import series
+
+    monkeypatch.setattr(series, "_CHUNK_LIMITS", limits)
+    study = study_of(grid_file, run={"replicates": 3, "seed": 7, "duration": 30.0},
+                     noise={"environmental_sd": 0.3, "correlation_km": 3.0})
+    result = ts.run_study(study)
+    data = result.trajectory.data
+    seeds = data["seed"].values
+    values = [data[s].values.astype(np.float32) for s in SPECIES]
+    encoded = []
+    encode = series._encoded_chunk
+
+    def counted(*args):
+        encoded.append(args[1])
+        return encode(*args)
+
+    monkeypatch.setattr(series, "_encoded_chunk", counted)
+
+    def written(path, rows, threads):
+        monkeypatch.setattr(machine, "cores", lambda: threads)
+        with series.SeriesWriter(path, study=result.study, times=data["time"].values,
+                                 seeds=seeds) as writer:
+            for start in range(0, values[0].shape[0], rows):
+                writer.write(start, [v[start:start + rows] for v in values])
+        return path
+
+    one = written(tmp_path / "one.nc", 2 * limits[0], 1)
+    assert encoded, "no chunk was encoded here"
+    two = written(tmp_path / "two.nc", 2 * limits[0], 2)
+    assert one.read_bytes() == two.read_bytes()
+    count = len(encoded)
+    odd = written(tmp_path / "odd.nc", limits[0] + 3, 2)  # starts off the chunks
+    assert len(encoded) - count < count  # some blocks through HDF5's filters
+    for path in (one, odd):
+        with h5py.File(path, "r") as f:
+            for s, want in zip(SPECIES, values):
+                ds = f[s]
+                np.testing.assert_array_equal(ds[...], want)
+                pipeline = ds.id.get_create_plist()
+                filters = [pipeline.get_filter(i)[0] for i in range(pipeline.get_nfilters())]
+                assert filters == [h5py.h5z.FILTER_SHUFFLE, h5py.h5z.FILTER_DEFLATE]
+                assert pipeline.get_filter(1)[2] == (4,)
+        assert_same_file(path, one)
+

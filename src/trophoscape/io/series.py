@@ -5,10 +5,13 @@ patch, the patch polygons as CF geometries), written in blocks as a run goes
 
 from __future__ import annotations
 
+import collections
 import contextlib
+import itertools
 import os
 import shutil
 import tempfile
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -25,6 +28,10 @@ SERIES_BLOCK_ROWS = 64
 #: Chunk sizes along (time, patch, replicate): about 1 MB, so that one time slice or one
 #: patch's whole series reads few chunks.
 _CHUNK_LIMITS = (SERIES_BLOCK_ROWS, 4096, 16)
+
+
+#: zlib level of the abundances' deflate filter (after HDF5's byte shuffle).
+_DEFLATE_LEVEL = 4
 
 
 #: Chunk length of the one-dimensional geometry variables (nodes, ring parts).
@@ -209,10 +216,12 @@ class SeriesWriter:
             coordinates = (f"time model_time lat lon {_ID_VAR}"
                            + ("" if seeds is None else " seed"))
             self._vars = []
+            self._chunks = chunks
             for name in SPECIES:
                 var = self._file.create_variable(
                     name, dims, np.float32, chunks=chunks, compression="gzip",
-                    compression_opts=4, shuffle=True, fillvalue=np.float32(np.nan))
+                    compression_opts=_DEFLATE_LEVEL, shuffle=True,
+                    fillvalue=np.float32(np.nan))
                 var.attrs.update(
                     units="1", long_name=f"{name} abundance (individuals)",
                     coordinates=coordinates, geometry=_GEOMETRY_VAR, grid_mapping=_CRS_VAR,
@@ -336,11 +345,49 @@ class SeriesWriter:
 
     def write(self, start: int, blocks) -> None:
         """Rows ``start ..`` of each species: ``blocks`` is (prey, predator), each of shape
-        (rows, n_patches) or (rows, n_patches, n_replicates)."""
-        for var, block in zip(self._vars, blocks):
-            block = np.asarray(block, dtype=np.float32)
-            var[start:start + block.shape[0]] = block
-        self.rows_written = max(self.rows_written, start + np.shape(blocks[0])[0])
+        (rows, n_patches) or (rows, n_patches, n_replicates).
+
+        Rows that fill whole chunks along time (the last ones may end with the series) are
+        encoded here, each chunk as HDF5's filters would (byte shuffle, then deflate), on as
+        many threads as this process has cores (zlib lets go of Python's lock), and stored
+        as they are (HDF5's direct chunk write); other rows go through HDF5's filters.
+        """
+        blocks = [np.asarray(block, dtype=np.float32) for block in blocks]
+        rows = blocks[0].shape[0]
+        datasets = [_direct_dataset(var) for var in self._vars]
+        whole = (start % self._chunks[0] == 0
+                 and (rows % self._chunks[0] == 0 or start + rows == self.shape[0]))
+        if whole and all(d is not None for d in datasets):
+            self._write_chunks(datasets, start, blocks)
+        else:
+            for var, block in zip(self._vars, blocks):
+                var[start:start + rows] = block
+        self.rows_written = max(self.rows_written, start + rows)
+
+    def _write_chunks(self, datasets, start, blocks) -> None:
+        """Every chunk of ``blocks`` (rows from ``start``, whole chunks along time),
+        encoded on threads a few at a time and written in order."""
+        from concurrent.futures import ThreadPoolExecutor
+
+        from ..machine import cores
+
+        chunks = self._chunks
+        rows = blocks[0].shape[0]
+        origins = list(itertools.product(range(0, rows, chunks[0]),
+                                         *(range(0, size, c) for size, c in
+                                           zip(self.shape[1:], chunks[1:]))))
+        jobs = [(dataset, block, origin) for dataset, block in zip(datasets, blocks)
+                for origin in origins]
+        workers = max(1, min(cores(), len(jobs)))
+        pending = collections.deque()  # at most a few encoded chunks held at a time
+        with ThreadPoolExecutor(workers, thread_name_prefix="trophoscape-series") as pool:
+            for dataset, block, origin in jobs:
+                pending.append((dataset, origin,
+                                pool.submit(_encoded_chunk, block, origin, chunks)))
+                if len(pending) > 2 * workers:
+                    _store_chunk(start, *pending.popleft())
+            while pending:
+                _store_chunk(start, *pending.popleft())
 
     def sink_options(self, replicates: int | None = None) -> dict:
         """``sink`` and ``sink_rows`` for :func:`trophoscape.integrate.ode.simulate`.
@@ -383,6 +430,40 @@ class SeriesWriter:
                 self._file.close()
             self._file = None
         self._tmp.unlink(missing_ok=True)
+
+
+def _direct_dataset(var):
+    """The HDF5 dataset of ``var`` (an h5netcdf variable) if its chunks can be written
+    encoded here: shuffle then deflate at :data:`_DEFLATE_LEVEL` and no other filter, and an
+    h5py that writes chunks as they are; else None."""
+    dataset = getattr(var, "_h5ds", None)
+    if dataset is None or not hasattr(dataset.id, "write_direct_chunk"):
+        return None
+    if (dataset.compression != "gzip" or dataset.compression_opts != _DEFLATE_LEVEL
+            or not dataset.shuffle or dataset.fletcher32 or dataset.scaleoffset is not None
+            or dataset.dtype != np.float32):
+        return None
+    return dataset
+
+
+def _encoded_chunk(block, origin, chunks) -> bytes:
+    """The chunk of ``block`` at ``origin`` as HDF5 stores it with the shuffle and deflate
+    filters: padded to the chunk's shape with NaN (the fill value) where the data end, its
+    bytes regrouped by position in each 4-byte value (HDF5's shuffle filter), then
+    compressed by zlib (HDF5's deflate filter is zlib's ``compress2``)."""
+    piece = block[tuple(slice(o, o + c) for o, c in zip(origin, chunks))]
+    if piece.shape != tuple(chunks):
+        full = np.full(chunks, np.nan, dtype=np.float32)
+        full[tuple(slice(0, k) for k in piece.shape)] = piece
+        piece = full
+    shuffled = np.ascontiguousarray(piece).view(np.uint8).reshape(-1, 4).T.tobytes()
+    return zlib.compress(shuffled, _DEFLATE_LEVEL)
+
+
+def _store_chunk(start, dataset, origin, encoded) -> None:
+    """Write one chunk encoded by :func:`_encoded_chunk` (a future) at ``origin`` (rows
+    counted from ``start``)."""
+    dataset.id.write_direct_chunk((start + origin[0], *origin[1:]), encoded.result())
 
 
 def write_timeseries(path, result):
