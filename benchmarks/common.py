@@ -14,6 +14,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 import functools  # noqa: E402
 import platform  # noqa: E402
 import resource  # noqa: E402
+import shutil  # noqa: E402
 import sys  # noqa: E402
 import time  # noqa: E402
 from pathlib import Path  # noqa: E402
@@ -128,16 +129,33 @@ def now() -> np.ndarray:
     return np.array([time.perf_counter(), time.process_time()])
 
 
-def clock(stages: dict, name: str, fn):
-    """``fn`` wrapped so that the (wall, CPU) seconds it takes add up in ``stages[name]``."""
+def clock(stages: dict, name: str, fn, beside: Path | None = None):
+    """``fn`` wrapped so that the (wall, CPU) seconds it takes add up in ``stages[name]``.
+
+    Called in a process forked from this one (the stability analysis beside the others),
+    the seconds are written to the file ``beside / name`` instead (read back by
+    :func:`read_beside`), since ``stages`` is this process's."""
+    pid = os.getpid()
+
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
         t0 = now()
         try:
             return fn(*args, **kwargs)
         finally:
-            stages[name] = stages.get(name, 0.0) + now() - t0
+            took = now() - t0
+            if os.getpid() == pid:
+                stages[name] = stages.get(name, 0.0) + took
+            elif beside is not None:
+                (beside / name).write_text(" ".join(map(str, took)))
     return wrapper
+
+
+def read_beside(stages: dict, beside: Path) -> None:
+    """Add the seconds that :func:`clock` wrote from other processes to ``stages``."""
+    for path in beside.iterdir():
+        stages[path.name] = stages.get(path.name, 0.0) + np.array(
+            [float(v) for v in path.read_text().split()])
 
 
 def peak_mb() -> float:
@@ -216,8 +234,12 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
         ``analyse`` (all the analyses, wall) and ``series_blocks``; CPU seconds are the
         process's, all threads), ``load``, ``run``, ``write``, ``total`` (the same pairs),
         ``study``, ``result``, ``base_mb`` (peak RSS before the run), ``peak_mb``,
-        and ``write_tree_mb`` (:class:`TreeMemory` over ``write_run_files``: this process
-        and the one that draws the maps, if any).
+        ``write_tree_mb`` (:class:`TreeMemory` over ``write_run_files``: this process
+        and the one that draws the maps, if any) and ``analyses_tree_mb`` (the same over
+        the analyses: this process and the one of the stability analysis, if any). The
+        seconds of a stage run in a forked process (the stability analysis from 20,000
+        patches on Linux) are that process's own, written back by :func:`clock`; its CPU
+        seconds are not in those of ``analyse``.
     """
     import trophoscape.workflows.study as study_module
     import trophoscape.model.system as system_module
@@ -225,10 +247,23 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
     from trophoscape.io.folder import staged_folder
     from trophoscape.report.run import write_run_files
 
+    import tempfile
+
     stages: dict[str, np.ndarray] = {}
+    beside = Path(tempfile.mkdtemp(prefix="trophoscape-bench-beside-"))
     originals = {name: getattr(study_module, name) for name in (*STUDY_STAGES, "analyse")}
     for name, fn in originals.items():
-        setattr(study_module, name, clock(stages, name, fn))
+        setattr(study_module, name, clock(stages, name, fn, beside))
+    # sampled every 0.5 s: each sample walks the page tables of this large process, and
+    # every 0.05 s that slowed the analyses by about a second (their allocations wait on it)
+    analyses_tree = TreeMemory(every=0.5)
+
+    def analyse_measured(*args, **kwargs):  # the stability analysis's process counted
+        with analyses_tree:
+            return clocked_analyse(*args, **kwargs)
+
+    clocked_analyse = study_module.analyse
+    study_module.analyse = analyse_measured
     write_block = SeriesWriter.write
     SeriesWriter.write = clock(stages, "series_blocks", write_block)
     threshold = system_module.COMPILED_MIN_PATCHES
@@ -259,9 +294,11 @@ def timed_study(folder: Path, *, profile: str | None = None, kernel: str = "auto
             setattr(study_module, name, fn)
         SeriesWriter.write = write_block
         system_module.COMPILED_MIN_PATCHES = threshold
+        read_beside(stages, beside)
+        shutil.rmtree(beside, ignore_errors=True)
     zero = np.zeros(2)
     return {"stages": {k: stages.get(k, zero)
                        for k in (*STUDY_STAGES, "analyse", "series_blocks")},
             "load": t1 - t0, "run": t2 - t1, "write": t3 - t2, "total": t3 - t0,
             "study": study, "result": result, "base_mb": base, "peak_mb": peak_mb(),
-            "write_tree_mb": tree.peak_mb}
+            "write_tree_mb": tree.peak_mb, "analyses_tree_mb": analyses_tree.peak_mb}

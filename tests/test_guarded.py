@@ -262,15 +262,21 @@ def test_failing_persistence_with_replicates_keeps_the_replicate_columns(grid_fi
     assert math.isnan(result.summary["prey_regional_survival_low"])
 
 
-@pytest.fixture
-def stability_beside(monkeypatch):
-    """The stability analysis on a second thread from the first patch on; counts the
-    threads started."""
-    monkeypatch.setattr(trophoscape.workflows.study, "STABILITY_BESIDE_MIN_PATCHES", 1)
-    return count_calls(monkeypatch, trophoscape.workflows.study, "_Beside")
+@pytest.fixture(params=["process", "thread"])
+def stability_beside(monkeypatch, request):
+    """The stability analysis beside the others from the first patch on, in a second
+    process (where one can be forked) or on a second thread; counts the ones started."""
+    study_module = trophoscape.workflows.study
+    monkeypatch.setattr(study_module, "STABILITY_BESIDE_MIN_PATCHES", 1)
+    if request.param == "thread":
+        monkeypatch.setattr(study_module, "second_process_possible", lambda: False)
+    elif not study_module.second_process_possible():
+        pytest.skip("no second process here (Linux with two cores only)")
+    return count_calls(monkeypatch, study_module,
+                       "InSecondProcess" if request.param == "process" else "_Beside")
 
 
-def test_stability_on_a_second_thread_gives_the_same_results(grid_file, baseline,
+def test_stability_beside_the_others_gives_the_same_results(grid_file, baseline,
                                                              stability_beside):
     # consistency test: the same table, columns in the same order, and the same summary
     result = ts.run_study(grid_study(grid_file, duration=6.0, analysis=ON))
@@ -279,7 +285,7 @@ def test_stability_on_a_second_thread_gives_the_same_results(grid_file, baseline
     assert same(result.summary, baseline.summary)
 
 
-def test_stability_failing_on_a_second_thread_is_recorded_the_same(grid_file, baseline,
+def test_stability_failing_beside_the_others_is_recorded_the_same(grid_file, baseline,
                                                                    stability_beside,
                                                                    monkeypatch):
     fail_with(monkeypatch, "stability_analysis", RuntimeError("forced failure"))
@@ -294,3 +300,21 @@ def test_stability_failing_on_a_second_thread_is_recorded_the_same(grid_file, ba
     fail_with(monkeypatch, "stability_analysis", KeyboardInterrupt())
     with pytest.raises(KeyboardInterrupt):
         ts.run_study(grid_study(grid_file, duration=6.0, analysis=ON))
+
+
+def test_an_interrupt_here_stops_the_stability_analysis_beside(grid_file, stability_beside,
+                                                                monkeypatch):
+    # Ctrl-C during synchrony must not wait for the stability analysis beside, and must not
+    # leave its process behind (a thread, a daemon, is left to finish on its own)
+    import multiprocessing
+    import time
+
+    monkeypatch.setattr(trophoscape.workflows.study, "stability_analysis",
+                        lambda system: time.sleep(120))
+    fail_with(monkeypatch, "synchrony_analysis", KeyboardInterrupt())
+    t0 = time.perf_counter()
+    with pytest.raises(KeyboardInterrupt):
+        ts.run_study(grid_study(grid_file, duration=6.0, analysis=ON))
+    assert time.perf_counter() - t0 < 60
+    assert stability_beside == [1]
+    assert multiprocessing.active_children() == []

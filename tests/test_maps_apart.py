@@ -46,7 +46,7 @@ def result(tmp_path_factory):
 def apart(monkeypatch):
     """Maps drawn apart from the first patch on; counts the processes started."""
     monkeypatch.setattr(run_module, "MAPS_APART_MIN_PATCHES", 1)
-    return count_calls(monkeypatch, run_module, "_InSecondProcess")
+    return count_calls(monkeypatch, run_module, "InSecondProcess")
 
 
 def no_process_left():

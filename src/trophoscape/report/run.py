@@ -3,20 +3,13 @@
 
 from __future__ import annotations
 
-import gc
-import multiprocessing
-import os
-import pickle
-import sys
-import traceback
 from pathlib import Path
 
-from ..errors import RunError
-from ..machine import cores
 from ..io.folder import staged_folder
 from ..io.series import write_timeseries
 from ..io.tables import patches_frame, provenance, write_json
 from ..scenario import input_files
+from ..workflows.tasks import InSecondProcess, second_process_possible
 
 __all__ = ["run_to_folder", "write_run", "write_run_files", "MAPS_APART_MIN_PATCHES"]
 
@@ -110,7 +103,9 @@ def write_run_files(result, stage, *, maps: bool = True, geojson: bool = False,
 
         write_figures_and_report(stage, result, gdf, links, summary, sections)
 
-    apart = _InSecondProcess(draw) if maps and _apart(len(gdf)) else None
+    apart = (InSecondProcess(draw, doing="drew the maps and the report",
+                             name="trophoscape-maps")
+             if maps and _apart(len(gdf)) else None)
     if apart is not None and not apart.start():
         apart = None  # no process could be started: drawn here, after the files
     try:
@@ -138,96 +133,6 @@ def _write_files(result, stage, gdf, links, summary, geojson) -> None:
 
 def _apart(n_patches: int) -> bool:
     """Whether the maps of a run of ``n_patches`` are drawn in a second process."""
-    if n_patches < MAPS_APART_MIN_PATCHES:
-        return False
-    if not sys.platform.startswith("linux"):
-        return False  # no fork on Windows; macOS forks unsafely with its frameworks loaded
-    if multiprocessing.current_process().daemon:
-        return False  # a daemonic process (Dask's workers are) may not start processes
-    return cores() > 1
+    return n_patches >= MAPS_APART_MIN_PATCHES and second_process_possible()
 
 
-class _InSecondProcess:
-    """``work()`` in a forked process, started now; calling the object waits for it and
-    raises its error here; :meth:`stop` ends it.
-
-    The error is the same exception when it can be passed over whole, else a
-    :class:`RunError` with its type and text; either way the other process's traceback is
-    added as a note. The process leaves Ctrl-C to this one (which stops it), and ends when
-    this one ends, however it ends (:func:`~trophoscape.workflows.tasks.init_worker_process`):
-    it cannot draw on after this one is gone. :meth:`start` returns False when no process
-    could be started (the caller then does the work itself)."""
-
-    def __init__(self, work):
-        self._work = work
-        self._process = None
-        self._receive = None
-
-    def start(self) -> bool:
-        from ..workflows.tasks import init_worker_process
-
-        context = multiprocessing.get_context("fork")
-        receive, send = context.Pipe(duplex=False)
-        parent = os.getpid()
-        work = self._work
-
-        def run():
-            init_worker_process(parent)
-            try:
-                work()
-                outcome = None
-            except BaseException as exc:  # noqa: BLE001 - passed to the parent
-                try:
-                    whole = pickle.dumps(exc)
-                except Exception:  # it does not pickle: its type and text
-                    whole = None
-                outcome = (whole, type(exc).__name__, str(exc), traceback.format_exc())
-            send.send(outcome)
-
-        process = context.Process(target=run, name="trophoscape-maps", daemon=True)
-        # objects the collector would visit in the new process stay shared with this one
-        # (the garbage collector writes to every object it visits: copy on write)
-        gc.freeze()
-        try:
-            process.start()
-        except OSError:  # no memory or no process left for a fork: draw here
-            receive.close()
-            return False
-        finally:
-            gc.unfreeze()
-            send.close()
-        self._process, self._receive = process, receive
-        return True
-
-    def __call__(self) -> None:
-        try:
-            try:
-                outcome = self._receive.recv()
-            except Exception:  # ended without a result, or one that cannot be rebuilt
-                self._process.join()
-                raise RunError("drawing the maps and the report in a second process ended "
-                               f"without a result (exit code {self._process.exitcode})"
-                               ) from None
-            self._process.join()
-        except BaseException:
-            self.stop()
-            raise
-        finally:
-            self._receive.close()
-        if outcome is None:
-            return
-        whole, name, text, trace = outcome
-        try:
-            exc = pickle.loads(whole) if whole is not None else None
-        except Exception:  # pickled, but cannot be rebuilt here
-            exc = None
-        if not isinstance(exc, BaseException):
-            exc = RunError(f"{name}: {text}" if text else name)
-        exc.add_note("in the process that drew the maps and the report:\n" + trace)
-        raise exc
-
-    def stop(self) -> None:
-        if self._process.is_alive():
-            self._process.terminate()
-        self._process.join()
-        self._receive.close()

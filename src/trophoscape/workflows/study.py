@@ -32,6 +32,7 @@ from ..scenario import (INPUT_FILES, LARGEST, FieldRef, Scenario, bounds_of,
                                   check_regular_file, read_scenario)
 from ..integrate.trajectory import Trajectory
 from ..integrate.ode import RunSettings, simulate
+from .tasks import InSecondProcess, second_process_possible
 from ..model.system import SPECIES, CoupledSystem, pack
 
 if TYPE_CHECKING:
@@ -589,13 +590,27 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
 
 
 #: From this many patches the stability analysis (which needs the system, not the run) is
-#: computed on a second thread while persistence and synchrony are computed on this one; its
-#: numbers and where they go are the same either way. (Should those two be interrupted, the
-#: thread finishes its computation on its own and its result is dropped; as a daemon it
-#: cannot keep the process alive.) Its Krylov steps and sparse
-#: products, and synchrony's transforms, let go of Python's lock, so the two overlap
-#: (benchmarks/README.md, "Both cores for the whole network's steps").
+#: computed beside persistence and synchrony, which are computed here: in a forked second
+#: process on Linux with a second core, else on a second thread; its numbers and where they
+#: go are the same either way. A process holds no lock of this one: on a thread, ARPACK's
+#: Python loop and synchrony's took turns at Python's lock, and the two took 7.6 s where
+#: synchrony alone took 6.3 s (benchmarks/README.md, sixteenth session). Should persistence
+#: or synchrony be interrupted, the process is stopped (a thread finishes its computation on
+#: its own and its result is dropped; as a daemon it cannot keep the process alive).
 STABILITY_BESIDE_MIN_PATCHES = 20_000
+
+
+def _beside(work):
+    """``work()`` started beside this thread: in a forked second process where one can be
+    started (:func:`~trophoscape.workflows.tasks.second_process_possible`: it then holds
+    no lock this process needs; its result comes back pickled), else on a second thread.
+    Call the object for the result."""
+    if second_process_possible():
+        process = InSecondProcess(work, doing="computed the stability analysis",
+                                  name="trophoscape-stability")
+        if process.start():
+            return process
+    return _Beside(work)
 
 
 class _Beside:
@@ -630,6 +645,44 @@ CONTRACT_COLUMNS = ("persists", "occupancy", "mean", "cv", "last_extinction", "s
                     "sync_region")
 
 
+def _persistence_and_synchrony(study, traj, guarded, reps, level):
+    """The persistence and synchrony analyses of :func:`analyse`, each run ``guarded``."""
+    from ..analysis import persistence as persistence_module
+    from ..analysis import synchrony as synchrony_module
+
+    sc = study.scenario
+    burn_in = sc["run.burn_in"]
+    net = study.network
+    area = study.landscape.area_km2
+
+    def persistence():
+        pers = persistence_table(traj, burn_in=burn_in, extinction_abundance=level)
+        return (pers, regional_persistence(pers, traj, area_km2=area, extinction_abundance=level),
+                {"occupancy": occupancy_curve(traj, extinction_abundance=level)})
+
+    kinds = (1, "replicates") if reps > 1 else (1,)
+    per_patch = [c for kind in kinds for c in persistence_module.PATCH_COLUMNS[kind]]
+    regional = [k for kind in kinds for k in persistence_module.REGIONAL_KEYS[kind]]
+    report = "please report it with the scenario"
+    guarded("persistence", persistence,
+            columns=[f"{s}_{c}" for s in SPECIES for c in per_patch],
+            keys=[f"{s}_{k}" for s in SPECIES for k in regional],
+            label="the persistence analysis", advice=report)
+
+    def synchrony():
+        return synchrony_analysis(
+            traj, burn_in=burn_in, source=net.source, target=net.target,
+            weights={s: study.arc_weights(s) for s in SPECIES},
+            centroids=study.landscape.centroids, seed=sc["run.seed"],
+            max_pairs=sc["analysis.synchrony_pairs"],
+        )
+
+    guarded("synchrony", synchrony,
+            columns=[f"{s}_{c}" for s in SPECIES for c in synchrony_module.PATCH_COLUMNS],
+            keys=[f"{s}_{k}" for s in SPECIES for k in synchrony_module.SUMMARY_KEYS],
+            label="the synchrony analysis", advice=report)
+
+
 def analyse(study: Study, traj: Trajectory):
     """Every analysis of one trajectory: ``(patch table, summary, extras)``.
 
@@ -643,12 +696,9 @@ def analyse(study: Study, traj: Trajectory):
     """
     from scipy.sparse.linalg import ArpackNoConvergence
 
-    from ..analysis import persistence as persistence_module
-    from ..analysis import synchrony as synchrony_module
     from ..analysis.capacity import capacity_columns
 
     sc = study.scenario
-    burn_in = sc["run.burn_in"]
     net = study.network
     area = study.landscape.area_km2
     parts = [pd.DataFrame({"area_km2": area, "links": net.links_per_patch()},
@@ -704,36 +754,16 @@ def analyse(study: Study, traj: Trajectory):
         def compute_stability():
             return stability_analysis(study.system)
 
-        stability_result = (_Beside(compute_stability)
+        stability_result = (_beside(compute_stability)
                             if study.system.n_patches >= STABILITY_BESIDE_MIN_PATCHES
                             else compute_stability)
-
-    def persistence():
-        pers = persistence_table(traj, burn_in=burn_in, extinction_abundance=level)
-        return (pers, regional_persistence(pers, traj, area_km2=area, extinction_abundance=level),
-                {"occupancy": occupancy_curve(traj, extinction_abundance=level)})
-
-    kinds = (1, "replicates") if reps > 1 else (1,)
-    per_patch = [c for kind in kinds for c in persistence_module.PATCH_COLUMNS[kind]]
-    regional = [k for kind in kinds for k in persistence_module.REGIONAL_KEYS[kind]]
-    report = "please report it with the scenario"
-    guarded("persistence", persistence,
-            columns=[f"{s}_{c}" for s in SPECIES for c in per_patch],
-            keys=[f"{s}_{k}" for s in SPECIES for k in regional],
-            label="the persistence analysis", advice=report)
-
-    def synchrony():
-        return synchrony_analysis(
-            traj, burn_in=burn_in, source=net.source, target=net.target,
-            weights={s: study.arc_weights(s) for s in SPECIES},
-            centroids=study.landscape.centroids, seed=sc["run.seed"],
-            max_pairs=sc["analysis.synchrony_pairs"],
-        )
-
-    guarded("synchrony", synchrony,
-            columns=[f"{s}_{c}" for s in SPECIES for c in synchrony_module.PATCH_COLUMNS],
-            keys=[f"{s}_{k}" for s in SPECIES for k in synchrony_module.SUMMARY_KEYS],
-            label="the synchrony analysis", advice=report)
+    try:
+        _persistence_and_synchrony(study, traj, guarded, reps, level)
+    except BaseException:  # (Ctrl-C): the stability analysis beside is not waited for
+        stop = getattr(stability_result, "stop", None)  # a process (a thread has none)
+        if stop is not None:
+            stop()
+        raise
 
     if sc["analysis.stability"]:
         def stability():

@@ -47,7 +47,7 @@ from ..errors import InputError, param
 from ..machine import cores, one_core_only
 
 __all__ = ["run_tasks", "default_workers", "check_workers", "ScenarioPayload", "cached",
-           "init_worker_process",
+           "init_worker_process", "InSecondProcess", "second_process_possible",
            "remember", "forget"]
 
 #: Tasks kept in flight per local worker: enough to keep a worker busy between results,
@@ -129,6 +129,113 @@ def init_worker_process(parent_pid: int | None) -> None:
     one_core_only()
     if "numba" not in sys.modules:
         os.environ["NUMBA_NUM_THREADS"] = "1"
+
+
+def second_process_possible() -> bool:
+    """Whether work can be done in a forked second process beside this one: on Linux (no
+    fork on Windows; macOS forks unsafely with its frameworks loaded), not in a daemonic
+    process (Dask's workers are one: they may not start processes), with a second core."""
+    if not sys.platform.startswith("linux"):
+        return False
+    if multiprocessing.current_process().daemon:
+        return False
+    return cores() > 1
+
+
+class InSecondProcess:
+    """``work()`` in a forked process, started by :meth:`start`; calling the object waits
+    for it and returns its result, or raises its error here; :meth:`stop` ends it.
+
+    Forked, the process shares this one's objects without copying them. The result comes
+    back pickled. An error is the same exception when it can be passed over whole, else a
+    :class:`~trophoscape.errors.RunError` with its type and text; either way the other
+    process's traceback is added as a note, saying what it ``doing``. The process leaves
+    Ctrl-C to this one (which stops it), and ends when this one ends, however it ends
+    (:func:`init_worker_process`): it cannot work on after this one is gone. :meth:`start`
+    returns False when no process could be started (the caller then does the work itself).
+    """
+
+    def __init__(self, work, *, doing: str, name: str):
+        self._work = work
+        self._doing = doing
+        self._name = name
+        self._process = None
+        self._receive = None
+
+    def start(self) -> bool:
+        import gc
+        import pickle
+        import traceback
+
+        context = multiprocessing.get_context("fork")
+        receive, send = context.Pipe(duplex=False)
+        parent = os.getpid()
+        work = self._work
+
+        def run():
+            init_worker_process(parent)
+            try:
+                outcome = (True, work())
+            except BaseException as exc:  # noqa: BLE001 - passed to the parent
+                try:
+                    whole = pickle.dumps(exc)
+                except Exception:  # it does not pickle: its type and text
+                    whole = None
+                outcome = (False, (whole, type(exc).__name__, str(exc),
+                                   traceback.format_exc()))
+            send.send(outcome)
+
+        process = context.Process(target=run, name=self._name, daemon=True)
+        # objects the collector would visit in the new process stay shared with this one
+        # (the garbage collector writes to every object it visits: copy on write)
+        gc.freeze()
+        try:
+            process.start()
+        except OSError:  # no memory or no process left for a fork: the caller does it
+            receive.close()
+            return False
+        finally:
+            gc.unfreeze()
+            send.close()
+        self._process, self._receive = process, receive
+        return True
+
+    def __call__(self):
+        import pickle
+
+        from ..errors import RunError
+
+        try:
+            try:
+                done, value = self._receive.recv()
+            except Exception:  # ended without a result, or one that cannot be rebuilt
+                self._process.join()
+                raise RunError(f"the process that {self._doing} ended without a result "
+                               f"(exit code {self._process.exitcode})") from None
+            self._process.join()
+        except BaseException:
+            self.stop()
+            raise
+        finally:
+            self._receive.close()
+        if done:
+            return value
+        whole, name, text, trace = value
+        try:
+            exc = pickle.loads(whole) if whole is not None else None
+        except Exception:  # pickled, but cannot be rebuilt here
+            exc = None
+        if not isinstance(exc, BaseException):
+            exc = RunError(f"{name}: {text}" if text else name)
+        exc.add_note(f"in the process that {self._doing}:\n" + trace)
+        raise exc
+
+    def stop(self) -> None:
+        """End the process (if it still runs) and wait for it."""
+        if self._process.is_alive():
+            self._process.terminate()
+        self._process.join()
+        self._receive.close()
 
 
 @dataclass(frozen=True, eq=False)
