@@ -524,6 +524,75 @@ def test_crossings_found_in_compiled_passes_are_numpys(rng, kind):
         np.testing.assert_array_equal(crossed, want)
 
 
+
+def _numpy_crossings(solver, y_prev, above, level):
+    """The numpy lines of ode.simulate that _crossed_compiled replaces on the compiled path
+    (kept in simulate for the other solvers): the reference for the test below."""
+    from trophoscape.integrate.crossings import NEAR, falls_through_within
+    from trophoscape.integrate.ode import _on
+
+    y = solver.y
+    now = y >= level
+    crossed = above & ~now
+    near = np.flatnonzero(~crossed & (np.minimum(y_prev, y) < (1.0 + NEAR) * level)
+                          & (np.maximum(y_prev, y) > (1.0 - NEAR) * level))
+    dense = None
+    if near.size:
+        dense = solver.dense_output()
+        crossed[near[falls_through_within(_on(dense), near, level, above[near])]] = True
+    return now, crossed, dense
+
+
+def test_a_run_with_compiled_crossings_is_the_run_with_numpys(rng, monkeypatch):
+    # consistency test: the whole run (removals and all) with the network's crossings found
+    # in compiled passes, and with them found by the numpy lines, bit for bit
+    ops = grid_operators(20)
+    n = ops[0].shape[0]
+    model = varied_model(rng, n, "logistic", "holling2")
+    fast = pair(model, rng.uniform(0.2, 3.0, n), ops, order="rcm")[1]
+    y0 = np.concatenate([rng.uniform(20, 60, n), rng.uniform(1, 5, n)])
+    compiled_calls = count_calls(monkeypatch, ode_module, "_crossed_compiled")
+    compiled_run = simulate(fast, y0, duration=15.0, census_interval=0.5)
+    assert len(compiled_calls) > 20
+    monkeypatch.setattr(ode_module, "_crossed_compiled", _numpy_crossings)
+    numpy_run = simulate(fast, y0, duration=15.0, census_interval=0.5)
+    assert sum(compiled_run.stats.removals) > 0
+    assert compiled_run.stats.removals == numpy_run.stats.removals
+    assert compiled_run.stats.nfev == numpy_run.stats.nfev
+    for species in ("prey", "predator"):
+        np.testing.assert_array_equal(compiled_run.data[species].values,
+                                      numpy_run.data[species].values)
+
+
+def test_stability_in_a_process_forked_after_compiled_runs_is_the_same(rng, monkeypatch):
+    # consistency test: the stability analysis beside the others runs in a process forked
+    # after this one ran kernels on numba's threads (its compiled guess takes the
+    # one-thread twins there); its results must be this process's, bit for bit
+    from trophoscape.analysis.stability import stability_analysis
+    from trophoscape.workflows.tasks import InSecondProcess, second_process_possible
+
+    if not second_process_possible():
+        pytest.skip("a second process is forked only on Linux with two cores")
+    ops = grid_operators(20)
+    n = ops[0].shape[0]
+    model = varied_model(rng, n, "logistic", "beddington_deangelis")
+    fast = pair(model, rng.uniform(0.5, 2.0, n), ops)[1]
+    assert fast.local_terms_used == "compiled"
+    simulate(fast, np.concatenate([np.full(n, 40.0), np.full(n, 3.0)]), duration=2.0,
+             census_interval=0.5)
+    here = stability_analysis(fast)
+    process = InSecondProcess(lambda: stability_analysis(fast), doing="computed stability",
+                              name="trophoscape-test")
+    assert process.start()
+    there = process()
+    assert there.keys() == here.keys()
+    for key, value in here.items():
+        if isinstance(value, np.ndarray):
+            np.testing.assert_array_equal(there[key], value)
+        else:
+            assert there[key] == value or (value != value and there[key] != there[key])
+
+
 _POOL_RUN = {}
 
 

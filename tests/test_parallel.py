@@ -116,3 +116,102 @@ def test_a_pools_worker_uses_one_core_and_this_process_its_own():
     run_tasks(_cores_here, [1, 2, 3], on_result=lambda t, ok, v: got.update({t: (ok, v)}),
               workers=2)
     assert got == {1: (True, 1), 2: (True, 1), 3: (True, 1)}
+
+
+second_process = pytest.mark.skipif(
+    not __import__("trophoscape.workflows.tasks", fromlist=["x"]).second_process_possible(),
+    reason="a second process is forked only on Linux with two cores")
+
+
+@second_process
+def test_a_process_forked_while_a_thread_holds_the_kernels_lock_can_take_it():
+    # consistency test: a fork copies a lock as it is; the kernels' lock held by another
+    # thread at the fork must be free in the new process (made new there), else a compiled
+    # run in it (the stability analysis's simulated guess) would wait for ever
+    import threading
+
+    from trophoscape.model import compiled
+    from trophoscape.workflows.tasks import InSecondProcess
+
+    held, release = threading.Event(), threading.Event()
+
+    def hold():
+        with compiled.ONE_AT_A_TIME:
+            held.set()
+            release.wait(30)
+
+    holder = threading.Thread(target=hold, daemon=True)
+    holder.start()
+    held.wait(10)
+    try:
+        process = InSecondProcess(lambda: compiled.ONE_AT_A_TIME.acquire(timeout=5),
+                                  doing="took the lock", name="trophoscape-test")
+        assert process.start()
+        assert process() is True
+    finally:
+        release.set()
+        holder.join()
+
+
+@second_process
+def test_results_warnings_and_errors_come_back_from_the_second_process():
+    # consistency test: what the work returns, the warnings it gives (shown here under
+    # this process's filters, each once) and its errors (the same exception, or one that
+    # keeps the other's type name when it cannot be rebuilt here)
+    import warnings
+
+    import numpy as np
+
+    from trophoscape.errors import RunError, TrophoscapeWarning
+    from trophoscape.workflows.tasks import InSecondProcess
+
+    def work():
+        for _ in range(3):
+            warnings.warn("a patch with no links", TrophoscapeWarning)
+        return {"equilibrium": np.arange(5.0)}
+
+    process = InSecondProcess(work, doing="worked", name="trophoscape-test")
+    assert process.start()
+    with pytest.warns(TrophoscapeWarning, match="a patch with no links") as shown:
+        got = process()
+    assert len(shown) == 1
+    assert got["equilibrium"].tolist() == [0.0, 1.0, 2.0, 3.0, 4.0]
+
+    def fails():
+        raise _NotRebuilt("the matrix", "no pivot")
+
+    process = InSecondProcess(fails, doing="worked", name="trophoscape-test")
+    assert process.start()
+    with pytest.raises(RunError, match="_NotRebuilt: the matrix: no pivot") as caught:
+        process()
+    assert caught.value.original_type == "_NotRebuilt"
+    assert "in the process that worked" in "".join(caught.value.__notes__)
+
+
+def test_no_second_process_while_another_thread_of_the_caller_runs():
+    # a fork while another (non-daemon) thread of the caller runs could copy a lock it
+    # holds: the work is then done on a thread instead
+    import threading
+
+    from trophoscape.workflows import tasks
+
+    stop = threading.Event()
+    other = threading.Thread(target=stop.wait, args=(30,))
+    other.start()
+    try:
+        assert not tasks.second_process_possible()
+    finally:
+        stop.set()
+        other.join()
+
+
+def _refuse(*args):
+    raise TypeError("cannot be rebuilt")
+
+
+class _NotRebuilt(Exception):
+    def __init__(self, what, why):
+        super().__init__(f"{what}: {why}")
+
+    def __reduce__(self):  # pickles, but cannot be rebuilt in the other process
+        return _refuse, self.args

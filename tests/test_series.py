@@ -189,3 +189,68 @@ def test_chunks_encoded_here_read_as_hdf5s_filters_write_them(grid_file, tmp_pat
                 assert pipeline.get_filter(1)[2] == (4,)
         assert_same_file(path, one)
 
+
+
+def test_each_chunk_is_the_one_hdf5s_filters_store_and_netcdf_reads_it(grid_file, tmp_path,
+                                                                        monkeypatch):
+    # against HDF5's own filter pipeline (h5py/HDF5 as the reference): every chunk written
+    # here, read back raw (read_direct_chunk) and inflated, holds the bytes of the chunk
+    # HDF5's shuffle and deflate filters store for the same rows (edge chunks padded the
+    # same way), with no filter skipped (mask 0); the netCDF-C library (netCDF4) reads the
+    # values and names the filters (shuffle, then zlib level 4)
+    import itertools
+    import zlib
+
+    import h5py
+
+    from trophoscape.io import series
+
+    monkeypatch.setattr(series, "_CHUNK_LIMITS", (8, 7, 2))
+    study = study_of(grid_file, run={"duration": 30.0})
+    result = ts.run_study(study)
+    data = result.trajectory.data
+    values = [data[s].values.astype(np.float32) for s in SPECIES]
+
+    def written(path):
+        with series.SeriesWriter(path, study=result.study, times=data["time"].values) as w:
+            w.write(0, values)
+        return path
+
+    here = written(tmp_path / "here.nc")
+    monkeypatch.setattr(series, "_direct_dataset", lambda var: None)
+    hdf5 = written(tmp_path / "hdf5.nc")
+    with h5py.File(here, "r") as a, h5py.File(hdf5, "r") as b:
+        for s in SPECIES:
+            shape, chunks = a[s].shape, a[s].chunks
+            assert shape[0] % chunks[0] and shape[1] % chunks[1]  # edge chunks both ways
+            for origin in itertools.product(*(range(0, n, c) for n, c in zip(shape, chunks))):
+                mask_a, raw_a = a[s].id.read_direct_chunk(origin)
+                mask_b, raw_b = b[s].id.read_direct_chunk(origin)
+                assert mask_a == mask_b == 0
+                assert zlib.decompress(raw_a) == zlib.decompress(raw_b)
+    netcdf4 = pytest.importorskip("netCDF4")
+    with netcdf4.Dataset(here) as ds:
+        for s, want in zip(SPECIES, values):
+            np.testing.assert_array_equal(np.ma.filled(ds[s][:], np.nan), want)
+            filters = ds[s].filters()
+            assert filters["shuffle"] and filters["zlib"] and filters["complevel"] == 4
+
+
+def test_blocks_that_do_not_fit_the_file_are_refused(grid_file, tmp_path):
+    # a block with a patch too few or too many, rows past the end, or species of two
+    # shapes: refused, as HDF5's own write refused them, not cut or padded into the file
+    from trophoscape.io import series
+
+    result = ts.run_study(study_of(grid_file, run={"duration": 10.0}))
+    data = result.trajectory.data
+    values = [data[s].values.astype(np.float32) for s in SPECIES]
+    times = data["time"].values
+    with series.SeriesWriter(tmp_path / "s.nc", study=result.study, times=times) as writer:
+        for bad in ([v[:, :-1] for v in values], [np.pad(v, ((0, 0), (0, 1))) for v in values],
+                    [values[0], values[1][:-1]]):
+            with pytest.raises(ValueError, match="do not fit"):
+                writer.write(0, bad)
+        with pytest.raises(ValueError, match="do not fit"):
+            writer.write(8, values)
+        assert writer.rows_written == 0
+        writer.write(0, values)

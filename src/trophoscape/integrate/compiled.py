@@ -125,8 +125,8 @@ def step_ends(y_prev, y, above, level, near, now, crossed, close):  # pragma: no
     numpy: ``now`` (at or above it at the end), ``crossed`` (``above`` at the start, not
     ``now``), ``close`` (not crossed, and within ``near`` of it, as a share, at either end;
     False where either end is NaN, as with ``np.minimum``); returns how many are close."""
-    low = (1.0 + near) * level
-    high = (1.0 - near) * level
+    upper = (1.0 + near) * level  # the lower end below this, the higher above lower
+    lower = (1.0 - near) * level
     count = 0
     for c in numba.prange(y.size):
         a = y_prev[c]
@@ -135,7 +135,7 @@ def step_ends(y_prev, y, above, level, near, now, crossed, close):  # pragma: no
         crossed[c] = above[c] and not now[c]
         is_close = False
         if not crossed[c] and a == a and b == b:
-            is_close = min(a, b) < low and max(a, b) > high
+            is_close = min(a, b) < upper and max(a, b) > lower
         close[c] = is_close
         count += 1 if is_close else 0
     return count

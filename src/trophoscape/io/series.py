@@ -354,6 +354,12 @@ class SeriesWriter:
         """
         blocks = [np.asarray(block, dtype=np.float32) for block in blocks]
         rows = blocks[0].shape[0]
+        for block in blocks:  # (the chunks are cut by the file's shape, so checked here)
+            if (block.shape != blocks[0].shape or block.shape[1:] != self.shape[1:]
+                    or start + rows > self.shape[0]):
+                raise ValueError(f"rows {start}..{start + block.shape[0]} of shape "
+                                 f"{block.shape} do not fit {self.path.name}, of shape "
+                                 f"{self.shape}")
         datasets = [_direct_dataset(var) for var in self._vars]
         whole = (start % self._chunks[0] == 0
                  and (rows % self._chunks[0] == 0 or start + rows == self.shape[0]))

@@ -31,8 +31,20 @@ from ..machine import cores
 
 #: The kernels that run on numba's threads (the whole RHS here, the regions' groups in
 #: :mod:`trophoscape.integrate.compiled`) take this lock: numba's workqueue thread pool
-#: ends the process when two Python threads enter it at once.
+#: ends the process when two Python threads enter it at once. (Read it from this module at
+#: the time of use: a forked process gets a new one, below.)
 ONE_AT_A_TIME = threading.Lock()
+
+
+def _new_lock_after_fork() -> None:
+    # a process forked while another thread held the lock would inherit it held, with no
+    # thread left to let it go (the stability analysis in a second process would wait on
+    # it for ever); the forked process runs its kernels alone
+    global ONE_AT_A_TIME
+    ONE_AT_A_TIME = threading.Lock()
+
+
+os.register_at_fork(after_in_child=_new_lock_after_fork)
 #: The process that first ran a kernel on numba's threads (see :func:`threaded`).
 _threads_started_in: int | None = None
 #: Growth forms and responses the compiled code knows, by their names in ``dynamics``.

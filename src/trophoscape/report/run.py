@@ -134,5 +134,3 @@ def _write_files(result, stage, gdf, links, summary, geojson) -> None:
 def _apart(n_patches: int) -> bool:
     """Whether the maps of a run of ``n_patches`` are drawn in a second process."""
     return n_patches >= MAPS_APART_MIN_PATCHES and second_process_possible()
-
-

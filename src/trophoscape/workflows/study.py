@@ -592,7 +592,7 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
 #: From this many patches the stability analysis (which needs the system, not the run) is
 #: computed beside persistence and synchrony, which are computed here: in a forked second
 #: process on Linux with a second core, else on a second thread; its numbers and where they
-#: go are the same either way. A process holds no lock of this one: on a thread, ARPACK's
+#: go are the same either way. A process does not share Python's lock: on a thread, ARPACK's
 #: Python loop and synchrony's took turns at Python's lock, and the two took 7.6 s where
 #: synchrony alone took 6.3 s (benchmarks/README.md, sixteenth session). Should persistence
 #: or synchrony be interrupted, the process is stopped (a thread finishes its computation on
@@ -602,9 +602,9 @@ STABILITY_BESIDE_MIN_PATCHES = 20_000
 
 def _beside(work):
     """``work()`` started beside this thread: in a forked second process where one can be
-    started (:func:`~trophoscape.workflows.tasks.second_process_possible`: it then holds
-    no lock this process needs; its result comes back pickled), else on a second thread.
-    Call the object for the result."""
+    started (:func:`~trophoscape.workflows.tasks.second_process_possible`; it does not
+    share Python's lock with this one; its result and warnings come back pickled), else on
+    a second thread. Call the object for the result."""
     if second_process_possible():
         process = InSecondProcess(work, doing="computed the stability analysis",
                                   name="trophoscape-stability")
@@ -719,14 +719,19 @@ def analyse(study: Study, traj: Trajectory):
     text_keys = {"stability", "stability_details", *(f"{s}_capacity_drop_method" for s in SPECIES)}
 
     def reason_of(exc: Exception) -> str:
-        """Why an analysis failed, in one line."""
-        if isinstance(exc, ArpackNoConvergence):
+        """Why an analysis failed, in one line (an error from the stability analysis's
+        process that could not be rebuilt here keeps the name of its type)."""
+        original = getattr(exc, "original_type", None)
+        if isinstance(exc, ArpackNoConvergence) or original == ArpackNoConvergence.__name__:
             return "ARPACK did not converge"
         lines = str(exc).strip().splitlines()
         text = lines[0].strip() if lines else ""
+        if original is not None and text.startswith(f"{original}: "):
+            text = text[len(original) + 2:]
         if len(text) > 200:
             text = text[:199] + "…"
-        return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+        name = original or type(exc).__name__
+        return f"{name}: {text}" if text else name
 
     def guarded(name, run, *, columns, keys, label, advice):
         """``run()`` -> (table or None, summary figures, extras), merged in; on an Exception

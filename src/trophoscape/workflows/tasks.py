@@ -21,6 +21,9 @@ What happens when things go wrong:
 - Ctrl-C (KeyboardInterrupt) cancels what has not started, stops the local workers or
   cancels the Dask futures, and is raised again, so the caller exits with what it recorded.
 
+One piece of work beside this process, in a forked second process that shares this one's
+objects (a large run's maps, its stability analysis), is :class:`InSecondProcess`.
+
 Dask is an optional dependency (``pip install "trophoscape[dask]"``); it is imported only
 when a scheduler is asked for.
 """
@@ -119,9 +122,9 @@ def _exit_with_parent(parent_pid: int | None) -> None:
 
 
 def init_worker_process(parent_pid: int | None) -> None:
-    """The initializer of every local worker process (and of the process that draws a large
-    run's maps, :mod:`trophoscape.report.run`): Ctrl-C is left to the parent, the process
-    ends with its parent, and compiled kernels run on one thread."""
+    """The initializer of every local worker process (and of the second processes of
+    :class:`InSecondProcess`: a large run's maps, its stability analysis): Ctrl-C is left to
+    the parent, the process ends with its parent, and compiled kernels run on one thread."""
     _ignore_sigint()
     _exit_with_parent(parent_pid)
     # one core per worker (compiled kernels on one thread, no threads of its own). numba
@@ -134,12 +137,19 @@ def init_worker_process(parent_pid: int | None) -> None:
 def second_process_possible() -> bool:
     """Whether work can be done in a forked second process beside this one: on Linux (no
     fork on Windows; macOS forks unsafely with its frameworks loaded), not in a daemonic
-    process (Dask's workers are one: they may not start processes), with a second core."""
+    process (Dask's workers are one: they may not start processes), with a second core,
+    and with no other thread of the caller's running (a fork copies every lock as it is:
+    one that another thread holds, say while it compiles or writes a file, would stay held
+    in the new process; this package's daemon threads, a progress bar's among them, are
+    left out, and its kernels' lock is made new in a forked process:
+    ``model.compiled``)."""
     if not sys.platform.startswith("linux"):
         return False
     if multiprocessing.current_process().daemon:
         return False
-    return cores() > 1
+    others = [t for t in threading.enumerate()
+              if t is not threading.current_thread() and not t.daemon]
+    return cores() > 1 and not others
 
 
 class InSecondProcess:
@@ -166,6 +176,7 @@ class InSecondProcess:
         import gc
         import pickle
         import traceback
+        import warnings
 
         context = multiprocessing.get_context("fork")
         receive, send = context.Pipe(duplex=False)
@@ -174,16 +185,19 @@ class InSecondProcess:
 
         def run():
             init_worker_process(parent)
-            try:
-                outcome = (True, work())
-            except BaseException as exc:  # noqa: BLE001 - passed to the parent
+            # the warnings go to the parent, which shows them under its own filters
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
                 try:
-                    whole = pickle.dumps(exc)
-                except Exception:  # it does not pickle: its type and text
-                    whole = None
-                outcome = (False, (whole, type(exc).__name__, str(exc),
-                                   traceback.format_exc()))
-            send.send(outcome)
+                    outcome = (True, work())
+                except BaseException as exc:  # noqa: BLE001 - passed to the parent
+                    try:
+                        whole = pickle.dumps(exc)
+                    except Exception:  # it does not pickle: its type and text
+                        whole = None
+                    outcome = (False, (whole, type(exc).__name__, str(exc),
+                                       traceback.format_exc()))
+            send.send(outcome + ([_portable_warning(w) for w in caught],))
 
         process = context.Process(target=run, name=self._name, daemon=True)
         # objects the collector would visit in the new process stay shared with this one
@@ -191,7 +205,7 @@ class InSecondProcess:
         gc.freeze()
         try:
             process.start()
-        except OSError:  # no memory or no process left for a fork: the caller does it
+        except Exception:  # no memory or no process left for a fork: the caller does it
             receive.close()
             return False
         finally:
@@ -202,12 +216,13 @@ class InSecondProcess:
 
     def __call__(self):
         import pickle
+        import warnings
 
         from ..errors import RunError
 
         try:
             try:
-                done, value = self._receive.recv()
+                done, value, caught = self._receive.recv()
             except Exception:  # ended without a result, or one that cannot be rebuilt
                 self._process.join()
                 raise RunError(f"the process that {self._doing} ended without a result "
@@ -218,6 +233,8 @@ class InSecondProcess:
             raise
         finally:
             self._receive.close()
+        for category, message, filename, lineno in dict.fromkeys(caught):  # each once
+            warnings.warn_explicit(message, category, filename, lineno)
         if done:
             return value
         whole, name, text, trace = value
@@ -227,6 +244,7 @@ class InSecondProcess:
             exc = None
         if not isinstance(exc, BaseException):
             exc = RunError(f"{name}: {text}" if text else name)
+            exc.original_type = name  # what it was in the other process
         exc.add_note(f"in the process that {self._doing}:\n" + trace)
         raise exc
 
@@ -236,6 +254,20 @@ class InSecondProcess:
             self._process.terminate()
         self._process.join()
         self._receive.close()
+
+
+def _portable_warning(caught):
+    """A warning caught in the other process as ``(category, message, filename, lineno)``
+    that pickles: the category itself where it pickles (by its name), else
+    ``UserWarning``."""
+    import pickle
+
+    category = caught.category
+    try:
+        pickle.dumps(category)
+    except Exception:
+        category = UserWarning
+    return category, str(caught.message), caught.filename, caught.lineno
 
 
 @dataclass(frozen=True, eq=False)
