@@ -64,3 +64,18 @@ def count_calls(monkeypatch, owner, name) -> list:
 
     monkeypatch.setattr(owner, name, counted)
     return calls
+
+
+def _refuse(*args):
+    raise TypeError("cannot be rebuilt")
+
+
+class Unrebuildable(Exception):
+    """An error that pickles but cannot be rebuilt in the other process (the second
+    processes' tests)."""
+
+    def __init__(self, what, why):
+        super().__init__(f"{what} because {why}")
+
+    def __reduce__(self):
+        return _refuse, self.args

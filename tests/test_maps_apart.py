@@ -24,7 +24,7 @@ from trophoscape.report import run as run_module
 from trophoscape.scenario import parse_scenario
 from trophoscape.testing import grid_landscape
 
-from conftest import count_calls
+from conftest import Unrebuildable, count_calls
 
 apart_possible = pytest.mark.skipif(
     not sys.platform.startswith("linux") or len(os.sched_getaffinity(0)) < 2,
@@ -134,18 +134,6 @@ def test_small_runs_and_workers_draw_in_their_own_process(monkeypatch):
     assert not run_module._apart(run_module.MAPS_APART_MIN_PATCHES)
 
 
-def _refuse(*args):
-    raise TypeError("cannot be rebuilt")
-
-
-class _Unrebuildable(Exception):
-    def __init__(self, what, why):
-        super().__init__(f"{what} because {why}")
-
-    def __reduce__(self):  # pickles, but cannot be rebuilt in the other process
-        return _refuse, self.args
-
-
 class _Unpicklable(Exception):
     def __init__(self, text):
         super().__init__(text)
@@ -156,10 +144,10 @@ class _Unpicklable(Exception):
 def test_an_error_that_cannot_be_rebuilt_here_keeps_its_type_and_text(result, tmp_path, apart,
                                                                       monkeypatch):
     def bad(*args, **kwargs):
-        raise _Unrebuildable("no colour", "the palette ran out")
+        raise Unrebuildable("no colour", "the palette ran out")
 
     monkeypatch.setattr(html_module, "write_figures_and_report", bad)
-    with pytest.raises(RunError, match="_Unrebuildable: no colour because the palette ran out"
+    with pytest.raises(RunError, match="Unrebuildable: no colour because the palette ran out"
                        ) as caught:
         ts.write_run(result, tmp_path / "out")
     assert "in the process that drew the maps" in "".join(caught.value.__notes__)

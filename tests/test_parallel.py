@@ -177,14 +177,16 @@ def test_results_warnings_and_errors_come_back_from_the_second_process():
     assert len(shown) == 1
     assert got["equilibrium"].tolist() == [0.0, 1.0, 2.0, 3.0, 4.0]
 
+    from conftest import Unrebuildable
+
     def fails():
-        raise _NotRebuilt("the matrix", "no pivot")
+        raise Unrebuildable("the matrix", "no pivot")
 
     process = InSecondProcess(fails, doing="worked", name="trophoscape-test")
     assert process.start()
-    with pytest.raises(RunError, match="_NotRebuilt: the matrix: no pivot") as caught:
+    with pytest.raises(RunError, match="Unrebuildable: the matrix because no pivot") as caught:
         process()
-    assert caught.value.original_type == "_NotRebuilt"
+    assert caught.value.original_type == "Unrebuildable"
     assert "in the process that worked" in "".join(caught.value.__notes__)
 
 
@@ -203,15 +205,3 @@ def test_no_second_process_while_another_thread_of_the_caller_runs():
     finally:
         stop.set()
         other.join()
-
-
-def _refuse(*args):
-    raise TypeError("cannot be rebuilt")
-
-
-class _NotRebuilt(Exception):
-    def __init__(self, what, why):
-        super().__init__(f"{what}: {why}")
-
-    def __reduce__(self):  # pickles, but cannot be rebuilt in the other process
-        return _refuse, self.args
