@@ -205,3 +205,39 @@ def test_no_second_process_while_another_thread_of_the_caller_runs():
     finally:
         stop.set()
         other.join()
+
+
+def test_blas_has_one_thread_while_the_compiled_kernels_run(monkeypatch):
+    # against threadpoolctl's own report of the BLAS libraries loaded (the reference for
+    # their thread counts): a run on the compiled path keeps BLAS on one thread, as
+    # OPENBLAS_NUM_THREADS=1 would, and gives it back afterwards; a numpy run leaves it be
+    import numpy as np
+XX
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    from trophoscape.integrate import ode
+    from trophoscape.machine import blas_on_one_thread
+
+    assert scipy.linalg.blas  # scipy's BLAS loaded too
+
+    def blas_threads():
+        return sorted({i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"})
+
+    with threadpool_limits(limits=2, user_api="blas"):
+        assert blas_threads() == [2]
+        with blas_on_one_thread():
+            assert blas_threads() == [1]
+        assert blas_threads() == [2]
+        with blas_on_one_thread(False):
+            assert blas_threads() == [2]
+        seen = []
+        monkeypatch.setattr(ode, "_simulate", lambda system, y0, **options: seen.append(
+            (system.local_terms_used, blas_threads())))
+
+        class System:
+            local_terms_used = "compiled"
+        ode.simulate(System(), np.ones(2), duration=1.0, census_interval=0.5)
+        System.local_terms_used = "numpy"
+        ode.simulate(System(), np.ones(2), duration=1.0, census_interval=0.5)
+        assert seen == [("compiled", [1]), ("numpy", [2])]
+        assert blas_threads() == [2]

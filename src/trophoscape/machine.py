@@ -3,14 +3,16 @@
 One answer for every part that splits work (the pools of worker processes, the threads that
 search for links, the compiled kernels on numba's threads, the second process that draws the
 maps). A pool's worker is given one core (:func:`one_core_only`), so that nothing in it starts
-threads of its own beside the other workers.
+threads of its own beside the other workers. While the compiled kernels hold the cores, the
+BLAS library gets one thread (:func:`blas_on_one_thread`).
 """
 
 from __future__ import annotations
 
+import contextlib
 import os
 
-__all__ = ["cores", "one_core_only"]
+__all__ = ["cores", "one_core_only", "blas_on_one_thread"]
 
 _one_core = False
 
@@ -30,3 +32,30 @@ def one_core_only() -> None:
     """From now on this process uses one core (a pool's worker)."""
     global _one_core
     _one_core = True
+
+
+_blas = None
+
+
+@contextlib.contextmanager
+def blas_on_one_thread(when: bool = True):
+    """Inside the block (``when`` true) the BLAS libraries loaded in this process (numpy's
+    and scipy's OpenBLAS) use one thread, as with ``OPENBLAS_NUM_THREADS=1`` (threadpoolctl).
+
+    The compiled kernels run on numba's threads on every core; OpenBLAS's own threads, woken
+    by any small product, wait for work by spinning on the same cores. A 100,000-patch run
+    took 70-75 s without this and 48 s with it (benchmarks/README.md, sixteenth session).
+    """
+    global _blas
+    if not when:
+        yield
+        return
+    try:
+        from threadpoolctl import ThreadpoolController
+    except ImportError:  # pragma: no cover - a dependency; without it, BLAS as it is
+        yield
+        return
+    if _blas is None:
+        _blas = ThreadpoolController()
+    with _blas.limit(limits=1, user_api="blas"):
+        yield

@@ -29,6 +29,7 @@ Error control per patch
 from __future__ import annotations
 
 import dataclasses
+import functools
 from dataclasses import dataclass
 
 
@@ -38,6 +39,7 @@ import xarray as xr
 from scipy.integrate._ivp import rk as _rk  # the step-size controller's constants
 
 from ..errors import RunError
+from ..machine import blas_on_one_thread
 from ..model.system import SPECIES, CoupledSystem
 from .crossings import NEAR, dense_at, falls_through_within
 from .retake import StepRetaker
@@ -457,7 +459,7 @@ class RunSettings:
         return {**dataclasses.asdict(self), **changes}
 
 
-def simulate(
+def _simulate(
     system: CoupledSystem,
     y0,
     *,
@@ -898,3 +900,10 @@ def simulate(
                 "patch": ("patch", ids, {"long_name": "patch id"})},
     )
     return Trajectory(data=data, stats=stats)
+
+
+@functools.wraps(_simulate)
+def simulate(system, y0, **options):
+    # the compiled kernels hold every core: BLAS on one thread meanwhile (machine)
+    with blas_on_one_thread(getattr(system, "local_terms_used", None) == "compiled"):
+        return _simulate(system, y0, **options)

@@ -32,6 +32,7 @@ from ..scenario import (INPUT_FILES, LARGEST, FieldRef, Scenario, bounds_of,
                                   check_regular_file, read_scenario)
 from ..integrate.trajectory import Trajectory
 from ..integrate.ode import RunSettings, simulate
+from ..machine import blas_on_one_thread
 from .tasks import InSecondProcess, second_process_possible
 from ..model.system import SPECIES, CoupledSystem, pack
 
@@ -577,7 +578,10 @@ def run_study(study: Study, *, progress: bool = False, stacked=None,
         raise
     if writer is not None:
         writer.finish(traj)  # deletes the file itself if this fails
-    table, summary, extras = analyse(study, traj)
+    # on a large network the analyses run beside each other on every core: BLAS's own
+    # threads would spin on the same cores (machine.blas_on_one_thread)
+    with blas_on_one_thread(study.system.n_patches >= STABILITY_BESIDE_MIN_PATCHES):
+        table, summary, extras = analyse(study, traj)
     summary["replicates"] = len(seeds)
     summary["seeds"] = seeds
     summary["quasi_extinction"] = quasi_extinction_summary(traj.stats)
