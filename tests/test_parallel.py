@@ -212,7 +212,7 @@ def test_blas_has_one_thread_while_the_compiled_kernels_run(monkeypatch):
     # their thread counts): a run on the compiled path keeps BLAS on one thread, as
     # OPENBLAS_NUM_THREADS=1 would, and gives it back afterwards; a numpy run leaves it be
     import numpy as np
-XX
+    import scipy.linalg
     from threadpoolctl import threadpool_info, threadpool_limits
 
     from trophoscape.integrate import ode
