@@ -34,8 +34,6 @@ def one_core_only() -> None:
     _one_core = True
 
 
-_blas = None
-
 
 @contextlib.contextmanager
 def blas_on_one_thread(when: bool = True):
@@ -46,7 +44,6 @@ def blas_on_one_thread(when: bool = True):
     by any small product, wait for work by spinning on the same cores. A 100,000-patch run
     took 70-75 s without this and 48 s with it (benchmarks/README.md, sixteenth session).
     """
-    global _blas
     if not when:
         yield
         return
@@ -55,7 +52,6 @@ def blas_on_one_thread(when: bool = True):
     except ImportError:  # pragma: no cover - a dependency; without it, BLAS as it is
         yield
         return
-    if _blas is None:
-        _blas = ThreadpoolController()
-    with _blas.limit(limits=1, user_api="blas"):
+    # the libraries loaded now (0.3 ms to look): scipy's may load after numpy's
+    with ThreadpoolController().limit(limits=1, user_api="blas"):
         yield

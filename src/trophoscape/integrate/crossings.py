@@ -12,7 +12,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.integrate as si
 
-__all__ = ["Rows", "dense_at", "horner", "falls_through_within", "crossing_positions"]
+__all__ = ["Rows", "dense_at", "horner", "falls_through_within", "crossing_positions",
+           "interpolant_arrays"]
 
 #: Populations within this share of the threshold at either end of a step are looked at
 #: between its ends (a dip, or a rise, larger than this within one error-controlled step is
@@ -94,6 +95,17 @@ class Rows:
             y += f
             y *= x if i % 2 == 0 else 1.0 - x
         return y + self.y_old
+
+
+def interpolant_arrays(dense):
+    """A whole step's interpolant over the network as the compiled code reads it:
+    ``(kind, y_old, coefficients, h)`` (:func:`trophoscape.integrate.compiled._interpolant`:
+    kind 0 scipy's Runge–Kutta form, 1 DOP853's, its factors stacked in :class:`Rows`'
+    order)."""
+    rows = Rows(dense, slice(None))
+    if rows.factors is None:
+        return 0, rows.y_old, rows.coefficients, float(rows.h)
+    return 1, rows.y_old, np.ascontiguousarray(np.stack(rows.factors, axis=1)), 0.0
 
 
 def _falls_within(values, level, armed):

@@ -359,26 +359,23 @@ def _crossed_compiled(solver, y_prev, above, level):
     population came near the threshold), in compiled passes on numba's threads: the
     step's ends first, then, for those near the threshold at either end, the points of
     :func:`~trophoscape.integrate.crossings.falls_through_within` on the interpolant."""
-    from ..model.compiled import ONE_AT_A_TIME, threaded
+    from ..model.compiled import on_threads
     from . import compiled
-    from .crossings import LOOKS
-    from .retake import _coefficients
+    from .crossings import LOOKS, interpolant_arrays
 
     y = solver.y
     now = np.empty(y.size, dtype=bool)
     crossed = np.empty(y.size, dtype=bool)
     close = np.empty(y.size, dtype=bool)
-    with ONE_AT_A_TIME:
-        count = threaded(compiled.step_ends)(y_prev, y, above, float(level), NEAR, now,
-                                             crossed, close)
+    count = on_threads(compiled.step_ends, y_prev, y, above, float(level), NEAR, now, crossed,
+                       close)
     if not count:
         return now, crossed, None
     dense = solver.dense_output()
-    kind, y_old, coef, h = _coefficients(dense)
+    kind, y_old, coef, h = interpolant_arrays(dense)
     grid = np.linspace(0.0, 1.0, LOOKS + 1)  # the points of falls_through_within
-    with ONE_AT_A_TIME:
-        threaded(compiled.falls_between)(close, above, float(level), kind, y_old, coef, h,
-                                         grid, crossed)
+    on_threads(compiled.falls_between, close, above, float(level), kind, y_old, coef, h, grid,
+               crossed)
     return now, crossed, dense
 
 

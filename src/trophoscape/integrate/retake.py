@@ -51,7 +51,8 @@ from scipy.sparse.csgraph import connected_components
 
 from ..errors import RunError
 from .crossings import (LOOKS, NEAR, REFINE, ROUNDS as REFINE_ROUNDS, Rows,
-                        crossing_positions, falls_through_within, horner)
+                        crossing_positions, falls_through_within, horner,
+                        interpolant_arrays)
 
 __all__ = ["StepRetaker"]
 
@@ -190,12 +191,11 @@ class StepRetaker:
         n = self.n
         matrix = self._transposed
         if self.compiled is not None:
-            from ..model.compiled import ONE_AT_A_TIME, threaded
+            from ..model.compiled import on_threads
 
-            with ONE_AT_A_TIME:
-                return threaded(self.compiled.corrections)(
-                    members, n, matrix.indptr, matrix.indices, matrix.data, sent, self._mark,
-                    self._position, self._apart)
+            return on_threads(self.compiled.corrections, members, n, matrix.indptr,
+                              matrix.indices, matrix.data, sent, self._mark, self._position,
+                              self._apart)
         inside = np.concatenate([members, members + n])
         row, col, rate = _gather(matrix, inside)  # row: a component of the region
         self._mark[inside] = True
@@ -259,7 +259,7 @@ class StepRetaker:
         rounds_census = []  # (components, their census values) of each round
         evaluations = 0.0
         # the compiled regions read the whole step's interpolant over the network
-        interpolant = None if self.compiled is None else _coefficients(dense)
+        interpolant = None if self.compiled is None else interpolant_arrays(dense)
         for rounds in range(1, ROUNDS + 2):
             if rounds > ROUNDS or members.size > WHOLE * n:
                 if refuse and patches.size > 1:
@@ -375,20 +375,17 @@ class _Region:
         the numpy setup and :meth:`_run` do."""
         import numba
 
-        from ..model.compiled import ONE_AT_A_TIME, threaded  # numba's threads
+        from ..model.compiled import on_threads  # numba's threads
 
         module = retaker.compiled
         kind, y_old, coef, h = interpolant
         links, movement = retaker.links, retaker.movement
-        with ONE_AT_A_TIME:
-            setup = threaded(module.region_setup)
-            # the rows in as many runs as threads (the result is the same for any number)
-            parts = 1 if setup is module.region_setup.one_thread else numba.get_num_threads()
-            (order, starts, comps, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src,
-             i_rate) = setup(
-                np.asarray(patches, dtype=np.int64), retaker.n, links.indptr, links.indices,
-                movement.indptr, movement.indices, movement.data, retaker._position, kind,
-                y_old, coef, h, parts)
+        # the rows in as many runs as numba has threads (the same result for any number)
+        (order, starts, comps, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src,
+         i_rate) = on_threads(
+            module.region_setup, np.asarray(patches, dtype=np.int64), retaker.n, links.indptr,
+            links.indices, movement.indptr, movement.indices, movement.data, retaker._position,
+            kind, y_old, coef, h, numba.config.NUMBA_NUM_THREADS)
         self.components = comps
         m = order.size
         self._start(y0, m, census)
@@ -397,14 +394,13 @@ class _Region:
         status = np.zeros(groups, dtype=np.int64)
         evaluations = np.zeros(groups)
         census = np.ascontiguousarray(census, dtype=float)
-        with ONE_AT_A_TIME:
-            threaded(module.run_groups)(
-                starts, m, self.t0, self.span, self.x, self.q, np.asarray(armed)[comps],
-                level, rtol, atol, w_ptr, w_idx, w_val, p_old, p_coef, i_ptr, i_src, i_rate,
-                kind, y_old, coef, h, self.sends, comps, growth, response, harvest, order,
-                retaker.area, retaker._block, census, self.census, self.counts, self.held,
-                _A, _B, _C, _E, _P, _SAFETY, _MIN_FACTOR, _MAX_FACTOR, _EXPONENT, NEAR, LOOKS,
-                REFINE, REFINE_ROUNDS, status, evaluations)
+        on_threads(
+            module.run_groups, starts, m, self.t0, self.span, self.x, self.q,
+            np.asarray(armed)[comps], level, rtol, atol, w_ptr, w_idx, w_val, p_old, p_coef,
+            i_ptr, i_src, i_rate, kind, y_old, coef, h, self.sends, comps, growth, response,
+            harvest, order, retaker.area, retaker._block, census, self.census, self.counts,
+            self.held, _A, _B, _C, _E, _P, _SAFETY, _MIN_FACTOR, _MAX_FACTOR, _EXPONENT, NEAR,
+            LOOKS, REFINE, REFINE_ROUNDS, status, evaluations)
         self.evaluations = float(evaluations.sum()) * self._unit
         if np.any(status == module.NOT_A_NUMBER):
             raise RunError(_NOT_A_NUMBER.format(time=self.t0))
@@ -633,16 +629,6 @@ _NOT_A_NUMBER = ("the error estimate is not a number near time {time:.6g} (a ste
                  "again over a region, for removals or patches over the tolerance): "
                  "abundances became non-finite, or a population at zero has no error scale "
                  "(atol = 0); use atol > 0 and check for explosive growth")
-
-
-def _coefficients(dense):
-    """The whole step's interpolant over the network for the compiled code:
-    ``(kind, y_old, coefficients, h)`` (:func:`trophoscape.integrate.compiled._interpolant`)."""
-    rows = Rows(dense, slice(None))
-    if rows.factors is None:
-        return 0, rows.y_old, rows.coefficients, float(rows.h)
-    coefficients = np.ascontiguousarray(np.stack(rows.factors, axis=1))
-    return 1, rows.y_old, coefficients, 0.0
 
 
 def _gather(matrix, rows):

@@ -112,6 +112,13 @@ def threaded(kernel):
     return kernel
 
 
+def on_threads(kernel, *args):
+    """``kernel(*args)``, or its one-thread twin's, as :func:`threaded` chooses, holding
+    :data:`ONE_AT_A_TIME`: how every kernel on numba's threads is called."""
+    with ONE_AT_A_TIME:
+        return threaded(kernel)(*args)
+
+
 @jit(inline=True)
 def clipped(v):  # pragma: no cover - compiled
     """``max(v, 0)`` that keeps a NaN, as ``np.maximum`` does (so a failing solve still
@@ -226,8 +233,7 @@ def dense_coefficients(K, P):
     """``K.T @ P`` (the coefficients of scipy's Runge–Kutta interpolant, shape (n, columns of
     P)) by :func:`_dense_coefficients`, on numba's threads, one caller at a time."""
     Q = np.empty((K.shape[1], P.shape[1]))
-    with ONE_AT_A_TIME:
-        threaded(_dense_coefficients)(K, np.ascontiguousarray(P, dtype=np.float64), Q)
+    on_threads(_dense_coefficients, K, np.ascontiguousarray(P, dtype=np.float64), Q)
     return Q
 
 
@@ -244,8 +250,7 @@ def _dense_coefficients(K, P, Q):  # pragma: no cover - compiled
 
 def patch_errors(K, E, h, y, y_new, rtol, atol, per):
     """:func:`_patch_errors` (on numba's threads, one caller at a time)."""
-    with ONE_AT_A_TIME:
-        threaded(_patch_errors)(K, E, h, y, y_new, rtol, atol, per)
+    on_threads(_patch_errors, K, E, h, y, y_new, rtol, atol, per)
 
 
 @jit(parallel=True)
@@ -344,9 +349,8 @@ def rhs_function(model, area, movement):
 
     def rhs(t, y):
         dy = np.empty(2 * n)
-        with ONE_AT_A_TIME:
-            threaded(whole)(growth, response, harvest, y, area, block, x, dy, indptr, indices,
-                            data)
+        on_threads(whole, growth, response, harvest, y, area, block, x, dy, indptr, indices,
+                   data)
         return dy
 
     no_state = np.empty(0)
@@ -354,10 +358,8 @@ def rhs_function(model, area, movement):
     def stage(y, K, stages, coefficients, h, out, y_out=None):
         """``out = rhs(y + (sum_l coefficients[l] K[l]) h)`` over the first ``stages`` rows
         of ``K``, in one call (:func:`_stage`); that state is stored in ``y_out`` if given."""
-        with ONE_AT_A_TIME:
-            threaded(_stage)(growth, response, harvest, y, K, stages, coefficients, h, area,
-                             block, x, out, indptr, indices, data,
-                             no_state if y_out is None else y_out)
+        on_threads(_stage, growth, response, harvest, y, K, stages, coefficients, h, area,
+                   block, x, out, indptr, indices, data, no_state if y_out is None else y_out)
 
     rhs.stage = stage
     return rhs
